@@ -1,0 +1,188 @@
+//! Cross-validated comparison of decoders on one block.
+//!
+//! Each decoder is fitted on all folds but one and run, through the same
+//! [`DecodePipeline`] the daemon uses, over the held-out fold's segments,
+//! starting from its initial state at each segment. Scores are per output
+//! dimension, per fold, and their mean.
+
+use serde::Serialize;
+
+use crate::TrainError;
+use crate::folds::FoldPlan;
+use crate::kalman::train::{KalmanFitOptions, KalmanStats, check_options, fit_from_stats};
+use crate::metrics::{Scores, mean_scores, scores};
+use crate::model_file::DecoderModel;
+use crate::pipeline::DecodePipeline;
+use crate::session::Session;
+use crate::wiener::{WienerFitOptions, WienerStats, fit_wiener_from_stats, output_columns};
+
+#[derive(Clone, Debug, PartialEq)]
+pub enum DecoderSpec {
+    Kalman(KalmanFitOptions),
+    Wiener(WienerFitOptions),
+}
+
+impl DecoderSpec {
+    pub fn name(&self) -> &'static str {
+        match self {
+            DecoderSpec::Kalman(_) => "kalman",
+            DecoderSpec::Wiener(_) => "wiener",
+        }
+    }
+
+    fn outputs(&self) -> &[String] {
+        match self {
+            DecoderSpec::Kalman(o) => &o.outputs,
+            DecoderSpec::Wiener(o) => &o.outputs,
+        }
+    }
+
+    fn lag(&self) -> usize {
+        match self {
+            DecoderSpec::Kalman(o) => o.lag_bins,
+            DecoderSpec::Wiener(o) => o.lag_bins,
+        }
+    }
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct DecoderEvaluation {
+    pub decoder: String,
+    pub outputs: Vec<String>,
+    /// `per_fold[f][dim]`.
+    pub per_fold: Vec<Vec<Scores>>,
+    pub mean: Vec<Scores>,
+}
+
+/// Decoded and true values over the first held-out segments of fold 0, for
+/// plots.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct HeldOutTrace {
+    pub decoder: String,
+    pub output: String,
+    pub truth: Vec<f64>,
+    pub estimate: Vec<f64>,
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Evaluation {
+    pub folds: usize,
+    pub by_trial: bool,
+    pub decoders: Vec<DecoderEvaluation>,
+    pub traces: Vec<HeldOutTrace>,
+}
+
+/// Bins of held-out trace kept for plotting.
+const TRACE_BINS: usize = 1500;
+
+/// Per-fold fitted models for one decoder spec.
+fn fit_per_fold(session: &Session, spec: &DecoderSpec, plan: &FoldPlan) -> Result<Vec<DecoderModel>, TrainError> {
+    let k = plan.k();
+    match spec {
+        DecoderSpec::Kalman(opts) => {
+            let sources = check_options(session, opts)?;
+            let parts: Vec<KalmanStats> = plan
+                .pieces
+                .iter()
+                .map(|pieces| {
+                    let mut s = KalmanStats::new(sources.len(), session.n_channels, opts.q_form);
+                    for seg in pieces {
+                        s.accumulate(session, &sources, opts.lag_bins, seg.clone());
+                    }
+                    s
+                })
+                .collect();
+            (0..k)
+                .map(|f| {
+                    let mut train = KalmanStats::new(sources.len(), session.n_channels, opts.q_form);
+                    for (g, p) in parts.iter().enumerate() {
+                        if g != f {
+                            train.add_assign(p);
+                        }
+                    }
+                    fit_from_stats(&train, opts, session.bin_ms).map(|(m, _)| DecoderModel::Kalman(m))
+                })
+                .collect()
+        }
+        DecoderSpec::Wiener(opts) => {
+            let cols = output_columns(session, &opts.outputs)?;
+            let parts: Vec<WienerStats> = plan
+                .pieces
+                .iter()
+                .map(|pieces| {
+                    let mut s = WienerStats::new(session.n_channels, opts.taps, cols.len());
+                    for seg in pieces {
+                        s.accumulate(session, &cols, opts.taps, opts.lag_bins, seg.clone());
+                    }
+                    s
+                })
+                .collect();
+            (0..k)
+                .map(|f| {
+                    let mut train = WienerStats::new(session.n_channels, opts.taps, cols.len());
+                    for (g, p) in parts.iter().enumerate() {
+                        if g != f {
+                            train.add_assign(p);
+                        }
+                    }
+                    fit_wiener_from_stats(&train, opts, session.n_channels).map(DecoderModel::Wiener)
+                })
+                .collect()
+        }
+    }
+}
+
+/// Runs `k`-fold cross-validation of each spec; `on_fold` is called after
+/// each fitted fold (for progress display).
+pub fn cross_validate(
+    session: &Session,
+    specs: &[DecoderSpec],
+    k: usize,
+    mut on_fold: impl FnMut(&str, usize),
+) -> Result<Evaluation, TrainError> {
+    let plan = FoldPlan::new(session, k)?;
+    let kin = session.kinematics.as_ref().ok_or(TrainError::NoKinematics)?;
+    let mut decoders = Vec::new();
+    let mut traces = Vec::new();
+    for spec in specs {
+        let cols = output_columns(session, spec.outputs())?;
+        let lag = spec.lag();
+        let models = fit_per_fold(session, spec, &plan)?;
+        let mut per_fold = Vec::with_capacity(k);
+        for (f, model) in models.iter().enumerate() {
+            let mut pipeline = DecodePipeline::from_decoder(model, session.bin_ms, true)?;
+            let mut truth: Vec<Vec<f64>> = vec![Vec::new(); cols.len()];
+            let mut est: Vec<Vec<f64>> = vec![Vec::new(); cols.len()];
+            for seg in &plan.held_out[f] {
+                pipeline.reset();
+                for t in seg.start..seg.end.saturating_sub(lag) {
+                    let out = pipeline.step(t as u64, session.bin_counts(t));
+                    for (dim, &c) in cols.iter().enumerate() {
+                        truth[dim].push(kin.get(t + lag, c));
+                        est[dim].push(out.estimate[dim]);
+                    }
+                }
+            }
+            per_fold.push((0..cols.len()).map(|dim| scores(&truth[dim], &est[dim])).collect::<Vec<_>>());
+            if f == 0 {
+                for (dim, name) in spec.outputs().iter().enumerate() {
+                    let n = truth[dim].len().min(TRACE_BINS);
+                    traces.push(HeldOutTrace {
+                        decoder: spec.name().into(),
+                        output: name.clone(),
+                        truth: truth[dim][..n].to_vec(),
+                        estimate: est[dim][..n].to_vec(),
+                    });
+                }
+            }
+            on_fold(spec.name(), f);
+        }
+        decoders.push(DecoderEvaluation {
+            decoder: spec.name().into(),
+            outputs: spec.outputs().to_vec(),
+            mean: mean_scores(&per_fold),
+            per_fold,
+        });
+    }
+    Ok(Evaluation { folds: k, by_trial: plan.by_trial, decoders, traces })
+}

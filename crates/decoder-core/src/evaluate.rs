@@ -76,7 +76,11 @@ pub struct Evaluation {
 const TRACE_BINS: usize = 1500;
 
 /// Per-fold fitted models for one decoder spec.
-fn fit_per_fold(session: &Session, spec: &DecoderSpec, plan: &FoldPlan) -> Result<Vec<DecoderModel>, TrainError> {
+fn fit_per_fold(
+    session: &Session,
+    spec: &DecoderSpec,
+    plan: &FoldPlan,
+) -> Result<Vec<DecoderModel>, TrainError> {
     let k = plan.k();
     match spec {
         DecoderSpec::Kalman(opts) => {
@@ -94,13 +98,15 @@ fn fit_per_fold(session: &Session, spec: &DecoderSpec, plan: &FoldPlan) -> Resul
                 .collect();
             (0..k)
                 .map(|f| {
-                    let mut train = KalmanStats::new(sources.len(), session.n_channels, opts.q_form);
+                    let mut train =
+                        KalmanStats::new(sources.len(), session.n_channels, opts.q_form);
                     for (g, p) in parts.iter().enumerate() {
                         if g != f {
                             train.add_assign(p);
                         }
                     }
-                    fit_from_stats(&train, opts, session.bin_ms).map(|(m, _)| DecoderModel::Kalman(m))
+                    fit_from_stats(&train, opts, session.bin_ms)
+                        .map(|(m, _)| DecoderModel::Kalman(m))
                 })
                 .collect()
         }
@@ -125,7 +131,8 @@ fn fit_per_fold(session: &Session, spec: &DecoderSpec, plan: &FoldPlan) -> Resul
                             train.add_assign(p);
                         }
                     }
-                    fit_wiener_from_stats(&train, opts, session.n_channels).map(DecoderModel::Wiener)
+                    fit_wiener_from_stats(&train, opts, session.n_channels)
+                        .map(DecoderModel::Wiener)
                 })
                 .collect()
         }
@@ -141,7 +148,10 @@ pub fn cross_validate(
     mut on_fold: impl FnMut(&str, usize),
 ) -> Result<Evaluation, TrainError> {
     let plan = FoldPlan::new(session, k)?;
-    let kin = session.kinematics.as_ref().ok_or(TrainError::NoKinematics)?;
+    let kin = session
+        .kinematics
+        .as_ref()
+        .ok_or(TrainError::NoKinematics)?;
     let mut decoders = Vec::new();
     let mut traces = Vec::new();
     for spec in specs {
@@ -163,7 +173,11 @@ pub fn cross_validate(
                     }
                 }
             }
-            per_fold.push((0..cols.len()).map(|dim| scores(&truth[dim], &est[dim])).collect::<Vec<_>>());
+            per_fold.push(
+                (0..cols.len())
+                    .map(|dim| scores(&truth[dim], &est[dim]))
+                    .collect::<Vec<_>>(),
+            );
             if f == 0 {
                 for (dim, name) in spec.outputs().iter().enumerate() {
                     let n = truth[dim].len().min(TRACE_BINS);
@@ -184,5 +198,10 @@ pub fn cross_validate(
             per_fold,
         });
     }
-    Ok(Evaluation { folds: k, by_trial: plan.by_trial, decoders, traces })
+    Ok(Evaluation {
+        folds: k,
+        by_trial: plan.by_trial,
+        decoders,
+        traces,
+    })
 }

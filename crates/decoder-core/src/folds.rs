@@ -28,14 +28,20 @@ impl FoldPlan {
     /// `k` folds: contiguous runs of trials, or contiguous blocks of bins.
     pub fn new(session: &Session, k: usize) -> Result<FoldPlan, TrainError> {
         if k < 2 {
-            return Err(TrainError::Option { key: "folds", problem: format!("{k} folds; cross-validation needs at least 2") });
+            return Err(TrainError::Option {
+                key: "folds",
+                problem: format!("{k} folds; cross-validation needs at least 2"),
+            });
         }
         match &session.trials {
             Some(trials) if !trials.is_empty() => {
                 if trials.len() < k {
                     return Err(TrainError::Option {
                         key: "folds",
-                        problem: format!("{k} folds but trials.csv has only {} trials", trials.len()),
+                        problem: format!(
+                            "{k} folds but trials.csv has only {} trials",
+                            trials.len()
+                        ),
                     });
                 }
                 let mut sorted = trials.clone();
@@ -50,24 +56,42 @@ impl FoldPlan {
                         // A piece runs from this trial's start to the next one's;
                         // overlapping trials are clipped so no bin is in two folds.
                         let start = if i == 0 { 0 } else { sorted[i].start_bin };
-                        let end = if i + 1 < n { sorted[i + 1].start_bin } else { session.n_bins };
+                        let end = if i + 1 < n {
+                            sorted[i + 1].start_bin
+                        } else {
+                            session.n_bins
+                        };
                         held.push(sorted[i].start_bin..sorted[i].end_bin.min(end));
                         own.push(start..end);
                     }
                     held_out.push(held);
                     pieces.push(own);
                 }
-                Ok(FoldPlan { held_out, pieces, by_trial: true })
+                Ok(FoldPlan {
+                    held_out,
+                    pieces,
+                    by_trial: true,
+                })
             }
             _ => {
                 if session.n_bins < k * 10 {
                     return Err(TrainError::Option {
                         key: "folds",
-                        problem: format!("{k} folds of a {}-bin block leaves under 10 bins a fold", session.n_bins),
+                        problem: format!(
+                            "{k} folds of a {}-bin block leaves under 10 bins a fold",
+                            session.n_bins
+                        ),
                     });
                 }
-                let held_out: Vec<Vec<Range<usize>>> = split_evenly(session.n_bins, k).into_iter().map(|r| vec![r]).collect();
-                Ok(FoldPlan { pieces: held_out.clone(), held_out, by_trial: false })
+                let held_out: Vec<Vec<Range<usize>>> = split_evenly(session.n_bins, k)
+                    .into_iter()
+                    .map(|r| vec![r])
+                    .collect();
+                Ok(FoldPlan {
+                    pieces: held_out.clone(),
+                    held_out,
+                    by_trial: false,
+                })
             }
         }
     }
@@ -78,8 +102,13 @@ impl FoldPlan {
 
     /// The training segments of fold `f`: every other fold's pieces.
     pub fn training_segments(&self, f: usize) -> Vec<Range<usize>> {
-        let mut out: Vec<Range<usize>> =
-            self.pieces.iter().enumerate().filter(|(g, _)| *g != f).flat_map(|(_, p)| p.iter().cloned()).collect();
+        let mut out: Vec<Range<usize>> = self
+            .pieces
+            .iter()
+            .enumerate()
+            .filter(|(g, _)| *g != f)
+            .flat_map(|(_, p)| p.iter().cloned())
+            .collect();
         out.sort_by_key(|r| r.start);
         out
     }
@@ -112,7 +141,13 @@ mod tests {
                 spans
                     .iter()
                     .enumerate()
-                    .map(|(i, &(s, e))| Trial { trial: i as u32, start_bin: s, end_bin: e, target_x: 0.0, target_y: 0.0 })
+                    .map(|(i, &(s, e))| Trial {
+                        trial: i as u32,
+                        start_bin: s,
+                        end_bin: e,
+                        target_x: 0.0,
+                        target_y: 0.0,
+                    })
                     .collect(),
             ),
             channel_labels: None,
@@ -124,7 +159,10 @@ mod tests {
     fn trial_pieces_partition_the_block_and_hold_out_whole_trials() {
         let s = block_with_trials(&[(5, 10), (12, 20), (25, 30), (31, 40)], 45);
         let plan = FoldPlan::new(&s, 2).unwrap();
-        assert_eq!(plan.held_out, vec![vec![5..10, 12..20], vec![25..30, 31..40]]);
+        assert_eq!(
+            plan.held_out,
+            vec![vec![5..10, 12..20], vec![25..30, 31..40]]
+        );
         let mut all: Vec<_> = plan.pieces.iter().flatten().cloned().collect();
         all.sort_by_key(|r| r.start);
         assert_eq!(all, vec![0..12, 12..25, 25..31, 31..45]);
@@ -134,6 +172,9 @@ mod tests {
     #[test]
     fn too_many_folds_for_the_trials_is_refused() {
         let s = block_with_trials(&[(0, 5)], 10);
-        assert!(matches!(FoldPlan::new(&s, 2), Err(TrainError::Option { key: "folds", .. })));
+        assert!(matches!(
+            FoldPlan::new(&s, 2),
+            Err(TrainError::Option { key: "folds", .. })
+        ));
     }
 }

@@ -26,10 +26,15 @@ pub use session::{Session, SessionError};
 /// Why a decoder could not be trained or evaluated on a block.
 #[derive(Debug, thiserror::Error)]
 pub enum TrainError {
-    #[error("the block has no kinematics.npy; training and evaluation need the recorded kinematics")]
+    #[error(
+        "the block has no kinematics.npy; training and evaluation need the recorded kinematics"
+    )]
     NoKinematics,
     #[error("unknown kinematic column {name:?}; the block's manifest names {available:?}")]
-    UnknownKinematic { name: String, available: Vec<String> },
+    UnknownKinematic {
+        name: String,
+        available: Vec<String>,
+    },
     #[error("option {key}: {problem}")]
     Option { key: &'static str, problem: String },
     #[error("only {bins} training bins; the fit needs at least {needed}")]

@@ -19,7 +19,11 @@ pub struct Mat {
 
 impl Mat {
     pub fn zeros(rows: usize, cols: usize) -> Mat {
-        Mat { rows, cols, data: vec![0.0; rows * cols] }
+        Mat {
+            rows,
+            cols,
+            data: vec![0.0; rows * cols],
+        }
     }
 
     pub fn identity(n: usize) -> Mat {
@@ -37,7 +41,11 @@ impl Mat {
             assert_eq!(row.len(), cols, "ragged rows");
             data.extend_from_slice(row);
         }
-        Mat { rows: rows.len(), cols, data }
+        Mat {
+            rows: rows.len(),
+            cols,
+            data,
+        }
     }
 
     pub fn get(&self, row: usize, col: usize) -> f64 {

@@ -54,16 +54,28 @@ pub fn rmse(truth: &[f64], estimate: &[f64]) -> f64 {
     if n == 0 {
         return f64::NAN;
     }
-    (truth.iter().zip(estimate).map(|(t, e)| (t - e) * (t - e)).sum::<f64>() / n as f64).sqrt()
+    (truth
+        .iter()
+        .zip(estimate)
+        .map(|(t, e)| (t - e) * (t - e))
+        .sum::<f64>()
+        / n as f64)
+        .sqrt()
 }
 
 pub fn scores(truth: &[f64], estimate: &[f64]) -> Scores {
-    Scores { cc: pearson(truth, estimate), r2: r_squared(truth, estimate), rmse: rmse(truth, estimate) }
+    Scores {
+        cc: pearson(truth, estimate),
+        r2: r_squared(truth, estimate),
+        rmse: rmse(truth, estimate),
+    }
 }
 
 /// Mean of scores, dimension by dimension.
 pub fn mean_scores(all: &[Vec<Scores>]) -> Vec<Scores> {
-    let Some(first) = all.first() else { return Vec::new() };
+    let Some(first) = all.first() else {
+        return Vec::new();
+    };
     (0..first.len())
         .map(|dim| {
             let k = all.len() as f64;

@@ -75,15 +75,32 @@ pub struct ModelFile {
 #[derive(Debug, thiserror::Error)]
 pub enum ModelFileError {
     #[error("{path}: cannot read: {source}")]
-    Io { path: String, source: std::io::Error },
-    #[error("{path}: not a model file (magic {found:?}, expected \"VDECMODL\"); pass a file written by replay-tool train")]
+    Io {
+        path: String,
+        source: std::io::Error,
+    },
+    #[error(
+        "{path}: not a model file (magic {found:?}, expected \"VDECMODL\"); pass a file written by replay-tool train"
+    )]
     BadMagic { path: String, found: String },
-    #[error("{path}: model format version {found}; this build reads version {MODEL_FORMAT_VERSION}; retrain or use a matching build")]
+    #[error(
+        "{path}: model format version {found}; this build reads version {MODEL_FORMAT_VERSION}; retrain or use a matching build"
+    )]
     UnsupportedVersion { path: String, found: u32 },
     #[error("{path}: truncated ({got} bytes, header declares {want}); copy the file again")]
-    Truncated { path: String, got: usize, want: usize },
-    #[error("{path}: checksum mismatch (stored {stored:08x}, computed {computed:08x}); the file is damaged, copy it again")]
-    Checksum { path: String, stored: u32, computed: u32 },
+    Truncated {
+        path: String,
+        got: usize,
+        want: usize,
+    },
+    #[error(
+        "{path}: checksum mismatch (stored {stored:08x}, computed {computed:08x}); the file is damaged, copy it again"
+    )]
+    Checksum {
+        path: String,
+        stored: u32,
+        computed: u32,
+    },
     #[error("{path}: payload does not decode: {problem}")]
     Decode { path: String, problem: String },
     #[error("{path}: invalid model: {problem}")]
@@ -92,7 +109,8 @@ pub enum ModelFileError {
 
 impl ModelFile {
     pub fn to_bytes(&self) -> Vec<u8> {
-        let payload = bincode::serde::encode_to_vec(self, bincode::config::standard()).expect("model serialises");
+        let payload = bincode::serde::encode_to_vec(self, bincode::config::standard())
+            .expect("model serialises");
         let mut out = Vec::with_capacity(HEADER_LEN + payload.len());
         out.extend_from_slice(MODEL_MAGIC);
         out.extend_from_slice(&MODEL_FORMAT_VERSION.to_le_bytes());
@@ -107,35 +125,66 @@ impl ModelFile {
         let path_s = path.to_string();
         if bytes.len() < 8 || &bytes[..8] != MODEL_MAGIC {
             let found = String::from_utf8_lossy(&bytes[..bytes.len().min(8)]).into_owned();
-            return Err(ModelFileError::BadMagic { path: path_s, found });
+            return Err(ModelFileError::BadMagic {
+                path: path_s,
+                found,
+            });
         }
         if bytes.len() < HEADER_LEN {
-            return Err(ModelFileError::Truncated { path: path_s, got: bytes.len(), want: HEADER_LEN });
+            return Err(ModelFileError::Truncated {
+                path: path_s,
+                got: bytes.len(),
+                want: HEADER_LEN,
+            });
         }
         let version = u32::from_le_bytes(bytes[8..12].try_into().expect("4 bytes"));
         if version != MODEL_FORMAT_VERSION {
-            return Err(ModelFileError::UnsupportedVersion { path: path_s, found: version });
+            return Err(ModelFileError::UnsupportedVersion {
+                path: path_s,
+                found: version,
+            });
         }
         let len = u64::from_le_bytes(bytes[12..20].try_into().expect("8 bytes"));
         let stored = u32::from_le_bytes(bytes[20..24].try_into().expect("4 bytes"));
-        let len = usize::try_from(len).unwrap_or(usize::MAX).min(MAX_PAYLOAD + 1);
+        let len = usize::try_from(len)
+            .unwrap_or(usize::MAX)
+            .min(MAX_PAYLOAD + 1);
         if len > MAX_PAYLOAD || bytes.len() - HEADER_LEN < len {
-            return Err(ModelFileError::Truncated { path: path_s, got: bytes.len(), want: HEADER_LEN.saturating_add(len) });
+            return Err(ModelFileError::Truncated {
+                path: path_s,
+                got: bytes.len(),
+                want: HEADER_LEN.saturating_add(len),
+            });
         }
         let payload = &bytes[HEADER_LEN..HEADER_LEN + len];
         let computed = crc32fast::hash(payload);
         if computed != stored {
-            return Err(ModelFileError::Checksum { path: path_s, stored, computed });
+            return Err(ModelFileError::Checksum {
+                path: path_s,
+                stored,
+                computed,
+            });
         }
         let config = bincode::config::standard().with_limit::<MAX_PAYLOAD>();
         let (model, _): (ModelFile, usize) = bincode::serde::decode_from_slice(payload, config)
-            .map_err(|e| ModelFileError::Decode { path: path_s.clone(), problem: e.to_string() })?;
-        model.validate().map_err(|problem| ModelFileError::Invalid { path: path_s, problem })?;
+            .map_err(|e| ModelFileError::Decode {
+                path: path_s.clone(),
+                problem: e.to_string(),
+            })?;
+        model
+            .validate()
+            .map_err(|problem| ModelFileError::Invalid {
+                path: path_s,
+                problem,
+            })?;
         Ok(model)
     }
 
     pub fn read(path: &Path) -> Result<ModelFile, ModelFileError> {
-        let bytes = std::fs::read(path).map_err(|source| ModelFileError::Io { path: path.display().to_string(), source })?;
+        let bytes = std::fs::read(path).map_err(|source| ModelFileError::Io {
+            path: path.display().to_string(),
+            source,
+        })?;
         ModelFile::from_bytes(&bytes, &path.display().to_string())
     }
 

@@ -13,7 +13,10 @@ use crate::wiener::WienerFilter;
 
 #[derive(Clone, Debug)]
 enum Engine {
-    Kalman { filter: KalmanFilter, outputs: Vec<usize> },
+    Kalman {
+        filter: KalmanFilter,
+        outputs: Vec<usize>,
+    },
     Wiener(WienerFilter),
 }
 
@@ -54,11 +57,18 @@ impl DecodePipeline {
         Self::with_options(model, true)
     }
 
-    pub fn with_options(model: &ModelFile, use_steady_state: bool) -> Result<DecodePipeline, PipelineError> {
+    pub fn with_options(
+        model: &ModelFile,
+        use_steady_state: bool,
+    ) -> Result<DecodePipeline, PipelineError> {
         Self::from_decoder(&model.decoder, model.bin_ms, use_steady_state)
     }
 
-    pub fn from_decoder(decoder: &DecoderModel, bin_ms: f64, use_steady_state: bool) -> Result<DecodePipeline, PipelineError> {
+    pub fn from_decoder(
+        decoder: &DecoderModel,
+        bin_ms: f64,
+        use_steady_state: bool,
+    ) -> Result<DecodePipeline, PipelineError> {
         let (engine, d) = match decoder {
             DecoderModel::Kalman(k) => {
                 let filter = KalmanFilter::new(k, use_steady_state)?;
@@ -66,7 +76,10 @@ impl DecodePipeline {
                 let d = outputs.len();
                 (Engine::Kalman { filter, outputs }, d)
             }
-            DecoderModel::Wiener(w) => (Engine::Wiener(WienerFilter::new(w).map_err(PipelineError::Wiener)?), w.outputs.len()),
+            DecoderModel::Wiener(w) => (
+                Engine::Wiener(WienerFilter::new(w).map_err(PipelineError::Wiener)?),
+                w.outputs.len(),
+            ),
         };
         let mut p = DecodePipeline {
             engine,
@@ -109,7 +122,11 @@ impl DecodePipeline {
     /// Decodes one bin. `counts` must have the model's channel count (the
     /// daemon and the session reader check this before a bin gets here).
     pub fn step(&mut self, seq: u64, counts: &[u16]) -> BinEstimate<'_> {
-        assert_eq!(counts.len(), self.n_channels, "bin has the wrong channel count");
+        assert_eq!(
+            counts.len(),
+            self.n_channels,
+            "bin has the wrong channel count"
+        );
         let updated = match &mut self.engine {
             Engine::Kalman { filter, .. } => filter.step(counts),
             Engine::Wiener(w) => {
@@ -132,7 +149,12 @@ impl DecodePipeline {
     fn finish(&mut self, seq: u64, predicted_only: bool, fault: bool) -> BinEstimate<'_> {
         self.last_seq = Some(seq);
         let finite = self.copy_estimate();
-        BinEstimate { seq, estimate: &self.estimate, predicted_only, numerical_fault: fault || !finite }
+        BinEstimate {
+            seq,
+            estimate: &self.estimate,
+            predicted_only,
+            numerical_fault: fault || !finite,
+        }
     }
 
     /// Copies the engine's outputs into `estimate`; false if any is not finite.
@@ -148,4 +170,57 @@ impl DecodePipeline {
         }
         self.estimate.iter().all(|v| v.is_finite())
     }
+}
+
+/// Why a block cannot be decoded with a model.
+#[derive(Debug, thiserror::Error)]
+pub enum MismatchError {
+    #[error(
+        "counts.npy has {block} columns but the model expects {model} channels; use the model trained for this array"
+    )]
+    Channels { block: usize, model: usize },
+    #[error(
+        "the block has {block} ms bins but the model was trained on {model} ms bins; rebin the block or retrain"
+    )]
+    BinWidth { block: f64, model: f64 },
+}
+
+/// Checks that a block's channel count and bin width match a model's.
+pub fn check_block(
+    pipeline: &DecodePipeline,
+    session: &crate::session::Session,
+) -> Result<(), MismatchError> {
+    if session.n_channels != pipeline.n_channels() {
+        return Err(MismatchError::Channels {
+            block: session.n_channels,
+            model: pipeline.n_channels(),
+        });
+    }
+    if (session.bin_ms - pipeline.bin_ms()).abs() > 1e-9 * pipeline.bin_ms() {
+        return Err(MismatchError::BinWidth {
+            block: session.bin_ms,
+            model: pipeline.bin_ms(),
+        });
+    }
+    Ok(())
+}
+
+/// Decodes every bin of a block from the model's initial state, returning
+/// the estimates as `n_bins × n_outputs`, bin after bin, and how many bins
+/// had a numerical fault.
+pub fn replay_block(
+    pipeline: &mut DecodePipeline,
+    session: &crate::session::Session,
+) -> Result<(Vec<f64>, usize), MismatchError> {
+    check_block(pipeline, session)?;
+    pipeline.reset();
+    let d = pipeline.n_outputs();
+    let mut out = Vec::with_capacity(session.n_bins * d);
+    let mut faults = 0;
+    for bin in 0..session.n_bins {
+        let est = pipeline.step(bin as u64, session.bin_counts(bin));
+        faults += usize::from(est.numerical_fault);
+        out.extend_from_slice(est.estimate);
+    }
+    Ok((out, faults))
 }

@@ -58,23 +58,49 @@ pub enum SessionError {
     #[error("{}: {what} is missing; a session directory needs manifest.toml and counts.npy (and kinematics.npy for training)", path.display())]
     Missing { path: PathBuf, what: &'static str },
     #[error("{}: cannot read: {source}", path.display())]
-    Io { path: PathBuf, source: std::io::Error },
+    Io {
+        path: PathBuf,
+        source: std::io::Error,
+    },
     #[error("{}: {problem}", path.display())]
     Manifest { path: PathBuf, problem: String },
     #[error("{}: {problem}", path.display())]
     Npy { path: PathBuf, problem: String },
     #[error("{}: negative count {value} at bin {bin}, channel {channel}; counts must be zero or more", path.display())]
-    NegativeCount { path: PathBuf, bin: usize, channel: usize, value: i128 },
+    NegativeCount {
+        path: PathBuf,
+        bin: usize,
+        channel: usize,
+        value: i128,
+    },
     #[error("{}: count {value} at bin {bin}, channel {channel} exceeds 65535, the largest count a bin packet carries", path.display())]
-    CountTooLarge { path: PathBuf, bin: usize, channel: usize, value: i128 },
+    CountTooLarge {
+        path: PathBuf,
+        bin: usize,
+        channel: usize,
+        value: i128,
+    },
     #[error("{}: {value} at bin {bin}, column {column} ({name}) is not finite; fill or cut the gap before training", path.display())]
-    NonFinite { path: PathBuf, bin: usize, column: usize, name: String, value: f64 },
+    NonFinite {
+        path: PathBuf,
+        bin: usize,
+        column: usize,
+        name: String,
+        value: f64,
+    },
     #[error("{}: {problem}", path.display())]
     Shape { path: PathBuf, problem: String },
     #[error("{}: line {line}: {problem}", path.display())]
-    Trials { path: PathBuf, line: usize, problem: String },
+    Trials {
+        path: PathBuf,
+        line: usize,
+        problem: String,
+    },
     #[error("{}: cannot write: {source}", path.display())]
-    Write { path: PathBuf, source: std::io::Error },
+    Write {
+        path: PathBuf,
+        source: std::io::Error,
+    },
 }
 
 #[derive(Debug, Deserialize, Serialize)]
@@ -94,7 +120,10 @@ impl Session {
     /// training then refuses the block with its own error.
     pub fn read(dir: &Path) -> Result<Session, SessionError> {
         if !dir.is_dir() {
-            return Err(SessionError::Missing { path: dir.to_path_buf(), what: "the session directory" });
+            return Err(SessionError::Missing {
+                path: dir.to_path_buf(),
+                what: "the session directory",
+            });
         }
         let manifest_path = dir.join(MANIFEST_FILE);
         let manifest = read_manifest(&manifest_path)?;
@@ -103,7 +132,9 @@ impl Session {
         if n_bins == 0 || n_channels == 0 {
             return Err(SessionError::Shape {
                 path: counts_path,
-                problem: format!("the block is empty (shape ({n_bins}, {n_channels})); it needs at least one bin and one channel"),
+                problem: format!(
+                    "the block is empty (shape ({n_bins}, {n_channels})); it needs at least one bin and one channel"
+                ),
             });
         }
         if n_channels > 16384 {
@@ -140,7 +171,11 @@ impl Session {
             None
         };
         let trials_path = dir.join(TRIALS_FILE);
-        let trials = if trials_path.exists() { Some(read_trials(&trials_path, n_bins)?) } else { None };
+        let trials = if trials_path.exists() {
+            Some(read_trials(&trials_path, n_bins)?)
+        } else {
+            None
+        };
         Ok(Session {
             bin_ms: manifest.bin_ms,
             n_bins,
@@ -157,7 +192,10 @@ impl Session {
     /// Writes the block as a session directory, each file through a temporary
     /// name and a rename so an interrupted write never leaves half a file.
     pub fn write(&self, dir: &Path) -> Result<(), SessionError> {
-        fs::create_dir_all(dir).map_err(|source| SessionError::Write { path: dir.to_path_buf(), source })?;
+        fs::create_dir_all(dir).map_err(|source| SessionError::Write {
+            path: dir.to_path_buf(),
+            source,
+        })?;
         let manifest = ManifestFile {
             version: SESSION_FORMAT_VERSION,
             bin_ms: self.bin_ms,
@@ -172,7 +210,8 @@ impl Session {
             .expect("counts length matches shape");
         write_atomic(&dir.join(COUNTS_FILE), &npy_bytes(&counts))?;
         if let Some(kin) = &self.kinematics {
-            let arr = Array2::from_shape_vec((kin.rows, kin.cols), kin.data.clone()).expect("shape");
+            let arr =
+                Array2::from_shape_vec((kin.rows, kin.cols), kin.data.clone()).expect("shape");
             write_atomic(&dir.join(KINEMATICS_FILE), &npy_bytes(&arr))?;
         }
         if let Some(trials) = &self.trials {
@@ -210,27 +249,42 @@ impl Session {
                 hasher.update(v.to_le_bytes());
             }
         }
-        hasher.finalize().iter().map(|b| format!("{b:02x}")).collect()
+        hasher
+            .finalize()
+            .iter()
+            .map(|b| format!("{b:02x}"))
+            .collect()
     }
 }
 
 fn read_bytes(path: &Path, what: &'static str) -> Result<Vec<u8>, SessionError> {
     match fs::read(path) {
         Ok(b) => Ok(b),
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
-            Err(SessionError::Missing { path: path.to_path_buf(), what })
-        }
-        Err(source) => Err(SessionError::Io { path: path.to_path_buf(), source }),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Err(SessionError::Missing {
+            path: path.to_path_buf(),
+            what,
+        }),
+        Err(source) => Err(SessionError::Io {
+            path: path.to_path_buf(),
+            source,
+        }),
     }
 }
 
 fn read_manifest(path: &Path) -> Result<ManifestFile, SessionError> {
     let bytes = read_bytes(path, "manifest.toml")?;
-    let text = String::from_utf8(bytes)
-        .map_err(|_| SessionError::Manifest { path: path.to_path_buf(), problem: "not UTF-8 text".into() })?;
-    let manifest: ManifestFile = toml::from_str(&text)
-        .map_err(|e| SessionError::Manifest { path: path.to_path_buf(), problem: one_line(&e.to_string()) })?;
-    let bad = |problem: String| SessionError::Manifest { path: path.to_path_buf(), problem };
+    let text = String::from_utf8(bytes).map_err(|_| SessionError::Manifest {
+        path: path.to_path_buf(),
+        problem: "not UTF-8 text".into(),
+    })?;
+    let manifest: ManifestFile = toml::from_str(&text).map_err(|e| SessionError::Manifest {
+        path: path.to_path_buf(),
+        problem: one_line(&e.to_string()),
+    })?;
+    let bad = |problem: String| SessionError::Manifest {
+        path: path.to_path_buf(),
+        problem,
+    };
     if manifest.version != SESSION_FORMAT_VERSION {
         return Err(bad(format!(
             "key version is {}; this build reads session version {SESSION_FORMAT_VERSION}",
@@ -238,10 +292,15 @@ fn read_manifest(path: &Path) -> Result<ManifestFile, SessionError> {
         )));
     }
     if !(manifest.bin_ms.is_finite() && manifest.bin_ms > 0.0) {
-        return Err(bad(format!("key bin_ms is {}; it must be a bin width in milliseconds above zero", manifest.bin_ms)));
+        return Err(bad(format!(
+            "key bin_ms is {}; it must be a bin width in milliseconds above zero",
+            manifest.bin_ms
+        )));
     }
     if manifest.kinematics.is_empty() {
-        return Err(bad("key kinematics is empty; name each column of kinematics.npy".into()));
+        return Err(bad(
+            "key kinematics is empty; name each column of kinematics.npy".into(),
+        ));
     }
     for (i, name) in manifest.kinematics.iter().enumerate() {
         if name.trim().is_empty() {
@@ -256,12 +315,18 @@ fn read_manifest(path: &Path) -> Result<ManifestFile, SessionError> {
 
 /// Turns a multi-line parser message into one line for a terminal.
 fn one_line(s: &str) -> String {
-    s.split('\n').map(str::trim).filter(|l| !l.is_empty()).collect::<Vec<_>>().join(" ")
+    s.split('\n')
+        .map(str::trim)
+        .filter(|l| !l.is_empty())
+        .collect::<Vec<_>>()
+        .join(" ")
 }
 
 fn npy_problem(e: &ReadNpyError) -> String {
     match e {
-        ReadNpyError::WrongNdim(_, got) => format!("array has {got} dimensions; expected 2 (bins × columns)"),
+        ReadNpyError::WrongNdim(_, got) => {
+            format!("array has {got} dimensions; expected 2 (bins × columns)")
+        }
         other => format!("not a readable NumPy file: {other}"),
     }
 }
@@ -287,13 +352,23 @@ fn read_counts(path: &Path) -> Result<(usize, usize, Vec<u16>), SessionError> {
     let found = try_int_dtype!(&bytes[..], i64, i32, i16, i8, u64, u32, u16, u8);
     let arr = match found {
         Some(Ok(arr)) => arr,
-        Some(Err(e)) => return Err(SessionError::Npy { path: path.to_path_buf(), problem: npy_problem(&e) }),
+        Some(Err(e)) => {
+            return Err(SessionError::Npy {
+                path: path.to_path_buf(),
+                problem: npy_problem(&e),
+            });
+        }
         None => {
             let dtype = match Array2::<f64>::read_npy(&bytes[..]) {
                 Ok(_) => "float64".to_string(),
                 Err(_) => match Array2::<f32>::read_npy(&bytes[..]) {
                     Ok(_) => "float32".to_string(),
-                    Err(e) => return Err(SessionError::Npy { path: path.to_path_buf(), problem: npy_problem(&e) }),
+                    Err(e) => {
+                        return Err(SessionError::Npy {
+                            path: path.to_path_buf(),
+                            problem: npy_problem(&e),
+                        });
+                    }
                 },
             };
             return Err(SessionError::Npy {
@@ -308,10 +383,20 @@ fn read_counts(path: &Path) -> Result<(usize, usize, Vec<u16>), SessionError> {
     let mut counts = Vec::with_capacity(n_bins * n_channels);
     for ((bin, channel), &value) in arr.indexed_iter() {
         if value < 0 {
-            return Err(SessionError::NegativeCount { path: path.to_path_buf(), bin, channel, value });
+            return Err(SessionError::NegativeCount {
+                path: path.to_path_buf(),
+                bin,
+                channel,
+                value,
+            });
         }
         if value > i128::from(u16::MAX) {
-            return Err(SessionError::CountTooLarge { path: path.to_path_buf(), bin, channel, value });
+            return Err(SessionError::CountTooLarge {
+                path: path.to_path_buf(),
+                bin,
+                channel,
+                value,
+            });
         }
         counts.push(value as u16);
     }
@@ -330,9 +415,19 @@ fn read_kinematics(path: &Path, names: &[String]) -> Result<Mat, SessionError> {
                     problem: format!("dtype {d} is not float64 or float32"),
                 });
             }
-            Err(e) => return Err(SessionError::Npy { path: path.to_path_buf(), problem: npy_problem(&e) }),
+            Err(e) => {
+                return Err(SessionError::Npy {
+                    path: path.to_path_buf(),
+                    problem: npy_problem(&e),
+                });
+            }
         },
-        Err(e) => return Err(SessionError::Npy { path: path.to_path_buf(), problem: npy_problem(&e) }),
+        Err(e) => {
+            return Err(SessionError::Npy {
+                path: path.to_path_buf(),
+                problem: npy_problem(&e),
+            });
+        }
     };
     let (rows, cols) = arr.dim();
     if cols != names.len() {
@@ -363,17 +458,27 @@ fn read_kinematics(path: &Path, names: &[String]) -> Result<Mat, SessionError> {
 
 fn read_trials(path: &Path, n_bins: usize) -> Result<Vec<Trial>, SessionError> {
     let bytes = read_bytes(path, "trials.csv")?;
-    let mut reader = csv::ReaderBuilder::new().trim(csv::Trim::All).from_reader(&bytes[..]);
+    let mut reader = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .from_reader(&bytes[..]);
     let expected = ["trial", "start_bin", "end_bin", "target_x", "target_y"];
     let header = reader
         .headers()
-        .map_err(|e| SessionError::Trials { path: path.to_path_buf(), line: 1, problem: e.to_string() })?
+        .map_err(|e| SessionError::Trials {
+            path: path.to_path_buf(),
+            line: 1,
+            problem: e.to_string(),
+        })?
         .clone();
     if header.iter().collect::<Vec<_>>() != expected {
         return Err(SessionError::Trials {
             path: path.to_path_buf(),
             line: 1,
-            problem: format!("header is {:?}; expected {}", header.iter().collect::<Vec<_>>(), expected.join(",")),
+            problem: format!(
+                "header is {:?}; expected {}",
+                header.iter().collect::<Vec<_>>(),
+                expected.join(",")
+            ),
         });
     }
     let mut trials = Vec::new();
@@ -415,8 +520,14 @@ fn npy_bytes<T: ndarray_npy::WritableElement>(arr: &Array2<T>) -> Vec<u8> {
 /// Writes `bytes` to `path` through a temporary file in the same directory and
 /// a rename, so readers see the old file or the whole new one, never a part.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), SessionError> {
-    let err = |source| SessionError::Write { path: path.to_path_buf(), source };
-    let file_name = path.file_name().map(|n| n.to_string_lossy().into_owned()).unwrap_or_default();
+    let err = |source| SessionError::Write {
+        path: path.to_path_buf(),
+        source,
+    };
+    let file_name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
     let tmp = path.with_file_name(format!(".{file_name}.partial"));
     let mut file = fs::File::create(&tmp).map_err(err)?;
     file.write_all(bytes).map_err(err)?;

@@ -20,7 +20,12 @@ use crate::session::{Session, Trial};
 
 #[derive(Clone, Debug, PartialEq)]
 pub struct SimOptions {
+    /// Seed of the block: movements and spikes.
     pub seed: u64,
+    /// Seed of the simulated array: each channel's tuning. Blocks with the
+    /// same population seed come from the same channels, as a calibration
+    /// block and a later block of one session do.
+    pub population_seed: u64,
     pub minutes: f64,
     pub n_channels: usize,
     pub bin_ms: f64,
@@ -32,7 +37,15 @@ pub struct SimOptions {
 
 impl Default for SimOptions {
     fn default() -> Self {
-        SimOptions { seed: 1, minutes: 10.0, n_channels: 96, bin_ms: 20.0, target_radius: 10.0, refractory_ms: 2 }
+        SimOptions {
+            seed: 1,
+            population_seed: 1,
+            minutes: 10.0,
+            n_channels: 96,
+            bin_ms: 20.0,
+            target_radius: 10.0,
+            refractory_ms: 2,
+        }
     }
 }
 
@@ -49,14 +62,21 @@ pub struct SimChannels {
 #[derive(Debug, thiserror::Error)]
 pub enum SimError {
     #[error("{key} is {value}; {expected}")]
-    Option { key: &'static str, value: String, expected: &'static str },
+    Option {
+        key: &'static str,
+        value: String,
+        expected: &'static str,
+    },
 }
 
 /// Minimum-jerk position fraction and its time derivative at s ∈ [0, 1].
 fn min_jerk(s: f64) -> (f64, f64) {
     let s2 = s * s;
     let s3 = s2 * s;
-    (10.0 * s3 - 15.0 * s3 * s + 6.0 * s3 * s2, 30.0 * s2 - 60.0 * s3 + 30.0 * s2 * s2)
+    (
+        10.0 * s3 - 15.0 * s3 * s + 6.0 * s3 * s2,
+        30.0 * s2 - 60.0 * s3 + 30.0 * s2 * s2,
+    )
 }
 
 struct Movement {
@@ -79,11 +99,18 @@ fn draw_movement(rng: &mut ChaCha8Rng, total_ms: usize, radius: f64) -> Movement
             vel.push([0.0, 0.0]);
         }
     };
-    let reach = |pos: &mut Vec<[f64; 2]>, vel: &mut Vec<[f64; 2]>, from: [f64; 2], to: [f64; 2], ms: usize| {
+    let reach = |pos: &mut Vec<[f64; 2]>,
+                 vel: &mut Vec<[f64; 2]>,
+                 from: [f64; 2],
+                 to: [f64; 2],
+                 ms: usize| {
         let secs = ms as f64 / 1000.0;
         for k in 0..ms {
             let (f, df) = min_jerk((k as f64 + 0.5) / ms as f64);
-            pos.push([from[0] + (to[0] - from[0]) * f, from[1] + (to[1] - from[1]) * f]);
+            pos.push([
+                from[0] + (to[0] - from[0]) * f,
+                from[1] + (to[1] - from[1]) * f,
+            ]);
             vel.push([(to[0] - from[0]) * df / secs, (to[1] - from[1]) * df / secs]);
         }
     };
@@ -91,13 +118,28 @@ fn draw_movement(rng: &mut ChaCha8Rng, total_ms: usize, radius: f64) -> Movement
         hold(&mut pos, &mut vel, here, rng.random_range(300..600));
         let direction = rng.random_range(0..8) as f64 * PI / 4.0;
         let target = [radius * direction.cos(), radius * direction.sin()];
-        let endpoint = [target[0] + scatter.sample(rng), target[1] + scatter.sample(rng)];
+        let endpoint = [
+            target[0] + scatter.sample(rng),
+            target[1] + scatter.sample(rng),
+        ];
         let start = pos.len();
-        reach(&mut pos, &mut vel, here, endpoint, rng.random_range(500..900));
+        reach(
+            &mut pos,
+            &mut vel,
+            here,
+            endpoint,
+            rng.random_range(500..900),
+        );
         hold(&mut pos, &mut vel, endpoint, rng.random_range(300..500));
         trials.push((start, pos.len(), target));
         let home = [scatter.sample(rng) * 0.5, scatter.sample(rng) * 0.5];
-        reach(&mut pos, &mut vel, endpoint, home, rng.random_range(500..900));
+        reach(
+            &mut pos,
+            &mut vel,
+            endpoint,
+            home,
+            rng.random_range(500..900),
+        );
         here = home;
     }
     pos.truncate(total_ms);
@@ -115,7 +157,10 @@ fn draw_channels(rng: &mut ChaCha8Rng, n: usize) -> SimChannels {
         let depth: f64 = rng.random_range(0.4..1.4); // ln-rate change at peak speed
         let preferred: f64 = rng.random_range(0.0..2.0 * PI);
         log_baseline.push(baseline_hz.ln());
-        beta.push([depth / peak_speed * preferred.cos(), depth / peak_speed * preferred.sin()]);
+        beta.push([
+            depth / peak_speed * preferred.cos(),
+            depth / peak_speed * preferred.sin(),
+        ]);
     }
     SimChannels { log_baseline, beta }
 }
@@ -125,20 +170,35 @@ fn draw_channels(rng: &mut ChaCha8Rng, n: usize) -> SimChannels {
 /// true tuning.
 pub fn simulate(options: &SimOptions) -> Result<(Session, SimChannels), SimError> {
     if !(options.minutes.is_finite() && options.minutes > 0.0 && options.minutes <= 24.0 * 60.0) {
-        return Err(SimError::Option { key: "minutes", value: options.minutes.to_string(), expected: "between 0 and 1440" });
+        return Err(SimError::Option {
+            key: "minutes",
+            value: options.minutes.to_string(),
+            expected: "between 0 and 1440",
+        });
     }
     if options.n_channels == 0 || options.n_channels > 16384 {
-        return Err(SimError::Option { key: "channels", value: options.n_channels.to_string(), expected: "1 to 16384" });
+        return Err(SimError::Option {
+            key: "channels",
+            value: options.n_channels.to_string(),
+            expected: "1 to 16384",
+        });
     }
     let bin_ms_int = options.bin_ms.round() as usize;
     if options.bin_ms.fract() != 0.0 || bin_ms_int == 0 || bin_ms_int > 1000 {
-        return Err(SimError::Option { key: "bin_ms", value: options.bin_ms.to_string(), expected: "a whole number of ms from 1 to 1000" });
+        return Err(SimError::Option {
+            key: "bin_ms",
+            value: options.bin_ms.to_string(),
+            expected: "a whole number of ms from 1 to 1000",
+        });
     }
+    let channels = draw_channels(
+        &mut ChaCha8Rng::seed_from_u64(options.population_seed),
+        options.n_channels,
+    );
     let mut rng = ChaCha8Rng::seed_from_u64(options.seed);
     let n_bins = ((options.minutes * 60_000.0) as usize) / bin_ms_int;
     let total_ms = n_bins * bin_ms_int;
     let movement = draw_movement(&mut rng, total_ms, options.target_radius);
-    let channels = draw_channels(&mut rng, options.n_channels);
     let n = options.n_channels;
 
     let mut counts = vec![0u16; n_bins * n];
@@ -193,13 +253,15 @@ pub fn simulate(options: &SimOptions) -> Result<(Session, SimChannels), SimError
         n_bins,
         n_channels: n,
         counts,
-        kinematic_names: ["pos_x", "pos_y", "vel_x", "vel_y"].map(String::from).to_vec(),
+        kinematic_names: ["pos_x", "pos_y", "vel_x", "vel_y"]
+            .map(String::from)
+            .to_vec(),
         kinematics: Some(kin),
         trials: Some(trials),
         channel_labels: None,
         notes: Some(format!(
-            "synthetic center-out block: seed {}, {} channels, {} min, positions in cm, velocities in cm/s",
-            options.seed, n, options.minutes
+            "synthetic center-out block: seed {}, population {}, {} channels, {} min, positions in cm, velocities in cm/s",
+            options.seed, options.population_seed, n, options.minutes
         )),
     };
     Ok((session, channels))

@@ -25,11 +25,23 @@ pub struct CountGram {
 
 impl CountGram {
     pub fn new(dim: usize) -> CountGram {
-        CountGram { dim, diagonal_only: false, upper: vec![0; dim * dim], sums: vec![0; dim], n_rows: 0 }
+        CountGram {
+            dim,
+            diagonal_only: false,
+            upper: vec![0; dim * dim],
+            sums: vec![0; dim],
+            n_rows: 0,
+        }
     }
 
     pub fn new_diagonal(dim: usize) -> CountGram {
-        CountGram { dim, diagonal_only: true, upper: vec![0; dim], sums: vec![0; dim], n_rows: 0 }
+        CountGram {
+            dim,
+            diagonal_only: true,
+            upper: vec![0; dim],
+            sums: vec![0; dim],
+            n_rows: 0,
+        }
     }
 
     /// Adds one row given as its non-zero entries, in increasing index order.
@@ -77,7 +89,10 @@ impl CountGram {
 
     /// The full symmetric Σ c cᵀ as f64, row-major.
     pub fn to_f64_symmetric(&self) -> Vec<f64> {
-        assert!(!self.diagonal_only, "a diagonal-only gram has no off-diagonal sums");
+        assert!(
+            !self.diagonal_only,
+            "a diagonal-only gram has no off-diagonal sums"
+        );
         let n = self.dim;
         let mut out = vec![0.0; n * n];
         for i in 0..n {
@@ -97,7 +112,11 @@ impl CountGram {
 
     /// Σ c_i², exact.
     pub fn square_sum(&self, i: usize) -> u64 {
-        if self.diagonal_only { self.upper[i] } else { self.upper[i * self.dim + i] }
+        if self.diagonal_only {
+            self.upper[i]
+        } else {
+            self.upper[i * self.dim + i]
+        }
     }
 }
 
@@ -111,7 +130,11 @@ pub struct CrossSums {
 
 impl CrossSums {
     pub fn new(rows: usize, cols: usize) -> CrossSums {
-        CrossSums { rows, cols, data: vec![0.0; rows * cols] }
+        CrossSums {
+            rows,
+            cols,
+            data: vec![0.0; rows * cols],
+        }
     }
 
     pub fn add_outer(&mut self, a: &[f64], b: &[f64]) {

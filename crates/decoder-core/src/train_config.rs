@@ -6,8 +6,10 @@
 
 use serde::Deserialize;
 
-use crate::kalman::train::{CONSTANT, CountNormalisation, KalmanFitOptions, QForm, SteadyStateOptions};
 use crate::kalman::steady::{DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE};
+use crate::kalman::train::{
+    CONSTANT, CountNormalisation, KalmanFitOptions, QForm, SteadyStateOptions,
+};
 use crate::wiener::WienerFitOptions;
 
 #[derive(Debug, Default, Deserialize)]
@@ -52,7 +54,11 @@ pub struct TrainConfig {
 
 impl Default for TrainConfig {
     fn default() -> Self {
-        TrainConfig { kalman: KalmanFitOptions::default(), wiener: WienerFitOptions::default(), folds: 5 }
+        TrainConfig {
+            kalman: KalmanFitOptions::default(),
+            wiener: WienerFitOptions::default(),
+            folds: 5,
+        }
     }
 }
 
@@ -67,9 +73,18 @@ impl TrainConfig {
     /// Parses and validates TOML text; `source_name` (usually the file path)
     /// prefixes every message.
     pub fn from_toml(text: &str, source_name: &str) -> Result<TrainConfig, ConfigError> {
-        let err = |message: String| ConfigError { source_name: source_name.to_string(), message };
+        let err = |message: String| ConfigError {
+            source_name: source_name.to_string(),
+            message,
+        };
         let raw: RawTrainConfig = toml::from_str(text).map_err(|e| {
-            err(e.to_string().split('\n').map(str::trim).filter(|l| !l.is_empty()).collect::<Vec<_>>().join(" "))
+            err(e
+                .to_string()
+                .split('\n')
+                .map(str::trim)
+                .filter(|l| !l.is_empty())
+                .collect::<Vec<_>>()
+                .join(" "))
         })?;
         let mut cfg = TrainConfig::default();
         if let Some(lag) = raw.lag_bins {
@@ -85,7 +100,9 @@ impl TrainConfig {
         if let Some(folds) = raw.folds {
             let folds = non_negative(folds, "folds").map_err(err)?;
             if folds < 2 {
-                return Err(err(format!("key folds is {folds}; cross-validation needs at least 2")));
+                return Err(err(format!(
+                    "key folds is {folds}; cross-validation needs at least 2"
+                )));
             }
             cfg.folds = folds;
         }
@@ -113,7 +130,10 @@ impl TrainConfig {
         }
         for o in &cfg.kalman.outputs {
             if !cfg.kalman.state.contains(o) || o == CONSTANT {
-                return Err(err(format!("key kalman.outputs: {o:?} is not a kinematic component of kalman.state {:?}", cfg.kalman.state)));
+                return Err(err(format!(
+                    "key kalman.outputs: {o:?} is not a kinematic component of kalman.state {:?}",
+                    cfg.kalman.state
+                )));
             }
         }
         if let Some(n) = k.count_normalisation {
@@ -132,7 +152,11 @@ impl TrainConfig {
             cfg.kalman.q_form = match q.as_str() {
                 "full" => QForm::Full,
                 "diagonal" => QForm::Diagonal,
-                other => return Err(err(format!("key kalman.q_form is {other:?}; expected \"full\" or \"diagonal\""))),
+                other => {
+                    return Err(err(format!(
+                        "key kalman.q_form is {other:?}; expected \"full\" or \"diagonal\""
+                    )));
+                }
             };
         }
         if let Some(p) = k.physical_coupling {
@@ -140,7 +164,9 @@ impl TrainConfig {
         }
         let tolerance = k.steady_state_tolerance.unwrap_or(DEFAULT_TOLERANCE);
         if !(tolerance.is_finite() && tolerance > 0.0) {
-            return Err(err(format!("key kalman.steady_state_tolerance is {tolerance}; it must be above zero")));
+            return Err(err(format!(
+                "key kalman.steady_state_tolerance is {tolerance}; it must be above zero"
+            )));
         }
         let max_iterations = match k.steady_state_max_iterations {
             Some(v) => non_negative(v, "kalman.steady_state_max_iterations").map_err(err)?,
@@ -150,16 +176,24 @@ impl TrainConfig {
             return Err(err("key kalman.steady_state_max_iterations is 0".into()));
         }
         if k.steady_state.unwrap_or(false) {
-            cfg.kalman.steady_state = Some(SteadyStateOptions { tolerance, max_iterations });
+            cfg.kalman.steady_state = Some(SteadyStateOptions {
+                tolerance,
+                max_iterations,
+            });
         }
         if let Some(taps) = raw.wiener.taps {
             let taps = non_negative(taps, "wiener.taps").map_err(err)?;
             if taps == 0 {
-                return Err(err("key wiener.taps is 0; the filter needs at least the current bin".into()));
+                return Err(err(
+                    "key wiener.taps is 0; the filter needs at least the current bin".into(),
+                ));
             }
             cfg.wiener.taps = taps;
         }
-        cfg.wiener.outputs = raw.wiener.outputs.unwrap_or_else(|| cfg.kalman.outputs.clone());
+        cfg.wiener.outputs = raw
+            .wiener
+            .outputs
+            .unwrap_or_else(|| cfg.kalman.outputs.clone());
         Ok(cfg)
     }
 
@@ -170,7 +204,10 @@ impl TrainConfig {
     }
 
     pub fn override_ridge(&mut self, ridge: f64) -> Result<(), ConfigError> {
-        check_ridge(ridge).map_err(|message| ConfigError { source_name: "--ridge".into(), message })?;
+        check_ridge(ridge).map_err(|message| ConfigError {
+            source_name: "--ridge".into(),
+            message,
+        })?;
         self.kalman.ridge = ridge;
         self.wiener.ridge = ridge;
         Ok(())
@@ -185,7 +222,9 @@ fn check_ridge(ridge: f64) -> Result<(), String> {
     if ridge.is_finite() && ridge >= 0.0 {
         Ok(())
     } else {
-        Err(format!("ridge is {ridge}; it must be zero (no penalty) or more"))
+        Err(format!(
+            "ridge is {ridge}; it must be zero (no penalty) or more"
+        ))
     }
 }
 
@@ -195,7 +234,10 @@ mod tests {
 
     #[test]
     fn empty_file_gives_defaults() {
-        assert_eq!(TrainConfig::from_toml("", "t").unwrap(), TrainConfig::default());
+        assert_eq!(
+            TrainConfig::from_toml("", "t").unwrap(),
+            TrainConfig::default()
+        );
     }
 
     #[test]
@@ -207,19 +249,31 @@ mod tests {
 
     #[test]
     fn velocity_only_state_keeps_velocity_outputs() {
-        let c = TrainConfig::from_toml("[kalman]\nstate = [\"vel_x\", \"vel_y\", \"1\"]\n", "t").unwrap();
+        let c = TrainConfig::from_toml("[kalman]\nstate = [\"vel_x\", \"vel_y\", \"1\"]\n", "t")
+            .unwrap();
         assert_eq!(c.kalman.outputs, vec!["vel_x", "vel_y"]);
     }
 
     #[test]
     fn negative_lag_and_bad_ridge_are_refused() {
-        assert!(TrainConfig::from_toml("lag_bins = -1", "t").unwrap_err().to_string().contains("lag_bins"));
-        assert!(TrainConfig::from_toml("ridge = -2.0", "t").unwrap_err().to_string().contains("ridge"));
+        assert!(
+            TrainConfig::from_toml("lag_bins = -1", "t")
+                .unwrap_err()
+                .to_string()
+                .contains("lag_bins")
+        );
+        assert!(
+            TrainConfig::from_toml("ridge = -2.0", "t")
+                .unwrap_err()
+                .to_string()
+                .contains("ridge")
+        );
     }
 
     #[test]
     fn unknown_normalisation_lists_the_choices() {
-        let e = TrainConfig::from_toml("[kalman]\ncount_normalisation = \"zscore\"\n", "t").unwrap_err();
+        let e = TrainConfig::from_toml("[kalman]\ncount_normalisation = \"zscore\"\n", "t")
+            .unwrap_err();
         assert!(e.to_string().contains("z-scored"), "{e}");
     }
 }

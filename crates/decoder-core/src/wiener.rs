@@ -28,7 +28,12 @@ pub struct WienerFitOptions {
 
 impl Default for WienerFitOptions {
     fn default() -> Self {
-        WienerFitOptions { outputs: vec!["vel_x".into(), "vel_y".into()], taps: 5, lag_bins: 0, ridge: 1.0 }
+        WienerFitOptions {
+            outputs: vec!["vel_x".into(), "vel_y".into()],
+            taps: 5,
+            lag_bins: 0,
+            ridge: 1.0,
+        }
     }
 }
 
@@ -60,7 +65,11 @@ impl WienerModel {
             ));
         }
         if self.mean_counts.len() != self.n_channels {
-            return Err(format!("mean_counts has {} entries, expected {}", self.mean_counts.len(), self.n_channels));
+            return Err(format!(
+                "mean_counts has {} entries, expected {}",
+                self.mean_counts.len(),
+                self.n_channels
+            ));
         }
         if !self.weights.is_finite() || self.mean_counts.iter().any(|v| !v.is_finite()) {
             return Err("a weight is not finite".into());
@@ -86,7 +95,14 @@ impl WienerStats {
         }
     }
 
-    pub fn accumulate(&mut self, session: &Session, output_cols: &[usize], taps: usize, lag: usize, segment: Range<usize>) {
+    pub fn accumulate(
+        &mut self,
+        session: &Session,
+        output_cols: &[usize],
+        taps: usize,
+        lag: usize,
+        segment: Range<usize>,
+    ) {
         let kin = session.kinematics.as_ref().expect("checked by caller");
         let n = session.n_channels;
         let mut nz = Vec::new();
@@ -132,15 +148,20 @@ pub fn output_columns(session: &Session, outputs: &[String]) -> Result<Vec<usize
     outputs
         .iter()
         .map(|name| {
-            session.kinematic_index(name).ok_or_else(|| TrainError::UnknownKinematic {
-                name: name.clone(),
-                available: session.kinematic_names.clone(),
-            })
+            session
+                .kinematic_index(name)
+                .ok_or_else(|| TrainError::UnknownKinematic {
+                    name: name.clone(),
+                    available: session.kinematic_names.clone(),
+                })
         })
         .collect()
 }
 
-pub fn fit_wiener(session: &Session, options: &WienerFitOptions) -> Result<WienerModel, TrainError> {
+pub fn fit_wiener(
+    session: &Session,
+    options: &WienerFitOptions,
+) -> Result<WienerModel, TrainError> {
     fit_wiener_segments(session, options, &[0..session.n_bins])
 }
 
@@ -150,7 +171,10 @@ pub fn fit_wiener_segments(
     segments: &[Range<usize>],
 ) -> Result<WienerModel, TrainError> {
     if options.taps == 0 {
-        return Err(TrainError::Option { key: "wiener.taps", problem: "must be at least 1".into() });
+        return Err(TrainError::Option {
+            key: "wiener.taps",
+            problem: "must be at least 1".into(),
+        });
     }
     let cols = output_columns(session, &options.outputs)?;
     let mut stats = WienerStats::new(session.n_channels, options.taps, cols.len());
@@ -160,7 +184,11 @@ pub fn fit_wiener_segments(
     fit_wiener_from_stats(&stats, options, session.n_channels)
 }
 
-pub fn fit_wiener_from_stats(stats: &WienerStats, options: &WienerFitOptions, n_channels: usize) -> Result<WienerModel, TrainError> {
+pub fn fit_wiener_from_stats(
+    stats: &WienerStats,
+    options: &WienerFitOptions,
+    n_channels: usize,
+) -> Result<WienerModel, TrainError> {
     let f = stats.gram.dim;
     let t = stats.gram.n_rows;
     if t < 2 {
@@ -189,10 +217,13 @@ pub fn fit_wiener_from_stats(stats: &WienerStats, options: &WienerFitOptions, n_
     }
     let chol = nalgebra::Cholesky::new(g).ok_or_else(|| TrainError::Degenerate {
         what: "Wiener weights",
-        problem: "the lagged counts are collinear (silent or duplicated channels); raise ridge".into(),
+        problem: "the lagged counts are collinear (silent or duplicated channels); raise ridge"
+            .into(),
     })?;
     let w = chol.solve(&rhs).transpose();
-    let mean_counts = (0..n_channels).map(|ch| stats.gram.sums[ch] as f64 / t as f64).collect();
+    let mean_counts = (0..n_channels)
+        .map(|ch| stats.gram.sums[ch] as f64 / t as f64)
+        .collect();
     let model = WienerModel {
         outputs: options.outputs.clone(),
         taps: options.taps,
@@ -200,7 +231,10 @@ pub fn fit_wiener_from_stats(stats: &WienerStats, options: &WienerFitOptions, n_
         weights: Mat::from_dmatrix(&w),
         mean_counts,
     };
-    model.validate().map_err(|problem| TrainError::Degenerate { what: "Wiener weights", problem })?;
+    model.validate().map_err(|problem| TrainError::Degenerate {
+        what: "Wiener weights",
+        problem,
+    })?;
     Ok(model)
 }
 
@@ -257,7 +291,8 @@ impl WienerFilter {
     /// A missing bin enters as the training mean (no information).
     pub fn predict_only(&mut self) {
         self.newest = (self.newest + 1) % self.taps;
-        self.history[self.newest * self.n..(self.newest + 1) * self.n].copy_from_slice(&self.mean_counts);
+        self.history[self.newest * self.n..(self.newest + 1) * self.n]
+            .copy_from_slice(&self.mean_counts);
         self.recompute();
     }
 
@@ -268,7 +303,10 @@ impl WienerFilter {
             let mut acc = row[0];
             for lag in 0..self.taps {
                 let slot = (self.newest + self.taps - lag) % self.taps;
-                acc += linalg::dot(&row[1 + lag * n..1 + (lag + 1) * n], &self.history[slot * n..(slot + 1) * n]);
+                acc += linalg::dot(
+                    &row[1 + lag * n..1 + (lag + 1) * n],
+                    &self.history[slot * n..(slot + 1) * n],
+                );
             }
             *est = acc;
         }

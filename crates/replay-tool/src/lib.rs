@@ -1,1 +1,107 @@
-pub fn x(){}
+//! The offline companion of `decoderd`: simulate blocks, train and evaluate
+//! decoders, replay sessions through the daemon's own decode pipeline, and
+//! inspect model files.
+//!
+//! Every verb returns `anyhow::Result`; the error is printed once, here, with
+//! its context chain on one line. A [`CheckFailed`] anywhere in the chain
+//! means "the run worked but the thing checked did not pass" (exit 1);
+//! anything else is a user error (exit 2).
+
+pub mod cmd;
+pub mod output;
+pub mod plot;
+pub mod progress;
+
+use std::path::PathBuf;
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+/// A check that ran and did not pass.
+#[derive(Debug, thiserror::Error)]
+#[error("{0}")]
+pub struct CheckFailed(pub String);
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "replay-tool",
+    version,
+    about = "Simulate, train, evaluate and replay velocity decoders offline"
+)]
+pub struct Cli {
+    /// More log output (repeat for more).
+    #[arg(short, long, global = true, action = clap::ArgAction::Count)]
+    pub verbose: u8,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Write a synthetic center-out reaching block as a session directory.
+    Simulate(cmd::simulate::Args),
+    /// Train a decoder from a calibration block and write a model file.
+    Train(cmd::train::Args),
+    /// Cross-validate decoders on a block and print (or write) the scores.
+    Evaluate(cmd::evaluate::Args),
+    /// Decode every bin of a session through the daemon's decode pipeline.
+    Replay(cmd::replay::Args),
+    /// Inspect model files.
+    Model {
+        #[command(subcommand)]
+        command: ModelCommand,
+    },
+    /// Run simulate → train → evaluate → replay end to end on a built-in demo.
+    Demo(cmd::demo::Args),
+}
+
+#[derive(Debug, Subcommand)]
+pub enum ModelCommand {
+    /// Print a model's parameters and provenance.
+    Show {
+        /// The model file.
+        model: PathBuf,
+        /// Print the SPEC §4 JSON export instead of a summary.
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+pub fn init_logging(verbose: u8) {
+    let default = match verbose {
+        0 => "warn",
+        1 => "info",
+        _ => "debug",
+    };
+    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default));
+    let _ = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .try_init();
+}
+
+pub fn run(cli: Cli) -> ExitCode {
+    let result = match cli.command {
+        Command::Simulate(a) => cmd::simulate::run(&a),
+        Command::Train(a) => cmd::train::run(&a),
+        Command::Evaluate(a) => cmd::evaluate::run(&a),
+        Command::Replay(a) => cmd::replay::run(&a),
+        Command::Model {
+            command: ModelCommand::Show { model, json },
+        } => cmd::model_show::run(&model, json),
+        Command::Demo(a) => cmd::demo::run(&a),
+    };
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(err) => {
+            let chain: Vec<String> = err.chain().map(|e| e.to_string()).collect();
+            eprintln!("replay-tool: {}", chain.join(": "));
+            if err.chain().any(|e| e.is::<CheckFailed>()) {
+                ExitCode::from(1)
+            } else {
+                ExitCode::from(2)
+            }
+        }
+    }
+}

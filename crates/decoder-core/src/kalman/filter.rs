@@ -200,7 +200,8 @@ impl KalmanFilter {
         for r in 0..d {
             let row = &self.g[r * self.n..(r + 1) * self.n];
             let s_row = &self.s[r * d..(r + 1) * d];
-            self.info[r] = (linalg::dot(row, &self.counts_f64) - self.g0[r]) - linalg::dot(s_row, &self.x_prior);
+            self.info[r] = (linalg::dot(row, &self.counts_f64) - self.g0[r])
+                - linalg::dot(s_row, &self.x_prior);
         }
         // lhs = I + P⁻ S ; solve lhs · P = P⁻.
         linalg::mat_mul(&self.p_prior, &self.s, d, &mut self.lhs);
@@ -235,7 +236,14 @@ impl KalmanFilter {
     fn predict_into_prior(&mut self) {
         let d = self.d;
         linalg::mat_vec(&self.a, d, d, &self.x, &mut self.x_prior);
-        linalg::sandwich_add(&self.a, &self.p, &self.w, d, &mut self.tmp, &mut self.p_prior);
+        linalg::sandwich_add(
+            &self.a,
+            &self.p,
+            &self.w,
+            d,
+            &mut self.tmp,
+            &mut self.p_prior,
+        );
         linalg::symmetrize(&mut self.p_prior, d);
     }
 }

@@ -79,7 +79,11 @@ pub struct KalmanModel {
 #[derive(Debug, thiserror::Error)]
 pub enum KalmanError {
     #[error("model parameter {name} has shape {got}, expected {want}")]
-    Shape { name: &'static str, got: String, want: String },
+    Shape {
+        name: &'static str,
+        got: String,
+        want: String,
+    },
     #[error("model parameter {name} has a value that is not finite")]
     NonFinite { name: &'static str },
     #[error("count_scale of channel {channel} is {value}; scales must be finite and above zero")]
@@ -93,7 +97,11 @@ pub enum KalmanError {
     #[error(
         "the steady-state recursion did not converge in {iterations} iterations (last relative change {change:.3e}, tolerance {tolerance:.1e}); raise steady_state_max_iterations or decode with the full filter"
     )]
-    NotConverged { iterations: usize, change: f64, tolerance: f64 },
+    NotConverged {
+        iterations: usize,
+        change: f64,
+        tolerance: f64,
+    },
     #[error("the covariance update became singular; the model's W or Q is degenerate")]
     Singular,
 }
@@ -112,10 +120,12 @@ impl KalmanModel {
         self.outputs
             .iter()
             .map(|name| {
-                self.state
-                    .iter()
-                    .position(|s| s == name)
-                    .ok_or_else(|| KalmanError::UnknownOutput { name: name.clone(), state: self.state.clone() })
+                self.state.iter().position(|s| s == name).ok_or_else(|| {
+                    KalmanError::UnknownOutput {
+                        name: name.clone(),
+                        state: self.state.clone(),
+                    }
+                })
             })
             .collect()
     }
@@ -146,7 +156,11 @@ impl KalmanModel {
             ObservationNoise::Full(q) => shape("Q", q, n, n)?,
             ObservationNoise::Diagonal(diag) => {
                 if diag.len() != n {
-                    return Err(KalmanError::Shape { name: "Q", got: format!("diagonal of {}", diag.len()), want: format!("{n}") });
+                    return Err(KalmanError::Shape {
+                        name: "Q",
+                        got: format!("diagonal of {}", diag.len()),
+                        want: format!("{n}"),
+                    });
                 }
                 if let Some(channel) = diag.iter().position(|v| !(v.is_finite() && *v > 0.0)) {
                     return Err(KalmanError::QNotPositiveDefinite { channel });
@@ -155,7 +169,11 @@ impl KalmanModel {
         }
         let vec_check = |name: &'static str, v: &[f64], len: usize| {
             if v.len() != len {
-                return Err(KalmanError::Shape { name, got: format!("{}", v.len()), want: format!("{len}") });
+                return Err(KalmanError::Shape {
+                    name,
+                    got: format!("{}", v.len()),
+                    want: format!("{len}"),
+                });
             }
             if v.iter().any(|x| !x.is_finite()) {
                 return Err(KalmanError::NonFinite { name });
@@ -166,7 +184,10 @@ impl KalmanModel {
         vec_check("count_offset", &self.count_offset, n)?;
         vec_check("count_scale", &self.count_scale, n)?;
         if let Some(channel) = self.count_scale.iter().position(|s| *s <= 0.0) {
-            return Err(KalmanError::BadScale { channel, value: self.count_scale[channel] });
+            return Err(KalmanError::BadScale {
+                channel,
+                value: self.count_scale[channel],
+            });
         }
         if let Some(steady) = &self.steady {
             shape("steady_state.gain", &steady.gain, d, n)?;

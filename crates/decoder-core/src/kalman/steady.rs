@@ -16,7 +16,11 @@ pub const DEFAULT_MAX_ITERATIONS: usize = 10_000;
 
 /// Iterates `P⁻ = A P Aᵀ + W`, `P = (I + P⁻ S)⁻¹ P⁻` until the largest change
 /// of P, relative to P's largest entry, is at most `tolerance`.
-pub fn steady_state_gain(model: &KalmanModel, tolerance: f64, max_iterations: usize) -> Result<SteadyGain, KalmanError> {
+pub fn steady_state_gain(
+    model: &KalmanModel,
+    tolerance: f64,
+    max_iterations: usize,
+) -> Result<SteadyGain, KalmanError> {
     model.validate()?;
     let d = model.state_dim();
     let n = model.n_channels();
@@ -39,8 +43,15 @@ pub fn steady_state_gain(model: &KalmanModel, tolerance: f64, max_iterations: us
             return Err(KalmanError::Singular);
         }
         linalg::symmetrize(&mut next, d);
-        let scale = next.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(f64::MIN_POSITIVE);
-        change = next.iter().zip(&p).fold(0.0f64, |m, (a, b)| m.max((a - b).abs())) / scale;
+        let scale = next
+            .iter()
+            .fold(0.0f64, |m, v| m.max(v.abs()))
+            .max(f64::MIN_POSITIVE);
+        change = next
+            .iter()
+            .zip(&p)
+            .fold(0.0f64, |m, (a, b)| m.max((a - b).abs()))
+            / scale;
         p.copy_from_slice(&next);
         if change <= tolerance {
             // K = P HᵀQ⁻¹ (d × N, normalised counts).
@@ -56,12 +67,20 @@ pub fn steady_state_gain(model: &KalmanModel, tolerance: f64, max_iterations: us
             }
             return Ok(SteadyGain {
                 gain,
-                posterior_cov: Mat { rows: d, cols: d, data: p },
+                posterior_cov: Mat {
+                    rows: d,
+                    cols: d,
+                    data: p,
+                },
                 tolerance,
                 iterations: iteration,
                 max_iterations,
             });
         }
     }
-    Err(KalmanError::NotConverged { iterations: max_iterations, change, tolerance })
+    Err(KalmanError::NotConverged {
+        iterations: max_iterations,
+        change,
+        tolerance,
+    })
 }

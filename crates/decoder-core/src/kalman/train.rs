@@ -15,10 +15,10 @@ use serde::{Deserialize, Serialize};
 
 use super::model::{KalmanModel, ObservationNoise};
 use super::steady::steady_state_gain;
+use crate::TrainError;
 use crate::linalg::{self, Mat};
 use crate::session::Session;
 use crate::stats::{CountGram, CrossSums, nonzero_counts};
-use crate::TrainError;
 
 /// The name of the constant state component.
 pub const CONSTANT: &str = "1";
@@ -65,7 +65,9 @@ pub struct KalmanFitOptions {
 impl Default for KalmanFitOptions {
     fn default() -> Self {
         KalmanFitOptions {
-            state: ["pos_x", "pos_y", "vel_x", "vel_y", CONSTANT].map(String::from).to_vec(),
+            state: ["pos_x", "pos_y", "vel_x", "vel_y", CONSTANT]
+                .map(String::from)
+                .to_vec(),
             outputs: ["vel_x", "vel_y"].map(String::from).to_vec(),
             lag_bins: 0,
             ridge: 1.0,
@@ -102,10 +104,13 @@ pub fn state_sources(session: &Session, state: &[String]) -> Result<Vec<StateSou
             if name == CONSTANT {
                 Ok(StateSource::Constant)
             } else {
-                session.kinematic_index(name).map(StateSource::Column).ok_or_else(|| TrainError::UnknownKinematic {
-                    name: name.clone(),
-                    available: session.kinematic_names.clone(),
-                })
+                session
+                    .kinematic_index(name)
+                    .map(StateSource::Column)
+                    .ok_or_else(|| TrainError::UnknownKinematic {
+                        name: name.clone(),
+                        available: session.kinematic_names.clone(),
+                    })
             }
         })
         .collect()
@@ -161,7 +166,13 @@ impl KalmanStats {
 
     /// Adds the bins of `segment`: observation pairs (counts t, state t+lag)
     /// and state transitions (t, t+1) that both lie inside it.
-    pub fn accumulate(&mut self, session: &Session, sources: &[StateSource], lag: usize, segment: Range<usize>) {
+    pub fn accumulate(
+        &mut self,
+        session: &Session,
+        sources: &[StateSource],
+        lag: usize,
+        segment: Range<usize>,
+    ) {
         let d = self.d;
         let mut x = vec![0.0; d];
         let mut x_next = vec![0.0; d];
@@ -223,7 +234,10 @@ impl KalmanStats {
 }
 
 /// Checks the options against the block before any pass over it.
-pub fn check_options(session: &Session, options: &KalmanFitOptions) -> Result<Vec<StateSource>, TrainError> {
+pub fn check_options(
+    session: &Session,
+    options: &KalmanFitOptions,
+) -> Result<Vec<StateSource>, TrainError> {
     if session.kinematics.is_none() {
         return Err(TrainError::NoKinematics);
     }
@@ -240,7 +254,10 @@ pub fn check_options(session: &Session, options: &KalmanFitOptions) -> Result<Ve
 }
 
 /// Fits on the whole block.
-pub fn fit_kalman(session: &Session, options: &KalmanFitOptions) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
+pub fn fit_kalman(
+    session: &Session,
+    options: &KalmanFitOptions,
+) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
     fit_kalman_segments(session, options, &[0..session.n_bins])
 }
 
@@ -257,7 +274,12 @@ pub fn fit_kalman_segments(
     fit_from_stats(&stats, options, session.bin_ms)
 }
 
-fn solve_spd(m: &DMatrix<f64>, rhs: &DMatrix<f64>, state: &[String], what: &'static str) -> Result<DMatrix<f64>, TrainError> {
+fn solve_spd(
+    m: &DMatrix<f64>,
+    rhs: &DMatrix<f64>,
+    state: &[String],
+    what: &'static str,
+) -> Result<DMatrix<f64>, TrainError> {
     match nalgebra::Cholesky::new(m.clone()) {
         Some(c) => Ok(c.solve(rhs)),
         None => {
@@ -287,7 +309,10 @@ pub fn fit_from_stats(
     let (d, n) = (stats.d, stats.n);
     let t_obs = stats.gram.n_rows;
     if t_obs < (d as u64) + 2 || stats.n_transitions < (d as u64) + 2 {
-        return Err(TrainError::TooFewBins { bins: t_obs, needed: d as u64 + 2 });
+        return Err(TrainError::TooFewBins {
+            bins: t_obs,
+            needed: d as u64 + 2,
+        });
     }
     let t = t_obs as f64;
     let constant_idx = options.state.iter().position(|s| s == CONSTANT);
@@ -348,12 +373,14 @@ pub fn fit_from_stats(
             for i in 0..n {
                 for j in i..n {
                     // Σ y'ᵢ y'ⱼ with y' = (y − o)/s
-                    let syy = (raw[i * n + j] - offset[i] * sy[j] as f64 - sy[i] as f64 * offset[j]
-                        + t * offset[i] * offset[j])
-                        / (scale[i] * scale[j]);
+                    let syy =
+                        (raw[i * n + j] - offset[i] * sy[j] as f64 - sy[i] as f64 * offset[j]
+                            + t * offset[i] * offset[j])
+                            / (scale[i] * scale[j]);
                     let mut v = syy;
                     for c in 0..d {
-                        v -= h[(i, c)] * syx[(j, c)] + syx[(i, c)] * h[(j, c)] - h_sxx[(i, c)] * h[(j, c)];
+                        v -= h[(i, c)] * syx[(j, c)] + syx[(i, c)] * h[(j, c)]
+                            - h_sxx[(i, c)] * h[(j, c)];
                     }
                     v /= t;
                     q.set(i, j, v);
@@ -373,7 +400,8 @@ pub fn fit_from_stats(
             let mut diag = vec![0.0; n];
             for i in 0..n {
                 let s = stats.gram.sums[i] as f64;
-                let syy = (stats.gram.square_sum(i) as f64 - 2.0 * offset[i] * s + t * offset[i] * offset[i])
+                let syy = (stats.gram.square_sum(i) as f64 - 2.0 * offset[i] * s
+                    + t * offset[i] * offset[i])
                     / (scale[i] * scale[i]);
                 let mut v = syy;
                 for c in 0..d {
@@ -401,7 +429,10 @@ pub fn fit_from_stats(
         let dt = bin_ms / 1000.0;
         for (i, name) in options.state.iter().enumerate() {
             if let Some(axis) = name.strip_prefix("pos_")
-                && let Some(v) = options.state.iter().position(|s| s == &format!("vel_{axis}"))
+                && let Some(v) = options
+                    .state
+                    .iter()
+                    .position(|s| s == &format!("vel_{axis}"))
             {
                 a.row_mut(i).fill(0.0);
                 a[(i, i)] = 1.0;
@@ -410,7 +441,8 @@ pub fn fit_from_stats(
         }
     }
     let n_tr = stats.n_transitions as f64;
-    let mut w = (&s22 - &a * s21.transpose() - &s21 * a.transpose() + &a * &s11 * a.transpose()) / n_tr;
+    let mut w =
+        (&s22 - &a * s21.transpose() - &s21 * a.transpose() + &a * &s11 * a.transpose()) / n_tr;
     if let Some(c) = constant_idx {
         w.row_mut(c).fill(0.0);
         w.column_mut(c).fill(0.0);

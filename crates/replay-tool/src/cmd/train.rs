@@ -1,0 +1,179 @@
+//! `replay-tool train`: fit a decoder on a calibration block, cross-validate
+//! it for the model's provenance, and write the model file.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result, bail};
+use decoder_core::evaluate::{DecoderSpec, Evaluation, cross_validate};
+use decoder_core::kalman::train::fit_kalman;
+use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
+use decoder_core::session::Session;
+use decoder_core::train_config::TrainConfig;
+use decoder_core::wiener::fit_wiener;
+use serde_json::json;
+
+use super::load_train_config;
+use crate::output::write_atomic;
+use crate::progress;
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum DecoderKind {
+    Kalman,
+    Wiener,
+    PointProcess,
+}
+
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// Calibration block (session directory).
+    #[arg(long)]
+    pub session: PathBuf,
+    #[arg(long, value_enum)]
+    pub decoder: DecoderKind,
+    /// Model file to write.
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Training options (see config/train.toml); flags override it.
+    #[arg(long)]
+    pub config: Option<PathBuf>,
+    /// Bins by which the counts lead the kinematics they are paired with.
+    #[arg(long)]
+    pub lag: Option<usize>,
+    /// Ridge penalty λ; 0 fits without a penalty.
+    #[arg(long)]
+    pub ridge: Option<f64>,
+    /// Point-process only: fit encoding models without spike history.
+    #[arg(long)]
+    pub no_history: bool,
+    /// Skip the cross-validation that fills the model's `cv` scores.
+    #[arg(long)]
+    pub no_cv: bool,
+}
+
+/// The validated configuration after flags.
+pub fn config_with_overrides(
+    config: Option<&Path>,
+    lag: Option<usize>,
+    ridge: Option<f64>,
+) -> Result<TrainConfig> {
+    let mut cfg = load_train_config(config)?;
+    if let Some(lag) = lag {
+        cfg.override_lag(lag);
+    }
+    if let Some(ridge) = ridge {
+        cfg.override_ridge(ridge)?;
+    }
+    Ok(cfg)
+}
+
+pub fn spec_for(kind: DecoderKind, cfg: &TrainConfig) -> Result<DecoderSpec> {
+    match kind {
+        DecoderKind::Kalman => Ok(DecoderSpec::Kalman(cfg.kalman.clone())),
+        DecoderKind::Wiener => Ok(DecoderSpec::Wiener(cfg.wiener.clone())),
+        DecoderKind::PointProcess => {
+            bail!(
+                "the point-process decoder is not available in this build; train kalman or wiener"
+            )
+        }
+    }
+}
+
+/// Trains and returns the model file (not yet written).
+pub fn train_model(
+    session: &Session,
+    spec: &DecoderSpec,
+    folds: Option<usize>,
+) -> Result<ModelFile> {
+    let (decoder, fit) = match spec {
+        DecoderSpec::Kalman(opts) => {
+            let (model, report) = fit_kalman(session, opts)?;
+            (
+                DecoderModel::Kalman(model),
+                json!({ "decoder": "kalman", "options": opts, "report": report }),
+            )
+        }
+        DecoderSpec::Wiener(opts) => {
+            let model = fit_wiener(session, opts)?;
+            (
+                DecoderModel::Wiener(model),
+                json!({ "decoder": "wiener", "options": opts }),
+            )
+        }
+    };
+    let cv = match folds {
+        Some(k) => {
+            let pb = progress::bar(k as u64, "cross-val");
+            let eval = cross_validate(session, std::slice::from_ref(spec), k, |_, _| pb.inc(1))?;
+            pb.finish_and_clear();
+            cv_json(&eval)
+        }
+        None => serde_json::Value::Null,
+    };
+    Ok(ModelFile {
+        bin_ms: session.bin_ms,
+        decoder,
+        provenance: Provenance {
+            trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
+            tool_version: env!("CARGO_PKG_VERSION").to_string(),
+            data_sha256: session.data_sha256(),
+            fit_json: fit.to_string(),
+            cv_json: cv.to_string(),
+        },
+    })
+}
+
+fn cv_json(eval: &Evaluation) -> serde_json::Value {
+    let d = &eval.decoders[0];
+    json!({
+        "folds": eval.folds,
+        "by_trial": eval.by_trial,
+        "outputs": d.outputs,
+        "mean": d.mean,
+        "per_fold": d.per_fold,
+    })
+}
+
+pub fn run(args: &Args) -> Result<()> {
+    let cfg = config_with_overrides(args.config.as_deref(), args.lag, args.ridge)?;
+    if args.no_history && args.decoder != DecoderKind::PointProcess {
+        bail!("--no-history applies to --decoder point-process only");
+    }
+    let spec = spec_for(args.decoder, &cfg)?;
+    let session = Session::read(&args.session)?;
+    let folds = if args.no_cv { None } else { Some(cfg.folds) };
+    let model = train_model(&session, &spec, folds)
+        .with_context(|| format!("training on {}", args.session.display()))?;
+    write_atomic(&args.out, &model.to_bytes())?;
+    println!(
+        "wrote {} ({} decoder, {} channels, {} ms bins)",
+        args.out.display(),
+        model.decoder.kind(),
+        model.decoder.n_channels(),
+        model.bin_ms
+    );
+    print_cv_line(&model);
+    Ok(())
+}
+
+pub fn print_cv_line(model: &ModelFile) {
+    let cv: serde_json::Value = serde_json::from_str(&model.provenance.cv_json).unwrap_or_default();
+    if let (Some(outputs), Some(mean)) = (cv["outputs"].as_array(), cv["mean"].as_array()) {
+        let parts: Vec<String> = outputs
+            .iter()
+            .zip(mean)
+            .map(|(o, s)| {
+                format!(
+                    "{} CC {:.3} R² {:.3}",
+                    o.as_str().unwrap_or("?"),
+                    s["cc"].as_f64().unwrap_or(f64::NAN),
+                    s["r2"].as_f64().unwrap_or(f64::NAN)
+                )
+            })
+            .collect();
+        println!(
+            "cross-validated ({} folds): {}",
+            cv["folds"],
+            parts.join(", ")
+        );
+    }
+}

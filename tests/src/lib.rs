@@ -1,1 +1,50 @@
+//! Helpers for the cross-crate tests: where the reference fixtures are, how
+//! to read them, and one comparison rule used by every check.
+//!
+//! The fixtures are made by `tests/reference/make_fixtures.py` with the
+//! pinned versions in `tests/reference/requirements.txt`. `cargo test` reads
+//! the committed copy in `tests/data/reference`; CI regenerates them into a
+//! fresh directory and points `VDEC_REFERENCE_DIR` at it, so the check runs
+//! against the reference libraries live.
 
+use std::path::PathBuf;
+
+use ndarray::ArrayD;
+use ndarray_npy::ReadNpyExt;
+
+pub fn reference_dir() -> PathBuf {
+    match std::env::var_os("VDEC_REFERENCE_DIR") {
+        Some(dir) => PathBuf::from(dir),
+        None => PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("data").join("reference"),
+    }
+}
+
+/// A float64 array from the fixture directory: its shape and row-major data.
+pub fn fixture(name: &str) -> (Vec<usize>, Vec<f64>) {
+    let path = reference_dir().join(name);
+    let file = std::fs::File::open(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let arr = ArrayD::<f64>::read_npy(file).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let shape = arr.shape().to_vec();
+    let flat: Vec<f64> = arr.as_standard_layout().iter().copied().collect();
+    (shape, flat)
+}
+
+pub fn fixture_json(name: &str) -> serde_json::Value {
+    let path = reference_dir().join(name);
+    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    serde_json::from_str(&text).expect("fixture json")
+}
+
+/// Largest absolute difference divided by the reference's largest magnitude.
+pub fn relative_error(got: &[f64], want: &[f64]) -> f64 {
+    assert_eq!(got.len(), want.len(), "length differs");
+    let scale = want.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(f64::MIN_POSITIVE);
+    got.iter().zip(want).fold(0.0f64, |m, (g, w)| m.max((g - w).abs())) / scale
+}
+
+/// Asserts `relative_error(got, want) <= tol`, naming what was compared.
+pub fn assert_close(what: &str, got: &[f64], want: &[f64], tol: f64) {
+    let err = relative_error(got, want);
+    eprintln!("{what}: relative error {err:.3e} (tolerance {tol:.1e})");
+    assert!(err <= tol, "{what}: relative error {err:.3e} exceeds {tol:.1e}");
+}

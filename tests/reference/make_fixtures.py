@@ -1,0 +1,192 @@
+"""Reference fixtures for the decoder's cross-checks.
+
+Writes, into the directory given as the only argument:
+
+  block/                  a session directory written the way a NumPy user
+                          would write one (int32 counts, float64 kinematics,
+                          manifest.toml, trials.csv)
+  wu2006_*.npy            A, W, H, Q, x0, P0 fitted with numpy least squares
+                          from the formulas of Wu et al. 2006, for two fit
+                          settings (see FITS below)
+  filterpy_states.npy     filterpy.kalman.KalmanFilter run over the block's
+                          counts with the 'plain' parameters
+  dare_*.npy              a velocity-only model and the steady-state gain
+                          from scipy.linalg.solve_discrete_are
+  metrics.json            two arrays and their scipy.stats.pearsonr,
+                          sklearn.metrics.r2_score and numpy RMSE
+  versions.txt            the versions that produced all of this
+
+The data are synthetic and seeded; nothing here is recorded data.
+"""
+
+import json
+import os
+import sys
+
+import filterpy
+import numpy as np
+import scipy
+import scipy.linalg
+import scipy.stats
+import sklearn
+from filterpy.kalman import KalmanFilter
+from sklearn.metrics import r2_score
+
+SEED = 20261202
+T = 2000          # bins
+N = 24            # channels
+BIN_MS = 20.0
+DT = BIN_MS / 1000.0
+
+
+def make_block(rng):
+    """Smooth 2-D velocity (an AR(1) process), positions integrating it, and
+    Poisson counts log-linearly tuned to velocity."""
+    vel = np.zeros((T, 2))
+    for t in range(1, T):
+        vel[t] = 0.95 * vel[t - 1] + rng.normal(0.0, 2.0, size=2)
+    pos = np.cumsum(vel * DT, axis=0)
+    kin = np.column_stack([pos, vel])
+    base = np.log(rng.uniform(8.0, 30.0, size=N) * DT)
+    pd = rng.uniform(0.0, 2 * np.pi, size=N)
+    depth = rng.uniform(0.02, 0.06, size=N)
+    beta = np.column_stack([depth * np.cos(pd), depth * np.sin(pd)])
+    rate = np.exp(base[None, :] + vel @ beta.T)
+    counts = rng.poisson(rate).astype(np.int32)
+    assert (counts.sum(axis=0) > 0).all(), "every channel must fire"
+    return counts, kin
+
+
+def write_block(path, counts, kin):
+    os.makedirs(path, exist_ok=True)
+    np.save(os.path.join(path, "counts.npy"), counts)
+    np.save(os.path.join(path, "kinematics.npy"), kin)
+    with open(os.path.join(path, "manifest.toml"), "w") as f:
+        f.write("version = 1\n")
+        f.write(f"bin_ms = {BIN_MS}\n")
+        f.write('kinematics = ["pos_x", "pos_y", "vel_x", "vel_y"]\n')
+        f.write('notes = "reference fixture, synthetic, seed %d"\n' % SEED)
+    with open(os.path.join(path, "trials.csv"), "w") as f:
+        f.write("trial,start_bin,end_bin,target_x,target_y\n")
+        for i, start in enumerate(range(0, T, 200)):
+            f.write(f"{i},{start},{min(start + 200, T)},0.0,0.0\n")
+
+
+def wu2006_fit(counts, kin, state_cols, constant, ridge, normalisation):
+    """A, W, H, Q by least squares (Wu et al. 2006). X is d x T, Y is N x T."""
+    X = kin[:, state_cols].T
+    if constant:
+        X = np.vstack([X, np.ones((1, T))])
+    d = X.shape[0]
+    Y = counts.T.astype(np.float64)
+    offset = np.zeros(N)
+    scale = np.ones(N)
+    if normalisation in ("mean-centred", "z-scored"):
+        offset = Y.mean(axis=1)
+    if normalisation == "z-scored":
+        scale = Y.std(axis=1)
+    Y = (Y - offset[:, None]) / scale[:, None]
+
+    X1, X2 = X[:, :-1], X[:, 1:]
+    A = np.linalg.lstsq(X1.T, X2.T, rcond=None)[0].T
+    if constant:
+        A[-1, :] = 0.0
+        A[-1, -1] = 1.0
+    R = X2 - A @ X1
+    W = R @ R.T / X1.shape[1]
+    if constant:
+        W[-1, :] = 0.0
+        W[:, -1] = 0.0
+
+    # Ridge as ordinary least squares on an augmented system: rows sqrt(λ)·I
+    # for every state component but the constant.
+    pen = np.sqrt(ridge) * np.eye(d)
+    if constant:
+        pen = pen[:-1, :]
+    Xa = np.vstack([X.T, pen])
+    Ya = np.vstack([Y.T, np.zeros((pen.shape[0], N))])
+    H = np.linalg.lstsq(Xa, Ya, rcond=None)[0].T
+    E = Y - H @ X
+    Q = E @ E.T / T
+
+    x0 = X.mean(axis=1)
+    P0 = (X @ X.T) / T - np.outer(x0, x0)
+    if constant:
+        P0[-1, :] = 0.0
+        P0[:, -1] = 0.0
+        x0[-1] = 1.0
+    return dict(A=A, W=W, H=H, Q=Q, x0=x0, P0=P0, offset=offset, scale=scale)
+
+
+FITS = {
+    # name: (state columns of kinematics, constant, ridge, normalisation)
+    "plain": ([0, 1, 2, 3], True, 0.0, "none"),
+    "ridge_z": ([0, 1, 2, 3], True, 5.0, "z-scored"),
+    "velocity_only": ([2, 3], False, 0.0, "mean-centred"),
+}
+
+
+def main(out):
+    rng = np.random.default_rng(SEED)
+    counts, kin = make_block(rng)
+    write_block(os.path.join(out, "block"), counts, kin)
+
+    fits = {}
+    for name, (cols, constant, ridge, norm) in FITS.items():
+        fit = wu2006_fit(counts, kin, cols, constant, ridge, norm)
+        fits[name] = fit
+        for key, value in fit.items():
+            np.save(os.path.join(out, f"wu2006_{name}_{key}.npy"), value)
+
+    # filterpy over the block with the plain parameters.
+    p = fits["plain"]
+    d = p["A"].shape[0]
+    kf = KalmanFilter(dim_x=d, dim_z=N)
+    kf.F = p["A"].copy()
+    kf.Q = p["W"].copy()
+    kf.H = p["H"].copy()
+    kf.R = p["Q"].copy()
+    kf.x = p["x0"].reshape(d, 1).copy()
+    kf.P = p["P0"].copy()
+    states = np.zeros((T, d))
+    for t in range(T):
+        kf.predict()
+        kf.update(counts[t].astype(np.float64).reshape(N, 1))
+        states[t] = kf.x[:, 0]
+    np.save(os.path.join(out, "filterpy_states.npy"), states)
+
+    # Steady-state gain of the velocity-only model. The a-priori covariance
+    # solves the filtering DARE, which scipy writes for the dual system.
+    v = fits["velocity_only"]
+    P_prior = scipy.linalg.solve_discrete_are(v["A"].T, v["H"].T, v["W"], v["Q"])
+    S = v["H"] @ P_prior @ v["H"].T + v["Q"]
+    K = P_prior @ v["H"].T @ np.linalg.inv(S)
+    np.save(os.path.join(out, "dare_gain.npy"), K)
+    np.save(os.path.join(out, "dare_prior_cov.npy"), P_prior)
+
+    # Metrics on two related arrays.
+    truth = rng.normal(size=500)
+    estimate = 0.8 * truth + rng.normal(scale=0.5, size=500) + 0.1
+    np.save(os.path.join(out, "metrics_truth.npy"), truth)
+    np.save(os.path.join(out, "metrics_estimate.npy"), estimate)
+    with open(os.path.join(out, "metrics.json"), "w") as f:
+        json.dump(
+            {
+                "pearsonr": float(scipy.stats.pearsonr(truth, estimate).statistic),
+                "r2_score": float(r2_score(truth, estimate)),
+                "rmse": float(np.sqrt(np.mean((truth - estimate) ** 2))),
+            },
+            f,
+            indent=2,
+        )
+
+    with open(os.path.join(out, "versions.txt"), "w") as f:
+        f.write(f"python {sys.version.split()[0]}\n")
+        for mod in (np, scipy, filterpy, sklearn):
+            f.write(f"{mod.__name__} {mod.__version__}\n")
+
+
+if __name__ == "__main__":
+    if len(sys.argv) != 2:
+        sys.exit("usage: make_fixtures.py OUT_DIR")
+    main(sys.argv[1])

@@ -1,0 +1,138 @@
+//! The decoder checked against reference libraries outside the project.
+//! Each test names its reference; fixtures come from
+//! tests/reference/make_fixtures.py (pinned versions beside them).
+
+use cross_checks::{assert_close, fixture, fixture_json, reference_dir};
+use decoder_core::kalman::steady::steady_state_gain;
+use decoder_core::kalman::train::{CountNormalisation, KalmanFitOptions, fit_kalman};
+use decoder_core::kalman::{KalmanFilter, KalmanModel, ObservationNoise};
+use decoder_core::linalg::Mat;
+use decoder_core::metrics;
+use decoder_core::session::Session;
+
+fn mat(name: &str) -> Mat {
+    let (shape, data) = fixture(name);
+    match shape.as_slice() {
+        [r, c] => Mat { rows: *r, cols: *c, data },
+        [n] => Mat { rows: *n, cols: 1, data },
+        other => panic!("{name}: shape {other:?}"),
+    }
+}
+
+fn block() -> Session {
+    Session::read(&reference_dir().join("block")).expect("the numpy-written block imports")
+}
+
+/// The model fitted by numpy, loaded as a KalmanModel.
+fn numpy_model(fit: &str, state: &[&str], outputs: &[&str]) -> KalmanModel {
+    let p = |k: &str| format!("wu2006_{fit}_{k}.npy");
+    KalmanModel {
+        state: state.iter().map(|s| s.to_string()).collect(),
+        outputs: outputs.iter().map(|s| s.to_string()).collect(),
+        a: mat(&p("A")),
+        w: mat(&p("W")),
+        h: mat(&p("H")),
+        q: ObservationNoise::Full(mat(&p("Q"))),
+        x0: fixture(&p("x0")).1,
+        p0: mat(&p("P0")),
+        count_offset: fixture(&p("offset")).1,
+        count_scale: fixture(&p("scale")).1,
+        steady: None,
+    }
+}
+
+const FULL_STATE: [&str; 5] = ["pos_x", "pos_y", "vel_x", "vel_y", "1"];
+
+fn options(state: &[&str], ridge: f64, norm: CountNormalisation) -> KalmanFitOptions {
+    KalmanFitOptions {
+        state: state.iter().map(|s| s.to_string()).collect(),
+        outputs: vec!["vel_x".into(), "vel_y".into()],
+        ridge,
+        count_normalisation: norm,
+        ..KalmanFitOptions::default()
+    }
+}
+
+fn assert_fit_matches(fit: &str, model: &KalmanModel, tol: f64) {
+    let want = numpy_model(fit, &[], &[]);
+    assert_close(&format!("{fit} A"), &model.a.data, &want.a.data, tol);
+    assert_close(&format!("{fit} W"), &model.w.data, &want.w.data, tol);
+    assert_close(&format!("{fit} H"), &model.h.data, &want.h.data, tol);
+    let ObservationNoise::Full(q) = &model.q else { panic!("full Q expected") };
+    let ObservationNoise::Full(want_q) = &want.q else { unreachable!() };
+    assert_close(&format!("{fit} Q"), &q.data, &want_q.data, tol);
+    assert_close(&format!("{fit} x0"), &model.x0, &want.x0, tol);
+    assert_close(&format!("{fit} P0"), &model.p0.data, &want.p0.data, tol);
+    assert_close(&format!("{fit} offset"), &model.count_offset, &want.count_offset, tol);
+    assert_close(&format!("{fit} scale"), &model.count_scale, &want.count_scale, tol);
+}
+
+/// Reference: numpy.linalg.lstsq applied to the least-squares formulas of
+/// Wu et al. 2006 (A = X2 X1ᵀ (X1 X1ᵀ)⁻¹, H = Y Xᵀ (X Xᵀ)⁻¹, W and Q the
+/// residual covariances), no penalty, raw counts.
+#[test]
+fn training_without_ridge_equals_numpy_least_squares() {
+    let (model, _) = fit_kalman(&block(), &options(&FULL_STATE, 0.0, CountNormalisation::None)).unwrap();
+    assert_fit_matches("plain", &model, 1e-9);
+}
+
+/// Reference: numpy.linalg.lstsq on the ridge-augmented system (rows √λ·I,
+/// constant unpenalised), with z-scored counts.
+#[test]
+fn training_with_ridge_and_z_scoring_equals_numpy_least_squares() {
+    let (model, _) = fit_kalman(&block(), &options(&FULL_STATE, 5.0, CountNormalisation::ZScored)).unwrap();
+    assert_fit_matches("ridge_z", &model, 1e-9);
+}
+
+/// Reference: numpy least squares, velocity-only state with no constant and
+/// mean-centred counts.
+#[test]
+fn velocity_only_training_equals_numpy_least_squares() {
+    let (model, _) = fit_kalman(&block(), &options(&["vel_x", "vel_y"], 0.0, CountNormalisation::MeanCentred)).unwrap();
+    assert_fit_matches("velocity_only", &model, 1e-9);
+}
+
+/// Reference: filterpy.kalman.KalmanFilter (predict, then update, every bin)
+/// run with the same A, W, H, Q, x0, P0.
+#[test]
+fn decoded_states_equal_filterpy_to_1e9() {
+    let session = block();
+    let model = numpy_model("plain", &FULL_STATE, &["vel_x", "vel_y"]);
+    let mut filter = KalmanFilter::new(&model, false).unwrap();
+    let mut states = Vec::with_capacity(session.n_bins * 5);
+    for t in 0..session.n_bins {
+        assert!(filter.step(session.bin_counts(t)));
+        states.extend_from_slice(filter.state());
+    }
+    let (_, want) = fixture("filterpy_states.npy");
+    // The constant component is exactly 1 in both; compare the kinematics.
+    let kin = |v: &[f64]| v.chunks(5).flat_map(|c| c[..4].to_vec()).collect::<Vec<f64>>();
+    assert_close("filtered states vs filterpy", &kin(&states), &kin(&want), 1e-9);
+}
+
+/// Reference: scipy.linalg.solve_discrete_are for the a-priori covariance,
+/// K = P⁻Hᵀ(HP⁻Hᵀ + Q)⁻¹.
+#[test]
+fn steady_state_gain_equals_scipy_dare() {
+    let model = numpy_model("velocity_only", &["vel_x", "vel_y"], &["vel_x", "vel_y"]);
+    let steady = steady_state_gain(&model, 1e-13, 100_000).unwrap();
+    let (_, want) = fixture("dare_gain.npy");
+    assert_close("steady-state gain vs scipy DARE", &steady.gain.data, &want, 1e-9);
+}
+
+/// References: scipy.stats.pearsonr, sklearn.metrics.r2_score, and RMSE as
+/// numpy.sqrt(numpy.mean((a - b)**2)).
+#[test]
+fn metrics_equal_scipy_and_sklearn() {
+    let (_, truth) = fixture("metrics_truth.npy");
+    let (_, est) = fixture("metrics_estimate.npy");
+    let want = fixture_json("metrics.json");
+    let s = metrics::scores(&truth, &est);
+    let check = |what: &str, got: f64, key: &str| {
+        let w = want[key].as_f64().unwrap();
+        assert!((got - w).abs() <= 1e-12 * w.abs().max(1.0), "{what}: {got} vs {key} {w}");
+    };
+    check("CC", s.cc, "pearsonr");
+    check("R²", s.r2, "r2_score");
+    check("RMSE", s.rmse, "rmse");
+}

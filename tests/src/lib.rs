@@ -15,7 +15,9 @@ use ndarray_npy::ReadNpyExt;
 pub fn reference_dir() -> PathBuf {
     match std::env::var_os("VDEC_REFERENCE_DIR") {
         Some(dir) => PathBuf::from(dir),
-        None => PathBuf::from(env!("CARGO_MANIFEST_DIR")).join("data").join("reference"),
+        None => PathBuf::from(env!("CARGO_MANIFEST_DIR"))
+            .join("data")
+            .join("reference"),
     }
 }
 
@@ -38,13 +40,22 @@ pub fn fixture_json(name: &str) -> serde_json::Value {
 /// Largest absolute difference divided by the reference's largest magnitude.
 pub fn relative_error(got: &[f64], want: &[f64]) -> f64 {
     assert_eq!(got.len(), want.len(), "length differs");
-    let scale = want.iter().fold(0.0f64, |m, v| m.max(v.abs())).max(f64::MIN_POSITIVE);
-    got.iter().zip(want).fold(0.0f64, |m, (g, w)| m.max((g - w).abs())) / scale
+    let scale = want
+        .iter()
+        .fold(0.0f64, |m, v| m.max(v.abs()))
+        .max(f64::MIN_POSITIVE);
+    got.iter()
+        .zip(want)
+        .fold(0.0f64, |m, (g, w)| m.max((g - w).abs()))
+        / scale
 }
 
 /// Asserts `relative_error(got, want) <= tol`, naming what was compared.
 pub fn assert_close(what: &str, got: &[f64], want: &[f64], tol: f64) {
     let err = relative_error(got, want);
     eprintln!("{what}: relative error {err:.3e} (tolerance {tol:.1e})");
-    assert!(err <= tol, "{what}: relative error {err:.3e} exceeds {tol:.1e}");
+    assert!(
+        err <= tol,
+        "{what}: relative error {err:.3e} exceeds {tol:.1e}"
+    );
 }

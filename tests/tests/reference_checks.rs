@@ -13,8 +13,16 @@ use decoder_core::session::Session;
 fn mat(name: &str) -> Mat {
     let (shape, data) = fixture(name);
     match shape.as_slice() {
-        [r, c] => Mat { rows: *r, cols: *c, data },
-        [n] => Mat { rows: *n, cols: 1, data },
+        [r, c] => Mat {
+            rows: *r,
+            cols: *c,
+            data,
+        },
+        [n] => Mat {
+            rows: *n,
+            cols: 1,
+            data,
+        },
         other => panic!("{name}: shape {other:?}"),
     }
 }
@@ -58,13 +66,27 @@ fn assert_fit_matches(fit: &str, model: &KalmanModel, tol: f64) {
     assert_close(&format!("{fit} A"), &model.a.data, &want.a.data, tol);
     assert_close(&format!("{fit} W"), &model.w.data, &want.w.data, tol);
     assert_close(&format!("{fit} H"), &model.h.data, &want.h.data, tol);
-    let ObservationNoise::Full(q) = &model.q else { panic!("full Q expected") };
-    let ObservationNoise::Full(want_q) = &want.q else { unreachable!() };
+    let ObservationNoise::Full(q) = &model.q else {
+        panic!("full Q expected")
+    };
+    let ObservationNoise::Full(want_q) = &want.q else {
+        unreachable!()
+    };
     assert_close(&format!("{fit} Q"), &q.data, &want_q.data, tol);
     assert_close(&format!("{fit} x0"), &model.x0, &want.x0, tol);
     assert_close(&format!("{fit} P0"), &model.p0.data, &want.p0.data, tol);
-    assert_close(&format!("{fit} offset"), &model.count_offset, &want.count_offset, tol);
-    assert_close(&format!("{fit} scale"), &model.count_scale, &want.count_scale, tol);
+    assert_close(
+        &format!("{fit} offset"),
+        &model.count_offset,
+        &want.count_offset,
+        tol,
+    );
+    assert_close(
+        &format!("{fit} scale"),
+        &model.count_scale,
+        &want.count_scale,
+        tol,
+    );
 }
 
 /// Reference: numpy.linalg.lstsq applied to the least-squares formulas of
@@ -72,7 +94,11 @@ fn assert_fit_matches(fit: &str, model: &KalmanModel, tol: f64) {
 /// residual covariances), no penalty, raw counts.
 #[test]
 fn training_without_ridge_equals_numpy_least_squares() {
-    let (model, _) = fit_kalman(&block(), &options(&FULL_STATE, 0.0, CountNormalisation::None)).unwrap();
+    let (model, _) = fit_kalman(
+        &block(),
+        &options(&FULL_STATE, 0.0, CountNormalisation::None),
+    )
+    .unwrap();
     assert_fit_matches("plain", &model, 1e-9);
 }
 
@@ -80,7 +106,11 @@ fn training_without_ridge_equals_numpy_least_squares() {
 /// constant unpenalised), with z-scored counts.
 #[test]
 fn training_with_ridge_and_z_scoring_equals_numpy_least_squares() {
-    let (model, _) = fit_kalman(&block(), &options(&FULL_STATE, 5.0, CountNormalisation::ZScored)).unwrap();
+    let (model, _) = fit_kalman(
+        &block(),
+        &options(&FULL_STATE, 5.0, CountNormalisation::ZScored),
+    )
+    .unwrap();
     assert_fit_matches("ridge_z", &model, 1e-9);
 }
 
@@ -88,7 +118,11 @@ fn training_with_ridge_and_z_scoring_equals_numpy_least_squares() {
 /// mean-centred counts.
 #[test]
 fn velocity_only_training_equals_numpy_least_squares() {
-    let (model, _) = fit_kalman(&block(), &options(&["vel_x", "vel_y"], 0.0, CountNormalisation::MeanCentred)).unwrap();
+    let (model, _) = fit_kalman(
+        &block(),
+        &options(&["vel_x", "vel_y"], 0.0, CountNormalisation::MeanCentred),
+    )
+    .unwrap();
     assert_fit_matches("velocity_only", &model, 1e-9);
 }
 
@@ -106,8 +140,17 @@ fn decoded_states_equal_filterpy_to_1e9() {
     }
     let (_, want) = fixture("filterpy_states.npy");
     // The constant component is exactly 1 in both; compare the kinematics.
-    let kin = |v: &[f64]| v.chunks(5).flat_map(|c| c[..4].to_vec()).collect::<Vec<f64>>();
-    assert_close("filtered states vs filterpy", &kin(&states), &kin(&want), 1e-9);
+    let kin = |v: &[f64]| {
+        v.chunks(5)
+            .flat_map(|c| c[..4].to_vec())
+            .collect::<Vec<f64>>()
+    };
+    assert_close(
+        "filtered states vs filterpy",
+        &kin(&states),
+        &kin(&want),
+        1e-9,
+    );
 }
 
 /// Reference: scipy.linalg.solve_discrete_are for the a-priori covariance,
@@ -117,7 +160,12 @@ fn steady_state_gain_equals_scipy_dare() {
     let model = numpy_model("velocity_only", &["vel_x", "vel_y"], &["vel_x", "vel_y"]);
     let steady = steady_state_gain(&model, 1e-13, 100_000).unwrap();
     let (_, want) = fixture("dare_gain.npy");
-    assert_close("steady-state gain vs scipy DARE", &steady.gain.data, &want, 1e-9);
+    assert_close(
+        "steady-state gain vs scipy DARE",
+        &steady.gain.data,
+        &want,
+        1e-9,
+    );
 }
 
 /// References: scipy.stats.pearsonr, sklearn.metrics.r2_score, and RMSE as
@@ -130,7 +178,10 @@ fn metrics_equal_scipy_and_sklearn() {
     let s = metrics::scores(&truth, &est);
     let check = |what: &str, got: f64, key: &str| {
         let w = want[key].as_f64().unwrap();
-        assert!((got - w).abs() <= 1e-12 * w.abs().max(1.0), "{what}: {got} vs {key} {w}");
+        assert!(
+            (got - w).abs() <= 1e-12 * w.abs().max(1.0),
+            "{what}: {got} vs {key} {w}"
+        );
     };
     check("CC", s.cc, "pearsonr");
     check("R²", s.r2, "r2_score");

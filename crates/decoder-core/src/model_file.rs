@@ -21,6 +21,8 @@ const HEADER_LEN: usize = 8 + 4 + 8 + 4;
 /// Largest payload a model file may declare (1 GiB).
 const MAX_PAYLOAD: usize = 1 << 30;
 
+// One value per loaded model, never per bin: boxing would buy nothing.
+#[allow(clippy::large_enum_variant)]
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub enum DecoderModel {
     Kalman(KalmanModel),

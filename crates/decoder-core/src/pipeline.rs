@@ -11,6 +11,8 @@ use crate::kalman::{KalmanError, KalmanFilter};
 use crate::model_file::{DecoderModel, ModelFile};
 use crate::wiener::WienerFilter;
 
+// One value per loaded model, never per bin: boxing would buy nothing.
+#[allow(clippy::large_enum_variant)]
 #[derive(Clone, Debug)]
 enum Engine {
     Kalman {

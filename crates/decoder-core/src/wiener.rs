@@ -162,7 +162,7 @@ pub fn fit_wiener(
     session: &Session,
     options: &WienerFitOptions,
 ) -> Result<WienerModel, TrainError> {
-    fit_wiener_segments(session, options, &[0..session.n_bins])
+    fit_wiener_segments(session, options, std::slice::from_ref(&(0..session.n_bins)))
 }
 
 pub fn fit_wiener_segments(

@@ -52,10 +52,18 @@ fn model_file(decoder: DecoderModel) -> ModelFile {
 
 #[test]
 fn decode_steps_allocate_nothing() {
-    let (session, _) = simulate(&SimOptions { minutes: 1.0, n_channels: 32, ..SimOptions::default() }).unwrap();
+    let (session, _) = simulate(&SimOptions {
+        minutes: 1.0,
+        n_channels: 32,
+        ..SimOptions::default()
+    })
+    .unwrap();
     let (full, _) = fit_kalman(&session, &KalmanFitOptions::default()).unwrap();
     let steady_opts = KalmanFitOptions {
-        steady_state: Some(SteadyStateOptions { tolerance: 1e-12, max_iterations: 10_000 }),
+        steady_state: Some(SteadyStateOptions {
+            tolerance: 1e-12,
+            max_iterations: 10_000,
+        }),
         ..KalmanFitOptions::default()
     };
     let (steady, _) = fit_kalman(&session, &steady_opts).unwrap();
@@ -69,12 +77,22 @@ fn decode_steps_allocate_nothing() {
         let before = ALLOCATIONS.load(Ordering::Relaxed);
         let mut checksum = 0.0;
         for bin in 0..session.n_bins {
-            let est = if bin % 17 == 5 { pipeline.predict_only(bin as u64) } else { pipeline.step(bin as u64, session.bin_counts(bin)) };
+            let est = if bin % 17 == 5 {
+                pipeline.predict_only(bin as u64)
+            } else {
+                pipeline.step(bin as u64, session.bin_counts(bin))
+            };
             checksum += est.estimate[0];
         }
         pipeline.reset();
         let after = ALLOCATIONS.load(Ordering::Relaxed);
-        assert_eq!(after - before, 0, "{name}: {} allocations in {} bins", after - before, session.n_bins);
+        assert_eq!(
+            after - before,
+            0,
+            "{name}: {} allocations in {} bins",
+            after - before,
+            session.n_bins
+        );
         assert!(checksum.is_finite());
     }
 }

@@ -1,6 +1,8 @@
 //! How the filters behave over long runs and under the training options.
 
-use decoder_core::kalman::train::{CountNormalisation, KalmanFitOptions, QForm, SteadyStateOptions, fit_kalman};
+use decoder_core::kalman::train::{
+    CountNormalisation, KalmanFitOptions, QForm, SteadyStateOptions, fit_kalman,
+};
 use decoder_core::kalman::{KalmanFilter, ObservationNoise};
 use decoder_core::linalg::is_positive_definite;
 use decoder_core::metrics::pearson;
@@ -14,7 +16,12 @@ fn opts() -> KalmanFitOptions {
 
 #[test]
 fn covariance_stays_symmetric_positive_definite_over_100k_bins() {
-    let (session, _) = simulate(&SimOptions { minutes: 2.0, n_channels: 48, ..SimOptions::default() }).unwrap();
+    let (session, _) = simulate(&SimOptions {
+        minutes: 2.0,
+        n_channels: 48,
+        ..SimOptions::default()
+    })
+    .unwrap();
     let (model, _) = fit_kalman(&session, &opts()).unwrap();
     let mut f = KalmanFilter::new(&model, false).unwrap();
     let d = f.state_dim();
@@ -34,17 +41,31 @@ fn covariance_stays_symmetric_positive_definite_over_100k_bins() {
                 }
             }
             let block: Vec<f64> = (0..k).flat_map(|r| p[r * d..r * d + k].to_vec()).collect();
-            assert!(is_positive_definite(&block, k), "P lost definiteness at bin {i}: {p:?}");
-            assert!(p[(d - 1) * d..].iter().all(|v| *v == 0.0), "the constant stays exactly known");
+            assert!(
+                is_positive_definite(&block, k),
+                "P lost definiteness at bin {i}: {p:?}"
+            );
+            assert!(
+                p[(d - 1) * d..].iter().all(|v| *v == 0.0),
+                "the constant stays exactly known"
+            );
         }
     }
 }
 
 #[test]
 fn steady_state_decoding_converges_to_the_full_filter() {
-    let (session, _) = simulate(&SimOptions { minutes: 2.0, n_channels: 48, ..SimOptions::default() }).unwrap();
+    let (session, _) = simulate(&SimOptions {
+        minutes: 2.0,
+        n_channels: 48,
+        ..SimOptions::default()
+    })
+    .unwrap();
     let steady_opts = KalmanFitOptions {
-        steady_state: Some(SteadyStateOptions { tolerance: 1e-12, max_iterations: 10_000 }),
+        steady_state: Some(SteadyStateOptions {
+            tolerance: 1e-12,
+            max_iterations: 10_000,
+        }),
         ..opts()
     };
     let (model, report) = fit_kalman(&session, &steady_opts).unwrap();
@@ -62,19 +83,42 @@ fn steady_state_decoding_converges_to_the_full_filter() {
             }
         }
     }
-    assert!(late_gap < 1e-6, "steady-state and full filter differ by {late_gap} after convergence");
+    assert!(
+        late_gap < 1e-6,
+        "steady-state and full filter differ by {late_gap} after convergence"
+    );
 }
 
 #[test]
 fn velocity_only_layout_decodes() {
-    let (cal, _) = simulate(&SimOptions { minutes: 5.0, n_channels: 64, ..SimOptions::default() }).unwrap();
-    let (test, _) = simulate(&SimOptions { seed: 9, minutes: 1.0, n_channels: 64, ..SimOptions::default() }).unwrap();
-    let o = KalmanFitOptions { state: vec!["vel_x".into(), "vel_y".into(), "1".into()], ..opts() };
+    let (cal, _) = simulate(&SimOptions {
+        minutes: 5.0,
+        n_channels: 64,
+        ..SimOptions::default()
+    })
+    .unwrap();
+    let (test, _) = simulate(&SimOptions {
+        seed: 9,
+        minutes: 1.0,
+        n_channels: 64,
+        ..SimOptions::default()
+    })
+    .unwrap();
+    let o = KalmanFitOptions {
+        state: vec!["vel_x".into(), "vel_y".into(), "1".into()],
+        ..opts()
+    };
     let (model, _) = fit_kalman(&cal, &o).unwrap();
     let mf = ModelFile {
         bin_ms: 20.0,
         decoder: DecoderModel::Kalman(model),
-        provenance: Provenance { trained_at: String::new(), tool_version: String::new(), data_sha256: String::new(), fit_json: "null".into(), cv_json: "null".into() },
+        provenance: Provenance {
+            trained_at: String::new(),
+            tool_version: String::new(),
+            data_sha256: String::new(),
+            fit_json: "null".into(),
+            cv_json: "null".into(),
+        },
     };
     let mut p = DecodePipeline::new(&mf).unwrap();
     let (est, faults) = replay_block(&mut p, &test).unwrap();
@@ -88,8 +132,20 @@ fn velocity_only_layout_decodes() {
 
 #[test]
 fn physical_coupling_fixes_position_rows() {
-    let (session, _) = simulate(&SimOptions { minutes: 1.0, n_channels: 16, ..SimOptions::default() }).unwrap();
-    let (model, _) = fit_kalman(&session, &KalmanFitOptions { physical_coupling: true, ..opts() }).unwrap();
+    let (session, _) = simulate(&SimOptions {
+        minutes: 1.0,
+        n_channels: 16,
+        ..SimOptions::default()
+    })
+    .unwrap();
+    let (model, _) = fit_kalman(
+        &session,
+        &KalmanFitOptions {
+            physical_coupling: true,
+            ..opts()
+        },
+    )
+    .unwrap();
     // pos_x row: 1 on itself, bin width in seconds on vel_x, zero elsewhere.
     assert_eq!(model.a.row(0), &[1.0, 0.0, 0.02, 0.0, 0.0]);
     assert_eq!(model.a.row(1), &[0.0, 1.0, 0.0, 0.02, 0.0]);
@@ -98,13 +154,26 @@ fn physical_coupling_fixes_position_rows() {
 
 #[test]
 fn silent_channel_is_excluded_not_fatal() {
-    let (mut session, _) = simulate(&SimOptions { minutes: 1.0, n_channels: 16, ..SimOptions::default() }).unwrap();
+    let (mut session, _) = simulate(&SimOptions {
+        minutes: 1.0,
+        n_channels: 16,
+        ..SimOptions::default()
+    })
+    .unwrap();
     for t in 0..session.n_bins {
         session.counts[t * 16 + 3] = 0;
     }
     for q_form in [QForm::Full, QForm::Diagonal] {
         for norm in [CountNormalisation::None, CountNormalisation::ZScored] {
-            let (model, report) = fit_kalman(&session, &KalmanFitOptions { q_form, count_normalisation: norm, ..opts() }).unwrap();
+            let (model, report) = fit_kalman(
+                &session,
+                &KalmanFitOptions {
+                    q_form,
+                    count_normalisation: norm,
+                    ..opts()
+                },
+            )
+            .unwrap();
             assert_eq!(report.excluded_channels, vec![3]);
             assert!(model.h.row(3).iter().all(|v| *v == 0.0));
             // A spike on the silent channel later must not move the estimate.
@@ -121,23 +190,51 @@ fn silent_channel_is_excluded_not_fatal() {
 
 #[test]
 fn diagonal_q_stores_only_the_diagonal() {
-    let (session, _) = simulate(&SimOptions { minutes: 1.0, n_channels: 16, ..SimOptions::default() }).unwrap();
-    let (model, _) = fit_kalman(&session, &KalmanFitOptions { q_form: QForm::Diagonal, ..opts() }).unwrap();
+    let (session, _) = simulate(&SimOptions {
+        minutes: 1.0,
+        n_channels: 16,
+        ..SimOptions::default()
+    })
+    .unwrap();
+    let (model, _) = fit_kalman(
+        &session,
+        &KalmanFitOptions {
+            q_form: QForm::Diagonal,
+            ..opts()
+        },
+    )
+    .unwrap();
     let (full, _) = fit_kalman(&session, &opts()).unwrap();
-    let (ObservationNoise::Diagonal(d), ObservationNoise::Full(q)) = (&model.q, &full.q) else { panic!() };
+    let (ObservationNoise::Diagonal(d), ObservationNoise::Full(q)) = (&model.q, &full.q) else {
+        panic!()
+    };
     for (i, v) in d.iter().enumerate() {
-        assert!((v - q.get(i, i)).abs() < 1e-9 * v.abs(), "diagonal Q differs at {i}");
+        assert!(
+            (v - q.get(i, i)).abs() < 1e-9 * v.abs(),
+            "diagonal Q differs at {i}"
+        );
     }
 }
 
 #[test]
 fn replaying_twice_is_bit_identical() {
-    let (session, _) = simulate(&SimOptions { minutes: 1.0, n_channels: 32, ..SimOptions::default() }).unwrap();
+    let (session, _) = simulate(&SimOptions {
+        minutes: 1.0,
+        n_channels: 32,
+        ..SimOptions::default()
+    })
+    .unwrap();
     let (model, _) = fit_kalman(&session, &opts()).unwrap();
     let mf = ModelFile {
         bin_ms: 20.0,
         decoder: DecoderModel::Kalman(model),
-        provenance: Provenance { trained_at: String::new(), tool_version: String::new(), data_sha256: String::new(), fit_json: "null".into(), cv_json: "null".into() },
+        provenance: Provenance {
+            trained_at: String::new(),
+            tool_version: String::new(),
+            data_sha256: String::new(),
+            fit_json: "null".into(),
+            cv_json: "null".into(),
+        },
     };
     let mut a = DecodePipeline::new(&mf).unwrap();
     let mut b = DecodePipeline::new(&mf).unwrap();
@@ -156,7 +253,12 @@ fn lag_pairs_counts_with_later_kinematics() {
     // Delay the kinematics by 3 bins: counts of bin t now belong with the
     // kinematics of bin t + 3. A lag-3 fit of the delayed block must see
     // exactly the observation pairs of a lag-0 fit of the original.
-    let (orig, _) = simulate(&SimOptions { minutes: 1.0, n_channels: 16, ..SimOptions::default() }).unwrap();
+    let (orig, _) = simulate(&SimOptions {
+        minutes: 1.0,
+        n_channels: 16,
+        ..SimOptions::default()
+    })
+    .unwrap();
     let mut delayed = orig.clone();
     let kin = delayed.kinematics.as_mut().unwrap();
     let src = orig.kinematics.as_ref().unwrap();
@@ -164,8 +266,20 @@ fn lag_pairs_counts_with_later_kinematics() {
         kin.data[t * kin.cols..(t + 1) * kin.cols].copy_from_slice(src.row(t - 3));
     }
     let n = orig.n_bins;
-    let (plain, _) = decoder_core::kalman::train::fit_kalman_segments(&orig, &opts(), &[0..n - 3]).unwrap();
-    let (lagged, _) = fit_kalman(&delayed, &KalmanFitOptions { lag_bins: 3, ..opts() }).unwrap();
+    let (plain, _) = decoder_core::kalman::train::fit_kalman_segments(
+        &orig,
+        &opts(),
+        std::slice::from_ref(&(0..n - 3)),
+    )
+    .unwrap();
+    let (lagged, _) = fit_kalman(
+        &delayed,
+        &KalmanFitOptions {
+            lag_bins: 3,
+            ..opts()
+        },
+    )
+    .unwrap();
     assert_eq!(plain.h, lagged.h);
     assert_eq!(plain.q, lagged.q);
 }

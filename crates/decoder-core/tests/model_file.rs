@@ -7,7 +7,12 @@ use decoder_core::simulate::{SimOptions, simulate};
 use proptest::prelude::*;
 
 fn small_model() -> ModelFile {
-    let (s, _) = simulate(&SimOptions { minutes: 0.5, n_channels: 6, ..SimOptions::default() }).unwrap();
+    let (s, _) = simulate(&SimOptions {
+        minutes: 0.5,
+        n_channels: 6,
+        ..SimOptions::default()
+    })
+    .unwrap();
     let (k, _) = fit_kalman(&s, &KalmanFitOptions::default()).unwrap();
     ModelFile {
         bin_ms: s.bin_ms,
@@ -32,7 +37,10 @@ fn round_trip_is_exact() {
 fn wrong_magic_is_refused() {
     let mut b = small_model().to_bytes();
     b[0] = b'X';
-    assert!(matches!(ModelFile::from_bytes(&b, "m"), Err(ModelFileError::BadMagic { .. })));
+    assert!(matches!(
+        ModelFile::from_bytes(&b, "m"),
+        Err(ModelFileError::BadMagic { .. })
+    ));
 }
 
 #[test]
@@ -40,7 +48,10 @@ fn future_version_is_refused() {
     let mut b = small_model().to_bytes();
     b[8] = 2;
     let e = ModelFile::from_bytes(&b, "m.model").unwrap_err();
-    assert!(matches!(e, ModelFileError::UnsupportedVersion { found: 2, .. }));
+    assert!(matches!(
+        e,
+        ModelFileError::UnsupportedVersion { found: 2, .. }
+    ));
     assert!(e.to_string().starts_with("m.model"), "{e}");
 }
 
@@ -49,25 +60,53 @@ fn one_flipped_payload_byte_fails_the_checksum() {
     let mut b = small_model().to_bytes();
     let i = b.len() / 2;
     b[i] ^= 0x01;
-    assert!(matches!(ModelFile::from_bytes(&b, "m"), Err(ModelFileError::Checksum { .. })));
+    assert!(matches!(
+        ModelFile::from_bytes(&b, "m"),
+        Err(ModelFileError::Checksum { .. })
+    ));
 }
 
 #[test]
 fn truncated_file_is_refused() {
     let b = small_model().to_bytes();
-    assert!(matches!(ModelFile::from_bytes(&b[..b.len() - 10], "m"), Err(ModelFileError::Truncated { .. })));
+    assert!(matches!(
+        ModelFile::from_bytes(&b[..b.len() - 10], "m"),
+        Err(ModelFileError::Truncated { .. })
+    ));
 }
 
 /// SPEC §4: the keys other programs read.
 #[test]
 fn json_export_has_the_contract_keys() {
     let j = export_json(&small_model());
-    for key in ["kind", "bin_ms", "channels", "state", "outputs", "A", "W", "H", "Q", "x0", "P0", "count_offset", "count_scale", "trained_at", "tool_version", "data_sha256", "fit", "cv"] {
+    for key in [
+        "kind",
+        "bin_ms",
+        "channels",
+        "state",
+        "outputs",
+        "A",
+        "W",
+        "H",
+        "Q",
+        "x0",
+        "P0",
+        "count_offset",
+        "count_scale",
+        "trained_at",
+        "tool_version",
+        "data_sha256",
+        "fit",
+        "cv",
+    ] {
         assert!(j.get(key).is_some(), "export lacks {key}");
     }
     assert_eq!(j["kind"], "kalman");
     assert_eq!(j["channels"], 6);
-    assert_eq!(j["state"], serde_json::json!(["pos_x", "pos_y", "vel_x", "vel_y", "1"]));
+    assert_eq!(
+        j["state"],
+        serde_json::json!(["pos_x", "pos_y", "vel_x", "vel_y", "1"])
+    );
     assert_eq!(j["H"].as_array().unwrap().len(), 6, "H is N rows");
     assert_eq!(j["H"][0].as_array().unwrap().len(), 5, "of d columns");
     assert_eq!(j["Q"].as_array().unwrap().len(), 6);

@@ -12,7 +12,12 @@ use ndarray::Array2;
 use ndarray_npy::write_npy;
 
 fn good_block(dir: &Path) -> Session {
-    let (s, _) = simulate(&SimOptions { minutes: 0.2, n_channels: 8, ..SimOptions::default() }).unwrap();
+    let (s, _) = simulate(&SimOptions {
+        minutes: 0.2,
+        n_channels: 8,
+        ..SimOptions::default()
+    })
+    .unwrap();
     s.write(dir).unwrap();
     s
 }
@@ -44,16 +49,29 @@ fn missing_counts_file_is_named() {
 fn row_count_mismatch_names_both_files() {
     let dir = tempfile::tempdir().unwrap();
     let s = good_block(dir.path());
-    write_npy(dir.path().join("kinematics.npy"), &Array2::<f64>::zeros((s.n_bins - 3, 4))).unwrap();
+    write_npy(
+        dir.path().join("kinematics.npy"),
+        &Array2::<f64>::zeros((s.n_bins - 3, 4)),
+    )
+    .unwrap();
     let e = read_err(dir.path());
-    assert!(e.contains("kinematics.npy") && e.contains("counts.npy") && e.contains(&format!("{}", s.n_bins - 3)), "{e}");
+    assert!(
+        e.contains("kinematics.npy")
+            && e.contains("counts.npy")
+            && e.contains(&format!("{}", s.n_bins - 3)),
+        "{e}"
+    );
 }
 
 #[test]
 fn column_count_mismatch_names_the_manifest_key() {
     let dir = tempfile::tempdir().unwrap();
     let s = good_block(dir.path());
-    write_npy(dir.path().join("kinematics.npy"), &Array2::<f64>::zeros((s.n_bins, 3))).unwrap();
+    write_npy(
+        dir.path().join("kinematics.npy"),
+        &Array2::<f64>::zeros((s.n_bins, 3)),
+    )
+    .unwrap();
     let e = read_err(dir.path());
     assert!(e.contains("3 columns") && e.contains("kinematics"), "{e}");
 }
@@ -62,9 +80,16 @@ fn column_count_mismatch_names_the_manifest_key() {
 fn float_counts_are_refused_as_non_integer() {
     let dir = tempfile::tempdir().unwrap();
     let s = good_block(dir.path());
-    write_npy(dir.path().join("counts.npy"), &Array2::<f64>::zeros((s.n_bins, 8))).unwrap();
+    write_npy(
+        dir.path().join("counts.npy"),
+        &Array2::<f64>::zeros((s.n_bins, 8)),
+    )
+    .unwrap();
     let e = read_err(dir.path());
-    assert!(e.contains("counts.npy") && e.contains("float64") && e.contains("integer"), "{e}");
+    assert!(
+        e.contains("counts.npy") && e.contains("float64") && e.contains("integer"),
+        "{e}"
+    );
 }
 
 #[test]
@@ -82,11 +107,19 @@ fn negative_count_names_bin_and_channel() {
 fn any_integer_dtype_is_accepted() {
     let dir = tempfile::tempdir().unwrap();
     let s = good_block(dir.path());
-    let as_i64 = Array2::from_shape_vec((s.n_bins, 8), s.counts.iter().map(|&c| i64::from(c)).collect()).unwrap();
+    let as_i64 = Array2::from_shape_vec(
+        (s.n_bins, 8),
+        s.counts.iter().map(|&c| i64::from(c)).collect(),
+    )
+    .unwrap();
     write_npy(dir.path().join("counts.npy"), &as_i64).unwrap();
     let back = Session::read(dir.path()).unwrap();
     assert_eq!(back.counts, s.counts);
-    assert_eq!(back.data_sha256(), s.data_sha256(), "the hash is of the values, not the dtype");
+    assert_eq!(
+        back.data_sha256(),
+        s.data_sha256(),
+        "the hash is of the values, not the dtype"
+    );
 }
 
 #[test]
@@ -97,14 +130,19 @@ fn nan_in_kinematics_names_bin_and_column() {
     kin[(7, 3)] = f64::NAN;
     write_npy(dir.path().join("kinematics.npy"), &kin).unwrap();
     let e = read_err(dir.path());
-    assert!(e.contains("kinematics.npy") && e.contains("bin 7") && e.contains("vel_y"), "{e}");
+    assert!(
+        e.contains("kinematics.npy") && e.contains("bin 7") && e.contains("vel_y"),
+        "{e}"
+    );
 }
 
 #[test]
 fn zero_bin_width_names_the_key() {
     let dir = tempfile::tempdir().unwrap();
     good_block(dir.path());
-    let m = std::fs::read_to_string(dir.path().join("manifest.toml")).unwrap().replace("bin_ms = 20.0", "bin_ms = 0.0");
+    let m = std::fs::read_to_string(dir.path().join("manifest.toml"))
+        .unwrap()
+        .replace("bin_ms = 20.0", "bin_ms = 0.0");
     std::fs::write(dir.path().join("manifest.toml"), m).unwrap();
     let e = read_err(dir.path());
     assert!(e.contains("manifest.toml") && e.contains("bin_ms"), "{e}");
@@ -114,10 +152,15 @@ fn zero_bin_width_names_the_key() {
 fn misspelt_manifest_key_is_named() {
     let dir = tempfile::tempdir().unwrap();
     good_block(dir.path());
-    let m = std::fs::read_to_string(dir.path().join("manifest.toml")).unwrap().replace("bin_ms", "bin_width");
+    let m = std::fs::read_to_string(dir.path().join("manifest.toml"))
+        .unwrap()
+        .replace("bin_ms", "bin_width");
     std::fs::write(dir.path().join("manifest.toml"), m).unwrap();
     let e = read_err(dir.path());
-    assert!(e.contains("manifest.toml") && e.contains("bin_width"), "{e}");
+    assert!(
+        e.contains("manifest.toml") && e.contains("bin_width"),
+        "{e}"
+    );
 }
 
 #[test]
@@ -133,10 +176,16 @@ fn empty_block_is_refused() {
 fn trial_outside_the_block_names_the_line() {
     let dir = tempfile::tempdir().unwrap();
     let s = good_block(dir.path());
-    let csv = format!("trial,start_bin,end_bin,target_x,target_y\n0,0,10,1.0,0.0\n1,20,{},0.0,1.0\n", s.n_bins + 5);
+    let csv = format!(
+        "trial,start_bin,end_bin,target_x,target_y\n0,0,10,1.0,0.0\n1,20,{},0.0,1.0\n",
+        s.n_bins + 5
+    );
     std::fs::write(dir.path().join("trials.csv"), csv).unwrap();
     let e = read_err(dir.path());
-    assert!(e.contains("trials.csv") && e.contains("line 3") && e.contains("trial 1"), "{e}");
+    assert!(
+        e.contains("trials.csv") && e.contains("line 3") && e.contains("trial 1"),
+        "{e}"
+    );
 }
 
 #[test]
@@ -144,7 +193,11 @@ fn unknown_kinematic_column_lists_the_available_ones() {
     let dir = tempfile::tempdir().unwrap();
     good_block(dir.path());
     let s = Session::read(dir.path()).unwrap();
-    let opts = KalmanFitOptions { state: vec!["vel_z".into(), "1".into()], outputs: vec!["vel_z".into()], ..Default::default() };
+    let opts = KalmanFitOptions {
+        state: vec!["vel_z".into(), "1".into()],
+        outputs: vec!["vel_z".into()],
+        ..Default::default()
+    };
     let e = fit_kalman(&s, &opts).unwrap_err();
     assert!(matches!(e, TrainError::UnknownKinematic { .. }));
     let msg = e.to_string();

@@ -8,20 +8,36 @@ use ndarray::Array2;
 use ndarray_npy::ReadNpyExt;
 
 fn tool(args: &[&str]) -> Output {
-    Command::new(env!("CARGO_BIN_EXE_replay-tool")).args(args).output().expect("runs")
+    Command::new(env!("CARGO_BIN_EXE_replay-tool"))
+        .args(args)
+        .output()
+        .expect("runs")
 }
 
 fn ok(args: &[&str]) -> String {
     let out = tool(args);
-    assert!(out.status.success(), "{args:?} failed: {}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{args:?} failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     String::from_utf8(out.stdout).unwrap()
 }
 
 fn fails_with(args: &[&str], code: i32) -> String {
     let out = tool(args);
-    assert_eq!(out.status.code(), Some(code), "{args:?}: {}", String::from_utf8_lossy(&out.stderr));
+    assert_eq!(
+        out.status.code(),
+        Some(code),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let err = String::from_utf8(out.stderr).unwrap();
-    assert_eq!(err.trim_end().lines().count(), 1, "one-line message expected, got {err:?}");
+    assert_eq!(
+        err.trim_end().lines().count(),
+        1,
+        "one-line message expected, got {err:?}"
+    );
     err
 }
 
@@ -35,26 +51,71 @@ fn simulate_train_replay_and_show() {
     let block = dir.path().join("block");
     let model = dir.path().join("k.model");
     let est = dir.path().join("est.npy");
-    ok(&["simulate", "--out", p(&block), "--minutes", "1", "--channels", "24", "--seed", "3"]);
-    let said = ok(&["train", "--session", p(&block), "--decoder", "kalman", "--out", p(&model), "--lag", "0", "--ridge", "0"]);
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "1",
+        "--channels",
+        "24",
+        "--seed",
+        "3",
+    ]);
+    let said = ok(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--lag",
+        "0",
+        "--ridge",
+        "0",
+    ]);
     assert!(said.contains("cross-validated"), "{said}");
-    ok(&["replay", "--session", p(&block), "--model", p(&model), "--out", p(&est)]);
+    ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--out",
+        p(&est),
+    ]);
     let arr = Array2::<f64>::read_npy(std::fs::File::open(&est).unwrap()).unwrap();
     assert_eq!(arr.dim(), (3000, 2));
 
     let csv = dir.path().join("est.csv");
-    ok(&["replay", "--session", p(&block), "--model", p(&model), "--out", p(&csv)]);
+    ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--out",
+        p(&csv),
+    ]);
     let text = std::fs::read_to_string(&csv).unwrap();
     assert_eq!(text.lines().next(), Some("vel_x,vel_y"));
     assert_eq!(text.lines().count(), 3001);
 
-    let json: serde_json::Value = serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+    let json: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
     assert_eq!(json["kind"], "kalman");
     assert_eq!(json["channels"], 24);
-    assert_eq!(json["fit"]["options"]["ridge"], 0.0, "the --ridge flag is recorded");
+    assert_eq!(
+        json["fit"]["options"]["ridge"], 0.0,
+        "the --ridge flag is recorded"
+    );
     assert_eq!(json["cv"]["folds"], 5);
     let summary = ok(&["model", "show", p(&model)]);
-    assert!(summary.contains("data sha256") && summary.contains("cv vel_x"), "{summary}");
+    assert!(
+        summary.contains("data sha256") && summary.contains("cv vel_x"),
+        "{summary}"
+    );
 }
 
 #[test]
@@ -62,11 +123,39 @@ fn evaluate_prints_both_decoders_and_writes_a_report() {
     let dir = tempfile::tempdir().unwrap();
     let block = dir.path().join("block");
     let report = dir.path().join("report");
-    ok(&["simulate", "--out", p(&block), "--minutes", "1", "--channels", "24"]);
-    let table = ok(&["evaluate", "--session", p(&block), "--decoder", "kalman", "--folds", "3", "--report", p(&report)]);
-    assert!(table.contains("kalman") && table.contains("wiener") && table.contains("mean"), "{table}");
-    for f in ["scores.csv", "evaluation.json", "heldout_velocity.svg", "heldout_velocity.png"] {
-        let len = std::fs::metadata(report.join(f)).map(|m| m.len()).unwrap_or(0);
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "1",
+        "--channels",
+        "24",
+    ]);
+    let table = ok(&[
+        "evaluate",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--folds",
+        "3",
+        "--report",
+        p(&report),
+    ]);
+    assert!(
+        table.contains("kalman") && table.contains("wiener") && table.contains("mean"),
+        "{table}"
+    );
+    for f in [
+        "scores.csv",
+        "evaluation.json",
+        "heldout_velocity.svg",
+        "heldout_velocity.png",
+    ] {
+        let len = std::fs::metadata(report.join(f))
+            .map(|m| m.len())
+            .unwrap_or(0);
         assert!(len > 100, "{f} missing or empty");
     }
     let csv = std::fs::read_to_string(report.join("scores.csv")).unwrap();
@@ -77,7 +166,18 @@ fn evaluate_prints_both_decoders_and_writes_a_report() {
 #[test]
 fn missing_session_is_a_user_error_naming_the_path() {
     let dir = tempfile::tempdir().unwrap();
-    let e = fails_with(&["train", "--session", "/no/such/block", "--decoder", "kalman", "--out", p(&dir.path().join("m"))], 2);
+    let e = fails_with(
+        &[
+            "train",
+            "--session",
+            "/no/such/block",
+            "--decoder",
+            "kalman",
+            "--out",
+            p(&dir.path().join("m")),
+        ],
+        2,
+    );
     assert!(e.contains("/no/such/block"), "{e}");
     assert!(!dir.path().join("m").exists(), "no model file on failure");
 }
@@ -88,11 +188,47 @@ fn replay_with_the_wrong_array_names_both_channel_counts() {
     let a = dir.path().join("a");
     let b = dir.path().join("b");
     let model = dir.path().join("a.model");
-    ok(&["simulate", "--out", p(&a), "--minutes", "0.5", "--channels", "16"]);
-    ok(&["simulate", "--out", p(&b), "--minutes", "0.5", "--channels", "12"]);
-    ok(&["train", "--session", p(&a), "--decoder", "wiener", "--out", p(&model), "--no-cv"]);
+    ok(&[
+        "simulate",
+        "--out",
+        p(&a),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "16",
+    ]);
+    ok(&[
+        "simulate",
+        "--out",
+        p(&b),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "12",
+    ]);
+    ok(&[
+        "train",
+        "--session",
+        p(&a),
+        "--decoder",
+        "wiener",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
     let out = dir.path().join("x.npy");
-    let e = fails_with(&["replay", "--session", p(&b), "--model", p(&model), "--out", p(&out)], 2);
+    let e = fails_with(
+        &[
+            "replay",
+            "--session",
+            p(&b),
+            "--model",
+            p(&model),
+            "--out",
+            p(&out),
+        ],
+        2,
+    );
     assert!(e.contains("12 columns") && e.contains("16 channels"), "{e}");
     assert!(!out.exists());
 }
@@ -103,24 +239,59 @@ fn a_damaged_model_file_is_refused() {
     let model = dir.path().join("bad.model");
     std::fs::write(&model, b"not a model at all").unwrap();
     let e = fails_with(&["model", "show", p(&model)], 2);
-    assert!(e.contains("bad.model") && e.contains("not a model file"), "{e}");
+    assert!(
+        e.contains("bad.model") && e.contains("not a model file"),
+        "{e}"
+    );
 }
 
 #[test]
 fn bad_config_key_is_named() {
     let dir = tempfile::tempdir().unwrap();
     let block = dir.path().join("block");
-    ok(&["simulate", "--out", p(&block), "--minutes", "0.5", "--channels", "8"]);
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "8",
+    ]);
     let cfg = dir.path().join("train.toml");
     std::fs::write(&cfg, "[kalman]\nsteady_sate = true\n").unwrap();
-    let e = fails_with(&["train", "--session", p(&block), "--decoder", "kalman", "--out", p(&dir.path().join("m")), "--config", p(&cfg)], 2);
+    let e = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&block),
+            "--decoder",
+            "kalman",
+            "--out",
+            p(&dir.path().join("m")),
+            "--config",
+            p(&cfg),
+        ],
+        2,
+    );
     assert!(e.contains("train.toml") && e.contains("steady_sate"), "{e}");
 }
 
 #[test]
 fn point_process_says_it_is_not_available() {
     let dir = tempfile::tempdir().unwrap();
-    let e = fails_with(&["train", "--session", p(dir.path()), "--decoder", "point-process", "--out", p(&dir.path().join("m"))], 2);
+    let e = fails_with(
+        &[
+            "train",
+            "--session",
+            p(dir.path()),
+            "--decoder",
+            "point-process",
+            "--out",
+            p(&dir.path().join("m")),
+        ],
+        2,
+    );
     assert!(e.contains("point-process"), "{e}");
 }
 

@@ -258,7 +258,7 @@ pub fn fit_kalman(
     session: &Session,
     options: &KalmanFitOptions,
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
-    fit_kalman_segments(session, options, &[0..session.n_bins])
+    fit_kalman_segments(session, options, std::slice::from_ref(&(0..session.n_bins)))
 }
 
 pub fn fit_kalman_segments(

@@ -132,13 +132,7 @@ fn replay_throughput(c: &mut Criterion) {
         let mf = ModelFile {
             bin_ms: 20.0,
             decoder: DecoderModel::Kalman(model),
-            provenance: Provenance {
-                trained_at: String::new(),
-                tool_version: String::new(),
-                data_sha256: String::new(),
-                fit_json: "null".into(),
-                cv_json: "null".into(),
-            },
+            provenance: Provenance::untracked(),
         };
         let mut pipeline = DecodePipeline::new(&mf).unwrap();
         let name = if steady { "steady/192" } else { "full/192" };

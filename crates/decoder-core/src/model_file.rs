@@ -67,6 +67,20 @@ pub struct Provenance {
     pub cv_json: String,
 }
 
+impl Provenance {
+    /// Provenance of a model built in code rather than trained from a block
+    /// (tests, benchmarks): every field empty, `fit` and `cv` null.
+    pub fn untracked() -> Provenance {
+        Provenance {
+            trained_at: String::new(),
+            tool_version: String::new(),
+            data_sha256: String::new(),
+            fit_json: "null".into(),
+            cv_json: "null".into(),
+        }
+    }
+}
+
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ModelFile {
     pub bin_ms: f64,

@@ -40,13 +40,7 @@ fn model_file(decoder: DecoderModel) -> ModelFile {
     ModelFile {
         bin_ms: 20.0,
         decoder,
-        provenance: Provenance {
-            trained_at: String::new(),
-            tool_version: String::new(),
-            data_sha256: String::new(),
-            fit_json: "null".into(),
-            cv_json: "null".into(),
-        },
+        provenance: Provenance::untracked(),
     }
 }
 

@@ -112,13 +112,7 @@ fn velocity_only_layout_decodes() {
     let mf = ModelFile {
         bin_ms: 20.0,
         decoder: DecoderModel::Kalman(model),
-        provenance: Provenance {
-            trained_at: String::new(),
-            tool_version: String::new(),
-            data_sha256: String::new(),
-            fit_json: "null".into(),
-            cv_json: "null".into(),
-        },
+        provenance: Provenance::untracked(),
     };
     let mut p = DecodePipeline::new(&mf).unwrap();
     let (est, faults) = replay_block(&mut p, &test).unwrap();
@@ -228,13 +222,7 @@ fn replaying_twice_is_bit_identical() {
     let mf = ModelFile {
         bin_ms: 20.0,
         decoder: DecoderModel::Kalman(model),
-        provenance: Provenance {
-            trained_at: String::new(),
-            tool_version: String::new(),
-            data_sha256: String::new(),
-            fit_json: "null".into(),
-            cv_json: "null".into(),
-        },
+        provenance: Provenance::untracked(),
     };
     let mut a = DecodePipeline::new(&mf).unwrap();
     let mut b = DecodePipeline::new(&mf).unwrap();

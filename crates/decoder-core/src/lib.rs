@@ -10,12 +10,17 @@ pub mod evaluate;
 pub mod folds;
 pub mod kalman;
 pub mod linalg;
+pub mod log_replay;
 pub mod metrics;
 pub mod model_file;
+pub mod packet;
 pub mod pipeline;
 pub mod session;
+pub mod session_log;
 pub mod simulate;
+pub mod slots;
 pub mod stats;
+pub mod supervisor;
 pub mod train_config;
 pub mod wiener;
 

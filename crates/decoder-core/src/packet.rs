@@ -1,0 +1,415 @@
+//! The two UDP packet layouts (SPEC §1 bin packet, §2 velocity packet).
+//!
+//! Parsing a bin packet is the first thing the daemon does with bytes from
+//! the network, so it must return a value or a typed reason for any input
+//! and never panic. Encoding a velocity packet writes into a caller's buffer
+//! so the per-bin path allocates nothing. Both live here, in the pure core,
+//! so the offline replay of a recorded session parses and encodes exactly as
+//! the daemon did.
+
+/// ASCII `NBIN`.
+pub const BIN_MAGIC: [u8; 4] = *b"NBIN";
+/// ASCII `NVEL`.
+pub const VELOCITY_MAGIC: [u8; 4] = *b"NVEL";
+pub const PACKET_VERSION: u16 = 1;
+pub const BIN_HEADER_LEN: usize = 32;
+pub const VELOCITY_HEADER_LEN: usize = 48;
+pub const MAX_CHANNELS: usize = 16384;
+pub const MAX_DIMS: usize = 8;
+/// Largest valid bin datagram (32 + 2·16384 bytes).
+pub const MAX_BIN_DATAGRAM: usize = BIN_HEADER_LEN + 2 * MAX_CHANNELS;
+
+/// Velocity packet flag: the bin never came; the estimate is a prediction.
+pub const FLAG_BIN_MISSING: u32 = 1 << 0;
+/// Velocity packet flag: the command was scaled down to the speed limit.
+pub const FLAG_SPEED_CLAMPED: u32 = 1 << 1;
+/// Velocity packet flag: the change of command was cut to the acceleration limit.
+pub const FLAG_ACCEL_CLAMPED: u32 = 1 << 2;
+/// Velocity packet flag: a newly loaded model decoded this bin.
+pub const FLAG_MODEL_CHANGED: u32 = 1 << 3;
+
+/// The fixed fields of a bin packet; the counts stay in the datagram until
+/// [`read_counts`] copies them out.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct BinHeader {
+    pub channels: u16,
+    pub seq: u64,
+    pub origin_ns: u64,
+    pub bin_us: u32,
+    pub flags: u32,
+}
+
+/// Why a datagram was not decoded. Each reason has its own counter.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, thiserror::Error)]
+pub enum RejectReason {
+    #[error("datagram of {len} bytes is shorter than the 32-byte bin header")]
+    TooShort { len: usize },
+    #[error("magic is not NBIN")]
+    BadMagic,
+    #[error("packet version {version}; this daemon reads version 1")]
+    BadVersion { version: u16 },
+    #[error("channel count {channels} is outside 1..=16384")]
+    ChannelsOutOfRange { channels: u16 },
+    #[error("datagram of {len} bytes; {channels} channels need exactly {expected}")]
+    LengthMismatch {
+        len: usize,
+        channels: u16,
+        expected: usize,
+    },
+    #[error("bin carries {got} channels but the model expects {expected}")]
+    ChannelMismatch { got: u16, expected: usize },
+    #[error("bin is {got} µs wide but the model was trained on {expected} µs bins")]
+    BinWidthMismatch { got: u32, expected: u32 },
+}
+
+/// Number of distinct reject reasons, for per-reason counters.
+pub const N_REJECT_REASONS: usize = 7;
+
+impl RejectReason {
+    /// Stable index for per-reason counters.
+    pub fn index(&self) -> usize {
+        match self {
+            RejectReason::TooShort { .. } => 0,
+            RejectReason::BadMagic => 1,
+            RejectReason::BadVersion { .. } => 2,
+            RejectReason::ChannelsOutOfRange { .. } => 3,
+            RejectReason::LengthMismatch { .. } => 4,
+            RejectReason::ChannelMismatch { .. } => 5,
+            RejectReason::BinWidthMismatch { .. } => 6,
+        }
+    }
+
+    /// Counter names, in [`RejectReason::index`] order.
+    pub const NAMES: [&'static str; N_REJECT_REASONS] = [
+        "too_short",
+        "bad_magic",
+        "bad_version",
+        "channels_out_of_range",
+        "length_mismatch",
+        "channel_mismatch",
+        "bin_width_mismatch",
+    ];
+
+    pub fn name(&self) -> &'static str {
+        Self::NAMES[self.index()]
+    }
+}
+
+fn u16_at(b: &[u8], at: usize) -> u16 {
+    u16::from_le_bytes([b[at], b[at + 1]])
+}
+
+fn u32_at(b: &[u8], at: usize) -> u32 {
+    u32::from_le_bytes(b[at..at + 4].try_into().expect("4 bytes"))
+}
+
+fn u64_at(b: &[u8], at: usize) -> u64 {
+    u64::from_le_bytes(b[at..at + 8].try_into().expect("8 bytes"))
+}
+
+/// Parses and checks the structure of a bin datagram: header, magic,
+/// version, channel range and exact length. Unknown flag bits are kept but
+/// ignored, as SPEC §1 says.
+pub fn parse_bin(datagram: &[u8]) -> Result<BinHeader, RejectReason> {
+    if datagram.len() < BIN_HEADER_LEN {
+        return Err(RejectReason::TooShort {
+            len: datagram.len(),
+        });
+    }
+    if datagram[0..4] != BIN_MAGIC {
+        return Err(RejectReason::BadMagic);
+    }
+    let version = u16_at(datagram, 4);
+    if version != PACKET_VERSION {
+        return Err(RejectReason::BadVersion { version });
+    }
+    let channels = u16_at(datagram, 6);
+    if channels == 0 || usize::from(channels) > MAX_CHANNELS {
+        return Err(RejectReason::ChannelsOutOfRange { channels });
+    }
+    let expected = BIN_HEADER_LEN + 2 * usize::from(channels);
+    if datagram.len() != expected {
+        return Err(RejectReason::LengthMismatch {
+            len: datagram.len(),
+            channels,
+            expected,
+        });
+    }
+    Ok(BinHeader {
+        channels,
+        seq: u64_at(datagram, 8),
+        origin_ns: u64_at(datagram, 16),
+        bin_us: u32_at(datagram, 24),
+        flags: u32_at(datagram, 28),
+    })
+}
+
+/// [`parse_bin`], then the checks against the running model.
+pub fn parse_bin_for(
+    datagram: &[u8],
+    n_channels: usize,
+    bin_us: u32,
+) -> Result<BinHeader, RejectReason> {
+    let header = parse_bin(datagram)?;
+    if usize::from(header.channels) != n_channels {
+        return Err(RejectReason::ChannelMismatch {
+            got: header.channels,
+            expected: n_channels,
+        });
+    }
+    if header.bin_us != bin_us {
+        return Err(RejectReason::BinWidthMismatch {
+            got: header.bin_us,
+            expected: bin_us,
+        });
+    }
+    Ok(header)
+}
+
+/// Copies the counts of a datagram that [`parse_bin`] accepted into `out`
+/// (whose length must be the header's channel count).
+pub fn read_counts(datagram: &[u8], out: &mut [u16]) {
+    let body = &datagram[BIN_HEADER_LEN..BIN_HEADER_LEN + 2 * out.len()];
+    for (c, pair) in out.iter_mut().zip(body.chunks_exact(2)) {
+        *c = u16::from_le_bytes([pair[0], pair[1]]);
+    }
+}
+
+/// Writes a bin packet (for senders, tests and the bench).
+pub fn encode_bin(header: &BinHeader, counts: &[u16], out: &mut Vec<u8>) {
+    out.clear();
+    out.extend_from_slice(&BIN_MAGIC);
+    out.extend_from_slice(&PACKET_VERSION.to_le_bytes());
+    out.extend_from_slice(&header.channels.to_le_bytes());
+    out.extend_from_slice(&header.seq.to_le_bytes());
+    out.extend_from_slice(&header.origin_ns.to_le_bytes());
+    out.extend_from_slice(&header.bin_us.to_le_bytes());
+    out.extend_from_slice(&header.flags.to_le_bytes());
+    for c in counts {
+        out.extend_from_slice(&c.to_le_bytes());
+    }
+}
+
+/// Bin width in whole microseconds as the packets carry it.
+pub fn bin_us_of(bin_ms: f64) -> u32 {
+    (bin_ms * 1000.0).round() as u32
+}
+
+/// Byte length of a velocity packet with `dims` outputs.
+pub fn velocity_len(dims: usize) -> usize {
+    VELOCITY_HEADER_LEN + 16 * dims
+}
+
+/// Offset of `sent_ns`, which the sender patches just before sending.
+pub const SENT_NS_OFFSET: usize = 32;
+
+/// One velocity packet's fields, borrowed for encoding.
+#[derive(Clone, Copy, Debug)]
+pub struct VelocityFields<'a> {
+    pub state: u8,
+    pub seq: u64,
+    pub origin_ns: u64,
+    pub recv_ns: u64,
+    pub sent_ns: u64,
+    pub flags: u32,
+    pub command: &'a [f64],
+    pub estimate: &'a [f64],
+}
+
+/// Encodes a velocity packet into `out`, whose length must be
+/// [`velocity_len`] of the command's length.
+pub fn encode_velocity(fields: &VelocityFields<'_>, out: &mut [u8]) {
+    let d = fields.command.len();
+    debug_assert_eq!(fields.estimate.len(), d);
+    debug_assert_eq!(out.len(), velocity_len(d));
+    out[0..4].copy_from_slice(&VELOCITY_MAGIC);
+    out[4..6].copy_from_slice(&PACKET_VERSION.to_le_bytes());
+    out[6] = fields.state;
+    out[7] = d as u8;
+    out[8..16].copy_from_slice(&fields.seq.to_le_bytes());
+    out[16..24].copy_from_slice(&fields.origin_ns.to_le_bytes());
+    out[24..32].copy_from_slice(&fields.recv_ns.to_le_bytes());
+    out[32..40].copy_from_slice(&fields.sent_ns.to_le_bytes());
+    out[40..44].copy_from_slice(&fields.flags.to_le_bytes());
+    out[44..48].copy_from_slice(&0u32.to_le_bytes());
+    let mut at = VELOCITY_HEADER_LEN;
+    for v in fields.command.iter().chain(fields.estimate) {
+        out[at..at + 8].copy_from_slice(&v.to_le_bytes());
+        at += 8;
+    }
+}
+
+/// Sets `sent_ns` in an encoded velocity packet.
+pub fn patch_sent_ns(packet: &mut [u8], sent_ns: u64) {
+    packet[SENT_NS_OFFSET..SENT_NS_OFFSET + 8].copy_from_slice(&sent_ns.to_le_bytes());
+}
+
+/// A decoded velocity packet (actuator side, tests, replay verification).
+#[derive(Clone, Debug, PartialEq)]
+pub struct VelocityPacket {
+    pub state: u8,
+    pub seq: u64,
+    pub origin_ns: u64,
+    pub recv_ns: u64,
+    pub sent_ns: u64,
+    pub flags: u32,
+    pub command: Vec<f64>,
+    pub estimate: Vec<f64>,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, thiserror::Error)]
+pub enum VelocityPacketError {
+    #[error("velocity packet of {len} bytes is shorter than its 48-byte header")]
+    TooShort { len: usize },
+    #[error("magic is not NVEL")]
+    BadMagic,
+    #[error("velocity packet version {version}; expected 1")]
+    BadVersion { version: u16 },
+    #[error("dims {dims} is outside 1..=8")]
+    BadDims { dims: u8 },
+    #[error("velocity packet of {len} bytes; {dims} dims need exactly {expected}")]
+    LengthMismatch { len: usize, dims: u8, expected: usize },
+}
+
+impl VelocityPacket {
+    pub fn parse(bytes: &[u8]) -> Result<VelocityPacket, VelocityPacketError> {
+        if bytes.len() < VELOCITY_HEADER_LEN {
+            return Err(VelocityPacketError::TooShort { len: bytes.len() });
+        }
+        if bytes[0..4] != VELOCITY_MAGIC {
+            return Err(VelocityPacketError::BadMagic);
+        }
+        let version = u16_at(bytes, 4);
+        if version != PACKET_VERSION {
+            return Err(VelocityPacketError::BadVersion { version });
+        }
+        let dims = bytes[7];
+        if dims == 0 || usize::from(dims) > MAX_DIMS {
+            return Err(VelocityPacketError::BadDims { dims });
+        }
+        let d = usize::from(dims);
+        let expected = velocity_len(d);
+        if bytes.len() != expected {
+            return Err(VelocityPacketError::LengthMismatch {
+                len: bytes.len(),
+                dims,
+                expected,
+            });
+        }
+        let f64_at = |i: usize| {
+            f64::from_le_bytes(
+                bytes[VELOCITY_HEADER_LEN + 8 * i..VELOCITY_HEADER_LEN + 8 * i + 8]
+                    .try_into()
+                    .expect("8 bytes"),
+            )
+        };
+        Ok(VelocityPacket {
+            state: bytes[6],
+            seq: u64_at(bytes, 8),
+            origin_ns: u64_at(bytes, 16),
+            recv_ns: u64_at(bytes, 24),
+            sent_ns: u64_at(bytes, 32),
+            flags: u32_at(bytes, 40),
+            command: (0..d).map(f64_at).collect(),
+            estimate: (d..2 * d).map(f64_at).collect(),
+        })
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn bin(channels: u16, counts: &[u16]) -> Vec<u8> {
+        let mut out = Vec::new();
+        encode_bin(
+            &BinHeader {
+                channels,
+                seq: 7,
+                origin_ns: 11,
+                bin_us: 20_000,
+                flags: 0,
+            },
+            counts,
+            &mut out,
+        );
+        out
+    }
+
+    #[test]
+    fn bin_round_trip() {
+        let bytes = bin(3, &[1, 0, 65535]);
+        assert_eq!(bytes.len(), 38);
+        let h = parse_bin_for(&bytes, 3, 20_000).unwrap();
+        assert_eq!((h.seq, h.origin_ns, h.bin_us), (7, 11, 20_000));
+        let mut counts = [0u16; 3];
+        read_counts(&bytes, &mut counts);
+        assert_eq!(counts, [1, 0, 65535]);
+    }
+
+    #[test]
+    fn each_malformation_has_its_reason() {
+        let good = bin(3, &[1, 2, 3]);
+        assert_eq!(
+            parse_bin(&good[..10]),
+            Err(RejectReason::TooShort { len: 10 })
+        );
+        let mut m = good.clone();
+        m[0] = b'X';
+        assert_eq!(parse_bin(&m), Err(RejectReason::BadMagic));
+        let mut m = good.clone();
+        m[4] = 2;
+        assert_eq!(parse_bin(&m), Err(RejectReason::BadVersion { version: 2 }));
+        let mut m = good.clone();
+        m[6] = 0;
+        m[7] = 0;
+        assert_eq!(
+            parse_bin(&m),
+            Err(RejectReason::ChannelsOutOfRange { channels: 0 })
+        );
+        assert!(matches!(
+            parse_bin(&good[..good.len() - 1]),
+            Err(RejectReason::LengthMismatch { .. })
+        ));
+        assert!(matches!(
+            parse_bin_for(&good, 4, 20_000),
+            Err(RejectReason::ChannelMismatch { .. })
+        ));
+        assert!(matches!(
+            parse_bin_for(&good, 3, 10_000),
+            Err(RejectReason::BinWidthMismatch { .. })
+        ));
+    }
+
+    #[test]
+    fn unknown_flag_bits_are_ignored() {
+        let mut m = bin(1, &[4]);
+        m[28..32].copy_from_slice(&0xdead_beefu32.to_le_bytes());
+        assert!(parse_bin_for(&m, 1, 20_000).is_ok());
+    }
+
+    #[test]
+    fn velocity_round_trip() {
+        let mut buf = vec![0u8; velocity_len(2)];
+        encode_velocity(
+            &VelocityFields {
+                state: 1,
+                seq: 42,
+                origin_ns: 1,
+                recv_ns: 2,
+                sent_ns: 0,
+                flags: FLAG_SPEED_CLAMPED,
+                command: &[0.5, -0.25],
+                estimate: &[1.0, -0.5],
+            },
+            &mut buf,
+        );
+        patch_sent_ns(&mut buf, 3);
+        let p = VelocityPacket::parse(&buf).unwrap();
+        assert_eq!(p.seq, 42);
+        assert_eq!(p.sent_ns, 3);
+        assert_eq!(p.command, vec![0.5, -0.25]);
+        assert_eq!(p.estimate, vec![1.0, -0.5]);
+        assert_eq!(p.flags, FLAG_SPEED_CLAMPED);
+    }
+}

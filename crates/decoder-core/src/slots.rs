@@ -66,6 +66,8 @@ pub struct SlotAnswer {
     /// The time the decision was made on: the datagram's `recv_ns`, or the
     /// timeout's `now` for a slot answered at its deadline.
     pub decided_ns: u64,
+    /// When this slot fell due (nominal time plus slack).
+    pub deadline_ns: u64,
     pub state: SupervisorState,
     pub flags: u32,
 }
@@ -486,6 +488,7 @@ impl SlotEngine {
             self.pending[i].occupied = false;
         }
         self.counters.slots_answered += 1;
+        let deadline_ns = self.deadline_of(&clock, seq);
         sink.answer(
             &mut self.packet,
             &SlotAnswer {
@@ -493,6 +496,7 @@ impl SlotEngine {
                 recv_ns,
                 origin_ns,
                 decided_ns,
+                deadline_ns,
                 state: supervised.state,
                 flags,
             },

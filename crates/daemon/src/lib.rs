@@ -440,7 +440,7 @@ fn log_events(events: Receiver<TimedEvent>) {
                 tracing::warn!(
                     rejected = suppressed[0],
                     late = suppressed[1],
-                    duplicate = suppressed[2],
+                    duplicate_or_stray = suppressed[2],
                     "{total} more routine events in the last second not logged (see ctl status counters)"
                 );
             }
@@ -451,7 +451,7 @@ fn log_events(events: Receiver<TimedEvent>) {
         let routine = match event {
             EngineEvent::Rejected(_) => Some(0),
             EngineEvent::Late { .. } => Some(1),
-            EngineEvent::Duplicate { .. } => Some(2),
+            EngineEvent::Duplicate { .. } | EngineEvent::Stray { .. } => Some(2),
             _ => None,
         };
         if let Some(k) = routine {
@@ -465,6 +465,10 @@ fn log_events(events: Receiver<TimedEvent>) {
             EngineEvent::Rejected(r) => tracing::warn!(reason = r.name(), "datagram rejected: {r}"),
             EngineEvent::Late { seq } => tracing::warn!(seq, "bin arrived after its deadline; dropped (its slot was coasted)"),
             EngineEvent::Duplicate { seq } => tracing::warn!(seq, "duplicate bin dropped"),
+            EngineEvent::Stray { seq } => tracing::warn!(
+                seq,
+                "bin far outside the expected seq dropped as a stray (a second in sequence would start a new stream)"
+            ),
             EngineEvent::StreamStarted { seq, .. } => tracing::info!(seq, "stream started: bin clock anchored"),
             EngineEvent::NewStream { expected_seq, seq } => tracing::warn!(
                 expected_seq,

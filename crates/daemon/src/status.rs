@@ -197,8 +197,8 @@ impl Status {
         );
         let _ = writeln!(
             s,
-            "dropped bins       {} late, {} duplicate; {} new streams",
-            c.bins_late, c.bins_duplicate, c.new_streams
+            "dropped bins       {} late, {} duplicate, {} stray; {} new streams",
+            c.bins_late, c.bins_duplicate, c.bins_stray, c.new_streams
         );
         let rejects: Vec<String> = self
             .rejected
@@ -259,13 +259,14 @@ impl Status {
         let c = &self.counters;
         let l = &self.latency.recv_to_send_us;
         format!(
-            "state={} slots={} decoded={} missing={} late={} dup={} rejected={} recv_to_send_p50_us={:.1} p99_us={:.1} max_us={:.1} rec_lost={}",
+            "state={} slots={} decoded={} missing={} late={} dup={} stray={} rejected={} recv_to_send_p50_us={:.1} p99_us={:.1} max_us={:.1} rec_lost={}",
             self.state,
             c.slots_answered,
             c.bins_decoded,
             c.bins_missing,
             c.bins_late,
             c.bins_duplicate,
+            c.bins_stray,
             c.rejected,
             l.p50,
             l.p99,

@@ -16,8 +16,11 @@
 //! runs a few ppm from ours does not drift into the late zone over an hour.
 //! Bins ahead of the expected one (within the reorder window) wait for their
 //! slot; a bin for a slot already answered is late (it was coasted) or a
-//! duplicate (it was decoded); a seq outside the window either way starts a
-//! new stream: decoder reset, supervisor halted.
+//! duplicate (it was decoded). A seq outside the window either way is a
+//! stray and dropped, unless the very next bin follows it in seq: then the
+//! sender has restarted and a new stream begins with that second bin
+//! (decoder reset, supervisor halted). A single stale or foreign packet
+//! therefore never resets the decoder.
 //!
 //! Ordering rule, the same live and offline: before a datagram received at
 //! `recv_ns` is looked at, every slot whose deadline is earlier than
@@ -83,6 +86,7 @@ pub enum EngineEvent {
     Rejected(RejectReason),
     Late { seq: u64 },
     Duplicate { seq: u64 },
+    Stray { seq: u64 },
     ModelChanged { seq: u64 },
 }
 
@@ -113,6 +117,8 @@ pub struct EngineCounters {
     pub bins_missing: u64,
     pub bins_late: u64,
     pub bins_duplicate: u64,
+    /// Bins outside the reorder window not (yet) confirmed as a new stream.
+    pub bins_stray: u64,
     pub rejected: u64,
     pub rejected_by_reason: [u64; N_REJECT_REASONS],
     pub new_streams: u64,
@@ -188,6 +194,8 @@ pub struct SlotEngine {
     counts: Vec<u16>,
     packet: Vec<u8>,
     model_changed: bool,
+    /// The last out-of-window seq, awaiting confirmation as a new stream.
+    stray: Option<u64>,
     counters: EngineCounters,
     last_nonzero: Vec<u64>,
     last_saturated: Vec<u64>,
@@ -220,6 +228,7 @@ impl SlotEngine {
             counts: vec![0; n],
             packet: vec![0; packet::velocity_len(d)],
             model_changed: false,
+            stray: None,
             counters: EngineCounters::default(),
             last_nonzero: vec![0; n],
             last_saturated: vec![u64::MAX; n],
@@ -321,6 +330,10 @@ impl SlotEngine {
         };
         let next = clock.next_seq;
         let w = self.w();
+        let in_window = seq.abs_diff(next) < w || (seq < next && next - seq <= w);
+        if in_window {
+            self.stray = None;
+        }
         if seq == next {
             self.track_clock(recv_ns, seq);
             packet::read_counts(datagram, &mut self.counts);
@@ -346,8 +359,14 @@ impl SlotEngine {
                 self.counters.bins_late += 1;
                 sink.event(&EngineEvent::Late { seq });
             }
+        } else if self.stray != Some(seq.wrapping_sub(1)) {
+            // Outside the window either way. One such bin may be a stray
+            // (a stale packet, a second sender); only a second one that
+            // follows it in seq confirms that the sender restarted.
+            self.stray = Some(seq);
+            self.counters.bins_stray += 1;
+            sink.event(&EngineEvent::Stray { seq });
         } else {
-            // Outside the window either way: the sender restarted or jumped.
             self.counters.new_streams += 1;
             sink.event(&EngineEvent::NewStream {
                 expected_seq: next,
@@ -365,6 +384,7 @@ impl SlotEngine {
     }
 
     fn start_stream(&mut self, recv_ns: u64, seq: u64) {
+        self.stray = None;
         self.clock = Some(BinClock {
             t0_ns: recv_ns as i64,
             seq0: seq,

@@ -211,26 +211,31 @@ fn seq_going_back_starts_a_new_stream_halted() {
         rig.wait_until(seq);
         rig.send(seq, 100_000);
     }
-    // The front end restarts at 0, right after bin 1009.
-    let mut buf = Vec::new();
-    let counts = rig.session.bin_counts(0).to_vec();
-    packet::encode_bin(
-        &BinHeader {
-            channels: 8,
-            seq: 0,
-            origin_ns: 0,
-            bin_us: 20_000,
-            flags: 0,
-        },
-        &counts,
-        &mut buf,
-    );
-    let at = T0 + 1009 * BIN_NS + 200_000;
-    rig.engine.on_datagram(at, &buf, &mut rig.out);
+    // The front end restarts at 0, right after bin 1009: bin 0 alone is a
+    // stray; bin 1 following it confirms the new stream.
+    rig.send_at(0, T0 + 1009 * BIN_NS + 200_000);
+    assert_eq!(rig.engine.counters().new_streams, 0);
+    assert_eq!(rig.engine.counters().bins_stray, 1);
+    assert_eq!(rig.engine.state(), SupervisorState::Armed);
+    rig.send_at(1, T0 + 1009 * BIN_NS + 300_000);
     assert_eq!(rig.engine.counters().new_streams, 1);
     assert_eq!(rig.engine.state(), SupervisorState::Halted);
-    assert_eq!(rig.out.packets.last().unwrap().seq, 0);
-    assert_eq!(rig.engine.next_seq(), Some(1));
+    assert_eq!(rig.out.packets.last().unwrap().seq, 1);
+    assert_eq!(rig.engine.next_seq(), Some(2));
+}
+
+#[test]
+fn stale_packets_never_reset_the_stream() {
+    let mut rig = Rig::new(true);
+    for seq in 100..200 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+        rig.send(0, 200_000); // a stale replay of an old bin, every bin
+    }
+    let c = rig.engine.counters();
+    assert_eq!((c.new_streams, c.bins_stray, c.bins_decoded), (0, 100, 100));
+    assert_eq!(rig.seqs(), (100..200).collect::<Vec<_>>());
+    assert_eq!(rig.engine.state(), SupervisorState::Armed);
 }
 
 #[test]

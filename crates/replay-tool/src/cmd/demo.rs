@@ -94,7 +94,7 @@ pub fn run(args: &Args) -> Result<()> {
     let estimates = out.join("later-block-estimates.npy");
     let summary = replay::replay(&replay::Args {
         session: later.clone(),
-        model: model_path.clone(),
+        model: Some(model_path.clone()),
         out: estimates.clone(),
         no_steady_state: false,
     })?;

@@ -1,11 +1,20 @@
 //! `replay-tool replay`: decode a stored block with a model, bin by bin,
 //! through the same pipeline the daemon runs, and write the estimates.
+//!
+//! A session directory is decoded bin after bin. A session log from
+//! `decoderd` is replayed through the daemon's own slot engine — the same
+//! datagrams at the same times, the same operator commands and model loads —
+//! so every slot the daemon answered is answered again, and the replayed
+//! packets are compared with the recorded ones.
 
 use std::path::PathBuf;
 use std::time::Instant;
 
 use anyhow::{Context, Result, bail};
+use decoder_core::log_replay::replay_log;
 use decoder_core::metrics::scores;
+use decoder_core::packet::VelocityPacket;
+use decoder_core::session_log::{LogEnd, LogReader};
 use decoder_core::pipeline::{DecodePipeline, replay_block};
 use decoder_core::{ModelFile, Session};
 
@@ -13,12 +22,14 @@ use crate::output::write_table;
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Block to replay (session directory).
+    /// Block to replay: a session directory, or a session log (.vdlog) that
+    /// decoderd recorded.
     #[arg(long)]
     pub session: PathBuf,
-    /// Model file from `replay-tool train`.
+    /// Model file from `replay-tool train`. Required for a session
+    /// directory; for a session log it replaces the logged model(s).
     #[arg(long)]
-    pub model: PathBuf,
+    pub model: Option<PathBuf>,
     /// Estimates to write: FILE.npy (shape bins × outputs, float64) or FILE.csv.
     #[arg(long)]
     pub out: PathBuf,
@@ -32,25 +43,28 @@ pub struct ReplaySummary {
     pub bins_per_second: f64,
     /// (output, CC) against the block's own kinematics, when it has them.
     pub cc: Vec<(String, f64)>,
+    /// For a session log: slots whose replayed packet equals the recorded
+    /// one byte for byte, out of those recorded.
+    pub identical: Option<(u64, u64)>,
 }
 
 pub fn replay(args: &Args) -> Result<ReplaySummary> {
     if args.session.is_file() {
-        bail!(
-            "{} is a file; expected a session directory (manifest.toml, counts.npy)",
-            args.session.display()
-        );
+        return replay_session_log(args);
     }
-    let model = ModelFile::read(&args.model)?;
+    let Some(model_path) = &args.model else {
+        bail!("--model is required to replay a session directory");
+    };
+    let model = ModelFile::read(model_path)?;
     let session = Session::read(&args.session)?;
     let mut pipeline = DecodePipeline::with_options(&model, !args.no_steady_state)
-        .with_context(|| format!("building the decoder from {}", args.model.display()))?;
+        .with_context(|| format!("building the decoder from {}", model_path.display()))?;
     let started = Instant::now();
     let (estimates, faults) = replay_block(&mut pipeline, &session).with_context(|| {
         format!(
             "{} does not fit {}",
             args.session.display(),
-            args.model.display()
+            model_path.display()
         )
     })?;
     let elapsed = started.elapsed().as_secs_f64();
@@ -76,6 +90,67 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
         n_bins: session.n_bins,
         bins_per_second: session.n_bins as f64 / elapsed.max(1e-9),
         cc,
+        identical: None,
+    })
+}
+
+fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
+    let model = match &args.model {
+        Some(p) => Some(ModelFile::read(p)?),
+        None => None,
+    };
+    if args.no_steady_state {
+        bail!("--no-steady-state applies to session directories; a log replays as the daemon ran");
+    }
+    let mut reader = LogReader::open(&args.session)?;
+    let outputs = reader.header().outputs.clone();
+    let d = outputs.len();
+    let started = Instant::now();
+    let mut estimates = Vec::new();
+    let (mut identical, mut recorded) = (0u64, 0u64);
+    let mut bad_packet = None;
+    let summary = replay_log(&mut reader, model.as_ref(), |slot| {
+        match VelocityPacket::parse(slot.replayed) {
+            Ok(p) => estimates.extend_from_slice(&p.estimate),
+            Err(e) => bad_packet = Some(e),
+        }
+        if let Some(r) = slot.recorded {
+            recorded += 1;
+            identical += u64::from(r == slot.replayed);
+        }
+    })?;
+    if let Some(e) = bad_packet {
+        bail!("the replay produced an unreadable packet: {e}");
+    }
+    let elapsed = started.elapsed().as_secs_f64();
+    let n = estimates.len() / d.max(1);
+    write_table(&args.out, &outputs, n, &estimates)?;
+    match &summary.end {
+        Some(LogEnd::TornTail { offset, bytes }) => tracing::warn!(
+            "{}: torn tail at byte {offset} ({bytes} bytes dropped); replayed up to it",
+            args.session.display()
+        ),
+        Some(LogEnd::Corrupt { offset, problem }) => tracing::warn!(
+            "{}: {problem} at byte {offset}; replayed up to it",
+            args.session.display()
+        ),
+        Some(LogEnd::Unclosed) => tracing::warn!(
+            "{}: the log has no end record (daemon killed or still running)",
+            args.session.display()
+        ),
+        _ => {}
+    }
+    if summary.records_lost > 0 {
+        tracing::warn!(
+            lost = summary.records_lost,
+            "the recorder lost records in this session; the replay may differ after that point"
+        );
+    }
+    Ok(ReplaySummary {
+        n_bins: n,
+        bins_per_second: n as f64 / elapsed.max(1e-9),
+        cc: Vec::new(),
+        identical: model.is_none().then_some((identical, recorded)),
     })
 }
 
@@ -94,6 +169,9 @@ pub fn run(args: &Args) -> Result<()> {
             .map(|(n, c)| format!("{n} CC {c:.3}"))
             .collect();
         println!("against the block's own kinematics: {}", parts.join(", "));
+    }
+    if let Some((same, of)) = summary.identical {
+        println!("{same} of {of} recorded velocity packets reproduced byte for byte");
     }
     Ok(())
 }

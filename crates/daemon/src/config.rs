@@ -213,9 +213,17 @@ impl Check<'_> {
         }
     }
 
-    fn addr(&self, key: &'static str, text: &str, allow_remote: bool) -> Result<SocketAddr, ConfigError> {
+    fn addr(
+        &self,
+        key: &'static str,
+        text: &str,
+        allow_remote: bool,
+    ) -> Result<SocketAddr, ConfigError> {
         let addr: SocketAddr = text.parse().map_err(|_| {
-            self.err(key, format!("{text:?} is not an IP:port address such as 127.0.0.1:27400"))
+            self.err(
+                key,
+                format!("{text:?} is not an IP:port address such as 127.0.0.1:27400"),
+            )
         })?;
         if !allow_remote && !addr.ip().is_loopback() {
             return Err(self.err(
@@ -256,7 +264,11 @@ impl Check<'_> {
 impl Config {
     /// Validates `raw` with `overrides` applied; `origin` names the file in
     /// errors.
-    pub fn resolve(raw: RawConfig, overrides: &Overrides, origin: &str) -> Result<Config, ConfigError> {
+    pub fn resolve(
+        raw: RawConfig,
+        overrides: &Overrides,
+        origin: &str,
+    ) -> Result<Config, ConfigError> {
         let c = Check { origin };
         let allow_remote = raw.network.allow_non_loopback.unwrap_or(false);
         let listen_text = overrides
@@ -285,8 +297,12 @@ impl Config {
                 .or(raw.recording.dir)
                 .unwrap_or_else(|| PathBuf::from("recordings"))
         });
-        let record_buffer_bins =
-            c.count("recording.buffer_bins", raw.recording.buffer_bins.unwrap_or(1024), 16, 1 << 20)? as usize;
+        let record_buffer_bins = c.count(
+            "recording.buffer_bins",
+            raw.recording.buffer_bins.unwrap_or(1024),
+            16,
+            1 << 20,
+        )? as usize;
         let control_socket = overrides
             .socket
             .clone()
@@ -295,9 +311,18 @@ impl Config {
         let safety = SafetyConfig {
             max_speed: c.positive("safety.max_speed", raw.safety.max_speed.unwrap_or(50.0))?,
             max_accel: c.positive("safety.max_accel", raw.safety.max_accel.unwrap_or(500.0))?,
-            max_coast_bins: c.count("safety.max_coast_bins", raw.safety.max_coast_bins.unwrap_or(5), 0, 1000)?
-                as u32,
-            coast_decay: c.within("safety.coast_decay", raw.safety.coast_decay.unwrap_or(0.8), 0.0, 1.0)?,
+            max_coast_bins: c.count(
+                "safety.max_coast_bins",
+                raw.safety.max_coast_bins.unwrap_or(5),
+                0,
+                1000,
+            )? as u32,
+            coast_decay: c.within(
+                "safety.coast_decay",
+                raw.safety.coast_decay.unwrap_or(0.8),
+                0.0,
+                1.0,
+            )?,
         };
         let deadline_slack_bins = c.within(
             "timing.deadline_slack_bins",
@@ -305,17 +330,30 @@ impl Config {
             0.05,
             4.0,
         )?;
-        let reorder_window_bins =
-            c.count("timing.reorder_window_bins", raw.timing.reorder_window_bins.unwrap_or(64), 1, 4096)? as u32;
-        let clock_tracking =
-            c.within("timing.clock_tracking", raw.timing.clock_tracking.unwrap_or(0.01), 0.0, 0.5)?;
+        let reorder_window_bins = c.count(
+            "timing.reorder_window_bins",
+            raw.timing.reorder_window_bins.unwrap_or(64),
+            1,
+            4096,
+        )? as u32;
+        let clock_tracking = c.within(
+            "timing.clock_tracking",
+            raw.timing.clock_tracking.unwrap_or(0.01),
+            0.0,
+            0.5,
+        )?;
         let summary_interval = Duration::from_secs_f64(c.positive(
             "monitor.summary_interval_s",
             raw.monitor.summary_interval_s.unwrap_or(5.0),
         )?);
-        let dead_channel_s = c.positive("monitor.dead_channel_s", raw.monitor.dead_channel_s.unwrap_or(30.0))?;
-        let saturation_rate_hz =
-            c.positive("monitor.saturation_rate_hz", raw.monitor.saturation_rate_hz.unwrap_or(1000.0))?;
+        let dead_channel_s = c.positive(
+            "monitor.dead_channel_s",
+            raw.monitor.dead_channel_s.unwrap_or(30.0),
+        )?;
+        let saturation_rate_hz = c.positive(
+            "monitor.saturation_rate_hz",
+            raw.monitor.saturation_rate_hz.unwrap_or(1000.0),
+        )?;
         let n_cpus = std::thread::available_parallelism().map_or(1, |n| n.get()) as i64;
         let cpu = match raw.realtime.cpu {
             None => None,
@@ -328,11 +366,19 @@ impl Config {
         let log_format = match raw.log.format.as_deref().unwrap_or("human") {
             "human" => LogFormat::Human,
             "json" => LogFormat::Json,
-            other => return Err(c.err("log.format", format!("{other:?}; use \"human\" or \"json\""))),
+            other => {
+                return Err(c.err(
+                    "log.format",
+                    format!("{other:?}; use \"human\" or \"json\""),
+                ));
+            }
         };
         let log_level = raw.log.level.unwrap_or_else(|| "info".into());
         if !["error", "warn", "info", "debug", "trace"].contains(&log_level.as_str()) {
-            return Err(c.err("log.level", format!("{log_level:?}; use error, warn, info, debug or trace")));
+            return Err(c.err(
+                "log.level",
+                format!("{log_level:?}; use error, warn, info, debug or trace"),
+            ));
         }
         Ok(Config {
             listen,
@@ -379,7 +425,8 @@ impl Config {
             dead_channel_bins: (self.dead_channel_s / bin_s).ceil().max(1.0) as u64,
             // More than one spike per refractory period (1 ms at 1000 Hz) in
             // every bin of the window is not physiological: common practice.
-            saturation_count: ((self.saturation_rate_hz * bin_s).floor() as u64 + 1).min(65535) as u16,
+            saturation_count: ((self.saturation_rate_hz * bin_s).floor() as u64 + 1).min(65535)
+                as u16,
         }
     }
 }
@@ -419,9 +466,16 @@ mod tests {
         let e = resolve("[network]\nlisten = \"0.0.0.0:9000\"", &with_model())
             .unwrap_err()
             .to_string();
-        assert!(e.contains("network.listen") && e.contains("loopback"), "{e}");
         assert!(
-            resolve("[network]\nlisten = \"0.0.0.0:9000\"\nallow_non_loopback = true", &with_model()).is_ok()
+            e.contains("network.listen") && e.contains("loopback"),
+            "{e}"
+        );
+        assert!(
+            resolve(
+                "[network]\nlisten = \"0.0.0.0:9000\"\nallow_non_loopback = true",
+                &with_model()
+            )
+            .is_ok()
         );
     }
 
@@ -431,7 +485,10 @@ mod tests {
             ("[safety]\nmax_speed = -1.0", "safety.max_speed"),
             ("[safety]\ncoast_decay = 1.5", "safety.coast_decay"),
             ("[safety]\nmax_coast_bins = -2", "safety.max_coast_bins"),
-            ("[timing]\ndeadline_slack_bins = 0.0", "timing.deadline_slack_bins"),
+            (
+                "[timing]\ndeadline_slack_bins = 0.0",
+                "timing.deadline_slack_bins",
+            ),
             ("[realtime]\nfifo_priority = 150", "realtime.fifo_priority"),
             ("[log]\nformat = \"xml\"", "log.format"),
             ("[network]\nactuator = \"nowhere\"", "network.actuator"),
@@ -443,7 +500,9 @@ mod tests {
 
     #[test]
     fn unknown_keys_are_refused() {
-        let e = resolve("[safety]\nmax_sped = 1.0", &with_model()).unwrap_err().to_string();
+        let e = resolve("[safety]\nmax_sped = 1.0", &with_model())
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("max_sped"), "{e}");
     }
 
@@ -455,7 +514,11 @@ mod tests {
             arm: true,
             ..with_model()
         };
-        let c = resolve("[network]\nlisten = \"127.0.0.1:6000\"\n[recording]\nenabled = false", &o).unwrap();
+        let c = resolve(
+            "[network]\nlisten = \"127.0.0.1:6000\"\n[recording]\nenabled = false",
+            &o,
+        )
+        .unwrap();
         assert_eq!(c.listen.port(), 5000);
         assert_eq!(c.record_dir.as_deref(), Some(Path::new("/tmp/r")));
         assert!(c.arm_at_start);

@@ -56,9 +56,13 @@ pub struct LoadedModel {
 
 /// Reads and validates a model file (used at start and for `load`).
 pub fn read_model(path: &Path) -> Result<LoadedModel> {
-    let bytes = std::fs::read(path).with_context(|| format!("cannot read model {}", path.display()))?;
+    let bytes =
+        std::fs::read(path).with_context(|| format!("cannot read model {}", path.display()))?;
     let file = ModelFile::from_bytes(&bytes, &path.display().to_string())?;
-    let sha256: String = Sha256::digest(&bytes).iter().map(|b| format!("{b:02x}")).collect();
+    let sha256: String = Sha256::digest(&bytes)
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect();
     let info = ModelInfo {
         path: path.display().to_string(),
         sha256,
@@ -83,8 +87,14 @@ pub fn bind(path: &Path) -> Result<std::os::unix::net::UnixListener> {
         std::fs::remove_file(path)
             .with_context(|| format!("cannot remove stale control socket {}", path.display()))?;
     }
-    let std_listener = crate::sys::with_umask(0o177, || std::os::unix::net::UnixListener::bind(path))
-        .with_context(|| format!("cannot bind control socket {} (control.socket)", path.display()))?;
+    let std_listener =
+        crate::sys::with_umask(0o177, || std::os::unix::net::UnixListener::bind(path))
+            .with_context(|| {
+                format!(
+                    "cannot bind control socket {} (control.socket)",
+                    path.display()
+                )
+            })?;
     std_listener.set_nonblocking(true)?;
     Ok(std_listener)
 }
@@ -115,10 +125,16 @@ pub async fn serve(
     }
 }
 
-async fn handle(stream: UnixStream, to_rt: Sender<ControlRequest>, shape: StreamShape) -> Result<()> {
+async fn handle(
+    stream: UnixStream,
+    to_rt: Sender<ControlRequest>,
+    shape: StreamShape,
+) -> Result<()> {
     let (read, mut write) = stream.into_split();
     let mut line = String::new();
-    BufReader::new(read.take(1 << 16)).read_line(&mut line).await?;
+    BufReader::new(read.take(1 << 16))
+        .read_line(&mut line)
+        .await?;
     let reply = match serde_json::from_str::<Request>(&line) {
         Ok(request) => answer(request, &to_rt, shape).await,
         Err(e) => Reply {
@@ -166,7 +182,10 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
                 _ => OperatorCommand::Halt,
             };
             let (reply, rx) = oneshot::channel();
-            if to_rt.send(ControlRequest::Operator { command, reply }).is_err() {
+            if to_rt
+                .send(ControlRequest::Operator { command, reply })
+                .is_err()
+            {
                 return fail(RT_GONE);
             }
             match rx.await {
@@ -186,7 +205,8 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
             }
         }
         Request::Load { path } => {
-            let loaded = match tokio::task::spawn_blocking(move || prepare_load(&path, shape)).await {
+            let loaded = match tokio::task::spawn_blocking(move || prepare_load(&path, shape)).await
+            {
                 Ok(Ok(l)) => l,
                 Ok(Err(e)) => return fail(format!("load refused: {e:#}")),
                 Err(e) => return fail(format!("load failed: {e}")),

@@ -198,8 +198,12 @@ fn bind_udp(addr: SocketAddr, key: &str) -> Result<UdpSocket> {
 }
 
 fn log_path(dir: &Path) -> Result<PathBuf> {
-    std::fs::create_dir_all(dir)
-        .with_context(|| format!("cannot create recording directory {} (recording.dir)", dir.display()))?;
+    std::fs::create_dir_all(dir).with_context(|| {
+        format!(
+            "cannot create recording directory {} (recording.dir)",
+            dir.display()
+        )
+    })?;
     let stamp = humantime::format_rfc3339_seconds(SystemTime::now())
         .to_string()
         .replace(':', "");
@@ -214,7 +218,10 @@ fn log_path(dir: &Path) -> Result<PathBuf> {
             return Ok(p);
         }
     }
-    anyhow::bail!("too many session logs named for this second in {}", dir.display())
+    anyhow::bail!(
+        "too many session logs named for this second in {}",
+        dir.display()
+    )
 }
 
 /// Runs the daemon until `shutdown` is set or SIGTERM/SIGINT arrives;
@@ -274,14 +281,17 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
                 + (config.reorder_window_bins as usize + 4)
                     * session_log::record_len(packet::velocity_len(n_outputs))
                 + 4096;
-            let (rec, mut batcher) = Recorder::create(&path, &header, config.record_buffer_bins, capacity)
-                .with_context(|| format!("cannot create session log {}", path.display()))?;
+            let (rec, mut batcher) =
+                Recorder::create(&path, &header, config.record_buffer_bins, capacity)
+                    .with_context(|| format!("cannot create session log {}", path.display()))?;
             batcher.record_owned(RecordKind::Model, sys::monotonic_ns(), &loaded.bytes);
             tracing::info!(path = %path.display(), "recording the session");
             (Some(rec), Some(batcher))
         }
         None => {
-            tracing::warn!("recording is off (recording.enabled = false): this session cannot be replayed");
+            tracing::warn!(
+                "recording is off (recording.enabled = false): this session cannot be replayed"
+            );
             (None, None)
         }
     };
@@ -296,7 +306,9 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
         "decoderd {VERSION} starting"
     );
     if config.arm_at_start {
-        tracing::warn!("armed at start (--arm): bench use only; the command follows the decoder from the first bin");
+        tracing::warn!(
+            "armed at start (--arm): bench use only; the command follows the decoder from the first bin"
+        );
     } else {
         tracing::info!("disarmed: the command stays zero until `decoderd ctl arm`");
     }
@@ -463,13 +475,18 @@ fn log_events(events: Receiver<TimedEvent>) {
         }
         match event {
             EngineEvent::Rejected(r) => tracing::warn!(reason = r.name(), "datagram rejected: {r}"),
-            EngineEvent::Late { seq } => tracing::warn!(seq, "bin arrived after its deadline; dropped (its slot was coasted)"),
+            EngineEvent::Late { seq } => tracing::warn!(
+                seq,
+                "bin arrived after its deadline; dropped (its slot was coasted)"
+            ),
             EngineEvent::Duplicate { seq } => tracing::warn!(seq, "duplicate bin dropped"),
             EngineEvent::Stray { seq } => tracing::warn!(
                 seq,
                 "bin far outside the expected seq dropped as a stray (a second in sequence would start a new stream)"
             ),
-            EngineEvent::StreamStarted { seq, .. } => tracing::info!(seq, "stream started: bin clock anchored"),
+            EngineEvent::StreamStarted { seq, .. } => {
+                tracing::info!(seq, "stream started: bin clock anchored")
+            }
             EngineEvent::NewStream { expected_seq, seq } => tracing::warn!(
                 expected_seq,
                 seq,
@@ -478,12 +495,24 @@ fn log_events(events: Receiver<TimedEvent>) {
             EngineEvent::Transition(t) => {
                 let reason = serde_json::to_string(&t.reason).unwrap_or_default();
                 if matches!(t.to, decoder_core::supervisor::SupervisorState::Halted) {
-                    tracing::warn!(seq = t.seq, "{} -> {} ({reason})", t.from.name(), t.to.name());
+                    tracing::warn!(
+                        seq = t.seq,
+                        "{} -> {} ({reason})",
+                        t.from.name(),
+                        t.to.name()
+                    );
                 } else {
-                    tracing::info!(seq = t.seq, "{} -> {} ({reason})", t.from.name(), t.to.name());
+                    tracing::info!(
+                        seq = t.seq,
+                        "{} -> {} ({reason})",
+                        t.from.name(),
+                        t.to.name()
+                    );
                 }
             }
-            EngineEvent::ModelChanged { seq } => tracing::info!(seq, "model swapped in at this bin"),
+            EngineEvent::ModelChanged { seq } => {
+                tracing::info!(seq, "model swapped in at this bin")
+            }
         }
     }
 }

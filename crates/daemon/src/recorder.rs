@@ -109,9 +109,13 @@ impl RecordBatcher {
         if self.current_records == 0 {
             return;
         }
-        let Some(buf) = self.current.take() else { return };
+        let Some(buf) = self.current.take() else {
+            return;
+        };
         let records = std::mem::take(&mut self.current_records);
-        let Some(tx) = self.to_writer.as_ref() else { return };
+        let Some(tx) = self.to_writer.as_ref() else {
+            return;
+        };
         match tx.try_send(ToWriter::Pooled { buf, records }) {
             Ok(()) => {
                 self.stats.accepted.fetch_add(records, Ordering::Relaxed);
@@ -132,7 +136,9 @@ impl RecordBatcher {
         self.flush();
         let mut buf = Vec::with_capacity(session_log::record_len(body.len()));
         session_log::encode_record(&mut buf, kind, time_ns, &[body]);
-        let Some(tx) = self.to_writer.as_ref() else { return };
+        let Some(tx) = self.to_writer.as_ref() else {
+            return;
+        };
         // A model record must not be dropped for want of room: wait for it.
         match tx.send(ToWriter::Owned { buf, records: 1 }) {
             Ok(()) => self.stats.accepted.fetch_add(1, Ordering::Relaxed),
@@ -419,7 +425,13 @@ mod tests {
         let stats = rec.stats.clone();
         rec.join();
         let s = stats.snapshot(None);
-        assert!(s.alarm.as_deref().unwrap_or("").contains("recording stopped"), "{s:?}");
+        assert!(
+            s.alarm
+                .as_deref()
+                .unwrap_or("")
+                .contains("recording stopped"),
+            "{s:?}"
+        );
         assert_eq!(s.records_written + s.records_lost, 10_000);
         assert!(s.records_lost > 0);
         // What reached the "disk" reads up to the tear.
@@ -433,7 +445,11 @@ mod tests {
                 n += 1;
             }
         }
-        assert!(matches!(r.end(), Some(LogEnd::TornTail { .. })), "{:?}", r.end());
+        assert!(
+            matches!(r.end(), Some(LogEnd::TornTail { .. })),
+            "{:?}",
+            r.end()
+        );
         assert!(n <= s.records_written);
         assert!(n >= 30, "{n} datagram records readable");
     }

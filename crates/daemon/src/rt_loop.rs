@@ -217,11 +217,20 @@ impl RtLoop {
                     let code = session_log::operator_code(command);
                     let outcome = u8::from(result.is_err());
                     if let Some(b) = self.batcher.as_mut() {
-                        b.record(RecordKind::Operator, sys::monotonic_ns(), &[&[code, outcome]]);
+                        b.record(
+                            RecordKind::Operator,
+                            sys::monotonic_ns(),
+                            &[&[code, outcome]],
+                        );
                     }
                     let state = self.engine.state().name();
                     let _ = reply.send(match result {
-                        Ok(Some(t)) => Ok(format!("{} -> {} at seq {}", t.from.name(), t.to.name(), t.seq)),
+                        Ok(Some(t)) => Ok(format!(
+                            "{} -> {} at seq {}",
+                            t.from.name(),
+                            t.to.name(),
+                            t.seq
+                        )),
                         Ok(None) => Ok(format!("already {state}")),
                         Err(e) => Err(format!("refused: {e}")),
                     });
@@ -237,15 +246,18 @@ impl RtLoop {
                     match self.engine.swap_pipeline(pipeline, &mut out) {
                         Ok(old) => {
                             if let Some(b) = self.batcher.as_mut() {
-                                b.record_owned(RecordKind::Model, sys::monotonic_ns(), &model_bytes);
+                                b.record_owned(
+                                    RecordKind::Model,
+                                    sys::monotonic_ns(),
+                                    &model_bytes,
+                                );
                             }
                             self.info.model = info;
                             let seq = self.engine.next_seq().unwrap_or(0);
                             let _ = reply.send(Ok((seq, old)));
                         }
-                        Err((e, new)) => {
-                            drop(new);
-                            let _ = reply.send(Err(e.to_string()));
+                        Err(refused) => {
+                            let _ = reply.send(Err(refused.0.to_string()));
                         }
                     }
                 }

@@ -166,7 +166,11 @@ impl Status {
     pub fn table(&self) -> String {
         let c = &self.counters;
         let mut s = String::new();
-        let _ = writeln!(s, "decoderd {}  up {:.1} s", self.daemon_version, self.uptime_s);
+        let _ = writeln!(
+            s,
+            "decoderd {}  up {:.1} s",
+            self.daemon_version, self.uptime_s
+        );
         let _ = writeln!(s, "state              {}", self.state.to_uppercase());
         let _ = writeln!(
             s,
@@ -197,8 +201,8 @@ impl Status {
         );
         let _ = writeln!(
             s,
-            "dropped bins       {} late, {} duplicate, {} stray; {} new streams",
-            c.bins_late, c.bins_duplicate, c.bins_stray, c.new_streams
+            "dropped bins       {} late, {} duplicate, {} stray, {} flushed; {} new streams",
+            c.bins_late, c.bins_duplicate, c.bins_stray, c.bins_flushed, c.new_streams
         );
         let rejects: Vec<String> = self
             .rejected
@@ -221,9 +225,21 @@ impl Status {
             "faults             {} numerical, {} send errors, {} model changes",
             c.numerical_faults, self.send_errors, c.model_changes
         );
-        let _ = writeln!(s, "recv -> send       {}", pct(&self.latency.recv_to_send_us));
-        let _ = writeln!(s, "origin -> send     {}", pct(&self.latency.origin_to_send_us));
-        let _ = writeln!(s, "deadline overrun   {}", pct(&self.latency.deadline_overrun_us));
+        let _ = writeln!(
+            s,
+            "recv -> send       {}",
+            pct(&self.latency.recv_to_send_us)
+        );
+        let _ = writeln!(
+            s,
+            "origin -> send     {}",
+            pct(&self.latency.origin_to_send_us)
+        );
+        let _ = writeln!(
+            s,
+            "deadline overrun   {}",
+            pct(&self.latency.deadline_overrun_us)
+        );
         let _ = writeln!(s, "dead channels      {}", list(&self.dead_channels));
         let _ = writeln!(s, "saturated channels {}", list(&self.saturated_channels));
         match &self.recording {

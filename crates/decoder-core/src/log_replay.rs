@@ -139,9 +139,9 @@ pub fn replay_log(
             }
             LogRecord::Datagram { recv_ns, bytes } => {
                 summary.datagrams += 1;
-                let e = engine.as_mut().ok_or_else(|| LogReplayError::NoModel {
-                    path: path.clone(),
-                })?;
+                let e = engine
+                    .as_mut()
+                    .ok_or_else(|| LogReplayError::NoModel { path: path.clone() })?;
                 e.on_datagram(recv_ns, &bytes, &mut sink);
             }
             LogRecord::Operator { command, .. } => {

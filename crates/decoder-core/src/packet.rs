@@ -268,7 +268,11 @@ pub enum VelocityPacketError {
     #[error("dims {dims} is outside 1..=8")]
     BadDims { dims: u8 },
     #[error("velocity packet of {len} bytes; {dims} dims need exactly {expected}")]
-    LengthMismatch { len: usize, dims: u8, expected: usize },
+    LengthMismatch {
+        len: usize,
+        dims: u8,
+        expected: usize,
+    },
 }
 
 impl VelocityPacket {

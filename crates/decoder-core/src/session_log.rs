@@ -90,13 +90,35 @@ pub struct LogHeader {
 /// One record, decoded.
 #[derive(Clone, Debug, PartialEq)]
 pub enum LogRecord {
-    Datagram { recv_ns: u64, bytes: Vec<u8> },
-    Sent { decided_ns: u64, packet: Vec<u8> },
-    Event { time_ns: u64, json: String },
-    Operator { time_ns: u64, command: OperatorCommand, applied: bool },
-    Model { time_ns: u64, model_file: Vec<u8> },
-    Lost { time_ns: u64, records: u64 },
-    End { time_ns: u64, json: String },
+    Datagram {
+        recv_ns: u64,
+        bytes: Vec<u8>,
+    },
+    Sent {
+        decided_ns: u64,
+        packet: Vec<u8>,
+    },
+    Event {
+        time_ns: u64,
+        json: String,
+    },
+    Operator {
+        time_ns: u64,
+        command: OperatorCommand,
+        applied: bool,
+    },
+    Model {
+        time_ns: u64,
+        model_file: Vec<u8>,
+    },
+    Lost {
+        time_ns: u64,
+        records: u64,
+    },
+    End {
+        time_ns: u64,
+        json: String,
+    },
 }
 
 #[derive(Debug, thiserror::Error)]

@@ -79,15 +79,29 @@ pub struct SlotAnswer {
 #[derive(Clone, Copy, Debug, PartialEq, Serialize)]
 #[serde(tag = "event", rename_all = "snake_case")]
 pub enum EngineEvent {
-    StreamStarted { seq: u64, t0_ns: u64 },
-    NewStream { expected_seq: u64, seq: u64 },
+    StreamStarted {
+        seq: u64,
+        t0_ns: u64,
+    },
+    NewStream {
+        expected_seq: u64,
+        seq: u64,
+    },
     Transition(Transition),
     #[serde(serialize_with = "reject_as_text")]
     Rejected(RejectReason),
-    Late { seq: u64 },
-    Duplicate { seq: u64 },
-    Stray { seq: u64 },
-    ModelChanged { seq: u64 },
+    Late {
+        seq: u64,
+    },
+    Duplicate {
+        seq: u64,
+    },
+    Stray {
+        seq: u64,
+    },
+    ModelChanged {
+        seq: u64,
+    },
 }
 
 fn reject_as_text<S: serde::Serializer>(r: &RejectReason, s: S) -> Result<S::Ok, S::Error> {
@@ -119,6 +133,8 @@ pub struct EngineCounters {
     pub bins_duplicate: u64,
     /// Bins outside the reorder window not (yet) confirmed as a new stream.
     pub bins_stray: u64,
+    /// Bins waiting for their slot when a new stream began, discarded.
+    pub bins_flushed: u64,
     pub rejected: u64,
     pub rejected_by_reason: [u64; N_REJECT_REASONS],
     pub new_streams: u64,
@@ -273,6 +289,11 @@ impl SlotEngine {
         self.clock.map(|c| self.deadline_of(&c, c.next_seq))
     }
 
+    /// Bins that arrived ahead of their slot and wait in the reorder ring.
+    pub fn pending_bins(&self) -> usize {
+        self.pending.iter().filter(|p| p.occupied).count()
+    }
+
     pub fn consecutive_missing(&self) -> u32 {
         self.supervisor.consecutive_missing()
     }
@@ -323,7 +344,10 @@ impl SlotEngine {
         };
         let Some(clock) = self.clock else {
             self.start_stream(recv_ns, seq);
-            sink.event(&EngineEvent::StreamStarted { seq, t0_ns: recv_ns });
+            sink.event(&EngineEvent::StreamStarted {
+                seq,
+                t0_ns: recv_ns,
+            });
             packet::read_counts(datagram, &mut self.counts);
             self.answer(arrived, recv_ns, sink);
             return;
@@ -391,6 +415,9 @@ impl SlotEngine {
             next_seq: seq,
         });
         for p in &mut self.pending {
+            if p.occupied {
+                self.counters.bins_flushed += 1;
+            }
             p.occupied = false;
         }
         for a in &mut self.answered {
@@ -549,12 +576,7 @@ impl SlotEngine {
 
     /// Checks that `pipeline` could replace the running one.
     pub fn check_swap(&self, pipeline: &DecodePipeline) -> Result<(), SwapRefused> {
-        check_swap_against(
-            pipeline,
-            self.n_channels(),
-            self.bin_us,
-            self.n_outputs(),
-        )
+        check_swap_against(pipeline, self.n_channels(), self.bin_us, self.n_outputs())
     }
 
     /// Swaps in a new decoder before the next slot, which carries
@@ -564,9 +586,9 @@ impl SlotEngine {
         &mut self,
         pipeline: DecodePipeline,
         sink: &mut impl SlotSink,
-    ) -> Result<DecodePipeline, (SwapRefused, DecodePipeline)> {
+    ) -> Result<DecodePipeline, Box<(SwapRefused, DecodePipeline)>> {
         if let Err(e) = self.check_swap(&pipeline) {
-            return Err((e, pipeline));
+            return Err(Box::new((e, pipeline)));
         }
         let old = std::mem::replace(&mut self.pipeline, pipeline);
         self.model_changed = true;

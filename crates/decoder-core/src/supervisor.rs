@@ -55,7 +55,9 @@ pub enum TransitionReason {
     /// Bins arrive again after coasting.
     BinsResumed,
     /// More consecutive bins missing than may be coasted.
-    TooManyMissing { missing: u32 },
+    TooManyMissing {
+        missing: u32,
+    },
     /// The decoder reported a numerical fault or a non-finite estimate.
     NumericalFault,
     /// The sender's seq went back (or far ahead): a new stream.
@@ -110,9 +112,7 @@ pub struct Supervisor {
 pub enum ArmRefused {
     #[error("no bins have arrived yet; start the front end, then arm")]
     NoStream,
-    #[error(
-        "the last {missing} bins did not arrive; arm once the front end is streaming again"
-    )]
+    #[error("the last {missing} bins did not arrive; arm once the front end is streaming again")]
     StreamStale { missing: u32 },
     #[error("already {0}")]
     AlreadyActive(&'static str),
@@ -150,7 +150,12 @@ impl Supervisor {
         self.consecutive_missing
     }
 
-    fn go(&mut self, seq: u64, to: SupervisorState, reason: TransitionReason) -> Option<Transition> {
+    fn go(
+        &mut self,
+        seq: u64,
+        to: SupervisorState,
+        reason: TransitionReason,
+    ) -> Option<Transition> {
         if self.state == to {
             return None;
         }
@@ -186,7 +191,11 @@ impl Supervisor {
     }
 
     pub fn disarm(&mut self, seq: u64) -> Option<Transition> {
-        self.go(seq, SupervisorState::Disarmed, TransitionReason::OperatorDisarm)
+        self.go(
+            seq,
+            SupervisorState::Disarmed,
+            TransitionReason::OperatorDisarm,
+        )
     }
 
     pub fn halt(&mut self, seq: u64, reason: TransitionReason) -> Option<Transition> {
@@ -351,10 +360,16 @@ mod tests {
     fn bins_resuming_end_coasting() {
         let mut s = Supervisor::new(limits(), 1, true);
         s.on_bin(0, &[1.0], false, false);
-        assert_eq!(s.on_bin(1, &[1.0], true, false).state, SupervisorState::Coasting);
+        assert_eq!(
+            s.on_bin(1, &[1.0], true, false).state,
+            SupervisorState::Coasting
+        );
         let out = s.on_bin(2, &[1.0], false, false);
         assert_eq!(out.state, SupervisorState::Armed);
-        assert_eq!(out.transition.unwrap().reason, TransitionReason::BinsResumed);
+        assert_eq!(
+            out.transition.unwrap().reason,
+            TransitionReason::BinsResumed
+        );
     }
 
     #[test]

@@ -4,9 +4,7 @@
 
 use decoder_core::kalman::train::{KalmanFitOptions, fit_kalman};
 use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
-use decoder_core::packet::{
-    self, BinHeader, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, VelocityPacket,
-};
+use decoder_core::packet::{self, BinHeader, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, VelocityPacket};
 use decoder_core::pipeline::DecodePipeline;
 use decoder_core::simulate::{SimOptions, simulate};
 use decoder_core::slots::{
@@ -129,7 +127,12 @@ fn steady_stream_answers_each_bin_once_from_counts() {
         rig.send(seq, 100_000);
     }
     assert_eq!(rig.seqs(), (0..50).collect::<Vec<_>>());
-    assert!(rig.out.packets.iter().all(|p| p.flags & FLAG_BIN_MISSING == 0));
+    assert!(
+        rig.out
+            .packets
+            .iter()
+            .all(|p| p.flags & FLAG_BIN_MISSING == 0)
+    );
     assert!(rig.out.packets.iter().all(|p| p.state == 1));
     assert_eq!(rig.engine.counters().bins_decoded, 50);
 }
@@ -145,7 +148,11 @@ fn gap_of_three_bins_coasts_exactly_those_seqs() {
     for p in &rig.out.packets {
         let gap = (10..13).contains(&p.seq);
         assert_eq!(p.flags & FLAG_BIN_MISSING != 0, gap, "seq {}", p.seq);
-        let want = if gap { SupervisorState::Coasting } else { SupervisorState::Armed };
+        let want = if gap {
+            SupervisorState::Coasting
+        } else {
+            SupervisorState::Armed
+        };
         assert_eq!(p.state, want.wire(), "seq {}", p.seq);
         if gap {
             assert_eq!((p.recv_ns, p.origin_ns), (0, 0));
@@ -186,7 +193,12 @@ fn reordered_bins_are_decoded_in_seq_order() {
     assert_eq!(rig.seqs().len(), 5);
     rig.send(5, 200_000);
     assert_eq!(rig.seqs(), (0..7).collect::<Vec<_>>());
-    assert!(rig.out.packets.iter().all(|p| p.flags & FLAG_BIN_MISSING == 0));
+    assert!(
+        rig.out
+            .packets
+            .iter()
+            .all(|p| p.flags & FLAG_BIN_MISSING == 0)
+    );
 }
 
 #[test]
@@ -280,12 +292,24 @@ fn a_swapped_model_flags_exactly_the_next_slot() {
 #[test]
 fn arming_needs_a_live_stream() {
     let mut rig = Rig::new(false);
-    assert!(rig.engine.operator(OperatorCommand::Arm, &mut rig.out).is_err());
+    assert!(
+        rig.engine
+            .operator(OperatorCommand::Arm, &mut rig.out)
+            .is_err()
+    );
     rig.send(0, 100_000);
     rig.wait_until(3); // bins 1 and 2 missing
-    assert!(rig.engine.operator(OperatorCommand::Arm, &mut rig.out).is_err());
+    assert!(
+        rig.engine
+            .operator(OperatorCommand::Arm, &mut rig.out)
+            .is_err()
+    );
     rig.send(3, 100_000);
-    assert!(rig.engine.operator(OperatorCommand::Arm, &mut rig.out).is_ok());
+    assert!(
+        rig.engine
+            .operator(OperatorCommand::Arm, &mut rig.out)
+            .is_ok()
+    );
     assert_eq!(rig.engine.state(), SupervisorState::Armed);
 }
 

@@ -142,7 +142,8 @@ impl Daemon {
                 let mut buf = [0u8; 1024];
                 while !stop.load(Ordering::Relaxed) {
                     if let Ok(n) = actuator.recv(&mut buf) {
-                        let p = VelocityPacket::parse(&buf[..n]).expect("daemon sent a valid packet");
+                        let p =
+                            VelocityPacket::parse(&buf[..n]).expect("daemon sent a valid packet");
                         packets.lock().unwrap().push(p);
                     }
                 }
@@ -155,7 +156,11 @@ impl Daemon {
                     break s;
                 }
             }
-            assert!(Instant::now() < deadline, "decoderd did not come up: {}", std::fs::read_to_string(dir.path().join("decoderd.log")).unwrap_or_default());
+            assert!(
+                Instant::now() < deadline,
+                "decoderd did not come up: {}",
+                std::fs::read_to_string(dir.path().join("decoderd.log")).unwrap_or_default()
+            );
             std::thread::sleep(Duration::from_millis(20));
         };
         Daemon {

@@ -14,8 +14,8 @@ use anyhow::{Context, Result, bail};
 use decoder_core::log_replay::replay_log;
 use decoder_core::metrics::scores;
 use decoder_core::packet::VelocityPacket;
-use decoder_core::session_log::{LogEnd, LogReader};
 use decoder_core::pipeline::{DecodePipeline, replay_block};
+use decoder_core::session_log::{LogEnd, LogReader};
 use decoder_core::{ModelFile, Session};
 
 use crate::output::write_table;

@@ -532,3 +532,21 @@ mod tests {
         assert_eq!(c.engine_settings(20.0).deadline_slack_ns, 10_000_000);
     }
 }
+
+#[cfg(test)]
+mod example_file {
+    use super::*;
+
+    /// config/daemon.toml claims to show every default; hold it to that.
+    #[test]
+    fn the_example_config_states_the_defaults() {
+        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../config/daemon.toml");
+        let o = Overrides {
+            model: Some("m.model".into()),
+            ..Overrides::default()
+        };
+        let from_file = Config::resolve(RawConfig::from_file(&path).unwrap(), &o, "daemon.toml").unwrap();
+        let defaults = Config::resolve(RawConfig::default(), &o, "defaults").unwrap();
+        assert_eq!(from_file, defaults);
+    }
+}

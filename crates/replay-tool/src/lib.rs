@@ -8,6 +8,7 @@
 //! anything else is a user error (exit 2).
 
 pub mod cmd;
+pub mod live;
 pub mod output;
 pub mod plot;
 pub mod progress;
@@ -51,7 +52,8 @@ pub enum Command {
         #[command(subcommand)]
         command: ModelCommand,
     },
-    /// Run simulate → train → evaluate → replay end to end on a built-in demo.
+    /// The whole job on a built-in demo: simulate, train, evaluate, then run
+    /// decoderd live on loopback and stream a held-out block through it.
     Demo(cmd::demo::Args),
 }
 

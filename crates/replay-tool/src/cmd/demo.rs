@@ -1,18 +1,26 @@
-//! `replay-tool demo`: the whole offline job on synthetic data, in one
-//! command: simulate a calibration block and a later block from the same
-//! simulated array, train a Kalman decoder, cross-validate it against the
-//! Wiener baseline with a report, and replay the later block.
+//! `replay-tool demo`: the whole job on synthetic data, in one command:
+//! simulate a calibration block and a later block from the same simulated
+//! array, train a Kalman decoder, cross-validate it against the Wiener
+//! baseline with a report, replay the later block offline, and then run it
+//! live: start `decoderd` on loopback with the new model, stream the later
+//! block at the bin rate as a front end would, collect the commands in an
+//! actuator sink, and check them against the offline replay of the
+//! daemon's own recording.
 
-use std::path::PathBuf;
-use std::time::Instant;
+use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result};
+use decoder_core::Session;
 use decoder_core::evaluate::{DecoderSpec, cross_validate};
+use decoder_core::log_replay::replay_log;
+use decoder_core::session_log::LogReader;
 use decoder_core::simulate::{SimOptions, simulate};
 use decoder_core::train_config::TrainConfig;
 
 use super::{evaluate, replay, train};
 use crate::output::write_atomic;
+use crate::{CheckFailed, live};
 use crate::progress;
 
 #[derive(Debug, clap::Args)]
@@ -25,6 +33,13 @@ pub struct Args {
     /// Minutes of calibration block.
     #[arg(long, default_value_t = 10.0)]
     pub minutes: f64,
+    /// Seconds of the later block to stream live through decoderd (0 skips
+    /// the live step).
+    #[arg(long, default_value_t = 20.0)]
+    pub live_seconds: f64,
+    /// The decoderd binary (default: the one beside replay-tool).
+    #[arg(long)]
+    pub decoderd: Option<PathBuf>,
 }
 
 pub fn run(args: &Args) -> Result<()> {
@@ -110,6 +125,83 @@ pub fn run(args: &Args) -> Result<()> {
         parts.join(", "),
         estimates.display()
     );
+    if args.live_seconds > 0.0 {
+        live_step(args, &model_path, &blk)?;
+    }
     println!("done in {:.1} s", started.elapsed().as_secs_f64());
+    Ok(())
+}
+
+fn live_step(args: &Args, model_path: &Path, block: &Session) -> Result<()> {
+    let exe = live::find_decoderd(args.decoderd.as_deref())?;
+    let work = args.out.join("live");
+    let sink = live::ActuatorSink::bind()?;
+    let daemon = live::SpawnedDaemon::start(&exe, model_path, &work, sink.addr, true)?;
+    let n_bins = ((args.live_seconds * 1000.0 / block.bin_ms) as usize).clamp(1, block.n_bins);
+    println!(
+        "5. started decoderd (armed for this bench run) on {} -> actuator sink {}; streaming {n_bins} bins ({:.0} s) of the later block at the bin rate ...",
+        daemon.listen,
+        sink.addr,
+        n_bins as f64 * block.bin_ms / 1000.0
+    );
+    live::stream_bins(block, 0..n_bins, daemon.listen, 1.0)?;
+    // Let the last packets land.
+    let settle = Instant::now();
+    while sink.len() < n_bins && settle.elapsed() < Duration::from_secs(2) {
+        std::thread::sleep(Duration::from_millis(10));
+    }
+    let status = daemon.status()?;
+    daemon.stop()?;
+    let (packets, _) = sink.finish();
+    let c = &status.counters;
+    let l = &status.latency;
+    let by_state = |s: u8| packets.iter().filter(|p| p.state == s).count();
+    println!(
+        "   actuator sink got {} velocity packets for {n_bins} bins: {} armed, {} coasting, {} halted (heartbeats after the stream ended)",
+        packets.len(),
+        by_state(1),
+        by_state(2),
+        by_state(3)
+    );
+    println!(
+        "   latency recv->send: p50 {:.1} µs, p99 {:.1} µs, max {:.1} µs; front end's end of bin -> send: p50 {:.1} µs, p99 {:.1} µs",
+        l.recv_to_send_us.p50,
+        l.recv_to_send_us.p99,
+        l.recv_to_send_us.max,
+        l.origin_to_send_us.p50,
+        l.origin_to_send_us.p99
+    );
+    println!(
+        "   dropouts: {} missing (coasted), {} late, {} duplicate, {} rejected",
+        c.bins_missing, c.bins_late, c.bins_duplicate, c.rejected
+    );
+    let log = std::fs::read_dir(work.join("recordings"))?
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .filter(|p| p.extension().is_some_and(|e| e == "vdlog"))
+        .max()
+        .context("decoderd wrote no session log")?;
+    let mut reader = LogReader::open(&log)?;
+    let (mut same, mut recorded) = (0u64, 0u64);
+    replay_log(&mut reader, None, |slot| {
+        if let Some(r) = slot.recorded {
+            recorded += 1;
+            same += u64::from(r == slot.replayed);
+        }
+    })?;
+    println!(
+        "   offline replay of the recording reproduced {same} of {recorded} sent packets byte for byte"
+    );
+    println!("   recording -> {}", log.display());
+    println!(
+        "   (replay it: replay-tool replay --session {} --out replayed.npy)",
+        log.display()
+    );
+    if same != recorded {
+        return Err(CheckFailed(format!(
+            "{} of {recorded} replayed packets differ from the live ones",
+            recorded - same
+        ))
+        .into());
+    }
     Ok(())
 }

@@ -1,0 +1,245 @@
+//! Driving a real `decoderd` from outside, as a rig does: spawn it on
+//! loopback, play front end (paced bin packets), play actuator (collect
+//! velocity packets), read its status over the control socket, stop it
+//! with SIGTERM. Used by the demo's live step.
+
+use std::net::{SocketAddr, UdpSocket};
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::thread::JoinHandle;
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, Result, bail};
+use daemon::control::{Reply, Request, request};
+use daemon::status::Status;
+use decoder_core::Session;
+use decoder_core::packet::{self, BinHeader, VelocityPacket};
+
+/// The `decoderd` binary: `explicit`, else the one beside this executable,
+/// else whatever `decoderd` is on PATH.
+pub fn find_decoderd(explicit: Option<&Path>) -> Result<PathBuf> {
+    if let Some(p) = explicit {
+        if p.is_file() {
+            return Ok(p.to_path_buf());
+        }
+        bail!("--decoderd {}: no such file", p.display());
+    }
+    if let Ok(me) = std::env::current_exe() {
+        let beside = me.with_file_name("decoderd");
+        if beside.is_file() {
+            return Ok(beside);
+        }
+    }
+    Ok(PathBuf::from("decoderd"))
+}
+
+pub struct SpawnedDaemon {
+    child: Child,
+    pub socket: PathBuf,
+    pub listen: SocketAddr,
+    pub log_file: PathBuf,
+}
+
+impl SpawnedDaemon {
+    /// Starts `decoderd run` with its files under `work`, listening on an
+    /// ephemeral loopback port, and waits until its control socket answers.
+    pub fn start(
+        exe: &Path,
+        model: &Path,
+        work: &Path,
+        actuator: SocketAddr,
+        arm: bool,
+    ) -> Result<SpawnedDaemon> {
+        std::fs::create_dir_all(work).with_context(|| format!("cannot create {}", work.display()))?;
+        let socket = work.join("decoderd.sock");
+        let log_file = work.join("decoderd.log");
+        let config = work.join("daemon.toml");
+        std::fs::write(
+            &config,
+            format!(
+                "[control]\nsocket = {:?}\n[recording]\ndir = {:?}\n",
+                socket.display().to_string(),
+                work.join("recordings").display().to_string()
+            ),
+        )?;
+        let log = std::fs::File::create(&log_file)?;
+        let mut cmd = Command::new(exe);
+        cmd.arg("run")
+            .arg("--config")
+            .arg(&config)
+            .arg("--model")
+            .arg(model)
+            .arg("--listen")
+            .arg("127.0.0.1:0")
+            .arg("--actuator")
+            .arg(actuator.to_string())
+            .stdin(Stdio::null())
+            .stdout(Stdio::null())
+            .stderr(log);
+        if arm {
+            cmd.arg("--arm");
+        }
+        let mut child = cmd.spawn().with_context(|| {
+            format!(
+                "cannot start {}; build it with `cargo build --release` or pass --decoderd PATH",
+                exe.display()
+            )
+        })?;
+        let started = Instant::now();
+        loop {
+            if let Ok(Reply {
+                status: Some(s), ..
+            }) = request(&socket, &Request::Status)
+            {
+                return Ok(SpawnedDaemon {
+                    listen: s.listen.parse()?,
+                    child,
+                    socket,
+                    log_file,
+                });
+            }
+            if let Some(exit) = child.try_wait()? {
+                bail!(
+                    "decoderd exited at start ({exit}): {}",
+                    std::fs::read_to_string(&log_file).unwrap_or_default().trim()
+                );
+            }
+            if started.elapsed() > Duration::from_secs(20) {
+                let _ = child.kill();
+                bail!("decoderd did not answer on {} within 20 s", socket.display());
+            }
+            std::thread::sleep(Duration::from_millis(20));
+        }
+    }
+
+    pub fn status(&self) -> Result<Status> {
+        let r = request(&self.socket, &Request::Status)?;
+        r.status.map(|s| *s).context("decoderd sent no status")
+    }
+
+    /// SIGTERM, then waits for a clean exit.
+    pub fn stop(mut self) -> Result<()> {
+        // SAFETY: signalling our own child by its pid.
+        unsafe { libc::kill(self.child.id() as i32, libc::SIGTERM) };
+        let started = Instant::now();
+        loop {
+            if let Some(exit) = self.child.try_wait()? {
+                if !exit.success() {
+                    bail!("decoderd exited with {exit}; see {}", self.log_file.display());
+                }
+                return Ok(());
+            }
+            if started.elapsed() > Duration::from_secs(10) {
+                let _ = self.child.kill();
+                bail!("decoderd did not stop within 10 s of SIGTERM");
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        }
+    }
+}
+
+impl Drop for SpawnedDaemon {
+    fn drop(&mut self) {
+        if let Ok(None) = self.child.try_wait() {
+            let _ = self.child.kill();
+            let _ = self.child.wait();
+        }
+    }
+}
+
+/// Plays the actuator: collects every velocity packet on a loopback port.
+pub struct ActuatorSink {
+    pub addr: SocketAddr,
+    packets: Arc<Mutex<Vec<VelocityPacket>>>,
+    stop: Arc<AtomicBool>,
+    thread: Option<JoinHandle<u64>>,
+}
+
+impl ActuatorSink {
+    pub fn bind() -> Result<ActuatorSink> {
+        let socket = UdpSocket::bind("127.0.0.1:0")?;
+        socket.set_read_timeout(Some(Duration::from_millis(50)))?;
+        let addr = socket.local_addr()?;
+        let packets = Arc::new(Mutex::new(Vec::new()));
+        let stop = Arc::new(AtomicBool::new(false));
+        let thread = {
+            let packets = packets.clone();
+            let stop = stop.clone();
+            std::thread::spawn(move || {
+                let mut buf = [0u8; 2048];
+                let mut unreadable = 0;
+                while !stop.load(Ordering::Relaxed) {
+                    if let Ok(n) = socket.recv(&mut buf) {
+                        match VelocityPacket::parse(&buf[..n]) {
+                            Ok(p) => packets.lock().expect("sink lock").push(p),
+                            Err(_) => unreadable += 1,
+                        }
+                    }
+                }
+                unreadable
+            })
+        };
+        Ok(ActuatorSink {
+            addr,
+            packets,
+            stop,
+            thread: Some(thread),
+        })
+    }
+
+    pub fn len(&self) -> usize {
+        self.packets.lock().expect("sink lock").len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// Stops listening; returns the packets and how many were unreadable.
+    pub fn finish(mut self) -> (Vec<VelocityPacket>, u64) {
+        self.stop.store(true, Ordering::Relaxed);
+        let unreadable = self.thread.take().map_or(0, |t| t.join().unwrap_or(0));
+        let packets = std::mem::take(&mut *self.packets.lock().expect("sink lock"));
+        (packets, unreadable)
+    }
+}
+
+/// Sends `bins` of `session` to `target` at the bin rate (times `speed`),
+/// stamping origin_ns at the end of each bin; returns how many were sent.
+pub fn stream_bins(
+    session: &Session,
+    bins: std::ops::Range<usize>,
+    target: SocketAddr,
+    speed: f64,
+) -> Result<usize> {
+    let socket = UdpSocket::bind("127.0.0.1:0")?;
+    let period = Duration::from_secs_f64(session.bin_ms / 1000.0 / speed);
+    let bin_us = packet::bin_us_of(session.bin_ms);
+    let mut buf = Vec::with_capacity(packet::BIN_HEADER_LEN + 2 * session.n_channels);
+    let t0 = Instant::now();
+    let mut sent = 0;
+    for (k, bin) in bins.enumerate() {
+        let due = t0 + period * (k as u32 + 1);
+        if let Some(wait) = due.checked_duration_since(Instant::now()) {
+            std::thread::sleep(wait);
+        }
+        packet::encode_bin(
+            &BinHeader {
+                channels: session.n_channels as u16,
+                seq: bin as u64,
+                origin_ns: daemon::sys::monotonic_ns(),
+                bin_us,
+                flags: 0,
+            },
+            session.bin_counts(bin),
+            &mut buf,
+        );
+        socket
+            .send_to(&buf, target)
+            .with_context(|| format!("cannot send bins to {target}"))?;
+        sent += 1;
+    }
+    Ok(sent)
+}

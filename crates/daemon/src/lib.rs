@@ -7,6 +7,7 @@
 //! summary line and signals ([`control`]). The decode logic itself is
 //! `decoder_core::slots`, shared with offline replay.
 
+pub mod alloc_count;
 pub mod config;
 pub mod control;
 pub mod recorder;
@@ -229,7 +230,7 @@ fn log_path(dir: &Path) -> Result<PathBuf> {
 pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
     let started = Instant::now();
     let model_path = config.model.clone();
-    let loaded = control::read_model(&model_path).context("model.path / --model")?;
+    let mut loaded = control::read_model(&model_path).context("model.path / --model")?;
     let pipeline = DecodePipeline::new(&loaded.file)
         .with_context(|| format!("model {} cannot be run", model_path.display()))?;
     let settings = config.engine_settings(loaded.file.bin_ms);
@@ -277,14 +278,15 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
                 outputs: loaded.info.outputs.clone(),
                 settings: settings.clone(),
             });
+            // Room for a typical loop iteration (a datagram, a few sent
+            // packets, an event); a bigger batch grows its buffer once.
             let capacity = 2 * session_log::record_len(8 + packet::BIN_HEADER_LEN + 2 * n_channels)
-                + (config.reorder_window_bins as usize + 4)
-                    * session_log::record_len(packet::velocity_len(n_outputs))
-                + 4096;
+                + 16 * session_log::record_len(8 + packet::velocity_len(n_outputs))
+                + 2048;
             let (rec, mut batcher) =
                 Recorder::create(&path, &header, config.record_buffer_bins, capacity)
                     .with_context(|| format!("cannot create session log {}", path.display()))?;
-            batcher.record_owned(RecordKind::Model, sys::monotonic_ns(), &loaded.bytes);
+            batcher.record_owned(RecordKind::Model, sys::monotonic_ns(), std::mem::take(&mut loaded.bytes));
             tracing::info!(path = %path.display(), "recording the session");
             (Some(rec), Some(batcher))
         }
@@ -329,6 +331,8 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
         realtime_warnings: Vec::new(),
         recording: recorder.as_ref().map(|r| (r.path.clone(), r.stats.clone())),
     };
+    // The model's bytes and parameters are in the pipeline and the log now.
+    drop(loaded);
     let realtime = config.realtime.clone();
     let rt_shutdown = shutdown.clone();
     let actuator = config.actuator;

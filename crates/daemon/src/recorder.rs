@@ -73,8 +73,13 @@ impl RecorderStats {
 enum ToWriter {
     /// A pooled buffer, returned to the pool once written.
     Pooled { buf: Vec<u8>, records: u64 },
-    /// A one-off buffer (a model file), freed once written.
-    Owned { buf: Vec<u8>, records: u64 },
+    /// A one-off record (a model file): its prefix and its body, written
+    /// back to back so a large body is never copied.
+    Owned {
+        prefix: Vec<u8>,
+        body: Vec<u8>,
+        records: u64,
+    },
 }
 
 /// The real-time side: encodes records without allocating.
@@ -130,17 +135,22 @@ impl RecordBatcher {
         }
     }
 
-    /// Records a large one-off body (a model file) in order with the rest.
-    /// Allocates; used at model loads only, never per bin.
-    pub fn record_owned(&mut self, kind: RecordKind, time_ns: u64, body: &[u8]) {
+    /// Records a large one-off body (a model file, the end summary) in
+    /// order with the rest. Allocates a little; used at start, at model
+    /// loads and at the end, never per bin.
+    pub fn record_owned(&mut self, kind: RecordKind, time_ns: u64, body: Vec<u8>) {
         self.flush();
-        let mut buf = Vec::with_capacity(session_log::record_len(body.len()));
-        session_log::encode_record(&mut buf, kind, time_ns, &[body]);
+        let prefix = session_log::encode_record_prefix(kind, time_ns, &body);
         let Some(tx) = self.to_writer.as_ref() else {
             return;
         };
         // A model record must not be dropped for want of room: wait for it.
-        match tx.send(ToWriter::Owned { buf, records: 1 }) {
+        let message = ToWriter::Owned {
+            prefix,
+            body,
+            records: 1,
+        };
+        match tx.send(message) {
             Ok(()) => self.stats.accepted.fetch_add(1, Ordering::Relaxed),
             Err(_) => self.stats.lost.fetch_add(1, Ordering::Relaxed),
         };
@@ -258,9 +268,13 @@ fn writer_loop<W: LogDestination>(
             }
             Err(crossbeam_channel::RecvTimeoutError::Disconnected) => break,
         };
-        let (buf, records, pooled) = match msg {
-            ToWriter::Pooled { buf, records } => (buf, records, true),
-            ToWriter::Owned { buf, records } => (buf, records, false),
+        let (buf, body, records, pooled) = match msg {
+            ToWriter::Pooled { buf, records } => (buf, Vec::new(), records, true),
+            ToWriter::Owned {
+                prefix,
+                body,
+                records,
+            } => (prefix, body, records, false),
         };
         if failed {
             stats.lost.fetch_add(records, Ordering::Relaxed);
@@ -276,10 +290,12 @@ fn writer_loop<W: LogDestination>(
                 }
             }
             if !failed {
-                match out.write_all(&buf) {
+                match out.write_all(&buf).and_then(|()| out.write_all(&body)) {
                     Ok(()) => {
                         stats.written.fetch_add(records, Ordering::Relaxed);
-                        stats.bytes.fetch_add(buf.len() as u64, Ordering::Relaxed);
+                        stats
+                            .bytes
+                            .fetch_add((buf.len() + body.len()) as u64, Ordering::Relaxed);
                         dirty = true;
                     }
                     Err(e) => {
@@ -382,7 +398,7 @@ mod tests {
                 wait_for(&rec.stats, i + 1);
             }
         }
-        b.record_owned(RecordKind::End, 1000, b"{}");
+        b.record_owned(RecordKind::End, 1000, b"{}".to_vec());
         b.close();
         let stats = rec.stats.clone();
         rec.join();

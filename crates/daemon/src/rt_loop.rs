@@ -21,7 +21,7 @@ use tokio::sync::oneshot;
 
 use crate::recorder::{RecordBatcher, RecorderStats};
 use crate::status::{ModelInfo, Monitor, Status, rejected_by_name};
-use crate::sys;
+use crate::{alloc_count, sys};
 
 /// The longest the loop sleeps without looking at control requests and
 /// the shutdown flag.
@@ -140,6 +140,9 @@ impl RtLoop {
         if let Err(e) = self.input.set_nonblocking(true) {
             tracing::error!("cannot make the bin socket non-blocking: {e}");
         }
+        // Warm-up (the buffers above) is over: from here on the loop is the
+        // decode path, except while it serves control requests.
+        alloc_count::set_on_decode_path(true);
         while !self.shutdown.load(Ordering::Relaxed) {
             let now = sys::monotonic_ns();
             let wait = match self.engine.next_deadline() {
@@ -165,12 +168,17 @@ impl RtLoop {
                 }
             }
             self.flush_records();
-            self.serve_control(&mut json);
+            if !self.control.is_empty() {
+                alloc_count::set_on_decode_path(false);
+                self.serve_control(&mut json);
+                alloc_count::set_on_decode_path(true);
+            }
         }
+        alloc_count::set_on_decode_path(false);
         let status = self.status();
         if let Some(b) = self.batcher.as_mut() {
             let end = serde_json::to_vec(&status).unwrap_or_default();
-            b.record_owned(RecordKind::End, sys::monotonic_ns(), &end);
+            b.record_owned(RecordKind::End, sys::monotonic_ns(), end);
             b.close();
         }
         status
@@ -249,7 +257,7 @@ impl RtLoop {
                                 b.record_owned(
                                     RecordKind::Model,
                                     sys::monotonic_ns(),
-                                    &model_bytes,
+                                    model_bytes,
                                 );
                             }
                             self.info.model = info;
@@ -293,6 +301,7 @@ impl RtLoop {
                 .as_ref()
                 .map(|(p, s)| s.snapshot(Some(p))),
             rss_bytes: sys::rss_bytes(),
+            decode_path_allocations: alloc_count::decode_path_allocations(),
             realtime_warnings: self.info.realtime_warnings.clone(),
         }
     }

@@ -127,6 +127,9 @@ pub struct Status {
     pub saturated_channels: Vec<usize>,
     pub recording: Option<RecorderSnapshot>,
     pub rss_bytes: Option<u64>,
+    /// Heap allocations on the decode path since start (should stay at its
+    /// warm-up value); `None` when not counted.
+    pub decode_path_allocations: Option<u64>,
     pub realtime_warnings: Vec<String>,
 }
 
@@ -263,6 +266,9 @@ impl Status {
         }
         if let Some(rss) = self.rss_bytes {
             let _ = writeln!(s, "memory (RSS)       {:.1} MB", rss as f64 / 1e6);
+        }
+        if let Some(n) = self.decode_path_allocations {
+            let _ = writeln!(s, "decode-path allocs {n} since start");
         }
         for w in &self.realtime_warnings {
             let _ = writeln!(s, "warning            {w}");

@@ -20,7 +20,10 @@ fn missing(p: &VelocityPacket) -> bool {
 #[test]
 fn normal_stream_is_decoded_bin_by_bin() {
     let d = Daemon::start(true, TEST_TIMING);
-    d.stream(0..50, 0);
+    d.stream(0..10, 0);
+    d.wait_for_seq(9);
+    let warm = d.status().decode_path_allocations.expect("decoderd counts allocations");
+    d.stream(10..50, 10);
     let p = d.wait_for_seq(49);
     let p: Vec<_> = p.into_iter().take(50).collect();
     assert_eq!(seqs(&p), (0..50).collect::<Vec<_>>());
@@ -30,6 +33,8 @@ fn normal_stream_is_decoded_bin_by_bin() {
     assert_eq!(s.counters.bins_decoded, 50);
     assert_eq!(s.latency.recv_to_send_us.count, 50);
     assert!(s.latency.origin_to_send_us.count > 0);
+    // No heap allocation on the decode path after warm-up.
+    assert_eq!(s.decode_path_allocations, Some(warm), "allocations during 40 bins");
 }
 
 #[test]

@@ -174,6 +174,24 @@ pub fn encode_record(out: &mut Vec<u8>, kind: RecordKind, time_ns: u64, parts: &
     }
 }
 
+/// The length, checksum, kind and time of a record whose body is `body`,
+/// for writers that send the body separately.
+pub fn encode_record_prefix(kind: RecordKind, time_ns: u64, body: &[u8]) -> Vec<u8> {
+    let len = (RECORD_FIXED_LEN + body.len()) as u32;
+    let kind_byte = [kind as u8];
+    let time = time_ns.to_le_bytes();
+    let mut crc = crc32fast::Hasher::new();
+    crc.update(&kind_byte);
+    crc.update(&time);
+    crc.update(body);
+    let mut out = Vec::with_capacity(RECORD_PREFIX_LEN + RECORD_FIXED_LEN);
+    out.extend_from_slice(&len.to_le_bytes());
+    out.extend_from_slice(&crc.finalize().to_le_bytes());
+    out.extend_from_slice(&kind_byte);
+    out.extend_from_slice(&time);
+    out
+}
+
 /// Bytes one record with a body of `body_len` takes.
 pub fn record_len(body_len: usize) -> usize {
     RECORD_PREFIX_LEN + RECORD_FIXED_LEN + body_len

@@ -272,7 +272,10 @@ fn main() {
                 break *s;
             }
         }
-        assert!(up.elapsed() < Duration::from_secs(30), "decoderd did not start");
+        assert!(
+            up.elapsed() < Duration::from_secs(30),
+            "decoderd did not start"
+        );
         std::thread::sleep(Duration::from_millis(20));
     };
     let listen: SocketAddr = first.listen.parse().unwrap();
@@ -334,7 +337,9 @@ fn main() {
     });
     println!("{}", serde_json::to_string_pretty(&report).unwrap());
     println!();
-    println!("loop latency, {n} bins at {rate_hz} Hz × {channels} channels (medians of this run; machines are noisy)");
+    println!(
+        "loop latency, {n} bins at {rate_hz} Hz × {channels} channels (medians of this run; machines are noisy)"
+    );
     println!(
         "  decoderd recv→send       p50 {:7.1} µs   p99 {:7.1} µs   max {:8.1} µs",
         l.p50, l.p99, l.max
@@ -356,9 +361,7 @@ fn main() {
         "  slots without a packet {unanswered} of {n}   bins coasted {sink_missing} (arrived after their deadline: {})",
         end.counters.bins_late
     );
-    println!(
-        "  decode-path heap allocations after warm-up {allocs:?} over {bins_after_warm} bins"
-    );
+    println!("  decode-path heap allocations after warm-up {allocs:?} over {bins_after_warm} bins");
     println!(
         "  RSS {:.1} MB (peak {:.1} MB, during model load)",
         rss_now_kb.map_or(f64::NAN, |k| k as f64 / 1024.0),

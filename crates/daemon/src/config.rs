@@ -545,7 +545,8 @@ mod example_file {
             model: Some("m.model".into()),
             ..Overrides::default()
         };
-        let from_file = Config::resolve(RawConfig::from_file(&path).unwrap(), &o, "daemon.toml").unwrap();
+        let from_file =
+            Config::resolve(RawConfig::from_file(&path).unwrap(), &o, "daemon.toml").unwrap();
         let defaults = Config::resolve(RawConfig::default(), &o, "defaults").unwrap();
         assert_eq!(from_file, defaults);
     }

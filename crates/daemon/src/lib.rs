@@ -286,7 +286,11 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
             let (rec, mut batcher) =
                 Recorder::create(&path, &header, config.record_buffer_bins, capacity)
                     .with_context(|| format!("cannot create session log {}", path.display()))?;
-            batcher.record_owned(RecordKind::Model, sys::monotonic_ns(), std::mem::take(&mut loaded.bytes));
+            batcher.record_owned(
+                RecordKind::Model,
+                sys::monotonic_ns(),
+                std::mem::take(&mut loaded.bytes),
+            );
             tracing::info!(path = %path.display(), "recording the session");
             (Some(rec), Some(batcher))
         }

@@ -95,6 +95,15 @@ impl RecordBatcher {
     /// Appends one record to the current batch; counts it lost when no
     /// buffer is free.
     pub fn record(&mut self, kind: RecordKind, time_ns: u64, parts: &[&[u8]]) {
+        let needed = session_log::record_len(parts.iter().map(|p| p.len()).sum());
+        // A full batch goes now rather than growing its buffer: a burst of
+        // slots after a stall must not allocate. (Only a record bigger than
+        // a whole buffer — an oversized junk datagram — grows one.)
+        if let Some(buf) = self.current.as_ref() {
+            if !buf.is_empty() && buf.len() + needed > buf.capacity() {
+                self.flush();
+            }
+        }
         if self.current.is_none() {
             self.current = self.free.try_recv().ok();
         }

@@ -254,11 +254,7 @@ impl RtLoop {
                     match self.engine.swap_pipeline(pipeline, &mut out) {
                         Ok(old) => {
                             if let Some(b) = self.batcher.as_mut() {
-                                b.record_owned(
-                                    RecordKind::Model,
-                                    sys::monotonic_ns(),
-                                    model_bytes,
-                                );
+                                b.record_owned(RecordKind::Model, sys::monotonic_ns(), model_bytes);
                             }
                             self.info.model = info;
                             let seq = self.engine.next_seq().unwrap_or(0);

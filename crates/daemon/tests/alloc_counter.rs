@@ -10,7 +10,11 @@ static ALLOCATOR: CountingAllocator = CountingAllocator;
 
 #[test]
 fn counts_only_marked_stretches() {
-    assert_eq!(decode_path_allocations(), None, "not reported before install");
+    assert_eq!(
+        decode_path_allocations(),
+        None,
+        "not reported before install"
+    );
     mark_installed();
     let before = decode_path_allocations().unwrap();
     let unmarked: Vec<u64> = (0..100).collect();

@@ -22,7 +22,10 @@ fn normal_stream_is_decoded_bin_by_bin() {
     let d = Daemon::start(true, TEST_TIMING);
     d.stream(0..10, 0);
     d.wait_for_seq(9);
-    let warm = d.status().decode_path_allocations.expect("decoderd counts allocations");
+    let warm = d
+        .status()
+        .decode_path_allocations
+        .expect("decoderd counts allocations");
     d.stream(10..50, 10);
     let p = d.wait_for_seq(49);
     let p: Vec<_> = p.into_iter().take(50).collect();
@@ -34,7 +37,11 @@ fn normal_stream_is_decoded_bin_by_bin() {
     assert_eq!(s.latency.recv_to_send_us.count, 50);
     assert!(s.latency.origin_to_send_us.count > 0);
     // No heap allocation on the decode path after warm-up.
-    assert_eq!(s.decode_path_allocations, Some(warm), "allocations during 40 bins");
+    assert_eq!(
+        s.decode_path_allocations,
+        Some(warm),
+        "allocations during 40 bins"
+    );
 }
 
 #[test]
@@ -204,7 +211,12 @@ fn flood_at_100x_the_bin_rate_leaves_every_slot_answered() {
     let c = &s.counters;
     assert_eq!(
         c.datagrams,
-        c.bins_decoded + c.rejected + c.bins_duplicate + c.bins_late + c.bins_stray + c.bins_flushed,
+        c.bins_decoded
+            + c.rejected
+            + c.bins_duplicate
+            + c.bins_late
+            + c.bins_stray
+            + c.bins_flushed,
         "every datagram accounted for: {c:?}"
     );
     // The duplicates are of seq 0, long out of the window: strays, and

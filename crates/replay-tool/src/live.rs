@@ -17,42 +17,52 @@ use daemon::status::Status;
 use decoder_core::Session;
 use decoder_core::packet::{self, BinHeader, VelocityPacket};
 
-/// The `decoderd` binary: `explicit`, else the one beside this executable,
-/// else whatever `decoderd` is on PATH.
-pub fn find_decoderd(explicit: Option<&Path>) -> Result<PathBuf> {
+/// The `decoderd` binary: `explicit`, else the one beside this executable;
+/// `None` when there is none (the caller may run the daemon in-process).
+pub fn find_decoderd(explicit: Option<&Path>) -> Result<Option<PathBuf>> {
     if let Some(p) = explicit {
         if p.is_file() {
-            return Ok(p.to_path_buf());
+            return Ok(Some(p.to_path_buf()));
         }
         bail!("--decoderd {}: no such file", p.display());
     }
-    if let Ok(me) = std::env::current_exe() {
-        let beside = me.with_file_name("decoderd");
-        if beside.is_file() {
-            return Ok(beside);
-        }
-    }
-    Ok(PathBuf::from("decoderd"))
+    Ok(std::env::current_exe()
+        .ok()
+        .map(|me| me.with_file_name("decoderd"))
+        .filter(|p| p.is_file()))
+}
+
+/// How the daemon runs: its own process (as on a rig), or, when no
+/// `decoderd` binary is at hand, the same daemon code on threads of this
+/// process.
+enum Running {
+    Process(Child),
+    InProcess {
+        shutdown: Arc<AtomicBool>,
+        thread: Option<JoinHandle<Result<Status>>>,
+    },
 }
 
 pub struct SpawnedDaemon {
-    child: Child,
+    running: Running,
     pub socket: PathBuf,
     pub listen: SocketAddr,
     pub log_file: PathBuf,
 }
 
 impl SpawnedDaemon {
-    /// Starts `decoderd run` with its files under `work`, listening on an
-    /// ephemeral loopback port, and waits until its control socket answers.
+    /// Starts `decoderd run` (the binary `exe`, or in-process when `None`)
+    /// with its files under `work`, listening on an ephemeral loopback port,
+    /// and waits until its control socket answers.
     pub fn start(
-        exe: &Path,
+        exe: Option<&Path>,
         model: &Path,
         work: &Path,
         actuator: SocketAddr,
         arm: bool,
     ) -> Result<SpawnedDaemon> {
-        std::fs::create_dir_all(work).with_context(|| format!("cannot create {}", work.display()))?;
+        std::fs::create_dir_all(work)
+            .with_context(|| format!("cannot create {}", work.display()))?;
         let socket = work.join("decoderd.sock");
         let log_file = work.join("decoderd.log");
         let config = work.join("daemon.toml");
@@ -64,6 +74,9 @@ impl SpawnedDaemon {
                 work.join("recordings").display().to_string()
             ),
         )?;
+        let Some(exe) = exe else {
+            return Self::start_in_process(&config, model, socket, log_file, actuator, arm);
+        };
         let log = std::fs::File::create(&log_file)?;
         let mut cmd = Command::new(exe);
         cmd.arg("run")
@@ -81,12 +94,49 @@ impl SpawnedDaemon {
         if arm {
             cmd.arg("--arm");
         }
-        let mut child = cmd.spawn().with_context(|| {
+        let child = cmd.spawn().with_context(|| {
             format!(
                 "cannot start {}; build it with `cargo build --release` or pass --decoderd PATH",
                 exe.display()
             )
         })?;
+        Self::wait_until_up(Running::Process(child), socket, log_file)
+    }
+
+    fn start_in_process(
+        config: &Path,
+        model: &Path,
+        socket: PathBuf,
+        log_file: PathBuf,
+        actuator: SocketAddr,
+        arm: bool,
+    ) -> Result<SpawnedDaemon> {
+        let config = daemon::prepare(&daemon::RunArgs {
+            config: Some(config.to_path_buf()),
+            model: Some(model.to_path_buf()),
+            listen: Some("127.0.0.1:0".into()),
+            actuator: Some(actuator.to_string()),
+            record: None,
+            socket: None,
+            arm,
+        })?;
+        let shutdown = Arc::new(AtomicBool::new(false));
+        let flag = shutdown.clone();
+        let thread = std::thread::Builder::new()
+            .name("decoderd".into())
+            .spawn(move || daemon::run(config, flag))?;
+        let running = Running::InProcess {
+            shutdown,
+            thread: Some(thread),
+        };
+        Self::wait_until_up(running, socket, log_file)
+    }
+
+    fn wait_until_up(
+        mut running: Running,
+        socket: PathBuf,
+        log_file: PathBuf,
+    ) -> Result<SpawnedDaemon> {
         let started = Instant::now();
         loop {
             if let Ok(Reply {
@@ -95,23 +145,47 @@ impl SpawnedDaemon {
             {
                 return Ok(SpawnedDaemon {
                     listen: s.listen.parse()?,
-                    child,
+                    running,
                     socket,
                     log_file,
                 });
             }
-            if let Some(exit) = child.try_wait()? {
-                bail!(
-                    "decoderd exited at start ({exit}): {}",
-                    std::fs::read_to_string(&log_file).unwrap_or_default().trim()
-                );
+            match &mut running {
+                Running::Process(child) => {
+                    if let Some(exit) = child.try_wait()? {
+                        bail!(
+                            "decoderd exited at start ({exit}): {}",
+                            std::fs::read_to_string(&log_file)
+                                .unwrap_or_default()
+                                .trim()
+                        );
+                    }
+                }
+                Running::InProcess { thread, .. } => {
+                    if thread.as_ref().is_some_and(|t| t.is_finished()) {
+                        let result = thread.take().map(|t| t.join());
+                        match result {
+                            Some(Ok(Err(e))) => {
+                                return Err(e.context("decoderd (in-process) failed at start"));
+                            }
+                            _ => bail!("decoderd (in-process) stopped at start"),
+                        }
+                    }
+                }
             }
             if started.elapsed() > Duration::from_secs(20) {
-                let _ = child.kill();
-                bail!("decoderd did not answer on {} within 20 s", socket.display());
+                bail!(
+                    "decoderd did not answer on {} within 20 s",
+                    socket.display()
+                );
             }
             std::thread::sleep(Duration::from_millis(20));
         }
+    }
+
+    /// Whether the daemon runs as its own process.
+    pub fn is_process(&self) -> bool {
+        matches!(self.running, Running::Process(_))
     }
 
     pub fn status(&self) -> Result<Status> {
@@ -119,32 +193,58 @@ impl SpawnedDaemon {
         r.status.map(|s| *s).context("decoderd sent no status")
     }
 
-    /// SIGTERM, then waits for a clean exit.
+    /// SIGTERM (or the shutdown flag in-process), then waits for a clean
+    /// exit.
     pub fn stop(mut self) -> Result<()> {
-        // SAFETY: signalling our own child by its pid.
-        unsafe { libc::kill(self.child.id() as i32, libc::SIGTERM) };
-        let started = Instant::now();
-        loop {
-            if let Some(exit) = self.child.try_wait()? {
-                if !exit.success() {
-                    bail!("decoderd exited with {exit}; see {}", self.log_file.display());
+        match &mut self.running {
+            Running::Process(child) => {
+                // SAFETY: signalling our own child by its pid.
+                unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+                let started = Instant::now();
+                loop {
+                    if let Some(exit) = child.try_wait()? {
+                        if !exit.success() {
+                            bail!(
+                                "decoderd exited with {exit}; see {}",
+                                self.log_file.display()
+                            );
+                        }
+                        return Ok(());
+                    }
+                    if started.elapsed() > Duration::from_secs(10) {
+                        let _ = child.kill();
+                        bail!("decoderd did not stop within 10 s of SIGTERM");
+                    }
+                    std::thread::sleep(Duration::from_millis(10));
                 }
-                return Ok(());
             }
-            if started.elapsed() > Duration::from_secs(10) {
-                let _ = self.child.kill();
-                bail!("decoderd did not stop within 10 s of SIGTERM");
+            Running::InProcess { shutdown, thread } => {
+                shutdown.store(true, Ordering::Relaxed);
+                match thread.take().map(|t| t.join()) {
+                    Some(Ok(Ok(_))) | None => Ok(()),
+                    Some(Ok(Err(e))) => Err(e.context("decoderd (in-process)")),
+                    Some(Err(_)) => bail!("decoderd (in-process) panicked"),
+                }
             }
-            std::thread::sleep(Duration::from_millis(10));
         }
     }
 }
 
 impl Drop for SpawnedDaemon {
     fn drop(&mut self) {
-        if let Ok(None) = self.child.try_wait() {
-            let _ = self.child.kill();
-            let _ = self.child.wait();
+        match &mut self.running {
+            Running::Process(child) => {
+                if let Ok(None) = child.try_wait() {
+                    let _ = child.kill();
+                    let _ = child.wait();
+                }
+            }
+            Running::InProcess { shutdown, thread } => {
+                shutdown.store(true, Ordering::Relaxed);
+                if let Some(t) = thread.take() {
+                    let _ = t.join();
+                }
+            }
         }
     }
 }

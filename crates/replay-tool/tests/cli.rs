@@ -301,3 +301,39 @@ fn the_example_config_is_valid() {
     let text = std::fs::read_to_string(cfg).unwrap();
     decoder_core::train_config::TrainConfig::from_toml(&text, cfg).unwrap();
 }
+
+#[test]
+fn demo_runs_the_daemon_live_and_the_recording_replays() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("demo");
+    let stdout = ok(&[
+        "demo",
+        "--out",
+        p(&out),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+        "--live-seconds",
+        "2",
+    ]);
+    assert!(stdout.contains("streaming 100 bins"), "{stdout}");
+    let line = stdout
+        .lines()
+        .find(|l| l.contains("reproduced"))
+        .unwrap_or_else(|| panic!("no replay check in {stdout}"));
+    // "offline replay of the recording reproduced N of N sent packets"
+    let nums: Vec<u64> = line
+        .split_whitespace()
+        .filter_map(|w| w.parse().ok())
+        .collect();
+    assert_eq!(nums.len(), 2, "{line}");
+    assert_eq!(nums[0], nums[1], "{line}");
+    assert!(nums[0] >= 100, "{line}");
+    assert!(stdout.contains("latency recv->send"), "{stdout}");
+    let log = stdout
+        .lines()
+        .find_map(|l| l.trim().strip_prefix("recording -> "))
+        .expect("the recording's path");
+    assert!(Path::new(log).is_file(), "{log}");
+}

@@ -20,8 +20,8 @@ use decoder_core::train_config::TrainConfig;
 
 use super::{evaluate, replay, train};
 use crate::output::write_atomic;
-use crate::{CheckFailed, live};
 use crate::progress;
+use crate::{CheckFailed, live};
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
@@ -37,7 +37,8 @@ pub struct Args {
     /// the live step).
     #[arg(long, default_value_t = 20.0)]
     pub live_seconds: f64,
-    /// The decoderd binary (default: the one beside replay-tool).
+    /// The decoderd binary (default: the one beside replay-tool; without
+    /// one the daemon runs in this process).
     #[arg(long)]
     pub decoderd: Option<PathBuf>,
 }
@@ -136,10 +137,15 @@ fn live_step(args: &Args, model_path: &Path, block: &Session) -> Result<()> {
     let exe = live::find_decoderd(args.decoderd.as_deref())?;
     let work = args.out.join("live");
     let sink = live::ActuatorSink::bind()?;
-    let daemon = live::SpawnedDaemon::start(&exe, model_path, &work, sink.addr, true)?;
+    let daemon = live::SpawnedDaemon::start(exe.as_deref(), model_path, &work, sink.addr, true)?;
+    let how = if daemon.is_process() {
+        "decoderd"
+    } else {
+        "decoderd in-process (no decoderd binary beside replay-tool; `cargo build --release` builds it)"
+    };
     let n_bins = ((args.live_seconds * 1000.0 / block.bin_ms) as usize).clamp(1, block.n_bins);
     println!(
-        "5. started decoderd (armed for this bench run) on {} -> actuator sink {}; streaming {n_bins} bins ({:.0} s) of the later block at the bin rate ...",
+        "5. started {how} (armed for this bench run) on {} -> actuator sink {}; streaming {n_bins} bins ({:.0} s) of the later block at the bin rate ...",
         daemon.listen,
         sink.addr,
         n_bins as f64 * block.bin_ms / 1000.0

@@ -16,11 +16,14 @@
 //! runs a few ppm from ours does not drift into the late zone over an hour.
 //! Bins ahead of the expected one (within the reorder window) wait for their
 //! slot; a bin for a slot already answered is late (it was coasted) or a
-//! duplicate (it was decoded). A seq outside the window either way is a
-//! stray and dropped, unless the very next bin follows it in seq: then the
-//! sender has restarted and a new stream begins with that second bin
-//! (decoder reset, supervisor halted). A single stale or foreign packet
-//! therefore never resets the decoder.
+//! duplicate (it was decoded). A seq outside the window either way is
+//! dropped — late if it is from this stream's past, a stray otherwise —
+//! unless it follows the previous such bin in seq *and* came at least half
+//! a bin after it: then the sender has restarted at its own pace, and a new
+//! stream begins with that bin (decoder reset, supervisor halted). A single
+//! stale or foreign packet never resets the decoder, and neither does the
+//! burst of queued bins the socket delivers after the daemon was stalled
+//! for longer than the window.
 //!
 //! Ordering rule, the same live and offline: before a datagram received at
 //! `recv_ns` is looked at, every slot whose deadline is earlier than
@@ -210,8 +213,9 @@ pub struct SlotEngine {
     counts: Vec<u16>,
     packet: Vec<u8>,
     model_changed: bool,
-    /// The last out-of-window seq, awaiting confirmation as a new stream.
-    stray: Option<u64>,
+    /// The last out-of-window seq and when it came, awaiting confirmation
+    /// as a new stream.
+    stray: Option<(u64, u64)>,
     counters: EngineCounters,
     last_nonzero: Vec<u64>,
     last_saturated: Vec<u64>,
@@ -383,13 +387,16 @@ impl SlotEngine {
                 self.counters.bins_late += 1;
                 sink.event(&EngineEvent::Late { seq });
             }
-        } else if self.stray != Some(seq.wrapping_sub(1)) {
-            // Outside the window either way. One such bin may be a stray
-            // (a stale packet, a second sender); only a second one that
-            // follows it in seq confirms that the sender restarted.
-            self.stray = Some(seq);
-            self.counters.bins_stray += 1;
-            sink.event(&EngineEvent::Stray { seq });
+        } else if !self.confirms_restart(seq, recv_ns) {
+            self.stray = Some((seq, recv_ns));
+            let from_this_stream = seq < next && seq >= clock.seq0;
+            if from_this_stream {
+                self.counters.bins_late += 1;
+                sink.event(&EngineEvent::Late { seq });
+            } else {
+                self.counters.bins_stray += 1;
+                sink.event(&EngineEvent::Stray { seq });
+            }
         } else {
             self.counters.new_streams += 1;
             sink.event(&EngineEvent::NewStream {
@@ -404,6 +411,19 @@ impl SlotEngine {
             self.start_stream(recv_ns, seq);
             packet::read_counts(datagram, &mut self.counts);
             self.answer(arrived, recv_ns, sink);
+        }
+    }
+
+    /// An out-of-window bin confirms a restart when it follows the last
+    /// out-of-window bin in seq, paced like a front end (at least half a bin
+    /// later), not in a burst from the socket's queue.
+    fn confirms_restart(&self, seq: u64, recv_ns: u64) -> bool {
+        match self.stray {
+            Some((last_seq, last_recv)) => {
+                seq == last_seq.wrapping_add(1)
+                    && recv_ns.saturating_sub(last_recv) >= self.settings.bin_ns / 2
+            }
+            None => false,
         }
     }
 

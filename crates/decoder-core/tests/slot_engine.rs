@@ -224,16 +224,41 @@ fn seq_going_back_starts_a_new_stream_halted() {
         rig.send(seq, 100_000);
     }
     // The front end restarts at 0, right after bin 1009: bin 0 alone is a
-    // stray; bin 1 following it confirms the new stream.
+    // stray; bin 1 following it a bin later confirms the new stream.
     rig.send_at(0, T0 + 1009 * BIN_NS + 200_000);
     assert_eq!(rig.engine.counters().new_streams, 0);
     assert_eq!(rig.engine.counters().bins_stray, 1);
     assert_eq!(rig.engine.state(), SupervisorState::Armed);
-    rig.send_at(1, T0 + 1009 * BIN_NS + 300_000);
+    rig.send_at(1, T0 + 1010 * BIN_NS + 200_000);
     assert_eq!(rig.engine.counters().new_streams, 1);
     assert_eq!(rig.engine.state(), SupervisorState::Halted);
     assert_eq!(rig.out.packets.last().unwrap().seq, 1);
     assert_eq!(rig.engine.next_seq(), Some(2));
+}
+
+#[test]
+fn a_stall_longer_than_the_window_is_not_a_new_stream() {
+    // The daemon stalls for 100 bins (window 64); the socket then delivers
+    // the queued bins in a burst. Their slots were answered at their
+    // deadlines; the burst is late, not a restarted sender, and every slot
+    // keeps exactly one answer.
+    let mut rig = Rig::new(true);
+    for seq in 0..10 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    let wake = T0 + 110 * BIN_NS;
+    for (i, seq) in (10..110).enumerate() {
+        rig.send_at(seq, wake + i as u64 * 2_000);
+    }
+    for seq in 111..130 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    let c = rig.engine.counters();
+    assert_eq!(c.new_streams, 0, "{c:?}");
+    assert_eq!(rig.seqs(), (0..130).collect::<Vec<_>>());
+    assert!(c.bins_late >= 99, "{c:?}");
 }
 
 #[test]
@@ -367,4 +392,38 @@ fn clock_tracking_follows_a_slow_sender() {
     assert_eq!(engine.counters().bins_late, 0);
     assert_eq!(engine.counters().bins_missing, 0);
     out.packets.clear();
+}
+
+#[test]
+fn dead_and_saturated_channels_are_reported() {
+    let (m, _) = model();
+    let mut s = settings(true);
+    s.dead_channel_bins = 50;
+    let mut engine = SlotEngine::new(s, DecodePipeline::new(&m).unwrap());
+    let mut out = Collected::default();
+    let mut buf = Vec::new();
+    for seq in 0..200u64 {
+        // Channel 2 never fires; channel 5 reports an impossible count once.
+        let mut counts = vec![1u16; 8];
+        counts[2] = 0;
+        if seq == 180 {
+            counts[5] = 40;
+        }
+        packet::encode_bin(
+            &BinHeader {
+                channels: 8,
+                seq,
+                origin_ns: 0,
+                bin_us: 20_000,
+                flags: 0,
+            },
+            &counts,
+            &mut buf,
+        );
+        engine.on_timeout(T0 + seq * BIN_NS - 1, &mut out);
+        engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, &mut out);
+    }
+    let (dead, saturated) = engine.channel_health();
+    assert_eq!(dead, vec![2]);
+    assert_eq!(saturated, vec![5]);
 }

@@ -10,6 +10,7 @@
 pub mod alloc_count;
 pub mod config;
 pub mod control;
+pub mod loopback;
 pub mod recorder;
 pub mod rt_loop;
 pub mod status;

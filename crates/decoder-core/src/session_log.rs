@@ -148,8 +148,13 @@ pub enum LogEnd {
     /// The last record was cut short; `bytes` bytes at `offset` were dropped.
     TornTail { offset: u64, bytes: u64 },
     /// A record in the middle fails its checksum or has an unknown kind;
-    /// reading stopped at `offset`.
-    Corrupt { offset: u64, problem: String },
+    /// reading stopped at `offset`. `seq` is the bin seq the damaged record
+    /// appears to carry (a datagram or a sent packet), when readable.
+    Corrupt {
+        offset: u64,
+        problem: String,
+        seq: Option<u64>,
+    },
 }
 
 /// Appends one record to `out`. The body is the concatenation of `parts`,
@@ -327,6 +332,7 @@ impl LogReader {
             self.end = Some(LogEnd::Corrupt {
                 offset: self.offset,
                 problem: format!("record length {len} is impossible"),
+                seq: None,
             });
             return None;
         }
@@ -342,6 +348,7 @@ impl LogReader {
                 LogEnd::Corrupt {
                     offset: self.offset,
                     problem: "record checksum mismatch".into(),
+                    seq: seq_hint(&body),
                 }
             });
             return None;
@@ -359,11 +366,23 @@ impl LogReader {
                 self.end = Some(LogEnd::Corrupt {
                     offset: at,
                     problem: format!("unknown record kind {} or short body", body[0]),
+                    seq: None,
                 });
                 None
             }
         }
     }
+}
+
+/// The seq a datagram or sent-packet record carries (both packet layouts
+/// have it at byte 8), read without trusting the checksum.
+fn seq_hint(body: &[u8]) -> Option<u64> {
+    let kind = RecordKind::from_u8(*body.first()?)?;
+    if !matches!(kind, RecordKind::Datagram | RecordKind::Sent) {
+        return None;
+    }
+    let at = RECORD_FIXED_LEN + 8;
+    Some(u64::from_le_bytes(body.get(at..at + 8)?.try_into().ok()?))
 }
 
 fn decode_body(body: &[u8]) -> Option<LogRecord> {

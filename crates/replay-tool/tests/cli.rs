@@ -337,3 +337,72 @@ fn demo_runs_the_daemon_live_and_the_recording_replays() {
         .expect("the recording's path");
     assert!(Path::new(log).is_file(), "{log}");
 }
+
+/// Records a short live session with the demo and returns its log.
+fn recorded_session(dir: &Path) -> std::path::PathBuf {
+    let out = dir.join("demo");
+    let stdout = ok(&[
+        "demo",
+        "--out",
+        p(&out),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+        "--live-seconds",
+        "1",
+    ]);
+    let log = stdout
+        .lines()
+        .find_map(|l| l.trim().strip_prefix("recording -> "))
+        .expect("the recording's path");
+    std::path::PathBuf::from(log)
+}
+
+#[test]
+fn verify_passes_on_a_recording_and_names_the_seq_of_a_changed_byte() {
+    use decoder_core::session_log::{LogReader, LogRecord};
+    let dir = tempfile::tempdir().unwrap();
+    let log = recorded_session(dir.path());
+    let stdout = ok(&["replay", "--session", p(&log), "--verify"]);
+    assert!(stdout.contains("bit for bit"), "{stdout}");
+
+    // Find the datagram record of the 20th bin.
+    let mut reader = LogReader::open(&log).unwrap();
+    let (offset, seq) = loop {
+        let at = reader.offset();
+        match reader.next_record().expect("enough records") {
+            LogRecord::Datagram { bytes, .. } if bytes.len() > 40 => {
+                let seq = u64::from_le_bytes(bytes[8..16].try_into().unwrap());
+                if seq == 20 {
+                    break (at as usize, seq);
+                }
+            }
+            _ => {}
+        }
+    };
+    let original = std::fs::read(&log).unwrap();
+    // One byte of bin 20's counts: length 4 + crc 4 + kind 1 + recv_ns 8,
+    // then the 32-byte bin header.
+    let count_byte = offset + 4 + 4 + 1 + 8 + 32;
+
+    // Changed on disk: the checksum catches it, at the right seq.
+    let mut damaged = original.clone();
+    damaged[count_byte] ^= 0x01;
+    let bad = dir.path().join("damaged.vdlog");
+    std::fs::write(&bad, &damaged).unwrap();
+    let err = fails_with(&["replay", "--session", p(&bad), "--verify"], 1);
+    assert!(err.contains(&format!("seq {seq}")), "{err}");
+
+    // Changed and re-sealed (checksum recomputed): the replay itself
+    // disagrees with the recorded packet of that seq.
+    let mut forged = original.clone();
+    forged[count_byte] = forged[count_byte].wrapping_add(7);
+    let len = u32::from_le_bytes(forged[offset..offset + 4].try_into().unwrap()) as usize;
+    let crc = crc32fast::hash(&forged[offset + 8..offset + 8 + len]);
+    forged[offset + 4..offset + 8].copy_from_slice(&crc.to_le_bytes());
+    let forged_path = dir.path().join("forged.vdlog");
+    std::fs::write(&forged_path, &forged).unwrap();
+    let err = fails_with(&["replay", "--session", p(&forged_path), "--verify"], 1);
+    assert!(err.contains(&format!("seq {seq}: estimate")), "{err}");
+}

@@ -111,8 +111,11 @@ pub fn run(args: &Args) -> Result<()> {
     let summary = replay::replay(&replay::Args {
         session: later.clone(),
         model: Some(model_path.clone()),
-        out: estimates.clone(),
+        out: Some(estimates.clone()),
         no_steady_state: false,
+        verify: false,
+        tolerance: None,
+        compare: None,
     })?;
     let parts: Vec<String> = summary
         .cc

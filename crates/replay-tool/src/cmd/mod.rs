@@ -6,6 +6,7 @@ pub mod model_show;
 pub mod replay;
 pub mod simulate;
 pub mod train;
+pub mod verify;
 
 use std::path::Path;
 

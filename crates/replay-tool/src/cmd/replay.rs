@@ -30,12 +30,25 @@ pub struct Args {
     /// directory; for a session log it replaces the logged model(s).
     #[arg(long)]
     pub model: Option<PathBuf>,
-    /// Estimates to write: FILE.npy (shape bins × outputs, float64) or FILE.csv.
-    #[arg(long)]
-    pub out: PathBuf,
+    /// Estimates to write: FILE.npy (shape bins × outputs, float64) or
+    /// FILE.csv. Required unless --verify.
+    #[arg(long, required_unless_present = "verify")]
+    pub out: Option<PathBuf>,
     /// Run the full covariance update even when the model has a steady-state gain.
     #[arg(long)]
     pub no_steady_state: bool,
+    /// Session log only: check that every slot's estimate, command, state
+    /// and flags are reproduced bit for bit; exit 1 at the first difference.
+    #[arg(long)]
+    pub verify: bool,
+    /// With --verify: compare floats within this relative tolerance instead
+    /// of bit for bit (for a log recorded by another build).
+    #[arg(long, requires = "verify")]
+    pub tolerance: Option<f64>,
+    /// Session log with --model OTHER: write the logged model's and OTHER's
+    /// estimates side by side to this CSV.
+    #[arg(long, requires = "model")]
+    pub compare: Option<PathBuf>,
 }
 
 pub struct ReplaySummary {
@@ -52,6 +65,14 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
     if args.session.is_file() {
         return replay_session_log(args);
     }
+    if args.verify || args.compare.is_some() {
+        bail!(
+            "--verify and --compare need a session log (.vdlog) from decoderd, not a session directory"
+        );
+    }
+    let Some(out) = &args.out else {
+        bail!("--out is required");
+    };
     let Some(model_path) = &args.model else {
         bail!("--model is required to replay a session directory");
     };
@@ -72,7 +93,7 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
         tracing::warn!(faults, "bins with a numerical fault (estimate unusable)");
     }
     let outputs = model.decoder.outputs().to_vec();
-    write_table(&args.out, &outputs, session.n_bins, &estimates)?;
+    write_table(out, &outputs, session.n_bins, &estimates)?;
     let d = outputs.len();
     let mut cc = Vec::new();
     if let Some(kin) = &session.kinematics {
@@ -124,13 +145,17 @@ fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
     }
     let elapsed = started.elapsed().as_secs_f64();
     let n = estimates.len() / d.max(1);
-    write_table(&args.out, &outputs, n, &estimates)?;
+    if let Some(out) = &args.out {
+        write_table(out, &outputs, n, &estimates)?;
+    }
     match &summary.end {
         Some(LogEnd::TornTail { offset, bytes }) => tracing::warn!(
             "{}: torn tail at byte {offset} ({bytes} bytes dropped); replayed up to it",
             args.session.display()
         ),
-        Some(LogEnd::Corrupt { offset, problem }) => tracing::warn!(
+        Some(LogEnd::Corrupt {
+            offset, problem, ..
+        }) => tracing::warn!(
             "{}: {problem} at byte {offset}; replayed up to it",
             args.session.display()
         ),
@@ -155,12 +180,58 @@ fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
 }
 
 pub fn run(args: &Args) -> Result<()> {
+    if args.verify {
+        if args.model.is_some() {
+            bail!(
+                "--verify replays with the logged model(s); drop --model (use --compare to try another model)"
+            );
+        }
+        if let Some(t) = args.tolerance {
+            if !(t.is_finite() && t >= 0.0) {
+                bail!("--tolerance {t}: must be a finite number ≥ 0");
+            }
+        }
+        let v = super::verify::verify(&args.session, args.tolerance)?;
+        let how = match args.tolerance {
+            None => "bit for bit".to_string(),
+            Some(t) => format!("within relative tolerance {t:e}"),
+        };
+        println!(
+            "verified {}: {} slots, every estimate, command, state and flag reproduced {how}",
+            args.session.display(),
+            v.slots
+        );
+        if let Some(LogEnd::TornTail { offset, bytes }) = v.end {
+            println!(
+                "(the log ends in a torn tail at byte {offset}: {bytes} bytes after the last intact record were not checked)"
+            );
+        }
+        if args.out.is_none() {
+            return Ok(());
+        }
+    }
+    if let (Some(other), Some(csv)) = (&args.model, &args.compare) {
+        if !args.session.is_file() {
+            bail!("--compare needs a session log (.vdlog) from decoderd");
+        }
+        let model = ModelFile::read(other)?;
+        let (n, rms) = super::verify::compare_models(&args.session, &model, csv)?;
+        let parts: Vec<String> = rms.iter().map(|r| format!("{r:.4}")).collect();
+        println!(
+            "compared the logged model with {} on {n} slots: RMS difference of the estimates {}; side by side -> {}",
+            other.display(),
+            parts.join(", "),
+            csv.display()
+        );
+    }
     let summary = replay(args)?;
     println!(
-        "replayed {} bins through the decode pipeline ({:.0} bins/s); wrote {}",
+        "replayed {} bins through the decode pipeline ({:.0} bins/s){}",
         summary.n_bins,
         summary.bins_per_second,
-        args.out.display()
+        args.out
+            .as_ref()
+            .map_or_else(String::new, |o| format!("; wrote {}", o.display()))
     );
     if !summary.cc.is_empty() {
         let parts: Vec<String> = summary

@@ -212,13 +212,12 @@ pub fn compare_models(log: &Path, other: &ModelFile, out: &Path) -> Result<(usiz
         let _ = write!(csv, ",{o}_logged_model,{o}_other_model");
     }
     csv.push('\n');
-    let d = outputs.len();
-    let mut sq = vec![0.0; d];
+    let mut sq = vec![0.0; outputs.len()];
     for (a, b) in logged.iter().zip(&theirs).take(n) {
         let _ = write!(csv, "{},{}", a.seq, a.flags & 1);
-        for i in 0..d {
-            let _ = write!(csv, ",{},{}", a.estimate[i], b.estimate[i]);
-            sq[i] += (a.estimate[i] - b.estimate[i]).powi(2);
+        for ((s, x), y) in sq.iter_mut().zip(&a.estimate).zip(&b.estimate) {
+            let _ = write!(csv, ",{x},{y}");
+            *s += (x - y).powi(2);
         }
         csv.push('\n');
     }

@@ -47,6 +47,9 @@ pub enum Command {
     Evaluate(cmd::evaluate::Args),
     /// Decode every bin of a session through the daemon's decode pipeline.
     Replay(cmd::replay::Args),
+    /// Measure the whole loop's latency and dropouts against decoderd, with
+    /// a pass/fail and an HTML report.
+    Bench(cmd::bench::Args),
     /// Inspect model files.
     Model {
         #[command(subcommand)]
@@ -93,6 +96,7 @@ pub fn run(cli: Cli) -> ExitCode {
             command: ModelCommand::Show { model, json },
         } => cmd::model_show::run(&model, json),
         Command::Demo(a) => cmd::demo::run(&a),
+        Command::Bench(a) => cmd::bench::run(&a),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

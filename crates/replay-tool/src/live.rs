@@ -61,21 +61,36 @@ impl SpawnedDaemon {
         actuator: SocketAddr,
         arm: bool,
     ) -> Result<SpawnedDaemon> {
+        Self::start_with(exe, None, model, work, actuator, arm)
+    }
+
+    /// [`SpawnedDaemon::start`] with the user's daemon configuration
+    /// (`config`); its control socket and recording go under `work`.
+    pub fn start_with(
+        exe: Option<&Path>,
+        config: Option<&Path>,
+        model: &Path,
+        work: &Path,
+        actuator: SocketAddr,
+        arm: bool,
+    ) -> Result<SpawnedDaemon> {
         std::fs::create_dir_all(work)
             .with_context(|| format!("cannot create {}", work.display()))?;
         let socket = work.join("decoderd.sock");
         let log_file = work.join("decoderd.log");
-        let config = work.join("daemon.toml");
-        std::fs::write(
-            &config,
-            format!(
-                "[control]\nsocket = {:?}\n[recording]\ndir = {:?}\n",
-                socket.display().to_string(),
-                work.join("recordings").display().to_string()
-            ),
-        )?;
+        let recordings = work.join("recordings");
+        let config = match config {
+            Some(c) => c.to_path_buf(),
+            None => {
+                let c = work.join("daemon.toml");
+                std::fs::write(&c, "# written by replay-tool; every key at its default\n")?;
+                c
+            }
+        };
         let Some(exe) = exe else {
-            return Self::start_in_process(&config, model, socket, log_file, actuator, arm);
+            return Self::start_in_process(
+                &config, model, socket, recordings, log_file, actuator, arm,
+            );
         };
         let log = std::fs::File::create(&log_file)?;
         let mut cmd = Command::new(exe);
@@ -88,6 +103,10 @@ impl SpawnedDaemon {
             .arg("127.0.0.1:0")
             .arg("--actuator")
             .arg(actuator.to_string())
+            .arg("--socket")
+            .arg(&socket)
+            .arg("--record")
+            .arg(&recordings)
             .stdin(Stdio::null())
             .stdout(Stdio::null())
             .stderr(log);
@@ -107,6 +126,7 @@ impl SpawnedDaemon {
         config: &Path,
         model: &Path,
         socket: PathBuf,
+        recordings: PathBuf,
         log_file: PathBuf,
         actuator: SocketAddr,
         arm: bool,
@@ -116,8 +136,8 @@ impl SpawnedDaemon {
             model: Some(model.to_path_buf()),
             listen: Some("127.0.0.1:0".into()),
             actuator: Some(actuator.to_string()),
-            record: None,
-            socket: None,
+            record: Some(recordings),
+            socket: Some(socket.clone()),
             arm,
         })?;
         let shutdown = Arc::new(AtomicBool::new(false));

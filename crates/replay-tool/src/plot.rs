@@ -132,3 +132,155 @@ where
     }
     Ok(())
 }
+
+/// Writes `<stem>.svg` and `<stem>.png`: a histogram of latencies in µs
+/// (one series per name), on a log-spaced axis from 1 µs.
+pub fn latency_histogram(series: &[(&str, &[f64])], stem: &Path) -> Result<()> {
+    register_font();
+    let max = series
+        .iter()
+        .flat_map(|(_, v)| v.iter())
+        .copied()
+        .fold(1.0f64, f64::max);
+    let edges: Vec<f64> = (0..=((max.log10() * 20.0).ceil() as i32 + 1))
+        .map(|i| 10f64.powf(i as f64 / 20.0))
+        .collect();
+    let counts: Vec<(String, Vec<u64>)> = series
+        .iter()
+        .map(|(name, v)| {
+            let mut c = vec![0u64; edges.len()];
+            for &x in v.iter() {
+                let i = edges
+                    .partition_point(|&e| e <= x.max(1.0))
+                    .saturating_sub(1);
+                c[i.min(edges.len() - 1)] += 1;
+            }
+            (name.to_string(), c)
+        })
+        .collect();
+    let svg = stem.with_extension("svg");
+    draw_histogram(
+        &SVGBackend::new(&svg, (900, 420)).into_drawing_area(),
+        &edges,
+        &counts,
+    )
+    .with_context(|| format!("drawing {}", svg.display()))?;
+    let png = stem.with_extension("png");
+    draw_histogram(
+        &BitMapBackend::new(&png, (900, 420)).into_drawing_area(),
+        &edges,
+        &counts,
+    )
+    .with_context(|| format!("drawing {}", png.display()))?;
+    Ok(())
+}
+
+fn draw_histogram<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    edges: &[f64],
+    counts: &[(String, Vec<u64>)],
+) -> Result<()>
+where
+    DB::ErrorType: 'static,
+{
+    let top = counts
+        .iter()
+        .flat_map(|(_, c)| c)
+        .copied()
+        .max()
+        .unwrap_or(1)
+        .max(1);
+    root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
+    let mut chart = ChartBuilder::on(root)
+        .margin(12)
+        .x_label_area_size(36)
+        .y_label_area_size(56)
+        .caption("latency", ("sans-serif", 18))
+        .build_cartesian_2d(
+            (1.0f64..*edges.last().unwrap_or(&10.0)).log_scale(),
+            (1u64..top * 2).log_scale(),
+        )
+        .map_err(|e| anyhow!("{e}"))?;
+    chart
+        .configure_mesh()
+        .x_desc("µs")
+        .y_desc("bins")
+        .draw()
+        .map_err(|e| anyhow!("{e}"))?;
+    for (k, (name, c)) in counts.iter().enumerate() {
+        let color = PALETTE[k % PALETTE.len()];
+        chart
+            .draw_series(LineSeries::new(
+                edges
+                    .iter()
+                    .zip(c)
+                    .filter(|(_, n)| **n > 0)
+                    .map(|(e, n)| (*e, *n)),
+                color.stroke_width(2),
+            ))
+            .map_err(|e| anyhow!("{e}"))?
+            .label(name.as_str())
+            .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 16, y)], color));
+    }
+    chart
+        .configure_series_labels()
+        .background_style(WHITE.mix(0.8))
+        .border_style(BLACK)
+        .draw()
+        .map_err(|e| anyhow!("{e}"))?;
+    root.present().map_err(|e| anyhow!("{e}"))?;
+    Ok(())
+}
+
+/// Writes `<stem>.svg` and `<stem>.png`: latency (µs) of each bin against
+/// time (s) in the run.
+pub fn latency_over_time(points: &[(f64, f64)], stem: &Path) -> Result<()> {
+    register_font();
+    let svg = stem.with_extension("svg");
+    draw_over_time(
+        &SVGBackend::new(&svg, (900, 360)).into_drawing_area(),
+        points,
+    )
+    .with_context(|| format!("drawing {}", svg.display()))?;
+    let png = stem.with_extension("png");
+    draw_over_time(
+        &BitMapBackend::new(&png, (900, 360)).into_drawing_area(),
+        points,
+    )
+    .with_context(|| format!("drawing {}", png.display()))?;
+    Ok(())
+}
+
+fn draw_over_time<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    points: &[(f64, f64)],
+) -> Result<()>
+where
+    DB::ErrorType: 'static,
+{
+    let t_max = points.iter().map(|p| p.0).fold(1e-3, f64::max);
+    let y_max = points.iter().map(|p| p.1).fold(1.0, f64::max);
+    root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
+    let mut chart = ChartBuilder::on(root)
+        .margin(12)
+        .x_label_area_size(36)
+        .y_label_area_size(56)
+        .caption("recv → send latency over the run", ("sans-serif", 18))
+        .build_cartesian_2d(0.0..t_max, (1.0..y_max * 1.5).log_scale())
+        .map_err(|e| anyhow!("{e}"))?;
+    chart
+        .configure_mesh()
+        .x_desc("s")
+        .y_desc("µs")
+        .draw()
+        .map_err(|e| anyhow!("{e}"))?;
+    chart
+        .draw_series(
+            points
+                .iter()
+                .map(|&(t, y)| Circle::new((t, y.max(1.0)), 1, PALETTE[1].filled())),
+        )
+        .map_err(|e| anyhow!("{e}"))?;
+    root.present().map_err(|e| anyhow!("{e}"))?;
+    Ok(())
+}

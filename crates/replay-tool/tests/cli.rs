@@ -406,3 +406,53 @@ fn verify_passes_on_a_recording_and_names_the_seq_of_a_changed_byte() {
     let err = fails_with(&["replay", "--session", p(&forged_path), "--verify"], 1);
     assert!(err.contains(&format!("seq {seq}: estimate")), "{err}");
 }
+
+fn bench_p99(report: &Path) -> f64 {
+    let s: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("summary.json")).unwrap())
+            .unwrap();
+    s["recv_to_send_us"]["p99"].as_f64().unwrap()
+}
+
+#[test]
+fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
+    let dir = tempfile::tempdir().unwrap();
+    let first = dir.path().join("first");
+    let base = ["bench", "--seconds", "1.5", "--channels", "16"];
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&first)]);
+    let stdout = ok(&args);
+    assert!(stdout.contains("bench passed"), "{stdout}");
+    for f in [
+        "summary.json",
+        "bins.csv",
+        "report.html",
+        "latency_histogram.svg",
+        "latency_over_time.png",
+    ] {
+        assert!(first.join(f).is_file(), "{f}");
+    }
+    let measured = bench_p99(&first);
+    assert!(measured > 0.0);
+    let model = first.join("bench.model");
+    let base = ["bench", "--seconds", "1.5", "--model", p(&model)];
+
+    // A budget far above what this machine just measured passes ...
+    let generous = format!("{}", measured * 100.0 + 10_000.0);
+    let second = dir.path().join("second");
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&second), "--budget-p99-us", &generous]);
+    ok(&args);
+    // ... and one far below it fails with exit 1.
+    let tight = format!("{}", measured / 1000.0);
+    let third = dir.path().join("third");
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&third), "--budget-p99-us", &tight]);
+    let err = fails_with(&args, 1);
+    assert!(err.contains("over the budget"), "{err}");
+    assert!(
+        std::fs::read_to_string(third.join("report.html"))
+            .unwrap()
+            .contains("FAIL")
+    );
+}

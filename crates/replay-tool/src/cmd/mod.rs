@@ -1,5 +1,6 @@
 //! One module per verb; each has an `Args` (clap) and a `run`.
 
+pub mod bench;
 pub mod demo;
 pub mod evaluate;
 pub mod model_show;

@@ -6,6 +6,7 @@
 //! decode through [`pipeline::DecodePipeline`], so a replay reproduces a live
 //! session bit for bit.
 
+pub mod closed_loop;
 pub mod evaluate;
 pub mod folds;
 pub mod kalman;
@@ -15,6 +16,7 @@ pub mod metrics;
 pub mod model_file;
 pub mod packet;
 pub mod pipeline;
+pub mod refit;
 pub mod session;
 pub mod session_log;
 pub mod simulate;

@@ -148,6 +148,12 @@ fn draw_movement(rng: &mut ChaCha8Rng, total_ms: usize, radius: f64) -> Movement
     Movement { pos, vel, trials }
 }
 
+/// The simulated array of `population_seed`: the same channels every block
+/// with that seed is drawn from (and the closed-loop user fires from).
+pub fn population(population_seed: u64, n_channels: usize) -> SimChannels {
+    draw_channels(&mut ChaCha8Rng::seed_from_u64(population_seed), n_channels)
+}
+
 fn draw_channels(rng: &mut ChaCha8Rng, n: usize) -> SimChannels {
     let peak_speed = 25.0; // cm/s, typical of these reaches
     let mut log_baseline = Vec::with_capacity(n);

@@ -71,6 +71,27 @@ pub struct Args {
     /// Fault schedule: every K bins, hold 3 bins back and send them in a burst.
     #[arg(long)]
     pub burst_every: Option<usize>,
+    /// Closed loop instead: a simulated user moves a cursor to center-out
+    /// targets with the daemon's commands (success rate, time to target,
+    /// path efficiency).
+    #[arg(long)]
+    pub closed_loop: bool,
+    /// Closed loop: number of trials.
+    #[arg(long, default_value_t = 16)]
+    pub trials: usize,
+    /// Closed loop: the simulated array the user's channels come from (as
+    /// `simulate --population`; the decoder must be trained on it).
+    #[arg(long, default_value_t = 1)]
+    pub population: u64,
+    /// Closed loop: seed of the target order and of the user's spikes.
+    #[arg(long, default_value_t = 1)]
+    pub task_seed: u64,
+    /// Closed loop: 1 runs at the bin rate; 0 as fast as the loop turns.
+    #[arg(long, default_value_t = 1.0)]
+    pub speed: f64,
+    /// Closed loop: exit 1 when the success rate is below this (0..1).
+    #[arg(long)]
+    pub min_success: Option<f64>,
 }
 
 fn fault_schedule(args: &Args) -> impl Fn(usize) -> BinFault + '_ {
@@ -189,6 +210,9 @@ struct Outcome {
 }
 
 pub fn run(args: &Args) -> Result<()> {
+    if args.closed_loop {
+        return run_closed_loop(args);
+    }
     if !(args.seconds.is_finite() && args.seconds > 0.0) {
         bail!("--seconds {}: must be above 0", args.seconds);
     }
@@ -291,6 +315,38 @@ pub fn run(args: &Args) -> Result<()> {
         return Err(CheckFailed(format!("bench failed: {}", failures.join("; "))).into());
     }
     println!("bench passed");
+    Ok(())
+}
+
+fn run_closed_loop(args: &Args) -> Result<()> {
+    std::fs::create_dir_all(&args.report)
+        .with_context(|| format!("cannot create {}", args.report.display()))?;
+    let (model_path, _) = bench_model(args, &args.report)?;
+    let exe = live::find_decoderd(args.decoderd.as_deref())?;
+    let setup = super::closed_loop::ClosedLoopSetup {
+        decoderd: exe.as_deref(),
+        config: args.config.as_deref(),
+        model: &model_path,
+        work: &args.report.join("daemon"),
+        task: decoder_core::closed_loop::TaskOptions {
+            seed: args.task_seed,
+            n_trials: args.trials.max(1),
+            ..Default::default()
+        },
+        population: args.population,
+        speed: args.speed,
+    };
+    let summary = super::closed_loop::bench(&setup, &args.report)?;
+    if let Some(min) = args.min_success {
+        if summary.success_rate < min {
+            return Err(CheckFailed(format!(
+                "closed-loop success {:.0} % is below the required {:.0} %",
+                100.0 * summary.success_rate,
+                100.0 * min
+            ))
+            .into());
+        }
+    }
     Ok(())
 }
 

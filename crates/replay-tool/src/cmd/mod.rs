@@ -1,6 +1,7 @@
 //! One module per verb; each has an `Args` (clap) and a `run`.
 
 pub mod bench;
+pub mod closed_loop;
 pub mod demo;
 pub mod evaluate;
 pub mod model_show;

@@ -7,6 +7,7 @@ use anyhow::{Context, Result, bail};
 use decoder_core::evaluate::{DecoderSpec, Evaluation, cross_validate};
 use decoder_core::kalman::train::fit_kalman;
 use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
+use decoder_core::refit::reestimate_intention;
 use decoder_core::session::Session;
 use decoder_core::train_config::TrainConfig;
 use decoder_core::wiener::fit_wiener;
@@ -26,8 +27,16 @@ pub enum DecoderKind {
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// Calibration block (session directory).
+    #[arg(long, required_unless_present = "refit", conflicts_with = "refit")]
+    pub session: Option<PathBuf>,
+    /// Retrain from a closed-loop block (the `closed-loop-block` directory
+    /// `bench --closed-loop` writes) with intention re-estimation: decoded
+    /// velocity turned toward the target, zero inside it (Gilja et al. 2012).
     #[arg(long)]
-    pub session: PathBuf,
+    pub refit: Option<PathBuf>,
+    /// With --refit: the target's acceptance radius, in position units.
+    #[arg(long, default_value_t = 2.0, requires = "refit")]
+    pub refit_window: f64,
     #[arg(long, value_enum)]
     pub decoder: DecoderKind,
     /// Model file to write.
@@ -139,10 +148,26 @@ pub fn run(args: &Args) -> Result<()> {
         bail!("--no-history applies to --decoder point-process only");
     }
     let spec = spec_for(args.decoder, &cfg)?;
-    let session = Session::read(&args.session)?;
+    let (session, source) = match (&args.session, &args.refit) {
+        (Some(dir), _) => (Session::read(dir)?, dir.clone()),
+        (None, Some(block)) => {
+            let closed_loop = Session::read(block)?;
+            let (refit, n) = reestimate_intention(&closed_loop, args.refit_window)
+                .with_context(|| format!("re-estimating intention in {}", block.display()))?;
+            println!(
+                "intention re-estimated in {}: {} bins turned toward the target, {} zeroed inside it, {} outside trials left as decoded",
+                block.display(),
+                n.rotated,
+                n.zeroed,
+                n.untouched
+            );
+            (refit, block.clone())
+        }
+        (None, None) => bail!("give --session DIR or --refit BLOCK"),
+    };
     let folds = if args.no_cv { None } else { Some(cfg.folds) };
     let model = train_model(&session, &spec, folds)
-        .with_context(|| format!("training on {}", args.session.display()))?;
+        .with_context(|| format!("training on {}", source.display()))?;
     write_atomic(&args.out, &model.to_bytes())?;
     println!(
         "wrote {} ({} decoder, {} channels, {} ms bins)",

@@ -95,7 +95,7 @@ impl SimulatedUser {
         let n = channels.beta.len();
         SimulatedUser {
             channels,
-            rng: ChaCha8Rng::seed_from_u64(options.seed ^ 0x5EED_0F_0CE5),
+            rng: ChaCha8Rng::seed_from_u64(options.seed ^ 0x005E_ED0F_0CE5),
             refractory_left: vec![0; n],
             bin_ms: options.bin_ms.round().max(1.0) as usize,
             refractory_ms: options.refractory_ms,

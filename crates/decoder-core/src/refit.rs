@@ -51,8 +51,9 @@ pub fn reestimate_intention(
     let mut counted = Reestimated::default();
     let mut in_trial = vec![false; block.n_bins];
     for t in trials {
-        for bin in t.start_bin..t.end_bin.min(block.n_bins) {
-            in_trial[bin] = true;
+        let end = t.end_bin.min(block.n_bins);
+        for (bin, marked) in in_trial.iter_mut().enumerate().take(end).skip(t.start_bin) {
+            *marked = true;
             let to = [t.target_x - kin.get(bin, px), t.target_y - kin.get(bin, py)];
             let dist = to[0].hypot(to[1]);
             if dist <= window {

@@ -456,3 +456,113 @@ fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
             .contains("FAIL")
     );
 }
+
+fn closed_loop_summary(report: &Path) -> serde_json::Value {
+    let s: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("closed_loop.json")).unwrap())
+            .unwrap();
+    s["summary"].clone()
+}
+
+/// A decoder trained on the simulated array lets the simulated user reach
+/// targets; one trained with the channels shuffled does not; a refit from
+/// the good decoder's closed-loop block is at least as good and faster per
+/// target. Every run is seeded and the loop turns as fast as it can
+/// (bins early for their slots), so the outcomes repeat.
+#[test]
+fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_refit_helps() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "3",
+        "--channels",
+        "32",
+    ]);
+    let good = dir.path().join("good.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&good),
+        "--no-cv",
+    ]);
+
+    // The same block with its channel columns rotated by one: the decoder
+    // reads every channel as its neighbour.
+    let mut s = decoder_core::Session::read(&cal).unwrap();
+    let n = s.n_channels;
+    for row in s.counts.chunks_mut(n) {
+        row.rotate_left(1);
+    }
+    let shuffled_dir = dir.path().join("shuffled");
+    s.write(&shuffled_dir).unwrap();
+    let shuffled = dir.path().join("shuffled.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&shuffled_dir),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&shuffled),
+        "--no-cv",
+    ]);
+
+    let run = |model: &Path, name: &str, seed: &str| {
+        let report = dir.path().join(name);
+        ok(&[
+            "bench",
+            "--closed-loop",
+            "--model",
+            p(model),
+            "--speed",
+            "0",
+            "--trials",
+            "12",
+            "--task-seed",
+            seed,
+            "--report",
+            p(&report),
+        ]);
+        (closed_loop_summary(&report), report)
+    };
+    let (with_good, good_report) = run(&good, "cl-good", "3");
+    let (with_shuffled, _) = run(&shuffled, "cl-shuffled", "3");
+    let success = |v: &serde_json::Value| v["success_rate"].as_f64().unwrap();
+    assert!(success(&with_good) >= 0.5, "{with_good}");
+    assert!(success(&with_shuffled) <= 0.25, "{with_shuffled}");
+
+    let refit = dir.path().join("refit.model");
+    let block = good_report.join("closed-loop-block");
+    let out = ok(&[
+        "train",
+        "--refit",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&refit),
+        "--no-cv",
+    ]);
+    assert!(out.contains("intention re-estimated"), "{out}");
+    // Judged on targets it was not refit on.
+    let (seed_after, _) = run(&good, "cl-good-2", "4");
+    let (refit_after, _) = run(&refit, "cl-refit", "4");
+    assert!(
+        success(&refit_after) >= success(&seed_after),
+        "{refit_after} vs {seed_after}"
+    );
+    eprintln!("good {with_good}\nshuffled {with_shuffled}\nseed {seed_after}\nrefit {refit_after}");
+    let per_target = |v: &serde_json::Value| v["mean_trial_time_s"].as_f64().unwrap();
+    assert!(
+        per_target(&refit_after) <= per_target(&seed_after),
+        "{refit_after} vs {seed_after}"
+    );
+}

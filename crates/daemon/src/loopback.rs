@@ -40,6 +40,19 @@ pub fn paced_send(
     rate_hz: f64,
     fault: impl Fn(usize) -> BinFault,
 ) -> Vec<u64> {
+    paced_send_from(socket, target, bins, n, rate_hz, 0, fault)
+}
+
+/// [`paced_send`] with bin k carrying seq `first_seq + k`.
+pub fn paced_send_from(
+    socket: &UdpSocket,
+    target: SocketAddr,
+    bins: &[Vec<u8>],
+    n: usize,
+    rate_hz: f64,
+    first_seq: u64,
+    fault: impl Fn(usize) -> BinFault,
+) -> Vec<u64> {
     tighten_timer_slack();
     let period = Duration::from_secs_f64(1.0 / rate_hz);
     let mut buf = bins[0].clone();
@@ -61,7 +74,7 @@ pub fn paced_send(
             buf.resize(src.len(), 0);
         }
         buf.copy_from_slice(src);
-        buf[8..16].copy_from_slice(&(k as u64).to_le_bytes());
+        buf[8..16].copy_from_slice(&(first_seq + k as u64).to_le_bytes());
         let f = fault(k);
         if f == BinFault::Drop {
             continue;
@@ -109,6 +122,11 @@ pub struct Sink {
 
 impl Sink {
     pub fn start(socket: UdpSocket, n: usize) -> std::io::Result<Sink> {
+        Self::start_at(socket, 0, n)
+    }
+
+    /// Collects seqs `first_seq .. first_seq + n`, indexed from 0.
+    pub fn start_at(socket: UdpSocket, first_seq: u64, n: usize) -> std::io::Result<Sink> {
         socket.set_read_timeout(Some(Duration::from_millis(20)))?;
         let addr = socket.local_addr()?;
         let stop = Arc::new(AtomicBool::new(false));
@@ -128,7 +146,10 @@ impl Sink {
                 let Ok(p) = VelocityPacket::parse(&buf[..len]) else {
                     continue;
                 };
-                let k = p.seq as usize;
+                let Some(k) = p.seq.checked_sub(first_seq).map(|k| k as usize) else {
+                    rec.extra += 1;
+                    continue;
+                };
                 if k >= n {
                     rec.extra += 1;
                 } else if rec.packets[k].is_some() {

@@ -566,3 +566,132 @@ fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_ref
         "{refit_after} vs {seed_after}"
     );
 }
+
+#[test]
+fn live_replay_through_a_running_daemon_equals_offline_decoding() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+    ]);
+    let model = dir.path().join("k.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let block = dir.path().join("block");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "0.1",
+        "--channels",
+        "16",
+        "--seed",
+        "5",
+    ]);
+    // The running daemon (here on threads of this test) sends to `sink`.
+    let sink = std::net::UdpSocket::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap();
+    let daemon =
+        replay_tool::live::SpawnedDaemon::start(None, &model, &dir.path().join("d"), sink, false)
+            .unwrap();
+    let target = daemon.listen.to_string();
+    let sink_text = sink.to_string();
+    let out = ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--live",
+        "--target",
+        &target,
+        "--sink",
+        &sink_text,
+        "--speed",
+        "4",
+    ]);
+    assert!(
+        out.contains("300 of 300 live estimates equal offline decoding bit for bit"),
+        "{out}"
+    );
+
+    // Against another model, the same stream differs and the check fails.
+    let other_cal = dir.path().join("other-cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&other_cal),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+        "--seed",
+        "9",
+        "--population",
+        "2",
+    ]);
+    let other = dir.path().join("other.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&other_cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&other),
+        "--no-cv",
+    ]);
+    let err = fails_with(
+        &[
+            "replay",
+            "--session",
+            p(&block),
+            "--model",
+            p(&other),
+            "--live",
+            "--target",
+            &target,
+            "--sink",
+            &sink_text,
+            "--speed",
+            "4",
+        ],
+        1,
+    );
+    assert!(err.contains("differ"), "{err}");
+    // And with the right model again, on the now used daemon: a new stream
+    // resets it, and the check passes from the stream's first decoded bin.
+    let out = ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--live",
+        "--target",
+        &target,
+        "--sink",
+        &sink_text,
+        "--speed",
+        "4",
+    ]);
+    assert!(out.contains("299 of 299 live estimates equal"), "{out}");
+    daemon.stop().unwrap();
+}

@@ -116,6 +116,10 @@ pub fn run(args: &Args) -> Result<()> {
         verify: false,
         tolerance: None,
         compare: None,
+        live: false,
+        target: None,
+        sink: String::new(),
+        speed: 1.0,
     })?;
     let parts: Vec<String> = summary
         .cc

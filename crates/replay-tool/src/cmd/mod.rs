@@ -4,6 +4,7 @@ pub mod bench;
 pub mod closed_loop;
 pub mod demo;
 pub mod evaluate;
+pub mod live_replay;
 pub mod model_show;
 pub mod replay;
 pub mod simulate;

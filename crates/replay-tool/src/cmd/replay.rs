@@ -31,8 +31,8 @@ pub struct Args {
     #[arg(long)]
     pub model: Option<PathBuf>,
     /// Estimates to write: FILE.npy (shape bins × outputs, float64) or
-    /// FILE.csv. Required unless --verify.
-    #[arg(long, required_unless_present = "verify")]
+    /// FILE.csv. Required unless --verify or --live.
+    #[arg(long, required_unless_present_any = ["verify", "live"])]
     pub out: Option<PathBuf>,
     /// Run the full covariance update even when the model has a steady-state gain.
     #[arg(long)]
@@ -49,6 +49,20 @@ pub struct Args {
     /// estimates side by side to this CSV.
     #[arg(long, requires = "model")]
     pub compare: Option<PathBuf>,
+    /// Stream the block to a running daemon instead, and check its
+    /// velocity packets against offline decoding of the same bins.
+    #[arg(long, requires = "target")]
+    pub live: bool,
+    /// With --live: the daemon's bin address (its network.listen).
+    #[arg(long)]
+    pub target: Option<String>,
+    /// With --live: where to collect velocity packets (the daemon's
+    /// network.actuator).
+    #[arg(long, default_value = "127.0.0.1:27401")]
+    pub sink: String,
+    /// With --live: speed-up over the bin rate.
+    #[arg(long, default_value_t = 1.0)]
+    pub speed: f64,
 }
 
 pub struct ReplaySummary {
@@ -180,6 +194,15 @@ fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
 }
 
 pub fn run(args: &Args) -> Result<()> {
+    if args.live {
+        return super::live_replay::run(&super::live_replay::LiveArgs {
+            session: &args.session,
+            model: args.model.as_deref(),
+            target: args.target.as_deref().unwrap_or_default(),
+            sink: &args.sink,
+            speed: args.speed,
+        });
+    }
     if args.verify {
         if args.model.is_some() {
             bail!(

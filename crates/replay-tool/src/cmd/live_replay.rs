@@ -55,12 +55,12 @@ fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFil
                     &session.display().to_string(),
                 )?);
             }
-            LogRecord::Datagram { bytes, .. } => {
-                if packet::parse_bin_for(&bytes, n, bin_us).is_ok() {
-                    let mut counts = vec![0u16; n];
-                    packet::read_counts(&bytes, &mut counts);
-                    bins.push(counts);
-                }
+            LogRecord::Datagram { bytes, .. }
+                if packet::parse_bin_for(&bytes, n, bin_us).is_ok() =>
+            {
+                let mut counts = vec![0u16; n];
+                packet::read_counts(&bytes, &mut counts);
+                bins.push(counts);
             }
             _ => {}
         }

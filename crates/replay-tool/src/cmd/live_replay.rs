@@ -160,8 +160,8 @@ pub fn run(args: &LiveArgs<'_>) -> Result<()> {
     // that ran another stream before) and are not counted against it.
     let (mut equal, mut decoded, mut coasted, mut absent) = (0usize, 0usize, 0usize, 0usize);
     let mut first_difference = None;
-    for k in first..n {
-        let Some(p) = &rec.packets[k] else {
+    for (k, (packet, counts)) in rec.packets.iter().zip(&bins).enumerate().skip(first) {
+        let Some(p) = packet else {
             absent += 1;
             continue;
         };
@@ -171,7 +171,7 @@ pub fn run(args: &LiveArgs<'_>) -> Result<()> {
             pipeline.predict_only(seq)
         } else {
             decoded += 1;
-            pipeline.step(seq, &bins[k])
+            pipeline.step(seq, counts)
         };
         let same = offline.estimate.len() == p.estimate.len()
             && offline

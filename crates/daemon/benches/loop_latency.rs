@@ -22,7 +22,7 @@ use daemon::loopback::{BinFault, Sink, loopback_floor, paced_send, percentile_us
 use daemon::status::Status;
 use decoder_core::kalman::train::{KalmanFitOptions, SteadyStateOptions, fit_kalman};
 use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
-use decoder_core::packet::{self, BinHeader, FLAG_BIN_MISSING};
+use decoder_core::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::simulate::{SimOptions, simulate};
 
 fn env(name: &str, default: u64) -> u64 {
@@ -99,21 +99,7 @@ fn main() {
     std::fs::write(&model_path, model.to_bytes()).unwrap();
     let bin_us = packet::bin_us_of(bin_ms);
     let bins: Vec<Vec<u8>> = (0..session.n_bins.min(5000))
-        .map(|t| {
-            let mut out = Vec::new();
-            packet::encode_bin(
-                &BinHeader {
-                    channels: channels as u16,
-                    seq: 0,
-                    origin_ns: 0,
-                    bin_us,
-                    flags: 0,
-                },
-                session.bin_counts(t),
-                &mut out,
-            );
-            out
-        })
+        .map(|t| packet::bin_datagram(session.bin_counts(t), bin_us))
         .collect();
     drop(session);
 

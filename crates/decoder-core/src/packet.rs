@@ -190,6 +190,24 @@ pub fn encode_bin(header: &BinHeader, counts: &[u16], out: &mut Vec<u8>) {
     }
 }
 
+/// A bin datagram for `counts` with seq and origin 0, for senders that
+/// stamp those just before sending (benches, replays, examples).
+pub fn bin_datagram(counts: &[u16], bin_us: u32) -> Vec<u8> {
+    let mut out = Vec::with_capacity(BIN_HEADER_LEN + 2 * counts.len());
+    encode_bin(
+        &BinHeader {
+            channels: counts.len() as u16,
+            seq: 0,
+            origin_ns: 0,
+            bin_us,
+            flags: 0,
+        },
+        counts,
+        &mut out,
+    );
+    out
+}
+
 /// Bin width in whole microseconds as the packets carry it.
 pub fn bin_us_of(bin_ms: f64) -> u32 {
     (bin_ms * 1000.0).round() as u32

@@ -20,7 +20,7 @@ use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
 use daemon::loopback::{BinFault, Sink, SinkRecord, loopback_floor, paced_send, percentile_us};
-use decoder_core::packet::{self, BinHeader, FLAG_BIN_MISSING};
+use decoder_core::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::simulate::{SimOptions, simulate};
 use decoder_core::{ModelFile, Session};
 use serde_json::json;
@@ -152,21 +152,7 @@ fn bins_for(model: &ModelFile) -> Result<(Vec<Vec<u8>>, Session)> {
     })?;
     let bin_us = packet::bin_us_of(model.bin_ms);
     let bins = (0..session.n_bins)
-        .map(|t| {
-            let mut out = Vec::new();
-            packet::encode_bin(
-                &BinHeader {
-                    channels: session.n_channels as u16,
-                    seq: 0,
-                    origin_ns: 0,
-                    bin_us,
-                    flags: 0,
-                },
-                session.bin_counts(t),
-                &mut out,
-            );
-            out
-        })
+        .map(|t| packet::bin_datagram(session.bin_counts(t), bin_us))
         .collect();
     Ok((bins, session))
 }

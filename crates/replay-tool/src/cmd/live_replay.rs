@@ -12,7 +12,7 @@ use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
 use daemon::loopback::{BinFault, Sink, paced_send_from};
-use decoder_core::packet::{self, BinHeader, FLAG_BIN_MISSING};
+use decoder_core::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::pipeline::DecodePipeline;
 use decoder_core::session_log::{LogReader, LogRecord};
 use decoder_core::{ModelFile, Session};
@@ -89,21 +89,7 @@ pub fn run(args: &LiveArgs<'_>) -> Result<()> {
     let bin_us = packet::bin_us_of(model.bin_ms);
     let datagrams: Vec<Vec<u8>> = bins
         .iter()
-        .map(|c| {
-            let mut out = Vec::new();
-            packet::encode_bin(
-                &BinHeader {
-                    channels: channels as u16,
-                    seq: 0,
-                    origin_ns: 0,
-                    bin_us,
-                    flags: 0,
-                },
-                c,
-                &mut out,
-            );
-            out
-        })
+        .map(|c| packet::bin_datagram(c, bin_us))
         .collect();
     let sink_socket = UdpSocket::bind(args.sink).with_context(|| {
         format!(

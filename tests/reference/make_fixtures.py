@@ -14,6 +14,11 @@ Writes, into the directory given as the only argument:
                           from scipy.linalg.solve_discrete_are
   metrics.json            two arrays and their scipy.stats.pearsonr,
                           sklearn.metrics.r2_score and numpy RMSE
+  glm_*.npy               statsmodels GLM(family=Poisson) fits of three
+                          channels on the block's velocity, without and
+                          with own-history columns through a raised-cosine
+                          basis (written out here from its formula), with
+                          the design matrices used
   versions.txt            the versions that produced all of this
 
 The data are synthetic and seeded; nothing here is recorded data.
@@ -29,6 +34,8 @@ import scipy
 import scipy.linalg
 import scipy.stats
 import sklearn
+import statsmodels
+import statsmodels.api as sm
 from filterpy.kalman import KalmanFilter
 from sklearn.metrics import r2_score
 
@@ -126,6 +133,36 @@ FITS = {
 }
 
 
+GLM_CHANNELS = (0, 5, 11)
+HISTORY_BASIS = 4
+HISTORY_SPAN = 10
+
+
+def raised_cosine(n_basis, span):
+    """Log-stretched raised cosines over lags 1..span (Pillow et al. 2008):
+    0.5 * (1 + cos(pi * (s - c_j) / (2 * delta))) where |s - c_j| < 2 delta,
+    s = log(lag + 1), centres evenly spaced delta apart from s(1) to s(span)."""
+    s = np.log(np.arange(1, span + 1) + 1.0)
+    lo, hi = s[0], s[-1]
+    delta = (hi - lo) / (n_basis - 1)
+    basis = np.zeros((n_basis, span))
+    for j in range(n_basis):
+        d = (s - (lo + j * delta)) / (2 * delta)
+        basis[j] = np.where(np.abs(d) < 1, 0.5 * (1 + np.cos(np.pi * d)), 0.0)
+    return basis
+
+
+def history_columns(y, basis):
+    """Column j at bin t: sum over lags 1..span of basis[j, lag-1] * y[t-lag]."""
+    n_basis, span = basis.shape
+    out = np.zeros((len(y), n_basis))
+    for lag in range(1, span + 1):
+        shifted = np.zeros(len(y))
+        shifted[lag:] = y[:-lag]
+        out += shifted[:, None] * basis[:, lag - 1][None, :]
+    return out
+
+
 def main(out):
     rng = np.random.default_rng(SEED)
     counts, kin = make_block(rng)
@@ -180,9 +217,24 @@ def main(out):
             indent=2,
         )
 
+    # Poisson GLMs with statsmodels' IRLS (its defaults: tol 1e-8 on the
+    # deviance, 100 iterations), velocity only and with history columns.
+    basis = raised_cosine(HISTORY_BASIS, HISTORY_SPAN)
+    np.save(os.path.join(out, "glm_basis.npy"), basis)
+    vel = kin[:, 2:4]
+    for c in GLM_CHANNELS:
+        y = counts[:, c].astype(np.float64)
+        lnp = sm.GLM(y, sm.add_constant(vel), family=sm.families.Poisson()).fit()
+        np.save(os.path.join(out, f"glm_lnp_coef_{c}.npy"), lnp.params)
+        design = np.column_stack([vel, history_columns(y, basis)])
+        np.save(os.path.join(out, f"glm_history_design_{c}.npy"), design)
+        hist = sm.GLM(y, sm.add_constant(design), family=sm.families.Poisson()).fit()
+        np.save(os.path.join(out, f"glm_history_coef_{c}.npy"), hist.params)
+        np.save(os.path.join(out, f"glm_history_deviance_{c}.npy"), np.array([hist.deviance]))
+
     with open(os.path.join(out, "versions.txt"), "w") as f:
         f.write(f"python {sys.version.split()[0]}\n")
-        for mod in (np, scipy, filterpy, sklearn):
+        for mod in (np, scipy, filterpy, sklearn, statsmodels):
             f.write(f"{mod.__name__} {mod.__version__}\n")
 
 

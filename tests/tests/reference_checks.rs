@@ -187,3 +187,74 @@ fn metrics_equal_scipy_and_sklearn() {
     check("R²", s.r2, "r2_score");
     check("RMSE", s.rmse, "rmse");
 }
+
+/// Poisson GLM encoding models against statsmodels 0.15.0
+/// `GLM(y, add_constant(X), family=Poisson()).fit()` (IRLS) on the same
+/// design, for three channels of the numpy-written block: velocity only
+/// (the LNP form), and with own-history columns. The raised-cosine basis
+/// (Pillow et al. 2008) and the history columns are checked first against
+/// the fixture script's independent numpy code.
+#[test]
+fn poisson_glms_match_statsmodels_without_and_with_history() {
+    use decoder_core::glm::{GlmFitOptions, RaisedCosineBasis, fit_poisson};
+    let s = block();
+    let kin = s.kinematics.as_ref().unwrap();
+    let (vx, vy) = (
+        s.kinematic_index("vel_x").unwrap(),
+        s.kinematic_index("vel_y").unwrap(),
+    );
+    let basis = RaisedCosineBasis::new(4, 10);
+    assert_close(
+        "raised-cosine basis vs numpy",
+        &basis.weights.data,
+        &fixture("glm_basis.npy").1,
+        1e-12,
+    );
+    for c in [0usize, 5, 11] {
+        let y: Vec<f64> = (0..s.n_bins)
+            .map(|t| f64::from(s.bin_counts(t)[c]))
+            .collect();
+        let mut lnp = Mat::zeros(s.n_bins, 2);
+        let mut hist = Mat::zeros(s.n_bins, 2 + 4);
+        let mut h = [0.0; 4];
+        for t in 0..s.n_bins {
+            for (j, col) in [vx, vy].into_iter().enumerate() {
+                lnp.set(t, j, kin.get(t, col));
+                hist.set(t, j, kin.get(t, col));
+            }
+            basis.covariates(&y, t, &mut h);
+            for (j, v) in h.iter().enumerate() {
+                hist.set(t, 2 + j, *v);
+            }
+        }
+        assert_close(
+            &format!("channel {c}: history design vs numpy"),
+            &hist.data,
+            &fixture(&format!("glm_history_design_{c}.npy")).1,
+            1e-12,
+        );
+        let opts = GlmFitOptions::default();
+        let fit = fit_poisson(&lnp, &y, &opts).unwrap();
+        assert!(fit.converged);
+        assert_close(
+            &format!("channel {c}: LNP coefficients vs statsmodels"),
+            &fit.coefficients,
+            &fixture(&format!("glm_lnp_coef_{c}.npy")).1,
+            1e-4,
+        );
+        let fit = fit_poisson(&hist, &y, &opts).unwrap();
+        assert!(fit.converged);
+        assert_close(
+            &format!("channel {c}: history-GLM coefficients vs statsmodels"),
+            &fit.coefficients,
+            &fixture(&format!("glm_history_coef_{c}.npy")).1,
+            1e-4,
+        );
+        assert_close(
+            &format!("channel {c}: deviance vs statsmodels"),
+            &[fit.deviance],
+            &fixture(&format!("glm_history_deviance_{c}.npy")).1,
+            1e-6,
+        );
+    }
+}

@@ -249,10 +249,10 @@ mod tests {
         let n = 400;
         let mut x = Mat::zeros(n, 1);
         let mut y = vec![0.0; n];
-        for i in 0..n {
+        for (i, yi) in y.iter_mut().enumerate() {
             let v = (i as f64 / 40.0).sin();
             x.set(i, 0, v);
-            y[i] = (0.5 + 0.8 * v).exp();
+            *yi = (0.5 + 0.8 * v).exp();
         }
         let fit = fit_poisson(&x, &y, &GlmFitOptions::default()).unwrap();
         assert!(fit.converged);

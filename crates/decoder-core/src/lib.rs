@@ -17,6 +17,8 @@ pub mod metrics;
 pub mod model_file;
 pub mod packet;
 pub mod pipeline;
+pub mod point_process;
+pub mod pp_fit;
 pub mod refit;
 pub mod session;
 pub mod session_log;

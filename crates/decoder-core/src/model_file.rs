@@ -13,6 +13,7 @@ use serde::{Deserialize, Serialize};
 use serde_json::{Value, json};
 
 use crate::kalman::KalmanModel;
+use crate::point_process::PointProcessModel;
 use crate::wiener::WienerModel;
 
 pub const MODEL_MAGIC: &[u8; 8] = b"VDECMODL";
@@ -27,6 +28,8 @@ const MAX_PAYLOAD: usize = 1 << 30;
 pub enum DecoderModel {
     Kalman(KalmanModel),
     Wiener(WienerModel),
+    /// Appended last so earlier model files keep their variant index.
+    PointProcess(PointProcessModel),
 }
 
 impl DecoderModel {
@@ -34,6 +37,7 @@ impl DecoderModel {
         match self {
             DecoderModel::Kalman(_) => "kalman",
             DecoderModel::Wiener(_) => "wiener",
+            DecoderModel::PointProcess(_) => "point-process",
         }
     }
 
@@ -41,6 +45,7 @@ impl DecoderModel {
         match self {
             DecoderModel::Kalman(m) => &m.outputs,
             DecoderModel::Wiener(m) => &m.outputs,
+            DecoderModel::PointProcess(m) => &m.outputs,
         }
     }
 
@@ -48,6 +53,7 @@ impl DecoderModel {
         match self {
             DecoderModel::Kalman(m) => m.n_channels(),
             DecoderModel::Wiener(m) => m.n_channels,
+            DecoderModel::PointProcess(m) => m.n_channels(),
         }
     }
 }
@@ -211,6 +217,7 @@ impl ModelFile {
         match &self.decoder {
             DecoderModel::Kalman(m) => m.validate().map_err(|e| e.to_string()),
             DecoderModel::Wiener(m) => m.validate(),
+            DecoderModel::PointProcess(m) => m.validate(),
         }
     }
 }
@@ -253,6 +260,46 @@ pub fn export_json(model: &ModelFile) -> Value {
                 })
             });
             map.insert("steady_state".into(), steady.unwrap_or(Value::Null));
+        }
+        DecoderModel::PointProcess(p) => {
+            map.insert("state".into(), json!(p.state));
+            map.insert("A".into(), json!(p.a.to_nested()));
+            map.insert("W".into(), json!(p.w.to_nested()));
+            map.insert("x0".into(), json!(p.x0));
+            map.insert("P0".into(), json!(p.p0.to_nested()));
+            // Channels left out carry no coefficients: null in each list.
+            let per = |f: &dyn Fn(&crate::point_process::ChannelGlm) -> Value| -> Vec<Value> {
+                p.channels
+                    .iter()
+                    .map(|c| c.as_ref().map_or(Value::Null, f))
+                    .collect()
+            };
+            map.insert("b0".into(), json!(per(&|c| json!(c.b0))));
+            map.insert("beta".into(), json!(per(&|c| json!(c.beta))));
+            map.insert("history".into(), json!(per(&|c| json!(c.history))));
+            map.insert(
+                "history_basis".into(),
+                p.history_basis.as_ref().map_or(Value::Null, |b| {
+                    json!({
+                        "kind": "raised_cosine_log",
+                        "n_basis": b.n_basis,
+                        "span_bins": b.span_bins,
+                        "weights": b.weights.to_nested(),
+                    })
+                }),
+            );
+            if p.channels.iter().flatten().any(|c| !c.coupling.is_empty()) {
+                map.insert("coupling".into(), json!(per(&|c| json!(c.coupling))));
+            }
+            map.insert(
+                "excluded".into(),
+                json!(
+                    p.excluded
+                        .iter()
+                        .map(|(c, why)| json!({"channel": c, "reason": why}))
+                        .collect::<Vec<_>>()
+                ),
+            );
         }
         DecoderModel::Wiener(w) => {
             map.insert("state".into(), json!(w.outputs));

@@ -9,6 +9,7 @@
 
 use crate::kalman::{KalmanError, KalmanFilter};
 use crate::model_file::{DecoderModel, ModelFile};
+use crate::point_process::PointProcessFilter;
 use crate::wiener::WienerFilter;
 
 // One value per loaded model, never per bin: boxing would buy nothing.
@@ -20,6 +21,10 @@ enum Engine {
         outputs: Vec<usize>,
     },
     Wiener(WienerFilter),
+    PointProcess {
+        filter: PointProcessFilter,
+        outputs: Vec<usize>,
+    },
 }
 
 /// The outcome of one bin.
@@ -50,6 +55,8 @@ pub enum PipelineError {
     Kalman(#[from] KalmanError),
     #[error("wiener model: {0}")]
     Wiener(String),
+    #[error("point-process model: {0}")]
+    PointProcess(String),
 }
 
 impl DecodePipeline {
@@ -82,6 +89,12 @@ impl DecodePipeline {
                 Engine::Wiener(WienerFilter::new(w).map_err(PipelineError::Wiener)?),
                 w.outputs.len(),
             ),
+            DecoderModel::PointProcess(m) => {
+                let filter = PointProcessFilter::new(m).map_err(PipelineError::PointProcess)?;
+                let outputs = m.output_indices().map_err(PipelineError::PointProcess)?;
+                let d = outputs.len();
+                (Engine::PointProcess { filter, outputs }, d)
+            }
         };
         let mut p = DecodePipeline {
             engine,
@@ -116,6 +129,7 @@ impl DecodePipeline {
         match &mut self.engine {
             Engine::Kalman { filter, .. } => filter.reset(),
             Engine::Wiener(w) => w.reset(),
+            Engine::PointProcess { filter, .. } => filter.reset(),
         }
         self.last_seq = None;
         self.copy_estimate();
@@ -135,6 +149,7 @@ impl DecodePipeline {
                 w.step(counts);
                 true
             }
+            Engine::PointProcess { filter, .. } => filter.step(counts),
         };
         self.finish(seq, false, !updated)
     }
@@ -144,6 +159,7 @@ impl DecodePipeline {
         match &mut self.engine {
             Engine::Kalman { filter, .. } => filter.predict_only(),
             Engine::Wiener(w) => w.predict_only(),
+            Engine::PointProcess { filter, .. } => filter.predict_only(),
         }
         self.finish(seq, true, false)
     }
@@ -169,6 +185,12 @@ impl DecodePipeline {
                 }
             }
             Engine::Wiener(w) => self.estimate.copy_from_slice(w.estimate()),
+            Engine::PointProcess { filter, outputs } => {
+                let x = filter.state();
+                for (e, &i) in self.estimate.iter_mut().zip(outputs) {
+                    *e = x[i];
+                }
+            }
         }
         self.estimate.iter().all(|v| v.is_finite())
     }

@@ -10,6 +10,7 @@ use crate::kalman::steady::{DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE};
 use crate::kalman::train::{
     CONSTANT, CountNormalisation, KalmanFitOptions, QForm, SteadyStateOptions,
 };
+use crate::pp_fit::PointProcessFitOptions;
 use crate::wiener::WienerFitOptions;
 
 #[derive(Debug, Default, Deserialize)]
@@ -22,6 +23,21 @@ struct RawTrainConfig {
     kalman: RawKalman,
     #[serde(default)]
     wiener: RawWiener,
+    #[serde(default)]
+    point_process: RawPointProcess,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawPointProcess {
+    state: Option<Vec<String>>,
+    outputs: Option<Vec<String>>,
+    history: Option<bool>,
+    history_basis: Option<i64>,
+    history_span_bins: Option<i64>,
+    coupling: Option<bool>,
+    max_iterations: Option<i64>,
+    tolerance: Option<f64>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -49,6 +65,7 @@ struct RawWiener {
 pub struct TrainConfig {
     pub kalman: KalmanFitOptions,
     pub wiener: WienerFitOptions,
+    pub point_process: PointProcessFitOptions,
     pub folds: usize,
 }
 
@@ -57,6 +74,7 @@ impl Default for TrainConfig {
         TrainConfig {
             kalman: KalmanFitOptions::default(),
             wiener: WienerFitOptions::default(),
+            point_process: PointProcessFitOptions::default(),
             folds: 5,
         }
     }
@@ -96,6 +114,7 @@ impl TrainConfig {
             check_ridge(ridge).map_err(err)?;
             cfg.kalman.ridge = ridge;
             cfg.wiener.ridge = ridge;
+            cfg.point_process.ridge = ridge;
         }
         if let Some(folds) = raw.folds {
             let folds = non_negative(folds, "folds").map_err(err)?;
@@ -194,6 +213,68 @@ impl TrainConfig {
             .wiener
             .outputs
             .unwrap_or_else(|| cfg.kalman.outputs.clone());
+        let pp = raw.point_process;
+        if let Some(state) = pp.state {
+            if state.is_empty() || state.len() > 16 || state.iter().any(|s| s == CONSTANT) {
+                return Err(err(
+                    "key point_process.state must name 1 to 16 kinematics columns (the intercept b0 is always fitted)".into(),
+                ));
+            }
+            cfg.point_process.outputs.retain(|o| state.contains(o));
+            cfg.point_process.state = state;
+        }
+        if let Some(outputs) = pp.outputs {
+            cfg.point_process.outputs = outputs;
+        }
+        if cfg.point_process.outputs.is_empty()
+            || cfg.point_process.outputs.len() > 8
+            || cfg
+                .point_process
+                .outputs
+                .iter()
+                .any(|o| !cfg.point_process.state.contains(o))
+        {
+            return Err(err(format!(
+                "key point_process.outputs {:?}: 1 to 8 components of point_process.state {:?}",
+                cfg.point_process.outputs, cfg.point_process.state
+            )));
+        }
+        let mut history = cfg
+            .point_process
+            .history
+            .clone()
+            .expect("default has history");
+        if let Some(n) = pp.history_basis {
+            history.n_basis = non_negative(n, "point_process.history_basis").map_err(err)?;
+        }
+        if let Some(n) = pp.history_span_bins {
+            history.span_bins = non_negative(n, "point_process.history_span_bins").map_err(err)?;
+        }
+        if history.n_basis < 2 || history.span_bins < history.n_basis {
+            return Err(err(format!(
+                "keys point_process.history_basis = {} and history_span_bins = {}: need at least 2 basis functions and a span of at least as many bins",
+                history.n_basis, history.span_bins
+            )));
+        }
+        cfg.point_process.history = pp.history.unwrap_or(true).then_some(history);
+        if let Some(c) = pp.coupling {
+            cfg.point_process.coupling = c;
+        }
+        if let Some(n) = pp.max_iterations {
+            let n = non_negative(n, "point_process.max_iterations").map_err(err)?;
+            if n == 0 {
+                return Err(err("key point_process.max_iterations is 0".into()));
+            }
+            cfg.point_process.max_iterations = n;
+        }
+        if let Some(t) = pp.tolerance {
+            if !(t.is_finite() && t > 0.0) {
+                return Err(err(format!(
+                    "key point_process.tolerance is {t}; it must be above zero"
+                )));
+            }
+            cfg.point_process.tolerance = t;
+        }
         Ok(cfg)
     }
 
@@ -210,6 +291,7 @@ impl TrainConfig {
         })?;
         self.kalman.ridge = ridge;
         self.wiener.ridge = ridge;
+        self.point_process.ridge = ridge;
         Ok(())
     }
 }

@@ -278,21 +278,85 @@ fn bad_config_key_is_named() {
 }
 
 #[test]
-fn point_process_says_it_is_not_available() {
+fn point_process_decoder_trains_replays_and_exports() {
     let dir = tempfile::tempdir().unwrap();
-    let e = fails_with(
-        &[
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "2",
+        "--channels",
+        "16",
+    ]);
+    let later = dir.path().join("later");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&later),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "16",
+        "--seed",
+        "4",
+    ]);
+    for (name, extra) in [("pp.model", None), ("lnp.model", Some("--no-history"))] {
+        let model = dir.path().join(name);
+        let mut args = vec![
             "train",
             "--session",
-            p(dir.path()),
+            p(&cal),
             "--decoder",
             "point-process",
             "--out",
-            p(&dir.path().join("m")),
-        ],
-        2,
-    );
-    assert!(e.contains("point-process"), "{e}");
+            p(&model),
+        ];
+        args.extend(extra);
+        let out = ok(&args);
+        assert!(
+            out.contains("point-process decoder, 16 channels fitted of 16"),
+            "{out}"
+        );
+        let shown = ok(&["model", "show", p(&model)]);
+        assert!(shown.contains("point-process"), "{shown}");
+        let json: serde_json::Value =
+            serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+        assert_eq!(json["kind"], "point-process");
+        for key in [
+            "b0", "beta", "history", "A", "W", "x0", "P0", "state", "outputs",
+        ] {
+            assert!(!json[key].is_null(), "{key} missing");
+        }
+        assert_eq!(json["history_basis"].is_null(), extra.is_some());
+        let est = dir.path().join(format!("{name}.npy"));
+        let out = ok(&[
+            "replay",
+            "--session",
+            p(&later),
+            "--model",
+            p(&model),
+            "--out",
+            p(&est),
+        ]);
+        // Decoding the later block from the same simulated array works.
+        let cc: Vec<f64> = out
+            .lines()
+            .find(|l| l.contains("kinematics"))
+            .unwrap()
+            .split("CC ")
+            .skip(1)
+            .map(|w| {
+                w.split(|c: char| c == ',' || c.is_whitespace())
+                    .next()
+                    .unwrap()
+                    .parse()
+                    .unwrap()
+            })
+            .collect();
+        assert!(cc.iter().all(|&c| c > 0.5), "{name}: {out}");
+    }
 }
 
 #[test]

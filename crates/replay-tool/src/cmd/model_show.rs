@@ -49,6 +49,39 @@ pub fn summary(model: &ModelFile) -> String {
         DecoderModel::Wiener(w) => {
             let _ = writeln!(s, "taps          {}", w.taps);
         }
+        DecoderModel::PointProcess(m) => {
+            let _ = writeln!(s, "state         {}", m.state.join(", "));
+            let _ = writeln!(
+                s,
+                "history       {}",
+                m.history_basis
+                    .as_ref()
+                    .map_or("none (LNP)".to_string(), |b| format!(
+                        "{} raised cosines over {} bins",
+                        b.n_basis, b.span_bins
+                    ))
+            );
+            let coupled = m.channels.iter().flatten().any(|c| !c.coupling.is_empty());
+            let _ = writeln!(s, "coupling      {}", if coupled { "yes" } else { "no" });
+            let fitted: Vec<f64> = m
+                .channels
+                .iter()
+                .flatten()
+                .map(|c| 1.0 - c.deviance / c.null_deviance.max(f64::MIN_POSITIVE))
+                .collect();
+            if !fitted.is_empty() {
+                let mean = fitted.iter().sum::<f64>() / fitted.len() as f64;
+                let _ = writeln!(
+                    s,
+                    "fitted        {} channels, mean deviance explained {:.3}",
+                    fitted.len(),
+                    mean
+                );
+            }
+            for (c, why) in &m.excluded {
+                let _ = writeln!(s, "left out      channel {c}: {why}");
+            }
+        }
     }
     let _ = writeln!(s, "trained at    {}", p.trained_at);
     let _ = writeln!(s, "tool version  {}", p.tool_version);

@@ -7,6 +7,8 @@ use anyhow::{Context, Result, bail};
 use decoder_core::evaluate::{DecoderSpec, Evaluation, cross_validate};
 use decoder_core::kalman::train::fit_kalman;
 use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
+use decoder_core::point_process::ChannelGlm;
+use decoder_core::pp_fit::{PointProcessFitOptions, assemble, fit_channel};
 use decoder_core::refit::reestimate_intention;
 use decoder_core::session::Session;
 use decoder_core::train_config::TrainConfig;
@@ -80,9 +82,7 @@ pub fn spec_for(kind: DecoderKind, cfg: &TrainConfig) -> Result<DecoderSpec> {
         DecoderKind::Kalman => Ok(DecoderSpec::Kalman(cfg.kalman.clone())),
         DecoderKind::Wiener => Ok(DecoderSpec::Wiener(cfg.wiener.clone())),
         DecoderKind::PointProcess => {
-            bail!(
-                "the point-process decoder is not available in this build; train kalman or wiener"
-            )
+            bail!("the point-process decoder is trained by train_point_process, not from a spec")
         }
     }
 }
@@ -142,10 +142,110 @@ fn cv_json(eval: &Evaluation) -> serde_json::Value {
     })
 }
 
+/// Fits the point-process decoder, its channels in parallel on all cores
+/// (each channel's GLM is independent of the others).
+pub fn train_point_process(
+    session: &Session,
+    options: &PointProcessFitOptions,
+) -> Result<ModelFile> {
+    if session.kinematics.is_none() {
+        return Err(decoder_core::TrainError::NoKinematics.into());
+    }
+    decoder_core::kalman::train::state_sources(session, &options.state)?;
+    let n = session.n_channels;
+    let threads = std::thread::available_parallelism()
+        .map_or(1, |t| t.get())
+        .min(n.max(1));
+    let pb = progress::bar(n as u64, "fit GLMs");
+    let next = std::sync::atomic::AtomicUsize::new(0);
+    let mut fits: Vec<Option<Result<ChannelGlm, String>>> = vec![None; n];
+    let results = std::sync::Mutex::new(&mut fits);
+    std::thread::scope(|scope| {
+        for _ in 0..threads {
+            scope.spawn(|| {
+                loop {
+                    let c = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                    if c >= n {
+                        break;
+                    }
+                    let fit = fit_channel(session, options, c);
+                    results.lock().expect("fit results")[c] = Some(fit);
+                    pb.inc(1);
+                }
+            });
+        }
+    });
+    pb.finish_and_clear();
+    let fits = fits
+        .into_iter()
+        .map(|f| f.unwrap_or_else(|| Err("not fitted".into())))
+        .collect();
+    let (model, report) = assemble(session, options, fits)?;
+    for (c, why) in &report.excluded {
+        tracing::warn!("channel {c} left out of the point-process model: {why}");
+    }
+    let fit = json!({ "decoder": "point-process", "options": options, "report": report });
+    Ok(ModelFile {
+        bin_ms: session.bin_ms,
+        decoder: DecoderModel::PointProcess(model),
+        provenance: Provenance {
+            trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
+            tool_version: env!("CARGO_PKG_VERSION").to_string(),
+            data_sha256: session.data_sha256(),
+            fit_json: fit.to_string(),
+            cv_json: serde_json::Value::Null.to_string(),
+        },
+    })
+}
+
 pub fn run(args: &Args) -> Result<()> {
-    let cfg = config_with_overrides(args.config.as_deref(), args.lag, args.ridge)?;
+    let mut cfg = config_with_overrides(args.config.as_deref(), args.lag, args.ridge)?;
     if args.no_history && args.decoder != DecoderKind::PointProcess {
         bail!("--no-history applies to --decoder point-process only");
+    }
+    if args.no_history {
+        cfg.point_process.history = None;
+        cfg.point_process.coupling = false;
+    }
+    if args.decoder == DecoderKind::PointProcess {
+        let session = match (&args.session, &args.refit) {
+            (Some(dir), _) => Session::read(dir)?,
+            (None, Some(_)) => bail!("--refit trains kalman or wiener decoders"),
+            (None, None) => bail!("give --session DIR"),
+        };
+        let model = train_point_process(&session, &cfg.point_process)?;
+        write_atomic(&args.out, &model.to_bytes())?;
+        let DecoderModel::PointProcess(m) = &model.decoder else {
+            unreachable!("trained a point-process model")
+        };
+        println!(
+            "wrote {} (point-process decoder, {} channels fitted of {}, {} ms bins, history {})",
+            args.out.display(),
+            m.channels.iter().flatten().count(),
+            m.n_channels(),
+            model.bin_ms,
+            if m.history_basis.is_some() {
+                "yes"
+            } else {
+                "no (LNP)"
+            }
+        );
+        if !m.excluded.is_empty() {
+            println!(
+                "left out: {}",
+                m.excluded
+                    .iter()
+                    .map(|(c, why)| format!("channel {c} ({why})"))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            );
+        }
+        if !args.no_cv {
+            println!(
+                "cross-validation of the point-process decoder is not run by train yet; cv is left empty"
+            );
+        }
+        return Ok(());
     }
     let spec = spec_for(args.decoder, &cfg)?;
     let (session, source) = match (&args.session, &args.refit) {

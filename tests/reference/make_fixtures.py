@@ -19,6 +19,12 @@ Writes, into the directory given as the only argument:
                           with own-history columns through a raised-cosine
                           basis (written out here from its formula), with
                           the design matrices used
+  eden_*.npy              one point-process filter step (Eden et al. 2004)
+                          written out in numpy from the equations
+  gof_*.npy, gof.json     time-rescaled intervals (Brown et al. 2002, with the
+                          discrete-time correction of Haslinger et al. 2010)
+                          of one channel under its statsmodels fit, and
+                          scipy.stats.kstest on them
   versions.txt            the versions that produced all of this
 
 The data are synthetic and seeded; nothing here is recorded data.
@@ -222,15 +228,65 @@ def main(out):
     basis = raised_cosine(HISTORY_BASIS, HISTORY_SPAN)
     np.save(os.path.join(out, "glm_basis.npy"), basis)
     vel = kin[:, 2:4]
+    lnp_mu = {}
     for c in GLM_CHANNELS:
         y = counts[:, c].astype(np.float64)
         lnp = sm.GLM(y, sm.add_constant(vel), family=sm.families.Poisson()).fit()
+        lnp_mu[c] = lnp.mu
         np.save(os.path.join(out, f"glm_lnp_coef_{c}.npy"), lnp.params)
         design = np.column_stack([vel, history_columns(y, basis)])
         np.save(os.path.join(out, f"glm_history_design_{c}.npy"), design)
         hist = sm.GLM(y, sm.add_constant(design), family=sm.families.Poisson()).fit()
         np.save(os.path.join(out, f"glm_history_coef_{c}.npy"), hist.params)
         np.save(os.path.join(out, f"glm_history_deviance_{c}.npy"), np.array([hist.deviance]))
+
+    # One step of the point-process filter, from the equations:
+    #   x- = A x, P- = A P A' + W, lambda = exp(b0 + beta x-),
+    #   P = inv(inv(P-) + sum_c beta_c beta_c' lambda_c),
+    #   x = x- + P sum_c beta_c (n_c - lambda_c).
+    r2 = np.random.default_rng(SEED + 1)
+    A = np.array([[0.95, 0.02], [-0.01, 0.93]])
+    Wn = np.diag([0.5, 0.4])
+    x = r2.normal(size=2)
+    P = np.array([[1.0, 0.2], [0.2, 0.8]])
+    b0 = np.log(r2.uniform(0.1, 0.6, size=6))
+    beta = r2.normal(scale=0.3, size=(6, 2))
+    n_obs = r2.poisson(0.4, size=6).astype(np.float64)
+    x_prior = A @ x
+    P_prior = A @ P @ A.T + Wn
+    lam = np.exp(b0 + beta @ x_prior)
+    P_post = np.linalg.inv(np.linalg.inv(P_prior) + (beta.T * lam) @ beta)
+    x_post = x_prior + P_post @ (beta.T @ (n_obs - lam))
+    for name, value in [("A", A), ("W", Wn), ("x", x), ("P", P), ("b0", b0), ("beta", beta),
+                        ("counts", n_obs), ("x_post", x_post), ("P_post", P_post)]:
+        np.save(os.path.join(out, f"eden_{name}.npy"), value)
+
+    # Time rescaling of channel 0 under its velocity-only fit. A spike-free
+    # bin adds its expected count; a bin with m spikes is m sub-bins of
+    # lambda/m, each spike adding delta = -log(1 - r (1 - exp(-q))).
+    c = GLM_CHANNELS[0]
+    mu = lnp_mu[c]
+    y = counts[:, c]
+    r = r2.uniform(size=int(y.sum()))
+    intervals, since, seen, k = [], 0.0, False, 0
+    for lam_t, m in zip(mu, y):
+        if m == 0:
+            since += lam_t
+            continue
+        q = lam_t / m
+        for _ in range(m):
+            delta = -np.log(1.0 - r[k] * (1.0 - np.exp(-q)))
+            k += 1
+            if seen:
+                intervals.append(1.0 - np.exp(-(since + delta)))
+            seen, since = True, 0.0
+    intervals = np.array(intervals)
+    np.save(os.path.join(out, "gof_expected.npy"), mu)
+    np.save(os.path.join(out, "gof_uniforms.npy"), r)
+    np.save(os.path.join(out, "gof_intervals.npy"), intervals)
+    with open(os.path.join(out, "gof.json"), "w") as f:
+        ks = scipy.stats.kstest(intervals, "uniform")
+        json.dump({"channel": c, "ks_statistic": float(ks.statistic), "n": len(intervals)}, f, indent=2)
 
     with open(os.path.join(out, "versions.txt"), "w") as f:
         f.write(f"python {sys.version.split()[0]}\n")

@@ -258,3 +258,84 @@ fn poisson_glms_match_statsmodels_without_and_with_history() {
         );
     }
 }
+
+/// One point-process filter step (Eden et al. 2004) against the same step
+/// written out in numpy from the equations (the fixture script).
+#[test]
+fn point_process_step_matches_the_eden_equations_in_numpy() {
+    use decoder_core::point_process::{ChannelGlm, PointProcessFilter, PointProcessModel};
+    let beta = mat("eden_beta.npy");
+    let b0 = fixture("eden_b0.npy").1;
+    let channels = (0..beta.rows)
+        .map(|c| {
+            Some(ChannelGlm {
+                b0: b0[c],
+                beta: beta.row(c).to_vec(),
+                history: Vec::new(),
+                coupling: Vec::new(),
+                deviance: 0.0,
+                null_deviance: 0.0,
+                iterations: 0,
+            })
+        })
+        .collect();
+    let model = PointProcessModel {
+        state: vec!["vel_x".into(), "vel_y".into()],
+        outputs: vec!["vel_x".into(), "vel_y".into()],
+        a: mat("eden_A.npy"),
+        w: mat("eden_W.npy"),
+        x0: fixture("eden_x.npy").1,
+        p0: mat("eden_P.npy"),
+        channels,
+        excluded: Vec::new(),
+        history_basis: None,
+    };
+    let mut f = PointProcessFilter::new(&model).unwrap();
+    let counts: Vec<u16> = fixture("eden_counts.npy")
+        .1
+        .iter()
+        .map(|&c| c as u16)
+        .collect();
+    assert!(f.step(&counts));
+    assert_close(
+        "posterior state vs numpy",
+        f.state(),
+        &fixture("eden_x_post.npy").1,
+        1e-12,
+    );
+    assert_close(
+        "posterior covariance vs numpy",
+        f.covariance(),
+        &fixture("eden_P_post.npy").1,
+        1e-12,
+    );
+}
+
+/// Time-rescaled intervals (Brown et al. 2002, discrete-time correction of
+/// Haslinger et al. 2010) against the fixture script's numpy, and the KS
+/// statistic against scipy.stats.kstest(u, "uniform") on them.
+#[test]
+fn time_rescaling_and_ks_match_numpy_and_scipy() {
+    use decoder_core::goodness::{ks_uniform, rescaled_intervals};
+    let s = block();
+    let meta = fixture_json("gof.json");
+    let c = meta["channel"].as_u64().unwrap() as usize;
+    let counts: Vec<u16> = (0..s.n_bins).map(|t| s.bin_counts(t)[c]).collect();
+    let expected = fixture("gof_expected.npy").1;
+    let uniforms = fixture("gof_uniforms.npy").1;
+    let mut next = uniforms.iter().copied();
+    let u = rescaled_intervals(&expected, &counts, || next.next().expect("enough uniforms"));
+    assert_close(
+        "rescaled intervals vs numpy",
+        &u,
+        &fixture("gof_intervals.npy").1,
+        1e-12,
+    );
+    let ks = ks_uniform(&u);
+    assert_close(
+        "KS statistic vs scipy.stats.kstest",
+        &[ks],
+        &[meta["ks_statistic"].as_f64().unwrap()],
+        1e-12,
+    );
+}

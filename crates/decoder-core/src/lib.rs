@@ -10,6 +10,7 @@ pub mod closed_loop;
 pub mod evaluate;
 pub mod folds;
 pub mod glm;
+pub mod goodness;
 pub mod kalman;
 pub mod linalg;
 pub mod log_replay;

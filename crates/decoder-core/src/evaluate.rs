@@ -9,10 +9,16 @@ use serde::Serialize;
 
 use crate::TrainError;
 use crate::folds::FoldPlan;
-use crate::kalman::train::{KalmanFitOptions, KalmanStats, check_options, fit_from_stats};
+use crate::goodness::{self, ChannelFit};
+use crate::kalman::train::{
+    KalmanFitOptions, KalmanStats, check_options, fill_state, fit_from_stats, state_sources,
+};
 use crate::metrics::{Scores, mean_scores, scores};
 use crate::model_file::DecoderModel;
 use crate::pipeline::DecodePipeline;
+use crate::pipeline::PipelineError;
+use crate::point_process::PointProcessFilter;
+use crate::pp_fit::{PointProcessFitOptions, fit_point_process};
 use crate::session::Session;
 use crate::wiener::{WienerFitOptions, WienerStats, fit_wiener_from_stats, output_columns};
 
@@ -20,6 +26,7 @@ use crate::wiener::{WienerFitOptions, WienerStats, fit_wiener_from_stats, output
 pub enum DecoderSpec {
     Kalman(KalmanFitOptions),
     Wiener(WienerFitOptions),
+    PointProcess(PointProcessFitOptions),
 }
 
 impl DecoderSpec {
@@ -27,6 +34,9 @@ impl DecoderSpec {
         match self {
             DecoderSpec::Kalman(_) => "kalman",
             DecoderSpec::Wiener(_) => "wiener",
+            DecoderSpec::PointProcess(o) if o.history.is_none() => "pp-lnp",
+            DecoderSpec::PointProcess(o) if o.coupling => "pp-coupled",
+            DecoderSpec::PointProcess(_) => "pp-history",
         }
     }
 
@@ -34,6 +44,7 @@ impl DecoderSpec {
         match self {
             DecoderSpec::Kalman(o) => &o.outputs,
             DecoderSpec::Wiener(o) => &o.outputs,
+            DecoderSpec::PointProcess(o) => &o.outputs,
         }
     }
 
@@ -41,7 +52,54 @@ impl DecoderSpec {
         match self {
             DecoderSpec::Kalman(o) => o.lag_bins,
             DecoderSpec::Wiener(o) => o.lag_bins,
+            DecoderSpec::PointProcess(_) => 0,
         }
+    }
+}
+
+/// Goodness of fit of a point-process decoder's encoding models on the
+/// held-out bins of every fold (each bin is held out once).
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct DecoderGoodness {
+    pub decoder: String,
+    pub channels: Vec<ChannelFit>,
+    /// Channels whose KS statistic is within the 95 % band.
+    pub within_band: usize,
+    pub mean_bits_per_spike: f64,
+    /// Rescaled intervals per channel (for KS plots).
+    #[serde(skip)]
+    pub intervals: Vec<Vec<f64>>,
+}
+
+/// A copy of the block made of `ranges` only, in order.
+fn subset(session: &Session, ranges: &[std::ops::Range<usize>]) -> Session {
+    let n = session.n_channels;
+    let mut counts = Vec::new();
+    let kin = session.kinematics.as_ref();
+    let k = session.kinematic_names.len();
+    let mut rows: Vec<f64> = Vec::new();
+    let mut bins = 0;
+    for r in ranges {
+        counts.extend_from_slice(&session.counts[r.start * n..r.end * n]);
+        if let Some(m) = kin {
+            rows.extend_from_slice(&m.data[r.start * k..r.end * k]);
+        }
+        bins += r.len();
+    }
+    Session {
+        bin_ms: session.bin_ms,
+        n_bins: bins,
+        n_channels: n,
+        counts,
+        kinematic_names: session.kinematic_names.clone(),
+        kinematics: kin.map(|_| crate::linalg::Mat {
+            rows: bins,
+            cols: k,
+            data: rows,
+        }),
+        trials: None,
+        channel_labels: None,
+        notes: None,
     }
 }
 
@@ -70,6 +128,8 @@ pub struct Evaluation {
     pub by_trial: bool,
     pub decoders: Vec<DecoderEvaluation>,
     pub traces: Vec<HeldOutTrace>,
+    /// For each point-process decoder: its encoding models' fit.
+    pub goodness: Vec<DecoderGoodness>,
 }
 
 /// Bins of held-out trace kept for plotting.
@@ -136,7 +196,74 @@ fn fit_per_fold(
                 })
                 .collect()
         }
+        DecoderSpec::PointProcess(opts) => (0..k)
+            .map(|f| {
+                let ranges: Vec<_> = plan
+                    .pieces
+                    .iter()
+                    .enumerate()
+                    .filter(|(g, _)| *g != f)
+                    .flat_map(|(_, p)| p.iter().cloned())
+                    .collect();
+                fit_point_process(&subset(session, &ranges), opts)
+                    .map(|(m, _)| DecoderModel::PointProcess(m))
+            })
+            .collect(),
     }
+}
+
+/// Walks each fold's encoding models over its held-out bins with the true
+/// kinematics and the observed history, and scores every channel.
+fn goodness_of_fit(
+    session: &Session,
+    spec: &DecoderSpec,
+    plan: &FoldPlan,
+    models: &[DecoderModel],
+) -> Result<Option<DecoderGoodness>, TrainError> {
+    let DecoderSpec::PointProcess(opts) = spec else {
+        return Ok(None);
+    };
+    let sources = state_sources(session, &opts.state)?;
+    let n = session.n_channels;
+    let mut expected: Vec<Vec<f64>> = vec![Vec::new(); n];
+    let mut counts: Vec<Vec<u16>> = vec![Vec::new(); n];
+    let mut state = vec![0.0; sources.len()];
+    let mut lambda = vec![0.0; n];
+    for (f, model) in models.iter().enumerate() {
+        let DecoderModel::PointProcess(m) = model else {
+            continue;
+        };
+        let mut filter = PointProcessFilter::new(m).map_err(PipelineError::PointProcess)?;
+        for seg in &plan.held_out[f] {
+            filter.reset();
+            for t in seg.clone() {
+                fill_state(session, &sources, t, &mut state);
+                filter.expected_counts(&state, &mut lambda);
+                let bin = session.bin_counts(t);
+                for c in 0..n {
+                    expected[c].push(lambda[c]);
+                    counts[c].push(bin[c]);
+                }
+                filter.observe(bin);
+            }
+        }
+    }
+    let channels: Vec<ChannelFit> = (0..n)
+        .map(|c| goodness::channel_fit(c, &expected[c], &counts[c]))
+        .collect();
+    let intervals = (0..n)
+        .map(|c| goodness::rescaled_intervals_seeded(&expected[c], &counts[c], 0x6F17 ^ c as u64))
+        .collect();
+    let within_band = channels.iter().filter(|c| c.within_band).count();
+    let mean_bits_per_spike =
+        channels.iter().map(|c| c.bits_per_spike).sum::<f64>() / n.max(1) as f64;
+    Ok(Some(DecoderGoodness {
+        decoder: spec.name().into(),
+        channels,
+        within_band,
+        mean_bits_per_spike,
+        intervals,
+    }))
 }
 
 /// Runs `k`-fold cross-validation of each spec; `on_fold` is called after
@@ -154,10 +281,14 @@ pub fn cross_validate(
         .ok_or(TrainError::NoKinematics)?;
     let mut decoders = Vec::new();
     let mut traces = Vec::new();
+    let mut goodness = Vec::new();
     for spec in specs {
         let cols = output_columns(session, spec.outputs())?;
         let lag = spec.lag();
         let models = fit_per_fold(session, spec, &plan)?;
+        if let Some(g) = goodness_of_fit(session, spec, &plan, &models)? {
+            goodness.push(g);
+        }
         let mut per_fold = Vec::with_capacity(k);
         for (f, model) in models.iter().enumerate() {
             let mut pipeline = DecodePipeline::from_decoder(model, session.bin_ms, true)?;
@@ -203,5 +334,6 @@ pub fn cross_validate(
         by_trial: plan.by_trial,
         decoders,
         traces,
+        goodness,
     })
 }

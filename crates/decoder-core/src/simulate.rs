@@ -33,6 +33,9 @@ pub struct SimOptions {
     pub target_radius: f64,
     /// Absolute refractory period in ms.
     pub refractory_ms: usize,
+    /// Relative refractoriness: after the absolute period the rate recovers
+    /// as 1 − exp(−t/recovery_ms). 0 turns it off (the default).
+    pub recovery_ms: f64,
 }
 
 impl Default for SimOptions {
@@ -45,6 +48,7 @@ impl Default for SimOptions {
             bin_ms: 20.0,
             target_radius: 10.0,
             refractory_ms: 2,
+            recovery_ms: 0.0,
         }
     }
 }
@@ -208,7 +212,16 @@ pub fn simulate(options: &SimOptions) -> Result<(Session, SimChannels), SimError
     let n = options.n_channels;
 
     let mut counts = vec![0u16; n_bins * n];
+    if !(options.recovery_ms.is_finite() && options.recovery_ms >= 0.0) {
+        return Err(SimError::Option {
+            key: "recovery_ms",
+            value: options.recovery_ms.to_string(),
+            expected: "0 or more",
+        });
+    }
     let mut refractory_left = vec![0usize; n];
+    // ms since each channel's last spike past its absolute refractory period.
+    let mut recovered_ms = vec![f64::INFINITY; n];
     for ms in 0..total_ms {
         let v = movement.vel[ms];
         let bin = ms / bin_ms_int;
@@ -218,12 +231,17 @@ pub fn simulate(options: &SimOptions) -> Result<(Session, SimChannels), SimError
                 refractory_left[ch] -= 1;
                 continue;
             }
+            recovered_ms[ch] += 1.0;
             let b = channels.beta[ch];
-            let rate_hz = (channels.log_baseline[ch] + b[0] * v[0] + b[1] * v[1]).exp();
+            let mut rate_hz = (channels.log_baseline[ch] + b[0] * v[0] + b[1] * v[1]).exp();
+            if options.recovery_ms > 0.0 {
+                rate_hz *= 1.0 - (-recovered_ms[ch] / options.recovery_ms).exp();
+            }
             let p = (rate_hz / 1000.0).min(1.0);
             if rng.random::<f64>() < p {
                 row[ch] = row[ch].saturating_add(1);
                 refractory_left[ch] = options.refractory_ms;
+                recovered_ms[ch] = 0.0;
             }
         }
     }

@@ -284,3 +284,76 @@ where
     root.present().map_err(|e| anyhow!("{e}"))?;
     Ok(())
 }
+
+/// One small KS plot per channel (time-rescaling, Brown et al. 2002): the
+/// sorted rescaled intervals against uniform quantiles, one line per
+/// point-process decoder, with the diagonal and the 95 % band.
+pub fn ks_plots(goodness: &[decoder_core::evaluate::DecoderGoodness], path: &Path) -> Result<()> {
+    register_font();
+    let n = goodness.first().map_or(0, |g| g.intervals.len());
+    let cols = (n as f64).sqrt().ceil().max(1.0) as usize;
+    let rows = n.div_ceil(cols).max(1);
+    let root =
+        SVGBackend::new(path, (cols as u32 * 150, rows as u32 * 150 + 30)).into_drawing_area();
+    root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
+    let (title, body) = root.split_vertically(30);
+    let legend: Vec<String> = goodness
+        .iter()
+        .enumerate()
+        .map(|(k, g)| format!("{} = colour {}", g.decoder, k + 1))
+        .collect();
+    title
+        .titled(
+            &format!(
+                "KS plots per channel (95 % band dashed); {}",
+                legend.join(", ")
+            ),
+            ("sans-serif", 14),
+        )
+        .map_err(|e| anyhow!("{e}"))?;
+    let panels = body.split_evenly((rows, cols));
+    for (c, panel) in panels.iter().enumerate().take(n) {
+        let mut chart = ChartBuilder::on(panel)
+            .margin(6)
+            .caption(format!("ch {c}"), ("sans-serif", 11))
+            .build_cartesian_2d(0.0f64..1.0, 0.0f64..1.0)
+            .map_err(|e| anyhow!("{e}"))?;
+        chart
+            .draw_series(LineSeries::new(
+                [(0.0, 0.0), (1.0, 1.0)],
+                BLACK.stroke_width(1),
+            ))
+            .map_err(|e| anyhow!("{e}"))?;
+        for (k, g) in goodness.iter().enumerate() {
+            let mut u = g.intervals[c].clone();
+            if u.is_empty() {
+                continue;
+            }
+            u.sort_by(f64::total_cmp);
+            let m = u.len() as f64;
+            let band = 1.36 / m.sqrt();
+            if k == 0 {
+                for offset in [band, -band] {
+                    chart
+                        .draw_series(LineSeries::new(
+                            [(0.0, offset), (1.0, 1.0 + offset)],
+                            RGBColor(150, 150, 150).stroke_width(1),
+                        ))
+                        .map_err(|e| anyhow!("{e}"))?;
+                }
+            }
+            let step = (u.len() / 200).max(1);
+            chart
+                .draw_series(LineSeries::new(
+                    u.iter()
+                        .enumerate()
+                        .step_by(step)
+                        .map(|(i, &v)| ((i as f64 + 0.5) / m, v)),
+                    PALETTE[k % PALETTE.len()].stroke_width(1),
+                ))
+                .map_err(|e| anyhow!("{e}"))?;
+        }
+    }
+    root.present().map_err(|e| anyhow!("{e}"))?;
+    Ok(())
+}

@@ -6,7 +6,7 @@ use std::fmt::Write as _;
 use std::path::PathBuf;
 
 use anyhow::{Context, Result};
-use decoder_core::evaluate::{Evaluation, cross_validate};
+use decoder_core::evaluate::{DecoderSpec, Evaluation, cross_validate};
 use decoder_core::session::Session;
 
 use super::train::{DecoderKind, config_with_overrides, spec_for};
@@ -42,16 +42,35 @@ pub fn run(args: &Args) -> Result<()> {
     if !kinds.contains(&DecoderKind::Wiener) {
         kinds.push(DecoderKind::Wiener);
     }
-    let specs = kinds
-        .iter()
-        .map(|k| spec_for(*k, &cfg))
-        .collect::<Result<Vec<_>>>()?;
+    // The point-process decoder is compared in its forms: without history
+    // (LNP), with history, and with coupling when the config enables it.
+    let mut specs = Vec::new();
+    for k in &kinds {
+        if *k == DecoderKind::PointProcess {
+            let full = cfg.point_process.clone();
+            let mut lnp = full.clone();
+            lnp.history = None;
+            lnp.coupling = false;
+            specs.push(DecoderSpec::PointProcess(lnp));
+            let mut history = full.clone();
+            history.coupling = false;
+            if history.history.is_some() {
+                specs.push(DecoderSpec::PointProcess(history));
+            }
+            if full.coupling {
+                specs.push(DecoderSpec::PointProcess(full));
+            }
+        } else {
+            specs.push(spec_for(*k, &cfg)?);
+        }
+    }
     let session = Session::read(&args.session)?;
     let pb = progress::bar((folds * specs.len()) as u64, "evaluate");
     let eval = cross_validate(&session, &specs, folds, |_, _| pb.inc(1))
         .with_context(|| format!("evaluating on {}", args.session.display()))?;
     pb.finish_and_clear();
     print!("{}", table(&eval));
+    print!("{}", goodness_table(&eval));
     if let Some(dir) = &args.report {
         write_report(dir, &eval, session.bin_ms)?;
         println!("report: {}", dir.display());
@@ -99,6 +118,23 @@ pub fn table(eval: &Evaluation) -> String {
     s
 }
 
+/// One line per point-process decoder: how many channels' encoding models
+/// pass the time-rescaling KS test, and the information they carry.
+pub fn goodness_table(eval: &Evaluation) -> String {
+    let mut s = String::new();
+    for g in &eval.goodness {
+        let _ = writeln!(
+            s,
+            "{:<10} encoding models on held-out bins: {} of {} channels within the KS 95 % band; {:.3} bits/spike over a homogeneous Poisson model",
+            g.decoder,
+            g.within_band,
+            g.channels.len(),
+            g.mean_bits_per_spike
+        );
+    }
+    s
+}
+
 pub fn write_report(dir: &std::path::Path, eval: &Evaluation, bin_ms: f64) -> Result<()> {
     std::fs::create_dir_all(dir)
         .with_context(|| format!("cannot create report directory {}", dir.display()))?;
@@ -126,5 +162,20 @@ pub fn write_report(dir: &std::path::Path, eval: &Evaluation, bin_ms: f64) -> Re
         serde_json::to_string_pretty(eval)?.as_bytes(),
     )?;
     plot::held_out_velocity(&eval.traces, bin_ms, &dir.join("heldout_velocity"))?;
+    if !eval.goodness.is_empty() {
+        let mut csv =
+            String::from("decoder,channel,spikes,ks,band_95,within_band,bits_per_spike\n");
+        for g in &eval.goodness {
+            for c in &g.channels {
+                let _ = writeln!(
+                    csv,
+                    "{},{},{},{:?},{:?},{},{:?}",
+                    g.decoder, c.channel, c.spikes, c.ks, c.band, c.within_band, c.bits_per_spike
+                );
+            }
+        }
+        write_atomic(&dir.join("goodness_of_fit.csv"), csv.as_bytes())?;
+        plot::ks_plots(&eval.goodness, &dir.join("ks_plots.svg"))?;
+    }
     Ok(())
 }

@@ -26,6 +26,14 @@ pub struct Args {
     /// Bin width in milliseconds (whole ms).
     #[arg(long, default_value_t = 20.0)]
     pub bin_ms: f64,
+    /// Absolute refractory period, ms.
+    #[arg(long, default_value_t = 2)]
+    pub refractory_ms: usize,
+    /// Relative refractoriness: the rate recovers as 1 − exp(−t/M) after
+    /// the absolute period (0 = off). With 1 ms bins this makes spike
+    /// history matter to the encoding models.
+    #[arg(long, default_value_t = 0.0)]
+    pub recovery_ms: f64,
 }
 
 pub fn run(args: &Args) -> Result<()> {
@@ -35,6 +43,8 @@ pub fn run(args: &Args) -> Result<()> {
         minutes: args.minutes,
         n_channels: args.channels,
         bin_ms: args.bin_ms,
+        refractory_ms: args.refractory_ms,
+        recovery_ms: args.recovery_ms,
         ..SimOptions::default()
     };
     let (session, _) = simulate(&options)?;

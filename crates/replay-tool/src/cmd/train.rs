@@ -7,8 +7,8 @@ use anyhow::{Context, Result, bail};
 use decoder_core::evaluate::{DecoderSpec, Evaluation, cross_validate};
 use decoder_core::kalman::train::fit_kalman;
 use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
-use decoder_core::point_process::ChannelGlm;
-use decoder_core::pp_fit::{PointProcessFitOptions, assemble, fit_channel};
+use decoder_core::point_process::{ChannelGlm, PointProcessModel};
+use decoder_core::pp_fit::{PointProcessFitOptions, PointProcessFitReport, assemble, fit_channel};
 use decoder_core::refit::reestimate_intention;
 use decoder_core::session::Session;
 use decoder_core::train_config::TrainConfig;
@@ -81,9 +81,7 @@ pub fn spec_for(kind: DecoderKind, cfg: &TrainConfig) -> Result<DecoderSpec> {
     match kind {
         DecoderKind::Kalman => Ok(DecoderSpec::Kalman(cfg.kalman.clone())),
         DecoderKind::Wiener => Ok(DecoderSpec::Wiener(cfg.wiener.clone())),
-        DecoderKind::PointProcess => {
-            bail!("the point-process decoder is trained by train_point_process, not from a spec")
-        }
+        DecoderKind::PointProcess => Ok(DecoderSpec::PointProcess(cfg.point_process.clone())),
     }
 }
 
@@ -106,6 +104,13 @@ pub fn train_model(
             (
                 DecoderModel::Wiener(model),
                 json!({ "decoder": "wiener", "options": opts }),
+            )
+        }
+        DecoderSpec::PointProcess(opts) => {
+            let (model, report) = fit_point_process_parallel(session, opts)?;
+            (
+                DecoderModel::PointProcess(model),
+                json!({ "decoder": "point-process", "options": opts, "report": report }),
             )
         }
     };
@@ -144,10 +149,10 @@ fn cv_json(eval: &Evaluation) -> serde_json::Value {
 
 /// Fits the point-process decoder, its channels in parallel on all cores
 /// (each channel's GLM is independent of the others).
-pub fn train_point_process(
+pub fn fit_point_process_parallel(
     session: &Session,
     options: &PointProcessFitOptions,
-) -> Result<ModelFile> {
+) -> Result<(PointProcessModel, PointProcessFitReport)> {
     if session.kinematics.is_none() {
         return Err(decoder_core::TrainError::NoKinematics.into());
     }
@@ -184,18 +189,7 @@ pub fn train_point_process(
     for (c, why) in &report.excluded {
         tracing::warn!("channel {c} left out of the point-process model: {why}");
     }
-    let fit = json!({ "decoder": "point-process", "options": options, "report": report });
-    Ok(ModelFile {
-        bin_ms: session.bin_ms,
-        decoder: DecoderModel::PointProcess(model),
-        provenance: Provenance {
-            trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
-            tool_version: env!("CARGO_PKG_VERSION").to_string(),
-            data_sha256: session.data_sha256(),
-            fit_json: fit.to_string(),
-            cv_json: serde_json::Value::Null.to_string(),
-        },
-    })
+    Ok((model, report))
 }
 
 pub fn run(args: &Args) -> Result<()> {
@@ -206,46 +200,6 @@ pub fn run(args: &Args) -> Result<()> {
     if args.no_history {
         cfg.point_process.history = None;
         cfg.point_process.coupling = false;
-    }
-    if args.decoder == DecoderKind::PointProcess {
-        let session = match (&args.session, &args.refit) {
-            (Some(dir), _) => Session::read(dir)?,
-            (None, Some(_)) => bail!("--refit trains kalman or wiener decoders"),
-            (None, None) => bail!("give --session DIR"),
-        };
-        let model = train_point_process(&session, &cfg.point_process)?;
-        write_atomic(&args.out, &model.to_bytes())?;
-        let DecoderModel::PointProcess(m) = &model.decoder else {
-            unreachable!("trained a point-process model")
-        };
-        println!(
-            "wrote {} (point-process decoder, {} channels fitted of {}, {} ms bins, history {})",
-            args.out.display(),
-            m.channels.iter().flatten().count(),
-            m.n_channels(),
-            model.bin_ms,
-            if m.history_basis.is_some() {
-                "yes"
-            } else {
-                "no (LNP)"
-            }
-        );
-        if !m.excluded.is_empty() {
-            println!(
-                "left out: {}",
-                m.excluded
-                    .iter()
-                    .map(|(c, why)| format!("channel {c} ({why})"))
-                    .collect::<Vec<_>>()
-                    .join(", ")
-            );
-        }
-        if !args.no_cv {
-            println!(
-                "cross-validation of the point-process decoder is not run by train yet; cv is left empty"
-            );
-        }
-        return Ok(());
     }
     let spec = spec_for(args.decoder, &cfg)?;
     let (session, source) = match (&args.session, &args.refit) {
@@ -276,6 +230,21 @@ pub fn run(args: &Args) -> Result<()> {
         model.decoder.n_channels(),
         model.bin_ms
     );
+    if let DecoderModel::PointProcess(m) = &model.decoder {
+        println!(
+            "point-process encoding models: {} channels fitted of {}, history {}",
+            m.channels.iter().flatten().count(),
+            m.n_channels(),
+            if m.history_basis.is_some() {
+                "yes"
+            } else {
+                "no (LNP)"
+            }
+        );
+        for (c, why) in &m.excluded {
+            println!("left out: channel {c} ({why})");
+        }
+    }
     print_cv_line(&model);
     Ok(())
 }

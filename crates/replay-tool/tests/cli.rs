@@ -756,3 +756,55 @@ fn live_replay_through_a_running_daemon_equals_offline_decoding() {
     assert!(out.contains("299 of 299 live estimates equal"), "{out}");
     daemon.stop().unwrap();
 }
+
+#[test]
+fn evaluate_compares_point_process_forms_with_goodness_of_fit() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = dir.path().join("block");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "1",
+        "--channels",
+        "8",
+        "--bin-ms",
+        "1",
+        "--refractory-ms",
+        "3",
+        "--recovery-ms",
+        "15",
+    ]);
+    let cfg = dir.path().join("train.toml");
+    std::fs::write(
+        &cfg,
+        "[point_process]\nhistory_basis = 8\nhistory_span_bins = 80\n",
+    )
+    .unwrap();
+    let report = dir.path().join("report");
+    let out = ok(&[
+        "evaluate",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman,point-process",
+        "--folds",
+        "2",
+        "--config",
+        p(&cfg),
+        "--report",
+        p(&report),
+    ]);
+    for name in ["kalman", "wiener", "pp-lnp", "pp-history"] {
+        assert!(out.contains(name), "{name} missing from {out}");
+    }
+    assert!(out.contains("within the KS 95 % band"), "{out}");
+    let csv = std::fs::read_to_string(report.join("goodness_of_fit.csv")).unwrap();
+    assert_eq!(csv.lines().count(), 1 + 2 * 8, "{csv}");
+    assert!(
+        std::fs::read_to_string(report.join("ks_plots.svg"))
+            .unwrap()
+            .contains("<svg")
+    );
+}

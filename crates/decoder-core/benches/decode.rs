@@ -1,16 +1,19 @@
 //! Criterion benchmarks of the decoding core: one decode step by channel
-//! count (full and steady-state), offline replay throughput, and training
-//! time on a 30-minute, 192-channel block. Figures are in BENCHMARKS.md.
+//! count (Kalman full and steady-state; point-process without and with
+//! history), offline replay throughput, and training time on a 30-minute,
+//! 192-channel block. Figures are in BENCHMARKS.md.
 
 use std::hint::black_box;
 
 use criterion::{BenchmarkId, Criterion, Throughput, criterion_group, criterion_main};
+use decoder_core::glm::RaisedCosineBasis;
 use decoder_core::kalman::steady::steady_state_gain;
 use decoder_core::kalman::train::{KalmanFitOptions, fit_kalman};
 use decoder_core::kalman::{KalmanFilter, KalmanModel, ObservationNoise};
 use decoder_core::linalg::Mat;
 use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
 use decoder_core::pipeline::{DecodePipeline, replay_block};
+use decoder_core::point_process::{ChannelGlm, PointProcessFilter, PointProcessModel};
 use decoder_core::session::Session;
 use decoder_core::simulate::{SimOptions, simulate};
 use rand::{RngExt, SeedableRng};
@@ -176,5 +179,66 @@ fn training(c: &mut Criterion) {
     group.finish();
 }
 
-criterion_group!(benches, decode_step, replay_throughput, training);
+/// A point-process model over N channels: velocity tuning, and own history
+/// through 4 raised cosines over 10 bins when `history`.
+fn random_pp_model(n: usize, history: bool) -> PointProcessModel {
+    let mut rng = ChaCha8Rng::seed_from_u64(n as u64 + 11);
+    let basis = history.then(|| RaisedCosineBasis::new(4, 10));
+    let channels = (0..n)
+        .map(|_| {
+            Some(ChannelGlm {
+                b0: rng.random_range(0.1f64..0.6).ln(),
+                beta: vec![rng.random_range(-0.05..0.05), rng.random_range(-0.05..0.05)],
+                history: if history {
+                    (0..4).map(|_| rng.random_range(-0.3..0.1)).collect()
+                } else {
+                    Vec::new()
+                },
+                coupling: Vec::new(),
+                deviance: 0.0,
+                null_deviance: 0.0,
+                iterations: 0,
+            })
+        })
+        .collect();
+    PointProcessModel {
+        state: vec!["vel_x".into(), "vel_y".into()],
+        outputs: vec!["vel_x".into(), "vel_y".into()],
+        a: Mat::from_rows(&[vec![0.95, 0.0], vec![0.0, 0.95]]),
+        w: Mat::from_rows(&[vec![1.0, 0.0], vec![0.0, 1.0]]),
+        x0: vec![0.0, 0.0],
+        p0: Mat::from_rows(&[vec![10.0, 0.0], vec![0.0, 10.0]]),
+        channels,
+        excluded: Vec::new(),
+        history_basis: basis,
+    }
+}
+
+fn point_process_step(c: &mut Criterion) {
+    let mut group = c.benchmark_group("pp_step");
+    for n in [96usize, 192, 1024] {
+        let bins = 256;
+        let counts = random_counts(n, bins);
+        for history in [false, true] {
+            let mut f = PointProcessFilter::new(&random_pp_model(n, history)).unwrap();
+            let mut i = 0;
+            let name = if history { "history" } else { "lnp" };
+            group.bench_with_input(BenchmarkId::new(name, n), &n, |b, _| {
+                b.iter(|| {
+                    i = (i + 1) % bins;
+                    black_box(f.step(black_box(&counts[i * n..(i + 1) * n])))
+                })
+            });
+        }
+    }
+    group.finish();
+}
+
+criterion_group!(
+    benches,
+    decode_step,
+    point_process_step,
+    replay_throughput,
+    training
+);
 criterion_main!(benches);

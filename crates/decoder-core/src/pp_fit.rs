@@ -97,24 +97,48 @@ pub fn channel_design(
     let mut row = vec![0.0; p];
     for t in 0..session.n_bins {
         fill_state(session, sources, t, &mut row[..d]);
-        if let Some(b) = basis {
-            b.covariates(&y, t, &mut row[d..d + nb]);
-        }
-        if coupling {
+        x.data[t * p..t * p + d].copy_from_slice(&row[..d]);
+        if coupling && t > 0 {
             let mut k = d + nb;
-            for other in 0..n {
+            let prev = session.bin_counts(t - 1);
+            for (other, &v) in prev.iter().enumerate() {
                 if other == channel {
                     continue;
                 }
-                row[k] = if t > 0 {
-                    f64::from(session.bin_counts(t - 1)[other])
-                } else {
-                    0.0
-                };
+                x.data[t * p + k] = f64::from(v);
                 k += 1;
             }
         }
-        x.data[t * p..(t + 1) * p].copy_from_slice(&row);
+    }
+    // History columns driven by the spikes: each count adds the basis,
+    // lag by lag, to the rows after it (counts are sparse, so this is far
+    // cheaper than summing over every lag of every row). Same values as
+    // `RaisedCosineBasis::covariates`.
+    if let Some(b) = basis {
+        let taps: Vec<Vec<(usize, f64)>> = (0..b.span_bins)
+            .map(|lag0| {
+                (0..b.n_basis)
+                    .filter_map(|j| {
+                        let w = b.weights.get(j, lag0);
+                        (w != 0.0).then_some((j, w))
+                    })
+                    .collect()
+            })
+            .collect();
+        for (s_bin, &count) in y.iter().enumerate() {
+            if count == 0.0 {
+                continue;
+            }
+            for (lag0, tap) in taps.iter().enumerate() {
+                let t = s_bin + lag0 + 1;
+                if t >= session.n_bins {
+                    break;
+                }
+                for &(j, w) in tap {
+                    x.data[t * p + d + j] += w * count;
+                }
+            }
+        }
     }
     (x, y)
 }

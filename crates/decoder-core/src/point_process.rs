@@ -245,11 +245,26 @@ impl PointProcessFilter {
         linalg::symmetrize(&mut self.p_prior, d);
     }
 
-    /// Past count of channel `c` `lag` bins ago (1 = the previous bin).
-    fn past(&self, c: usize, lag: usize) -> f64 {
-        let span = self.span.max(1);
-        let slot = (self.head + span - lag % span) % span;
-        self.ring[c * span + slot]
+    /// Σ_lag k[lag]·n(t − lag) for active channel `i` (channel `c`). The
+    /// ring's newest count sits just before `head`, so lags 1..=head run
+    /// backwards from there and the rest wrap from the end: two straight
+    /// passes, no modulo per lag.
+    fn history_drive(&self, i: usize, c: usize) -> f64 {
+        if self.span == 0 {
+            return 0.0;
+        }
+        let span = self.span;
+        let ring = &self.ring[c * span..(c + 1) * span];
+        let kernel = &self.kernel[i * span..(i + 1) * span];
+        let (recent, older) = ring.split_at(self.head);
+        let mut acc = 0.0;
+        for (k, v) in kernel.iter().zip(recent.iter().rev()) {
+            acc += k * v;
+        }
+        for (k, v) in kernel[self.head..].iter().zip(older.iter().rev()) {
+            acc += k * v;
+        }
+        acc
     }
 
     fn push_history(&mut self, counts: Option<&[u16]>) {
@@ -281,13 +296,7 @@ impl PointProcessFilter {
         self.score.fill(0.0);
         for (i, &c) in self.active.iter().enumerate() {
             let beta = &self.beta[i * d..(i + 1) * d];
-            let mut eta = self.b0[i] + linalg::dot(beta, &self.x_prior);
-            for lag in 1..=self.span {
-                let k = self.kernel[i * self.span + lag - 1];
-                if k != 0.0 {
-                    eta += k * self.past(c, lag);
-                }
-            }
+            let mut eta = self.b0[i] + linalg::dot(beta, &self.x_prior) + self.history_drive(i, c);
             if let Some(g) = &self.coupling {
                 eta += linalg::dot(&g[i * self.n..(i + 1) * self.n], &self.last_counts);
             }
@@ -343,10 +352,9 @@ impl PointProcessFilter {
         out.fill(0.0);
         let d = self.d;
         for (i, &c) in self.active.iter().enumerate() {
-            let mut eta = self.b0[i] + linalg::dot(&self.beta[i * d..(i + 1) * d], state);
-            for lag in 1..=self.span {
-                eta += self.kernel[i * self.span + lag - 1] * self.past(c, lag);
-            }
+            let mut eta = self.b0[i]
+                + linalg::dot(&self.beta[i * d..(i + 1) * d], state)
+                + self.history_drive(i, c);
             if let Some(g) = &self.coupling {
                 eta += linalg::dot(&g[i * self.n..(i + 1) * self.n], &self.last_counts);
             }

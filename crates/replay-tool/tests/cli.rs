@@ -354,6 +354,21 @@ fn point_process_decoder_trains_replays_and_exports() {
             .collect();
         assert!(cc.iter().all(|&c| c > 0.5), "{name}: {out}");
     }
+    // The daemon runs it unchanged: a closed-loop run through decoderd.
+    let report = dir.path().join("cl");
+    let out = ok(&[
+        "bench",
+        "--closed-loop",
+        "--model",
+        p(&dir.path().join("pp.model")),
+        "--speed",
+        "0",
+        "--trials",
+        "4",
+        "--report",
+        p(&report),
+    ]);
+    assert!(out.contains("closed loop with"), "{out}");
 }
 
 #[test]

@@ -67,7 +67,7 @@ fn main() {
 
     let sources = state_sources(&session, &options.state).unwrap();
     let basis = options.basis();
-    for c in 0..WRITTEN {
+    for (c, fit) in fits.iter().enumerate().take(WRITTEN) {
         let (x, y) = channel_design(&session, &sources, basis.as_ref(), false, c);
         Array2::from_shape_vec((x.rows, x.cols), x.data)
             .unwrap()
@@ -76,7 +76,7 @@ fn main() {
         Array1::from(y)
             .write_npy(std::fs::File::create(out.join(format!("counts_{c}.npy"))).unwrap())
             .unwrap();
-        let g = fits[c].as_ref().unwrap();
+        let g = fit.as_ref().unwrap();
         let mut coef = vec![g.b0];
         coef.extend_from_slice(&g.beta);
         coef.extend_from_slice(&g.history);

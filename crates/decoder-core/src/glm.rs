@@ -78,7 +78,7 @@ fn poisson_deviance(y: &[f64], mu: &[f64]) -> f64 {
         .sum::<f64>()
 }
 
-/// Fits log E[y] = b0 + X·β by penalised IRLS. `x` is `n × p` without the
+/// Fits log E(y) = b0 + X·β by penalised IRLS. `x` is `n × p` without the
 /// intercept column.
 pub fn fit_poisson(x: &Mat, y: &[f64], options: &GlmFitOptions) -> Result<GlmFit, GlmError> {
     let n = x.rows;

@@ -144,6 +144,24 @@ pub fn sandwich_add(a: &[f64], b: &[f64], c: &[f64], n: usize, tmp: &mut [f64], 
     }
 }
 
+/// The time update shared by the state-space filters: `x⁻ = A x`,
+/// `P⁻ = A P Aᵀ + W`, kept symmetric. `tmp` is d × d scratch.
+#[allow(clippy::too_many_arguments)]
+pub fn time_update(
+    a: &[f64],
+    w: &[f64],
+    x: &[f64],
+    p: &[f64],
+    d: usize,
+    tmp: &mut [f64],
+    x_prior: &mut [f64],
+    p_prior: &mut [f64],
+) {
+    mat_vec(a, d, d, x, x_prior);
+    sandwich_add(a, p, w, d, tmp, p_prior);
+    symmetrize(p_prior, d);
+}
+
 /// Replaces a square matrix by `(m + mᵀ) / 2`, which keeps covariances
 /// symmetric despite rounding.
 pub fn symmetrize(m: &mut [f64], n: usize) {

@@ -231,18 +231,16 @@ impl PointProcessFilter {
     }
 
     fn predict(&mut self) {
-        let d = self.d;
-        linalg::mat_vec(&self.a, d, d, &self.x, &mut self.x_prior);
-        // P⁻ = A P Aᵀ + W
-        linalg::sandwich_add(
+        linalg::time_update(
             &self.a,
-            &self.p,
             &self.w,
-            d,
+            &self.x,
+            &self.p,
+            self.d,
             &mut self.tmp,
+            &mut self.x_prior,
             &mut self.p_prior,
         );
-        linalg::symmetrize(&mut self.p_prior, d);
     }
 
     /// Σ_lag k[lag]·n(t − lag) for active channel `i` (channel `c`). The

@@ -234,17 +234,16 @@ impl KalmanFilter {
     }
 
     fn predict_into_prior(&mut self) {
-        let d = self.d;
-        linalg::mat_vec(&self.a, d, d, &self.x, &mut self.x_prior);
-        linalg::sandwich_add(
+        linalg::time_update(
             &self.a,
-            &self.p,
             &self.w,
-            d,
+            &self.x,
+            &self.p,
+            self.d,
             &mut self.tmp,
+            &mut self.x_prior,
             &mut self.p_prior,
         );
-        linalg::symmetrize(&mut self.p_prior, d);
     }
 }
 

@@ -288,6 +288,7 @@ impl RtLoop {
             counters: c,
             send_errors: self.monitor.send_errors,
             events_not_logged: self.events_not_logged,
+            rate_clamps: self.engine.rate_clamps(),
             latency: self.monitor.latency(),
             dead_channels: dead,
             saturated_channels: saturated,

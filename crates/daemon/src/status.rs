@@ -122,6 +122,11 @@ pub struct Status {
     pub rejected: BTreeMap<String, u64>,
     pub send_errors: u64,
     pub events_not_logged: u64,
+    /// Point-process decoder: rate exponents clamped at ±30 by the running
+    /// model (0 otherwise); a rising count means the model is far outside
+    /// the data it was trained on.
+    #[serde(default)]
+    pub rate_clamps: u64,
     pub latency: LatencyReport,
     pub dead_channels: Vec<usize>,
     pub saturated_channels: Vec<usize>,

@@ -119,6 +119,15 @@ impl DecodePipeline {
         self.estimate.len()
     }
 
+    /// Times the point-process filter clamped a rate's exponent since this
+    /// pipeline was built (0 for the other decoders).
+    pub fn rate_clamps(&self) -> u64 {
+        match &self.engine {
+            Engine::PointProcess { filter, .. } => filter.clamps(),
+            _ => 0,
+        }
+    }
+
     /// The seq of the last bin fed in, if any since the last reset.
     pub fn last_seq(&self) -> Option<u64> {
         self.last_seq

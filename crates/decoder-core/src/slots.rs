@@ -302,6 +302,11 @@ impl SlotEngine {
         self.supervisor.consecutive_missing()
     }
 
+    /// Rate exponent clamps of the running point-process decoder.
+    pub fn rate_clamps(&self) -> u64 {
+        self.pipeline.rate_clamps()
+    }
+
     fn w(&self) -> u64 {
         self.pending.len() as u64
     }

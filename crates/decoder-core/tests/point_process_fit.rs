@@ -88,3 +88,42 @@ fn history_models_pass_the_ks_band_where_lnp_models_fail() {
         );
     }
 }
+
+#[test]
+fn an_absurd_rate_is_clamped_counted_and_stays_finite() {
+    use decoder_core::linalg::Mat;
+    use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
+    use decoder_core::pipeline::DecodePipeline;
+    use decoder_core::point_process::{ChannelGlm, PointProcessModel};
+    let channel = |b0: f64| {
+        Some(ChannelGlm {
+            b0,
+            beta: vec![0.1, -0.1],
+            history: Vec::new(),
+            coupling: Vec::new(),
+            deviance: 0.0,
+            null_deviance: 0.0,
+            iterations: 0,
+        })
+    };
+    let model = ModelFile {
+        bin_ms: 20.0,
+        decoder: DecoderModel::PointProcess(PointProcessModel {
+            state: vec!["vel_x".into(), "vel_y".into()],
+            outputs: vec!["vel_x".into(), "vel_y".into()],
+            a: Mat::identity(2),
+            w: Mat::identity(2),
+            x0: vec![0.0, 0.0],
+            p0: Mat::identity(2),
+            // exp(45) expected spikes per bin: far past the ±30 clamp.
+            channels: vec![channel(45.0), channel(-1.0)],
+            excluded: Vec::new(),
+            history_basis: None,
+        }),
+        provenance: Provenance::untracked(),
+    };
+    let mut p = DecodePipeline::new(&model).unwrap();
+    let est = p.step(0, &[3, 1]);
+    assert!(est.estimate.iter().all(|v| v.is_finite()));
+    assert_eq!(p.rate_clamps(), 1);
+}

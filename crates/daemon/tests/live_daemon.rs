@@ -199,6 +199,7 @@ fn flood_at_100x_the_bin_rate_leaves_every_slot_answered() {
     // SAFETY: sysconf with a valid name.
     let hz = unsafe { libc::sysconf(libc::_SC_CLK_TCK) } as f64;
     let cpu_fraction = used as f64 / hz / elapsed;
+    eprintln!("decoderd used {cpu_fraction:.3} of a core during the flood");
     let first: Vec<_> = p.iter().take(100).collect();
     let got: Vec<u64> = first.iter().map(|p| p.seq).collect();
     assert_eq!(

@@ -198,14 +198,7 @@ fn fit_per_fold(
         }
         DecoderSpec::PointProcess(opts) => (0..k)
             .map(|f| {
-                let ranges: Vec<_> = plan
-                    .pieces
-                    .iter()
-                    .enumerate()
-                    .filter(|(g, _)| *g != f)
-                    .flat_map(|(_, p)| p.iter().cloned())
-                    .collect();
-                fit_point_process(&subset(session, &ranges), opts)
+                fit_point_process(&subset(session, &plan.training_segments(f)), opts)
                     .map(|(m, _)| DecoderModel::PointProcess(m))
             })
             .collect(),

@@ -141,12 +141,8 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     }
     daemon.stop()?;
     let t = kinematics.len();
-    let mut kin = Mat::zeros(t, 4);
-    for (row, k) in kinematics.iter().enumerate() {
-        for (c, v) in k.iter().enumerate() {
-            kin.set(row, c, *v);
-        }
-    }
+    let rows: Vec<Vec<f64>> = kinematics.iter().map(|k| k.to_vec()).collect();
+    let kin = Mat::from_rows(&rows);
     let block = Session {
         bin_ms: model.bin_ms,
         n_bins: t,

@@ -18,8 +18,8 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use daemon::control::{Request, request};
-use daemon::loopback::{BinFault, Sink, loopback_floor, paced_send, percentile_us};
-use daemon::status::Status;
+use daemon::loopback::{BinFault, Sink, loopback_floor, paced_send};
+use daemon::status::{Percentiles, Status};
 use decoder_core::kalman::train::{KalmanFitOptions, SteadyStateOptions, fit_kalman};
 use decoder_core::model_file::{DecoderModel, ModelFile, Provenance};
 use decoder_core::packet::{self, FLAG_BIN_MISSING};
@@ -32,20 +32,10 @@ fn env(name: &str, default: u64) -> u64 {
         .unwrap_or(default)
 }
 
-struct Pcts {
-    p50: f64,
-    p99: f64,
-    max: f64,
-}
-
-fn pcts(v: &[u64]) -> Pcts {
-    let mut v: Vec<u64> = v.iter().copied().filter(|&x| x > 0).collect();
-    v.sort_unstable();
-    Pcts {
-        p50: percentile_us(&v, 0.5),
-        p99: percentile_us(&v, 0.99),
-        max: percentile_us(&v, 1.0),
-    }
+/// Percentiles of the nonzero samples (0 marks a bin with no sample).
+fn pcts(v: &[u64]) -> Percentiles {
+    let v: Vec<u64> = v.iter().copied().filter(|&x| x > 0).collect();
+    Percentiles::of_samples_ns(&v)
 }
 
 fn status(socket: &Path) -> Status {

@@ -225,12 +225,3 @@ pub fn loopback_floor(
         })
         .collect())
 }
-
-/// Sorted-sample percentile in µs.
-pub fn percentile_us(sorted_ns: &[u64], q: f64) -> f64 {
-    if sorted_ns.is_empty() {
-        return f64::NAN;
-    }
-    let i = ((sorted_ns.len() - 1) as f64 * q).round() as usize;
-    sorted_ns[i] as f64 / 1000.0
-}

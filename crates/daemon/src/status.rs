@@ -70,6 +70,25 @@ pub struct Percentiles {
 }
 
 impl Percentiles {
+    /// From raw samples in ns (exact order statistics, nearest rank), for
+    /// the benches that keep every sample.
+    pub fn of_samples_ns(samples: &[u64]) -> Percentiles {
+        if samples.is_empty() {
+            return Percentiles::default();
+        }
+        let mut v = samples.to_vec();
+        v.sort_unstable();
+        let at = |q: f64| v[((v.len() - 1) as f64 * q).round() as usize] as f64 / 1000.0;
+        Percentiles {
+            count: v.len() as u64,
+            p50: at(0.5),
+            p90: at(0.9),
+            p99: at(0.99),
+            p999: at(0.999),
+            max: at(1.0),
+        }
+    }
+
     pub fn of(h: &Histogram<u64>) -> Percentiles {
         if h.is_empty() {
             return Percentiles::default();

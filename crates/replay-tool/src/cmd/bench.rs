@@ -19,7 +19,8 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
-use daemon::loopback::{BinFault, Sink, SinkRecord, loopback_floor, paced_send, percentile_us};
+use daemon::loopback::{BinFault, Sink, SinkRecord, loopback_floor, paced_send};
+use daemon::status::Percentiles;
 use decoder_core::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::simulate::{SimOptions, simulate};
 use decoder_core::{ModelFile, Session};
@@ -157,42 +158,15 @@ fn bins_for(model: &ModelFile) -> Result<(Vec<Vec<u8>>, Session)> {
     Ok((bins, session))
 }
 
-#[derive(Default)]
-struct Pct {
-    p50: f64,
-    p90: f64,
-    p99: f64,
-    p999: f64,
-    max: f64,
-    n: usize,
-}
-
-fn pct(values_ns: &[u64]) -> Pct {
-    let mut v: Vec<u64> = values_ns.to_vec();
-    v.sort_unstable();
-    Pct {
-        p50: percentile_us(&v, 0.5),
-        p90: percentile_us(&v, 0.9),
-        p99: percentile_us(&v, 0.99),
-        p999: percentile_us(&v, 0.999),
-        max: percentile_us(&v, 1.0),
-        n: v.len(),
-    }
-}
-
-fn pct_json(p: &Pct) -> serde_json::Value {
-    json!({"n": p.n, "p50": p.p50, "p90": p.p90, "p99": p.p99, "p999": p.p999, "max": p.max})
-}
-
 struct Outcome {
     missed_slots: usize,
     unexpected_dropouts: usize,
     faults_flagged: usize,
     faults: usize,
-    recv_to_send: Pct,
-    round_trip: Pct,
-    jitter: Pct,
-    floor: Pct,
+    recv_to_send: Percentiles,
+    round_trip: Percentiles,
+    jitter: Percentiles,
+    floor: Percentiles,
 }
 
 pub fn run(args: &Args) -> Result<()> {
@@ -382,15 +356,15 @@ fn analyse(
         unexpected_dropouts: unexpected,
         faults_flagged: flagged,
         faults: n_faults,
-        recv_to_send: pct(&recv_to_send),
-        round_trip: pct(&round_trip),
-        jitter: pct(&jitter),
-        floor: pct(floor_ns),
+        recv_to_send: Percentiles::of_samples_ns(&recv_to_send),
+        round_trip: Percentiles::of_samples_ns(&round_trip),
+        jitter: Percentiles::of_samples_ns(&jitter),
+        floor: Percentiles::of_samples_ns(floor_ns),
     }
 }
 
 fn print_summary(o: &Outcome, args: &Args) {
-    let line = |name: &str, p: &Pct| {
+    let line = |name: &str, p: &Percentiles| {
         println!(
             "  {name:<24} p50 {:8.1}  p90 {:8.1}  p99 {:8.1}  p99.9 {:8.1}  max {:9.1} µs",
             p.p50, p.p90, p.p99, p.p999, p.max
@@ -424,10 +398,10 @@ fn write_report(
     let dir = &args.report;
     let summary = json!({
         "bins": n, "rate_hz": rate_hz, "channels": channels, "daemon": daemon_note,
-        "recv_to_send_us": pct_json(&o.recv_to_send),
-        "round_trip_us": pct_json(&o.round_trip),
-        "loopback_floor_round_trip_us": pct_json(&o.floor),
-        "send_jitter_us": pct_json(&o.jitter),
+        "recv_to_send_us": serde_json::to_value(&o.recv_to_send)?,
+        "round_trip_us": serde_json::to_value(&o.round_trip)?,
+        "loopback_floor_round_trip_us": serde_json::to_value(&o.floor)?,
+        "send_jitter_us": serde_json::to_value(&o.jitter)?,
         "missed_slots": o.missed_slots,
         "bins_sent_not_decoded": o.unexpected_dropouts,
         "injected_faults": o.faults,
@@ -497,7 +471,7 @@ fn write_report(
     } else {
         "<p class=fail>FAIL</p>"
     };
-    let row = |name: &str, p: &Pct| {
+    let row = |name: &str, p: &Percentiles| {
         format!(
             "<tr><td>{name}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td></tr>",
             p.p50, p.p90, p.p99, p.p999, p.max

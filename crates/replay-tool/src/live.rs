@@ -1,21 +1,19 @@
 //! Driving a real `decoderd` from outside, as a rig does: spawn it on
-//! loopback, play front end (paced bin packets), play actuator (collect
-//! velocity packets), read its status over the control socket, stop it
-//! with SIGTERM. Used by the demo's live step.
+//! loopback (or on threads of this process when no binary is at hand),
+//! read its status over the control socket, stop it with SIGTERM. The
+//! front end and actuator stand-ins are `daemon::loopback`.
 
-use std::net::{SocketAddr, UdpSocket};
+use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
+use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::{Arc, Mutex};
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result, bail};
 use daemon::control::{Reply, Request, request};
 use daemon::status::Status;
-use decoder_core::Session;
-use decoder_core::packet::{self, BinHeader, VelocityPacket};
 
 /// The `decoderd` binary: `explicit`, else the one beside this executable;
 /// `None` when there is none (the caller may run the daemon in-process).
@@ -267,99 +265,4 @@ impl Drop for SpawnedDaemon {
             }
         }
     }
-}
-
-/// Plays the actuator: collects every velocity packet on a loopback port.
-pub struct ActuatorSink {
-    pub addr: SocketAddr,
-    packets: Arc<Mutex<Vec<VelocityPacket>>>,
-    stop: Arc<AtomicBool>,
-    thread: Option<JoinHandle<u64>>,
-}
-
-impl ActuatorSink {
-    pub fn bind() -> Result<ActuatorSink> {
-        let socket = UdpSocket::bind("127.0.0.1:0")?;
-        socket.set_read_timeout(Some(Duration::from_millis(50)))?;
-        let addr = socket.local_addr()?;
-        let packets = Arc::new(Mutex::new(Vec::new()));
-        let stop = Arc::new(AtomicBool::new(false));
-        let thread = {
-            let packets = packets.clone();
-            let stop = stop.clone();
-            std::thread::spawn(move || {
-                let mut buf = [0u8; 2048];
-                let mut unreadable = 0;
-                while !stop.load(Ordering::Relaxed) {
-                    if let Ok(n) = socket.recv(&mut buf) {
-                        match VelocityPacket::parse(&buf[..n]) {
-                            Ok(p) => packets.lock().expect("sink lock").push(p),
-                            Err(_) => unreadable += 1,
-                        }
-                    }
-                }
-                unreadable
-            })
-        };
-        Ok(ActuatorSink {
-            addr,
-            packets,
-            stop,
-            thread: Some(thread),
-        })
-    }
-
-    pub fn len(&self) -> usize {
-        self.packets.lock().expect("sink lock").len()
-    }
-
-    pub fn is_empty(&self) -> bool {
-        self.len() == 0
-    }
-
-    /// Stops listening; returns the packets and how many were unreadable.
-    pub fn finish(mut self) -> (Vec<VelocityPacket>, u64) {
-        self.stop.store(true, Ordering::Relaxed);
-        let unreadable = self.thread.take().map_or(0, |t| t.join().unwrap_or(0));
-        let packets = std::mem::take(&mut *self.packets.lock().expect("sink lock"));
-        (packets, unreadable)
-    }
-}
-
-/// Sends `bins` of `session` to `target` at the bin rate (times `speed`),
-/// stamping origin_ns at the end of each bin; returns how many were sent.
-pub fn stream_bins(
-    session: &Session,
-    bins: std::ops::Range<usize>,
-    target: SocketAddr,
-    speed: f64,
-) -> Result<usize> {
-    let socket = UdpSocket::bind("127.0.0.1:0")?;
-    let period = Duration::from_secs_f64(session.bin_ms / 1000.0 / speed);
-    let bin_us = packet::bin_us_of(session.bin_ms);
-    let mut buf = Vec::with_capacity(packet::BIN_HEADER_LEN + 2 * session.n_channels);
-    let t0 = Instant::now();
-    let mut sent = 0;
-    for (k, bin) in bins.enumerate() {
-        let due = t0 + period * (k as u32 + 1);
-        if let Some(wait) = due.checked_duration_since(Instant::now()) {
-            std::thread::sleep(wait);
-        }
-        packet::encode_bin(
-            &BinHeader {
-                channels: session.n_channels as u16,
-                seq: bin as u64,
-                origin_ns: daemon::sys::monotonic_ns(),
-                bin_us,
-                flags: 0,
-            },
-            session.bin_counts(bin),
-            &mut buf,
-        );
-        socket
-            .send_to(&buf, target)
-            .with_context(|| format!("cannot send bins to {target}"))?;
-        sent += 1;
-    }
-    Ok(sent)
 }

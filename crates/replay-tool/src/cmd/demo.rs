@@ -7,8 +7,12 @@
 //! actuator sink, and check them against the offline replay of the
 //! daemon's own recording.
 
+use std::net::UdpSocket;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
+
+use daemon::loopback::{BinFault, Sink, paced_send};
+use decoder_core::packet;
 
 use anyhow::{Context, Result};
 use decoder_core::Session;
@@ -143,38 +147,51 @@ pub fn run(args: &Args) -> Result<()> {
 fn live_step(args: &Args, model_path: &Path, block: &Session) -> Result<()> {
     let exe = live::find_decoderd(args.decoderd.as_deref())?;
     let work = args.out.join("live");
-    let sink = live::ActuatorSink::bind()?;
+    let n_bins = ((args.live_seconds * 1000.0 / block.bin_ms) as usize).clamp(1, block.n_bins);
+    let sink = Sink::start(UdpSocket::bind("127.0.0.1:0")?, n_bins)?;
     let daemon = live::SpawnedDaemon::start(exe.as_deref(), model_path, &work, sink.addr, true)?;
     let how = if daemon.is_process() {
         "decoderd"
     } else {
         "decoderd in-process (no decoderd binary beside replay-tool; `cargo build --release` builds it)"
     };
-    let n_bins = ((args.live_seconds * 1000.0 / block.bin_ms) as usize).clamp(1, block.n_bins);
     println!(
         "5. started {how} (armed for this bench run) on {} -> actuator sink {}; streaming {n_bins} bins ({:.0} s) of the later block at the bin rate ...",
         daemon.listen,
         sink.addr,
         n_bins as f64 * block.bin_ms / 1000.0
     );
-    live::stream_bins(block, 0..n_bins, daemon.listen, 1.0)?;
+    let bin_us = packet::bin_us_of(block.bin_ms);
+    let datagrams: Vec<Vec<u8>> = (0..n_bins)
+        .map(|t| packet::bin_datagram(block.bin_counts(t), bin_us))
+        .collect();
+    let front_end = UdpSocket::bind("127.0.0.1:0")?;
+    paced_send(
+        &front_end,
+        daemon.listen,
+        &datagrams,
+        n_bins,
+        1000.0 / block.bin_ms,
+        |_| BinFault::None,
+    );
     // Let the last packets land.
-    let settle = Instant::now();
-    while sink.len() < n_bins && settle.elapsed() < Duration::from_secs(2) {
-        std::thread::sleep(Duration::from_millis(10));
-    }
+    std::thread::sleep(
+        Duration::from_millis(100) + Duration::from_secs_f64(2.0 * block.bin_ms / 1000.0),
+    );
     let status = daemon.status()?;
     daemon.stop()?;
-    let (packets, _) = sink.finish();
+    let rec = sink.finish();
     let c = &status.counters;
     let l = &status.latency;
-    let by_state = |s: u8| packets.iter().filter(|p| p.state == s).count();
+    let answered: Vec<_> = rec.packets.iter().flatten().collect();
+    let by_state = |s: u8| answered.iter().filter(|p| p.state == s).count();
     println!(
-        "   actuator sink got {} velocity packets for {n_bins} bins: {} armed, {} coasting, {} halted (heartbeats after the stream ended)",
-        packets.len(),
+        "   actuator sink got {} velocity packets for {n_bins} bins: {} armed, {} coasting, {} halted; {} heartbeats after the stream ended",
+        answered.len(),
         by_state(1),
         by_state(2),
-        by_state(3)
+        by_state(3),
+        rec.extra
     );
     println!(
         "   latency recv->send: p50 {:.1} µs, p99 {:.1} µs, max {:.1} µs; front end's end of bin -> send: p50 {:.1} µs, p99 {:.1} µs",

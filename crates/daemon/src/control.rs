@@ -167,11 +167,14 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
                 return fail(RT_GONE);
             }
             match rx.await {
-                Ok(s) => Reply {
-                    ok: true,
-                    message: String::new(),
-                    status: Some(Box::new(s)),
-                },
+                Ok(mut s) => {
+                    s.rss_bytes = crate::sys::rss_bytes();
+                    Reply {
+                        ok: true,
+                        message: String::new(),
+                        status: Some(Box::new(s)),
+                    }
+                }
                 Err(_) => fail(RT_GONE),
             }
         }

@@ -382,9 +382,10 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
         summary.abort();
     });
     drop(control_tx);
-    let status = rt_thread
+    let mut status = rt_thread
         .join()
         .map_err(|_| anyhow::anyhow!("the decode thread panicked"))?;
+    status.rss_bytes = sys::rss_bytes();
     if let Some(rec) = recorder {
         rec.join();
     }

@@ -297,7 +297,8 @@ impl RtLoop {
                 .recording
                 .as_ref()
                 .map(|(p, s)| s.snapshot(Some(p))),
-            rss_bytes: sys::rss_bytes(),
+            // Read from /proc by the control side, not on this thread.
+            rss_bytes: None,
             decode_path_allocations: alloc_count::decode_path_allocations(),
             realtime_warnings: self.info.realtime_warnings.clone(),
         }

@@ -3,12 +3,12 @@
 //! tests/reference/make_fixtures.py (pinned versions beside them).
 
 use cross_checks::{assert_close, fixture, fixture_json, reference_dir};
-use decoder_core::kalman::steady::steady_state_gain;
-use decoder_core::kalman::train::{CountNormalisation, KalmanFitOptions, fit_kalman};
-use decoder_core::kalman::{KalmanFilter, KalmanModel, ObservationNoise};
+use decoder_core::decoders::kalman::steady::steady_state_gain;
+use decoder_core::decoders::kalman::{KalmanFilter, KalmanModel, ObservationNoise};
+use decoder_core::fit::kalman::{CountNormalisation, KalmanFitOptions, fit_kalman};
+use decoder_core::fit::metrics;
+use decoder_core::formats::block::Block;
 use decoder_core::linalg::Mat;
-use decoder_core::metrics;
-use decoder_core::session::Session;
 
 fn mat(name: &str) -> Mat {
     let (shape, data) = fixture(name);
@@ -27,8 +27,8 @@ fn mat(name: &str) -> Mat {
     }
 }
 
-fn block() -> Session {
-    Session::read(&reference_dir().join("block")).expect("the numpy-written block imports")
+fn block() -> Block {
+    Block::read(&reference_dir().join("block")).expect("the numpy-written block imports")
 }
 
 /// The model fitted by numpy, loaded as a KalmanModel.
@@ -196,7 +196,8 @@ fn metrics_equal_scipy_and_sklearn() {
 /// the fixture script's independent numpy code.
 #[test]
 fn poisson_glms_match_statsmodels_without_and_with_history() {
-    use decoder_core::glm::{GlmFitOptions, RaisedCosineBasis, fit_poisson};
+    use decoder_core::decoders::history_basis::RaisedCosineBasis;
+    use decoder_core::fit::glm::{GlmFitOptions, fit_poisson};
     let s = block();
     let kin = s.kinematics.as_ref().unwrap();
     let (vx, vy) = (
@@ -263,7 +264,9 @@ fn poisson_glms_match_statsmodels_without_and_with_history() {
 /// written out in numpy from the equations (the fixture script).
 #[test]
 fn point_process_step_matches_the_eden_equations_in_numpy() {
-    use decoder_core::point_process::{ChannelGlm, PointProcessFilter, PointProcessModel};
+    use decoder_core::decoders::point_process::{
+        ChannelGlm, PointProcessFilter, PointProcessModel,
+    };
     let beta = mat("eden_beta.npy");
     let b0 = fixture("eden_b0.npy").1;
     let channels = (0..beta.rows)
@@ -316,7 +319,7 @@ fn point_process_step_matches_the_eden_equations_in_numpy() {
 /// statistic against scipy.stats.kstest(u, "uniform") on them.
 #[test]
 fn time_rescaling_and_ks_match_numpy_and_scipy() {
-    use decoder_core::goodness::{ks_uniform, rescaled_intervals};
+    use decoder_core::fit::goodness::{ks_uniform, rescaled_intervals};
     let s = block();
     let meta = fixture_json("gof.json");
     let c = meta["channel"].as_u64().unwrap() as usize;

@@ -1,0 +1,553 @@
+//! The daemon's configuration, in two stages: the TOML file into raw
+//! structs (unknown keys refused), then command-line overrides, then
+//! validation into typed values a running daemon can trust. Every error
+//! names the key and says what would be accepted. Every key has a default
+//! except the model, so an empty file plus `--model` is a valid
+//! configuration (SPEC §5); `config/daemon.toml` documents each key.
+
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use decoder_core::engine::slot_engine::EngineSettings;
+use decoder_core::engine::supervisor::SafetyLimits;
+use serde::Deserialize;
+
+pub const DEFAULT_LISTEN: &str = "127.0.0.1:27400";
+pub const DEFAULT_ACTUATOR: &str = "127.0.0.1:27401";
+pub const DEFAULT_SOCKET: &str = "/tmp/decoderd.sock";
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawConfig {
+    #[serde(default)]
+    pub network: RawNetwork,
+    #[serde(default)]
+    pub model: RawModel,
+    #[serde(default)]
+    pub recording: RawRecording,
+    #[serde(default)]
+    pub control: RawControl,
+    #[serde(default)]
+    pub safety: RawSafety,
+    #[serde(default)]
+    pub timing: RawTiming,
+    #[serde(default)]
+    pub monitor: RawMonitor,
+    #[serde(default)]
+    pub realtime: RawRealtime,
+    #[serde(default)]
+    pub log: RawLog,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawNetwork {
+    pub listen: Option<String>,
+    pub actuator: Option<String>,
+    pub allow_non_loopback: Option<bool>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawModel {
+    pub path: Option<PathBuf>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawRecording {
+    pub enabled: Option<bool>,
+    pub dir: Option<PathBuf>,
+    pub buffer_bins: Option<i64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawControl {
+    pub socket: Option<PathBuf>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawSafety {
+    pub max_speed: Option<f64>,
+    pub max_accel: Option<f64>,
+    pub max_coast_bins: Option<i64>,
+    pub coast_decay: Option<f64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawTiming {
+    pub deadline_slack_bins: Option<f64>,
+    pub reorder_window_bins: Option<i64>,
+    pub clock_tracking: Option<f64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawMonitor {
+    pub summary_interval_s: Option<f64>,
+    pub dead_channel_s: Option<f64>,
+    pub saturation_rate_hz: Option<f64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawRealtime {
+    pub cpu: Option<i64>,
+    pub mlockall: Option<bool>,
+    pub fifo_priority: Option<i64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawLog {
+    pub format: Option<String>,
+    pub level: Option<String>,
+}
+
+/// Command-line values that override the file.
+#[derive(Debug, Default, Clone)]
+pub struct Overrides {
+    pub model: Option<PathBuf>,
+    pub listen: Option<String>,
+    pub actuator: Option<String>,
+    pub record: Option<PathBuf>,
+    pub socket: Option<PathBuf>,
+    pub arm: bool,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum LogFormat {
+    Human,
+    Json,
+}
+
+#[derive(Clone, Debug, PartialEq)]
+pub struct SafetyConfig {
+    pub max_speed: f64,
+    pub max_accel: f64,
+    pub max_coast_bins: u32,
+    pub coast_decay: f64,
+}
+
+#[derive(Clone, Debug, PartialEq)]
+pub struct RealtimeConfig {
+    pub cpu: Option<usize>,
+    pub mlockall: bool,
+    pub fifo_priority: Option<i32>,
+}
+
+/// A validated configuration.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Config {
+    pub listen: SocketAddr,
+    pub actuator: SocketAddr,
+    pub model: PathBuf,
+    /// Directory for session logs; `None` when recording is off.
+    pub record_dir: Option<PathBuf>,
+    pub record_buffer_bins: usize,
+    pub control_socket: PathBuf,
+    pub safety: SafetyConfig,
+    pub deadline_slack_bins: f64,
+    pub reorder_window_bins: u32,
+    pub clock_tracking: f64,
+    pub summary_interval: Duration,
+    pub dead_channel_s: f64,
+    pub saturation_rate_hz: f64,
+    pub realtime: RealtimeConfig,
+    pub log_format: LogFormat,
+    pub log_level: String,
+    pub arm_at_start: bool,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("{path}: {source}")]
+    Read {
+        path: String,
+        source: std::io::Error,
+    },
+    #[error("{path}: {message}")]
+    Parse { path: String, message: String },
+    #[error("{origin}: key `{key}`: {problem}")]
+    Key {
+        origin: String,
+        key: &'static str,
+        problem: String,
+    },
+}
+
+impl RawConfig {
+    pub fn from_file(path: &Path) -> Result<RawConfig, ConfigError> {
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+            path: path.display().to_string(),
+            source,
+        })?;
+        Self::from_toml(&text, &path.display().to_string())
+    }
+
+    pub fn from_toml(text: &str, origin: &str) -> Result<RawConfig, ConfigError> {
+        toml::from_str(text).map_err(|e| ConfigError::Parse {
+            path: origin.to_string(),
+            message: e.message().to_string()
+                + &e.span()
+                    .map(|s| format!(" (at byte {})", s.start))
+                    .unwrap_or_default(),
+        })
+    }
+}
+
+struct Check<'a> {
+    origin: &'a str,
+}
+
+impl Check<'_> {
+    fn err(&self, key: &'static str, problem: impl Into<String>) -> ConfigError {
+        ConfigError::Key {
+            origin: self.origin.to_string(),
+            key,
+            problem: problem.into(),
+        }
+    }
+
+    fn addr(
+        &self,
+        key: &'static str,
+        text: &str,
+        allow_remote: bool,
+    ) -> Result<SocketAddr, ConfigError> {
+        let addr: SocketAddr = text.parse().map_err(|_| {
+            self.err(
+                key,
+                format!("{text:?} is not an IP:port address such as 127.0.0.1:27400"),
+            )
+        })?;
+        if !allow_remote && !addr.ip().is_loopback() {
+            return Err(self.err(
+                key,
+                format!(
+                    "{addr} is not a loopback address; the daemon binds to loopback only unless network.allow_non_loopback = true"
+                ),
+            ));
+        }
+        Ok(addr)
+    }
+
+    fn positive(&self, key: &'static str, v: f64) -> Result<f64, ConfigError> {
+        if v.is_finite() && v > 0.0 {
+            Ok(v)
+        } else {
+            Err(self.err(key, format!("{v} must be a finite number above 0")))
+        }
+    }
+
+    fn within(&self, key: &'static str, v: f64, lo: f64, hi: f64) -> Result<f64, ConfigError> {
+        if v.is_finite() && (lo..=hi).contains(&v) {
+            Ok(v)
+        } else {
+            Err(self.err(key, format!("{v} must be between {lo} and {hi}")))
+        }
+    }
+
+    fn count(&self, key: &'static str, v: i64, lo: i64, hi: i64) -> Result<i64, ConfigError> {
+        if (lo..=hi).contains(&v) {
+            Ok(v)
+        } else {
+            Err(self.err(key, format!("{v} must be a whole number from {lo} to {hi}")))
+        }
+    }
+}
+
+impl Config {
+    /// Validates `raw` with `overrides` applied; `origin` names the file in
+    /// errors.
+    pub fn resolve(
+        raw: RawConfig,
+        overrides: &Overrides,
+        origin: &str,
+    ) -> Result<Config, ConfigError> {
+        let c = Check { origin };
+        let allow_remote = raw.network.allow_non_loopback.unwrap_or(false);
+        let listen_text = overrides
+            .listen
+            .clone()
+            .or(raw.network.listen)
+            .unwrap_or_else(|| DEFAULT_LISTEN.into());
+        let actuator_text = overrides
+            .actuator
+            .clone()
+            .or(raw.network.actuator)
+            .unwrap_or_else(|| DEFAULT_ACTUATOR.into());
+        let listen = c.addr("network.listen", &listen_text, allow_remote)?;
+        let actuator = c.addr("network.actuator", &actuator_text, allow_remote)?;
+        let model = overrides.model.clone().or(raw.model.path).ok_or_else(|| {
+            c.err(
+                "model.path",
+                "no model given; set model.path or pass --model FILE (a file from `replay-tool train`)",
+            )
+        })?;
+        let record_enabled = raw.recording.enabled.unwrap_or(true) || overrides.record.is_some();
+        let record_dir = record_enabled.then(|| {
+            overrides
+                .record
+                .clone()
+                .or(raw.recording.dir)
+                .unwrap_or_else(|| PathBuf::from("recordings"))
+        });
+        let record_buffer_bins = c.count(
+            "recording.buffer_bins",
+            raw.recording.buffer_bins.unwrap_or(1024),
+            16,
+            1 << 20,
+        )? as usize;
+        let control_socket = overrides
+            .socket
+            .clone()
+            .or(raw.control.socket)
+            .unwrap_or_else(|| PathBuf::from(DEFAULT_SOCKET));
+        let safety = SafetyConfig {
+            max_speed: c.positive("safety.max_speed", raw.safety.max_speed.unwrap_or(50.0))?,
+            max_accel: c.positive("safety.max_accel", raw.safety.max_accel.unwrap_or(500.0))?,
+            max_coast_bins: c.count(
+                "safety.max_coast_bins",
+                raw.safety.max_coast_bins.unwrap_or(5),
+                0,
+                1000,
+            )? as u32,
+            coast_decay: c.within(
+                "safety.coast_decay",
+                raw.safety.coast_decay.unwrap_or(0.8),
+                0.0,
+                1.0,
+            )?,
+        };
+        let deadline_slack_bins = c.within(
+            "timing.deadline_slack_bins",
+            raw.timing.deadline_slack_bins.unwrap_or(0.5),
+            0.05,
+            4.0,
+        )?;
+        let reorder_window_bins = c.count(
+            "timing.reorder_window_bins",
+            raw.timing.reorder_window_bins.unwrap_or(64),
+            1,
+            4096,
+        )? as u32;
+        let clock_tracking = c.within(
+            "timing.clock_tracking",
+            raw.timing.clock_tracking.unwrap_or(0.01),
+            0.0,
+            0.5,
+        )?;
+        let summary_interval = Duration::from_secs_f64(c.positive(
+            "monitor.summary_interval_s",
+            raw.monitor.summary_interval_s.unwrap_or(5.0),
+        )?);
+        let dead_channel_s = c.positive(
+            "monitor.dead_channel_s",
+            raw.monitor.dead_channel_s.unwrap_or(30.0),
+        )?;
+        let saturation_rate_hz = c.positive(
+            "monitor.saturation_rate_hz",
+            raw.monitor.saturation_rate_hz.unwrap_or(1000.0),
+        )?;
+        let n_cpus = std::thread::available_parallelism().map_or(1, |n| n.get()) as i64;
+        let cpu = match raw.realtime.cpu {
+            None => None,
+            Some(v) => Some(c.count("realtime.cpu", v, 0, n_cpus - 1)? as usize),
+        };
+        let fifo_priority = match raw.realtime.fifo_priority.unwrap_or(0) {
+            0 => None,
+            v => Some(c.count("realtime.fifo_priority", v, 1, 99)? as i32),
+        };
+        let log_format = match raw.log.format.as_deref().unwrap_or("human") {
+            "human" => LogFormat::Human,
+            "json" => LogFormat::Json,
+            other => {
+                return Err(c.err(
+                    "log.format",
+                    format!("{other:?}; use \"human\" or \"json\""),
+                ));
+            }
+        };
+        let log_level = raw.log.level.unwrap_or_else(|| "info".into());
+        if !["error", "warn", "info", "debug", "trace"].contains(&log_level.as_str()) {
+            return Err(c.err(
+                "log.level",
+                format!("{log_level:?}; use error, warn, info, debug or trace"),
+            ));
+        }
+        Ok(Config {
+            listen,
+            actuator,
+            model,
+            record_dir,
+            record_buffer_bins,
+            control_socket,
+            safety,
+            deadline_slack_bins,
+            reorder_window_bins,
+            clock_tracking,
+            summary_interval,
+            dead_channel_s,
+            saturation_rate_hz,
+            realtime: RealtimeConfig {
+                cpu,
+                mlockall: raw.realtime.mlockall.unwrap_or(false),
+                fifo_priority,
+            },
+            log_format,
+            log_level,
+            arm_at_start: overrides.arm,
+        })
+    }
+
+    /// The slot engine's settings for a model with `bin_ms` bins.
+    pub fn engine_settings(&self, bin_ms: f64) -> EngineSettings {
+        let bin_ns = (bin_ms * 1e6).round() as u64;
+        let bin_s = bin_ms / 1000.0;
+        EngineSettings {
+            bin_ns,
+            deadline_slack_ns: (self.deadline_slack_bins * bin_ns as f64).round() as u64,
+            reorder_window: self.reorder_window_bins,
+            clock_tracking: self.clock_tracking,
+            limits: SafetyLimits {
+                max_speed: self.safety.max_speed,
+                max_accel: self.safety.max_accel,
+                max_coast_bins: self.safety.max_coast_bins,
+                coast_decay: self.safety.coast_decay,
+                bin_s,
+            },
+            armed_at_start: self.arm_at_start,
+            dead_channel_bins: (self.dead_channel_s / bin_s).ceil().max(1.0) as u64,
+            // More than one spike per refractory period (1 ms at 1000 Hz) in
+            // every bin of the window is not physiological: common practice.
+            saturation_count: ((self.saturation_rate_hz * bin_s).floor() as u64 + 1).min(65535)
+                as u16,
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn resolve(text: &str, o: &Overrides) -> Result<Config, ConfigError> {
+        Config::resolve(RawConfig::from_toml(text, "daemon.toml")?, o, "daemon.toml")
+    }
+
+    fn with_model() -> Overrides {
+        Overrides {
+            model: Some("m.model".into()),
+            ..Overrides::default()
+        }
+    }
+
+    #[test]
+    fn empty_file_plus_model_is_valid() {
+        let c = resolve("", &with_model()).unwrap();
+        assert_eq!(c.listen.to_string(), DEFAULT_LISTEN);
+        assert_eq!(c.safety.max_coast_bins, 5);
+        assert_eq!(c.deadline_slack_bins, 0.5);
+        assert!(!c.arm_at_start);
+    }
+
+    #[test]
+    fn missing_model_names_the_key() {
+        let e = resolve("", &Overrides::default()).unwrap_err().to_string();
+        assert!(e.contains("model.path"), "{e}");
+    }
+
+    #[test]
+    fn non_loopback_needs_explicit_permission() {
+        let e = resolve("[network]\nlisten = \"0.0.0.0:9000\"", &with_model())
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("network.listen") && e.contains("loopback"),
+            "{e}"
+        );
+        assert!(
+            resolve(
+                "[network]\nlisten = \"0.0.0.0:9000\"\nallow_non_loopback = true",
+                &with_model()
+            )
+            .is_ok()
+        );
+    }
+
+    #[test]
+    fn bad_values_name_their_key() {
+        for (text, key) in [
+            ("[safety]\nmax_speed = -1.0", "safety.max_speed"),
+            ("[safety]\ncoast_decay = 1.5", "safety.coast_decay"),
+            ("[safety]\nmax_coast_bins = -2", "safety.max_coast_bins"),
+            (
+                "[timing]\ndeadline_slack_bins = 0.0",
+                "timing.deadline_slack_bins",
+            ),
+            ("[realtime]\nfifo_priority = 150", "realtime.fifo_priority"),
+            ("[log]\nformat = \"xml\"", "log.format"),
+            ("[network]\nactuator = \"nowhere\"", "network.actuator"),
+        ] {
+            let e = resolve(text, &with_model()).unwrap_err().to_string();
+            assert!(e.contains(key), "{text}: {e}");
+        }
+    }
+
+    #[test]
+    fn unknown_keys_are_refused() {
+        let e = resolve("[safety]\nmax_sped = 1.0", &with_model())
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("max_sped"), "{e}");
+    }
+
+    #[test]
+    fn flags_override_the_file() {
+        let o = Overrides {
+            listen: Some("127.0.0.1:5000".into()),
+            record: Some("/tmp/r".into()),
+            arm: true,
+            ..with_model()
+        };
+        let c = resolve(
+            "[network]\nlisten = \"127.0.0.1:6000\"\n[recording]\nenabled = false",
+            &o,
+        )
+        .unwrap();
+        assert_eq!(c.listen.port(), 5000);
+        assert_eq!(c.record_dir.as_deref(), Some(Path::new("/tmp/r")));
+        assert!(c.arm_at_start);
+    }
+
+    #[test]
+    fn saturation_count_follows_the_bin_width() {
+        let c = resolve("", &with_model()).unwrap();
+        assert_eq!(c.engine_settings(20.0).saturation_count, 21);
+        assert_eq!(c.engine_settings(1.0).saturation_count, 2);
+        assert_eq!(c.engine_settings(20.0).deadline_slack_ns, 10_000_000);
+    }
+}
+
+#[cfg(test)]
+mod example_file {
+    use super::*;
+
+    /// config/daemon.toml claims to show every default; hold it to that.
+    #[test]
+    fn the_example_config_states_the_defaults() {
+        let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("../config/daemon.toml");
+        let o = Overrides {
+            model: Some("m.model".into()),
+            ..Overrides::default()
+        };
+        let from_file =
+            Config::resolve(RawConfig::from_file(&path).unwrap(), &o, "daemon.toml").unwrap();
+        let defaults = Config::resolve(RawConfig::default(), &o, "defaults").unwrap();
+        assert_eq!(from_file, defaults);
+    }
+}

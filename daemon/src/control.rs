@@ -1,0 +1,276 @@
+//! The local control socket: a Unix domain socket (mode 0600) served by a
+//! tokio task, one JSON request line in, one JSON reply line out. Status
+//! and operator commands are passed to the real-time thread and answered
+//! from there; a model load is read, checked and turned into a pipeline
+//! here, off the real-time thread, and only the finished pipeline crosses
+//! over to be swapped in at the next bin boundary.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result, bail};
+use crossbeam_channel::Sender;
+use decoder_core::engine::pipeline::DecodePipeline;
+use decoder_core::engine::slot_engine::{OperatorCommand, check_swap_against};
+use decoder_core::formats::model_file::ModelFile;
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+use tokio::io::{AsyncBufReadExt, AsyncReadExt, AsyncWriteExt, BufReader};
+use tokio::net::{UnixListener, UnixStream};
+use tokio::sync::oneshot;
+
+use crate::rt_loop::{ControlRequest, LoadRequest};
+use crate::status::{ModelInfo, Status};
+
+#[derive(Debug, Serialize, Deserialize)]
+#[serde(tag = "cmd", rename_all = "lowercase")]
+pub enum Request {
+    Status,
+    Arm,
+    Disarm,
+    Halt,
+    Load { path: PathBuf },
+}
+
+#[derive(Debug, Serialize, Deserialize)]
+pub struct Reply {
+    pub ok: bool,
+    pub message: String,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub status: Option<Box<Status>>,
+}
+
+/// The running stream's shape, against which a load is checked.
+#[derive(Clone, Copy, Debug)]
+pub struct StreamShape {
+    pub n_channels: usize,
+    pub bin_us: u32,
+    pub n_outputs: usize,
+}
+
+/// A model file read and checked for loading, with what status shows.
+pub struct LoadedModel {
+    pub file: ModelFile,
+    pub bytes: Vec<u8>,
+    pub info: ModelInfo,
+}
+
+/// Reads and validates a model file (used at start and for `load`).
+pub fn read_model(path: &Path) -> Result<LoadedModel> {
+    let bytes =
+        std::fs::read(path).with_context(|| format!("cannot read model {}", path.display()))?;
+    let file = ModelFile::from_bytes(&bytes, &path.display().to_string())?;
+    let sha256: String = Sha256::digest(&bytes)
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect();
+    let info = ModelInfo {
+        path: path.display().to_string(),
+        sha256,
+        kind: file.decoder.kind().into(),
+        channels: file.decoder.n_channels(),
+        bin_ms: file.bin_ms,
+        outputs: file.decoder.outputs().to_vec(),
+    };
+    Ok(LoadedModel { file, bytes, info })
+}
+
+/// Binds the control socket with mode 0600. A stale socket file (no daemon
+/// behind it) is replaced; a live one is an error.
+pub fn bind(path: &Path) -> Result<std::os::unix::net::UnixListener> {
+    if path.exists() {
+        if std::os::unix::net::UnixStream::connect(path).is_ok() {
+            bail!(
+                "control socket {} is in use by another decoderd; stop it or set control.socket to another path",
+                path.display()
+            );
+        }
+        std::fs::remove_file(path)
+            .with_context(|| format!("cannot remove stale control socket {}", path.display()))?;
+    }
+    let std_listener =
+        crate::sys::with_umask(0o177, || std::os::unix::net::UnixListener::bind(path))
+            .with_context(|| {
+                format!(
+                    "cannot bind control socket {} (control.socket)",
+                    path.display()
+                )
+            })?;
+    std_listener.set_nonblocking(true)?;
+    Ok(std_listener)
+}
+
+/// Serves control connections until the task is dropped.
+pub async fn serve(
+    listener: std::os::unix::net::UnixListener,
+    to_rt: Sender<ControlRequest>,
+    shape: StreamShape,
+) {
+    let listener = match UnixListener::from_std(listener) {
+        Ok(l) => l,
+        Err(e) => {
+            tracing::error!("control socket unusable: {e}; ctl commands will not work");
+            return;
+        }
+    };
+    loop {
+        let Ok((stream, _)) = listener.accept().await else {
+            continue;
+        };
+        let to_rt = to_rt.clone();
+        tokio::spawn(async move {
+            if let Err(e) = handle(stream, to_rt, shape).await {
+                tracing::warn!("control connection: {e:#}");
+            }
+        });
+    }
+}
+
+async fn handle(
+    stream: UnixStream,
+    to_rt: Sender<ControlRequest>,
+    shape: StreamShape,
+) -> Result<()> {
+    let (read, mut write) = stream.into_split();
+    let mut line = String::new();
+    BufReader::new(read.take(1 << 16))
+        .read_line(&mut line)
+        .await?;
+    let reply = match serde_json::from_str::<Request>(&line) {
+        Ok(request) => answer(request, &to_rt, shape).await,
+        Err(e) => Reply {
+            ok: false,
+            message: format!("bad request: {e}"),
+            status: None,
+        },
+    };
+    let mut text = serde_json::to_string(&reply)?;
+    text.push('\n');
+    write.write_all(text.as_bytes()).await?;
+    Ok(())
+}
+
+fn fail(message: impl Into<String>) -> Reply {
+    Reply {
+        ok: false,
+        message: message.into(),
+        status: None,
+    }
+}
+
+const RT_GONE: &str = "the decode loop is not running (daemon shutting down)";
+
+async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamShape) -> Reply {
+    match request {
+        Request::Status => {
+            let (tx, rx) = oneshot::channel();
+            if to_rt.send(ControlRequest::Status(tx)).is_err() {
+                return fail(RT_GONE);
+            }
+            match rx.await {
+                Ok(mut s) => {
+                    s.rss_bytes = crate::sys::rss_bytes();
+                    Reply {
+                        ok: true,
+                        message: String::new(),
+                        status: Some(Box::new(s)),
+                    }
+                }
+                Err(_) => fail(RT_GONE),
+            }
+        }
+        Request::Arm | Request::Disarm | Request::Halt => {
+            let command = match request {
+                Request::Arm => OperatorCommand::Arm,
+                Request::Disarm => OperatorCommand::Disarm,
+                _ => OperatorCommand::Halt,
+            };
+            let (reply, rx) = oneshot::channel();
+            if to_rt
+                .send(ControlRequest::Operator { command, reply })
+                .is_err()
+            {
+                return fail(RT_GONE);
+            }
+            match rx.await {
+                Ok(Ok(m)) => {
+                    tracing::info!("operator {command:?}: {m}");
+                    Reply {
+                        ok: true,
+                        message: m,
+                        status: None,
+                    }
+                }
+                Ok(Err(m)) => {
+                    tracing::warn!("operator {command:?} {m}");
+                    fail(m)
+                }
+                Err(_) => fail(RT_GONE),
+            }
+        }
+        Request::Load { path } => {
+            let loaded = match tokio::task::spawn_blocking(move || prepare_load(&path, shape)).await
+            {
+                Ok(Ok(l)) => l,
+                Ok(Err(e)) => return fail(format!("load refused: {e:#}")),
+                Err(e) => return fail(format!("load failed: {e}")),
+            };
+            let (pipeline, loaded) = loaded;
+            let sha = loaded.info.sha256.clone();
+            let path = loaded.info.path.clone();
+            let (reply, rx) = oneshot::channel();
+            let request = LoadRequest {
+                pipeline,
+                model_bytes: loaded.bytes,
+                info: loaded.info,
+                reply,
+            };
+            if to_rt.send(ControlRequest::Load(Box::new(request))).is_err() {
+                return fail(RT_GONE);
+            }
+            match rx.await {
+                Ok(Ok((seq, old))) => {
+                    // The old decoder is freed here, not on the real-time thread.
+                    drop(old);
+                    let m = format!("loaded {path} (sha256 {sha}); it decodes from seq {seq}");
+                    tracing::info!("{m}");
+                    Reply {
+                        ok: true,
+                        message: m,
+                        status: None,
+                    }
+                }
+                Ok(Err(e)) => fail(format!("load refused: {e}")),
+                Err(_) => fail(RT_GONE),
+            }
+        }
+    }
+}
+
+fn prepare_load(path: &Path, shape: StreamShape) -> Result<(DecodePipeline, LoadedModel)> {
+    let loaded = read_model(path)?;
+    let pipeline = DecodePipeline::new(&loaded.file)
+        .with_context(|| format!("model {} cannot be run", path.display()))?;
+    check_swap_against(&pipeline, shape.n_channels, shape.bin_us, shape.n_outputs)
+        .with_context(|| format!("model {}", path.display()))?;
+    Ok((pipeline, loaded))
+}
+
+/// The client side, for `decoderd ctl`.
+pub fn request(socket: &Path, request: &Request) -> Result<Reply> {
+    use std::io::{BufRead, Write};
+    let mut stream = std::os::unix::net::UnixStream::connect(socket).with_context(|| {
+        format!(
+            "cannot reach decoderd at {}; is it running, and is this its control.socket?",
+            socket.display()
+        )
+    })?;
+    stream.set_read_timeout(Some(std::time::Duration::from_secs(10)))?;
+    let mut text = serde_json::to_string(request)?;
+    text.push('\n');
+    stream.write_all(text.as_bytes())?;
+    let mut line = String::new();
+    std::io::BufReader::new(stream)
+        .read_line(&mut line)
+        .context("no reply from decoderd")?;
+    serde_json::from_str(&line).with_context(|| format!("unreadable reply from decoderd: {line:?}"))
+}

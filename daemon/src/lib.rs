@@ -1,0 +1,531 @@
+//! `decoderd`: the program between the spike front end and the actuator.
+//!
+//! [`run`] loads the model, binds the sockets, opens the session log and
+//! starts three kinds of work: the real-time loop on its own thread
+//! ([`rt_loop`]), the recorder's writer thread ([`recorder`]), and a
+//! single-threaded tokio runtime for the control socket, the periodic
+//! summary line and signals ([`control`]). The decode logic itself is
+//! `decoder_core::engine::slot_engine`, shared with offline replay.
+
+pub mod alloc_count;
+pub mod config;
+pub mod control;
+pub mod loopback;
+pub mod recorder;
+pub mod rt_loop;
+pub mod status;
+pub mod sys;
+
+use std::net::{SocketAddr, UdpSocket};
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::{Duration, Instant, SystemTime};
+
+use anyhow::{Context, Result};
+use clap::{Parser, Subcommand};
+use crossbeam_channel::Receiver;
+use decoder_core::engine::pipeline::DecodePipeline;
+use decoder_core::engine::slot_engine::{EngineEvent, SlotEngine};
+use decoder_core::formats::packet;
+use decoder_core::formats::session_log::{self, LogHeader, RecordKind};
+
+use crate::config::{Config, LogFormat, Overrides, RawConfig};
+use crate::control::{Reply, Request, StreamShape};
+use crate::recorder::Recorder;
+use crate::rt_loop::{ControlRequest, RtLoop, StaticInfo, TimedEvent};
+use crate::status::{Monitor, Status};
+
+pub const VERSION: &str = env!("CARGO_PKG_VERSION");
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "decoderd",
+    version,
+    about = "Real-time closed-loop velocity decoder: UDP bins in, velocity commands out"
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Run the decoder (starts disarmed unless --arm).
+    Run(RunArgs),
+    /// Talk to a running decoderd over its control socket.
+    Ctl(CtlArgs),
+}
+
+#[derive(Debug, clap::Args)]
+pub struct RunArgs {
+    /// Configuration file (config/daemon.toml documents every key).
+    #[arg(long)]
+    pub config: Option<PathBuf>,
+    /// Model file from `replay-tool train` (overrides model.path).
+    #[arg(long)]
+    pub model: Option<PathBuf>,
+    /// Address to receive bin packets on (overrides network.listen).
+    #[arg(long)]
+    pub listen: Option<String>,
+    /// Address of the actuator client (overrides network.actuator).
+    #[arg(long)]
+    pub actuator: Option<String>,
+    /// Directory for the session log (overrides recording.dir; turns recording on).
+    #[arg(long)]
+    pub record: Option<PathBuf>,
+    /// Control socket path (overrides control.socket).
+    #[arg(long)]
+    pub socket: Option<PathBuf>,
+    /// Arm at start. For bench use only: the command follows the decoder
+    /// from the first bin without an operator's arm.
+    #[arg(long)]
+    pub arm: bool,
+}
+
+#[derive(Debug, clap::Args)]
+pub struct CtlArgs {
+    /// Control socket of the running daemon.
+    #[arg(long, default_value = config::DEFAULT_SOCKET)]
+    pub socket: PathBuf,
+    /// Print status as JSON.
+    #[arg(long)]
+    pub json: bool,
+    #[command(subcommand)]
+    pub action: CtlAction,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum CtlAction {
+    /// Show state, counters, latency, channel health and recording.
+    Status,
+    /// Arm: the command follows the decoder (needs a live stream).
+    Arm,
+    /// Disarm: command zero.
+    Disarm,
+    /// Halt: command zero until an operator arms again.
+    Halt,
+    /// Swap in another model at the next bin boundary.
+    Load {
+        /// Model file from `replay-tool train`.
+        model: PathBuf,
+    },
+}
+
+pub fn main_with(cli: Cli) -> ExitCode {
+    match cli.command {
+        Command::Run(args) => match prepare(&args) {
+            Ok(config) => {
+                init_logging(config.log_format, &config.log_level);
+                let shutdown = Arc::new(AtomicBool::new(false));
+                match run(config, shutdown) {
+                    Ok(_) => ExitCode::SUCCESS,
+                    Err(e) => {
+                        eprintln!("decoderd: {e:#}");
+                        ExitCode::from(2)
+                    }
+                }
+            }
+            Err(e) => {
+                eprintln!("decoderd: {e:#}");
+                ExitCode::from(2)
+            }
+        },
+        Command::Ctl(args) => match ctl(&args) {
+            Ok(true) => ExitCode::SUCCESS,
+            Ok(false) => ExitCode::from(1),
+            Err(e) => {
+                eprintln!("decoderd ctl: {e:#}");
+                ExitCode::from(2)
+            }
+        },
+    }
+}
+
+/// Reads and validates the configuration with the flags applied.
+pub fn prepare(args: &RunArgs) -> Result<Config> {
+    let (raw, origin) = match &args.config {
+        Some(p) => (RawConfig::from_file(p)?, p.display().to_string()),
+        None => (RawConfig::default(), "defaults".to_string()),
+    };
+    let overrides = Overrides {
+        model: args.model.clone(),
+        listen: args.listen.clone(),
+        actuator: args.actuator.clone(),
+        record: args.record.clone(),
+        socket: args.socket.clone(),
+        arm: args.arm,
+    };
+    Ok(Config::resolve(raw, &overrides, &origin)?)
+}
+
+pub fn init_logging(format: LogFormat, level: &str) {
+    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(level));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    let _ = match format {
+        LogFormat::Human => builder.try_init(),
+        LogFormat::Json => builder.json().try_init(),
+    };
+}
+
+/// `decoderd ctl`: prints the reply; Ok(false) when the daemon refused.
+pub fn ctl(args: &CtlArgs) -> Result<bool> {
+    let request = match &args.action {
+        CtlAction::Status => Request::Status,
+        CtlAction::Arm => Request::Arm,
+        CtlAction::Disarm => Request::Disarm,
+        CtlAction::Halt => Request::Halt,
+        CtlAction::Load { model } => Request::Load {
+            // The daemon runs elsewhere: send an absolute path.
+            path: std::path::absolute(model)
+                .with_context(|| format!("cannot resolve {}", model.display()))?,
+        },
+    };
+    let reply: Reply = control::request(&args.socket, &request)?;
+    match (&reply.status, args.json) {
+        (Some(s), true) => println!("{}", serde_json::to_string_pretty(s)?),
+        (Some(s), false) => print!("{}", s.table()),
+        (None, _) if reply.ok => println!("{}", reply.message),
+        (None, _) => eprintln!("decoderd: {}", reply.message),
+    }
+    Ok(reply.ok)
+}
+
+fn bind_udp(addr: SocketAddr, key: &str) -> Result<UdpSocket> {
+    UdpSocket::bind(addr).with_context(|| format!("cannot bind {addr} ({key})"))
+}
+
+fn log_path(dir: &Path) -> Result<PathBuf> {
+    std::fs::create_dir_all(dir).with_context(|| {
+        format!(
+            "cannot create recording directory {} (recording.dir)",
+            dir.display()
+        )
+    })?;
+    let stamp = humantime::format_rfc3339_seconds(SystemTime::now())
+        .to_string()
+        .replace(':', "");
+    for n in 0..1000 {
+        let name = if n == 0 {
+            format!("decoderd-{stamp}.vdlog")
+        } else {
+            format!("decoderd-{stamp}-{n}.vdlog")
+        };
+        let p = dir.join(name);
+        if !p.exists() {
+            return Ok(p);
+        }
+    }
+    anyhow::bail!(
+        "too many session logs named for this second in {}",
+        dir.display()
+    )
+}
+
+/// Runs the daemon until `shutdown` is set or SIGTERM/SIGINT arrives;
+/// returns the final status.
+pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
+    let started = Instant::now();
+    let model_path = config.model.clone();
+    let mut loaded = control::read_model(&model_path).context("model.path / --model")?;
+    let pipeline = DecodePipeline::new(&loaded.file)
+        .with_context(|| format!("model {} cannot be run", model_path.display()))?;
+    let settings = config.engine_settings(loaded.file.bin_ms);
+    let n_channels = pipeline.n_channels();
+    let n_outputs = pipeline.n_outputs();
+    if n_outputs == 0 || n_outputs > packet::MAX_DIMS {
+        anyhow::bail!(
+            "model {} outputs {n_outputs} velocities; the velocity packet carries 1 to 8",
+            model_path.display()
+        );
+    }
+    let engine = SlotEngine::new(settings.clone(), pipeline);
+    let shape = StreamShape {
+        n_channels,
+        bin_us: engine.bin_us(),
+        n_outputs,
+    };
+
+    let input = bind_udp(config.listen, "network.listen")?;
+    let listen = input.local_addr()?;
+    let out_addr: SocketAddr = if config.actuator.is_ipv4() {
+        "127.0.0.1:0".parse()?
+    } else {
+        "[::1]:0".parse()?
+    };
+    let out_addr = if config.actuator.ip().is_loopback() {
+        out_addr
+    } else if config.actuator.is_ipv4() {
+        "0.0.0.0:0".parse()?
+    } else {
+        "[::]:0".parse()?
+    };
+    let output = bind_udp(out_addr, "network.actuator")?;
+    let listener_std = control::bind(&config.control_socket)?;
+
+    let (recorder, batcher) = match &config.record_dir {
+        Some(dir) => {
+            let path = log_path(dir)?;
+            let header = session_log::encode_header(&LogHeader {
+                daemon_version: VERSION.into(),
+                opened_ns: sys::monotonic_ns(),
+                opened_at: humantime::format_rfc3339_millis(SystemTime::now()).to_string(),
+                n_channels,
+                bin_us: shape.bin_us,
+                outputs: loaded.info.outputs.clone(),
+                settings: settings.clone(),
+            });
+            // Room for a typical loop iteration (a datagram, a few sent
+            // packets, an event); a bigger batch grows its buffer once.
+            let capacity = 2 * session_log::record_len(8 + packet::BIN_HEADER_LEN + 2 * n_channels)
+                + 16 * session_log::record_len(8 + packet::velocity_len(n_outputs))
+                + 2048;
+            let (rec, mut batcher) =
+                Recorder::create(&path, &header, config.record_buffer_bins, capacity)
+                    .with_context(|| format!("cannot create session log {}", path.display()))?;
+            batcher.record_owned(
+                RecordKind::Model,
+                sys::monotonic_ns(),
+                std::mem::take(&mut loaded.bytes),
+            );
+            tracing::info!(path = %path.display(), "recording the session");
+            (Some(rec), Some(batcher))
+        }
+        None => {
+            tracing::warn!(
+                "recording is off (recording.enabled = false): this session cannot be replayed"
+            );
+            (None, None)
+        }
+    };
+
+    tracing::info!(
+        listen = %listen,
+        actuator = %config.actuator,
+        model = %model_path.display(),
+        sha256 = %loaded.info.sha256,
+        channels = n_channels,
+        bin_ms = loaded.file.bin_ms,
+        "decoderd {VERSION} starting"
+    );
+    if config.arm_at_start {
+        tracing::warn!(
+            "armed at start (--arm): bench use only; the command follows the decoder from the first bin"
+        );
+    } else {
+        tracing::info!("disarmed: the command stays zero until `decoderd ctl arm`");
+    }
+
+    let (control_tx, control_rx) = crossbeam_channel::bounded::<ControlRequest>(64);
+    let (events_tx, events_rx) = crossbeam_channel::bounded::<TimedEvent>(4096);
+    let events_thread = std::thread::Builder::new()
+        .name("decoderd-events".into())
+        .spawn(move || log_events(events_rx))?;
+
+    let info = StaticInfo {
+        version: VERSION.into(),
+        started,
+        listen,
+        actuator: config.actuator,
+        armed_at_start: config.arm_at_start,
+        model: loaded.info.clone(),
+        realtime_warnings: Vec::new(),
+        recording: recorder.as_ref().map(|r| (r.path.clone(), r.stats.clone())),
+    };
+    // The model's bytes and parameters are in the pipeline and the log now.
+    drop(loaded);
+    let realtime = config.realtime.clone();
+    let rt_shutdown = shutdown.clone();
+    let actuator = config.actuator;
+    let rt_thread = std::thread::Builder::new()
+        .name("decoderd-rt".into())
+        .spawn(move || {
+            sys::tighten_timer_slack();
+            let warnings = sys::apply_realtime(&realtime);
+            for w in &warnings {
+                tracing::warn!("{w}");
+            }
+            let mut info = info;
+            info.realtime_warnings = warnings;
+            RtLoop {
+                input,
+                output,
+                actuator,
+                engine,
+                batcher,
+                monitor: Monitor::default(),
+                control: control_rx,
+                events: events_tx,
+                shutdown: rt_shutdown,
+                info,
+                events_not_logged: 0,
+            }
+            .run()
+        })?;
+
+    let runtime = tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .context("cannot start the control runtime")?;
+    let summary_every = config.summary_interval;
+    let socket_path = config.control_socket.clone();
+    runtime.block_on(async {
+        let server = tokio::spawn(control::serve(listener_std, control_tx.clone(), shape));
+        let summary = tokio::spawn(summary_lines(control_tx.clone(), summary_every));
+        wait_for_stop(&shutdown).await;
+        shutdown.store(true, Ordering::Relaxed);
+        server.abort();
+        summary.abort();
+    });
+    drop(control_tx);
+    let mut status = rt_thread
+        .join()
+        .map_err(|_| anyhow::anyhow!("the decode thread panicked"))?;
+    status.rss_bytes = sys::rss_bytes();
+    if let Some(rec) = recorder {
+        rec.join();
+    }
+    let _ = std::fs::remove_file(&socket_path);
+    let _ = events_thread.join();
+    let recording = status
+        .recording
+        .as_ref()
+        .map(|r| {
+            format!(
+                "{}: {} records written, {} lost",
+                r.path.as_deref().unwrap_or("-"),
+                r.records_written,
+                r.records_lost
+            )
+        })
+        .unwrap_or_else(|| "off".into());
+    tracing::info!("stopped: {}; recording {recording}", status.summary_line());
+    Ok(status)
+}
+
+async fn wait_for_stop(shutdown: &AtomicBool) {
+    use tokio::signal::unix::{SignalKind, signal};
+    let mut term = signal(SignalKind::terminate()).ok();
+    let mut int = signal(SignalKind::interrupt()).ok();
+    let mut poll = tokio::time::interval(Duration::from_millis(50));
+    loop {
+        tokio::select! {
+            _ = async { match term.as_mut() { Some(s) => { s.recv().await; } None => std::future::pending().await } } => {
+                tracing::info!("SIGTERM: stopping");
+                return;
+            }
+            _ = async { match int.as_mut() { Some(s) => { s.recv().await; } None => std::future::pending().await } } => {
+                tracing::info!("SIGINT: stopping");
+                return;
+            }
+            _ = poll.tick() => {
+                if shutdown.load(Ordering::Relaxed) {
+                    return;
+                }
+            }
+        }
+    }
+}
+
+async fn summary_lines(to_rt: crossbeam_channel::Sender<ControlRequest>, every: Duration) {
+    let mut tick = tokio::time::interval(every);
+    tick.tick().await;
+    loop {
+        tick.tick().await;
+        let (tx, rx) = tokio::sync::oneshot::channel();
+        if to_rt.send(ControlRequest::Status(tx)).is_err() {
+            return;
+        }
+        if let Ok(s) = rx.await {
+            if let Some(alarm) = s.recording.as_ref().and_then(|r| r.alarm.as_ref()) {
+                tracing::error!("{alarm}");
+            }
+            tracing::info!("{}", s.summary_line());
+        }
+    }
+}
+
+/// Logs engine events; routine ones (rejects, late and duplicate bins) at
+/// most five per second per kind, with a count of the rest.
+fn log_events(events: Receiver<TimedEvent>) {
+    let mut window_start = Instant::now();
+    let mut shown = [0u32; 3];
+    let mut suppressed = [0u64; 3];
+    while let Ok((_, event)) = events.recv() {
+        if window_start.elapsed() >= Duration::from_secs(1) {
+            let total: u64 = suppressed.iter().sum();
+            if total > 0 {
+                tracing::warn!(
+                    rejected = suppressed[0],
+                    late = suppressed[1],
+                    duplicate_or_stray = suppressed[2],
+                    "{total} more routine events in the last second not logged (see ctl status counters)"
+                );
+            }
+            window_start = Instant::now();
+            shown = [0; 3];
+            suppressed = [0; 3];
+        }
+        let routine = match event {
+            EngineEvent::Rejected(_) => Some(0),
+            EngineEvent::Late { .. } => Some(1),
+            EngineEvent::Duplicate { .. } | EngineEvent::Stray { .. } => Some(2),
+            _ => None,
+        };
+        if let Some(k) = routine {
+            if shown[k] >= 5 {
+                suppressed[k] += 1;
+                continue;
+            }
+            shown[k] += 1;
+        }
+        match event {
+            EngineEvent::Rejected(r) => tracing::warn!(reason = r.name(), "datagram rejected: {r}"),
+            EngineEvent::Late { seq } => tracing::warn!(
+                seq,
+                "bin arrived after its deadline; dropped (its slot was coasted)"
+            ),
+            EngineEvent::Duplicate { seq } => tracing::warn!(seq, "duplicate bin dropped"),
+            EngineEvent::Stray { seq } => tracing::warn!(
+                seq,
+                "bin far outside the expected seq dropped as a stray (a second in sequence would start a new stream)"
+            ),
+            EngineEvent::StreamStarted { seq, .. } => {
+                tracing::info!(seq, "stream started: bin clock anchored")
+            }
+            EngineEvent::NewStream { expected_seq, seq } => tracing::warn!(
+                expected_seq,
+                seq,
+                "seq jumped outside the reorder window: new stream, decoder reset, supervisor halted"
+            ),
+            EngineEvent::Transition(t) => {
+                let reason = serde_json::to_string(&t.reason).unwrap_or_default();
+                if matches!(
+                    t.to,
+                    decoder_core::engine::supervisor::SupervisorState::Halted
+                ) {
+                    tracing::warn!(
+                        seq = t.seq,
+                        "{} -> {} ({reason})",
+                        t.from.name(),
+                        t.to.name()
+                    );
+                } else {
+                    tracing::info!(
+                        seq = t.seq,
+                        "{} -> {} ({reason})",
+                        t.from.name(),
+                        t.to.name()
+                    );
+                }
+            }
+            EngineEvent::ModelChanged { seq } => {
+                tracing::info!(seq, "model swapped in at this bin")
+            }
+        }
+    }
+}

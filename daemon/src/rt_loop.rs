@@ -1,0 +1,308 @@
+//! The real-time loop: one dedicated thread (never a tokio worker) that
+//! waits for the next of four events — a bin arrived, a deadline passed, a
+//! control request, shutdown — and handles it to the end before waiting
+//! again. Per datagram: read, stamp `recv_ns`, record the raw bytes, hand
+//! them to the slot engine (validate → decode → supervise → encode), stamp
+//! `sent_ns`, send, record the packet. Nothing here allocates per bin, logs
+//! per bin or takes a lock; events go to a logging thread over a bounded
+//! channel and are dropped (and counted) if it falls behind.
+
+use std::net::{SocketAddr, UdpSocket};
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::{Duration, Instant};
+
+use crossbeam_channel::{Receiver, Sender};
+use decoder_core::engine::pipeline::DecodePipeline;
+use decoder_core::engine::slot_engine::{
+    EngineEvent, OperatorCommand, SlotAnswer, SlotEngine, SlotSink,
+};
+use decoder_core::formats::packet;
+use decoder_core::formats::session_log::{self, RecordKind};
+use tokio::sync::oneshot;
+
+use crate::recorder::{RecordBatcher, RecorderStats};
+use crate::status::{ModelInfo, Monitor, Status, rejected_by_name};
+use crate::{alloc_count, sys};
+
+/// The longest the loop sleeps without looking at control requests and
+/// the shutdown flag.
+const IDLE_WAKE: Duration = Duration::from_millis(20);
+/// Datagrams handled per wake before control and shutdown are looked at.
+const MAX_BURST: usize = 256;
+
+/// A request from the control socket to the real-time thread.
+pub enum ControlRequest {
+    Status(oneshot::Sender<Status>),
+    Operator {
+        command: OperatorCommand,
+        reply: oneshot::Sender<Result<String, String>>,
+    },
+    Load(Box<LoadRequest>),
+}
+
+/// A model already read and validated off the real-time thread.
+pub struct LoadRequest {
+    pub pipeline: DecodePipeline,
+    pub model_bytes: Vec<u8>,
+    pub info: ModelInfo,
+    /// On success the seq of the first slot the new model decodes, and the
+    /// old pipeline, to be freed by the caller.
+    pub reply: oneshot::Sender<Result<(u64, DecodePipeline), String>>,
+}
+
+/// An event with its time, for the logging thread.
+pub type TimedEvent = (u64, EngineEvent);
+
+/// Facts about the running daemon that only status needs.
+pub struct StaticInfo {
+    pub version: String,
+    pub started: Instant,
+    pub listen: SocketAddr,
+    pub actuator: SocketAddr,
+    pub armed_at_start: bool,
+    pub model: ModelInfo,
+    pub realtime_warnings: Vec<String>,
+    pub recording: Option<(std::path::PathBuf, Arc<RecorderStats>)>,
+}
+
+pub struct RtLoop {
+    pub input: UdpSocket,
+    pub output: UdpSocket,
+    pub actuator: SocketAddr,
+    pub engine: SlotEngine,
+    pub batcher: Option<RecordBatcher>,
+    pub monitor: Monitor,
+    pub control: Receiver<ControlRequest>,
+    pub events: Sender<TimedEvent>,
+    pub shutdown: Arc<AtomicBool>,
+    pub info: StaticInfo,
+    pub events_not_logged: u64,
+}
+
+/// Borrows the output side of an [`RtLoop`] field by field, so the engine
+/// (another field) can be borrowed beside it.
+macro_rules! out {
+    ($rt:expr, $json:expr) => {
+        Out {
+            output: &$rt.output,
+            actuator: $rt.actuator,
+            monitor: &mut $rt.monitor,
+            batcher: $rt.batcher.as_mut(),
+            events: &$rt.events,
+            events_not_logged: &mut $rt.events_not_logged,
+            json: $json,
+        }
+    };
+}
+
+/// The engine's output side for one call: send, measure, record.
+struct Out<'a> {
+    output: &'a UdpSocket,
+    actuator: SocketAddr,
+    monitor: &'a mut Monitor,
+    batcher: Option<&'a mut RecordBatcher>,
+    events: &'a Sender<TimedEvent>,
+    events_not_logged: &'a mut u64,
+    json: &'a mut Vec<u8>,
+}
+
+impl SlotSink for Out<'_> {
+    fn answer(&mut self, packet_bytes: &mut [u8], slot: &SlotAnswer) {
+        let sent_ns = sys::monotonic_ns();
+        packet::patch_sent_ns(packet_bytes, sent_ns);
+        if self.output.send_to(packet_bytes, self.actuator).is_err() {
+            self.monitor.send_errors += 1;
+        }
+        self.monitor.on_sent(slot, sent_ns);
+        if let Some(b) = self.batcher.as_deref_mut() {
+            b.record(RecordKind::Sent, slot.decided_ns, &[packet_bytes]);
+        }
+    }
+
+    fn event(&mut self, event: &EngineEvent) {
+        let now = sys::monotonic_ns();
+        if let Some(b) = self.batcher.as_deref_mut() {
+            self.json.clear();
+            if serde_json::to_writer(&mut *self.json, event).is_ok() {
+                b.record(RecordKind::Event, now, &[self.json]);
+            }
+        }
+        if self.events.try_send((now, *event)).is_err() {
+            *self.events_not_logged += 1;
+        }
+    }
+}
+
+impl RtLoop {
+    /// Runs until the shutdown flag is set; returns the final status.
+    pub fn run(mut self) -> Status {
+        let mut buf = vec![0u8; 65_536];
+        let mut json = Vec::with_capacity(1024);
+        if let Err(e) = self.input.set_nonblocking(true) {
+            tracing::error!("cannot make the bin socket non-blocking: {e}");
+        }
+        // Warm-up (the buffers above) is over: from here on the loop is the
+        // decode path, except while it serves control requests.
+        alloc_count::set_on_decode_path(true);
+        while !self.shutdown.load(Ordering::Relaxed) {
+            let now = sys::monotonic_ns();
+            let wait = match self.engine.next_deadline() {
+                Some(d) if d <= now => {
+                    let mut out = out!(self, &mut json);
+                    self.engine.on_timeout(now, &mut out);
+                    self.flush_records();
+                    continue;
+                }
+                Some(d) => Duration::from_nanos(d - now).min(IDLE_WAKE),
+                None => IDLE_WAKE,
+            };
+            match sys::wait_readable(&self.input, wait) {
+                Ok(true) => self.drain_socket(&mut buf, &mut json),
+                Ok(false) => {
+                    let now = sys::monotonic_ns();
+                    let mut out = out!(self, &mut json);
+                    self.engine.on_timeout(now, &mut out);
+                }
+                Err(e) => {
+                    tracing::error!("waiting on the bin socket failed: {e}");
+                    std::thread::sleep(Duration::from_millis(1));
+                }
+            }
+            self.flush_records();
+            if !self.control.is_empty() {
+                alloc_count::set_on_decode_path(false);
+                self.serve_control(&mut json);
+                alloc_count::set_on_decode_path(true);
+            }
+        }
+        alloc_count::set_on_decode_path(false);
+        let status = self.status();
+        if let Some(b) = self.batcher.as_mut() {
+            let end = serde_json::to_vec(&status).unwrap_or_default();
+            b.record_owned(RecordKind::End, sys::monotonic_ns(), end);
+            b.close();
+        }
+        status
+    }
+
+    fn flush_records(&mut self) {
+        if let Some(b) = self.batcher.as_mut() {
+            b.flush();
+        }
+    }
+
+    fn drain_socket(&mut self, buf: &mut [u8], json: &mut Vec<u8>) {
+        for _ in 0..MAX_BURST {
+            match self.input.recv_from(buf) {
+                Ok((n, _from)) => {
+                    let recv_ns = sys::monotonic_ns();
+                    let datagram = &buf[..n];
+                    if let Some(b) = self.batcher.as_mut() {
+                        b.record(RecordKind::Datagram, recv_ns, &[datagram]);
+                    }
+                    let mut out = out!(self, json);
+                    self.engine.on_datagram(recv_ns, datagram, &mut out);
+                    self.flush_records();
+                }
+                Err(e) if e.kind() == std::io::ErrorKind::WouldBlock => return,
+                Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+                Err(e) => {
+                    tracing::warn!("reading the bin socket failed: {e}");
+                    return;
+                }
+            }
+        }
+    }
+
+    fn serve_control(&mut self, json: &mut Vec<u8>) {
+        while let Ok(request) = self.control.try_recv() {
+            match request {
+                ControlRequest::Status(reply) => {
+                    let _ = reply.send(self.status());
+                }
+                ControlRequest::Operator { command, reply } => {
+                    let mut out = out!(self, json);
+                    let result = self.engine.operator(command, &mut out);
+                    let code = session_log::operator_code(command);
+                    let outcome = u8::from(result.is_err());
+                    if let Some(b) = self.batcher.as_mut() {
+                        b.record(
+                            RecordKind::Operator,
+                            sys::monotonic_ns(),
+                            &[&[code, outcome]],
+                        );
+                    }
+                    let state = self.engine.state().name();
+                    let _ = reply.send(match result {
+                        Ok(Some(t)) => Ok(format!(
+                            "{} -> {} at seq {}",
+                            t.from.name(),
+                            t.to.name(),
+                            t.seq
+                        )),
+                        Ok(None) => Ok(format!("already {state}")),
+                        Err(e) => Err(format!("refused: {e}")),
+                    });
+                }
+                ControlRequest::Load(load) => {
+                    let LoadRequest {
+                        pipeline,
+                        model_bytes,
+                        info,
+                        reply,
+                    } = *load;
+                    let mut out = out!(self, json);
+                    match self.engine.swap_pipeline(pipeline, &mut out) {
+                        Ok(old) => {
+                            if let Some(b) = self.batcher.as_mut() {
+                                b.record_owned(RecordKind::Model, sys::monotonic_ns(), model_bytes);
+                            }
+                            self.info.model = info;
+                            let seq = self.engine.next_seq().unwrap_or(0);
+                            let _ = reply.send(Ok((seq, old)));
+                        }
+                        Err(refused) => {
+                            let _ = reply.send(Err(refused.0.to_string()));
+                        }
+                    }
+                }
+            }
+            self.flush_records();
+        }
+    }
+
+    fn status(&self) -> Status {
+        let c = self.engine.counters().clone();
+        let (dead, saturated) = self.engine.channel_health();
+        Status {
+            daemon_version: self.info.version.clone(),
+            uptime_s: self.info.started.elapsed().as_secs_f64(),
+            state: self.engine.state().name().into(),
+            armed_at_start: self.info.armed_at_start,
+            listen: self.info.listen.to_string(),
+            actuator: self.info.actuator.to_string(),
+            model: self.info.model.clone(),
+            stream_started: self.engine.next_seq().is_some(),
+            next_seq: self.engine.next_seq(),
+            consecutive_missing: self.engine.consecutive_missing(),
+            rejected: rejected_by_name(&c),
+            counters: c,
+            send_errors: self.monitor.send_errors,
+            events_not_logged: self.events_not_logged,
+            rate_clamps: self.engine.rate_clamps(),
+            latency: self.monitor.latency(),
+            dead_channels: dead,
+            saturated_channels: saturated,
+            recording: self
+                .info
+                .recording
+                .as_ref()
+                .map(|(p, s)| s.snapshot(Some(p))),
+            // Read from /proc by the control side, not on this thread.
+            rss_bytes: None,
+            decode_path_allocations: alloc_count::decode_path_allocations(),
+            realtime_warnings: self.info.realtime_warnings.clone(),
+        }
+    }
+}

@@ -1,0 +1,323 @@
+//! What the daemon reports about itself: per-bin latency histograms kept on
+//! the real-time thread, and the status snapshot that `decoderd ctl status`
+//! prints (JSON with `--json`, a table otherwise) and the periodic summary
+//! line logs.
+
+use std::collections::BTreeMap;
+use std::fmt::Write as _;
+
+use decoder_core::engine::slot_engine::{EngineCounters, SlotAnswer};
+use decoder_core::formats::packet::RejectReason;
+use hdrhistogram::Histogram;
+use serde::{Deserialize, Serialize};
+
+use crate::recorder::RecorderSnapshot;
+
+/// Latency histograms, in ns, 1 ns to 60 s at 3 significant digits.
+pub struct Monitor {
+    recv_to_send: Histogram<u64>,
+    origin_to_send: Histogram<u64>,
+    deadline_overrun: Histogram<u64>,
+    pub send_errors: u64,
+}
+
+impl Default for Monitor {
+    fn default() -> Self {
+        let h = || Histogram::new_with_bounds(1, 60_000_000_000, 3).expect("valid bounds");
+        Monitor {
+            recv_to_send: h(),
+            origin_to_send: h(),
+            deadline_overrun: h(),
+            send_errors: 0,
+        }
+    }
+}
+
+impl Monitor {
+    /// Notes one sent packet. Recording into an HDR histogram does not
+    /// allocate.
+    pub fn on_sent(&mut self, slot: &SlotAnswer, sent_ns: u64) {
+        if slot.recv_ns != 0 {
+            self.recv_to_send
+                .saturating_record(sent_ns.saturating_sub(slot.recv_ns).max(1));
+        } else {
+            self.deadline_overrun
+                .saturating_record(sent_ns.saturating_sub(slot.deadline_ns).max(1));
+        }
+        if slot.origin_ns != 0 && sent_ns >= slot.origin_ns {
+            self.origin_to_send
+                .saturating_record((sent_ns - slot.origin_ns).max(1));
+        }
+    }
+
+    pub fn latency(&self) -> LatencyReport {
+        LatencyReport {
+            recv_to_send_us: Percentiles::of(&self.recv_to_send),
+            origin_to_send_us: Percentiles::of(&self.origin_to_send),
+            deadline_overrun_us: Percentiles::of(&self.deadline_overrun),
+        }
+    }
+}
+
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct Percentiles {
+    pub count: u64,
+    pub p50: f64,
+    pub p90: f64,
+    pub p99: f64,
+    pub p999: f64,
+    pub max: f64,
+}
+
+impl Percentiles {
+    /// From raw samples in ns (exact order statistics, nearest rank), for
+    /// the benches that keep every sample.
+    pub fn of_samples_ns(samples: &[u64]) -> Percentiles {
+        if samples.is_empty() {
+            return Percentiles::default();
+        }
+        let mut v = samples.to_vec();
+        v.sort_unstable();
+        let at = |q: f64| v[((v.len() - 1) as f64 * q).round() as usize] as f64 / 1000.0;
+        Percentiles {
+            count: v.len() as u64,
+            p50: at(0.5),
+            p90: at(0.9),
+            p99: at(0.99),
+            p999: at(0.999),
+            max: at(1.0),
+        }
+    }
+
+    pub fn of(h: &Histogram<u64>) -> Percentiles {
+        if h.is_empty() {
+            return Percentiles::default();
+        }
+        let us = |v: u64| v as f64 / 1000.0;
+        Percentiles {
+            count: h.len(),
+            p50: us(h.value_at_quantile(0.5)),
+            p90: us(h.value_at_quantile(0.9)),
+            p99: us(h.value_at_quantile(0.99)),
+            p999: us(h.value_at_quantile(0.999)),
+            max: us(h.max()),
+        }
+    }
+}
+
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct LatencyReport {
+    /// Bin read → velocity packet sent, for bins that came.
+    pub recv_to_send_us: Percentiles,
+    /// Front end's end of bin → velocity packet sent (when origin_ns is set).
+    pub origin_to_send_us: Percentiles,
+    /// How long after its deadline a missing bin's slot was answered.
+    pub deadline_overrun_us: Percentiles,
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ModelInfo {
+    pub path: String,
+    pub sha256: String,
+    pub kind: String,
+    pub channels: usize,
+    pub bin_ms: f64,
+    pub outputs: Vec<String>,
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Status {
+    pub daemon_version: String,
+    pub uptime_s: f64,
+    pub state: String,
+    pub armed_at_start: bool,
+    pub listen: String,
+    pub actuator: String,
+    pub model: ModelInfo,
+    pub stream_started: bool,
+    pub next_seq: Option<u64>,
+    pub consecutive_missing: u32,
+    pub counters: EngineCounters,
+    pub rejected: BTreeMap<String, u64>,
+    pub send_errors: u64,
+    pub events_not_logged: u64,
+    /// Point-process decoder: rate exponents clamped at ±30 by the running
+    /// model (0 otherwise); a rising count means the model is far outside
+    /// the data it was trained on.
+    #[serde(default)]
+    pub rate_clamps: u64,
+    pub latency: LatencyReport,
+    pub dead_channels: Vec<usize>,
+    pub saturated_channels: Vec<usize>,
+    pub recording: Option<RecorderSnapshot>,
+    pub rss_bytes: Option<u64>,
+    /// Heap allocations on the decode path since start (should stay at its
+    /// warm-up value); `None` when not counted.
+    pub decode_path_allocations: Option<u64>,
+    pub realtime_warnings: Vec<String>,
+}
+
+pub fn rejected_by_name(c: &EngineCounters) -> BTreeMap<String, u64> {
+    RejectReason::NAMES
+        .iter()
+        .zip(c.rejected_by_reason)
+        .map(|(n, v)| (n.to_string(), v))
+        .collect()
+}
+
+fn list(v: &[usize]) -> String {
+    if v.is_empty() {
+        return "none".into();
+    }
+    let shown: Vec<String> = v.iter().take(16).map(|c| c.to_string()).collect();
+    let more = if v.len() > 16 {
+        format!(" … ({} in all)", v.len())
+    } else {
+        String::new()
+    };
+    shown.join(", ") + &more
+}
+
+fn pct(p: &Percentiles) -> String {
+    if p.count == 0 {
+        return "no samples".into();
+    }
+    format!(
+        "p50 {:.1}  p90 {:.1}  p99 {:.1}  p99.9 {:.1}  max {:.1} µs  (n={})",
+        p.p50, p.p90, p.p99, p.p999, p.max, p.count
+    )
+}
+
+impl Status {
+    /// The readable table of `decoderd ctl status`.
+    pub fn table(&self) -> String {
+        let c = &self.counters;
+        let mut s = String::new();
+        let _ = writeln!(
+            s,
+            "decoderd {}  up {:.1} s",
+            self.daemon_version, self.uptime_s
+        );
+        let _ = writeln!(s, "state              {}", self.state.to_uppercase());
+        let _ = writeln!(
+            s,
+            "model              {} ({}, {} channels, {} ms bins, outputs {})",
+            self.model.path,
+            self.model.kind,
+            self.model.channels,
+            self.model.bin_ms,
+            self.model.outputs.join(",")
+        );
+        let _ = writeln!(s, "model sha256       {}", self.model.sha256);
+        let _ = writeln!(s, "bins in / out      {} -> {}", self.listen, self.actuator);
+        let _ = writeln!(
+            s,
+            "stream             {}",
+            match self.next_seq {
+                Some(n) => format!(
+                    "next seq {n}, {} consecutive missing",
+                    self.consecutive_missing
+                ),
+                None => "no bins yet".into(),
+            }
+        );
+        let _ = writeln!(
+            s,
+            "slots              {} answered: {} decoded, {} missing (coasted)",
+            c.slots_answered, c.bins_decoded, c.bins_missing
+        );
+        let _ = writeln!(
+            s,
+            "dropped bins       {} late, {} duplicate, {} stray, {} flushed; {} new streams",
+            c.bins_late, c.bins_duplicate, c.bins_stray, c.bins_flushed, c.new_streams
+        );
+        let rejects: Vec<String> = self
+            .rejected
+            .iter()
+            .filter(|(_, v)| **v > 0)
+            .map(|(k, v)| format!("{k} {v}"))
+            .collect();
+        let _ = writeln!(
+            s,
+            "rejected           {}{}",
+            c.rejected,
+            if rejects.is_empty() {
+                String::new()
+            } else {
+                format!(" ({})", rejects.join(", "))
+            }
+        );
+        let _ = writeln!(
+            s,
+            "faults             {} numerical, {} send errors, {} model changes",
+            c.numerical_faults, self.send_errors, c.model_changes
+        );
+        let _ = writeln!(
+            s,
+            "recv -> send       {}",
+            pct(&self.latency.recv_to_send_us)
+        );
+        let _ = writeln!(
+            s,
+            "origin -> send     {}",
+            pct(&self.latency.origin_to_send_us)
+        );
+        let _ = writeln!(
+            s,
+            "deadline overrun   {}",
+            pct(&self.latency.deadline_overrun_us)
+        );
+        let _ = writeln!(s, "dead channels      {}", list(&self.dead_channels));
+        let _ = writeln!(s, "saturated channels {}", list(&self.saturated_channels));
+        match &self.recording {
+            Some(r) => {
+                let _ = writeln!(
+                    s,
+                    "recording          {}: {} accepted, {} written, {} lost, {:.1} MB",
+                    r.path.as_deref().unwrap_or("-"),
+                    r.records_accepted,
+                    r.records_written,
+                    r.records_lost,
+                    r.bytes_written as f64 / 1e6
+                );
+                if let Some(a) = &r.alarm {
+                    let _ = writeln!(s, "RECORDING ALARM    {a}");
+                }
+            }
+            None => {
+                let _ = writeln!(s, "recording          off");
+            }
+        }
+        if let Some(rss) = self.rss_bytes {
+            let _ = writeln!(s, "memory (RSS)       {:.1} MB", rss as f64 / 1e6);
+        }
+        if let Some(n) = self.decode_path_allocations {
+            let _ = writeln!(s, "decode-path allocs {n} since start");
+        }
+        for w in &self.realtime_warnings {
+            let _ = writeln!(s, "warning            {w}");
+        }
+        s
+    }
+
+    /// The periodic summary line.
+    pub fn summary_line(&self) -> String {
+        let c = &self.counters;
+        let l = &self.latency.recv_to_send_us;
+        format!(
+            "state={} slots={} decoded={} missing={} late={} dup={} stray={} rejected={} recv_to_send_p50_us={:.1} p99_us={:.1} max_us={:.1} rec_lost={}",
+            self.state,
+            c.slots_answered,
+            c.bins_decoded,
+            c.bins_missing,
+            c.bins_late,
+            c.bins_duplicate,
+            c.bins_stray,
+            c.rejected,
+            l.p50,
+            l.p99,
+            l.max,
+            self.recording.as_ref().map_or(0, |r| r.records_lost)
+        )
+    }
+}

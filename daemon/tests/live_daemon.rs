@@ -1,0 +1,411 @@
+//! The real daemon on ephemeral loopback ports, spoken to in the SPEC's
+//! bytes: normal stream, gaps, malformed datagrams, duplicates and
+//! reordering, a flood, hot-swap under load, operator commands, SIGTERM,
+//! and the offline replay of what it recorded.
+
+mod support;
+
+use std::time::{Duration, Instant};
+
+use daemon::control::Request;
+use decoder_core::engine::log_replay::replay_log;
+use decoder_core::formats::packet::{FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, VelocityPacket};
+use decoder_core::formats::session_log::{LogEnd, LogReader, LogRecord};
+use support::{BIN, Daemon, TEST_TIMING, fixture, seqs};
+
+fn missing(p: &VelocityPacket) -> bool {
+    p.flags & FLAG_BIN_MISSING != 0
+}
+
+#[test]
+fn normal_stream_is_decoded_bin_by_bin() {
+    let d = Daemon::start(true, TEST_TIMING);
+    d.stream(0..10, 0);
+    d.wait_for_seq(9);
+    let warm = d
+        .status()
+        .decode_path_allocations
+        .expect("decoderd counts allocations");
+    d.stream(10..50, 10);
+    let p = d.wait_for_seq(49);
+    let p: Vec<_> = p.into_iter().take(50).collect();
+    assert_eq!(seqs(&p), (0..50).collect::<Vec<_>>());
+    assert!(p.iter().all(|p| !missing(p) && p.state == 1), "{p:?}");
+    assert!(p.iter().all(|p| p.recv_ns > 0 && p.sent_ns >= p.recv_ns));
+    let s = d.status();
+    assert_eq!(s.counters.bins_decoded, 50);
+    assert_eq!(s.latency.recv_to_send_us.count, 50);
+    assert!(s.latency.origin_to_send_us.count > 0);
+    // No heap allocation on the decode path after warm-up.
+    assert_eq!(
+        s.decode_path_allocations,
+        Some(warm),
+        "allocations during 40 bins"
+    );
+}
+
+#[test]
+fn gap_of_three_coasts_exactly_those_seqs() {
+    let d = Daemon::start(true, TEST_TIMING);
+    d.stream((0..20).chain(23..40), 0);
+    let p = d.wait_for_seq(39);
+    let p: Vec<_> = p.into_iter().take(40).collect();
+    assert_eq!(seqs(&p), (0..40).collect::<Vec<_>>());
+    for pk in &p {
+        let gap = (20..23).contains(&pk.seq);
+        assert_eq!(missing(pk), gap, "seq {}", pk.seq);
+        assert_eq!(pk.state, if gap { 2 } else { 1 }, "seq {}", pk.seq);
+    }
+}
+
+#[test]
+fn gap_of_thirty_halts_and_commands_zero_after() {
+    let d = Daemon::start(true, TEST_TIMING);
+    d.stream((0..20).chain(50..70), 0);
+    let p = d.wait_for_seq(69);
+    let p: Vec<_> = p.into_iter().take(70).collect();
+    assert_eq!(seqs(&p), (0..70).collect::<Vec<_>>());
+    for pk in &p[20..] {
+        let want = if pk.seq < 25 { 2 } else { 3 };
+        assert_eq!(pk.state, want, "seq {}", pk.seq);
+    }
+    // The controlled stop ends inside the gap; after it, zero.
+    for pk in &p[50..] {
+        assert!(
+            pk.command.iter().all(|&c| c == 0.0),
+            "seq {}: {:?}",
+            pk.seq,
+            pk.command
+        );
+        assert!(!missing(pk));
+    }
+    assert_eq!(d.status().state, "halted");
+}
+
+#[test]
+fn malformed_datagrams_are_rejected_counted_and_the_loop_lives() {
+    let d = Daemon::start(true, TEST_TIMING);
+    let good = d.bin_bytes(0);
+    let mut kinds: Vec<Vec<u8>> = Vec::new();
+    kinds.push(Vec::new()); // empty
+    kinds.push(good[..20].to_vec()); // shorter than the header
+    let mut m = good.clone();
+    m[0..4].copy_from_slice(b"XBIN");
+    kinds.push(m); // bad magic
+    let mut m = good.clone();
+    m[4] = 9;
+    kinds.push(m); // bad version
+    let mut m = good.clone();
+    m[6..8].copy_from_slice(&0u16.to_le_bytes());
+    kinds.push(m); // zero channels
+    kinds.push(good[..good.len() - 2].to_vec()); // length mismatch
+    let mut m = good[..good.len() - 2].to_vec();
+    m[6..8].copy_from_slice(&15u16.to_le_bytes());
+    kinds.push(m); // wrong channel count for the model
+    let mut m = good.clone();
+    m[24..28].copy_from_slice(&10_000u32.to_le_bytes());
+    kinds.push(m); // wrong bin width
+    let t0 = Instant::now();
+    for seq in 0..30u64 {
+        if let Some(wait) = (t0 + BIN * seq as u32).checked_duration_since(Instant::now()) {
+            std::thread::sleep(wait);
+        }
+        d.send_bin(seq);
+        d.send_raw(&kinds[seq as usize % kinds.len()]);
+    }
+    let p = d.wait_for_seq(29);
+    assert_eq!(seqs(&p[..30]), (0..30).collect::<Vec<_>>());
+    assert!(p[..30].iter().all(|p| !missing(p)));
+    let s = d.status();
+    assert_eq!(s.counters.rejected, 30);
+    for (name, want) in [
+        ("too_short", 8),
+        ("bad_magic", 4),
+        ("bad_version", 4),
+        ("channels_out_of_range", 4),
+        ("length_mismatch", 4),
+        ("channel_mismatch", 3),
+        ("bin_width_mismatch", 3),
+    ] {
+        assert_eq!(s.rejected[name], want, "{name}: {:?}", s.rejected);
+    }
+}
+
+#[test]
+fn duplicates_are_dropped_and_reordered_bins_decoded_in_order() {
+    let d = Daemon::start(true, TEST_TIMING);
+    d.stream(0..10, 0);
+    std::thread::sleep(BIN / 2);
+    d.send_bin(11);
+    d.send_bin(10);
+    d.send_bin(11);
+    d.send_bin(9);
+    std::thread::sleep(BIN);
+    d.stream(12..20, 12);
+    let p = d.wait_for_seq(19);
+    assert_eq!(seqs(&p[..20]), (0..20).collect::<Vec<_>>());
+    assert!(p[..20].iter().all(|p| !missing(p)), "{p:?}");
+    let s = d.status();
+    assert_eq!(s.counters.bins_duplicate, 2);
+    assert_eq!(s.counters.bins_decoded, 20);
+}
+
+fn cpu_ticks(pid: u32) -> u64 {
+    let stat = std::fs::read_to_string(format!("/proc/{pid}/stat")).unwrap();
+    let after = &stat[stat.rfind(')').unwrap() + 2..];
+    let f: Vec<&str> = after.split_whitespace().collect();
+    // utime and stime are fields 14 and 15 of stat, 12 and 13 after the name.
+    f[11].parse::<u64>().unwrap() + f[12].parse::<u64>().unwrap()
+}
+
+#[test]
+fn flood_at_100x_the_bin_rate_leaves_every_slot_answered() {
+    let d = Daemon::start(true, TEST_TIMING);
+    let junk = {
+        let mut m = d.bin_bytes(0);
+        m[0] = b'J';
+        m
+    };
+    let flooder = d.sender.try_clone().unwrap();
+    let target = d.listen;
+    let stop = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+    let ticks_before = cpu_ticks(d.child.id());
+    let wall = Instant::now();
+    let flood = {
+        let stop = stop.clone();
+        let dup = d.bin_bytes(0);
+        std::thread::spawn(move || {
+            // 100 datagrams per 20 ms bin: junk and stale duplicates.
+            let mut sent = 0u64;
+            let t0 = Instant::now();
+            while !stop.load(std::sync::atomic::Ordering::Relaxed) {
+                let due = t0 + Duration::from_micros(200) * sent as u32;
+                if let Some(w) = due.checked_duration_since(Instant::now()) {
+                    std::thread::sleep(w);
+                }
+                let bytes = if sent % 2 == 0 { &junk } else { &dup };
+                let _ = flooder.send_to(bytes, target);
+                sent += 1;
+            }
+            sent
+        })
+    };
+    d.stream(0..100, 0);
+    stop.store(true, std::sync::atomic::Ordering::Relaxed);
+    let flooded = flood.join().unwrap();
+    let p = d.wait_for_seq(99);
+    let used = cpu_ticks(d.child.id()) - ticks_before;
+    let elapsed = wall.elapsed().as_secs_f64();
+    // SAFETY: sysconf with a valid name.
+    let hz = unsafe { libc::sysconf(libc::_SC_CLK_TCK) } as f64;
+    let cpu_fraction = used as f64 / hz / elapsed;
+    eprintln!("decoderd used {cpu_fraction:.3} of a core during the flood");
+    let first: Vec<_> = p.iter().take(100).collect();
+    let got: Vec<u64> = first.iter().map(|p| p.seq).collect();
+    assert_eq!(
+        got,
+        (0..100).collect::<Vec<_>>(),
+        "each slot answered once, in order"
+    );
+    let s = d.status();
+    assert!(flooded > 5000, "flood sent {flooded}");
+    let c = &s.counters;
+    assert_eq!(
+        c.datagrams,
+        c.bins_decoded
+            + c.rejected
+            + c.bins_duplicate
+            + c.bins_late
+            + c.bins_stray
+            + c.bins_flushed,
+        "every datagram accounted for: {c:?}"
+    );
+    // The copies are of seq 0: duplicates while it is within the window,
+    // late (from this stream's past) after; never a new stream.
+    assert!(
+        c.rejected > 1000 && c.bins_duplicate + c.bins_late > 1000,
+        "{c:?}"
+    );
+    assert_eq!(c.new_streams, 0);
+    // Bounded: the loop sleeps between datagrams rather than spinning a
+    // core (this is a debug build; a release daemon uses far less).
+    assert!(
+        cpu_fraction < 0.9,
+        "decoderd used {cpu_fraction:.2} of a core under the flood"
+    );
+}
+
+#[test]
+fn hot_swap_under_load_misses_no_slot_and_flags_one_bin() {
+    let f = fixture();
+    let d = Daemon::start(true, TEST_TIMING);
+    std::thread::scope(|scope| {
+        scope.spawn(|| d.stream(0..100, 0));
+        d.wait_for_seq(40);
+        let r = d.ctl(Request::Load {
+            path: f.other_model.clone(),
+        });
+        assert!(r.ok, "{}", r.message);
+        let r = d.ctl(Request::Load {
+            path: f.wrong_model.clone(),
+        });
+        assert!(!r.ok);
+        assert!(r.message.contains("12 channels"), "{}", r.message);
+    });
+    let p = d.wait_for_seq(99);
+    assert_eq!(seqs(&p[..100]), (0..100).collect::<Vec<_>>());
+    assert!(p[..100].iter().all(|p| !missing(p)));
+    let flagged: Vec<u64> = p
+        .iter()
+        .filter(|p| p.flags & FLAG_MODEL_CHANGED != 0)
+        .map(|p| p.seq)
+        .collect();
+    assert_eq!(flagged.len(), 1, "{flagged:?}");
+    let s = d.status();
+    assert_eq!(s.counters.model_changes, 1);
+    assert!(s.model.path.ends_with("b.model"));
+}
+
+#[test]
+fn operator_commands_drive_the_supervisor() {
+    let d = Daemon::start(false, TEST_TIMING);
+    let r = d.ctl(Request::Arm);
+    assert!(!r.ok && r.message.contains("no bins"), "{}", r.message);
+    std::thread::scope(|scope| {
+        scope.spawn(|| d.stream(0..60, 0));
+        d.wait_for_seq(10);
+        let r = d.ctl(Request::Arm);
+        assert!(r.ok, "{}", r.message);
+        d.wait_for_seq(30);
+        let r = d.ctl(Request::Halt);
+        assert!(r.ok, "{}", r.message);
+    });
+    let p = d.wait_for_seq(59);
+    assert_eq!(p[0].state, 0);
+    assert!(p[..5].iter().all(|p| p.command.iter().all(|&c| c == 0.0)));
+    assert!(p.iter().any(|p| p.state == 1));
+    assert_eq!(p[59].state, 3);
+    let s = d.status();
+    assert_eq!(s.counters.transitions, 2);
+}
+
+#[test]
+fn sigterm_stops_cleanly_and_the_log_replays_bit_for_bit() {
+    let mut d = Daemon::start(true, TEST_TIMING);
+    d.stream((0..30).chain(33..60), 0);
+    d.wait_for_seq(59);
+    std::thread::sleep(BIN * 8); // heartbeat slots after the sender stops
+    let (exit, log, received) = d.stop();
+    assert!(exit.success(), "exit {exit:?}: {}", d.log_text());
+
+    let mut reader = LogReader::open(&log).unwrap();
+    let mut sent = Vec::new();
+    let mut end_json = String::new();
+    while let Some(r) = reader.next_record() {
+        match r {
+            LogRecord::Sent { packet, .. } => sent.push(packet),
+            LogRecord::End { json, .. } => end_json = json,
+            _ => {}
+        }
+    }
+    assert_eq!(reader.end(), Some(&LogEnd::Clean));
+    // Every packet the actuator got is in the log, byte for byte.
+    assert_eq!(sent.len(), received.len());
+    for (bytes, got) in sent.iter().zip(&received) {
+        assert_eq!(&VelocityPacket::parse(bytes).unwrap(), got);
+    }
+    let end: serde_json::Value = serde_json::from_str(&end_json).unwrap();
+    let rec = &end["recording"];
+    assert_eq!(rec["records_lost"], 0);
+
+    // The offline replay of the log reproduces every packet bit for bit.
+    let mut reader = LogReader::open(&log).unwrap();
+    let mut n = 0;
+    let summary = replay_log(&mut reader, None, |slot| {
+        assert_eq!(Some(slot.replayed), slot.recorded, "slot {n}");
+        n += 1;
+    })
+    .unwrap();
+    assert_eq!(summary.slots as usize, received.len());
+    assert!(received.iter().filter(|p| missing(p)).count() >= 3 + 4);
+}
+
+#[test]
+fn a_torn_tail_is_detected_and_the_log_reads_up_to_it() {
+    let mut d = Daemon::start(true, TEST_TIMING);
+    d.stream(0..20, 0);
+    d.wait_for_seq(19);
+    let (_, log, _) = d.stop();
+    let bytes = std::fs::read(&log).unwrap();
+    let torn = d.path().join("torn.vdlog");
+    std::fs::write(&torn, &bytes[..bytes.len() - 5]).unwrap();
+    let mut reader = LogReader::open(&torn).unwrap();
+    let mut datagrams = 0;
+    while let Some(r) = reader.next_record() {
+        if matches!(r, LogRecord::Datagram { .. }) {
+            datagrams += 1;
+        }
+    }
+    assert!(
+        matches!(reader.end(), Some(LogEnd::TornTail { .. })),
+        "{:?}",
+        reader.end()
+    );
+    assert_eq!(datagrams, 20);
+}
+
+#[test]
+fn the_control_socket_is_private_to_its_user() {
+    use std::os::unix::fs::PermissionsExt;
+    let d = Daemon::start(false, TEST_TIMING);
+    let mode = std::fs::metadata(&d.socket).unwrap().permissions().mode();
+    assert_eq!(mode & 0o777, 0o600, "mode {mode:o}");
+}
+
+/// The integrator's example front end (standard-library Python) streams a
+/// session directory that `replay-tool simulate` format describes, and the
+/// daemon decodes every bin of it.
+#[test]
+fn the_python_example_sender_drives_the_daemon() {
+    let f = fixture();
+    let python = std::env::var("PYTHON").unwrap_or_else(|_| "python3".into());
+    if std::process::Command::new(&python)
+        .arg("--version")
+        .output()
+        .is_err()
+    {
+        panic!("{python} not found; the example sender needs Python 3.11+ (set PYTHON)");
+    }
+    let d = Daemon::start(true, TEST_TIMING);
+    let (session, _) =
+        decoder_core::sim::reaching::simulate(&decoder_core::sim::reaching::SimOptions {
+            minutes: 0.05,
+            n_channels: f.n_channels,
+            seed: 9,
+            ..Default::default()
+        })
+        .unwrap();
+    let block = d.path().join("block");
+    session.write(&block).unwrap();
+    let script = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).join("../examples/send_bins.py");
+    let out = std::process::Command::new(&python)
+        .arg(&script)
+        .arg(&block)
+        .arg("--target")
+        .arg(d.listen.to_string())
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let n = session.n_bins as u64;
+    let p = d.wait_for_seq(n - 1);
+    assert_eq!(seqs(&p[..n as usize]), (0..n).collect::<Vec<_>>());
+    assert!(p[..n as usize].iter().all(|p| !missing(p)));
+    let s = d.status();
+    assert_eq!(s.counters.bins_decoded, n);
+    assert_eq!(s.counters.rejected, 0);
+    assert!(s.latency.origin_to_send_us.count >= n);
+}

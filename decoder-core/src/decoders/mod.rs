@@ -1,0 +1,51 @@
+//! The decoders as they run per bin: each kind's trained parameters (the
+//! model, as stored in a model file) and its filter (the runtime built once
+//! from the model, allocation-free per bin). Nothing here fits a model or
+//! reads a file: fitting is in [`crate::fit`], storage in [`crate::formats`].
+
+pub mod history_basis;
+pub mod kalman;
+pub mod point_process;
+pub mod wiener;
+
+use serde::{Deserialize, Serialize};
+
+use kalman::KalmanModel;
+use point_process::PointProcessModel;
+use wiener::WienerModel;
+
+// One value per loaded model, never per bin: boxing would buy nothing.
+#[allow(clippy::large_enum_variant)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub enum DecoderModel {
+    Kalman(KalmanModel),
+    Wiener(WienerModel),
+    /// Appended last so earlier model files keep their variant index.
+    PointProcess(PointProcessModel),
+}
+
+impl DecoderModel {
+    pub fn kind(&self) -> &'static str {
+        match self {
+            DecoderModel::Kalman(_) => "kalman",
+            DecoderModel::Wiener(_) => "wiener",
+            DecoderModel::PointProcess(_) => "point-process",
+        }
+    }
+
+    pub fn outputs(&self) -> &[String] {
+        match self {
+            DecoderModel::Kalman(m) => &m.outputs,
+            DecoderModel::Wiener(m) => &m.outputs,
+            DecoderModel::PointProcess(m) => &m.outputs,
+        }
+    }
+
+    pub fn n_channels(&self) -> usize {
+        match self {
+            DecoderModel::Kalman(m) => m.n_channels(),
+            DecoderModel::Wiener(m) => m.n_channels,
+            DecoderModel::PointProcess(m) => m.n_channels(),
+        }
+    }
+}

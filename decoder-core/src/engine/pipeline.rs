@@ -1,0 +1,260 @@
+//! The one decode pipeline: what happens to one bin's counts, identically in
+//! the daemon and in offline replay.
+//!
+//! A [`DecodePipeline`] is built once from a model file (all allocation
+//! happens there) and then fed bins in order, `step` for a bin whose counts
+//! arrived and `predict_only` for a bin that never came. It keeps no clock
+//! and does no I/O, so the same bins give the same estimates bit for bit
+//! wherever it runs.
+
+use crate::decoders::DecoderModel;
+use crate::decoders::kalman::{KalmanError, KalmanFilter};
+use crate::decoders::point_process::PointProcessFilter;
+use crate::decoders::wiener::WienerFilter;
+use crate::formats::model_file::ModelFile;
+
+// One value per loaded model, never per bin: boxing would buy nothing.
+#[allow(clippy::large_enum_variant)]
+#[derive(Clone, Debug)]
+enum Engine {
+    Kalman {
+        filter: KalmanFilter,
+        outputs: Vec<usize>,
+    },
+    Wiener(WienerFilter),
+    PointProcess {
+        filter: PointProcessFilter,
+        outputs: Vec<usize>,
+    },
+}
+
+/// The outcome of one bin.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct BinEstimate<'a> {
+    pub seq: u64,
+    /// Decoded velocity, one value per output.
+    pub estimate: &'a [f64],
+    /// No counts for this bin: the estimate is the model's prediction alone.
+    pub predicted_only: bool,
+    /// The filter could not update (singular covariance) or produced a value
+    /// that is not finite; a supervisor must treat the estimate as unusable.
+    pub numerical_fault: bool,
+}
+
+#[derive(Clone, Debug)]
+pub struct DecodePipeline {
+    engine: Engine,
+    n_channels: usize,
+    bin_ms: f64,
+    estimate: Vec<f64>,
+    last_seq: Option<u64>,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum PipelineError {
+    #[error(transparent)]
+    Kalman(#[from] KalmanError),
+    #[error("wiener model: {0}")]
+    Wiener(String),
+    #[error("point-process model: {0}")]
+    PointProcess(String),
+}
+
+impl DecodePipeline {
+    /// A pipeline for `model`; `use_steady_state` picks the steady-state gain
+    /// when the model has one (the default for models trained with it).
+    pub fn new(model: &ModelFile) -> Result<DecodePipeline, PipelineError> {
+        Self::with_options(model, true)
+    }
+
+    pub fn with_options(
+        model: &ModelFile,
+        use_steady_state: bool,
+    ) -> Result<DecodePipeline, PipelineError> {
+        Self::from_decoder(&model.decoder, model.bin_ms, use_steady_state)
+    }
+
+    pub fn from_decoder(
+        decoder: &DecoderModel,
+        bin_ms: f64,
+        use_steady_state: bool,
+    ) -> Result<DecodePipeline, PipelineError> {
+        let (engine, d) = match decoder {
+            DecoderModel::Kalman(k) => {
+                let filter = KalmanFilter::new(k, use_steady_state)?;
+                let outputs = k.output_indices()?;
+                let d = outputs.len();
+                (Engine::Kalman { filter, outputs }, d)
+            }
+            DecoderModel::Wiener(w) => (
+                Engine::Wiener(WienerFilter::new(w).map_err(PipelineError::Wiener)?),
+                w.outputs.len(),
+            ),
+            DecoderModel::PointProcess(m) => {
+                let filter = PointProcessFilter::new(m).map_err(PipelineError::PointProcess)?;
+                let outputs = m.output_indices().map_err(PipelineError::PointProcess)?;
+                let d = outputs.len();
+                (Engine::PointProcess { filter, outputs }, d)
+            }
+        };
+        let mut p = DecodePipeline {
+            engine,
+            n_channels: decoder.n_channels(),
+            bin_ms,
+            estimate: vec![0.0; d],
+            last_seq: None,
+        };
+        p.reset();
+        Ok(p)
+    }
+
+    pub fn n_channels(&self) -> usize {
+        self.n_channels
+    }
+
+    pub fn bin_ms(&self) -> f64 {
+        self.bin_ms
+    }
+
+    pub fn n_outputs(&self) -> usize {
+        self.estimate.len()
+    }
+
+    /// Times the point-process filter clamped a rate's exponent since this
+    /// pipeline was built (0 for the other decoders).
+    pub fn rate_clamps(&self) -> u64 {
+        match &self.engine {
+            Engine::PointProcess { filter, .. } => filter.clamps(),
+            _ => 0,
+        }
+    }
+
+    /// The seq of the last bin fed in, if any since the last reset.
+    pub fn last_seq(&self) -> Option<u64> {
+        self.last_seq
+    }
+
+    /// Back to the model's initial state (a new stream or block).
+    pub fn reset(&mut self) {
+        match &mut self.engine {
+            Engine::Kalman { filter, .. } => filter.reset(),
+            Engine::Wiener(w) => w.reset(),
+            Engine::PointProcess { filter, .. } => filter.reset(),
+        }
+        self.last_seq = None;
+        self.copy_estimate();
+    }
+
+    /// Decodes one bin. `counts` must have the model's channel count (the
+    /// daemon and the session reader check this before a bin gets here).
+    pub fn step(&mut self, seq: u64, counts: &[u16]) -> BinEstimate<'_> {
+        assert_eq!(
+            counts.len(),
+            self.n_channels,
+            "bin has the wrong channel count"
+        );
+        let updated = match &mut self.engine {
+            Engine::Kalman { filter, .. } => filter.step(counts),
+            Engine::Wiener(w) => {
+                w.step(counts);
+                true
+            }
+            Engine::PointProcess { filter, .. } => filter.step(counts),
+        };
+        self.finish(seq, false, !updated)
+    }
+
+    /// A bin that never came: advance the model without counts.
+    pub fn predict_only(&mut self, seq: u64) -> BinEstimate<'_> {
+        match &mut self.engine {
+            Engine::Kalman { filter, .. } => filter.predict_only(),
+            Engine::Wiener(w) => w.predict_only(),
+            Engine::PointProcess { filter, .. } => filter.predict_only(),
+        }
+        self.finish(seq, true, false)
+    }
+
+    fn finish(&mut self, seq: u64, predicted_only: bool, fault: bool) -> BinEstimate<'_> {
+        self.last_seq = Some(seq);
+        let finite = self.copy_estimate();
+        BinEstimate {
+            seq,
+            estimate: &self.estimate,
+            predicted_only,
+            numerical_fault: fault || !finite,
+        }
+    }
+
+    /// Copies the engine's outputs into `estimate`; false if any is not finite.
+    fn copy_estimate(&mut self) -> bool {
+        match &self.engine {
+            Engine::Kalman { filter, outputs } => {
+                let x = filter.state();
+                for (e, &i) in self.estimate.iter_mut().zip(outputs) {
+                    *e = x[i];
+                }
+            }
+            Engine::Wiener(w) => self.estimate.copy_from_slice(w.estimate()),
+            Engine::PointProcess { filter, outputs } => {
+                let x = filter.state();
+                for (e, &i) in self.estimate.iter_mut().zip(outputs) {
+                    *e = x[i];
+                }
+            }
+        }
+        self.estimate.iter().all(|v| v.is_finite())
+    }
+}
+
+/// Why a block cannot be decoded with a model.
+#[derive(Debug, thiserror::Error)]
+pub enum MismatchError {
+    #[error(
+        "counts.npy has {block} columns but the model expects {model} channels; use the model trained for this array"
+    )]
+    Channels { block: usize, model: usize },
+    #[error(
+        "the block has {block} ms bins but the model was trained on {model} ms bins; rebin the block or retrain"
+    )]
+    BinWidth { block: f64, model: f64 },
+}
+
+/// Checks that a block's channel count and bin width match a model's.
+pub fn check_block(
+    pipeline: &DecodePipeline,
+    session: &crate::formats::block::Block,
+) -> Result<(), MismatchError> {
+    if session.n_channels != pipeline.n_channels() {
+        return Err(MismatchError::Channels {
+            block: session.n_channels,
+            model: pipeline.n_channels(),
+        });
+    }
+    if (session.bin_ms - pipeline.bin_ms()).abs() > 1e-9 * pipeline.bin_ms() {
+        return Err(MismatchError::BinWidth {
+            block: session.bin_ms,
+            model: pipeline.bin_ms(),
+        });
+    }
+    Ok(())
+}
+
+/// Decodes every bin of a block from the model's initial state, returning
+/// the estimates as `n_bins × n_outputs`, bin after bin, and how many bins
+/// had a numerical fault.
+pub fn replay_block(
+    pipeline: &mut DecodePipeline,
+    session: &crate::formats::block::Block,
+) -> Result<(Vec<f64>, usize), MismatchError> {
+    check_block(pipeline, session)?;
+    pipeline.reset();
+    let d = pipeline.n_outputs();
+    let mut out = Vec::with_capacity(session.n_bins * d);
+    let mut faults = 0;
+    for bin in 0..session.n_bins {
+        let est = pipeline.step(bin as u64, session.bin_counts(bin));
+        faults += usize::from(est.numerical_fault);
+        out.extend_from_slice(est.estimate);
+    }
+    Ok((out, faults))
+}

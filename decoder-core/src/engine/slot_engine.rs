@@ -1,0 +1,677 @@
+//! The bin-slot engine: the daemon's whole per-bin logic with time as data.
+//!
+//! The daemon reads a datagram, notes the monotonic time, and hands both to
+//! a [`SlotEngine`]; when nothing arrives it hands over the time alone. The
+//! engine parses the bin (SPEC §1), keeps the bin clock, decides for every
+//! slot whether it is decoded from counts or answered with a predict-only
+//! step, runs the supervisor and encodes the velocity packet (SPEC §2). It
+//! reads no clock and touches no socket, so feeding it the recorded
+//! datagrams and times of a session gives back the recorded packets bit for
+//! bit — this is what offline replay of a session log does.
+//!
+//! The bin clock: the first accepted bin fixes `t0` (its arrival time) and
+//! `seq0`; bin k is due at `t0 + (k − seq0)·bin + slack`. With
+//! `clock_tracking` > 0 each bin that arrives on time nudges `t0` by that
+//! fraction of its offset (limited to ± slack), so a front end whose clock
+//! runs a few ppm from ours does not drift into the late zone over an hour.
+//! Bins ahead of the expected one (within the reorder window) wait for their
+//! slot; a bin for a slot already answered is late (it was coasted) or a
+//! duplicate (it was decoded). A seq outside the window either way is
+//! dropped — late if it is from this stream's past, a stray otherwise —
+//! unless it follows the previous such bin in seq *and* came at least half
+//! a bin after it: then the sender has restarted at its own pace, and a new
+//! stream begins with that bin (decoder reset, supervisor halted). A single
+//! stale or foreign packet never resets the decoder, and neither does the
+//! burst of queued bins the socket delivers after the daemon was stalled
+//! for longer than the window.
+//!
+//! Ordering rule, the same live and offline: before a datagram received at
+//! `recv_ns` is looked at, every slot whose deadline is earlier than
+//! `recv_ns` is answered; a timeout at `now` answers every slot due at or
+//! before `now`.
+
+use serde::{Deserialize, Serialize};
+
+use crate::engine::pipeline::DecodePipeline;
+use crate::engine::supervisor::{
+    ArmRefused, SafetyLimits, Supervisor, SupervisorState, Transition, TransitionReason,
+};
+use crate::formats::packet::{
+    self, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, N_REJECT_REASONS, RejectReason, VelocityFields,
+};
+
+/// Everything that shapes the engine's decisions; recorded in the session
+/// log header so a replay decides the same way.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct EngineSettings {
+    /// Bin width in ns (from the model).
+    pub bin_ns: u64,
+    /// How long after a bin's nominal time its slot waits before coasting.
+    pub deadline_slack_ns: u64,
+    /// Bins ahead of (or behind) the expected seq that are still this
+    /// stream; beyond it a seq starts a new stream.
+    pub reorder_window: u32,
+    /// Fraction (0..=0.5) of an on-time bin's arrival offset folded into t0.
+    pub clock_tracking: f64,
+    pub limits: SafetyLimits,
+    /// Start armed (`--arm`, bench use).
+    pub armed_at_start: bool,
+    /// A channel with no counts for this many bins is reported dead.
+    pub dead_channel_bins: u64,
+    /// A count at or above this in one bin marks the channel saturated.
+    pub saturation_count: u16,
+}
+
+/// Per-slot facts for the daemon's monitoring and recording.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct SlotAnswer {
+    pub seq: u64,
+    /// When the bin's datagram was read, 0 for a missing bin.
+    pub recv_ns: u64,
+    pub origin_ns: u64,
+    /// The time the decision was made on: the datagram's `recv_ns`, or the
+    /// timeout's `now` for a slot answered at its deadline.
+    pub decided_ns: u64,
+    /// When this slot fell due (nominal time plus slack).
+    pub deadline_ns: u64,
+    pub state: SupervisorState,
+    pub flags: u32,
+}
+
+/// Things worth a log line and a record, none of them per-bin routine.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+#[serde(tag = "event", rename_all = "snake_case")]
+pub enum EngineEvent {
+    StreamStarted {
+        seq: u64,
+        t0_ns: u64,
+    },
+    NewStream {
+        expected_seq: u64,
+        seq: u64,
+    },
+    Transition(Transition),
+    #[serde(serialize_with = "reject_as_text")]
+    Rejected(RejectReason),
+    Late {
+        seq: u64,
+    },
+    Duplicate {
+        seq: u64,
+    },
+    Stray {
+        seq: u64,
+    },
+    ModelChanged {
+        seq: u64,
+    },
+}
+
+fn reject_as_text<S: serde::Serializer>(r: &RejectReason, s: S) -> Result<S::Ok, S::Error> {
+    use serde::ser::SerializeMap;
+    let mut m = s.serialize_map(Some(2))?;
+    m.serialize_entry("reason", r.name())?;
+    m.serialize_entry("detail", &r.to_string())?;
+    m.end()
+}
+
+/// Where the engine's output goes: the daemon sends and records, a replay
+/// compares or collects.
+pub trait SlotSink {
+    /// The velocity packet for one slot, with `sent_ns` still 0 (the sender
+    /// patches it just before sending).
+    fn answer(&mut self, packet: &mut [u8], slot: &SlotAnswer);
+    fn event(&mut self, event: &EngineEvent);
+}
+
+/// Counters of the stream, all since start.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct EngineCounters {
+    pub datagrams: u64,
+    pub bins_decoded: u64,
+    pub slots_answered: u64,
+    /// Slots answered with a predict-only step because the bin did not come.
+    pub bins_missing: u64,
+    pub bins_late: u64,
+    pub bins_duplicate: u64,
+    /// Bins outside the reorder window not (yet) confirmed as a new stream.
+    pub bins_stray: u64,
+    /// Bins waiting for their slot when a new stream began, discarded.
+    pub bins_flushed: u64,
+    pub rejected: u64,
+    pub rejected_by_reason: [u64; N_REJECT_REASONS],
+    pub new_streams: u64,
+    pub numerical_faults: u64,
+    pub model_changes: u64,
+    pub transitions: u64,
+}
+
+/// An operator's request, as the control socket delivers it.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "lowercase")]
+pub enum OperatorCommand {
+    Arm,
+    Disarm,
+    Halt,
+}
+
+/// Why a model could not be swapped in.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum SwapRefused {
+    #[error(
+        "the new model expects {new} channels but the running stream has {running}; load a model trained for this array"
+    )]
+    Channels { new: usize, running: usize },
+    #[error(
+        "the new model has {new} µs bins but the running stream has {running} µs bins; retrain at the stream's bin width"
+    )]
+    BinWidth { new: u32, running: u32 },
+    #[error(
+        "the new model outputs {new} velocities but the running one outputs {running}; the actuator expects a fixed layout"
+    )]
+    Outputs { new: usize, running: usize },
+}
+
+#[derive(Clone, Copy, Debug)]
+struct BinClock {
+    t0_ns: i64,
+    seq0: u64,
+    next_seq: u64,
+}
+
+#[derive(Clone, Debug)]
+struct PendingBin {
+    seq: u64,
+    occupied: bool,
+    recv_ns: u64,
+    origin_ns: u64,
+    counts: Vec<u16>,
+}
+
+#[derive(Clone, Copy, Debug)]
+struct AnsweredSlot {
+    seq: u64,
+    decoded: bool,
+}
+
+/// Which counts answer a slot.
+#[derive(Clone, Copy)]
+enum SlotSource {
+    Arrived { recv_ns: u64, origin_ns: u64 },
+    Pending(usize),
+    Missing,
+}
+
+pub struct SlotEngine {
+    settings: EngineSettings,
+    pipeline: DecodePipeline,
+    supervisor: Supervisor,
+    bin_us: u32,
+    clock: Option<BinClock>,
+    pending: Vec<PendingBin>,
+    answered: Vec<AnsweredSlot>,
+    counts: Vec<u16>,
+    packet: Vec<u8>,
+    model_changed: bool,
+    /// The last out-of-window seq and when it came, awaiting confirmation
+    /// as a new stream.
+    stray: Option<(u64, u64)>,
+    counters: EngineCounters,
+    last_nonzero: Vec<u64>,
+    last_saturated: Vec<u64>,
+}
+
+impl SlotEngine {
+    pub fn new(settings: EngineSettings, pipeline: DecodePipeline) -> SlotEngine {
+        let n = pipeline.n_channels();
+        let d = pipeline.n_outputs();
+        let w = settings.reorder_window.max(1) as usize;
+        let supervisor = Supervisor::new(settings.limits.clone(), d, settings.armed_at_start);
+        SlotEngine {
+            bin_us: packet::bin_us_of(pipeline.bin_ms()),
+            pending: (0..w)
+                .map(|_| PendingBin {
+                    seq: 0,
+                    occupied: false,
+                    recv_ns: 0,
+                    origin_ns: 0,
+                    counts: vec![0; n],
+                })
+                .collect(),
+            answered: vec![
+                AnsweredSlot {
+                    seq: u64::MAX,
+                    decoded: false,
+                };
+                w
+            ],
+            counts: vec![0; n],
+            packet: vec![0; packet::velocity_len(d)],
+            model_changed: false,
+            stray: None,
+            counters: EngineCounters::default(),
+            last_nonzero: vec![0; n],
+            last_saturated: vec![u64::MAX; n],
+            clock: None,
+            settings,
+            pipeline,
+            supervisor,
+        }
+    }
+
+    pub fn settings(&self) -> &EngineSettings {
+        &self.settings
+    }
+
+    pub fn counters(&self) -> &EngineCounters {
+        &self.counters
+    }
+
+    pub fn state(&self) -> SupervisorState {
+        self.supervisor.state()
+    }
+
+    pub fn n_channels(&self) -> usize {
+        self.pipeline.n_channels()
+    }
+
+    pub fn n_outputs(&self) -> usize {
+        self.pipeline.n_outputs()
+    }
+
+    pub fn bin_us(&self) -> u32 {
+        self.bin_us
+    }
+
+    /// The seq of the next slot to answer, once a stream has started.
+    pub fn next_seq(&self) -> Option<u64> {
+        self.clock.map(|c| c.next_seq)
+    }
+
+    /// When the next slot falls due, once a stream has started.
+    pub fn next_deadline(&self) -> Option<u64> {
+        self.clock.map(|c| self.deadline_of(&c, c.next_seq))
+    }
+
+    /// Bins that arrived ahead of their slot and wait in the reorder ring.
+    pub fn pending_bins(&self) -> usize {
+        self.pending.iter().filter(|p| p.occupied).count()
+    }
+
+    pub fn consecutive_missing(&self) -> u32 {
+        self.supervisor.consecutive_missing()
+    }
+
+    /// Rate exponent clamps of the running point-process decoder.
+    pub fn rate_clamps(&self) -> u64 {
+        self.pipeline.rate_clamps()
+    }
+
+    fn w(&self) -> u64 {
+        self.pending.len() as u64
+    }
+
+    fn deadline_of(&self, c: &BinClock, seq: u64) -> u64 {
+        let nominal = c.t0_ns as i128
+            + i128::from(seq.wrapping_sub(c.seq0)) * i128::from(self.settings.bin_ns);
+        (nominal + i128::from(self.settings.deadline_slack_ns)).clamp(0, i128::from(u64::MAX))
+            as u64
+    }
+
+    /// Answers every slot due at or before `now` (a receive timeout).
+    pub fn on_timeout(&mut self, now_ns: u64, sink: &mut impl SlotSink) {
+        while let Some(deadline) = self.next_deadline() {
+            if deadline > now_ns {
+                break;
+            }
+            self.answer(SlotSource::Missing, now_ns, sink);
+        }
+    }
+
+    /// Handles one datagram read at `recv_ns`.
+    pub fn on_datagram(&mut self, recv_ns: u64, datagram: &[u8], sink: &mut impl SlotSink) {
+        while let Some(deadline) = self.next_deadline() {
+            if deadline >= recv_ns {
+                break;
+            }
+            self.answer(SlotSource::Missing, recv_ns, sink);
+        }
+        self.counters.datagrams += 1;
+        let header = match packet::parse_bin_for(datagram, self.n_channels(), self.bin_us) {
+            Ok(h) => h,
+            Err(reason) => {
+                self.counters.rejected += 1;
+                self.counters.rejected_by_reason[reason.index()] += 1;
+                sink.event(&EngineEvent::Rejected(reason));
+                return;
+            }
+        };
+        let seq = header.seq;
+        let arrived = SlotSource::Arrived {
+            recv_ns,
+            origin_ns: header.origin_ns,
+        };
+        let Some(clock) = self.clock else {
+            self.start_stream(recv_ns, seq);
+            sink.event(&EngineEvent::StreamStarted {
+                seq,
+                t0_ns: recv_ns,
+            });
+            packet::read_counts(datagram, &mut self.counts);
+            self.answer(arrived, recv_ns, sink);
+            return;
+        };
+        let next = clock.next_seq;
+        let w = self.w();
+        let in_window = seq.abs_diff(next) < w || (seq < next && next - seq <= w);
+        if in_window {
+            self.stray = None;
+        }
+        if seq == next {
+            self.track_clock(recv_ns, seq);
+            packet::read_counts(datagram, &mut self.counts);
+            self.answer(arrived, recv_ns, sink);
+        } else if seq > next && seq - next < w {
+            let slot = &mut self.pending[(seq % w) as usize];
+            if slot.occupied && slot.seq == seq {
+                self.counters.bins_duplicate += 1;
+                sink.event(&EngineEvent::Duplicate { seq });
+                return;
+            }
+            slot.seq = seq;
+            slot.occupied = true;
+            slot.recv_ns = recv_ns;
+            slot.origin_ns = header.origin_ns;
+            packet::read_counts(datagram, &mut slot.counts);
+        } else if seq < next && next - seq <= w {
+            let slot = self.answered[(seq % w) as usize];
+            if slot.seq == seq && slot.decoded {
+                self.counters.bins_duplicate += 1;
+                sink.event(&EngineEvent::Duplicate { seq });
+            } else {
+                self.counters.bins_late += 1;
+                sink.event(&EngineEvent::Late { seq });
+            }
+        } else if !self.confirms_restart(seq, recv_ns) {
+            self.stray = Some((seq, recv_ns));
+            let from_this_stream = seq < next && seq >= clock.seq0;
+            if from_this_stream {
+                self.counters.bins_late += 1;
+                sink.event(&EngineEvent::Late { seq });
+            } else {
+                self.counters.bins_stray += 1;
+                sink.event(&EngineEvent::Stray { seq });
+            }
+        } else {
+            self.counters.new_streams += 1;
+            sink.event(&EngineEvent::NewStream {
+                expected_seq: next,
+                seq,
+            });
+            self.pipeline.reset();
+            if let Some(t) = self.supervisor.halt(next, TransitionReason::NewStream) {
+                self.counters.transitions += 1;
+                sink.event(&EngineEvent::Transition(t));
+            }
+            self.start_stream(recv_ns, seq);
+            packet::read_counts(datagram, &mut self.counts);
+            self.answer(arrived, recv_ns, sink);
+        }
+    }
+
+    /// An out-of-window bin confirms a restart when it follows the last
+    /// out-of-window bin in seq, paced like a front end (at least half a bin
+    /// later), not in a burst from the socket's queue.
+    fn confirms_restart(&self, seq: u64, recv_ns: u64) -> bool {
+        match self.stray {
+            Some((last_seq, last_recv)) => {
+                seq == last_seq.wrapping_add(1)
+                    && recv_ns.saturating_sub(last_recv) >= self.settings.bin_ns / 2
+            }
+            None => false,
+        }
+    }
+
+    fn start_stream(&mut self, recv_ns: u64, seq: u64) {
+        self.stray = None;
+        self.clock = Some(BinClock {
+            t0_ns: recv_ns as i64,
+            seq0: seq,
+            next_seq: seq,
+        });
+        for p in &mut self.pending {
+            if p.occupied {
+                self.counters.bins_flushed += 1;
+            }
+            p.occupied = false;
+        }
+        for a in &mut self.answered {
+            a.seq = u64::MAX;
+        }
+        self.last_nonzero.fill(seq);
+        self.last_saturated.fill(u64::MAX);
+    }
+
+    fn track_clock(&mut self, recv_ns: u64, seq: u64) {
+        let gain = self.settings.clock_tracking;
+        if gain <= 0.0 {
+            return;
+        }
+        let Some(c) = self.clock.as_mut() else { return };
+        let nominal = c.t0_ns as i128
+            + i128::from(seq.wrapping_sub(c.seq0)) * i128::from(self.settings.bin_ns);
+        let slack = i128::from(self.settings.deadline_slack_ns);
+        let offset = (i128::from(recv_ns) - nominal).clamp(-slack, slack);
+        c.t0_ns += (offset as f64 * gain).round() as i64;
+    }
+
+    /// Answers the next slot from `source`, then every following slot whose
+    /// bin already waits in the ring.
+    fn answer(&mut self, source: SlotSource, decided_ns: u64, sink: &mut impl SlotSink) {
+        let mut source = source;
+        while let Some(next) = self.answer_one(source, decided_ns, sink) {
+            let i = (next % self.w()) as usize;
+            if !(self.pending[i].occupied && self.pending[i].seq == next) {
+                break;
+            }
+            source = SlotSource::Pending(i);
+        }
+    }
+
+    /// Answers one slot; returns the seq of the slot after it.
+    fn answer_one(
+        &mut self,
+        source: SlotSource,
+        decided_ns: u64,
+        sink: &mut impl SlotSink,
+    ) -> Option<u64> {
+        let clock = self.clock?;
+        let seq = clock.next_seq;
+        let w = self.w();
+        let (recv_ns, origin_ns, missing) = match source {
+            SlotSource::Arrived { recv_ns, origin_ns } => (recv_ns, origin_ns, false),
+            SlotSource::Pending(i) => (self.pending[i].recv_ns, self.pending[i].origin_ns, false),
+            SlotSource::Missing => (0, 0, true),
+        };
+        let counts: Option<&[u16]> = match source {
+            SlotSource::Arrived { .. } => Some(&self.counts),
+            SlotSource::Pending(i) => Some(&self.pending[i].counts),
+            SlotSource::Missing => None,
+        };
+        let estimate = match counts {
+            Some(counts) => {
+                let sat = self.settings.saturation_count;
+                for (ch, &c) in counts.iter().enumerate() {
+                    if c > 0 {
+                        self.last_nonzero[ch] = seq;
+                    }
+                    if c >= sat {
+                        self.last_saturated[ch] = seq;
+                    }
+                }
+                self.counters.bins_decoded += 1;
+                self.pipeline.step(seq, counts)
+            }
+            None => {
+                self.counters.bins_missing += 1;
+                self.pipeline.predict_only(seq)
+            }
+        };
+        let fault = estimate.numerical_fault;
+        let supervised = self
+            .supervisor
+            .on_bin(seq, estimate.estimate, missing, fault);
+        let mut flags = supervised.flags;
+        if missing {
+            flags |= FLAG_BIN_MISSING;
+        }
+        if self.model_changed {
+            flags |= FLAG_MODEL_CHANGED;
+            self.model_changed = false;
+        }
+        packet::encode_velocity(
+            &VelocityFields {
+                state: supervised.state.wire(),
+                seq,
+                origin_ns,
+                recv_ns,
+                sent_ns: 0,
+                flags,
+                command: self.supervisor.command(),
+                estimate: estimate.estimate,
+            },
+            &mut self.packet,
+        );
+        if fault {
+            // A faulted filter state stays faulted; start it afresh. The
+            // supervisor has halted, so nothing moves until an operator arms.
+            self.counters.numerical_faults += 1;
+            self.pipeline.reset();
+        }
+        if let Some(t) = supervised.transition {
+            self.counters.transitions += 1;
+            sink.event(&EngineEvent::Transition(t));
+        }
+        self.answered[(seq % w) as usize] = AnsweredSlot {
+            seq,
+            decoded: !missing,
+        };
+        if let SlotSource::Pending(i) = source {
+            self.pending[i].occupied = false;
+        }
+        self.counters.slots_answered += 1;
+        let deadline_ns = self.deadline_of(&clock, seq);
+        sink.answer(
+            &mut self.packet,
+            &SlotAnswer {
+                seq,
+                recv_ns,
+                origin_ns,
+                decided_ns,
+                deadline_ns,
+                state: supervised.state,
+                flags,
+            },
+        );
+        let next = seq.wrapping_add(1);
+        if let Some(c) = self.clock.as_mut() {
+            c.next_seq = next;
+        }
+        Some(next)
+    }
+
+    /// Applies an operator's arm, disarm or halt before the next slot.
+    pub fn operator(
+        &mut self,
+        command: OperatorCommand,
+        sink: &mut impl SlotSink,
+    ) -> Result<Option<Transition>, ArmRefused> {
+        let seq = self.next_seq().unwrap_or(0);
+        let t = match command {
+            OperatorCommand::Arm => Some(self.supervisor.arm(seq, self.clock.is_some())?),
+            OperatorCommand::Disarm => self.supervisor.disarm(seq),
+            OperatorCommand::Halt => self.supervisor.halt(seq, TransitionReason::OperatorHalt),
+        };
+        if let Some(t) = t {
+            self.counters.transitions += 1;
+            sink.event(&EngineEvent::Transition(t));
+        }
+        Ok(t)
+    }
+
+    /// Checks that `pipeline` could replace the running one.
+    pub fn check_swap(&self, pipeline: &DecodePipeline) -> Result<(), SwapRefused> {
+        check_swap_against(pipeline, self.n_channels(), self.bin_us, self.n_outputs())
+    }
+
+    /// Swaps in a new decoder before the next slot, which carries
+    /// [`FLAG_MODEL_CHANGED`]. Returns the old pipeline so the caller can
+    /// free it off the real-time path.
+    pub fn swap_pipeline(
+        &mut self,
+        pipeline: DecodePipeline,
+        sink: &mut impl SlotSink,
+    ) -> Result<DecodePipeline, Box<(SwapRefused, DecodePipeline)>> {
+        if let Err(e) = self.check_swap(&pipeline) {
+            return Err(Box::new((e, pipeline)));
+        }
+        let old = std::mem::replace(&mut self.pipeline, pipeline);
+        self.model_changed = true;
+        self.counters.model_changes += 1;
+        sink.event(&EngineEvent::ModelChanged {
+            seq: self.next_seq().unwrap_or(0),
+        });
+        Ok(old)
+    }
+
+    /// Channels that have had no counts for `dead_channel_bins` bins, and
+    /// channels that reached the saturation count within that window.
+    pub fn channel_health(&self) -> (Vec<usize>, Vec<usize>) {
+        let Some(c) = self.clock else {
+            return (Vec::new(), Vec::new());
+        };
+        let last = c.next_seq.wrapping_sub(1);
+        let window = self.settings.dead_channel_bins;
+        let dead = (0..self.n_channels())
+            .filter(|&ch| last.wrapping_sub(self.last_nonzero[ch]) >= window)
+            .filter(|_| last.wrapping_sub(c.seq0) >= window)
+            .collect();
+        let saturated = (0..self.n_channels())
+            .filter(|&ch| {
+                self.last_saturated[ch] != u64::MAX
+                    && last.wrapping_sub(self.last_saturated[ch]) < window
+            })
+            .collect();
+        (dead, saturated)
+    }
+}
+
+/// [`SlotEngine::check_swap`] for callers that hold only the running
+/// stream's shape (the daemon's control task).
+pub fn check_swap_against(
+    pipeline: &DecodePipeline,
+    n_channels: usize,
+    bin_us: u32,
+    n_outputs: usize,
+) -> Result<(), SwapRefused> {
+    if pipeline.n_channels() != n_channels {
+        return Err(SwapRefused::Channels {
+            new: pipeline.n_channels(),
+            running: n_channels,
+        });
+    }
+    let new_us = packet::bin_us_of(pipeline.bin_ms());
+    if new_us != bin_us {
+        return Err(SwapRefused::BinWidth {
+            new: new_us,
+            running: bin_us,
+        });
+    }
+    if pipeline.n_outputs() != n_outputs {
+        return Err(SwapRefused::Outputs {
+            new: pipeline.n_outputs(),
+            running: n_outputs,
+        });
+    }
+    Ok(())
+}

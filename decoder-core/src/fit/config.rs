@@ -1,0 +1,361 @@
+//! The training configuration (`config/train.toml`), in two stages: the TOML
+//! as written, then validated options ready to fit with. Every key has a
+//! default, so an empty file is valid; an unknown key is an error naming it,
+//! because a misspelt option that silently keeps its default is how a rig
+//! ends up running a decoder nobody meant to train.
+
+use serde::Deserialize;
+
+use crate::decoders::kalman::steady::{DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE};
+use crate::fit::kalman::{
+    CONSTANT, CountNormalisation, KalmanFitOptions, QForm, SteadyStateOptions,
+};
+use crate::fit::point_process::PointProcessFitOptions;
+use crate::fit::wiener::WienerFitOptions;
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawTrainConfig {
+    lag_bins: Option<i64>,
+    ridge: Option<f64>,
+    folds: Option<i64>,
+    #[serde(default)]
+    kalman: RawKalman,
+    #[serde(default)]
+    wiener: RawWiener,
+    #[serde(default)]
+    point_process: RawPointProcess,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawPointProcess {
+    state: Option<Vec<String>>,
+    outputs: Option<Vec<String>>,
+    history: Option<bool>,
+    history_basis: Option<i64>,
+    history_span_bins: Option<i64>,
+    coupling: Option<bool>,
+    max_iterations: Option<i64>,
+    tolerance: Option<f64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawKalman {
+    state: Option<Vec<String>>,
+    outputs: Option<Vec<String>>,
+    count_normalisation: Option<String>,
+    q_form: Option<String>,
+    physical_coupling: Option<bool>,
+    steady_state: Option<bool>,
+    steady_state_tolerance: Option<f64>,
+    steady_state_max_iterations: Option<i64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct RawWiener {
+    taps: Option<i64>,
+    outputs: Option<Vec<String>>,
+}
+
+/// Validated training options.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TrainConfig {
+    pub kalman: KalmanFitOptions,
+    pub wiener: WienerFitOptions,
+    pub point_process: PointProcessFitOptions,
+    pub folds: usize,
+}
+
+impl Default for TrainConfig {
+    fn default() -> Self {
+        TrainConfig {
+            kalman: KalmanFitOptions::default(),
+            wiener: WienerFitOptions::default(),
+            point_process: PointProcessFitOptions::default(),
+            folds: 5,
+        }
+    }
+}
+
+#[derive(Debug, thiserror::Error)]
+#[error("{source_name}: {message}")]
+pub struct ConfigError {
+    pub source_name: String,
+    pub message: String,
+}
+
+impl TrainConfig {
+    /// Parses and validates TOML text; `source_name` (usually the file path)
+    /// prefixes every message.
+    pub fn from_toml(text: &str, source_name: &str) -> Result<TrainConfig, ConfigError> {
+        let err = |message: String| ConfigError {
+            source_name: source_name.to_string(),
+            message,
+        };
+        let raw: RawTrainConfig = toml::from_str(text).map_err(|e| {
+            err(e
+                .to_string()
+                .split('\n')
+                .map(str::trim)
+                .filter(|l| !l.is_empty())
+                .collect::<Vec<_>>()
+                .join(" "))
+        })?;
+        let mut cfg = TrainConfig::default();
+        if let Some(lag) = raw.lag_bins {
+            let lag = non_negative(lag, "lag_bins").map_err(err)?;
+            cfg.kalman.lag_bins = lag;
+            cfg.wiener.lag_bins = lag;
+        }
+        if let Some(ridge) = raw.ridge {
+            check_ridge(ridge).map_err(err)?;
+            cfg.kalman.ridge = ridge;
+            cfg.wiener.ridge = ridge;
+            cfg.point_process.ridge = ridge;
+        }
+        if let Some(folds) = raw.folds {
+            let folds = non_negative(folds, "folds").map_err(err)?;
+            if folds < 2 {
+                return Err(err(format!(
+                    "key folds is {folds}; cross-validation needs at least 2"
+                )));
+            }
+            cfg.folds = folds;
+        }
+        let k = raw.kalman;
+        if let Some(state) = k.state {
+            if state.is_empty() {
+                return Err(err("key kalman.state is empty".into()));
+            }
+            for (i, s) in state.iter().enumerate() {
+                if state[..i].contains(s) {
+                    return Err(err(format!("key kalman.state names {s:?} twice")));
+                }
+            }
+            cfg.kalman.outputs.retain(|o| state.contains(o));
+            cfg.kalman.state = state;
+        }
+        if let Some(outputs) = k.outputs {
+            cfg.kalman.outputs = outputs;
+        }
+        if cfg.kalman.outputs.is_empty() || cfg.kalman.outputs.len() > 8 {
+            return Err(err(format!(
+                "key kalman.outputs has {} entries; a velocity packet carries 1 to 8",
+                cfg.kalman.outputs.len()
+            )));
+        }
+        for o in &cfg.kalman.outputs {
+            if !cfg.kalman.state.contains(o) || o == CONSTANT {
+                return Err(err(format!(
+                    "key kalman.outputs: {o:?} is not a kinematic component of kalman.state {:?}",
+                    cfg.kalman.state
+                )));
+            }
+        }
+        if let Some(n) = k.count_normalisation {
+            cfg.kalman.count_normalisation = match n.as_str() {
+                "none" => CountNormalisation::None,
+                "mean-centred" => CountNormalisation::MeanCentred,
+                "z-scored" => CountNormalisation::ZScored,
+                other => {
+                    return Err(err(format!(
+                        "key kalman.count_normalisation is {other:?}; expected \"none\", \"mean-centred\" or \"z-scored\""
+                    )));
+                }
+            };
+        }
+        if let Some(q) = k.q_form {
+            cfg.kalman.q_form = match q.as_str() {
+                "full" => QForm::Full,
+                "diagonal" => QForm::Diagonal,
+                other => {
+                    return Err(err(format!(
+                        "key kalman.q_form is {other:?}; expected \"full\" or \"diagonal\""
+                    )));
+                }
+            };
+        }
+        if let Some(p) = k.physical_coupling {
+            cfg.kalman.physical_coupling = p;
+        }
+        let tolerance = k.steady_state_tolerance.unwrap_or(DEFAULT_TOLERANCE);
+        if !(tolerance.is_finite() && tolerance > 0.0) {
+            return Err(err(format!(
+                "key kalman.steady_state_tolerance is {tolerance}; it must be above zero"
+            )));
+        }
+        let max_iterations = match k.steady_state_max_iterations {
+            Some(v) => non_negative(v, "kalman.steady_state_max_iterations").map_err(err)?,
+            None => DEFAULT_MAX_ITERATIONS,
+        };
+        if max_iterations == 0 {
+            return Err(err("key kalman.steady_state_max_iterations is 0".into()));
+        }
+        if k.steady_state.unwrap_or(false) {
+            cfg.kalman.steady_state = Some(SteadyStateOptions {
+                tolerance,
+                max_iterations,
+            });
+        }
+        if let Some(taps) = raw.wiener.taps {
+            let taps = non_negative(taps, "wiener.taps").map_err(err)?;
+            if taps == 0 {
+                return Err(err(
+                    "key wiener.taps is 0; the filter needs at least the current bin".into(),
+                ));
+            }
+            cfg.wiener.taps = taps;
+        }
+        cfg.wiener.outputs = raw
+            .wiener
+            .outputs
+            .unwrap_or_else(|| cfg.kalman.outputs.clone());
+        let pp = raw.point_process;
+        if let Some(state) = pp.state {
+            if state.is_empty() || state.len() > 16 || state.iter().any(|s| s == CONSTANT) {
+                return Err(err(
+                    "key point_process.state must name 1 to 16 kinematics columns (the intercept b0 is always fitted)".into(),
+                ));
+            }
+            cfg.point_process.outputs.retain(|o| state.contains(o));
+            cfg.point_process.state = state;
+        }
+        if let Some(outputs) = pp.outputs {
+            cfg.point_process.outputs = outputs;
+        }
+        if cfg.point_process.outputs.is_empty()
+            || cfg.point_process.outputs.len() > 8
+            || cfg
+                .point_process
+                .outputs
+                .iter()
+                .any(|o| !cfg.point_process.state.contains(o))
+        {
+            return Err(err(format!(
+                "key point_process.outputs {:?}: 1 to 8 components of point_process.state {:?}",
+                cfg.point_process.outputs, cfg.point_process.state
+            )));
+        }
+        let mut history = cfg
+            .point_process
+            .history
+            .clone()
+            .expect("default has history");
+        if let Some(n) = pp.history_basis {
+            history.n_basis = non_negative(n, "point_process.history_basis").map_err(err)?;
+        }
+        if let Some(n) = pp.history_span_bins {
+            history.span_bins = non_negative(n, "point_process.history_span_bins").map_err(err)?;
+        }
+        if history.n_basis < 2 || history.span_bins < history.n_basis {
+            return Err(err(format!(
+                "keys point_process.history_basis = {} and history_span_bins = {}: need at least 2 basis functions and a span of at least as many bins",
+                history.n_basis, history.span_bins
+            )));
+        }
+        cfg.point_process.history = pp.history.unwrap_or(true).then_some(history);
+        if let Some(c) = pp.coupling {
+            cfg.point_process.coupling = c;
+        }
+        if let Some(n) = pp.max_iterations {
+            let n = non_negative(n, "point_process.max_iterations").map_err(err)?;
+            if n == 0 {
+                return Err(err("key point_process.max_iterations is 0".into()));
+            }
+            cfg.point_process.max_iterations = n;
+        }
+        if let Some(t) = pp.tolerance {
+            if !(t.is_finite() && t > 0.0) {
+                return Err(err(format!(
+                    "key point_process.tolerance is {t}; it must be above zero"
+                )));
+            }
+            cfg.point_process.tolerance = t;
+        }
+        Ok(cfg)
+    }
+
+    /// Command-line overrides, validated the same way.
+    pub fn override_lag(&mut self, lag: usize) {
+        self.kalman.lag_bins = lag;
+        self.wiener.lag_bins = lag;
+    }
+
+    pub fn override_ridge(&mut self, ridge: f64) -> Result<(), ConfigError> {
+        check_ridge(ridge).map_err(|message| ConfigError {
+            source_name: "--ridge".into(),
+            message,
+        })?;
+        self.kalman.ridge = ridge;
+        self.wiener.ridge = ridge;
+        self.point_process.ridge = ridge;
+        Ok(())
+    }
+}
+
+fn non_negative(v: i64, key: &str) -> Result<usize, String> {
+    usize::try_from(v).map_err(|_| format!("key {key} is {v}; it must be zero or more"))
+}
+
+fn check_ridge(ridge: f64) -> Result<(), String> {
+    if ridge.is_finite() && ridge >= 0.0 {
+        Ok(())
+    } else {
+        Err(format!(
+            "ridge is {ridge}; it must be zero (no penalty) or more"
+        ))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn empty_file_gives_defaults() {
+        assert_eq!(
+            TrainConfig::from_toml("", "t").unwrap(),
+            TrainConfig::default()
+        );
+    }
+
+    #[test]
+    fn misspelt_key_is_named() {
+        let e = TrainConfig::from_toml("[kalman]\nq_from = \"full\"\n", "train.toml").unwrap_err();
+        assert!(e.to_string().contains("q_from"), "{e}");
+        assert!(e.to_string().starts_with("train.toml"), "{e}");
+    }
+
+    #[test]
+    fn velocity_only_state_keeps_velocity_outputs() {
+        let c = TrainConfig::from_toml("[kalman]\nstate = [\"vel_x\", \"vel_y\", \"1\"]\n", "t")
+            .unwrap();
+        assert_eq!(c.kalman.outputs, vec!["vel_x", "vel_y"]);
+    }
+
+    #[test]
+    fn negative_lag_and_bad_ridge_are_refused() {
+        assert!(
+            TrainConfig::from_toml("lag_bins = -1", "t")
+                .unwrap_err()
+                .to_string()
+                .contains("lag_bins")
+        );
+        assert!(
+            TrainConfig::from_toml("ridge = -2.0", "t")
+                .unwrap_err()
+                .to_string()
+                .contains("ridge")
+        );
+    }
+
+    #[test]
+    fn unknown_normalisation_lists_the_choices() {
+        let e = TrainConfig::from_toml("[kalman]\ncount_normalisation = \"zscore\"\n", "t")
+            .unwrap_err();
+        assert!(e.to_string().contains("z-scored"), "{e}");
+    }
+}

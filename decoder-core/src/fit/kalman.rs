@@ -1,0 +1,495 @@
+//! Fitting the Kalman decoder from a calibration block (Wu et al. 2006).
+//!
+//! The state model is fitted by least squares on the kinematics alone
+//! (A = X₂X₁ᵀ(X₁X₁ᵀ)⁻¹, W the covariance of its residuals) and the observation
+//! model by least squares of counts on the state (H = YXᵀ(XXᵀ + λR)⁻¹, Q the
+//! covariance of its residuals), where R is the identity with a zero at the
+//! constant component, so the baseline rates are not shrunk. All of it is
+//! computed from [`KalmanStats`], sums that add over segments, so
+//! cross-validation folds cost one pass over the block.
+
+use std::ops::Range;
+
+use nalgebra::DMatrix;
+use serde::{Deserialize, Serialize};
+
+use crate::decoders::kalman::model::{KalmanModel, ObservationNoise};
+use crate::decoders::kalman::steady::steady_state_gain;
+use crate::fit::TrainError;
+use crate::fit::least_squares::{CountGram, CrossSums, nonzero_counts};
+use crate::formats::block::Block;
+use crate::linalg::{self, Mat};
+
+/// The name of the constant state component.
+pub const CONSTANT: &str = "1";
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum CountNormalisation {
+    /// Raw counts.
+    None,
+    /// Subtract each channel's training mean.
+    MeanCentred,
+    /// Subtract the mean and divide by the standard deviation.
+    ZScored,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "kebab-case")]
+pub enum QForm {
+    Full,
+    Diagonal,
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct SteadyStateOptions {
+    pub tolerance: f64,
+    pub max_iterations: usize,
+}
+
+/// Validated options of a Kalman fit (see `config/train.toml`).
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct KalmanFitOptions {
+    pub state: Vec<String>,
+    pub outputs: Vec<String>,
+    /// Counts of bin t are paired with the kinematics of bin t + lag_bins.
+    pub lag_bins: usize,
+    pub ridge: f64,
+    pub count_normalisation: CountNormalisation,
+    pub q_form: QForm,
+    /// Fix each pos_* row of A to integrate the matching vel_* over one bin.
+    pub physical_coupling: bool,
+    pub steady_state: Option<SteadyStateOptions>,
+}
+
+impl Default for KalmanFitOptions {
+    fn default() -> Self {
+        KalmanFitOptions {
+            state: ["pos_x", "pos_y", "vel_x", "vel_y", CONSTANT]
+                .map(String::from)
+                .to_vec(),
+            outputs: ["vel_x", "vel_y"].map(String::from).to_vec(),
+            lag_bins: 0,
+            ridge: 1.0,
+            count_normalisation: CountNormalisation::None,
+            q_form: QForm::Full,
+            physical_coupling: false,
+            steady_state: None,
+        }
+    }
+}
+
+/// What a fit found besides the parameters.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct KalmanFitReport {
+    /// Channels silent (zero variance) in the training bins: given no weight.
+    pub excluded_channels: Vec<usize>,
+    pub observation_bins: u64,
+    pub transition_bins: u64,
+    pub steady_state_iterations: Option<usize>,
+}
+
+/// Where each state component comes from.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum StateSource {
+    Column(usize),
+    Constant,
+}
+
+/// Resolves state names against the block's kinematics columns.
+pub fn state_sources(session: &Block, state: &[String]) -> Result<Vec<StateSource>, TrainError> {
+    state
+        .iter()
+        .map(|name| {
+            if name == CONSTANT {
+                Ok(StateSource::Constant)
+            } else {
+                session
+                    .kinematic_index(name)
+                    .map(StateSource::Column)
+                    .ok_or_else(|| TrainError::UnknownKinematic {
+                        name: name.clone(),
+                        available: session.kinematic_names.clone(),
+                    })
+            }
+        })
+        .collect()
+}
+
+pub fn fill_state(session: &Block, sources: &[StateSource], bin: usize, out: &mut [f64]) {
+    let kin = session.kinematics.as_ref().expect("checked by caller");
+    for (o, s) in out.iter_mut().zip(sources) {
+        *o = match s {
+            StateSource::Column(c) => kin.get(bin, *c),
+            StateSource::Constant => 1.0,
+        };
+    }
+}
+
+/// Sums over the training bins of one or more segments.
+#[derive(Clone, Debug, PartialEq)]
+pub struct KalmanStats {
+    pub d: usize,
+    pub n: usize,
+    pub gram: CountGram,
+    /// Σ y xᵀ, N × d.
+    pub syx: CrossSums,
+    /// Σ x xᵀ over observation pairs, d × d.
+    pub sxx: CrossSums,
+    pub sx: Vec<f64>,
+    /// Σ x_t x_tᵀ, Σ x_{t+1} x_tᵀ, Σ x_{t+1} x_{t+1}ᵀ over transitions.
+    pub s11: CrossSums,
+    pub s21: CrossSums,
+    pub s22: CrossSums,
+    pub n_transitions: u64,
+}
+
+impl KalmanStats {
+    pub fn new(d: usize, n: usize, q_form: QForm) -> KalmanStats {
+        let gram = match q_form {
+            QForm::Full => CountGram::new(n),
+            QForm::Diagonal => CountGram::new_diagonal(n),
+        };
+        KalmanStats {
+            d,
+            n,
+            gram,
+            syx: CrossSums::new(n, d),
+            sxx: CrossSums::new(d, d),
+            sx: vec![0.0; d],
+            s11: CrossSums::new(d, d),
+            s21: CrossSums::new(d, d),
+            s22: CrossSums::new(d, d),
+            n_transitions: 0,
+        }
+    }
+
+    /// Adds the bins of `segment`: observation pairs (counts t, state t+lag)
+    /// and state transitions (t, t+1) that both lie inside it.
+    pub fn accumulate(
+        &mut self,
+        session: &Block,
+        sources: &[StateSource],
+        lag: usize,
+        segment: Range<usize>,
+    ) {
+        let d = self.d;
+        let mut x = vec![0.0; d];
+        let mut x_next = vec![0.0; d];
+        let mut nz = Vec::with_capacity(self.n);
+        for t in segment.start..segment.end.saturating_sub(lag) {
+            fill_state(session, sources, t + lag, &mut x);
+            nz.clear();
+            nonzero_counts(session.bin_counts(t), 0, &mut nz);
+            self.gram.add_sparse(&nz);
+            self.syx.add_sparse_outer(&nz, &x);
+            self.sxx.add_outer(&x, &x);
+            for (s, v) in self.sx.iter_mut().zip(&x) {
+                *s += v;
+            }
+        }
+        for t in segment.start..segment.end.saturating_sub(1) {
+            fill_state(session, sources, t, &mut x);
+            fill_state(session, sources, t + 1, &mut x_next);
+            self.s11.add_outer(&x, &x);
+            self.s21.add_outer(&x_next, &x);
+            self.s22.add_outer(&x_next, &x_next);
+            self.n_transitions += 1;
+        }
+    }
+
+    pub fn add_assign(&mut self, o: &KalmanStats) {
+        self.gram.add_assign(&o.gram);
+        for (a, b) in [
+            (&mut self.syx, &o.syx),
+            (&mut self.sxx, &o.sxx),
+            (&mut self.s11, &o.s11),
+            (&mut self.s21, &o.s21),
+            (&mut self.s22, &o.s22),
+        ] {
+            a.add_assign(b);
+        }
+        for (a, b) in self.sx.iter_mut().zip(&o.sx) {
+            *a += b;
+        }
+        self.n_transitions += o.n_transitions;
+    }
+
+    pub fn sub_assign(&mut self, o: &KalmanStats) {
+        self.gram.sub_assign(&o.gram);
+        for (a, b) in [
+            (&mut self.syx, &o.syx),
+            (&mut self.sxx, &o.sxx),
+            (&mut self.s11, &o.s11),
+            (&mut self.s21, &o.s21),
+            (&mut self.s22, &o.s22),
+        ] {
+            a.sub_assign(b);
+        }
+        for (a, b) in self.sx.iter_mut().zip(&o.sx) {
+            *a -= b;
+        }
+        self.n_transitions -= o.n_transitions;
+    }
+}
+
+/// Checks the options against the block before any pass over it.
+pub fn check_options(
+    session: &Block,
+    options: &KalmanFitOptions,
+) -> Result<Vec<StateSource>, TrainError> {
+    if session.kinematics.is_none() {
+        return Err(TrainError::NoKinematics);
+    }
+    let sources = state_sources(session, &options.state)?;
+    for out in &options.outputs {
+        if !options.state.contains(out) {
+            return Err(TrainError::Option {
+                key: "kalman.outputs",
+                problem: format!("{out:?} is not in kalman.state {:?}", options.state),
+            });
+        }
+    }
+    Ok(sources)
+}
+
+/// Fits on the whole block.
+pub fn fit_kalman(
+    session: &Block,
+    options: &KalmanFitOptions,
+) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
+    fit_kalman_segments(session, options, std::slice::from_ref(&(0..session.n_bins)))
+}
+
+pub fn fit_kalman_segments(
+    session: &Block,
+    options: &KalmanFitOptions,
+    segments: &[Range<usize>],
+) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
+    let sources = check_options(session, options)?;
+    let mut stats = KalmanStats::new(sources.len(), session.n_channels, options.q_form);
+    for seg in segments {
+        stats.accumulate(session, &sources, options.lag_bins, seg.clone());
+    }
+    fit_from_stats(&stats, options, session.bin_ms)
+}
+
+fn solve_spd(
+    m: &DMatrix<f64>,
+    rhs: &DMatrix<f64>,
+    state: &[String],
+    what: &'static str,
+) -> Result<DMatrix<f64>, TrainError> {
+    match nalgebra::Cholesky::new(m.clone()) {
+        Some(c) => Ok(c.solve(rhs)),
+        None => {
+            let idx = (0..m.nrows()).find(|&i| m[(i, i)] <= 0.0).unwrap_or(0);
+            Err(TrainError::Degenerate {
+                what,
+                problem: format!(
+                    "the state components are collinear or constant in the training bins (check {:?}); add ridge or drop a component",
+                    state.get(idx).cloned().unwrap_or_default()
+                ),
+            })
+        }
+    }
+}
+
+fn to_dm(c: &CrossSums) -> DMatrix<f64> {
+    DMatrix::from_row_slice(c.rows, c.cols, &c.data)
+}
+
+/// The fit proper, from sums. Public so cross-validation can call it with
+/// "all folds minus one".
+pub fn fit_from_stats(
+    stats: &KalmanStats,
+    options: &KalmanFitOptions,
+    bin_ms: f64,
+) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
+    let (d, n) = (stats.d, stats.n);
+    let t_obs = stats.gram.n_rows;
+    if t_obs < (d as u64) + 2 || stats.n_transitions < (d as u64) + 2 {
+        return Err(TrainError::TooFewBins {
+            bins: t_obs,
+            needed: d as u64 + 2,
+        });
+    }
+    let t = t_obs as f64;
+    let constant_idx = options.state.iter().position(|s| s == CONSTANT);
+
+    // Per-channel mean and variance, exact from integer sums.
+    let mut offset = vec![0.0; n];
+    let mut scale = vec![1.0; n];
+    let mut excluded = Vec::new();
+    for ch in 0..n {
+        let s = u128::from(stats.gram.sums[ch]);
+        let ss = u128::from(stats.gram.square_sum(ch));
+        let centred = u128::from(t_obs) * ss - s * s; // T² · variance, exact
+        if centred == 0 {
+            excluded.push(ch);
+        }
+        let mean = s as f64 / t;
+        let std = (centred as f64).sqrt() / t;
+        match options.count_normalisation {
+            CountNormalisation::None => {}
+            CountNormalisation::MeanCentred => offset[ch] = mean,
+            CountNormalisation::ZScored => {
+                offset[ch] = mean;
+                if centred != 0 {
+                    scale[ch] = std;
+                }
+            }
+        }
+    }
+
+    // Observation sums in normalised units.
+    let sx = DMatrix::from_row_slice(d, 1, &stats.sx);
+    let mut syx = to_dm(&stats.syx);
+    for ch in 0..n {
+        for c in 0..d {
+            syx[(ch, c)] = (syx[(ch, c)] - offset[ch] * sx[c]) / scale[ch];
+        }
+    }
+    let sxx = to_dm(&stats.sxx);
+    let mut kxx = sxx.clone();
+    for i in 0..d {
+        if Some(i) != constant_idx {
+            kxx[(i, i)] += options.ridge;
+        }
+    }
+    // Hᵀ = Kxx⁻¹ Syxᵀ.
+    let mut h = solve_spd(&kxx, &syx.transpose(), &options.state, "H")?.transpose();
+    for &ch in &excluded {
+        h.row_mut(ch).fill(0.0);
+    }
+    let hsxx_ht_term = |h: &DMatrix<f64>| h * &sxx;
+    let h_sxx = hsxx_ht_term(&h); // N × d
+
+    let q = match options.q_form {
+        QForm::Full => {
+            let raw = stats.gram.to_f64_symmetric();
+            let sy = &stats.gram.sums;
+            let mut q = Mat::zeros(n, n);
+            for i in 0..n {
+                for j in i..n {
+                    // Σ y'ᵢ y'ⱼ with y' = (y − o)/s
+                    let syy =
+                        (raw[i * n + j] - offset[i] * sy[j] as f64 - sy[i] as f64 * offset[j]
+                            + t * offset[i] * offset[j])
+                            / (scale[i] * scale[j]);
+                    let mut v = syy;
+                    for c in 0..d {
+                        v -= h[(i, c)] * syx[(j, c)] + syx[(i, c)] * h[(j, c)]
+                            - h_sxx[(i, c)] * h[(j, c)];
+                    }
+                    v /= t;
+                    q.set(i, j, v);
+                    q.set(j, i, v);
+                }
+            }
+            for &ch in &excluded {
+                for k in 0..n {
+                    q.set(ch, k, 0.0);
+                    q.set(k, ch, 0.0);
+                }
+                q.set(ch, ch, 1.0);
+            }
+            ObservationNoise::Full(q)
+        }
+        QForm::Diagonal => {
+            let mut diag = vec![0.0; n];
+            for i in 0..n {
+                let s = stats.gram.sums[i] as f64;
+                let syy = (stats.gram.square_sum(i) as f64 - 2.0 * offset[i] * s
+                    + t * offset[i] * offset[i])
+                    / (scale[i] * scale[i]);
+                let mut v = syy;
+                for c in 0..d {
+                    v -= 2.0 * h[(i, c)] * syx[(i, c)] - h_sxx[(i, c)] * h[(i, c)];
+                }
+                diag[i] = v / t;
+            }
+            for &ch in &excluded {
+                diag[ch] = 1.0;
+            }
+            ObservationNoise::Diagonal(diag)
+        }
+    };
+
+    // State model.
+    let s11 = to_dm(&stats.s11);
+    let s21 = to_dm(&stats.s21);
+    let s22 = to_dm(&stats.s22);
+    let mut a = solve_spd(&s11, &s21.transpose(), &options.state, "A")?.transpose();
+    if let Some(c) = constant_idx {
+        a.row_mut(c).fill(0.0);
+        a[(c, c)] = 1.0;
+    }
+    if options.physical_coupling {
+        let dt = bin_ms / 1000.0;
+        for (i, name) in options.state.iter().enumerate() {
+            if let Some(axis) = name.strip_prefix("pos_")
+                && let Some(v) = options
+                    .state
+                    .iter()
+                    .position(|s| s == &format!("vel_{axis}"))
+            {
+                a.row_mut(i).fill(0.0);
+                a[(i, i)] = 1.0;
+                a[(i, v)] = dt;
+            }
+        }
+    }
+    let n_tr = stats.n_transitions as f64;
+    let mut w =
+        (&s22 - &a * s21.transpose() - &s21 * a.transpose() + &a * &s11 * a.transpose()) / n_tr;
+    if let Some(c) = constant_idx {
+        w.row_mut(c).fill(0.0);
+        w.column_mut(c).fill(0.0);
+    }
+    let mut w = Mat::from_dmatrix(&w);
+    linalg::symmetrize(&mut w.data, d);
+
+    let x0: Vec<f64> = stats.sx.iter().map(|v| v / t).collect();
+    let x0m = DMatrix::from_row_slice(d, 1, &x0);
+    let mut p0 = sxx / t - &x0m * x0m.transpose();
+    if let Some(c) = constant_idx {
+        p0.row_mut(c).fill(0.0);
+        p0.column_mut(c).fill(0.0);
+    }
+    let mut p0 = Mat::from_dmatrix(&p0);
+    linalg::symmetrize(&mut p0.data, d);
+    let mut x0 = x0;
+    if let Some(c) = constant_idx {
+        x0[c] = 1.0;
+    }
+
+    let mut model = KalmanModel {
+        state: options.state.clone(),
+        outputs: options.outputs.clone(),
+        a: Mat::from_dmatrix(&a),
+        w,
+        h: Mat::from_dmatrix(&h),
+        q,
+        x0,
+        p0,
+        count_offset: offset,
+        count_scale: scale,
+        steady: None,
+    };
+    model.validate()?;
+    // Building the runtime checks that Q can be inverted.
+    crate::decoders::kalman::filter::information_terms(&model)?;
+    let mut report = KalmanFitReport {
+        excluded_channels: excluded,
+        observation_bins: t_obs,
+        transition_bins: stats.n_transitions,
+        steady_state_iterations: None,
+    };
+    if let Some(st) = &options.steady_state {
+        let gain = steady_state_gain(&model, st.tolerance, st.max_iterations)?;
+        report.steady_state_iterations = Some(gain.iterations);
+        model.steady = Some(gain);
+    }
+    Ok((model, report))
+}

@@ -1,0 +1,538 @@
+//! The session directory: how a calibration or replay block arrives from a
+//! user's own rig (counts and kinematics as NumPy files, a TOML manifest and an
+//! optional trial table), and how the simulator writes one.
+//!
+//! Everything a user can get wrong here gets a [`BlockError`] that names the
+//! file and the problem, because the person reading it is usually at a rig
+//! with a block exported minutes ago and needs to know which array to fix.
+
+use std::fs;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use ndarray::Array2;
+use ndarray_npy::{ReadNpyError, ReadNpyExt, WriteNpyExt};
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+
+use crate::linalg::Mat;
+
+pub const MANIFEST_FILE: &str = "manifest.toml";
+pub const COUNTS_FILE: &str = "counts.npy";
+pub const KINEMATICS_FILE: &str = "kinematics.npy";
+pub const TRIALS_FILE: &str = "trials.csv";
+pub const SESSION_FORMAT_VERSION: u32 = 1;
+
+/// One trial of a block: bins `start_bin..end_bin` (end exclusive) and the
+/// target the participant was moving to.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Trial {
+    pub trial: u32,
+    pub start_bin: usize,
+    pub end_bin: usize,
+    pub target_x: f64,
+    pub target_y: f64,
+}
+
+/// A block of binned spike counts, with the kinematics recorded in the same
+/// bins when the block is meant for training.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Block {
+    pub bin_ms: f64,
+    pub n_bins: usize,
+    pub n_channels: usize,
+    /// `n_bins × n_channels` counts, bin after bin (the bin packet's layout).
+    pub counts: Vec<u16>,
+    /// Names of the kinematics columns, from the manifest.
+    pub kinematic_names: Vec<String>,
+    /// `n_bins × kinematic_names.len()`, or `None` for a block without
+    /// kinematics (replay only).
+    pub kinematics: Option<Mat>,
+    pub trials: Option<Vec<Trial>>,
+    pub channel_labels: Option<Vec<String>>,
+    pub notes: Option<String>,
+}
+
+#[derive(Debug, thiserror::Error)]
+pub enum BlockError {
+    #[error("{}: {what} is missing; a session directory needs manifest.toml and counts.npy (and kinematics.npy for training)", path.display())]
+    Missing { path: PathBuf, what: &'static str },
+    #[error("{}: cannot read: {source}", path.display())]
+    Io {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("{}: {problem}", path.display())]
+    Manifest { path: PathBuf, problem: String },
+    #[error("{}: {problem}", path.display())]
+    Npy { path: PathBuf, problem: String },
+    #[error("{}: negative count {value} at bin {bin}, channel {channel}; counts must be zero or more", path.display())]
+    NegativeCount {
+        path: PathBuf,
+        bin: usize,
+        channel: usize,
+        value: i128,
+    },
+    #[error("{}: count {value} at bin {bin}, channel {channel} exceeds 65535, the largest count a bin packet carries", path.display())]
+    CountTooLarge {
+        path: PathBuf,
+        bin: usize,
+        channel: usize,
+        value: i128,
+    },
+    #[error("{}: {value} at bin {bin}, column {column} ({name}) is not finite; fill or cut the gap before training", path.display())]
+    NonFinite {
+        path: PathBuf,
+        bin: usize,
+        column: usize,
+        name: String,
+        value: f64,
+    },
+    #[error("{}: {problem}", path.display())]
+    Shape { path: PathBuf, problem: String },
+    #[error("{}: line {line}: {problem}", path.display())]
+    Trials {
+        path: PathBuf,
+        line: usize,
+        problem: String,
+    },
+    #[error("{}: cannot write: {source}", path.display())]
+    Write {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+}
+
+#[derive(Debug, Deserialize, Serialize)]
+#[serde(deny_unknown_fields)]
+struct ManifestFile {
+    version: u32,
+    bin_ms: f64,
+    kinematics: Vec<String>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    channel_labels: Option<Vec<String>>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    notes: Option<String>,
+}
+
+impl Block {
+    /// Reads a session directory (SPEC §3). `kinematics.npy` may be absent;
+    /// training then refuses the block with its own error.
+    pub fn read(dir: &Path) -> Result<Block, BlockError> {
+        if !dir.is_dir() {
+            return Err(BlockError::Missing {
+                path: dir.to_path_buf(),
+                what: "the session directory",
+            });
+        }
+        let manifest_path = dir.join(MANIFEST_FILE);
+        let manifest = read_manifest(&manifest_path)?;
+        let counts_path = dir.join(COUNTS_FILE);
+        let (n_bins, n_channels, counts) = read_counts(&counts_path)?;
+        if n_bins == 0 || n_channels == 0 {
+            return Err(BlockError::Shape {
+                path: counts_path,
+                problem: format!(
+                    "the block is empty (shape ({n_bins}, {n_channels})); it needs at least one bin and one channel"
+                ),
+            });
+        }
+        if n_channels > 16384 {
+            return Err(BlockError::Shape {
+                path: counts_path,
+                problem: format!("{n_channels} channels; a bin packet carries at most 16384"),
+            });
+        }
+        if let Some(labels) = &manifest.channel_labels
+            && labels.len() != n_channels
+        {
+            return Err(BlockError::Manifest {
+                path: manifest_path,
+                problem: format!(
+                    "key channel_labels has {} labels but counts.npy has {n_channels} channels",
+                    labels.len()
+                ),
+            });
+        }
+        let kin_path = dir.join(KINEMATICS_FILE);
+        let kinematics = if kin_path.exists() {
+            let kin = read_kinematics(&kin_path, &manifest.kinematics)?;
+            if kin.rows != n_bins {
+                return Err(BlockError::Shape {
+                    path: kin_path,
+                    problem: format!(
+                        "kinematics.npy has {} rows but counts.npy has {n_bins}; row t of both must describe the same bin",
+                        kin.rows
+                    ),
+                });
+            }
+            Some(kin)
+        } else {
+            None
+        };
+        let trials_path = dir.join(TRIALS_FILE);
+        let trials = if trials_path.exists() {
+            Some(read_trials(&trials_path, n_bins)?)
+        } else {
+            None
+        };
+        Ok(Block {
+            bin_ms: manifest.bin_ms,
+            n_bins,
+            n_channels,
+            counts,
+            kinematic_names: manifest.kinematics,
+            kinematics,
+            trials,
+            channel_labels: manifest.channel_labels,
+            notes: manifest.notes,
+        })
+    }
+
+    /// Writes the block as a session directory, each file through a temporary
+    /// name and a rename so an interrupted write never leaves half a file.
+    pub fn write(&self, dir: &Path) -> Result<(), BlockError> {
+        fs::create_dir_all(dir).map_err(|source| BlockError::Write {
+            path: dir.to_path_buf(),
+            source,
+        })?;
+        let manifest = ManifestFile {
+            version: SESSION_FORMAT_VERSION,
+            bin_ms: self.bin_ms,
+            kinematics: self.kinematic_names.clone(),
+            channel_labels: self.channel_labels.clone(),
+            notes: self.notes.clone(),
+        };
+        let text = toml::to_string(&manifest).expect("manifest serialises");
+        write_atomic(&dir.join(MANIFEST_FILE), text.as_bytes())?;
+
+        let counts = Array2::from_shape_vec((self.n_bins, self.n_channels), self.counts.clone())
+            .expect("counts length matches shape");
+        write_atomic(&dir.join(COUNTS_FILE), &npy_bytes(&counts))?;
+        if let Some(kin) = &self.kinematics {
+            let arr =
+                Array2::from_shape_vec((kin.rows, kin.cols), kin.data.clone()).expect("shape");
+            write_atomic(&dir.join(KINEMATICS_FILE), &npy_bytes(&arr))?;
+        }
+        if let Some(trials) = &self.trials {
+            let mut writer = csv::Writer::from_writer(Vec::new());
+            for t in trials {
+                writer.serialize(t).expect("trial serialises");
+            }
+            let bytes = writer.into_inner().expect("in-memory csv");
+            write_atomic(&dir.join(TRIALS_FILE), &bytes)?;
+        }
+        Ok(())
+    }
+
+    /// The counts of one bin.
+    pub fn bin_counts(&self, bin: usize) -> &[u16] {
+        &self.counts[bin * self.n_channels..(bin + 1) * self.n_channels]
+    }
+
+    /// Index of a kinematics column by name.
+    pub fn kinematic_index(&self, name: &str) -> Option<usize> {
+        self.kinematic_names.iter().position(|n| n == name)
+    }
+
+    /// SHA-256 over the block as decoded: counts as u16 little-endian, bin
+    /// after bin, then kinematics as f64 little-endian when present. The same
+    /// data stored with another integer dtype hashes the same, so a model's
+    /// `data_sha256` identifies the numbers it was trained on.
+    pub fn data_sha256(&self) -> String {
+        let mut hasher = Sha256::new();
+        for c in &self.counts {
+            hasher.update(c.to_le_bytes());
+        }
+        if let Some(kin) = &self.kinematics {
+            for v in &kin.data {
+                hasher.update(v.to_le_bytes());
+            }
+        }
+        hasher
+            .finalize()
+            .iter()
+            .map(|b| format!("{b:02x}"))
+            .collect()
+    }
+}
+
+fn read_bytes(path: &Path, what: &'static str) -> Result<Vec<u8>, BlockError> {
+    match fs::read(path) {
+        Ok(b) => Ok(b),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Err(BlockError::Missing {
+            path: path.to_path_buf(),
+            what,
+        }),
+        Err(source) => Err(BlockError::Io {
+            path: path.to_path_buf(),
+            source,
+        }),
+    }
+}
+
+fn read_manifest(path: &Path) -> Result<ManifestFile, BlockError> {
+    let bytes = read_bytes(path, "manifest.toml")?;
+    let text = String::from_utf8(bytes).map_err(|_| BlockError::Manifest {
+        path: path.to_path_buf(),
+        problem: "not UTF-8 text".into(),
+    })?;
+    let manifest: ManifestFile = toml::from_str(&text).map_err(|e| BlockError::Manifest {
+        path: path.to_path_buf(),
+        problem: one_line(&e.to_string()),
+    })?;
+    let bad = |problem: String| BlockError::Manifest {
+        path: path.to_path_buf(),
+        problem,
+    };
+    if manifest.version != SESSION_FORMAT_VERSION {
+        return Err(bad(format!(
+            "key version is {}; this build reads session version {SESSION_FORMAT_VERSION}",
+            manifest.version
+        )));
+    }
+    if !(manifest.bin_ms.is_finite() && manifest.bin_ms > 0.0) {
+        return Err(bad(format!(
+            "key bin_ms is {}; it must be a bin width in milliseconds above zero",
+            manifest.bin_ms
+        )));
+    }
+    if manifest.kinematics.is_empty() {
+        return Err(bad(
+            "key kinematics is empty; name each column of kinematics.npy".into(),
+        ));
+    }
+    for (i, name) in manifest.kinematics.iter().enumerate() {
+        if name.trim().is_empty() {
+            return Err(bad(format!("key kinematics: column {i} has an empty name")));
+        }
+        if manifest.kinematics[..i].contains(name) {
+            return Err(bad(format!("key kinematics names column {name:?} twice")));
+        }
+    }
+    Ok(manifest)
+}
+
+/// Turns a multi-line parser message into one line for a terminal.
+fn one_line(s: &str) -> String {
+    s.split('\n')
+        .map(str::trim)
+        .filter(|l| !l.is_empty())
+        .collect::<Vec<_>>()
+        .join(" ")
+}
+
+fn npy_problem(e: &ReadNpyError) -> String {
+    match e {
+        ReadNpyError::WrongNdim(_, got) => {
+            format!("array has {got} dimensions; expected 2 (bins × columns)")
+        }
+        other => format!("not a readable NumPy file: {other}"),
+    }
+}
+
+macro_rules! try_int_dtype {
+    ($bytes:expr, $($t:ty),*) => {{
+        let mut found = None;
+        $(
+            if found.is_none() {
+                match Array2::<$t>::read_npy($bytes) {
+                    Ok(arr) => found = Some(Ok(arr.mapv(i128::from))),
+                    Err(ReadNpyError::WrongDescriptor(_)) => {}
+                    Err(e) => found = Some(Err(e)),
+                }
+            }
+        )*
+        found
+    }};
+}
+
+fn read_counts(path: &Path) -> Result<(usize, usize, Vec<u16>), BlockError> {
+    let bytes = read_bytes(path, "counts.npy")?;
+    let found = try_int_dtype!(&bytes[..], i64, i32, i16, i8, u64, u32, u16, u8);
+    let arr = match found {
+        Some(Ok(arr)) => arr,
+        Some(Err(e)) => {
+            return Err(BlockError::Npy {
+                path: path.to_path_buf(),
+                problem: npy_problem(&e),
+            });
+        }
+        None => {
+            let dtype = match Array2::<f64>::read_npy(&bytes[..]) {
+                Ok(_) => "float64".to_string(),
+                Err(_) => match Array2::<f32>::read_npy(&bytes[..]) {
+                    Ok(_) => "float32".to_string(),
+                    Err(e) => {
+                        return Err(BlockError::Npy {
+                            path: path.to_path_buf(),
+                            problem: npy_problem(&e),
+                        });
+                    }
+                },
+            };
+            return Err(BlockError::Npy {
+                path: path.to_path_buf(),
+                problem: format!(
+                    "counts have dtype {dtype}; spike counts must be an integer dtype (save with counts.astype(np.uint16))"
+                ),
+            });
+        }
+    };
+    let (n_bins, n_channels) = arr.dim();
+    let mut counts = Vec::with_capacity(n_bins * n_channels);
+    for ((bin, channel), &value) in arr.indexed_iter() {
+        if value < 0 {
+            return Err(BlockError::NegativeCount {
+                path: path.to_path_buf(),
+                bin,
+                channel,
+                value,
+            });
+        }
+        if value > i128::from(u16::MAX) {
+            return Err(BlockError::CountTooLarge {
+                path: path.to_path_buf(),
+                bin,
+                channel,
+                value,
+            });
+        }
+        counts.push(value as u16);
+    }
+    Ok((n_bins, n_channels, counts))
+}
+
+fn read_kinematics(path: &Path, names: &[String]) -> Result<Mat, BlockError> {
+    let bytes = read_bytes(path, "kinematics.npy")?;
+    let arr = match Array2::<f64>::read_npy(&bytes[..]) {
+        Ok(a) => a,
+        Err(ReadNpyError::WrongDescriptor(_)) => match Array2::<f32>::read_npy(&bytes[..]) {
+            Ok(a) => a.mapv(f64::from),
+            Err(ReadNpyError::WrongDescriptor(d)) => {
+                return Err(BlockError::Npy {
+                    path: path.to_path_buf(),
+                    problem: format!("dtype {d} is not float64 or float32"),
+                });
+            }
+            Err(e) => {
+                return Err(BlockError::Npy {
+                    path: path.to_path_buf(),
+                    problem: npy_problem(&e),
+                });
+            }
+        },
+        Err(e) => {
+            return Err(BlockError::Npy {
+                path: path.to_path_buf(),
+                problem: npy_problem(&e),
+            });
+        }
+    };
+    let (rows, cols) = arr.dim();
+    if cols != names.len() {
+        return Err(BlockError::Shape {
+            path: path.to_path_buf(),
+            problem: format!(
+                "kinematics.npy has {cols} columns but manifest.toml key kinematics names {} ({})",
+                names.len(),
+                names.join(", ")
+            ),
+        });
+    }
+    let mut data = Vec::with_capacity(rows * cols);
+    for ((bin, column), &value) in arr.indexed_iter() {
+        if !value.is_finite() {
+            return Err(BlockError::NonFinite {
+                path: path.to_path_buf(),
+                bin,
+                column,
+                name: names[column].clone(),
+                value,
+            });
+        }
+        data.push(value);
+    }
+    Ok(Mat { rows, cols, data })
+}
+
+fn read_trials(path: &Path, n_bins: usize) -> Result<Vec<Trial>, BlockError> {
+    let bytes = read_bytes(path, "trials.csv")?;
+    let mut reader = csv::ReaderBuilder::new()
+        .trim(csv::Trim::All)
+        .from_reader(&bytes[..]);
+    let expected = ["trial", "start_bin", "end_bin", "target_x", "target_y"];
+    let header = reader
+        .headers()
+        .map_err(|e| BlockError::Trials {
+            path: path.to_path_buf(),
+            line: 1,
+            problem: e.to_string(),
+        })?
+        .clone();
+    if header.iter().collect::<Vec<_>>() != expected {
+        return Err(BlockError::Trials {
+            path: path.to_path_buf(),
+            line: 1,
+            problem: format!(
+                "header is {:?}; expected {}",
+                header.iter().collect::<Vec<_>>(),
+                expected.join(",")
+            ),
+        });
+    }
+    let mut trials = Vec::new();
+    for (i, row) in reader.deserialize::<Trial>().enumerate() {
+        let line = i + 2;
+        let trial = row.map_err(|e| BlockError::Trials {
+            path: path.to_path_buf(),
+            line,
+            problem: one_line(&e.to_string()),
+        })?;
+        if trial.start_bin >= trial.end_bin || trial.end_bin > n_bins {
+            return Err(BlockError::Trials {
+                path: path.to_path_buf(),
+                line,
+                problem: format!(
+                    "trial {} spans bins {}..{} but the block has bins 0..{n_bins} (end is exclusive and must exceed start)",
+                    trial.trial, trial.start_bin, trial.end_bin
+                ),
+            });
+        }
+        if !(trial.target_x.is_finite() && trial.target_y.is_finite()) {
+            return Err(BlockError::Trials {
+                path: path.to_path_buf(),
+                line,
+                problem: format!("trial {} has a target that is not finite", trial.trial),
+            });
+        }
+        trials.push(trial);
+    }
+    Ok(trials)
+}
+
+fn npy_bytes<T: ndarray_npy::WritableElement>(arr: &Array2<T>) -> Vec<u8> {
+    let mut out = Vec::new();
+    arr.write_npy(&mut out).expect("in-memory npy write");
+    out
+}
+
+/// Writes `bytes` to `path` through a temporary file in the same directory and
+/// a rename, so readers see the old file or the whole new one, never a part.
+pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<(), BlockError> {
+    let err = |source| BlockError::Write {
+        path: path.to_path_buf(),
+        source,
+    };
+    let file_name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let tmp = path.with_file_name(format!(".{file_name}.partial"));
+    let mut file = fs::File::create(&tmp).map_err(err)?;
+    file.write_all(bytes).map_err(err)?;
+    file.sync_all().map_err(err)?;
+    drop(file);
+    fs::rename(&tmp, path).map_err(err)?;
+    Ok(())
+}

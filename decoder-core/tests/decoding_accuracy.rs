@@ -1,0 +1,47 @@
+//! Held-out accuracy on simulated blocks: the decoder must recover the
+//! velocity the simulated channels were tuned to.
+
+use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
+use decoder_core::fit::kalman::KalmanFitOptions;
+use decoder_core::fit::wiener::WienerFitOptions;
+use decoder_core::sim::reaching::{SimOptions, simulate};
+
+#[test]
+fn kalman_reaches_cc_08_on_ten_minutes_of_96_channels() {
+    let (session, _) = simulate(&SimOptions {
+        seed: 7,
+        minutes: 10.0,
+        n_channels: 96,
+        ..SimOptions::default()
+    })
+    .unwrap();
+    let eval = cross_validate(
+        &session,
+        &[
+            DecoderSpec::Kalman(KalmanFitOptions::default()),
+            DecoderSpec::Wiener(WienerFitOptions::default()),
+        ],
+        5,
+        |_, _| {},
+    )
+    .unwrap();
+    let kalman = &eval.decoders[0];
+    for (dim, s) in kalman.mean.iter().enumerate() {
+        eprintln!(
+            "kalman {}: cc {:.3} r2 {:.3} rmse {:.2}",
+            kalman.outputs[dim], s.cc, s.r2, s.rmse
+        );
+        assert!(
+            s.cc >= 0.8,
+            "held-out CC of {} is {:.3}",
+            kalman.outputs[dim],
+            s.cc
+        );
+    }
+    for (dim, s) in eval.decoders[1].mean.iter().enumerate() {
+        eprintln!(
+            "wiener {}: cc {:.3} r2 {:.3}",
+            eval.decoders[1].outputs[dim], s.cc, s.r2
+        );
+    }
+}

@@ -1,0 +1,432 @@
+//! The slot engine's rules with time as data: one answer per slot, coasting
+//! and halting on missing bins, late, duplicate and reordered bins, new
+//! streams and model swaps — checked without sockets or clocks.
+
+use decoder_core::decoders::DecoderModel;
+use decoder_core::engine::pipeline::DecodePipeline;
+use decoder_core::engine::slot_engine::{
+    EngineEvent, EngineSettings, OperatorCommand, SlotAnswer, SlotEngine, SlotSink,
+};
+use decoder_core::engine::supervisor::{SafetyLimits, SupervisorState};
+use decoder_core::fit::kalman::{KalmanFitOptions, fit_kalman};
+use decoder_core::formats::model_file::{ModelFile, Provenance};
+use decoder_core::formats::packet::{
+    self, BinHeader, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, VelocityPacket,
+};
+use decoder_core::sim::reaching::{SimOptions, simulate};
+
+const BIN_NS: u64 = 20_000_000;
+const T0: u64 = 1_000_000_000;
+
+fn model() -> (ModelFile, decoder_core::Block) {
+    let (session, _) = simulate(&SimOptions {
+        minutes: 1.0,
+        n_channels: 8,
+        ..SimOptions::default()
+    })
+    .unwrap();
+    let (k, _) = fit_kalman(&session, &KalmanFitOptions::default()).unwrap();
+    (
+        ModelFile {
+            bin_ms: session.bin_ms,
+            decoder: DecoderModel::Kalman(k),
+            provenance: Provenance::untracked(),
+        },
+        session,
+    )
+}
+
+fn settings(armed: bool) -> EngineSettings {
+    EngineSettings {
+        bin_ns: BIN_NS,
+        deadline_slack_ns: BIN_NS / 2,
+        reorder_window: 64,
+        clock_tracking: 0.0,
+        limits: SafetyLimits {
+            max_speed: 50.0,
+            max_accel: 500.0,
+            max_coast_bins: 5,
+            coast_decay: 0.8,
+            bin_s: 0.02,
+        },
+        armed_at_start: armed,
+        dead_channel_bins: 1500,
+        saturation_count: 21,
+    }
+}
+
+#[derive(Default)]
+struct Collected {
+    packets: Vec<VelocityPacket>,
+    events: Vec<EngineEvent>,
+}
+
+impl SlotSink for Collected {
+    fn answer(&mut self, packet: &mut [u8], slot: &SlotAnswer) {
+        let p = VelocityPacket::parse(packet).unwrap();
+        assert_eq!(p.seq, slot.seq);
+        self.packets.push(p);
+    }
+    fn event(&mut self, event: &EngineEvent) {
+        self.events.push(*event);
+    }
+}
+
+struct Rig {
+    engine: SlotEngine,
+    session: decoder_core::Block,
+    out: Collected,
+    buf: Vec<u8>,
+}
+
+impl Rig {
+    fn new(armed: bool) -> Rig {
+        let (m, session) = model();
+        Rig {
+            engine: SlotEngine::new(settings(armed), DecodePipeline::new(&m).unwrap()),
+            session,
+            out: Collected::default(),
+            buf: Vec::new(),
+        }
+    }
+
+    /// Bin `seq` arriving `late_ns` after its nominal time (seq 0 at T0).
+    fn send(&mut self, seq: u64, late_ns: u64) {
+        self.send_at(seq, T0 + seq * BIN_NS + late_ns);
+    }
+
+    /// Bin `seq` arriving at `at`.
+    fn send_at(&mut self, seq: u64, at: u64) {
+        let counts = self.session.bin_counts(seq as usize % self.session.n_bins);
+        packet::encode_bin(
+            &BinHeader {
+                channels: counts.len() as u16,
+                seq,
+                origin_ns: T0 + seq * BIN_NS,
+                bin_us: 20_000,
+                flags: 0,
+            },
+            counts,
+            &mut self.buf,
+        );
+        self.engine.on_datagram(at, &self.buf, &mut self.out);
+    }
+
+    /// Time passes to just before bin `seq`'s nominal time.
+    fn wait_until(&mut self, seq: u64) {
+        self.engine.on_timeout(T0 + seq * BIN_NS - 1, &mut self.out);
+    }
+
+    fn seqs(&self) -> Vec<u64> {
+        self.out.packets.iter().map(|p| p.seq).collect()
+    }
+}
+
+#[test]
+fn steady_stream_answers_each_bin_once_from_counts() {
+    let mut rig = Rig::new(true);
+    for seq in 0..50 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    assert_eq!(rig.seqs(), (0..50).collect::<Vec<_>>());
+    assert!(
+        rig.out
+            .packets
+            .iter()
+            .all(|p| p.flags & FLAG_BIN_MISSING == 0)
+    );
+    assert!(rig.out.packets.iter().all(|p| p.state == 1));
+    assert_eq!(rig.engine.counters().bins_decoded, 50);
+}
+
+#[test]
+fn gap_of_three_bins_coasts_exactly_those_seqs() {
+    let mut rig = Rig::new(true);
+    for seq in (0..10).chain(13..20) {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    assert_eq!(rig.seqs(), (0..20).collect::<Vec<_>>());
+    for p in &rig.out.packets {
+        let gap = (10..13).contains(&p.seq);
+        assert_eq!(p.flags & FLAG_BIN_MISSING != 0, gap, "seq {}", p.seq);
+        let want = if gap {
+            SupervisorState::Coasting
+        } else {
+            SupervisorState::Armed
+        };
+        assert_eq!(p.state, want.wire(), "seq {}", p.seq);
+        if gap {
+            assert_eq!((p.recv_ns, p.origin_ns), (0, 0));
+        }
+    }
+    assert_eq!(rig.engine.counters().bins_missing, 3);
+}
+
+#[test]
+fn gap_of_thirty_bins_halts_and_commands_zero_after() {
+    let mut rig = Rig::new(true);
+    for seq in (0..40).chain(70..100) {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    assert_eq!(rig.seqs(), (0..100).collect::<Vec<_>>());
+    let halted_from = 40 + 5; // five coasted bins, the sixth missing halts
+    for p in &rig.out.packets[40..] {
+        let want = if p.seq < halted_from { 2 } else { 3 };
+        assert_eq!(p.state, want, "seq {}", p.seq);
+    }
+    // The controlled stop reaches zero within the gap and stays there.
+    for p in &rig.out.packets[70..] {
+        assert!(p.command.iter().all(|&c| c == 0.0), "seq {}", p.seq);
+    }
+    assert_eq!(rig.engine.state(), SupervisorState::Halted);
+}
+
+#[test]
+fn reordered_bins_are_decoded_in_seq_order() {
+    let mut rig = Rig::new(true);
+    for seq in 0..5 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    rig.wait_until(5);
+    rig.send_at(6, T0 + 5 * BIN_NS + 50_000); // 6 comes early, before 5
+    assert_eq!(rig.seqs().len(), 5);
+    rig.send(5, 200_000);
+    assert_eq!(rig.seqs(), (0..7).collect::<Vec<_>>());
+    assert!(
+        rig.out
+            .packets
+            .iter()
+            .all(|p| p.flags & FLAG_BIN_MISSING == 0)
+    );
+}
+
+#[test]
+fn duplicates_and_late_bins_are_dropped_and_counted() {
+    let mut rig = Rig::new(true);
+    for seq in 0..5 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    rig.send(4, 300_000); // duplicate of a decoded bin
+    rig.send(5, BIN_NS * 3 / 4); // after its deadline (slack is half a bin)
+    let c = rig.engine.counters();
+    assert_eq!((c.bins_duplicate, c.bins_late, c.bins_missing), (1, 1, 1));
+    assert_eq!(rig.seqs(), (0..6).collect::<Vec<_>>());
+    assert_ne!(rig.out.packets[5].flags & FLAG_BIN_MISSING, 0);
+}
+
+#[test]
+fn seq_going_back_starts_a_new_stream_halted() {
+    let mut rig = Rig::new(true);
+    for seq in 1000..1010 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    // The front end restarts at 0, right after bin 1009: bin 0 alone is a
+    // stray; bin 1 following it a bin later confirms the new stream.
+    rig.send_at(0, T0 + 1009 * BIN_NS + 200_000);
+    assert_eq!(rig.engine.counters().new_streams, 0);
+    assert_eq!(rig.engine.counters().bins_stray, 1);
+    assert_eq!(rig.engine.state(), SupervisorState::Armed);
+    rig.send_at(1, T0 + 1010 * BIN_NS + 200_000);
+    assert_eq!(rig.engine.counters().new_streams, 1);
+    assert_eq!(rig.engine.state(), SupervisorState::Halted);
+    assert_eq!(rig.out.packets.last().unwrap().seq, 1);
+    assert_eq!(rig.engine.next_seq(), Some(2));
+}
+
+#[test]
+fn a_stall_longer_than_the_window_is_not_a_new_stream() {
+    // The daemon stalls for 100 bins (window 64); the socket then delivers
+    // the queued bins in a burst. Their slots were answered at their
+    // deadlines; the burst is late, not a restarted sender, and every slot
+    // keeps exactly one answer.
+    let mut rig = Rig::new(true);
+    for seq in 0..10 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    let wake = T0 + 110 * BIN_NS;
+    for (i, seq) in (10..110).enumerate() {
+        rig.send_at(seq, wake + i as u64 * 2_000);
+    }
+    for seq in 111..130 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    let c = rig.engine.counters();
+    assert_eq!(c.new_streams, 0, "{c:?}");
+    assert_eq!(rig.seqs(), (0..130).collect::<Vec<_>>());
+    assert!(c.bins_late >= 99, "{c:?}");
+}
+
+#[test]
+fn stale_packets_never_reset_the_stream() {
+    let mut rig = Rig::new(true);
+    for seq in 100..200 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+        rig.send(0, 200_000); // a stale replay of an old bin, every bin
+    }
+    let c = rig.engine.counters();
+    assert_eq!((c.new_streams, c.bins_stray, c.bins_decoded), (0, 100, 100));
+    assert_eq!(rig.seqs(), (100..200).collect::<Vec<_>>());
+    assert_eq!(rig.engine.state(), SupervisorState::Armed);
+}
+
+#[test]
+fn heartbeat_continues_after_the_sender_stops() {
+    let mut rig = Rig::new(true);
+    for seq in 0..5 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    rig.wait_until(50);
+    assert_eq!(rig.seqs(), (0..50).collect::<Vec<_>>());
+    assert_eq!(rig.out.packets.last().unwrap().state, 3);
+}
+
+#[test]
+fn a_swapped_model_flags_exactly_the_next_slot() {
+    let mut rig = Rig::new(true);
+    for seq in 0..5 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    let (m, _) = model();
+    let old = rig
+        .engine
+        .swap_pipeline(DecodePipeline::new(&m).unwrap(), &mut rig.out)
+        .unwrap();
+    drop(old);
+    for seq in 5..8 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    let flagged: Vec<u64> = rig
+        .out
+        .packets
+        .iter()
+        .filter(|p| p.flags & FLAG_MODEL_CHANGED != 0)
+        .map(|p| p.seq)
+        .collect();
+    assert_eq!(flagged, vec![5]);
+}
+
+#[test]
+fn arming_needs_a_live_stream() {
+    let mut rig = Rig::new(false);
+    assert!(
+        rig.engine
+            .operator(OperatorCommand::Arm, &mut rig.out)
+            .is_err()
+    );
+    rig.send(0, 100_000);
+    rig.wait_until(3); // bins 1 and 2 missing
+    assert!(
+        rig.engine
+            .operator(OperatorCommand::Arm, &mut rig.out)
+            .is_err()
+    );
+    rig.send(3, 100_000);
+    assert!(
+        rig.engine
+            .operator(OperatorCommand::Arm, &mut rig.out)
+            .is_ok()
+    );
+    assert_eq!(rig.engine.state(), SupervisorState::Armed);
+}
+
+#[test]
+fn a_mismatched_model_is_refused_for_swap() {
+    let mut rig = Rig::new(true);
+    let (session, _) = simulate(&SimOptions {
+        minutes: 1.0,
+        n_channels: 9,
+        ..SimOptions::default()
+    })
+    .unwrap();
+    let (k, _) = fit_kalman(&session, &KalmanFitOptions::default()).unwrap();
+    let m = ModelFile {
+        bin_ms: 20.0,
+        decoder: DecoderModel::Kalman(k),
+        provenance: Provenance::untracked(),
+    };
+    let err = rig
+        .engine
+        .swap_pipeline(DecodePipeline::new(&m).unwrap(), &mut rig.out)
+        .err()
+        .unwrap()
+        .0;
+    assert!(err.to_string().contains("9 channels"), "{err}");
+}
+
+#[test]
+fn clock_tracking_follows_a_slow_sender() {
+    // The sender's bins come 100 ppm slow; after 20 000 bins (400 s) they
+    // arrive 40 ms (two bins) later than a fixed clock expects. With
+    // tracking, none is late.
+    let (m, session) = model();
+    let mut s = settings(true);
+    s.clock_tracking = 0.05;
+    let mut engine = SlotEngine::new(s, DecodePipeline::new(&m).unwrap());
+    let mut out = Collected::default();
+    let mut buf = Vec::new();
+    for seq in 0..20_000u64 {
+        let at = T0 + seq * BIN_NS + seq * BIN_NS / 10_000;
+        engine.on_timeout(at - 1, &mut out);
+        packet::encode_bin(
+            &BinHeader {
+                channels: 8,
+                seq,
+                origin_ns: 0,
+                bin_us: 20_000,
+                flags: 0,
+            },
+            session.bin_counts(seq as usize % session.n_bins),
+            &mut buf,
+        );
+        engine.on_datagram(at, &buf, &mut out);
+    }
+    assert_eq!(engine.counters().bins_late, 0);
+    assert_eq!(engine.counters().bins_missing, 0);
+    out.packets.clear();
+}
+
+#[test]
+fn dead_and_saturated_channels_are_reported() {
+    let (m, _) = model();
+    let mut s = settings(true);
+    s.dead_channel_bins = 50;
+    let mut engine = SlotEngine::new(s, DecodePipeline::new(&m).unwrap());
+    let mut out = Collected::default();
+    let mut buf = Vec::new();
+    for seq in 0..200u64 {
+        // Channel 2 never fires; channel 5 reports an impossible count once.
+        let mut counts = vec![1u16; 8];
+        counts[2] = 0;
+        if seq == 180 {
+            counts[5] = 40;
+        }
+        packet::encode_bin(
+            &BinHeader {
+                channels: 8,
+                seq,
+                origin_ns: 0,
+                bin_us: 20_000,
+                flags: 0,
+            },
+            &counts,
+            &mut buf,
+        );
+        engine.on_timeout(T0 + seq * BIN_NS - 1, &mut out);
+        engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, &mut out);
+    }
+    let (dead, saturated) = engine.channel_health();
+    assert_eq!(dead, vec![2]);
+    assert_eq!(saturated, vec![5]);
+}

@@ -1,0 +1,201 @@
+//! `replay-tool replay --live --target ADDR`: stream a stored block to a
+//! running daemon at the bin rate (or a chosen speed-up), as its front end
+//! would, collect the velocity packets it sends to `--sink`, and check them
+//! against decoding the same bins offline: each slot the daemon decoded
+//! from counts must give the same estimate bit for bit, and each slot it
+//! coasted must equal a predict-only step. This is how a user checks that
+//! the daemon on a rig computer decodes exactly what the offline tools do.
+
+use std::net::{SocketAddr, UdpSocket};
+use std::path::Path;
+use std::time::Duration;
+
+use anyhow::{Context, Result, bail};
+use daemon::loopback::{BinFault, Sink, paced_send_from};
+use decoder_core::engine::pipeline::DecodePipeline;
+use decoder_core::formats::packet::{self, FLAG_BIN_MISSING};
+use decoder_core::formats::session_log::{LogReader, LogRecord};
+use decoder_core::{Block, ModelFile};
+
+use crate::CheckFailed;
+
+pub struct LiveArgs<'a> {
+    pub session: &'a Path,
+    pub model: Option<&'a Path>,
+    pub target: &'a str,
+    pub sink: &'a str,
+    pub speed: f64,
+}
+
+/// The bins of a session directory or of a session log's valid datagrams,
+/// with the model to check against.
+fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFile)> {
+    if session.is_dir() {
+        let Some(m) = model else {
+            bail!("--model is required to replay a session directory live");
+        };
+        let model = ModelFile::read(m)?;
+        let s = Block::read(session)?;
+        decoder_core::engine::pipeline::check_block(&DecodePipeline::new(&model)?, &s)?;
+        return Ok((
+            (0..s.n_bins).map(|t| s.bin_counts(t).to_vec()).collect(),
+            model,
+        ));
+    }
+    let mut reader = LogReader::open(session)?;
+    let n = reader.header().n_channels;
+    let bin_us = reader.header().bin_us;
+    let mut logged_model = None;
+    let mut bins = Vec::new();
+    while let Some(r) = reader.next_record() {
+        match r {
+            LogRecord::Model { model_file, .. } if logged_model.is_none() => {
+                logged_model = Some(ModelFile::from_bytes(
+                    &model_file,
+                    &session.display().to_string(),
+                )?);
+            }
+            LogRecord::Datagram { bytes, .. }
+                if packet::parse_bin_for(&bytes, n, bin_us).is_ok() =>
+            {
+                let mut counts = vec![0u16; n];
+                packet::read_counts(&bytes, &mut counts);
+                bins.push(counts);
+            }
+            _ => {}
+        }
+    }
+    let model = match model {
+        Some(m) => ModelFile::read(m)?,
+        None => logged_model.context("the log holds no model; pass --model")?,
+    };
+    Ok((bins, model))
+}
+
+pub fn run(args: &LiveArgs<'_>) -> Result<()> {
+    if !(args.speed.is_finite() && args.speed > 0.0) {
+        bail!("--speed {}: must be above 0", args.speed);
+    }
+    let target: SocketAddr = args
+        .target
+        .parse()
+        .with_context(|| format!("--target {}", args.target))?;
+    let (bins, model) = load(args.session, args.model)?;
+    if bins.is_empty() {
+        bail!("{} has no bins to stream", args.session.display());
+    }
+    let n = bins.len();
+    let channels = model.decoder.n_channels();
+    let bin_us = packet::bin_us_of(model.bin_ms);
+    let datagrams: Vec<Vec<u8>> = bins
+        .iter()
+        .map(|c| packet::bin_datagram(c, bin_us))
+        .collect();
+    let sink_socket = UdpSocket::bind(args.sink).with_context(|| {
+        format!(
+            "cannot bind --sink {}; it must be the address the daemon sends to (network.actuator)",
+            args.sink
+        )
+    })?;
+    // Seqs far from any earlier stream's, so a daemon that ran before sees
+    // a new stream (decoder reset) and decodes from the model's initial
+    // state, as the offline check does. A used daemon takes the first bin
+    // as a stray and starts the stream at the second, which therefore
+    // follows a full bin later, paced as a restarting front end.
+    let base = (1u64 << 40) + daemon::sys::monotonic_ns();
+    let sink = Sink::start_at(sink_socket, base, n)?;
+    let sender = UdpSocket::bind(if target.is_ipv4() {
+        "127.0.0.1:0"
+    } else {
+        "[::1]:0"
+    })?;
+    let rate = 1000.0 / model.bin_ms * args.speed;
+    println!(
+        "streaming {n} bins of {channels} channels to {target} at {:.0} bins/s; collecting on {} ...",
+        rate, args.sink
+    );
+    let bin = Duration::from_secs_f64(model.bin_ms / 1000.0);
+    paced_send_from(&sender, target, &datagrams[..1], 1, rate, base, |_| {
+        BinFault::None
+    });
+    std::thread::sleep(bin);
+    if n > 1 {
+        paced_send_from(
+            &sender,
+            target,
+            &datagrams[1..],
+            n - 1,
+            rate,
+            base + 1,
+            |_| BinFault::None,
+        );
+    }
+    std::thread::sleep(
+        Duration::from_millis(300).max(Duration::from_secs_f64(3.0 * model.bin_ms / 1000.0)),
+    );
+    let rec = sink.finish();
+
+    let Some(first) = rec.packets.iter().position(Option::is_some) else {
+        bail!(
+            "no velocity packets came back on {}; is the daemon's network.actuator set to it?",
+            args.sink
+        );
+    };
+    let mut pipeline = DecodePipeline::new(&model)?;
+    // Bins before the first answered one were taken as a stray (a daemon
+    // that ran another stream before) and are not counted against it.
+    let (mut equal, mut decoded, mut coasted, mut absent) = (0usize, 0usize, 0usize, 0usize);
+    let mut first_difference = None;
+    for (k, (packet, counts)) in rec.packets.iter().zip(&bins).enumerate().skip(first) {
+        let Some(p) = packet else {
+            absent += 1;
+            continue;
+        };
+        let seq = base + k as u64;
+        let offline = if p.flags & FLAG_BIN_MISSING != 0 {
+            coasted += 1;
+            pipeline.predict_only(seq)
+        } else {
+            decoded += 1;
+            pipeline.step(seq, counts)
+        };
+        let same = offline.estimate.len() == p.estimate.len()
+            && offline
+                .estimate
+                .iter()
+                .zip(&p.estimate)
+                .all(|(a, b)| a.to_bits() == b.to_bits());
+        if same {
+            equal += 1;
+        } else if first_difference.is_none() {
+            first_difference = Some(format!(
+                "bin {k} (seq {seq}): live estimate {:?}, offline {:?}",
+                p.estimate, offline.estimate
+            ));
+        }
+        if offline.numerical_fault {
+            pipeline.reset();
+        }
+    }
+    let checked = decoded + coasted;
+    println!(
+        "{equal} of {checked} live estimates equal offline decoding bit for bit ({decoded} decoded, {coasted} coasted; {absent} bins without a packet{})",
+        if first > 0 {
+            format!("; the first {first} started a new stream in the running daemon")
+        } else {
+            String::new()
+        }
+    );
+    if let Some(d) = first_difference {
+        return Err(CheckFailed(format!(
+            "live and offline decoding differ: {d} (is the daemon running model {}?)",
+            args.model
+                .map_or_else(|| "the logged one".to_string(), |m| m.display().to_string())
+        ))
+        .into());
+    }
+    if absent > 0 {
+        return Err(CheckFailed(format!("{absent} bins got no velocity packet")).into());
+    }
+    Ok(())
+}

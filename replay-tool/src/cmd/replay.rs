@@ -1,0 +1,271 @@
+//! `replay-tool replay`: decode a stored block with a model, bin by bin,
+//! through the same pipeline the daemon runs, and write the estimates.
+//!
+//! A session directory is decoded bin after bin. A session log from
+//! `decoderd` is replayed through the daemon's own slot engine — the same
+//! datagrams at the same times, the same operator commands and model loads —
+//! so every slot the daemon answered is answered again, and the replayed
+//! packets are compared with the recorded ones.
+
+use std::path::PathBuf;
+use std::time::Instant;
+
+use anyhow::{Context, Result, bail};
+use decoder_core::engine::log_replay::replay_log;
+use decoder_core::engine::pipeline::{DecodePipeline, replay_block};
+use decoder_core::fit::metrics::scores;
+use decoder_core::formats::packet::VelocityPacket;
+use decoder_core::formats::session_log::{LogEnd, LogReader};
+use decoder_core::{Block, ModelFile};
+
+use crate::output::write_table;
+
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// Block to replay: a session directory, or a session log (.vdlog) that
+    /// decoderd recorded.
+    #[arg(long)]
+    pub session: PathBuf,
+    /// Model file from `replay-tool train`. Required for a session
+    /// directory; for a session log it replaces the logged model(s).
+    #[arg(long)]
+    pub model: Option<PathBuf>,
+    /// Estimates to write: FILE.npy (shape bins × outputs, float64) or
+    /// FILE.csv. Required unless --verify or --live.
+    #[arg(long, required_unless_present_any = ["verify", "live"])]
+    pub out: Option<PathBuf>,
+    /// Run the full covariance update even when the model has a steady-state gain.
+    #[arg(long)]
+    pub no_steady_state: bool,
+    /// Session log only: check that every slot's estimate, command, state
+    /// and flags are reproduced bit for bit; exit 1 at the first difference.
+    #[arg(long)]
+    pub verify: bool,
+    /// With --verify: compare floats within this relative tolerance instead
+    /// of bit for bit (for a log recorded by another build).
+    #[arg(long, requires = "verify")]
+    pub tolerance: Option<f64>,
+    /// Session log with --model OTHER: write the logged model's and OTHER's
+    /// estimates side by side to this CSV.
+    #[arg(long, requires = "model")]
+    pub compare: Option<PathBuf>,
+    /// Stream the block to a running daemon instead, and check its
+    /// velocity packets against offline decoding of the same bins.
+    #[arg(long, requires = "target")]
+    pub live: bool,
+    /// With --live: the daemon's bin address (its network.listen).
+    #[arg(long)]
+    pub target: Option<String>,
+    /// With --live: where to collect velocity packets (the daemon's
+    /// network.actuator).
+    #[arg(long, default_value = "127.0.0.1:27401")]
+    pub sink: String,
+    /// With --live: speed-up over the bin rate.
+    #[arg(long, default_value_t = 1.0)]
+    pub speed: f64,
+}
+
+pub struct ReplaySummary {
+    pub n_bins: usize,
+    pub bins_per_second: f64,
+    /// (output, CC) against the block's own kinematics, when it has them.
+    pub cc: Vec<(String, f64)>,
+    /// For a session log: slots whose replayed packet equals the recorded
+    /// one byte for byte, out of those recorded.
+    pub identical: Option<(u64, u64)>,
+}
+
+pub fn replay(args: &Args) -> Result<ReplaySummary> {
+    if args.session.is_file() {
+        return replay_session_log(args);
+    }
+    if args.verify || args.compare.is_some() {
+        bail!(
+            "--verify and --compare need a session log (.vdlog) from decoderd, not a session directory"
+        );
+    }
+    let Some(out) = &args.out else {
+        bail!("--out is required");
+    };
+    let Some(model_path) = &args.model else {
+        bail!("--model is required to replay a session directory");
+    };
+    let model = ModelFile::read(model_path)?;
+    let session = Block::read(&args.session)?;
+    let mut pipeline = DecodePipeline::with_options(&model, !args.no_steady_state)
+        .with_context(|| format!("building the decoder from {}", model_path.display()))?;
+    let started = Instant::now();
+    let (estimates, faults) = replay_block(&mut pipeline, &session).with_context(|| {
+        format!(
+            "{} does not fit {}",
+            args.session.display(),
+            model_path.display()
+        )
+    })?;
+    let elapsed = started.elapsed().as_secs_f64();
+    if faults > 0 {
+        tracing::warn!(faults, "bins with a numerical fault (estimate unusable)");
+    }
+    let outputs = model.decoder.outputs().to_vec();
+    write_table(out, &outputs, session.n_bins, &estimates)?;
+    let d = outputs.len();
+    let mut cc = Vec::new();
+    if let Some(kin) = &session.kinematics {
+        for (dim, name) in outputs.iter().enumerate() {
+            if let Some(col) = session.kinematic_index(name) {
+                let truth: Vec<f64> = (0..session.n_bins).map(|t| kin.get(t, col)).collect();
+                let est: Vec<f64> = (0..session.n_bins)
+                    .map(|t| estimates[t * d + dim])
+                    .collect();
+                cc.push((name.clone(), scores(&truth, &est).cc));
+            }
+        }
+    }
+    Ok(ReplaySummary {
+        n_bins: session.n_bins,
+        bins_per_second: session.n_bins as f64 / elapsed.max(1e-9),
+        cc,
+        identical: None,
+    })
+}
+
+fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
+    let model = match &args.model {
+        Some(p) => Some(ModelFile::read(p)?),
+        None => None,
+    };
+    if args.no_steady_state {
+        bail!("--no-steady-state applies to session directories; a log replays as the daemon ran");
+    }
+    let mut reader = LogReader::open(&args.session)?;
+    let outputs = reader.header().outputs.clone();
+    let d = outputs.len();
+    let started = Instant::now();
+    let mut estimates = Vec::new();
+    let (mut identical, mut recorded) = (0u64, 0u64);
+    let mut bad_packet = None;
+    let summary = replay_log(&mut reader, model.as_ref(), |slot| {
+        match VelocityPacket::parse(slot.replayed) {
+            Ok(p) => estimates.extend_from_slice(&p.estimate),
+            Err(e) => bad_packet = Some(e),
+        }
+        if let Some(r) = slot.recorded {
+            recorded += 1;
+            identical += u64::from(r == slot.replayed);
+        }
+    })?;
+    if let Some(e) = bad_packet {
+        bail!("the replay produced an unreadable packet: {e}");
+    }
+    let elapsed = started.elapsed().as_secs_f64();
+    let n = estimates.len() / d.max(1);
+    if let Some(out) = &args.out {
+        write_table(out, &outputs, n, &estimates)?;
+    }
+    match &summary.end {
+        Some(LogEnd::TornTail { offset, bytes }) => tracing::warn!(
+            "{}: torn tail at byte {offset} ({bytes} bytes dropped); replayed up to it",
+            args.session.display()
+        ),
+        Some(LogEnd::Corrupt {
+            offset, problem, ..
+        }) => tracing::warn!(
+            "{}: {problem} at byte {offset}; replayed up to it",
+            args.session.display()
+        ),
+        Some(LogEnd::Unclosed) => tracing::warn!(
+            "{}: the log has no end record (daemon killed or still running)",
+            args.session.display()
+        ),
+        _ => {}
+    }
+    if summary.records_lost > 0 {
+        tracing::warn!(
+            lost = summary.records_lost,
+            "the recorder lost records in this session; the replay may differ after that point"
+        );
+    }
+    Ok(ReplaySummary {
+        n_bins: n,
+        bins_per_second: n as f64 / elapsed.max(1e-9),
+        cc: Vec::new(),
+        identical: model.is_none().then_some((identical, recorded)),
+    })
+}
+
+pub fn run(args: &Args) -> Result<()> {
+    if args.live {
+        return super::live_replay::run(&super::live_replay::LiveArgs {
+            session: &args.session,
+            model: args.model.as_deref(),
+            target: args.target.as_deref().unwrap_or_default(),
+            sink: &args.sink,
+            speed: args.speed,
+        });
+    }
+    if args.verify {
+        if args.model.is_some() {
+            bail!(
+                "--verify replays with the logged model(s); drop --model (use --compare to try another model)"
+            );
+        }
+        if let Some(t) = args.tolerance {
+            if !(t.is_finite() && t >= 0.0) {
+                bail!("--tolerance {t}: must be a finite number ≥ 0");
+            }
+        }
+        let v = super::verify::verify(&args.session, args.tolerance)?;
+        let how = match args.tolerance {
+            None => "bit for bit".to_string(),
+            Some(t) => format!("within relative tolerance {t:e}"),
+        };
+        println!(
+            "verified {}: {} slots, every estimate, command, state and flag reproduced {how}",
+            args.session.display(),
+            v.slots
+        );
+        if let Some(LogEnd::TornTail { offset, bytes }) = v.end {
+            println!(
+                "(the log ends in a torn tail at byte {offset}: {bytes} bytes after the last intact record were not checked)"
+            );
+        }
+        if args.out.is_none() {
+            return Ok(());
+        }
+    }
+    if let (Some(other), Some(csv)) = (&args.model, &args.compare) {
+        if !args.session.is_file() {
+            bail!("--compare needs a session log (.vdlog) from decoderd");
+        }
+        let model = ModelFile::read(other)?;
+        let (n, rms) = super::verify::compare_models(&args.session, &model, csv)?;
+        let parts: Vec<String> = rms.iter().map(|r| format!("{r:.4}")).collect();
+        println!(
+            "compared the logged model with {} on {n} slots: RMS difference of the estimates {}; side by side -> {}",
+            other.display(),
+            parts.join(", "),
+            csv.display()
+        );
+    }
+    let summary = replay(args)?;
+    println!(
+        "replayed {} bins through the decode pipeline ({:.0} bins/s){}",
+        summary.n_bins,
+        summary.bins_per_second,
+        args.out
+            .as_ref()
+            .map_or_else(String::new, |o| format!("; wrote {}", o.display()))
+    );
+    if !summary.cc.is_empty() {
+        let parts: Vec<String> = summary
+            .cc
+            .iter()
+            .map(|(n, c)| format!("{n} CC {c:.3}"))
+            .collect();
+        println!("against the block's own kinematics: {}", parts.join(", "));
+    }
+    if let Some((same, of)) = summary.identical {
+        println!("{same} of {of} recorded velocity packets reproduced byte for byte");
+    }
+    Ok(())
+}

@@ -1,0 +1,272 @@
+//! `replay-tool train`: fit a decoder on a calibration block, cross-validate
+//! it for the model's provenance, and write the model file.
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result, bail};
+use decoder_core::decoders::DecoderModel;
+use decoder_core::decoders::point_process::{ChannelGlm, PointProcessModel};
+use decoder_core::fit::config::TrainConfig;
+use decoder_core::fit::evaluate::{DecoderSpec, Evaluation, cross_validate};
+use decoder_core::fit::intention::reestimate_intention;
+use decoder_core::fit::kalman::fit_kalman;
+use decoder_core::fit::point_process::{
+    PointProcessFitOptions, PointProcessFitReport, assemble, fit_channel,
+};
+use decoder_core::fit::wiener::fit_wiener;
+use decoder_core::formats::block::Block;
+use decoder_core::formats::model_file::{ModelFile, Provenance};
+use serde_json::json;
+
+use super::load_train_config;
+use crate::output::write_atomic;
+use crate::progress;
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum DecoderKind {
+    Kalman,
+    Wiener,
+    PointProcess,
+}
+
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// Calibration block (session directory).
+    #[arg(long, required_unless_present = "refit", conflicts_with = "refit")]
+    pub session: Option<PathBuf>,
+    /// Retrain from a closed-loop block (the `closed-loop-block` directory
+    /// `bench --closed-loop` writes) with intention re-estimation: decoded
+    /// velocity turned toward the target, zero inside it (Gilja et al. 2012).
+    #[arg(long)]
+    pub refit: Option<PathBuf>,
+    /// With --refit: the target's acceptance radius, in position units.
+    #[arg(long, default_value_t = 2.0, requires = "refit")]
+    pub refit_window: f64,
+    #[arg(long, value_enum)]
+    pub decoder: DecoderKind,
+    /// Model file to write.
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Training options (see config/train.toml); flags override it.
+    #[arg(long)]
+    pub config: Option<PathBuf>,
+    /// Bins by which the counts lead the kinematics they are paired with.
+    #[arg(long)]
+    pub lag: Option<usize>,
+    /// Ridge penalty λ; 0 fits without a penalty.
+    #[arg(long)]
+    pub ridge: Option<f64>,
+    /// Point-process only: fit encoding models without spike history.
+    #[arg(long)]
+    pub no_history: bool,
+    /// Skip the cross-validation that fills the model's `cv` scores.
+    #[arg(long)]
+    pub no_cv: bool,
+}
+
+/// The validated configuration after flags.
+pub fn config_with_overrides(
+    config: Option<&Path>,
+    lag: Option<usize>,
+    ridge: Option<f64>,
+) -> Result<TrainConfig> {
+    let mut cfg = load_train_config(config)?;
+    if let Some(lag) = lag {
+        cfg.override_lag(lag);
+    }
+    if let Some(ridge) = ridge {
+        cfg.override_ridge(ridge)?;
+    }
+    Ok(cfg)
+}
+
+pub fn spec_for(kind: DecoderKind, cfg: &TrainConfig) -> Result<DecoderSpec> {
+    match kind {
+        DecoderKind::Kalman => Ok(DecoderSpec::Kalman(cfg.kalman.clone())),
+        DecoderKind::Wiener => Ok(DecoderSpec::Wiener(cfg.wiener.clone())),
+        DecoderKind::PointProcess => Ok(DecoderSpec::PointProcess(cfg.point_process.clone())),
+    }
+}
+
+/// Trains and returns the model file (not yet written).
+pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) -> Result<ModelFile> {
+    let (decoder, fit) = match spec {
+        DecoderSpec::Kalman(opts) => {
+            let (model, report) = fit_kalman(session, opts)?;
+            (
+                DecoderModel::Kalman(model),
+                json!({ "decoder": "kalman", "options": opts, "report": report }),
+            )
+        }
+        DecoderSpec::Wiener(opts) => {
+            let model = fit_wiener(session, opts)?;
+            (
+                DecoderModel::Wiener(model),
+                json!({ "decoder": "wiener", "options": opts }),
+            )
+        }
+        DecoderSpec::PointProcess(opts) => {
+            let (model, report) = fit_point_process_parallel(session, opts)?;
+            (
+                DecoderModel::PointProcess(model),
+                json!({ "decoder": "point-process", "options": opts, "report": report }),
+            )
+        }
+    };
+    let cv = match folds {
+        Some(k) => {
+            let pb = progress::bar(k as u64, "cross-val");
+            let eval = cross_validate(session, std::slice::from_ref(spec), k, |_, _| pb.inc(1))?;
+            pb.finish_and_clear();
+            cv_json(&eval)
+        }
+        None => serde_json::Value::Null,
+    };
+    Ok(ModelFile {
+        bin_ms: session.bin_ms,
+        decoder,
+        provenance: Provenance {
+            trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
+            tool_version: env!("CARGO_PKG_VERSION").to_string(),
+            data_sha256: session.data_sha256(),
+            fit_json: fit.to_string(),
+            cv_json: cv.to_string(),
+        },
+    })
+}
+
+fn cv_json(eval: &Evaluation) -> serde_json::Value {
+    let d = &eval.decoders[0];
+    json!({
+        "folds": eval.folds,
+        "by_trial": eval.by_trial,
+        "outputs": d.outputs,
+        "mean": d.mean,
+        "per_fold": d.per_fold,
+    })
+}
+
+/// Fits the point-process decoder, its channels in parallel on all cores
+/// (each channel's GLM is independent of the others).
+pub fn fit_point_process_parallel(
+    session: &Block,
+    options: &PointProcessFitOptions,
+) -> Result<(PointProcessModel, PointProcessFitReport)> {
+    if session.kinematics.is_none() {
+        return Err(decoder_core::TrainError::NoKinematics.into());
+    }
+    decoder_core::fit::kalman::state_sources(session, &options.state)?;
+    let n = session.n_channels;
+    let threads = std::thread::available_parallelism()
+        .map_or(1, |t| t.get())
+        .min(n.max(1));
+    let pb = progress::bar(n as u64, "fit GLMs");
+    let next = std::sync::atomic::AtomicUsize::new(0);
+    let mut fits: Vec<Option<Result<ChannelGlm, String>>> = vec![None; n];
+    let results = std::sync::Mutex::new(&mut fits);
+    std::thread::scope(|scope| {
+        for _ in 0..threads {
+            scope.spawn(|| {
+                loop {
+                    let c = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+                    if c >= n {
+                        break;
+                    }
+                    let fit = fit_channel(session, options, c);
+                    results.lock().expect("fit results")[c] = Some(fit);
+                    pb.inc(1);
+                }
+            });
+        }
+    });
+    pb.finish_and_clear();
+    let fits = fits
+        .into_iter()
+        .map(|f| f.unwrap_or_else(|| Err("not fitted".into())))
+        .collect();
+    let (model, report) = assemble(session, options, fits)?;
+    for (c, why) in &report.excluded {
+        tracing::warn!("channel {c} left out of the point-process model: {why}");
+    }
+    Ok((model, report))
+}
+
+pub fn run(args: &Args) -> Result<()> {
+    let mut cfg = config_with_overrides(args.config.as_deref(), args.lag, args.ridge)?;
+    if args.no_history && args.decoder != DecoderKind::PointProcess {
+        bail!("--no-history applies to --decoder point-process only");
+    }
+    if args.no_history {
+        cfg.point_process.history = None;
+        cfg.point_process.coupling = false;
+    }
+    let spec = spec_for(args.decoder, &cfg)?;
+    let (session, source) = match (&args.session, &args.refit) {
+        (Some(dir), _) => (Block::read(dir)?, dir.clone()),
+        (None, Some(block)) => {
+            let closed_loop = Block::read(block)?;
+            let (refit, n) = reestimate_intention(&closed_loop, args.refit_window)
+                .with_context(|| format!("re-estimating intention in {}", block.display()))?;
+            println!(
+                "intention re-estimated in {}: {} bins turned toward the target, {} zeroed inside it, {} outside trials left as decoded",
+                block.display(),
+                n.rotated,
+                n.zeroed,
+                n.untouched
+            );
+            (refit, block.clone())
+        }
+        (None, None) => bail!("give --session DIR or --refit BLOCK"),
+    };
+    let folds = if args.no_cv { None } else { Some(cfg.folds) };
+    let model = train_model(&session, &spec, folds)
+        .with_context(|| format!("training on {}", source.display()))?;
+    write_atomic(&args.out, &model.to_bytes())?;
+    println!(
+        "wrote {} ({} decoder, {} channels, {} ms bins)",
+        args.out.display(),
+        model.decoder.kind(),
+        model.decoder.n_channels(),
+        model.bin_ms
+    );
+    if let DecoderModel::PointProcess(m) = &model.decoder {
+        println!(
+            "point-process encoding models: {} channels fitted of {}, history {}",
+            m.channels.iter().flatten().count(),
+            m.n_channels(),
+            if m.history_basis.is_some() {
+                "yes"
+            } else {
+                "no (LNP)"
+            }
+        );
+        for (c, why) in &m.excluded {
+            println!("left out: channel {c} ({why})");
+        }
+    }
+    print_cv_line(&model);
+    Ok(())
+}
+
+pub fn print_cv_line(model: &ModelFile) {
+    let cv: serde_json::Value = serde_json::from_str(&model.provenance.cv_json).unwrap_or_default();
+    if let (Some(outputs), Some(mean)) = (cv["outputs"].as_array(), cv["mean"].as_array()) {
+        let parts: Vec<String> = outputs
+            .iter()
+            .zip(mean)
+            .map(|(o, s)| {
+                format!(
+                    "{} CC {:.3} R² {:.3}",
+                    o.as_str().unwrap_or("?"),
+                    s["cc"].as_f64().unwrap_or(f64::NAN),
+                    s["r2"].as_f64().unwrap_or(f64::NAN)
+                )
+            })
+            .collect();
+        println!(
+            "cross-validated ({} folds): {}",
+            cv["folds"],
+            parts.join(", ")
+        );
+    }
+}

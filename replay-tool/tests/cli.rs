@@ -1,0 +1,825 @@
+//! The replay-tool binary as a user runs it: verbs, outputs, exit codes and
+//! the messages for bad input.
+
+use std::path::Path;
+use std::process::{Command, Output};
+
+use ndarray::Array2;
+use ndarray_npy::ReadNpyExt;
+
+fn tool(args: &[&str]) -> Output {
+    Command::new(env!("CARGO_BIN_EXE_replay-tool"))
+        .args(args)
+        .output()
+        .expect("runs")
+}
+
+fn ok(args: &[&str]) -> String {
+    let out = tool(args);
+    assert!(
+        out.status.success(),
+        "{args:?} failed: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).unwrap()
+}
+
+fn fails_with(args: &[&str], code: i32) -> String {
+    let out = tool(args);
+    assert_eq!(
+        out.status.code(),
+        Some(code),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let err = String::from_utf8(out.stderr).unwrap();
+    assert_eq!(
+        err.trim_end().lines().count(),
+        1,
+        "one-line message expected, got {err:?}"
+    );
+    err
+}
+
+fn p(path: &Path) -> &str {
+    path.to_str().unwrap()
+}
+
+#[test]
+fn simulate_train_replay_and_show() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = dir.path().join("block");
+    let model = dir.path().join("k.model");
+    let est = dir.path().join("est.npy");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "1",
+        "--channels",
+        "24",
+        "--seed",
+        "3",
+    ]);
+    let said = ok(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--lag",
+        "0",
+        "--ridge",
+        "0",
+    ]);
+    assert!(said.contains("cross-validated"), "{said}");
+    ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--out",
+        p(&est),
+    ]);
+    let arr = Array2::<f64>::read_npy(std::fs::File::open(&est).unwrap()).unwrap();
+    assert_eq!(arr.dim(), (3000, 2));
+
+    let csv = dir.path().join("est.csv");
+    ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--out",
+        p(&csv),
+    ]);
+    let text = std::fs::read_to_string(&csv).unwrap();
+    assert_eq!(text.lines().next(), Some("vel_x,vel_y"));
+    assert_eq!(text.lines().count(), 3001);
+
+    let json: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+    assert_eq!(json["kind"], "kalman");
+    assert_eq!(json["channels"], 24);
+    assert_eq!(
+        json["fit"]["options"]["ridge"], 0.0,
+        "the --ridge flag is recorded"
+    );
+    assert_eq!(json["cv"]["folds"], 5);
+    let summary = ok(&["model", "show", p(&model)]);
+    assert!(
+        summary.contains("data sha256") && summary.contains("cv vel_x"),
+        "{summary}"
+    );
+}
+
+#[test]
+fn evaluate_prints_both_decoders_and_writes_a_report() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = dir.path().join("block");
+    let report = dir.path().join("report");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "1",
+        "--channels",
+        "24",
+    ]);
+    let table = ok(&[
+        "evaluate",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--folds",
+        "3",
+        "--report",
+        p(&report),
+    ]);
+    assert!(
+        table.contains("kalman") && table.contains("wiener") && table.contains("mean"),
+        "{table}"
+    );
+    for f in [
+        "scores.csv",
+        "evaluation.json",
+        "heldout_velocity.svg",
+        "heldout_velocity.png",
+    ] {
+        let len = std::fs::metadata(report.join(f))
+            .map(|m| m.len())
+            .unwrap_or(0);
+        assert!(len > 100, "{f} missing or empty");
+    }
+    let csv = std::fs::read_to_string(report.join("scores.csv")).unwrap();
+    assert!(csv.starts_with("decoder,fold,output,cc,r2,rmse"));
+    assert_eq!(csv.lines().filter(|l| l.contains(",mean,")).count(), 4);
+}
+
+#[test]
+fn missing_session_is_a_user_error_naming_the_path() {
+    let dir = tempfile::tempdir().unwrap();
+    let e = fails_with(
+        &[
+            "train",
+            "--session",
+            "/no/such/block",
+            "--decoder",
+            "kalman",
+            "--out",
+            p(&dir.path().join("m")),
+        ],
+        2,
+    );
+    assert!(e.contains("/no/such/block"), "{e}");
+    assert!(!dir.path().join("m").exists(), "no model file on failure");
+}
+
+#[test]
+fn replay_with_the_wrong_array_names_both_channel_counts() {
+    let dir = tempfile::tempdir().unwrap();
+    let a = dir.path().join("a");
+    let b = dir.path().join("b");
+    let model = dir.path().join("a.model");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&a),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "16",
+    ]);
+    ok(&[
+        "simulate",
+        "--out",
+        p(&b),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "12",
+    ]);
+    ok(&[
+        "train",
+        "--session",
+        p(&a),
+        "--decoder",
+        "wiener",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let out = dir.path().join("x.npy");
+    let e = fails_with(
+        &[
+            "replay",
+            "--session",
+            p(&b),
+            "--model",
+            p(&model),
+            "--out",
+            p(&out),
+        ],
+        2,
+    );
+    assert!(e.contains("12 columns") && e.contains("16 channels"), "{e}");
+    assert!(!out.exists());
+}
+
+#[test]
+fn a_damaged_model_file_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let model = dir.path().join("bad.model");
+    std::fs::write(&model, b"not a model at all").unwrap();
+    let e = fails_with(&["model", "show", p(&model)], 2);
+    assert!(
+        e.contains("bad.model") && e.contains("not a model file"),
+        "{e}"
+    );
+}
+
+#[test]
+fn bad_config_key_is_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = dir.path().join("block");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "8",
+    ]);
+    let cfg = dir.path().join("train.toml");
+    std::fs::write(&cfg, "[kalman]\nsteady_sate = true\n").unwrap();
+    let e = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&block),
+            "--decoder",
+            "kalman",
+            "--out",
+            p(&dir.path().join("m")),
+            "--config",
+            p(&cfg),
+        ],
+        2,
+    );
+    assert!(e.contains("train.toml") && e.contains("steady_sate"), "{e}");
+}
+
+#[test]
+fn point_process_decoder_trains_replays_and_exports() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "2",
+        "--channels",
+        "16",
+    ]);
+    let later = dir.path().join("later");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&later),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "16",
+        "--seed",
+        "4",
+    ]);
+    for (name, extra) in [("pp.model", None), ("lnp.model", Some("--no-history"))] {
+        let model = dir.path().join(name);
+        let mut args = vec![
+            "train",
+            "--session",
+            p(&cal),
+            "--decoder",
+            "point-process",
+            "--out",
+            p(&model),
+        ];
+        args.extend(extra);
+        let out = ok(&args);
+        assert!(out.contains("16 channels fitted of 16"), "{out}");
+        let shown = ok(&["model", "show", p(&model)]);
+        assert!(shown.contains("point-process"), "{shown}");
+        let json: serde_json::Value =
+            serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+        assert_eq!(json["kind"], "point-process");
+        for key in [
+            "b0", "beta", "history", "A", "W", "x0", "P0", "state", "outputs",
+        ] {
+            assert!(!json[key].is_null(), "{key} missing");
+        }
+        assert_eq!(json["history_basis"].is_null(), extra.is_some());
+        let est = dir.path().join(format!("{name}.npy"));
+        let out = ok(&[
+            "replay",
+            "--session",
+            p(&later),
+            "--model",
+            p(&model),
+            "--out",
+            p(&est),
+        ]);
+        // Decoding the later block from the same simulated array works.
+        let cc: Vec<f64> = out
+            .lines()
+            .find(|l| l.contains("kinematics"))
+            .unwrap()
+            .split("CC ")
+            .skip(1)
+            .map(|w| {
+                w.split(|c: char| c == ',' || c.is_whitespace())
+                    .next()
+                    .unwrap()
+                    .parse()
+                    .unwrap()
+            })
+            .collect();
+        assert!(cc.iter().all(|&c| c > 0.5), "{name}: {out}");
+    }
+    // The daemon runs it unchanged: a closed-loop run through decoderd.
+    let report = dir.path().join("cl");
+    let out = ok(&[
+        "bench",
+        "--closed-loop",
+        "--model",
+        p(&dir.path().join("pp.model")),
+        "--speed",
+        "0",
+        "--trials",
+        "4",
+        "--report",
+        p(&report),
+    ]);
+    assert!(out.contains("closed loop with"), "{out}");
+}
+
+#[test]
+fn the_example_config_is_valid() {
+    let cfg = concat!(env!("CARGO_MANIFEST_DIR"), "/../config/train.toml");
+    let text = std::fs::read_to_string(cfg).unwrap();
+    decoder_core::fit::config::TrainConfig::from_toml(&text, cfg).unwrap();
+}
+
+#[test]
+fn demo_runs_the_daemon_live_and_the_recording_replays() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("demo");
+    let stdout = ok(&[
+        "demo",
+        "--out",
+        p(&out),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+        "--live-seconds",
+        "2",
+    ]);
+    assert!(stdout.contains("streaming 100 bins"), "{stdout}");
+    let line = stdout
+        .lines()
+        .find(|l| l.contains("reproduced"))
+        .unwrap_or_else(|| panic!("no replay check in {stdout}"));
+    // "offline replay of the recording reproduced N of N sent packets"
+    let nums: Vec<u64> = line
+        .split_whitespace()
+        .filter_map(|w| w.parse().ok())
+        .collect();
+    assert_eq!(nums.len(), 2, "{line}");
+    assert_eq!(nums[0], nums[1], "{line}");
+    assert!(nums[0] >= 100, "{line}");
+    assert!(stdout.contains("latency recv->send"), "{stdout}");
+    let log = stdout
+        .lines()
+        .find_map(|l| l.trim().strip_prefix("recording -> "))
+        .expect("the recording's path");
+    assert!(Path::new(log).is_file(), "{log}");
+}
+
+/// Records a short live session with the demo and returns its log.
+fn recorded_session(dir: &Path) -> std::path::PathBuf {
+    let out = dir.join("demo");
+    let stdout = ok(&[
+        "demo",
+        "--out",
+        p(&out),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+        "--live-seconds",
+        "1",
+    ]);
+    let log = stdout
+        .lines()
+        .find_map(|l| l.trim().strip_prefix("recording -> "))
+        .expect("the recording's path");
+    std::path::PathBuf::from(log)
+}
+
+#[test]
+fn verify_passes_on_a_recording_and_names_the_seq_of_a_changed_byte() {
+    use decoder_core::formats::session_log::{LogReader, LogRecord};
+    let dir = tempfile::tempdir().unwrap();
+    let log = recorded_session(dir.path());
+    let stdout = ok(&["replay", "--session", p(&log), "--verify"]);
+    assert!(stdout.contains("bit for bit"), "{stdout}");
+
+    // Find the datagram record of the 20th bin.
+    let mut reader = LogReader::open(&log).unwrap();
+    let (offset, seq) = loop {
+        let at = reader.offset();
+        match reader.next_record().expect("enough records") {
+            LogRecord::Datagram { bytes, .. } if bytes.len() > 40 => {
+                let seq = u64::from_le_bytes(bytes[8..16].try_into().unwrap());
+                if seq == 20 {
+                    break (at as usize, seq);
+                }
+            }
+            _ => {}
+        }
+    };
+    let original = std::fs::read(&log).unwrap();
+    // One byte of bin 20's counts: length 4 + crc 4 + kind 1 + recv_ns 8,
+    // then the 32-byte bin header.
+    let count_byte = offset + 4 + 4 + 1 + 8 + 32;
+
+    // Changed on disk: the checksum catches it, at the right seq.
+    let mut damaged = original.clone();
+    damaged[count_byte] ^= 0x01;
+    let bad = dir.path().join("damaged.vdlog");
+    std::fs::write(&bad, &damaged).unwrap();
+    let err = fails_with(&["replay", "--session", p(&bad), "--verify"], 1);
+    assert!(err.contains(&format!("seq {seq}")), "{err}");
+
+    // Changed and re-sealed (checksum recomputed): the replay itself
+    // disagrees with the recorded packet of that seq.
+    let mut forged = original.clone();
+    forged[count_byte] = forged[count_byte].wrapping_add(7);
+    let len = u32::from_le_bytes(forged[offset..offset + 4].try_into().unwrap()) as usize;
+    let crc = crc32fast::hash(&forged[offset + 8..offset + 8 + len]);
+    forged[offset + 4..offset + 8].copy_from_slice(&crc.to_le_bytes());
+    let forged_path = dir.path().join("forged.vdlog");
+    std::fs::write(&forged_path, &forged).unwrap();
+    let err = fails_with(&["replay", "--session", p(&forged_path), "--verify"], 1);
+    assert!(err.contains(&format!("seq {seq}: estimate")), "{err}");
+}
+
+fn bench_p99(report: &Path) -> f64 {
+    let s: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("summary.json")).unwrap())
+            .unwrap();
+    s["recv_to_send_us"]["p99"].as_f64().unwrap()
+}
+
+#[test]
+fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
+    let dir = tempfile::tempdir().unwrap();
+    let first = dir.path().join("first");
+    let base = ["bench", "--seconds", "1.5", "--channels", "16"];
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&first)]);
+    let stdout = ok(&args);
+    assert!(stdout.contains("bench passed"), "{stdout}");
+    for f in [
+        "summary.json",
+        "bins.csv",
+        "report.html",
+        "latency_histogram.svg",
+        "latency_over_time.png",
+    ] {
+        assert!(first.join(f).is_file(), "{f}");
+    }
+    let measured = bench_p99(&first);
+    assert!(measured > 0.0);
+    let model = first.join("bench.model");
+    let base = ["bench", "--seconds", "1.5", "--model", p(&model)];
+
+    // A budget far above what this machine just measured passes ...
+    let generous = format!("{}", measured * 100.0 + 10_000.0);
+    let second = dir.path().join("second");
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&second), "--budget-p99-us", &generous]);
+    ok(&args);
+    // ... and one far below it fails with exit 1.
+    let tight = format!("{}", measured / 1000.0);
+    let third = dir.path().join("third");
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&third), "--budget-p99-us", &tight]);
+    let err = fails_with(&args, 1);
+    assert!(err.contains("over the budget"), "{err}");
+    assert!(
+        std::fs::read_to_string(third.join("report.html"))
+            .unwrap()
+            .contains("FAIL")
+    );
+}
+
+fn closed_loop_summary(report: &Path) -> serde_json::Value {
+    let s: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("closed_loop.json")).unwrap())
+            .unwrap();
+    s["summary"].clone()
+}
+
+/// A decoder trained on the simulated array lets the simulated user reach
+/// targets; one trained with the channels shuffled does not; a refit from
+/// the good decoder's closed-loop block is at least as good and faster per
+/// target. Every run is seeded and the loop turns as fast as it can
+/// (bins early for their slots), so the outcomes repeat.
+#[test]
+fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_refit_helps() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "3",
+        "--channels",
+        "32",
+    ]);
+    let good = dir.path().join("good.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&good),
+        "--no-cv",
+    ]);
+
+    // The same block with its channel columns rotated by one: the decoder
+    // reads every channel as its neighbour.
+    let mut s = decoder_core::Block::read(&cal).unwrap();
+    let n = s.n_channels;
+    for row in s.counts.chunks_mut(n) {
+        row.rotate_left(1);
+    }
+    let shuffled_dir = dir.path().join("shuffled");
+    s.write(&shuffled_dir).unwrap();
+    let shuffled = dir.path().join("shuffled.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&shuffled_dir),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&shuffled),
+        "--no-cv",
+    ]);
+
+    let run = |model: &Path, name: &str, seed: &str| {
+        let report = dir.path().join(name);
+        ok(&[
+            "bench",
+            "--closed-loop",
+            "--model",
+            p(model),
+            "--speed",
+            "0",
+            "--trials",
+            "12",
+            "--task-seed",
+            seed,
+            "--report",
+            p(&report),
+        ]);
+        (closed_loop_summary(&report), report)
+    };
+    let (with_good, good_report) = run(&good, "cl-good", "3");
+    let (with_shuffled, _) = run(&shuffled, "cl-shuffled", "3");
+    let success = |v: &serde_json::Value| v["success_rate"].as_f64().unwrap();
+    assert!(success(&with_good) >= 0.5, "{with_good}");
+    assert!(success(&with_shuffled) <= 0.25, "{with_shuffled}");
+
+    let refit = dir.path().join("refit.model");
+    let block = good_report.join("closed-loop-block");
+    let out = ok(&[
+        "train",
+        "--refit",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&refit),
+        "--no-cv",
+    ]);
+    assert!(out.contains("intention re-estimated"), "{out}");
+    // Judged on targets it was not refit on.
+    let (seed_after, _) = run(&good, "cl-good-2", "4");
+    let (refit_after, _) = run(&refit, "cl-refit", "4");
+    assert!(
+        success(&refit_after) >= success(&seed_after),
+        "{refit_after} vs {seed_after}"
+    );
+    eprintln!("good {with_good}\nshuffled {with_shuffled}\nseed {seed_after}\nrefit {refit_after}");
+    let per_target = |v: &serde_json::Value| v["mean_trial_time_s"].as_f64().unwrap();
+    assert!(
+        per_target(&refit_after) <= per_target(&seed_after),
+        "{refit_after} vs {seed_after}"
+    );
+}
+
+#[test]
+fn live_replay_through_a_running_daemon_equals_offline_decoding() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+    ]);
+    let model = dir.path().join("k.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let block = dir.path().join("block");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "0.1",
+        "--channels",
+        "16",
+        "--seed",
+        "5",
+    ]);
+    // The running daemon (here on threads of this test) sends to `sink`.
+    let sink = std::net::UdpSocket::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap();
+    let daemon =
+        replay_tool::live::SpawnedDaemon::start(None, &model, &dir.path().join("d"), sink, false)
+            .unwrap();
+    let target = daemon.listen.to_string();
+    let sink_text = sink.to_string();
+    let out = ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--live",
+        "--target",
+        &target,
+        "--sink",
+        &sink_text,
+        "--speed",
+        "4",
+    ]);
+    assert!(
+        out.contains("300 of 300 live estimates equal offline decoding bit for bit"),
+        "{out}"
+    );
+
+    // Against another model, the same stream differs and the check fails.
+    let other_cal = dir.path().join("other-cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&other_cal),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+        "--seed",
+        "9",
+        "--population",
+        "2",
+    ]);
+    let other = dir.path().join("other.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&other_cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&other),
+        "--no-cv",
+    ]);
+    let err = fails_with(
+        &[
+            "replay",
+            "--session",
+            p(&block),
+            "--model",
+            p(&other),
+            "--live",
+            "--target",
+            &target,
+            "--sink",
+            &sink_text,
+            "--speed",
+            "4",
+        ],
+        1,
+    );
+    assert!(err.contains("differ"), "{err}");
+    // And with the right model again, on the now used daemon: a new stream
+    // resets it, and the check passes from the stream's first decoded bin.
+    let out = ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--live",
+        "--target",
+        &target,
+        "--sink",
+        &sink_text,
+        "--speed",
+        "4",
+    ]);
+    assert!(out.contains("299 of 299 live estimates equal"), "{out}");
+    daemon.stop().unwrap();
+}
+
+#[test]
+fn evaluate_compares_point_process_forms_with_goodness_of_fit() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = dir.path().join("block");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "1",
+        "--channels",
+        "8",
+        "--bin-ms",
+        "1",
+        "--refractory-ms",
+        "3",
+        "--recovery-ms",
+        "15",
+    ]);
+    let cfg = dir.path().join("train.toml");
+    std::fs::write(
+        &cfg,
+        "[point_process]\nhistory_basis = 8\nhistory_span_bins = 80\n",
+    )
+    .unwrap();
+    let report = dir.path().join("report");
+    let out = ok(&[
+        "evaluate",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman,point-process",
+        "--folds",
+        "2",
+        "--config",
+        p(&cfg),
+        "--report",
+        p(&report),
+    ]);
+    for name in ["kalman", "wiener", "pp-lnp", "pp-history"] {
+        assert!(out.contains(name), "{name} missing from {out}");
+    }
+    assert!(out.contains("within the KS 95 % band"), "{out}");
+    let csv = std::fs::read_to_string(report.join("goodness_of_fit.csv")).unwrap();
+    assert_eq!(csv.lines().count(), 1 + 2 * 8, "{csv}");
+    assert!(
+        std::fs::read_to_string(report.join("ks_plots.svg"))
+            .unwrap()
+            .contains("<svg")
+    );
+}

@@ -1,7 +1,7 @@
 #!/usr/bin/env python3
 """A minimal actuator client: receive decoderd's velocity packets and print them.
 
-Binds the actuator address, parses each NVEL datagram (SPEC section 2) and
+Binds the actuator address, parses each NVEL datagram (PROTOCOL.md §2) and
 prints seq, state, flags, command and estimate; on Ctrl-C prints how many
 packets came in each state. Standard library only. A real actuator client
 follows `command` (never `estimate`) and stops when packets stop coming.

@@ -2,7 +2,7 @@
 """Stream a session directory to decoderd as a front end would.
 
 Reads counts.npy (any little-endian integer dtype, C order) and manifest.toml
-from a session directory and sends one NBIN datagram per bin (SPEC section 1)
+from a session directory and sends one NBIN datagram per bin (PROTOCOL.md §1)
 at the bin rate, stamping origin_ns with CLOCK_MONOTONIC at the end of each
 bin. Standard library only, so it runs on any rig computer with Python 3.11+.
 

@@ -3,7 +3,7 @@
 //! validation into typed values a running daemon can trust. Every error
 //! names the key and says what would be accepted. Every key has a default
 //! except the model, so an empty file plus `--model` is a valid
-//! configuration (SPEC §5); `config/daemon.toml` documents each key.
+//! configuration (PROTOCOL.md §5); `config/daemon.toml` documents each key.
 
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};

@@ -1,5 +1,5 @@
-//! The real daemon on ephemeral loopback ports, spoken to in the SPEC's
-//! bytes: normal stream, gaps, malformed datagrams, duplicates and
+//! The real daemon on ephemeral loopback ports, spoken to in the bytes of
+//! PROTOCOL.md: normal stream, gaps, malformed datagrams, duplicates and
 //! reordering, a flood, hot-swap under load, operator commands, SIGTERM,
 //! and the offline replay of what it recorded.
 

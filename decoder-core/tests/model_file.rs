@@ -76,7 +76,7 @@ fn truncated_file_is_refused() {
     ));
 }
 
-/// SPEC §4: the keys other programs read.
+/// PROTOCOL.md §4: the keys other programs read.
 #[test]
 fn json_export_has_the_contract_keys() {
     let j = export_json(&small_model());

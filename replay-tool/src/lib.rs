@@ -66,7 +66,7 @@ pub enum ModelCommand {
     Show {
         /// The model file.
         model: PathBuf,
-        /// Print the SPEC §4 JSON export instead of a summary.
+        /// Print the PROTOCOL.md §4 JSON export instead of a summary.
         #[arg(long)]
         json: bool,
     },

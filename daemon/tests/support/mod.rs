@@ -1,6 +1,6 @@
 //! A harness that starts the real `decoderd` binary on ephemeral loopback
-//! ports, plays front end (bin packets in the SPEC §1 bytes) and actuator
-//! (collects SPEC §2 packets), and talks to the control socket.
+//! ports, plays front end (bin packets in the PROTOCOL.md §1 bytes) and actuator
+//! (collects PROTOCOL.md §2 packets), and talks to the control socket.
 
 #![allow(dead_code)]
 

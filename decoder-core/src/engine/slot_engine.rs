@@ -2,9 +2,9 @@
 //!
 //! The daemon reads a datagram, notes the monotonic time, and hands both to
 //! a [`SlotEngine`]; when nothing arrives it hands over the time alone. The
-//! engine parses the bin (SPEC §1), keeps the bin clock, decides for every
+//! engine parses the bin (PROTOCOL.md §1), keeps the bin clock, decides for every
 //! slot whether it is decoded from counts or answered with a predict-only
-//! step, runs the supervisor and encodes the velocity packet (SPEC §2). It
+//! step, runs the supervisor and encodes the velocity packet (PROTOCOL.md §2). It
 //! reads no clock and touches no socket, so feeding it the recorded
 //! datagrams and times of a session gives back the recorded packets bit for
 //! bit — this is what offline replay of a session log does.

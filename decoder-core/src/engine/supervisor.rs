@@ -1,13 +1,13 @@
 //! The safety supervisor: turns a decoded estimate into the command an
 //! actuator may follow, and owns the states disarmed, armed, coasting and
-//! halted (SPEC §2).
+//! halted (PROTOCOL.md §2).
 //!
 //! It is the last thing between the decoder and a device attached to a
 //! person, so its rules are few and strict: the command is zero unless the
 //! state is armed or coasting; it is never NaN or infinite; its speed never
 //! exceeds `max_speed` and its change per bin never exceeds
 //! `max_accel · bin`, also when stopping (a controlled stop at the
-//! acceleration limit, so the SPEC's acceleration bound holds for every
+//! acceleration limit, so the acceleration bound of PROTOCOL.md §2 holds for every
 //! packet). Any doubt — missing bins beyond the coast limit, a non-finite
 //! estimate, a numerical fault, a new stream — halts, and only an operator
 //! re-arms.
@@ -16,7 +16,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::formats::packet::{FLAG_ACCEL_CLAMPED, FLAG_SPEED_CLAMPED};
 
-/// The supervisor state, with its SPEC §2 wire value.
+/// The supervisor state, with its wire value (PROTOCOL.md §2).
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum SupervisorState {

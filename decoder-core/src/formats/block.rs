@@ -116,7 +116,7 @@ struct ManifestFile {
 }
 
 impl Block {
-    /// Reads a session directory (SPEC §3). `kinematics.npy` may be absent;
+    /// Reads a session directory (PROTOCOL.md §3). `kinematics.npy` may be absent;
     /// training then refuses the block with its own error.
     pub fn read(dir: &Path) -> Result<Block, BlockError> {
         if !dir.is_dir() {

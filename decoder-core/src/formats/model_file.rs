@@ -5,7 +5,7 @@
 //! payload length, u32 CRC-32 of the payload, then the payload (bincode of
 //! [`ModelFile`]). A wrong magic, version, length or checksum is refused
 //! before anything is decoded, so a truncated copy or a file of another kind
-//! never reaches the filter. The JSON export (SPEC §4) is in [`export_json`].
+//! never reaches the filter. The JSON export (PROTOCOL.md §4) is in [`export_json`].
 
 use std::path::Path;
 
@@ -184,7 +184,7 @@ impl ModelFile {
     }
 }
 
-/// The SPEC §4 JSON export.
+/// The PROTOCOL.md §4 JSON export.
 pub fn export_json(model: &ModelFile) -> Value {
     let prov = &model.provenance;
     let fit: Value = serde_json::from_str(&prov.fit_json).unwrap_or(Value::Null);

@@ -1,4 +1,4 @@
-//! The two UDP packet layouts (SPEC §1 bin packet, §2 velocity packet).
+//! The two UDP packet layouts (PROTOCOL.md §1 bin packet, §2 velocity packet).
 //!
 //! Parsing a bin packet is the first thing the daemon does with bytes from
 //! the network, so it must return a value or a typed reason for any input
@@ -109,7 +109,7 @@ fn u64_at(b: &[u8], at: usize) -> u64 {
 
 /// Parses and checks the structure of a bin datagram: header, magic,
 /// version, channel range and exact length. Unknown flag bits are kept but
-/// ignored, as SPEC §1 says.
+/// ignored, as PROTOCOL.md §1 says.
 pub fn parse_bin(datagram: &[u8]) -> Result<BinHeader, RejectReason> {
     if datagram.len() < BIN_HEADER_LEN {
         return Err(RejectReason::TooShort {

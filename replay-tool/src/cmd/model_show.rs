@@ -1,5 +1,5 @@
 //! `replay-tool model show`: what a model file holds, as a short summary or
-//! as the SPEC §4 JSON export.
+//! as the PROTOCOL.md §4 JSON export.
 
 use std::fmt::Write as _;
 use std::path::Path;

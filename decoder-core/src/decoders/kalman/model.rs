@@ -1,5 +1,5 @@
 //! Trained Kalman decoder parameters, in the layout that model files store
-//! and `model show --json` exports (SPEC §4).
+//! and `model show --json` exports (PROTOCOL.md §4).
 
 use serde::{Deserialize, Serialize};
 

@@ -178,6 +178,10 @@ pub enum ConfigError {
         key: &'static str,
         problem: String,
     },
+    #[error(
+        "--arm is refused: the actuator address {actuator} is not loopback, and arming at start is for bench use only (PROTOCOL.md §5); start disarmed and arm with `decoderd ctl arm`"
+    )]
+    ArmNotLoopback { actuator: SocketAddr },
 }
 
 impl RawConfig {
@@ -403,6 +407,14 @@ impl Config {
             log_level,
             arm_at_start: overrides.arm,
         })
+        .and_then(|config: Config| {
+            if config.arm_at_start && !config.actuator.ip().is_loopback() {
+                return Err(ConfigError::ArmNotLoopback {
+                    actuator: config.actuator,
+                });
+            }
+            Ok(config)
+        })
     }
 
     /// The slot engine's settings for a model with `bin_ms` bins.
@@ -522,6 +534,19 @@ mod tests {
         assert_eq!(c.listen.port(), 5000);
         assert_eq!(c.record_dir.as_deref(), Some(Path::new("/tmp/r")));
         assert!(c.arm_at_start);
+    }
+
+    #[test]
+    fn arm_at_start_is_refused_for_an_actuator_that_is_not_loopback() {
+        let o = Overrides {
+            arm: true,
+            ..with_model()
+        };
+        let remote = "[network]\nactuator = \"192.0.2.7:9001\"\nallow_non_loopback = true";
+        let e = resolve(remote, &o).unwrap_err().to_string();
+        assert!(e.contains("--arm") && e.contains("192.0.2.7:9001"), "{e}");
+        // The same file without --arm is a valid configuration.
+        assert!(resolve(remote, &with_model()).is_ok());
     }
 
     #[test]

@@ -384,6 +384,9 @@ impl Config {
                 format!("{log_level:?}; use error, warn, info, debug or trace"),
             ));
         }
+        if overrides.arm && !actuator.ip().is_loopback() {
+            return Err(ConfigError::ArmNotLoopback { actuator });
+        }
         Ok(Config {
             listen,
             actuator,
@@ -406,14 +409,6 @@ impl Config {
             log_format,
             log_level,
             arm_at_start: overrides.arm,
-        })
-        .and_then(|config: Config| {
-            if config.arm_at_start && !config.actuator.ip().is_loopback() {
-                return Err(ConfigError::ArmNotLoopback {
-                    actuator: config.actuator,
-                });
-            }
-            Ok(config)
         })
     }
 

@@ -6,7 +6,7 @@ from a session directory and sends one NBIN datagram per bin (PROTOCOL.md §1)
 at the bin rate, stamping origin_ns with CLOCK_MONOTONIC at the end of each
 bin. Standard library only, so it runs on any rig computer with Python 3.11+.
 
-    python3 examples/send_bins.py demo-output/later-block --target 127.0.0.1:27400
+    python3 examples/send_bins.py demo-output/later-block --daemon 127.0.0.1:27400
 """
 
 import argparse
@@ -56,8 +56,10 @@ def read_counts(path: Path):
 def main():
     p = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("session", type=Path, help="session directory (manifest.toml, counts.npy)")
-    p.add_argument("--target", default="127.0.0.1:27400", help="decoderd's listen address")
-    p.add_argument("--speed", type=float, default=1.0, help="playback speed-up (1 = real time)")
+    p.add_argument("--daemon", default="127.0.0.1:27400", help="decoderd's listen address (network.listen)")
+    p.add_argument(
+        "--time-scale", type=float, default=1.0, help="time between bins in bin widths (1 = the bin rate, 0.5 = twice as fast)"
+    )
     p.add_argument("--start-seq", type=int, default=0, help="seq of the first bin")
     p.add_argument("--limit", type=int, default=0, help="send at most this many bins (0 = all)")
     args = p.parse_args()
@@ -65,11 +67,13 @@ def main():
     manifest = tomllib.loads((args.session / "manifest.toml").read_text())
     bin_ms = float(manifest["bin_ms"])
     rows, cols, values = read_counts(args.session / "counts.npy")
-    host, port = args.target.rsplit(":", 1)
+    host, port = args.daemon.rsplit(":", 1)
     sock = socket.socket(socket.AF_INET, socket.SOCK_DGRAM)
     dest = (host, int(port))
     bin_us = round(bin_ms * 1000)
-    period_ns = int(bin_ms * 1e6 / args.speed)
+    if not args.time_scale > 0:
+        sys.exit(f"--time-scale {args.time_scale}: must be above 0")
+    period_ns = int(bin_ms * 1e6 * args.time_scale)
     n = rows if args.limit <= 0 else min(rows, args.limit)
     row_fmt = "<" + "H" * cols
     t0 = time.monotonic_ns()
@@ -82,7 +86,7 @@ def main():
             time.sleep(min((due - now) / 1e9, 0.002))
         header = MAGIC + struct.pack("<HHQQII", VERSION, cols, args.start_seq + i, time.monotonic_ns(), bin_us, 0)
         sock.sendto(header + struct.pack(row_fmt, *values[i * cols : (i + 1) * cols]), dest)
-    print(f"sent {n} bins of {cols} channels at {bin_ms} ms to {args.target}", file=sys.stderr)
+    print(f"sent {n} bins of {cols} channels at {bin_ms} ms to {args.daemon}", file=sys.stderr)
 
 
 if __name__ == "__main__":

@@ -11,20 +11,16 @@
 //! BENCH_BINS, BENCH_CHANNELS, BENCH_RATE_HZ, BENCH_RECORD (0 = off),
 //! BENCH_FIFO (SCHED_FIFO priority for the decode thread, 0 = off).
 
-use std::net::{SocketAddr, UdpSocket};
+use std::net::UdpSocket;
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
-use std::sync::{Arc, Mutex};
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
-use daemon::control::{Request, request};
-use daemon::loopback::{BinFault, Sink, loopback_floor, paced_send};
-use daemon::status::{Percentiles, Status};
-use decoder_core::decoders::DecoderModel;
-use decoder_core::fit::kalman::{KalmanFitOptions, SteadyStateOptions, fit_kalman};
-use decoder_core::formats::model_file::{ModelFile, Provenance};
+use daemon::status::Percentiles;
+use daemon_rig::{ActuatorSink, BinFault, Launch, loopback_floor, paced_send};
+use decoder_core::fit::kalman::{KalmanFitOptions, SteadyStateOptions};
 use decoder_core::formats::packet::{self, FLAG_BIN_MISSING};
-use decoder_core::sim::reaching::{SimOptions, simulate};
+use decoder_core::sim::model::simulated_kalman;
+use decoder_core::sim::reaching::SimOptions;
 
 fn env(name: &str, default: u64) -> u64 {
     std::env::var(name)
@@ -39,12 +35,8 @@ fn pcts(v: &[u64]) -> Percentiles {
     Percentiles::of_samples_ns(&v)
 }
 
-fn status(socket: &Path) -> Status {
-    *request(socket, &Request::Status).unwrap().status.unwrap()
-}
-
-fn rss_kb(child: &Child, field: &str) -> Option<u64> {
-    let text = std::fs::read_to_string(format!("/proc/{}/status", child.id())).ok()?;
+fn rss_kb(pid: u32, field: &str) -> Option<u64> {
+    let text = std::fs::read_to_string(format!("/proc/{pid}/status")).ok()?;
     text.lines()
         .find(|l| l.starts_with(field))?
         .split_whitespace()
@@ -61,15 +53,13 @@ fn main() {
     let record = env("BENCH_RECORD", 1) != 0;
     let bin_ms = 1000.0 / rate_hz as f64;
     eprintln!("building a {channels}-channel {bin_ms} ms steady-state Kalman model ...");
-    let (session, _) = simulate(&SimOptions {
-        minutes: 1.0,
-        n_channels: channels,
-        bin_ms,
-        ..SimOptions::default()
-    })
-    .unwrap();
-    let (k, _) = fit_kalman(
-        &session,
+    let (model, session) = simulated_kalman(
+        &SimOptions {
+            minutes: 1.0,
+            n_channels: channels,
+            bin_ms,
+            ..SimOptions::default()
+        },
         &KalmanFitOptions {
             steady_state: Some(SteadyStateOptions {
                 tolerance: 1e-10,
@@ -79,12 +69,7 @@ fn main() {
         },
     )
     .unwrap();
-    let dims = k.outputs.len();
-    let model = ModelFile {
-        bin_ms,
-        decoder: DecoderModel::Kalman(k),
-        provenance: Provenance::untracked(),
-    };
+    let dims = model.decoder.outputs().len();
     let work = tempfile::tempdir().unwrap();
     let model_path = work.path().join("bench.model");
     std::fs::write(&model_path, model.to_bytes()).unwrap();
@@ -103,72 +88,44 @@ fn main() {
     eprintln!(
         "decoderd: {n} bins at {rate_hz} Hz × {channels} channels, recording {record}, SCHED_FIFO priority {fifo} (0 = off) ..."
     );
-    let socket = work.path().join("ctl.sock");
-    let config = work.path().join("daemon.toml");
-    std::fs::write(
-        &config,
-        format!(
-            "[control]\nsocket = {:?}\n[recording]\nenabled = {}\ndir = {:?}\n[monitor]\nsummary_interval_s = 3600.0\n[realtime]\nfifo_priority = {}\n",
-            socket.display().to_string(),
-            record,
-            work.path().join("rec").display().to_string(),
-            fifo
-        ),
-    )
-    .unwrap();
-    let sink = Sink::start(UdpSocket::bind("127.0.0.1:0").unwrap(), n).unwrap();
-    let mut child = Command::new(env!("CARGO_BIN_EXE_decoderd"))
-        .args(["run", "--arm", "--listen", "127.0.0.1:0", "--actuator"])
-        .arg(sink.addr.to_string())
-        .arg("--config")
-        .arg(&config)
-        .arg("--model")
-        .arg(&model_path)
-        .stdin(Stdio::null())
-        .stdout(Stdio::null())
-        .stderr(Stdio::null())
-        .spawn()
+    let sink = ActuatorSink::on_loopback().unwrap();
+    let daemon = Launch::new(&model_path, work.path(), sink.addr)
+        .binary(Some(Path::new(env!("CARGO_BIN_EXE_decoderd"))))
+        .extra_toml(&format!(
+            "[recording]\nenabled = {record}\n[monitor]\nsummary_interval_s = 3600.0\n[realtime]\nfifo_priority = {fifo}\n"
+        ))
+        .record(record)
+        .arm(true)
+        .start()
         .unwrap();
-    let up = Instant::now();
-    let first = loop {
-        if let Ok(r) = request(&socket, &Request::Status) {
-            if let Some(s) = r.status {
-                break *s;
-            }
-        }
-        assert!(
-            up.elapsed() < Duration::from_secs(30),
-            "decoderd did not start"
-        );
-        std::thread::sleep(Duration::from_millis(20));
-    };
-    let listen: SocketAddr = first.listen.parse().unwrap();
+    let listen = daemon.listen;
+    let pid = daemon.pid().unwrap();
     let sender = UdpSocket::bind("127.0.0.1:0").unwrap();
     // Warm-up: 1000 bins, then the allocation baseline.
-    let warm = 1000.min(n / 10).max(1);
-    let warm_status = Arc::new(Mutex::new(None));
-    std::thread::scope(|scope| {
-        let ws = warm_status.clone();
-        let socket = socket.clone();
-        scope.spawn(move || {
-            std::thread::sleep(Duration::from_secs_f64(
-                (warm as f64 + 5.0) / rate_hz as f64 + 0.01,
-            ));
-            *ws.lock().unwrap() = Some(status(&socket));
+    let warm = 1000.min(n / 10).max(1) as u64;
+    let patience = Duration::from_secs_f64(n as f64 / rate_hz as f64 + 30.0);
+    let warm_status = std::thread::scope(|scope| {
+        let baseline = scope.spawn(|| {
+            daemon
+                .wait_for_status("the warm-up bins answered", patience, |s| {
+                    s.counters.slots_answered >= warm
+                })
+                .unwrap()
         });
         paced_send(&sender, listen, &bins, n, rate_hz as f64, |_| {
             BinFault::None
         });
+        baseline.join().unwrap()
     });
-    std::thread::sleep(Duration::from_millis(50));
-    let end = status(&socket);
-    let peak_kb = rss_kb(&child, "VmHWM:");
-    let rss_now_kb = rss_kb(&child, "VmRSS:");
-    // SAFETY: signalling our own child by pid.
-    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
-    let exit = child.wait().unwrap();
-    let rec = sink.finish();
-    let warm_status = warm_status.lock().unwrap().take().unwrap();
+    let end = daemon
+        .wait_for_status("every bin answered", patience, |s| {
+            s.counters.slots_answered >= n as u64
+        })
+        .unwrap();
+    let peak_kb = rss_kb(pid, "VmHWM:");
+    let rss_now_kb = rss_kb(pid, "VmRSS:");
+    daemon.stop().unwrap();
+    let rec = sink.finish_per_seq(0, n);
     let unanswered = rec.packets.iter().filter(|p| p.is_none()).count();
     let coasted = rec
         .packets
@@ -211,7 +168,6 @@ fn main() {
         "peak_rss_mb": peak_kb.map(|k| k as f64 / 1024.0),
         "realtime_warnings": end.realtime_warnings,
         "records_lost": end.recording.as_ref().map(|r| r.records_lost),
-        "clean_exit": exit.success(),
     });
     println!("{}", serde_json::to_string_pretty(&report).unwrap());
     println!();

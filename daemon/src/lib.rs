@@ -10,7 +10,6 @@
 pub mod alloc_count;
 pub mod config;
 pub mod control;
-pub mod loopback;
 pub mod recorder;
 pub mod rt_loop;
 pub mod status;
@@ -84,14 +83,35 @@ pub struct RunArgs {
     pub arm: bool,
 }
 
+impl RunArgs {
+    /// The `decoderd run …` arguments that say the same as these settings,
+    /// for a launcher that starts the daemon as a process.
+    pub fn to_command_line(&self) -> Vec<std::ffi::OsString> {
+        let mut a: Vec<std::ffi::OsString> = vec!["run".into()];
+        let mut flag = |name: &str, value: Option<std::ffi::OsString>| {
+            if let Some(v) = value {
+                a.push(name.into());
+                a.push(v);
+            }
+        };
+        flag("--config", self.config.clone().map(Into::into));
+        flag("--model", self.model.clone().map(Into::into));
+        flag("--listen", self.listen.clone().map(Into::into));
+        flag("--actuator", self.actuator.clone().map(Into::into));
+        flag("--record", self.record.clone().map(Into::into));
+        flag("--socket", self.socket.clone().map(Into::into));
+        if self.arm {
+            a.push("--arm".into());
+        }
+        a
+    }
+}
+
 #[derive(Debug, clap::Args)]
 pub struct CtlArgs {
     /// Control socket of the running daemon.
     #[arg(long, default_value = config::DEFAULT_SOCKET)]
     pub socket: PathBuf,
-    /// Print status as JSON.
-    #[arg(long)]
-    pub json: bool,
     #[command(subcommand)]
     pub action: CtlAction,
 }
@@ -99,7 +119,11 @@ pub struct CtlArgs {
 #[derive(Debug, Subcommand)]
 pub enum CtlAction {
     /// Show state, counters, latency, channel health and recording.
-    Status,
+    Status {
+        /// Print the status as JSON (PROTOCOL.md §5) instead of a table.
+        #[arg(long)]
+        json: bool,
+    },
     /// Arm: the command follows the decoder (needs a live stream).
     Arm,
     /// Disarm: command zero.
@@ -175,7 +199,7 @@ pub fn init_logging(format: LogFormat, level: &str) {
 /// `decoderd ctl`: prints the reply; Ok(false) when the daemon refused.
 pub fn ctl(args: &CtlArgs) -> Result<bool> {
     let request = match &args.action {
-        CtlAction::Status => Request::Status,
+        CtlAction::Status { .. } => Request::Status,
         CtlAction::Arm => Request::Arm,
         CtlAction::Disarm => Request::Disarm,
         CtlAction::Halt => Request::Halt,
@@ -186,7 +210,8 @@ pub fn ctl(args: &CtlArgs) -> Result<bool> {
         },
     };
     let reply: Reply = control::request(&args.socket, &request)?;
-    match (&reply.status, args.json) {
+    let json = matches!(args.action, CtlAction::Status { json: true });
+    match (&reply.status, json) {
         (Some(s), true) => println!("{}", serde_json::to_string_pretty(s)?),
         (Some(s), false) => print!("{}", s.table()),
         (None, _) if reply.ok => println!("{}", reply.message),
@@ -226,9 +251,50 @@ fn log_path(dir: &Path) -> Result<PathBuf> {
     )
 }
 
+/// A daemon that [`start`] has brought up: its sockets are bound, its
+/// threads run, and the addresses it is reachable on are here as typed
+/// values, so a caller never reads them back out of a status text.
+pub struct DaemonHandle {
+    /// Where bin packets are received (the bound `network.listen`).
+    pub listen: SocketAddr,
+    /// Where velocity packets go (`network.actuator`).
+    pub actuator: SocketAddr,
+    /// The local control socket.
+    pub control_socket: PathBuf,
+    /// The session log being written, when recording is on.
+    pub recording: Option<PathBuf>,
+    shutdown: Arc<AtomicBool>,
+    control: std::thread::JoinHandle<Result<Status>>,
+}
+
+impl DaemonHandle {
+    /// Blocks until the daemon stops (the shutdown flag, SIGTERM or
+    /// SIGINT) and returns its final status.
+    pub fn wait(self) -> Result<Status> {
+        self.control
+            .join()
+            .map_err(|_| anyhow::anyhow!("the control thread panicked"))?
+    }
+
+    /// Asks the daemon to stop, then waits for it.
+    pub fn stop(self) -> Result<Status> {
+        self.shutdown.store(true, Ordering::Relaxed);
+        self.wait()
+    }
+}
+
 /// Runs the daemon until `shutdown` is set or SIGTERM/SIGINT arrives;
 /// returns the final status.
 pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
+    start(config, shutdown)?.wait()
+}
+
+/// Loads the model, binds the sockets, opens the session log and starts
+/// the daemon's threads; returns once every socket is bound, with their
+/// addresses. Errors here (a model that cannot run, an address in use, a
+/// recording directory that cannot be created) happen before any thread
+/// starts.
+pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> {
     let started = Instant::now();
     let model_path = config.model.clone();
     let mut loaded = control::read_model(&model_path).context("model.path / --model")?;
@@ -292,7 +358,8 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
                 sys::monotonic_ns(),
                 std::mem::take(&mut loaded.bytes),
             );
-            tracing::info!(path = %path.display(), "recording the session");
+            let shown = std::path::absolute(&path).unwrap_or(path.clone());
+            tracing::info!("recording the session to {}", shown.display());
             (Some(rec), Some(batcher))
         }
         None => {
@@ -373,15 +440,40 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
         .context("cannot start the control runtime")?;
     let summary_every = config.summary_interval;
     let socket_path = config.control_socket.clone();
-    runtime.block_on(async {
-        let server = tokio::spawn(control::serve(listener_std, control_tx.clone(), shape));
-        let summary = tokio::spawn(summary_lines(control_tx.clone(), summary_every));
-        wait_for_stop(&shutdown).await;
-        shutdown.store(true, Ordering::Relaxed);
-        server.abort();
-        summary.abort();
-    });
-    drop(control_tx);
+    let recording = recorder.as_ref().map(|r| r.path.clone());
+    let stop_flag = shutdown.clone();
+    let control = std::thread::Builder::new()
+        .name("decoderd-control".into())
+        .spawn(move || {
+            runtime.block_on(async {
+                let server = tokio::spawn(control::serve(listener_std, control_tx.clone(), shape));
+                let summary = tokio::spawn(summary_lines(control_tx.clone(), summary_every));
+                wait_for_stop(&stop_flag).await;
+                stop_flag.store(true, Ordering::Relaxed);
+                server.abort();
+                summary.abort();
+            });
+            drop(control_tx);
+            finish(rt_thread, recorder, &socket_path, events_thread)
+        })?;
+    Ok(DaemonHandle {
+        listen,
+        actuator,
+        control_socket: config.control_socket.clone(),
+        recording,
+        shutdown,
+        control,
+    })
+}
+
+/// After the stop: joins the decode thread, flushes the recording, removes
+/// the control socket and logs the final line.
+fn finish(
+    rt_thread: std::thread::JoinHandle<Status>,
+    recorder: Option<Recorder>,
+    socket_path: &Path,
+    events_thread: std::thread::JoinHandle<()>,
+) -> Result<Status> {
     let mut status = rt_thread
         .join()
         .map_err(|_| anyhow::anyhow!("the decode thread panicked"))?;
@@ -389,7 +481,7 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
     if let Some(rec) = recorder {
         rec.join();
     }
-    let _ = std::fs::remove_file(&socket_path);
+    let _ = std::fs::remove_file(socket_path);
     let _ = events_thread.join();
     let recording = status
         .recording

@@ -169,7 +169,7 @@ fn flood_at_100x_the_bin_rate_leaves_every_slot_answered() {
     let flooder = d.sender.try_clone().unwrap();
     let target = d.listen;
     let stop = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
-    let ticks_before = cpu_ticks(d.child.id());
+    let ticks_before = cpu_ticks(d.pid());
     let wall = Instant::now();
     let flood = {
         let stop = stop.clone();
@@ -194,7 +194,7 @@ fn flood_at_100x_the_bin_rate_leaves_every_slot_answered() {
     stop.store(true, std::sync::atomic::Ordering::Relaxed);
     let flooded = flood.join().unwrap();
     let p = d.wait_for_seq(99);
-    let used = cpu_ticks(d.child.id()) - ticks_before;
+    let used = cpu_ticks(d.pid()) - ticks_before;
     let elapsed = wall.elapsed().as_secs_f64();
     // SAFETY: sysconf with a valid name.
     let hz = unsafe { libc::sysconf(libc::_SC_CLK_TCK) } as f64;
@@ -293,10 +293,9 @@ fn operator_commands_drive_the_supervisor() {
 fn sigterm_stops_cleanly_and_the_log_replays_bit_for_bit() {
     let mut d = Daemon::start(true, TEST_TIMING);
     d.stream((0..30).chain(33..60), 0);
-    d.wait_for_seq(59);
-    std::thread::sleep(BIN * 8); // heartbeat slots after the sender stops
-    let (exit, log, received) = d.stop();
-    assert!(exit.success(), "exit {exit:?}: {}", d.log_text());
+    d.wait_for_seq(67); // heartbeat slots after the sender stops
+    let ended = d.stop();
+    let (log, received) = (ended.session_log, ended.packets);
 
     let mut reader = LogReader::open(&log).unwrap();
     let mut sent = Vec::new();
@@ -335,7 +334,7 @@ fn a_torn_tail_is_detected_and_the_log_reads_up_to_it() {
     let mut d = Daemon::start(true, TEST_TIMING);
     d.stream(0..20, 0);
     d.wait_for_seq(19);
-    let (_, log, _) = d.stop();
+    let log = d.stop().session_log;
     let bytes = std::fs::read(&log).unwrap();
     let torn = d.path().join("torn.vdlog");
     std::fs::write(&torn, &bytes[..bytes.len() - 5]).unwrap();
@@ -352,6 +351,26 @@ fn a_torn_tail_is_detected_and_the_log_reads_up_to_it() {
         reader.end()
     );
     assert_eq!(datagrams, 20);
+}
+
+#[test]
+fn ctl_status_json_is_the_status_object() {
+    let d = Daemon::start(false, TEST_TIMING);
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_decoderd"))
+        .arg("ctl")
+        .arg("--socket")
+        .arg(&d.socket)
+        .args(["status", "--json"])
+        .output()
+        .unwrap();
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let s: daemon::status::Status = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(s.listen, d.listen);
+    assert_eq!(s.state, "disarmed");
 }
 
 #[test]
@@ -391,7 +410,7 @@ fn the_python_example_sender_drives_the_daemon() {
     let out = std::process::Command::new(&python)
         .arg(&script)
         .arg(&block)
-        .arg("--target")
+        .arg("--daemon")
         .arg(d.listen.to_string())
         .output()
         .unwrap();

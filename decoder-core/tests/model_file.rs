@@ -1,23 +1,13 @@
 //! The model file refuses anything that is not a whole, current model, and
 //! round-trips what it writes.
 
-use decoder_core::decoders::DecoderModel;
-use decoder_core::fit::kalman::{KalmanFitOptions, fit_kalman};
 use decoder_core::formats::model_file::{ModelFile, ModelFileError, Provenance, export_json};
-use decoder_core::sim::reaching::{SimOptions, simulate};
+use decoder_core::sim::model::small_kalman;
 use proptest::prelude::*;
 
 fn small_model() -> ModelFile {
-    let (s, _) = simulate(&SimOptions {
-        minutes: 0.5,
-        n_channels: 6,
-        ..SimOptions::default()
-    })
-    .unwrap();
-    let (k, _) = fit_kalman(&s, &KalmanFitOptions::default()).unwrap();
+    let (m, s) = small_kalman(6, 1, 0.5);
     ModelFile {
-        bin_ms: s.bin_ms,
-        decoder: DecoderModel::Kalman(k),
         provenance: Provenance {
             trained_at: "2026-01-01T00:00:00Z".into(),
             tool_version: "test".into(),
@@ -25,6 +15,7 @@ fn small_model() -> ModelFile {
             fit_json: "{\"ridge\":1.0}".into(),
             cv_json: "null".into(),
         },
+        ..m
     }
 }
 

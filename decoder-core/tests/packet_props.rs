@@ -3,17 +3,15 @@
 //! packet parser and the session log reader. Each returns a value or a
 //! typed error for any input; none panics.
 
-use decoder_core::decoders::DecoderModel;
 use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{
     EngineEvent, EngineSettings, SlotAnswer, SlotEngine, SlotSink,
 };
 use decoder_core::engine::supervisor::SafetyLimits;
-use decoder_core::fit::kalman::{KalmanFitOptions, fit_kalman};
-use decoder_core::formats::model_file::{ModelFile, Provenance};
+use decoder_core::formats::model_file::ModelFile;
 use decoder_core::formats::packet::{self, BinHeader, VelocityPacket};
 use decoder_core::formats::session_log::LogReader;
-use decoder_core::sim::reaching::{SimOptions, simulate};
+use decoder_core::sim::model::small_kalman;
 use proptest::prelude::*;
 
 fn engine() -> SlotEngine {
@@ -23,18 +21,7 @@ fn engine() -> SlotEngine {
 }
 
 fn model() -> ModelFile {
-    let (session, _) = simulate(&SimOptions {
-        minutes: 0.5,
-        n_channels: 4,
-        ..SimOptions::default()
-    })
-    .unwrap();
-    let (k, _) = fit_kalman(&session, &KalmanFitOptions::default()).unwrap();
-    ModelFile {
-        bin_ms: 20.0,
-        decoder: DecoderModel::Kalman(k),
-        provenance: Provenance::untracked(),
-    }
+    small_kalman(4, 1, 0.5).0
 }
 
 fn settings() -> EngineSettings {

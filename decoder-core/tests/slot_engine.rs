@@ -2,38 +2,22 @@
 //! and halting on missing bins, late, duplicate and reordered bins, new
 //! streams and model swaps — checked without sockets or clocks.
 
-use decoder_core::decoders::DecoderModel;
 use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{
     EngineEvent, EngineSettings, OperatorCommand, SlotAnswer, SlotEngine, SlotSink,
 };
 use decoder_core::engine::supervisor::{SafetyLimits, SupervisorState};
-use decoder_core::fit::kalman::{KalmanFitOptions, fit_kalman};
-use decoder_core::formats::model_file::{ModelFile, Provenance};
+use decoder_core::formats::model_file::ModelFile;
 use decoder_core::formats::packet::{
     self, BinHeader, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, VelocityPacket,
 };
-use decoder_core::sim::reaching::{SimOptions, simulate};
+use decoder_core::sim::model::small_kalman;
 
 const BIN_NS: u64 = 20_000_000;
 const T0: u64 = 1_000_000_000;
 
 fn model() -> (ModelFile, decoder_core::Block) {
-    let (session, _) = simulate(&SimOptions {
-        minutes: 1.0,
-        n_channels: 8,
-        ..SimOptions::default()
-    })
-    .unwrap();
-    let (k, _) = fit_kalman(&session, &KalmanFitOptions::default()).unwrap();
-    (
-        ModelFile {
-            bin_ms: session.bin_ms,
-            decoder: DecoderModel::Kalman(k),
-            provenance: Provenance::untracked(),
-        },
-        session,
-    )
+    small_kalman(8, 1, 1.0)
 }
 
 fn settings(armed: bool) -> EngineSettings {
@@ -344,18 +328,7 @@ fn arming_needs_a_live_stream() {
 #[test]
 fn a_mismatched_model_is_refused_for_swap() {
     let mut rig = Rig::new(true);
-    let (session, _) = simulate(&SimOptions {
-        minutes: 1.0,
-        n_channels: 9,
-        ..SimOptions::default()
-    })
-    .unwrap();
-    let (k, _) = fit_kalman(&session, &KalmanFitOptions::default()).unwrap();
-    let m = ModelFile {
-        bin_ms: 20.0,
-        decoder: DecoderModel::Kalman(k),
-        provenance: Provenance::untracked(),
-    };
+    let (m, _) = small_kalman(9, 1, 1.0);
     let err = rig
         .engine
         .swap_pipeline(DecodePipeline::new(&m).unwrap(), &mut rig.out)

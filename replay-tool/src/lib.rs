@@ -1,6 +1,7 @@
 //! The offline companion of `decoderd`: simulate blocks, train and evaluate
-//! decoders, replay sessions through the daemon's own decode pipeline, and
-//! inspect model files.
+//! decoders, replay and verify sessions through the daemon's own decode
+//! pipeline, drive a daemon on loopback (stream, bench, closed loop), and
+//! inspect model files. The verbs and exit codes are PROTOCOL.md §5.
 //!
 //! Every verb returns `anyhow::Result`; the error is printed once, here, with
 //! its context chain on one line. A [`CheckFailed`] anywhere in the chain
@@ -8,7 +9,6 @@
 //! anything else is a user error (exit 2).
 
 pub mod cmd;
-pub mod live;
 pub mod output;
 pub mod plot;
 pub mod progress;
@@ -37,6 +37,10 @@ pub struct Cli {
     pub command: Command,
 }
 
+/// The line every verb that drives a live daemon carries in its help.
+pub const NOT_NEXT_TO_A_PERSON: &str =
+    "Never run this against a daemon that drives an actuator attached to a person.";
+
 #[derive(Debug, Subcommand)]
 pub enum Command {
     /// Write a synthetic center-out reaching block as a session directory.
@@ -45,18 +49,31 @@ pub enum Command {
     Train(cmd::train::Args),
     /// Cross-validate decoders on a block and print (or write) the scores.
     Evaluate(cmd::evaluate::Args),
-    /// Decode every bin of a session through the daemon's decode pipeline.
+    /// Decode every bin of a block or a session log through the daemon's
+    /// decode pipeline and write the estimates.
     Replay(cmd::replay::Args),
-    /// Measure the whole loop's latency and dropouts against decoderd, with
-    /// a pass/fail and an HTML report.
+    /// Check a session log bit for bit against a replay through the
+    /// daemon's slot engine; exit 1 at the first difference.
+    Verify(cmd::verify::Args),
+    /// Stream a block to a running daemon as its front end would and check
+    /// its velocity packets against offline decoding. Never run this
+    /// against a daemon that drives an actuator attached to a person.
+    Stream(cmd::stream::Args),
+    /// Measure the whole loop's latency and dropouts against a spawned or
+    /// running decoderd, with a pass/fail and an HTML report. Never run
+    /// this against a daemon that drives an actuator attached to a person.
     Bench(cmd::bench::Args),
+    /// A simulated user drives a spawned or running decoderd in a
+    /// center-out task. Never run this against a daemon that drives an
+    /// actuator attached to a person.
+    ClosedLoop(cmd::closed_loop::Args),
     /// Inspect model files.
     Model {
         #[command(subcommand)]
         command: ModelCommand,
     },
     /// The whole job on a built-in demo: simulate, train, evaluate, then run
-    /// decoderd live on loopback and stream a held-out block through it.
+    /// decoderd on loopback and stream a held-out block through it.
     Demo(cmd::demo::Args),
 }
 
@@ -92,6 +109,9 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Train(a) => cmd::train::run(&a),
         Command::Evaluate(a) => cmd::evaluate::run(&a),
         Command::Replay(a) => cmd::replay::run(&a),
+        Command::Verify(a) => cmd::verify::run(&a),
+        Command::Stream(a) => cmd::stream::run(&a),
+        Command::ClosedLoop(a) => cmd::closed_loop::run_verb(&a),
         Command::Model {
             command: ModelCommand::Show { model, json },
         } => cmd::model_show::run(&model, json),

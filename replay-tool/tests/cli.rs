@@ -136,7 +136,7 @@ fn evaluate_prints_both_decoders_and_writes_a_report() {
         "evaluate",
         "--session",
         p(&block),
-        "--decoder",
+        "--decoders",
         "kalman",
         "--folds",
         "3",
@@ -150,8 +150,8 @@ fn evaluate_prints_both_decoders_and_writes_a_report() {
     for f in [
         "scores.csv",
         "evaluation.json",
-        "heldout_velocity.svg",
-        "heldout_velocity.png",
+        "held-out-velocity.svg",
+        "held-out-velocity.png",
     ] {
         let len = std::fs::metadata(report.join(f))
             .map(|m| m.len())
@@ -357,11 +357,10 @@ fn point_process_decoder_trains_replays_and_exports() {
     // The daemon runs it unchanged: a closed-loop run through decoderd.
     let report = dir.path().join("cl");
     let out = ok(&[
-        "bench",
-        "--closed-loop",
+        "closed-loop",
         "--model",
         p(&dir.path().join("pp.model")),
-        "--speed",
+        "--time-scale",
         "0",
         "--trials",
         "4",
@@ -435,12 +434,71 @@ fn recorded_session(dir: &Path) -> std::path::PathBuf {
     std::path::PathBuf::from(log)
 }
 
+/// Each word means one thing (PROTOCOL.md §5): a log is not a calibration
+/// block, a directory is not a log, and a bad address names its flag.
+#[test]
+fn verbs_refuse_the_wrong_kind_of_input_and_name_the_flag() {
+    let dir = tempfile::tempdir().unwrap();
+    let log = dir.path().join("s.vdlog");
+    std::fs::write(&log, b"not read").unwrap();
+    let err = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&log),
+            "--decoder",
+            "kalman",
+            "--out",
+            "m.model",
+        ],
+        2,
+    );
+    assert!(
+        err.contains("no kinematics") && err.contains("--session"),
+        "{err}"
+    );
+    let err = fails_with(&["verify", p(dir.path())], 2);
+    assert!(err.contains("not a session directory"), "{err}");
+    let err = fails_with(
+        &[
+            "stream",
+            "--session",
+            p(dir.path()),
+            "--daemon",
+            "nowhere",
+            "--actuator",
+            "127.0.0.1:0",
+        ],
+        2,
+    );
+    assert!(err.contains("--daemon nowhere"), "{err}");
+    let err = fails_with(
+        &[
+            "stream",
+            "--session",
+            p(dir.path()),
+            "--daemon",
+            "127.0.0.1:1",
+            "--actuator",
+            "127.0.0.1:0",
+            "--time-scale",
+            "0",
+        ],
+        2,
+    );
+    assert!(err.contains("--time-scale 0"), "{err}");
+    for verb in ["stream", "bench", "closed-loop"] {
+        let help = ok(&[verb, "--help"]);
+        assert!(help.contains("attached to a person"), "{verb}: {help}");
+    }
+}
+
 #[test]
 fn verify_passes_on_a_recording_and_names_the_seq_of_a_changed_byte() {
     use decoder_core::formats::session_log::{LogReader, LogRecord};
     let dir = tempfile::tempdir().unwrap();
     let log = recorded_session(dir.path());
-    let stdout = ok(&["replay", "--session", p(&log), "--verify"]);
+    let stdout = ok(&["verify", p(&log)]);
     assert!(stdout.contains("bit for bit"), "{stdout}");
 
     // Find the datagram record of the 20th bin.
@@ -467,7 +525,7 @@ fn verify_passes_on_a_recording_and_names_the_seq_of_a_changed_byte() {
     damaged[count_byte] ^= 0x01;
     let bad = dir.path().join("damaged.vdlog");
     std::fs::write(&bad, &damaged).unwrap();
-    let err = fails_with(&["replay", "--session", p(&bad), "--verify"], 1);
+    let err = fails_with(&["verify", p(&bad)], 1);
     assert!(err.contains(&format!("seq {seq}")), "{err}");
 
     // Changed and re-sealed (checksum recomputed): the replay itself
@@ -479,7 +537,7 @@ fn verify_passes_on_a_recording_and_names_the_seq_of_a_changed_byte() {
     forged[offset + 4..offset + 8].copy_from_slice(&crc.to_le_bytes());
     let forged_path = dir.path().join("forged.vdlog");
     std::fs::write(&forged_path, &forged).unwrap();
-    let err = fails_with(&["replay", "--session", p(&forged_path), "--verify"], 1);
+    let err = fails_with(&["verify", p(&forged_path)], 1);
     assert!(err.contains(&format!("seq {seq}: estimate")), "{err}");
 }
 
@@ -503,8 +561,8 @@ fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
         "summary.json",
         "bins.csv",
         "report.html",
-        "latency_histogram.svg",
-        "latency_over_time.png",
+        "latency-histogram.svg",
+        "latency-over-time.png",
     ] {
         assert!(first.join(f).is_file(), "{f}");
     }
@@ -535,7 +593,7 @@ fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
 
 fn closed_loop_summary(report: &Path) -> serde_json::Value {
     let s: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(report.join("closed_loop.json")).unwrap())
+        serde_json::from_str(&std::fs::read_to_string(report.join("closed-loop.json")).unwrap())
             .unwrap();
     s["summary"].clone()
 }
@@ -594,11 +652,10 @@ fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_ref
     let run = |model: &Path, name: &str, seed: &str| {
         let report = dir.path().join(name);
         ok(&[
-            "bench",
-            "--closed-loop",
+            "closed-loop",
             "--model",
             p(model),
-            "--speed",
+            "--time-scale",
             "0",
             "--trials",
             "12",
@@ -619,8 +676,9 @@ fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_ref
     let block = good_report.join("closed-loop-block");
     let out = ok(&[
         "train",
-        "--refit",
+        "--session",
         p(&block),
+        "--refit",
         "--decoder",
         "kalman",
         "--out",
@@ -644,7 +702,7 @@ fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_ref
 }
 
 #[test]
-fn live_replay_through_a_running_daemon_equals_offline_decoding() {
+fn stream_through_a_running_daemon_equals_offline_decoding() {
     let dir = tempfile::tempdir().unwrap();
     let cal = dir.path().join("cal");
     ok(&[
@@ -684,24 +742,23 @@ fn live_replay_through_a_running_daemon_equals_offline_decoding() {
         .unwrap()
         .local_addr()
         .unwrap();
-    let daemon =
-        replay_tool::live::SpawnedDaemon::start(None, &model, &dir.path().join("d"), sink, false)
-            .unwrap();
+    let daemon = daemon_rig::Launch::new(&model, &dir.path().join("d"), sink)
+        .start()
+        .unwrap();
     let target = daemon.listen.to_string();
     let sink_text = sink.to_string();
     let out = ok(&[
-        "replay",
+        "stream",
         "--session",
         p(&block),
         "--model",
         p(&model),
-        "--live",
-        "--target",
+        "--daemon",
         &target,
-        "--sink",
+        "--actuator",
         &sink_text,
-        "--speed",
-        "4",
+        "--time-scale",
+        "0.25",
     ]);
     assert!(
         out.contains("300 of 300 live estimates equal offline decoding bit for bit"),
@@ -720,7 +777,7 @@ fn live_replay_through_a_running_daemon_equals_offline_decoding() {
         "16",
         "--seed",
         "9",
-        "--population",
+        "--array-seed",
         "2",
     ]);
     let other = dir.path().join("other.model");
@@ -736,18 +793,17 @@ fn live_replay_through_a_running_daemon_equals_offline_decoding() {
     ]);
     let err = fails_with(
         &[
-            "replay",
+            "stream",
             "--session",
             p(&block),
             "--model",
             p(&other),
-            "--live",
-            "--target",
+            "--daemon",
             &target,
-            "--sink",
+            "--actuator",
             &sink_text,
-            "--speed",
-            "4",
+            "--time-scale",
+            "0.25",
         ],
         1,
     );
@@ -755,18 +811,17 @@ fn live_replay_through_a_running_daemon_equals_offline_decoding() {
     // And with the right model again, on the now used daemon: a new stream
     // resets it, and the check passes from the stream's first decoded bin.
     let out = ok(&[
-        "replay",
+        "stream",
         "--session",
         p(&block),
         "--model",
         p(&model),
-        "--live",
-        "--target",
+        "--daemon",
         &target,
-        "--sink",
+        "--actuator",
         &sink_text,
-        "--speed",
-        "4",
+        "--time-scale",
+        "0.25",
     ]);
     assert!(out.contains("299 of 299 live estimates equal"), "{out}");
     daemon.stop().unwrap();
@@ -802,7 +857,7 @@ fn evaluate_compares_point_process_forms_with_goodness_of_fit() {
         "evaluate",
         "--session",
         p(&block),
-        "--decoder",
+        "--decoders",
         "kalman,point-process",
         "--folds",
         "2",
@@ -815,10 +870,10 @@ fn evaluate_compares_point_process_forms_with_goodness_of_fit() {
         assert!(out.contains(name), "{name} missing from {out}");
     }
     assert!(out.contains("within the KS 95 % band"), "{out}");
-    let csv = std::fs::read_to_string(report.join("goodness_of_fit.csv")).unwrap();
+    let csv = std::fs::read_to_string(report.join("goodness-of-fit.csv")).unwrap();
     assert_eq!(csv.lines().count(), 1 + 2 * 8, "{csv}");
     assert!(
-        std::fs::read_to_string(report.join("ks_plots.svg"))
+        std::fs::read_to_string(report.join("ks-plots.svg"))
             .unwrap()
             .contains("<svg")
     );

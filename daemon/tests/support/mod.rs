@@ -1,27 +1,25 @@
-//! A harness that starts the real `decoderd` binary on ephemeral loopback
-//! ports, plays front end (bin packets in the PROTOCOL.md §1 bytes) and actuator
-//! (collects PROTOCOL.md §2 packets), and talks to the control socket.
+//! The daemon's tests drive the real `decoderd` binary through the rig's
+//! one launcher and actuator sink (`daemon-rig`); this file only holds what
+//! these tests share: the models and bins, and short names for the rig's
+//! calls with a test's panics instead of errors.
 
 #![allow(dead_code)]
 
 use std::net::{SocketAddr, UdpSocket};
 use std::path::{Path, PathBuf};
-use std::process::{Child, Command, ExitStatus, Stdio};
-use std::sync::atomic::{AtomicBool, Ordering};
-use std::sync::{Arc, Mutex, OnceLock};
-use std::thread::JoinHandle;
+use std::sync::OnceLock;
 use std::time::{Duration, Instant};
 
-use daemon::control::{Reply, Request, request};
+use daemon::control::{Reply, Request};
 use daemon::status::Status;
-use decoder_core::decoders::DecoderModel;
-use decoder_core::fit::kalman::{KalmanFitOptions, fit_kalman};
-use decoder_core::formats::model_file::{ModelFile, Provenance};
+use daemon_rig::{ActuatorSink, Launch, RunningDaemon};
 use decoder_core::formats::packet::{self, BinHeader, VelocityPacket};
-use decoder_core::sim::reaching::{SimOptions, simulate};
+use decoder_core::sim::model::small_kalman;
 
 pub const BIN_MS: f64 = 20.0;
 pub const BIN: Duration = Duration::from_millis(20);
+/// How long a test waits for an event before it fails.
+pub const PATIENCE: Duration = Duration::from_secs(10);
 
 pub struct Fixture {
     pub dir: PathBuf,
@@ -32,34 +30,15 @@ pub struct Fixture {
     pub n_channels: usize,
 }
 
-fn train(n_channels: usize, seed: u64) -> (ModelFile, decoder_core::Block) {
-    let (session, _) = simulate(&SimOptions {
-        minutes: 1.0,
-        n_channels,
-        seed,
-        ..SimOptions::default()
-    })
-    .unwrap();
-    let (k, _) = fit_kalman(&session, &KalmanFitOptions::default()).unwrap();
-    (
-        ModelFile {
-            bin_ms: session.bin_ms,
-            decoder: DecoderModel::Kalman(k),
-            provenance: Provenance::untracked(),
-        },
-        session,
-    )
-}
-
 /// Models and bins shared by every test in one binary.
 pub fn fixture() -> &'static Fixture {
     static F: OnceLock<Fixture> = OnceLock::new();
     F.get_or_init(|| {
         let dir = std::env::temp_dir().join(format!("decoderd-test-{}", std::process::id()));
         std::fs::create_dir_all(&dir).unwrap();
-        let (m, session) = train(16, 1);
-        let (m2, _) = train(16, 2);
-        let (m3, _) = train(12, 3);
+        let (m, session) = small_kalman(16, 1, 1.0);
+        let (m2, _) = small_kalman(16, 2, 1.0);
+        let (m3, _) = small_kalman(12, 3, 1.0);
         let model = dir.join("a.model");
         let other_model = dir.join("b.model");
         let wrong_model = dir.join("wrong.model");
@@ -80,108 +59,70 @@ pub fn fixture() -> &'static Fixture {
     })
 }
 
-pub struct Daemon {
-    pub child: Child,
-    pub dir: tempfile::TempDir,
-    pub socket: PathBuf,
-    pub listen: SocketAddr,
-    pub sender: UdpSocket,
-    pub packets: Arc<Mutex<Vec<VelocityPacket>>>,
-    stop_sink: Arc<AtomicBool>,
-    sink: Option<JoinHandle<()>>,
-}
-
 /// Extra TOML for the tests: a wide deadline slack so a loaded CI machine's
 /// scheduling jitter does not turn a sent bin into a missing one. The rules
 /// under test (which seqs coast, halt, ...) do not depend on it.
 pub const TEST_TIMING: &str = "[timing]\ndeadline_slack_bins = 1.5\n";
 
+pub struct Daemon {
+    pub daemon: Option<RunningDaemon>,
+    pub dir: tempfile::TempDir,
+    pub listen: SocketAddr,
+    pub socket: PathBuf,
+    pub sender: UdpSocket,
+    pub sink: Option<ActuatorSink>,
+}
+
+/// How a test's daemon ended.
+pub struct Ended {
+    pub session_log: PathBuf,
+    pub packets: Vec<VelocityPacket>,
+}
+
 impl Daemon {
     pub fn start(arm: bool, extra_toml: &str) -> Daemon {
         let f = fixture();
         let dir = tempfile::tempdir().unwrap();
-        let socket = dir.path().join("ctl.sock");
-        let config = dir.path().join("daemon.toml");
-        std::fs::write(
-            &config,
-            format!(
-                "[control]\nsocket = {:?}\n[recording]\ndir = {:?}\n[monitor]\nsummary_interval_s = 1.0\n{extra_toml}",
-                socket.display().to_string(),
-                dir.path().join("rec").display().to_string(),
-            ),
-        )
-        .unwrap();
-        let actuator = UdpSocket::bind("127.0.0.1:0").unwrap();
-        actuator
-            .set_read_timeout(Some(Duration::from_millis(50)))
+        let sink = ActuatorSink::on_loopback().unwrap();
+        let daemon = Launch::new(&f.model, dir.path(), sink.addr)
+            .binary(Some(Path::new(env!("CARGO_BIN_EXE_decoderd"))))
+            .extra_toml(&format!(
+                "[monitor]\nsummary_interval_s = 1.0\n{extra_toml}"
+            ))
+            .arm(arm)
+            .start()
             .unwrap();
-        let actuator_addr = actuator.local_addr().unwrap();
-        let log = std::fs::File::create(dir.path().join("decoderd.log")).unwrap();
-        let mut cmd = Command::new(env!("CARGO_BIN_EXE_decoderd"));
-        cmd.arg("run")
-            .arg("--config")
-            .arg(&config)
-            .arg("--model")
-            .arg(&f.model)
-            .arg("--listen")
-            .arg("127.0.0.1:0")
-            .arg("--actuator")
-            .arg(actuator_addr.to_string())
-            .stdin(Stdio::null())
-            .stdout(Stdio::null())
-            .stderr(log);
-        if arm {
-            cmd.arg("--arm");
-        }
-        let child = cmd.spawn().unwrap();
-        let packets = Arc::new(Mutex::new(Vec::new()));
-        let stop_sink = Arc::new(AtomicBool::new(false));
-        let sink = {
-            let packets = packets.clone();
-            let stop = stop_sink.clone();
-            std::thread::spawn(move || {
-                let mut buf = [0u8; 1024];
-                while !stop.load(Ordering::Relaxed) {
-                    if let Ok(n) = actuator.recv(&mut buf) {
-                        let p =
-                            VelocityPacket::parse(&buf[..n]).expect("daemon sent a valid packet");
-                        packets.lock().unwrap().push(p);
-                    }
-                }
-            })
-        };
-        let deadline = Instant::now() + Duration::from_secs(20);
-        let status = loop {
-            if let Ok(r) = request(&socket, &Request::Status) {
-                if let Some(s) = r.status {
-                    break s;
-                }
-            }
-            assert!(
-                Instant::now() < deadline,
-                "decoderd did not come up: {}",
-                std::fs::read_to_string(dir.path().join("decoderd.log")).unwrap_or_default()
-            );
-            std::thread::sleep(Duration::from_millis(20));
-        };
         Daemon {
-            child,
-            socket,
-            listen: status.listen.parse().unwrap(),
+            listen: daemon.listen,
+            socket: daemon.socket.clone(),
+            daemon: Some(daemon),
             sender: UdpSocket::bind("127.0.0.1:0").unwrap(),
-            packets,
-            stop_sink,
             sink: Some(sink),
             dir,
         }
     }
 
+    fn running(&self) -> &RunningDaemon {
+        self.daemon.as_ref().expect("the daemon is running")
+    }
+
+    pub fn pid(&self) -> u32 {
+        self.running().pid().unwrap()
+    }
+
     pub fn ctl(&self, r: Request) -> Reply {
-        request(&self.socket, &r).unwrap()
+        self.running().ctl(&r).unwrap()
     }
 
     pub fn status(&self) -> Status {
-        *self.ctl(Request::Status).status.unwrap()
+        self.running().status().unwrap()
+    }
+
+    /// Waits until status shows `what`.
+    pub fn wait_for_status(&self, what: &str, done: impl Fn(&Status) -> bool) -> Status {
+        self.running()
+            .wait_for_status(what, PATIENCE, done)
+            .unwrap_or_else(|e| panic!("{e}: {}", self.log_text()))
     }
 
     pub fn send_raw(&self, bytes: &[u8]) {
@@ -211,7 +152,7 @@ impl Daemon {
     }
 
     /// Sends `seqs` paced at the bin rate, one per bin period from now
-    /// (`slot_of(seq)` says in which period each goes).
+    /// (`seq - first_seq` says in which period each goes).
     pub fn stream(&self, seqs: impl IntoIterator<Item = u64>, first_seq: u64) {
         let t0 = Instant::now();
         for seq in seqs {
@@ -223,70 +164,50 @@ impl Daemon {
         }
     }
 
-    /// Waits until a packet for `seq` has come (or panics after 10 s).
+    /// Waits until a packet for `seq` (or a later one) has come; returns
+    /// every packet so far.
     pub fn wait_for_seq(&self, seq: u64) -> Vec<VelocityPacket> {
-        let deadline = Instant::now() + Duration::from_secs(10);
-        loop {
-            {
-                let p = self.packets.lock().unwrap();
-                if p.iter().any(|p| p.seq >= seq) {
-                    return p.clone();
-                }
-            }
-            assert!(Instant::now() < deadline, "no packet for seq {seq}");
-            std::thread::sleep(Duration::from_millis(5));
-        }
+        self.sink
+            .as_ref()
+            .unwrap()
+            .wait_for_seq(seq, PATIENCE)
+            .unwrap_or_else(|e| panic!("{e}: {}", self.log_text()))
     }
 
     pub fn packets(&self) -> Vec<VelocityPacket> {
-        self.packets.lock().unwrap().clone()
+        self.sink.as_ref().unwrap().packets()
     }
 
     pub fn log_text(&self) -> String {
         std::fs::read_to_string(self.dir.path().join("decoderd.log")).unwrap_or_default()
     }
 
-    /// SIGTERM, wait for exit; returns the exit status and the session log.
-    pub fn stop(&mut self) -> (ExitStatus, PathBuf, Vec<VelocityPacket>) {
-        // SAFETY: sending a signal to our own child process by pid.
-        unsafe { libc::kill(self.child.id() as i32, libc::SIGTERM) };
-        let deadline = Instant::now() + Duration::from_secs(10);
-        let status = loop {
-            if let Some(s) = self.child.try_wait().unwrap() {
-                break s;
-            }
-            if Instant::now() > deadline {
-                let _ = self.child.kill();
-                panic!("decoderd did not stop on SIGTERM: {}", self.log_text());
-            }
-            std::thread::sleep(Duration::from_millis(10));
-        };
-        // Let the last packets land in the sink.
-        std::thread::sleep(Duration::from_millis(100));
-        self.stop_sink.store(true, Ordering::Relaxed);
-        if let Some(s) = self.sink.take() {
-            let _ = s.join();
-        }
-        let rec = self.dir.path().join("rec");
-        let log = std::fs::read_dir(&rec)
+    /// SIGTERM and a clean exit (a test failure otherwise); returns the
+    /// session log and every packet the actuator got.
+    pub fn stop(&mut self) -> Ended {
+        let log = self.log_text();
+        let stopped = self
+            .daemon
+            .take()
             .unwrap()
-            .map(|e| e.unwrap().path())
-            .find(|p| p.extension().is_some_and(|e| e == "vdlog"))
-            .expect("a session log");
-        let packets = self.packets();
-        (status, log, packets)
+            .stop()
+            .unwrap_or_else(|e| panic!("{e:#}: {log}"));
+        let packets = self
+            .sink
+            .take()
+            .unwrap()
+            .finish()
+            .into_iter()
+            .map(|a| a.packet)
+            .collect();
+        Ended {
+            session_log: stopped.session_log.expect("a session log"),
+            packets,
+        }
     }
 
     pub fn path(&self) -> &Path {
         self.dir.path()
-    }
-}
-
-impl Drop for Daemon {
-    fn drop(&mut self) {
-        let _ = self.child.kill();
-        let _ = self.child.wait();
-        self.stop_sink.store(true, Ordering::Relaxed);
     }
 }
 

@@ -2,7 +2,7 @@
 //! way a rig sees them, with a pass or fail a user can act on before a
 //! session.
 //!
-//! It spawns `decoderd` (or targets a running one), streams bins at the
+//! It spawns `decoderd` (or streams to a running one with `--daemon`), streams bins at the
 //! bin rate from a paced front end — optionally with a fault schedule of
 //! dropped, malformed and bursty bins — and collects every velocity packet
 //! in an actuator sink. Per bin it takes the daemon's recv→send from the
@@ -14,22 +14,23 @@
 //! was not decoded, or recv→send p99 is over `--budget-p99-us`.
 
 use std::fmt::Write as _;
-use std::net::{SocketAddr, UdpSocket};
+use std::net::UdpSocket;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
-use daemon::loopback::{BinFault, Sink, SinkRecord, loopback_floor, paced_send};
 use daemon::status::Percentiles;
+use daemon_rig::{ActuatorSink, BinFault, Launch, SinkRecord, loopback_floor, paced_send};
 use decoder_core::formats::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::sim::reaching::{SimOptions, simulate};
 use decoder_core::{Block, ModelFile};
 use serde_json::json;
 
 use crate::output::write_atomic;
-use crate::{CheckFailed, live, plot};
+use crate::{CheckFailed, plot};
 
 #[derive(Debug, clap::Args)]
+#[command(after_help = crate::NOT_NEXT_TO_A_PERSON)]
 pub struct Args {
     /// Model to run (default: the daemon config's model.path; without
     /// either, a synthetic model is trained on a simulated block).
@@ -56,13 +57,13 @@ pub struct Args {
     /// The decoderd binary (default: the one beside replay-tool).
     #[arg(long)]
     pub decoderd: Option<PathBuf>,
-    /// Bench a running daemon listening here instead of spawning one; its
-    /// network.actuator must be the --sink address.
-    #[arg(long, requires = "sink")]
-    pub target: Option<String>,
-    /// Where the actuator sink listens when benching a running daemon.
-    #[arg(long)]
-    pub sink: Option<String>,
+    /// Bench a running daemon listening here instead of spawning one (it
+    /// must be armed, and its network.actuator must be --actuator).
+    #[arg(long, requires = "actuator", conflicts_with = "decoderd")]
+    pub daemon: Option<String>,
+    /// With --daemon: where to receive its velocity packets (bound here).
+    #[arg(long, requires = "daemon")]
+    pub actuator: Option<String>,
     /// Fault schedule: drop every K-th bin.
     #[arg(long)]
     pub drop_every: Option<usize>,
@@ -72,27 +73,6 @@ pub struct Args {
     /// Fault schedule: every K bins, hold 3 bins back and send them in a burst.
     #[arg(long)]
     pub burst_every: Option<usize>,
-    /// Closed loop instead: a simulated user moves a cursor to center-out
-    /// targets with the daemon's commands (success rate, time to target,
-    /// path efficiency).
-    #[arg(long)]
-    pub closed_loop: bool,
-    /// Closed loop: number of trials.
-    #[arg(long, default_value_t = 16)]
-    pub trials: usize,
-    /// Closed loop: the simulated array the user's channels come from (as
-    /// `simulate --population`; the decoder must be trained on it).
-    #[arg(long, default_value_t = 1)]
-    pub population: u64,
-    /// Closed loop: seed of the target order and of the user's spikes.
-    #[arg(long, default_value_t = 1)]
-    pub task_seed: u64,
-    /// Closed loop: 1 runs at the bin rate; 0 as fast as the loop turns.
-    #[arg(long, default_value_t = 1.0)]
-    pub speed: f64,
-    /// Closed loop: exit 1 when the success rate is below this (0..1).
-    #[arg(long)]
-    pub min_success: Option<f64>,
 }
 
 fn fault_schedule(args: &Args) -> impl Fn(usize) -> BinFault + '_ {
@@ -170,9 +150,6 @@ struct Outcome {
 }
 
 pub fn run(args: &Args) -> Result<()> {
-    if args.closed_loop {
-        return run_closed_loop(args);
-    }
     if !(args.seconds.is_finite() && args.seconds > 0.0) {
         bail!("--seconds {}: must be above 0", args.seconds);
     }
@@ -196,43 +173,39 @@ pub fn run(args: &Args) -> Result<()> {
     let floor_ns: Vec<u64> = floor_ns.into_iter().filter(|&v| v > 0).collect();
 
     let faults = fault_schedule(args);
-    let (rec, daemon_note) = match &args.target {
-        Some(target) => {
-            let target: SocketAddr = target
-                .parse()
-                .with_context(|| format!("--target {target}"))?;
-            let sink_addr = args.sink.as_deref().unwrap_or("127.0.0.1:27401");
-            let sink = Sink::start(
-                UdpSocket::bind(sink_addr)
-                    .with_context(|| format!("cannot bind --sink {sink_addr}"))?,
-                n,
-            )?;
+    let (rec, daemon_note) = match (&args.daemon, &args.actuator) {
+        (Some(daemon), Some(actuator)) => {
+            let target = super::socket_addr("--daemon", daemon)?;
+            let actuator = super::socket_addr("--actuator", actuator)?;
+            let sink = ActuatorSink::start(UdpSocket::bind(actuator).with_context(|| {
+                format!("cannot bind --actuator {actuator}; it must be the daemon's network.actuator, on this machine and not in use")
+            })?)?;
             let sender = UdpSocket::bind("127.0.0.1:0")?;
             paced_send(&sender, target, &bins, n, rate_hz, &faults);
-            std::thread::sleep(Duration::from_millis(200));
-            (sink.finish(), format!("running daemon at {target}"))
+            wait_for_last(&sink, n, rate_hz);
+            (
+                sink.finish_per_seq(0, n),
+                format!("running daemon at {target}"),
+            )
         }
-        None => {
-            let exe = live::find_decoderd(args.decoderd.as_deref())?;
-            let sink = Sink::start(UdpSocket::bind("127.0.0.1:0")?, n)?;
-            let d = live::SpawnedDaemon::start_with(
-                exe.as_deref(),
-                args.config.as_deref(),
-                &model_path,
-                &work,
-                sink.addr,
-                true,
-            )?;
+        _ => {
+            let exe = super::find_decoderd(args.decoderd.as_deref())?;
+            let sink = ActuatorSink::on_loopback()?;
+            let d = Launch::new(&model_path, &work, sink.addr)
+                .binary(exe.as_deref())
+                .config(args.config.as_deref())
+                .arm(true)
+                .start()?;
             let sender = UdpSocket::bind("127.0.0.1:0")?;
             paced_send(&sender, d.listen, &bins, n, rate_hz, &faults);
-            std::thread::sleep(Duration::from_millis(200));
+            wait_for_last(&sink, n, rate_hz);
             let note = if d.is_process() {
                 "spawned decoderd".to_string()
             } else {
                 "decoderd in-process".to_string()
             };
             d.stop()?;
-            (sink.finish(), note)
+            (sink.finish_per_seq(0, n), note)
         }
     };
     let outcome = analyse(&rec, n, rate_hz, &faults, &floor_ns);
@@ -278,36 +251,11 @@ pub fn run(args: &Args) -> Result<()> {
     Ok(())
 }
 
-fn run_closed_loop(args: &Args) -> Result<()> {
-    std::fs::create_dir_all(&args.report)
-        .with_context(|| format!("cannot create {}", args.report.display()))?;
-    let (model_path, _) = bench_model(args, &args.report)?;
-    let exe = live::find_decoderd(args.decoderd.as_deref())?;
-    let setup = super::closed_loop::ClosedLoopSetup {
-        decoderd: exe.as_deref(),
-        config: args.config.as_deref(),
-        model: &model_path,
-        work: &args.report.join("daemon"),
-        task: decoder_core::sim::user::TaskOptions {
-            seed: args.task_seed,
-            n_trials: args.trials.max(1),
-            ..Default::default()
-        },
-        population: args.population,
-        speed: args.speed,
-    };
-    let summary = super::closed_loop::bench(&setup, &args.report)?;
-    if let Some(min) = args.min_success {
-        if summary.success_rate < min {
-            return Err(CheckFailed(format!(
-                "closed-loop success {:.0} % is below the required {:.0} %",
-                100.0 * summary.success_rate,
-                100.0 * min
-            ))
-            .into());
-        }
-    }
-    Ok(())
+/// Waits until the packet for the last bin has come (the daemon answers
+/// it one deadline after it is due), or a second past that.
+fn wait_for_last(sink: &ActuatorSink, n: usize, rate_hz: f64) {
+    let patience = Duration::from_secs(1) + Duration::from_secs_f64(4.0 / rate_hz);
+    let _ = sink.wait_for_seq(n as u64 - 1, patience);
 }
 
 fn analyse(
@@ -460,9 +408,9 @@ fn write_report(
             ("front end → actuator", &rts),
             ("loopback floor", &floor_us),
         ],
-        &dir.join("latency_histogram"),
+        &dir.join("latency-histogram"),
     )?;
-    plot::latency_over_time(&over_time, &dir.join("latency_over_time"))?;
+    plot::latency_over_time(&over_time, &dir.join("latency-over-time"))?;
     let verdict = if o.missed_slots == 0
         && o.unexpected_dropouts == 0
         && args.budget_p99_us.is_none_or(|b| o.recv_to_send.p99 <= b)
@@ -486,8 +434,8 @@ fn write_report(
 <table><tr><th>latency (µs)</th><th>p50</th><th>p90</th><th>p99</th><th>p99.9</th><th>max</th></tr>
 {r1}{r2}{r3}{r4}</table>
 <p>Missed slots (no packet): <b>{missed}</b>. Bins sent on time but not decoded: <b>{dropouts}</b>. Injected faults: {faults} ({flagged} answered as missing). Heartbeat packets after the stream: {extra}.</p>
-<h2>Latency histogram</h2><img src="latency_histogram.svg" width=900>
-<h2>Latency over the run</h2><img src="latency_over_time.svg" width=900>
+<h2>Latency histogram</h2><img src="latency-histogram.svg" width=900>
+<h2>Latency over the run</h2><img src="latency-over-time.svg" width=900>
 <p>Per-bin figures: <a href="bins.csv">bins.csv</a>; summary: <a href="summary.json">summary.json</a>.</p>
 "#,
         budget = args

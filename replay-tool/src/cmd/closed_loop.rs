@@ -1,17 +1,19 @@
-//! `replay-tool bench --closed-loop`: a simulated participant drives the
-//! real daemon. Each bin the user intends a velocity toward the target from
+//! `replay-tool closed-loop`: a simulated participant drives the real
+//! daemon, spawned on loopback or already running. Each bin the user intends a velocity toward the target from
 //! where the cursor is; their channels fire accordingly; the bin goes to
 //! `decoderd` over UDP as a front end would send it; the velocity packet
 //! that comes back moves the cursor. This is how a user compares decoders
 //! in closed loop without a participant. The block is written as a session
 //! directory (counts, cursor position, decoded velocity, targets) for
-//! `replay-tool train --refit`.
+//! `replay-tool train --refit`. The cursor and target travel with the
+//! bins here; the task packets of PROTOCOL.md §6 are not sent yet.
 
-use std::net::UdpSocket;
+use std::net::{SocketAddr, UdpSocket};
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result, bail};
+use daemon_rig::Launch;
 use decoder_core::formats::block::Trial;
 use decoder_core::formats::packet::{self, BinHeader, VelocityPacket};
 use decoder_core::linalg::Mat;
@@ -19,7 +21,98 @@ use decoder_core::sim::reaching::population;
 use decoder_core::sim::user::{CenterOut, SimulatedUser, TaskOptions, TaskSummary, TrialResult};
 use decoder_core::{Block, ModelFile};
 
-use crate::live;
+use crate::CheckFailed;
+use crate::output::write_atomic;
+
+#[derive(Debug, clap::Args)]
+#[command(after_help = crate::NOT_NEXT_TO_A_PERSON)]
+pub struct Args {
+    /// Model to run; the user's channels come from the simulated array it
+    /// was trained on (--array-seed).
+    #[arg(long)]
+    pub model: PathBuf,
+    /// The daemon configuration the spawned daemon runs.
+    #[arg(long, conflicts_with = "daemon")]
+    pub config: Option<PathBuf>,
+    /// The decoderd binary to spawn (default: the one beside replay-tool;
+    /// without one the daemon runs in this process).
+    #[arg(long, conflicts_with = "daemon")]
+    pub decoderd: Option<PathBuf>,
+    /// Drive a running daemon listening here instead of spawning one (it
+    /// must be armed, and its network.actuator must be --actuator).
+    #[arg(long, requires = "actuator")]
+    pub daemon: Option<String>,
+    /// With --daemon: where to receive its velocity packets.
+    #[arg(long, requires = "daemon")]
+    pub actuator: Option<String>,
+    /// Number of center-out trials.
+    #[arg(long, default_value_t = 16)]
+    pub trials: usize,
+    /// The simulated array the user's channels come from (as `simulate
+    /// --array-seed`; the model must have been trained on it).
+    #[arg(long, default_value_t = 1)]
+    pub array_seed: u64,
+    /// Seed of the target order and of the user's spikes.
+    #[arg(long, default_value_t = 1)]
+    pub task_seed: u64,
+    /// Time between bins as a multiple of the bin width (1 = the bin rate;
+    /// 0 = as fast as the loop turns round).
+    #[arg(long, default_value_t = 1.0)]
+    pub time_scale: f64,
+    /// Exit 1 when the success rate is below this fraction (0..1).
+    #[arg(long)]
+    pub min_success: Option<f64>,
+    /// Folder for closed-loop.json, the spawned daemon's files and the
+    /// closed-loop block.
+    #[arg(long, default_value = "closed-loop-report")]
+    pub report: PathBuf,
+}
+
+/// `replay-tool closed-loop`.
+pub fn run_verb(args: &Args) -> Result<()> {
+    super::check_time_scale(args.time_scale, true)?;
+    if let Some(m) = args.min_success {
+        if !(0.0..=1.0).contains(&m) {
+            bail!("--min-success {m}: must be a fraction between 0 and 1");
+        }
+    }
+    std::fs::create_dir_all(&args.report)
+        .with_context(|| format!("cannot create {}", args.report.display()))?;
+    let exe = super::find_decoderd(args.decoderd.as_deref())?;
+    let running = match (&args.daemon, &args.actuator) {
+        (Some(d), Some(a)) => Some((
+            super::socket_addr("--daemon", d)?,
+            super::socket_addr("--actuator", a)?,
+        )),
+        _ => None,
+    };
+    let setup = ClosedLoopSetup {
+        decoderd: exe.as_deref(),
+        config: args.config.as_deref(),
+        running,
+        model: &args.model,
+        work: &args.report.join("daemon"),
+        task: TaskOptions {
+            seed: args.task_seed,
+            n_trials: args.trials.max(1),
+            ..Default::default()
+        },
+        array_seed: args.array_seed,
+        time_scale: args.time_scale,
+    };
+    let summary = report(&setup, &args.report)?;
+    if let Some(min) = args.min_success {
+        if summary.success_rate < min {
+            return Err(CheckFailed(format!(
+                "closed-loop success {:.0} % is below the required {:.0} %",
+                100.0 * summary.success_rate,
+                100.0 * min
+            ))
+            .into());
+        }
+    }
+    Ok(())
+}
 
 pub struct ClosedLoopRun {
     pub summary: TaskSummary,
@@ -33,14 +126,18 @@ pub struct ClosedLoopRun {
 pub struct ClosedLoopSetup<'a> {
     pub decoderd: Option<&'a Path>,
     pub config: Option<&'a Path>,
+    /// A running daemon (its bin address, and the actuator address to
+    /// receive on) instead of a spawned one.
+    pub running: Option<(SocketAddr, SocketAddr)>,
     pub model: &'a Path,
     pub work: &'a Path,
     pub task: TaskOptions,
     /// The simulated array the user's channels come from (the one the
-    /// decoder was trained on: `replay-tool simulate --population`).
-    pub population: u64,
-    /// 1 = the bin rate; 0 = as fast as the loop turns round.
-    pub speed: f64,
+    /// decoder was trained on: `replay-tool simulate --array-seed`).
+    pub array_seed: u64,
+    /// Time between bins in bin widths: 1 = the bin rate; 0 = as fast as
+    /// the loop turns round.
+    pub time_scale: f64,
 }
 
 pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
@@ -57,19 +154,27 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         bin_ms: model.bin_ms,
         ..setup.task.clone()
     };
-    let mut user = SimulatedUser::new(population(setup.population, n), &task_options);
+    let mut user = SimulatedUser::new(population(setup.array_seed, n), &task_options);
     let mut task = CenterOut::new(task_options.clone());
 
-    let sink = UdpSocket::bind("127.0.0.1:0")?;
+    let (sink, daemon, listen) = match setup.running {
+        Some((listen, actuator)) => {
+            let sink = UdpSocket::bind(actuator)
+                .with_context(|| format!("cannot bind --actuator {actuator}"))?;
+            (sink, None, listen)
+        }
+        None => {
+            let sink = UdpSocket::bind("127.0.0.1:0")?;
+            let daemon = Launch::new(setup.model, setup.work, sink.local_addr()?)
+                .binary(setup.decoderd)
+                .config(setup.config)
+                .arm(true)
+                .start()?;
+            let listen = daemon.listen;
+            (sink, Some(daemon), listen)
+        }
+    };
     sink.set_read_timeout(Some(Duration::from_millis(50)))?;
-    let daemon = live::SpawnedDaemon::start_with(
-        setup.decoderd,
-        setup.config,
-        setup.model,
-        setup.work,
-        sink.local_addr()?,
-        true,
-    )?;
     let front_end = UdpSocket::bind("127.0.0.1:0")?;
     let bin_us = packet::bin_us_of(model.bin_ms);
     let period = Duration::from_secs_f64(model.bin_ms / 1000.0);
@@ -84,8 +189,8 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     let t0 = Instant::now();
     let mut seq = 0u64;
     while !task.done() {
-        if setup.speed > 0.0 {
-            let due = t0 + period.mul_f64(seq as f64 / setup.speed);
+        if setup.time_scale > 0.0 {
+            let due = t0 + period.mul_f64(seq as f64 * setup.time_scale);
             if let Some(w) = due.checked_duration_since(Instant::now()) {
                 std::thread::sleep(w);
             }
@@ -103,7 +208,7 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
             &counts,
             &mut datagram,
         );
-        front_end.send_to(&datagram, daemon.listen)?;
+        front_end.send_to(&datagram, listen)?;
         let waited = Instant::now();
         let answer = loop {
             if let Ok(len) = sink.recv(&mut reply) {
@@ -139,7 +244,9 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         }
         seq += 1;
     }
-    daemon.stop()?;
+    if let Some(d) = daemon {
+        d.stop()?;
+    }
     let t = kinematics.len();
     let rows: Vec<Vec<f64>> = kinematics.iter().map(|k| k.to_vec()).collect();
     let kin = Mat::from_rows(&rows);
@@ -155,8 +262,8 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         trials: Some(trials),
         channel_labels: None,
         notes: Some(format!(
-            "closed-loop center-out block: simulated user (population {}), decoder {}, target window {} cm; pos = cursor, vel = decoded command (cm/s)",
-            setup.population,
+            "closed-loop center-out block: simulated user (array seed {}), decoder {}, target window {} cm; pos = cursor, vel = decoded command (cm/s)",
+            setup.array_seed,
             setup.model.display(),
             task_options.window
         )),
@@ -169,8 +276,8 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     })
 }
 
-/// Runs the closed-loop bench and writes its report; returns the summary.
-pub fn bench(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary> {
+/// Runs the closed loop and writes its report; returns the summary.
+pub fn report(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary> {
     let run = run(setup)?;
     let block_dir: PathBuf = report.join("closed-loop-block");
     run.block
@@ -183,8 +290,8 @@ pub fn bench(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary> 
         "slots_coasted": run.coasted,
         "bins": run.block.n_bins,
     });
-    crate::output::write_atomic(
-        &report.join("closed_loop.json"),
+    write_atomic(
+        &report.join("closed-loop.json"),
         serde_json::to_string_pretty(&json)?.as_bytes(),
     )?;
     let s = &run.summary;

@@ -11,7 +11,7 @@ use std::net::UdpSocket;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
-use daemon::loopback::{BinFault, Sink, paced_send};
+use daemon_rig::{ActuatorSink, BinFault, Launch, paced_send};
 use decoder_core::formats::packet;
 
 use anyhow::{Context, Result};
@@ -23,15 +23,16 @@ use decoder_core::formats::session_log::LogReader;
 use decoder_core::sim::reaching::{SimOptions, simulate};
 
 use super::{evaluate, replay, train};
+use crate::CheckFailed;
 use crate::output::write_atomic;
 use crate::progress;
-use crate::{CheckFailed, live};
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
     /// Directory for everything the demo writes.
     #[arg(long, default_value = "demo-output")]
     pub out: PathBuf,
+    /// Channels of the simulated array.
     #[arg(long, default_value_t = 96)]
     pub channels: usize,
     /// Minutes of calibration block.
@@ -107,7 +108,7 @@ pub fn run(args: &Args) -> Result<()> {
         println!("   {:<7} {}", d.decoder, parts.join(", "));
     }
     println!(
-        "   report (scores.csv, evaluation.json, heldout_velocity.svg/.png) -> {}",
+        "   report (scores.csv, evaluation.json, held-out-velocity.svg/.png) -> {}",
         report.display()
     );
 
@@ -115,15 +116,9 @@ pub fn run(args: &Args) -> Result<()> {
     let summary = replay::replay(&replay::Args {
         session: later.clone(),
         model: Some(model_path.clone()),
-        out: Some(estimates.clone()),
+        out: estimates.clone(),
         no_steady_state: false,
-        verify: false,
-        tolerance: None,
         compare: None,
-        live: false,
-        target: None,
-        sink: String::new(),
-        speed: 1.0,
     })?;
     let parts: Vec<String> = summary
         .cc
@@ -145,11 +140,14 @@ pub fn run(args: &Args) -> Result<()> {
 }
 
 fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
-    let exe = live::find_decoderd(args.decoderd.as_deref())?;
+    let exe = super::find_decoderd(args.decoderd.as_deref())?;
     let work = args.out.join("live");
     let n_bins = ((args.live_seconds * 1000.0 / block.bin_ms) as usize).clamp(1, block.n_bins);
-    let sink = Sink::start(UdpSocket::bind("127.0.0.1:0")?, n_bins)?;
-    let daemon = live::SpawnedDaemon::start(exe.as_deref(), model_path, &work, sink.addr, true)?;
+    let sink = ActuatorSink::on_loopback()?;
+    let daemon = Launch::new(model_path, &work, sink.addr)
+        .binary(exe.as_deref())
+        .arm(true)
+        .start()?;
     let how = if daemon.is_process() {
         "decoderd"
     } else {
@@ -174,13 +172,14 @@ fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
         1000.0 / block.bin_ms,
         |_| BinFault::None,
     );
-    // Let the last packets land.
-    std::thread::sleep(
-        Duration::from_millis(100) + Duration::from_secs_f64(2.0 * block.bin_ms / 1000.0),
+    // The last bin is answered one deadline after it is due.
+    let _ = sink.wait_for_seq(
+        n_bins as u64 - 1,
+        Duration::from_secs(1) + Duration::from_secs_f64(4.0 * block.bin_ms / 1000.0),
     );
     let status = daemon.status()?;
-    daemon.stop()?;
-    let rec = sink.finish();
+    let stopped = daemon.stop()?;
+    let rec = daemon_rig::actuator::per_seq(&sink.finish(), 0, n_bins);
     let c = &status.counters;
     let l = &status.latency;
     let answered: Vec<_> = rec.packets.iter().flatten().collect();
@@ -205,10 +204,8 @@ fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
         "   dropouts: {} missing (coasted), {} late, {} duplicate, {} rejected",
         c.bins_missing, c.bins_late, c.bins_duplicate, c.rejected
     );
-    let log = std::fs::read_dir(work.join("recordings"))?
-        .filter_map(|e| e.ok().map(|e| e.path()))
-        .filter(|p| p.extension().is_some_and(|e| e == "vdlog"))
-        .max()
+    let log = stopped
+        .session_log
         .context("decoderd wrote no session log")?;
     let mut reader = LogReader::open(&log)?;
     let (mut same, mut recorded) = (0u64, 0u64);

@@ -7,7 +7,6 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result};
 use decoder_core::fit::evaluate::{DecoderSpec, Evaluation, cross_validate};
-use decoder_core::formats::block::Block;
 
 use super::train::{DecoderKind, config_with_overrides, spec_for};
 use crate::output::write_atomic;
@@ -15,22 +14,28 @@ use crate::{plot, progress};
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Block to evaluate on (session directory with kinematics).
+    /// Block to evaluate on: a session directory with kinematics.
     #[arg(long)]
     pub session: PathBuf,
-    /// Decoders to compare (comma-separated); the Wiener baseline is always added.
+    /// Decoders to compare, comma-separated (kalman, wiener,
+    /// point-process); the Wiener baseline is always added.
     #[arg(long, value_enum, value_delimiter = ',', default_value = "kalman")]
-    pub decoder: Vec<DecoderKind>,
+    pub decoders: Vec<DecoderKind>,
     /// Number of folds (whole trials when the block has trials.csv).
     #[arg(long)]
     pub folds: Option<usize>,
-    /// Directory for scores.csv, evaluation.json and plots.
+    /// Folder for scores.csv, evaluation.json and plots (created).
     #[arg(long)]
     pub report: Option<PathBuf>,
+    /// Training options (see config/train.toml); flags override it.
     #[arg(long)]
     pub config: Option<PathBuf>,
+    /// Bins by which the counts lead the kinematics they are paired with
+    /// (overrides lag_bins).
     #[arg(long)]
     pub lag: Option<usize>,
+    /// Ridge penalty λ for every decoder; 0 fits without a penalty
+    /// (overrides the ridge keys).
     #[arg(long)]
     pub ridge: Option<f64>,
 }
@@ -38,7 +43,7 @@ pub struct Args {
 pub fn run(args: &Args) -> Result<()> {
     let cfg = config_with_overrides(args.config.as_deref(), args.lag, args.ridge)?;
     let folds = args.folds.unwrap_or(cfg.folds);
-    let mut kinds = args.decoder.clone();
+    let mut kinds = args.decoders.clone();
     if !kinds.contains(&DecoderKind::Wiener) {
         kinds.push(DecoderKind::Wiener);
     }
@@ -64,7 +69,7 @@ pub fn run(args: &Args) -> Result<()> {
             specs.push(spec_for(*k, &cfg)?);
         }
     }
-    let session = Block::read(&args.session)?;
+    let session = super::block_with_kinematics(&args.session)?;
     let pb = progress::bar((folds * specs.len()) as u64, "evaluate");
     let eval = cross_validate(&session, &specs, folds, |_, _| pb.inc(1))
         .with_context(|| format!("evaluating on {}", args.session.display()))?;
@@ -161,7 +166,7 @@ pub fn write_report(dir: &std::path::Path, eval: &Evaluation, bin_ms: f64) -> Re
         &dir.join("evaluation.json"),
         serde_json::to_string_pretty(eval)?.as_bytes(),
     )?;
-    plot::held_out_velocity(&eval.traces, bin_ms, &dir.join("heldout_velocity"))?;
+    plot::held_out_velocity(&eval.traces, bin_ms, &dir.join("held-out-velocity"))?;
     if !eval.goodness.is_empty() {
         let mut csv =
             String::from("decoder,channel,spikes,ks,band_95,within_band,bits_per_spike\n");
@@ -174,8 +179,8 @@ pub fn write_report(dir: &std::path::Path, eval: &Evaluation, bin_ms: f64) -> Re
                 );
             }
         }
-        write_atomic(&dir.join("goodness_of_fit.csv"), csv.as_bytes())?;
-        plot::ks_plots(&eval.goodness, &dir.join("ks_plots.svg"))?;
+        write_atomic(&dir.join("goodness-of-fit.csv"), csv.as_bytes())?;
+        plot::ks_plots(&eval.goodness, &dir.join("ks-plots.svg"))?;
     }
     Ok(())
 }

@@ -1,19 +1,22 @@
-//! One module per verb; each has an `Args` (clap) and a `run`.
+//! One module per verb; each has an `Args` (clap) and a `run`. What several
+//! verbs share is here: the training config with its flag overrides, the
+//! block behind `--session`, and the `decoderd` binary to launch.
 
 pub mod bench;
 pub mod closed_loop;
 pub mod demo;
 pub mod evaluate;
-pub mod live_replay;
 pub mod model_show;
 pub mod replay;
 pub mod simulate;
+pub mod stream;
 pub mod train;
 pub mod verify;
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
-use anyhow::{Context, Result};
+use anyhow::{Context, Result, bail};
+use decoder_core::Block;
 use decoder_core::fit::config::TrainConfig;
 
 /// Reads `--config FILE` (or the defaults when absent).
@@ -26,4 +29,50 @@ pub fn load_train_config(path: Option<&Path>) -> Result<TrainConfig> {
             Ok(TrainConfig::from_toml(&text, &p.display().to_string())?)
         }
     }
+}
+
+/// The block behind `--session` for a verb that needs kinematics (train,
+/// evaluate): a session directory (PROTOCOL.md §3). A session log holds
+/// bins but no kinematics, so it is refused with what to do instead.
+pub fn block_with_kinematics(session: &Path) -> Result<Block> {
+    if session.is_file() {
+        bail!(
+            "--session {}: a session log holds the bins the daemon received but no kinematics, which training and evaluation need; give the session directory of the calibration block",
+            session.display()
+        );
+    }
+    Ok(Block::read(session)?)
+}
+
+/// The `decoderd` binary: `explicit`, else the one beside this executable;
+/// `None` when there is none (the caller then runs the daemon in-process).
+pub fn find_decoderd(explicit: Option<&Path>) -> Result<Option<PathBuf>> {
+    if let Some(p) = explicit {
+        if p.is_file() {
+            return Ok(Some(p.to_path_buf()));
+        }
+        bail!("--decoderd {}: no such file", p.display());
+    }
+    Ok(std::env::current_exe()
+        .ok()
+        .map(|me| me.with_file_name("decoderd"))
+        .filter(|p| p.is_file()))
+}
+
+/// Parses an address flag, naming the flag when it does not parse.
+pub fn socket_addr(flag: &str, text: &str) -> Result<std::net::SocketAddr> {
+    text.parse()
+        .with_context(|| format!("{flag} {text}: not an address (HOST:PORT, e.g. 127.0.0.1:27400)"))
+}
+
+/// Checks a `--time-scale` value: a multiple of the bin period between
+/// bins, finite and ≥ 0 (0 where `zero_ok`: as fast as the loop turns).
+pub fn check_time_scale(x: f64, zero_ok: bool) -> Result<()> {
+    if !x.is_finite() || x < 0.0 || (x == 0.0 && !zero_ok) {
+        bail!(
+            "--time-scale {x}: must be a finite number {} 0 (1 = the bin rate, 0.5 = twice as fast)",
+            if zero_ok { "≥" } else { "above" }
+        );
+    }
+    Ok(())
 }

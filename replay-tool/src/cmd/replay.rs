@@ -4,8 +4,9 @@
 //! A session directory is decoded bin after bin. A session log from
 //! `decoderd` is replayed through the daemon's own slot engine — the same
 //! datagrams at the same times, the same operator commands and model loads —
-//! so every slot the daemon answered is answered again, and the replayed
-//! packets are compared with the recorded ones.
+//! so every slot the daemon answered is answered again (with the logged
+//! model unless `--model`). `replay-tool verify` is the bit-for-bit check
+//! of the same replay.
 
 use std::path::PathBuf;
 use std::time::Instant;
@@ -31,38 +32,17 @@ pub struct Args {
     #[arg(long)]
     pub model: Option<PathBuf>,
     /// Estimates to write: FILE.npy (shape bins × outputs, float64) or
-    /// FILE.csv. Required unless --verify or --live.
-    #[arg(long, required_unless_present_any = ["verify", "live"])]
-    pub out: Option<PathBuf>,
-    /// Run the full covariance update even when the model has a steady-state gain.
+    /// FILE.csv.
+    #[arg(long)]
+    pub out: PathBuf,
+    /// Run the full covariance update even when the model has a
+    /// steady-state gain (session directories only).
     #[arg(long)]
     pub no_steady_state: bool,
-    /// Session log only: check that every slot's estimate, command, state
-    /// and flags are reproduced bit for bit; exit 1 at the first difference.
-    #[arg(long)]
-    pub verify: bool,
-    /// With --verify: compare floats within this relative tolerance instead
-    /// of bit for bit (for a log recorded by another build).
-    #[arg(long, requires = "verify")]
-    pub tolerance: Option<f64>,
-    /// Session log with --model OTHER: write the logged model's and OTHER's
-    /// estimates side by side to this CSV.
+    /// Session log with --model OTHER: also write the logged model's and
+    /// OTHER's estimates side by side to this CSV.
     #[arg(long, requires = "model")]
     pub compare: Option<PathBuf>,
-    /// Stream the block to a running daemon instead, and check its
-    /// velocity packets against offline decoding of the same bins.
-    #[arg(long, requires = "target")]
-    pub live: bool,
-    /// With --live: the daemon's bin address (its network.listen).
-    #[arg(long)]
-    pub target: Option<String>,
-    /// With --live: where to collect velocity packets (the daemon's
-    /// network.actuator).
-    #[arg(long, default_value = "127.0.0.1:27401")]
-    pub sink: String,
-    /// With --live: speed-up over the bin rate.
-    #[arg(long, default_value_t = 1.0)]
-    pub speed: f64,
 }
 
 pub struct ReplaySummary {
@@ -79,14 +59,10 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
     if args.session.is_file() {
         return replay_session_log(args);
     }
-    if args.verify || args.compare.is_some() {
-        bail!(
-            "--verify and --compare need a session log (.vdlog) from decoderd, not a session directory"
-        );
+    if args.compare.is_some() {
+        bail!("--compare needs a session log (.vdlog) from decoderd, not a session directory");
     }
-    let Some(out) = &args.out else {
-        bail!("--out is required");
-    };
+    let out = &args.out;
     let Some(model_path) = &args.model else {
         bail!("--model is required to replay a session directory");
     };
@@ -159,9 +135,7 @@ fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
     }
     let elapsed = started.elapsed().as_secs_f64();
     let n = estimates.len() / d.max(1);
-    if let Some(out) = &args.out {
-        write_table(out, &outputs, n, &estimates)?;
-    }
+    write_table(&args.out, &outputs, n, &estimates)?;
     match &summary.end {
         Some(LogEnd::TornTail { offset, bytes }) => tracing::warn!(
             "{}: torn tail at byte {offset} ({bytes} bytes dropped); replayed up to it",
@@ -194,45 +168,6 @@ fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
 }
 
 pub fn run(args: &Args) -> Result<()> {
-    if args.live {
-        return super::live_replay::run(&super::live_replay::LiveArgs {
-            session: &args.session,
-            model: args.model.as_deref(),
-            target: args.target.as_deref().unwrap_or_default(),
-            sink: &args.sink,
-            speed: args.speed,
-        });
-    }
-    if args.verify {
-        if args.model.is_some() {
-            bail!(
-                "--verify replays with the logged model(s); drop --model (use --compare to try another model)"
-            );
-        }
-        if let Some(t) = args.tolerance {
-            if !(t.is_finite() && t >= 0.0) {
-                bail!("--tolerance {t}: must be a finite number ≥ 0");
-            }
-        }
-        let v = super::verify::verify(&args.session, args.tolerance)?;
-        let how = match args.tolerance {
-            None => "bit for bit".to_string(),
-            Some(t) => format!("within relative tolerance {t:e}"),
-        };
-        println!(
-            "verified {}: {} slots, every estimate, command, state and flag reproduced {how}",
-            args.session.display(),
-            v.slots
-        );
-        if let Some(LogEnd::TornTail { offset, bytes }) = v.end {
-            println!(
-                "(the log ends in a torn tail at byte {offset}: {bytes} bytes after the last intact record were not checked)"
-            );
-        }
-        if args.out.is_none() {
-            return Ok(());
-        }
-    }
     if let (Some(other), Some(csv)) = (&args.model, &args.compare) {
         if !args.session.is_file() {
             bail!("--compare needs a session log (.vdlog) from decoderd");
@@ -249,12 +184,10 @@ pub fn run(args: &Args) -> Result<()> {
     }
     let summary = replay(args)?;
     println!(
-        "replayed {} bins through the decode pipeline ({:.0} bins/s){}",
+        "replayed {} bins through the decode pipeline ({:.0} bins/s); wrote {}",
         summary.n_bins,
         summary.bins_per_second,
-        args.out
-            .as_ref()
-            .map_or_else(String::new, |o| format!("; wrote {}", o.display()))
+        args.out.display()
     );
     if !summary.cc.is_empty() {
         let parts: Vec<String> = summary

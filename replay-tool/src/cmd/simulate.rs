@@ -13,10 +13,10 @@ pub struct Args {
     /// Seed of the block (movements and spikes).
     #[arg(long, default_value_t = 1)]
     pub seed: u64,
-    /// Seed of the simulated array (channel tuning); keep it fixed to get
-    /// several blocks from the same channels.
+    /// Seed of the simulated array (each channel's tuning); keep it fixed
+    /// to get several blocks from the same channels.
     #[arg(long, default_value_t = 1)]
-    pub population: u64,
+    pub array_seed: u64,
     /// Length of the block in minutes.
     #[arg(long, default_value_t = 10.0)]
     pub minutes: f64,
@@ -39,7 +39,7 @@ pub struct Args {
 pub fn run(args: &Args) -> Result<()> {
     let options = SimOptions {
         seed: args.seed,
-        population_seed: args.population,
+        population_seed: args.array_seed,
         minutes: args.minutes,
         n_channels: args.channels,
         bin_ms: args.bin_ms,

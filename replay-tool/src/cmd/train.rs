@@ -31,17 +31,22 @@ pub enum DecoderKind {
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Calibration block (session directory).
-    #[arg(long, required_unless_present = "refit", conflicts_with = "refit")]
-    pub session: Option<PathBuf>,
-    /// Retrain from a closed-loop block (the `closed-loop-block` directory
-    /// `bench --closed-loop` writes) with intention re-estimation: decoded
-    /// velocity turned toward the target, zero inside it (Gilja et al. 2012).
+    /// Calibration block: a session directory with kinematics (with
+    /// --refit, a closed-loop block with cursor position, decoded velocity
+    /// and targets).
     #[arg(long)]
-    pub refit: Option<PathBuf>,
-    /// With --refit: the target's acceptance radius, in position units.
+    pub session: PathBuf,
+    /// Retrain from a closed-loop block (the `closed-loop-block` folder
+    /// `replay-tool closed-loop` writes) with intention re-estimation:
+    /// decoded velocity turned toward the target, zero inside it (Gilja et
+    /// al. 2012).
+    #[arg(long)]
+    pub refit: bool,
+    /// With --refit: the target's acceptance radius, in position units;
+    /// inside it the intended velocity is zero.
     #[arg(long, default_value_t = 2.0, requires = "refit")]
-    pub refit_window: f64,
+    pub target_radius: f64,
+    /// Decoder to train.
     #[arg(long, value_enum)]
     pub decoder: DecoderKind,
     /// Model file to write.
@@ -201,22 +206,27 @@ pub fn run(args: &Args) -> Result<()> {
         cfg.point_process.coupling = false;
     }
     let spec = spec_for(args.decoder, &cfg)?;
-    let (session, source) = match (&args.session, &args.refit) {
-        (Some(dir), _) => (Block::read(dir)?, dir.clone()),
-        (None, Some(block)) => {
-            let closed_loop = Block::read(block)?;
-            let (refit, n) = reestimate_intention(&closed_loop, args.refit_window)
-                .with_context(|| format!("re-estimating intention in {}", block.display()))?;
-            println!(
-                "intention re-estimated in {}: {} bins turned toward the target, {} zeroed inside it, {} outside trials left as decoded",
-                block.display(),
-                n.rotated,
-                n.zeroed,
-                n.untouched
+    let source = args.session.clone();
+    let block = super::block_with_kinematics(&source)?;
+    let session = if args.refit {
+        if !(args.target_radius.is_finite() && args.target_radius >= 0.0) {
+            bail!(
+                "--target-radius {}: must be a finite distance ≥ 0",
+                args.target_radius
             );
-            (refit, block.clone())
         }
-        (None, None) => bail!("give --session DIR or --refit BLOCK"),
+        let (refit, n) = reestimate_intention(&block, args.target_radius)
+            .with_context(|| format!("re-estimating intention in {}", source.display()))?;
+        println!(
+            "intention re-estimated in {}: {} bins turned toward the target, {} zeroed inside it, {} outside trials left as decoded",
+            source.display(),
+            n.rotated,
+            n.zeroed,
+            n.untouched
+        );
+        refit
+    } else {
+        block
     };
     let folds = if args.no_cv { None } else { Some(cfg.folds) };
     let model = train_model(&session, &spec, folds)

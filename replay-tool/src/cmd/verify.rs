@@ -1,16 +1,17 @@
-//! `replay-tool replay --session LOG --verify`: replay a recorded session
-//! through the daemon's own slot engine, with the logged model, settings,
-//! operator commands and model loads, and check that every slot's estimate,
-//! command, state and flags come out as recorded — bit for bit (same
-//! build), or within `--tolerance` (across builds). The first difference is
-//! reported as seq, field, recorded value, replayed value; exit 1.
+//! `replay-tool verify LOG`: replay a recorded session through the
+//! daemon's own slot engine, with the logged model, settings, operator
+//! commands and model loads, and check that every slot's estimate, command,
+//! state and flags come out as recorded — bit for bit (same build), or
+//! within `--tolerance` (across builds). The first difference is reported
+//! as seq, field, recorded value, replayed value; exit 1. Exit 0 only when
+//! every recorded slot was checked (PROTOCOL.md §5).
 //!
-//! Also here: `--compare FILE.csv` with `--model OTHER`, the same bins
-//! decoded by the logged model and by another one, side by side — how a
-//! user checks a retrained decoder on a real session before it is loaded.
+//! Also here: `replay --compare FILE.csv` with `--model OTHER`, the same
+//! bins decoded by the logged model and by another one, side by side — how
+//! a user checks a retrained decoder on a real session before it is loaded.
 
 use std::fmt::Write as _;
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::{Result, bail};
 use decoder_core::ModelFile;
@@ -20,6 +21,46 @@ use decoder_core::formats::session_log::{LogEnd, LogReader};
 
 use crate::CheckFailed;
 use crate::output::write_atomic;
+
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The session log (.vdlog) decoderd recorded.
+    pub log: PathBuf,
+    /// Compare floats within this relative tolerance instead of bit for
+    /// bit (for a log recorded by another build or on another CPU).
+    #[arg(long)]
+    pub tolerance: Option<f64>,
+}
+
+pub fn run(args: &Args) -> Result<()> {
+    if let Some(t) = args.tolerance {
+        if !(t.is_finite() && t >= 0.0) {
+            bail!("--tolerance {t}: must be a finite number ≥ 0");
+        }
+    }
+    if args.log.is_dir() {
+        bail!(
+            "{}: verify checks a session log (.vdlog) from decoderd, not a session directory",
+            args.log.display()
+        );
+    }
+    let v = verify(&args.log, args.tolerance)?;
+    let how = match args.tolerance {
+        None => "bit for bit".to_string(),
+        Some(t) => format!("within relative tolerance {t:e}"),
+    };
+    println!(
+        "verified {}: {} slots, every estimate, command, state and flag reproduced {how}",
+        args.log.display(),
+        v.slots
+    );
+    if let Some(LogEnd::TornTail { offset, bytes }) = v.end {
+        println!(
+            "(the log ends in a torn tail at byte {offset}: {bytes} bytes after the last intact record, not a whole record, were not checked)"
+        );
+    }
+    Ok(())
+}
 
 /// The first field that differs.
 #[derive(Debug, PartialEq)]

@@ -1,17 +1,17 @@
-//! `replay-tool replay --live --target ADDR`: stream a stored block to a
-//! running daemon at the bin rate (or a chosen speed-up), as its front end
-//! would, collect the velocity packets it sends to `--sink`, and check them
-//! against decoding the same bins offline: each slot the daemon decoded
-//! from counts must give the same estimate bit for bit, and each slot it
-//! coasted must equal a predict-only step. This is how a user checks that
-//! the daemon on a rig computer decodes exactly what the offline tools do.
+//! `replay-tool stream`: stream a stored block to a running daemon at the
+//! bin rate (or a chosen time scale), as its front end would, collect the
+//! velocity packets it sends to `--actuator`, and check them against
+//! decoding the same bins offline: each slot the daemon decoded from counts
+//! must give the same estimate bit for bit, and each slot it coasted must
+//! equal a predict-only step. This is how a user checks that the daemon on
+//! a rig computer decodes exactly what the offline tools do.
 
-use std::net::{SocketAddr, UdpSocket};
-use std::path::Path;
+use std::net::UdpSocket;
+use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
-use daemon::loopback::{BinFault, Sink, paced_send_from};
+use daemon_rig::{ActuatorSink, BinFault, paced_send_from};
 use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::formats::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::formats::session_log::{LogReader, LogRecord};
@@ -19,12 +19,27 @@ use decoder_core::{Block, ModelFile};
 
 use crate::CheckFailed;
 
-pub struct LiveArgs<'a> {
-    pub session: &'a Path,
-    pub model: Option<&'a Path>,
-    pub target: &'a str,
-    pub sink: &'a str,
-    pub speed: f64,
+#[derive(Debug, clap::Args)]
+#[command(after_help = crate::NOT_NEXT_TO_A_PERSON)]
+pub struct Args {
+    /// Bins to stream: a session directory, or a session log (its valid
+    /// datagrams, with its logged model unless --model).
+    #[arg(long)]
+    pub session: PathBuf,
+    /// The model the daemon runs (required for a session directory).
+    #[arg(long)]
+    pub model: Option<PathBuf>,
+    /// The running daemon's bin address (its network.listen).
+    #[arg(long)]
+    pub daemon: String,
+    /// Where to collect its velocity packets: the address its
+    /// network.actuator names, bound here.
+    #[arg(long)]
+    pub actuator: String,
+    /// Time between bins as a multiple of the bin width (1 = the bin rate,
+    /// 0.5 = twice as fast).
+    #[arg(long, default_value_t = 1.0)]
+    pub time_scale: f64,
 }
 
 /// The bins of a session directory or of a session log's valid datagrams,
@@ -32,7 +47,7 @@ pub struct LiveArgs<'a> {
 fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFile)> {
     if session.is_dir() {
         let Some(m) = model else {
-            bail!("--model is required to replay a session directory live");
+            bail!("--model is required to stream a session directory (the model the daemon runs)");
         };
         let model = ModelFile::read(m)?;
         let s = Block::read(session)?;
@@ -72,15 +87,11 @@ fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFil
     Ok((bins, model))
 }
 
-pub fn run(args: &LiveArgs<'_>) -> Result<()> {
-    if !(args.speed.is_finite() && args.speed > 0.0) {
-        bail!("--speed {}: must be above 0", args.speed);
-    }
-    let target: SocketAddr = args
-        .target
-        .parse()
-        .with_context(|| format!("--target {}", args.target))?;
-    let (bins, model) = load(args.session, args.model)?;
+pub fn run(args: &Args) -> Result<()> {
+    super::check_time_scale(args.time_scale, false)?;
+    let target = super::socket_addr("--daemon", &args.daemon)?;
+    let actuator = super::socket_addr("--actuator", &args.actuator)?;
+    let (bins, model) = load(&args.session, args.model.as_deref())?;
     if bins.is_empty() {
         bail!("{} has no bins to stream", args.session.display());
     }
@@ -91,10 +102,9 @@ pub fn run(args: &LiveArgs<'_>) -> Result<()> {
         .iter()
         .map(|c| packet::bin_datagram(c, bin_us))
         .collect();
-    let sink_socket = UdpSocket::bind(args.sink).with_context(|| {
+    let sink_socket = UdpSocket::bind(actuator).with_context(|| {
         format!(
-            "cannot bind --sink {}; it must be the address the daemon sends to (network.actuator)",
-            args.sink
+            "cannot bind --actuator {actuator}; it must be the address the daemon sends to (network.actuator), on this machine and not in use"
         )
     })?;
     // Seqs far from any earlier stream's, so a daemon that ran before sees
@@ -103,16 +113,15 @@ pub fn run(args: &LiveArgs<'_>) -> Result<()> {
     // as a stray and starts the stream at the second, which therefore
     // follows a full bin later, paced as a restarting front end.
     let base = (1u64 << 40) + daemon::sys::monotonic_ns();
-    let sink = Sink::start_at(sink_socket, base, n)?;
+    let sink = ActuatorSink::start(sink_socket)?;
     let sender = UdpSocket::bind(if target.is_ipv4() {
         "127.0.0.1:0"
     } else {
         "[::1]:0"
     })?;
-    let rate = 1000.0 / model.bin_ms * args.speed;
+    let rate = 1000.0 / model.bin_ms / args.time_scale;
     println!(
-        "streaming {n} bins of {channels} channels to {target} at {:.0} bins/s; collecting on {} ...",
-        rate, args.sink
+        "streaming {n} bins of {channels} channels to {target} at {rate:.0} bins/s; collecting on {actuator} ..."
     );
     let bin = Duration::from_secs_f64(model.bin_ms / 1000.0);
     paced_send_from(&sender, target, &datagrams[..1], 1, rate, base, |_| {
@@ -130,15 +139,19 @@ pub fn run(args: &LiveArgs<'_>) -> Result<()> {
             |_| BinFault::None,
         );
     }
-    std::thread::sleep(
-        Duration::from_millis(300).max(Duration::from_secs_f64(3.0 * model.bin_ms / 1000.0)),
+    // The daemon answers the last slot one deadline after it is due; wait
+    // for that packet (or give up after a second past it).
+    let last = base + n as u64 - 1;
+    let _ = sink.wait_until(
+        "packet for the last bin",
+        Duration::from_secs(1) + 4 * bin,
+        |a| a.iter().any(|a| a.packet.seq >= last),
     );
-    let rec = sink.finish();
+    let rec = sink.finish_per_seq(base, n);
 
     let Some(first) = rec.packets.iter().position(Option::is_some) else {
         bail!(
-            "no velocity packets came back on {}; is the daemon's network.actuator set to it?",
-            args.sink
+            "no velocity packets came back on {actuator}; is the daemon's network.actuator set to it?"
         );
     };
     let mut pipeline = DecodePipeline::new(&model)?;
@@ -190,6 +203,7 @@ pub fn run(args: &LiveArgs<'_>) -> Result<()> {
         return Err(CheckFailed(format!(
             "live and offline decoding differ: {d} (is the daemon running model {}?)",
             args.model
+                .as_deref()
                 .map_or_else(|| "the logged one".to_string(), |m| m.display().to_string())
         ))
         .into());

@@ -1,0 +1,50 @@
+//! A trained model without a training run: a Kalman decoder fitted to a
+//! simulated block, for the tests, benchmarks and bench verbs that need a
+//! model to run but are not about training. One builder, so every caller
+//! gets the same kind of model from the same options.
+
+use crate::decoders::DecoderModel;
+use crate::fit::TrainError;
+use crate::fit::kalman::{KalmanFitOptions, fit_kalman};
+use crate::formats::block::Block;
+use crate::formats::model_file::{ModelFile, Provenance};
+use crate::sim::reaching::{SimError, SimOptions, simulate};
+
+#[derive(Debug, thiserror::Error)]
+pub enum SimModelError {
+    #[error(transparent)]
+    Sim(#[from] SimError),
+    #[error(transparent)]
+    Train(#[from] TrainError),
+}
+
+/// Simulates a block with `sim` and fits a velocity Kalman filter to it
+/// with `fit`; returns the model (untracked provenance) and the block.
+pub fn simulated_kalman(
+    sim: &SimOptions,
+    fit: &KalmanFitOptions,
+) -> Result<(ModelFile, Block), SimModelError> {
+    let (block, _) = simulate(sim)?;
+    let (kalman, _) = fit_kalman(&block, fit)?;
+    let model = ModelFile {
+        bin_ms: block.bin_ms,
+        decoder: DecoderModel::Kalman(kalman),
+        provenance: Provenance::untracked(),
+    };
+    Ok((model, block))
+}
+
+/// [`simulated_kalman`] with default fit options on a `minutes`-long block
+/// of `n_channels` channels at 20 ms, block seed `seed`.
+pub fn small_kalman(n_channels: usize, seed: u64, minutes: f64) -> (ModelFile, Block) {
+    simulated_kalman(
+        &SimOptions {
+            minutes,
+            n_channels,
+            seed,
+            ..SimOptions::default()
+        },
+        &KalmanFitOptions::default(),
+    )
+    .expect("default options on a simulated block always train")
+}

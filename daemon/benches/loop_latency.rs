@@ -51,13 +51,14 @@ fn main() {
     let rate_hz = env("BENCH_RATE_HZ", 1000);
     let fifo = env("BENCH_FIFO", 0);
     let record = env("BENCH_RECORD", 1) != 0;
-    let bin_ms = 1000.0 / rate_hz as f64;
-    eprintln!("building a {channels}-channel {bin_ms} ms steady-state Kalman model ...");
+    let bin_width = decoder_core::BinWidth::from_ns(1_000_000_000 / rate_hz)
+        .expect("BENCH_RATE_HZ must give a bin of whole microseconds");
+    eprintln!("building a {channels}-channel {bin_width} steady-state Kalman model ...");
     let (model, session) = simulated_kalman(
         &SimOptions {
             minutes: 1.0,
             n_channels: channels,
-            bin_ms,
+            bin_width,
             ..SimOptions::default()
         },
         &KalmanFitOptions {
@@ -73,7 +74,7 @@ fn main() {
     let work = tempfile::tempdir().unwrap();
     let model_path = work.path().join("bench.model");
     std::fs::write(&model_path, model.to_bytes()).unwrap();
-    let bin_us = packet::bin_us_of(bin_ms);
+    let bin_us = bin_width.us();
     let bins: Vec<Vec<u8>> = (0..session.n_bins.min(5000))
         .map(|t| packet::bin_datagram(session.bin_counts(t), bin_us))
         .collect();

@@ -5,6 +5,7 @@
 //! except the model, so an empty file plus `--model` is a valid
 //! configuration (PROTOCOL.md §5); `config/daemon.toml` documents each key.
 
+use decoder_core::BinWidth;
 use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
@@ -412,13 +413,12 @@ impl Config {
         })
     }
 
-    /// The slot engine's settings for a model with `bin_ms` bins.
-    pub fn engine_settings(&self, bin_ms: f64) -> EngineSettings {
-        let bin_ns = (bin_ms * 1e6).round() as u64;
-        let bin_s = bin_ms / 1000.0;
+    /// The slot engine's settings for a model with `bin_width` bins.
+    pub fn engine_settings(&self, bin_width: BinWidth) -> EngineSettings {
+        let bin_s = bin_width.seconds();
         EngineSettings {
-            bin_ns,
-            deadline_slack_ns: (self.deadline_slack_bins * bin_ns as f64).round() as u64,
+            bin_width,
+            deadline_slack_ns: (self.deadline_slack_bins * bin_width.ns() as f64).round() as u64,
             reorder_window: self.reorder_window_bins,
             clock_tracking: self.clock_tracking,
             limits: SafetyLimits {
@@ -426,7 +426,7 @@ impl Config {
                 max_accel: self.safety.max_accel,
                 max_coast_bins: self.safety.max_coast_bins,
                 coast_decay: self.safety.coast_decay,
-                bin_s,
+                bin_width,
             },
             armed_at_start: self.arm_at_start,
             dead_channel_bins: (self.dead_channel_s / bin_s).ceil().max(1.0) as u64,
@@ -547,9 +547,21 @@ mod tests {
     #[test]
     fn saturation_count_follows_the_bin_width() {
         let c = resolve("", &with_model()).unwrap();
-        assert_eq!(c.engine_settings(20.0).saturation_count, 21);
-        assert_eq!(c.engine_settings(1.0).saturation_count, 2);
-        assert_eq!(c.engine_settings(20.0).deadline_slack_ns, 10_000_000);
+        assert_eq!(
+            c.engine_settings(BinWidth::from_ms(20.0).unwrap())
+                .saturation_count,
+            21
+        );
+        assert_eq!(
+            c.engine_settings(BinWidth::from_ms(1.0).unwrap())
+                .saturation_count,
+            2
+        );
+        assert_eq!(
+            c.engine_settings(BinWidth::from_ms(20.0).unwrap())
+                .deadline_slack_ns,
+            10_000_000
+        );
     }
 }
 

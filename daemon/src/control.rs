@@ -43,7 +43,7 @@ pub struct Reply {
 #[derive(Clone, Copy, Debug)]
 pub struct StreamShape {
     pub n_channels: usize,
-    pub bin_us: u32,
+    pub bin_width: decoder_core::BinWidth,
     pub n_outputs: usize,
 }
 
@@ -68,7 +68,7 @@ pub fn read_model(path: &Path) -> Result<LoadedModel> {
         sha256,
         kind: file.decoder.kind().into(),
         channels: file.decoder.n_channels(),
-        bin_ms: file.bin_ms,
+        bin_ms: file.bin_width.ms(),
         outputs: file.decoder.outputs().to_vec(),
     };
     Ok(LoadedModel { file, bytes, info })
@@ -250,8 +250,13 @@ fn prepare_load(path: &Path, shape: StreamShape) -> Result<(DecodePipeline, Load
     let loaded = read_model(path)?;
     let pipeline = DecodePipeline::new(&loaded.file)
         .with_context(|| format!("model {} cannot be run", path.display()))?;
-    check_swap_against(&pipeline, shape.n_channels, shape.bin_us, shape.n_outputs)
-        .with_context(|| format!("model {}", path.display()))?;
+    check_swap_against(
+        &pipeline,
+        shape.n_channels,
+        shape.bin_width,
+        shape.n_outputs,
+    )
+    .with_context(|| format!("model {}", path.display()))?;
     Ok((pipeline, loaded))
 }
 

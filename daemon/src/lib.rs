@@ -300,7 +300,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
     let mut loaded = control::read_model(&model_path).context("model.path / --model")?;
     let pipeline = DecodePipeline::new(&loaded.file)
         .with_context(|| format!("model {} cannot be run", model_path.display()))?;
-    let settings = config.engine_settings(loaded.file.bin_ms);
+    let settings = config.engine_settings(loaded.file.bin_width);
     let n_channels = pipeline.n_channels();
     let n_outputs = pipeline.n_outputs();
     if n_outputs == 0 || n_outputs > packet::MAX_DIMS {
@@ -312,7 +312,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
     let engine = SlotEngine::new(settings.clone(), pipeline);
     let shape = StreamShape {
         n_channels,
-        bin_us: engine.bin_us(),
+        bin_width: engine.bin_width(),
         n_outputs,
     };
 
@@ -341,7 +341,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
                 opened_ns: sys::monotonic_ns(),
                 opened_at: humantime::format_rfc3339_millis(SystemTime::now()).to_string(),
                 n_channels,
-                bin_us: shape.bin_us,
+                bin_width: shape.bin_width,
                 outputs: loaded.info.outputs.clone(),
                 settings: settings.clone(),
             });
@@ -376,7 +376,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         model = %model_path.display(),
         sha256 = %loaded.info.sha256,
         channels = n_channels,
-        bin_ms = loaded.file.bin_ms,
+        bin_ms = loaded.file.bin_width.ms(),
         "decoderd {VERSION} starting"
     );
     if config.arm_at_start {

@@ -361,7 +361,7 @@ mod tests {
 
     fn header() -> Vec<u8> {
         let settings = decoder_core::engine::slot_engine::EngineSettings {
-            bin_ns: 1_000_000,
+            bin_width: decoder_core::BinWidth::from_us(1_000).unwrap(),
             deadline_slack_ns: 500_000,
             reorder_window: 8,
             clock_tracking: 0.0,
@@ -370,7 +370,7 @@ mod tests {
                 max_accel: 1.0,
                 max_coast_bins: 5,
                 coast_decay: 0.5,
-                bin_s: 0.001,
+                bin_width: decoder_core::BinWidth::from_us(1_000).unwrap(),
             },
             armed_at_start: false,
             dead_channel_bins: 100,
@@ -381,7 +381,7 @@ mod tests {
             opened_ns: 0,
             opened_at: String::new(),
             n_channels: 1,
-            bin_us: 1000,
+            bin_width: decoder_core::BinWidth::from_us(1000).unwrap(),
             outputs: vec!["vel_x".into()],
             settings,
         })

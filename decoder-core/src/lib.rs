@@ -18,6 +18,7 @@
 //! socket, starts a thread pool of its own for the per-bin path, or runs
 //! an async runtime.
 
+pub mod bin_width;
 pub mod decoders;
 pub mod engine;
 pub mod fit;
@@ -25,6 +26,7 @@ pub mod formats;
 pub mod linalg;
 pub mod sim;
 
+pub use bin_width::BinWidth;
 pub use decoders::DecoderModel;
 pub use engine::pipeline::{BinEstimate, DecodePipeline, PipelineError};
 pub use fit::TrainError;

@@ -39,7 +39,7 @@ static GLOBAL: Counting = Counting;
 
 fn model_file(decoder: DecoderModel) -> ModelFile {
     ModelFile {
-        bin_ms: 20.0,
+        bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder,
         provenance: Provenance::untracked(),
     }

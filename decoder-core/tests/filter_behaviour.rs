@@ -111,7 +111,7 @@ fn velocity_only_layout_decodes() {
     };
     let (model, _) = fit_kalman(&cal, &o).unwrap();
     let mf = ModelFile {
-        bin_ms: 20.0,
+        bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder: DecoderModel::Kalman(model),
         provenance: Provenance::untracked(),
     };
@@ -221,7 +221,7 @@ fn replaying_twice_is_bit_identical() {
     .unwrap();
     let (model, _) = fit_kalman(&session, &opts()).unwrap();
     let mf = ModelFile {
-        bin_ms: 20.0,
+        bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder: DecoderModel::Kalman(model),
         provenance: Provenance::untracked(),
     };

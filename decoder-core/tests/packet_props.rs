@@ -26,7 +26,7 @@ fn model() -> ModelFile {
 
 fn settings() -> EngineSettings {
     EngineSettings {
-        bin_ns: 20_000_000,
+        bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
         deadline_slack_ns: 10_000_000,
         reorder_window: 8,
         clock_tracking: 0.01,
@@ -35,7 +35,7 @@ fn settings() -> EngineSettings {
             max_accel: 500.0,
             max_coast_bins: 5,
             coast_decay: 0.8,
-            bin_s: 0.02,
+            bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
         },
         armed_at_start: true,
         dead_channel_bins: 100,

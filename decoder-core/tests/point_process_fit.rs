@@ -12,7 +12,7 @@ fn history_models_pass_the_ks_band_where_lnp_models_fail() {
     let (session, _) = simulate(&SimOptions {
         minutes: 1.5,
         n_channels: 8,
-        bin_ms: 1.0,
+        bin_width: decoder_core::BinWidth::from_us(1000).unwrap(),
         refractory_ms: 3,
         recovery_ms: 15.0,
         ..SimOptions::default()
@@ -108,7 +108,7 @@ fn an_absurd_rate_is_clamped_counted_and_stays_finite() {
         })
     };
     let model = ModelFile {
-        bin_ms: 20.0,
+        bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder: DecoderModel::PointProcess(PointProcessModel {
             state: vec!["vel_x".into(), "vel_y".into()],
             outputs: vec!["vel_x".into(), "vel_y".into()],

@@ -22,7 +22,7 @@ fn model() -> (ModelFile, decoder_core::Block) {
 
 fn settings(armed: bool) -> EngineSettings {
     EngineSettings {
-        bin_ns: BIN_NS,
+        bin_width: decoder_core::BinWidth::from_ns(BIN_NS).unwrap(),
         deadline_slack_ns: BIN_NS / 2,
         reorder_window: 64,
         clock_tracking: 0.0,
@@ -31,7 +31,7 @@ fn settings(armed: bool) -> EngineSettings {
             max_accel: 500.0,
             max_coast_bins: 5,
             coast_decay: 0.8,
-            bin_s: 0.02,
+            bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
         },
         armed_at_start: armed,
         dead_channel_bins: 1500,

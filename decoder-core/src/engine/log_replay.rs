@@ -96,11 +96,16 @@ pub fn replay_log(
             source,
         })?;
         let h = reader.header();
-        crate::engine::slot_engine::check_swap_against(&p, h.n_channels, h.bin_us, h.outputs.len())
-            .map_err(|source| LogReplayError::Override {
-                path: path.clone(),
-                source,
-            })?;
+        crate::engine::slot_engine::check_swap_against(
+            &p,
+            h.n_channels,
+            h.bin_width,
+            h.outputs.len(),
+        )
+        .map_err(|source| LogReplayError::Override {
+            path: path.clone(),
+            source,
+        })?;
         engine = Some(SlotEngine::new(settings.clone(), p));
     }
     let mut sink = Collect::default();

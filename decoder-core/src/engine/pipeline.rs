@@ -7,6 +7,7 @@
 //! and does no I/O, so the same bins give the same estimates bit for bit
 //! wherever it runs.
 
+use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
 use crate::decoders::kalman::{KalmanError, KalmanFilter};
 use crate::decoders::point_process::PointProcessFilter;
@@ -45,7 +46,7 @@ pub struct BinEstimate<'a> {
 pub struct DecodePipeline {
     engine: Engine,
     n_channels: usize,
-    bin_ms: f64,
+    bin_width: BinWidth,
     estimate: Vec<f64>,
     last_seq: Option<u64>,
 }
@@ -71,12 +72,12 @@ impl DecodePipeline {
         model: &ModelFile,
         use_steady_state: bool,
     ) -> Result<DecodePipeline, PipelineError> {
-        Self::from_decoder(&model.decoder, model.bin_ms, use_steady_state)
+        Self::from_decoder(&model.decoder, model.bin_width, use_steady_state)
     }
 
     pub fn from_decoder(
         decoder: &DecoderModel,
-        bin_ms: f64,
+        bin_width: BinWidth,
         use_steady_state: bool,
     ) -> Result<DecodePipeline, PipelineError> {
         let (engine, d) = match decoder {
@@ -100,7 +101,7 @@ impl DecodePipeline {
         let mut p = DecodePipeline {
             engine,
             n_channels: decoder.n_channels(),
-            bin_ms,
+            bin_width,
             estimate: vec![0.0; d],
             last_seq: None,
         };
@@ -112,8 +113,8 @@ impl DecodePipeline {
         self.n_channels
     }
 
-    pub fn bin_ms(&self) -> f64 {
-        self.bin_ms
+    pub fn bin_width(&self) -> BinWidth {
+        self.bin_width
     }
 
     pub fn n_outputs(&self) -> usize {
@@ -214,9 +215,9 @@ pub enum MismatchError {
     )]
     Channels { block: usize, model: usize },
     #[error(
-        "the block has {block} ms bins but the model was trained on {model} ms bins; rebin the block or retrain"
+        "the block has {block} bins but the model was trained on {model} bins; rebin the block or retrain"
     )]
-    BinWidth { block: f64, model: f64 },
+    BinWidth { block: BinWidth, model: BinWidth },
 }
 
 /// Checks that a block's channel count and bin width match a model's.
@@ -230,10 +231,10 @@ pub fn check_block(
             model: pipeline.n_channels(),
         });
     }
-    if (session.bin_ms - pipeline.bin_ms()).abs() > 1e-9 * pipeline.bin_ms() {
+    if session.bin_width != pipeline.bin_width() {
         return Err(MismatchError::BinWidth {
-            block: session.bin_ms,
-            model: pipeline.bin_ms(),
+            block: session.bin_width,
+            model: pipeline.bin_width(),
         });
     }
     Ok(())

@@ -32,6 +32,7 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::bin_width::BinWidth;
 use crate::engine::pipeline::DecodePipeline;
 use crate::engine::supervisor::{
     ArmRefused, SafetyLimits, Supervisor, SupervisorState, Transition, TransitionReason,
@@ -44,8 +45,9 @@ use crate::formats::packet::{
 /// log header so a replay decides the same way.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct EngineSettings {
-    /// Bin width in ns (from the model).
-    pub bin_ns: u64,
+    /// Bin width (from the model); u64 ns on disk.
+    #[serde(with = "crate::bin_width::as_ns", rename = "bin_ns")]
+    pub bin_width: BinWidth,
     /// How long after a bin's nominal time its slot waits before coasting.
     pub deadline_slack_ns: u64,
     /// Bins ahead of (or behind) the expected seq that are still this
@@ -163,9 +165,9 @@ pub enum SwapRefused {
     )]
     Channels { new: usize, running: usize },
     #[error(
-        "the new model has {new} µs bins but the running stream has {running} µs bins; retrain at the stream's bin width"
+        "the new model has {new} bins but the running stream has {running} bins; retrain at the stream's bin width"
     )]
-    BinWidth { new: u32, running: u32 },
+    BinWidth { new: BinWidth, running: BinWidth },
     #[error(
         "the new model outputs {new} velocities but the running one outputs {running}; the actuator expects a fixed layout"
     )]
@@ -206,7 +208,6 @@ pub struct SlotEngine {
     settings: EngineSettings,
     pipeline: DecodePipeline,
     supervisor: Supervisor,
-    bin_us: u32,
     clock: Option<BinClock>,
     pending: Vec<PendingBin>,
     answered: Vec<AnsweredSlot>,
@@ -228,7 +229,6 @@ impl SlotEngine {
         let w = settings.reorder_window.max(1) as usize;
         let supervisor = Supervisor::new(settings.limits.clone(), d, settings.armed_at_start);
         SlotEngine {
-            bin_us: packet::bin_us_of(pipeline.bin_ms()),
             pending: (0..w)
                 .map(|_| PendingBin {
                     seq: 0,
@@ -279,8 +279,8 @@ impl SlotEngine {
         self.pipeline.n_outputs()
     }
 
-    pub fn bin_us(&self) -> u32 {
-        self.bin_us
+    pub fn bin_width(&self) -> BinWidth {
+        self.settings.bin_width
     }
 
     /// The seq of the next slot to answer, once a stream has started.
@@ -313,7 +313,7 @@ impl SlotEngine {
 
     fn deadline_of(&self, c: &BinClock, seq: u64) -> u64 {
         let nominal = c.t0_ns as i128
-            + i128::from(seq.wrapping_sub(c.seq0)) * i128::from(self.settings.bin_ns);
+            + i128::from(seq.wrapping_sub(c.seq0)) * i128::from(self.settings.bin_width.ns());
         (nominal + i128::from(self.settings.deadline_slack_ns)).clamp(0, i128::from(u64::MAX))
             as u64
     }
@@ -337,15 +337,16 @@ impl SlotEngine {
             self.answer(SlotSource::Missing, recv_ns, sink);
         }
         self.counters.datagrams += 1;
-        let header = match packet::parse_bin_for(datagram, self.n_channels(), self.bin_us) {
-            Ok(h) => h,
-            Err(reason) => {
-                self.counters.rejected += 1;
-                self.counters.rejected_by_reason[reason.index()] += 1;
-                sink.event(&EngineEvent::Rejected(reason));
-                return;
-            }
-        };
+        let header =
+            match packet::parse_bin_for(datagram, self.n_channels(), self.settings.bin_width) {
+                Ok(h) => h,
+                Err(reason) => {
+                    self.counters.rejected += 1;
+                    self.counters.rejected_by_reason[reason.index()] += 1;
+                    sink.event(&EngineEvent::Rejected(reason));
+                    return;
+                }
+            };
         let seq = header.seq;
         let arrived = SlotSource::Arrived {
             recv_ns,
@@ -426,7 +427,7 @@ impl SlotEngine {
         match self.stray {
             Some((last_seq, last_recv)) => {
                 seq == last_seq.wrapping_add(1)
-                    && recv_ns.saturating_sub(last_recv) >= self.settings.bin_ns / 2
+                    && recv_ns.saturating_sub(last_recv) >= self.settings.bin_width.ns() / 2
             }
             None => false,
         }
@@ -459,7 +460,7 @@ impl SlotEngine {
         }
         let Some(c) = self.clock.as_mut() else { return };
         let nominal = c.t0_ns as i128
-            + i128::from(seq.wrapping_sub(c.seq0)) * i128::from(self.settings.bin_ns);
+            + i128::from(seq.wrapping_sub(c.seq0)) * i128::from(self.settings.bin_width.ns());
         let slack = i128::from(self.settings.deadline_slack_ns);
         let offset = (i128::from(recv_ns) - nominal).clamp(-slack, slack);
         c.t0_ns += (offset as f64 * gain).round() as i64;
@@ -601,7 +602,12 @@ impl SlotEngine {
 
     /// Checks that `pipeline` could replace the running one.
     pub fn check_swap(&self, pipeline: &DecodePipeline) -> Result<(), SwapRefused> {
-        check_swap_against(pipeline, self.n_channels(), self.bin_us, self.n_outputs())
+        check_swap_against(
+            pipeline,
+            self.n_channels(),
+            self.settings.bin_width,
+            self.n_outputs(),
+        )
     }
 
     /// Swaps in a new decoder before the next slot, which carries
@@ -651,7 +657,7 @@ impl SlotEngine {
 pub fn check_swap_against(
     pipeline: &DecodePipeline,
     n_channels: usize,
-    bin_us: u32,
+    bin_width: BinWidth,
     n_outputs: usize,
 ) -> Result<(), SwapRefused> {
     if pipeline.n_channels() != n_channels {
@@ -660,11 +666,10 @@ pub fn check_swap_against(
             running: n_channels,
         });
     }
-    let new_us = packet::bin_us_of(pipeline.bin_ms());
-    if new_us != bin_us {
+    if pipeline.bin_width() != bin_width {
         return Err(SwapRefused::BinWidth {
-            new: new_us,
-            running: bin_us,
+            new: pipeline.bin_width(),
+            running: bin_width,
         });
     }
     if pipeline.n_outputs() != n_outputs {

@@ -85,8 +85,10 @@ pub struct SafetyLimits {
     pub max_coast_bins: u32,
     /// Factor applied to the command for each coasted bin (0..=1).
     pub coast_decay: f64,
-    /// Bin width in seconds (turns `max_accel` into a per-bin step).
-    pub bin_s: f64,
+    /// Bin width (turns `max_accel` into a per-bin step); f64 seconds on
+    /// disk.
+    #[serde(with = "crate::bin_width::as_seconds", rename = "bin_s")]
+    pub bin_width: crate::bin_width::BinWidth,
 }
 
 /// What the supervisor decided for one bin.
@@ -267,7 +269,7 @@ impl Supervisor {
             self.target.iter_mut().for_each(|t| *t *= s);
             flags |= FLAG_SPEED_CLAMPED;
         }
-        let max_step = self.limits.max_accel * self.limits.bin_s;
+        let max_step = self.limits.max_accel * self.limits.bin_width.seconds();
         let step: f64 = self
             .target
             .iter()
@@ -309,7 +311,7 @@ mod tests {
             max_accel: 100.0,
             max_coast_bins: 5,
             coast_decay: 0.5,
-            bin_s: 0.02,
+            bin_width: crate::bin_width::BinWidth::from_us(20_000).unwrap(),
         }
     }
 

@@ -87,7 +87,7 @@ fn subset(session: &Block, ranges: &[std::ops::Range<usize>]) -> Block {
         bins += r.len();
     }
     Block {
-        bin_ms: session.bin_ms,
+        bin_width: session.bin_width,
         n_bins: bins,
         n_channels: n,
         counts,
@@ -165,7 +165,7 @@ fn fit_per_fold(
                             train.add_assign(p);
                         }
                     }
-                    fit_from_stats(&train, opts, session.bin_ms)
+                    fit_from_stats(&train, opts, session.bin_width)
                         .map(|(m, _)| DecoderModel::Kalman(m))
                 })
                 .collect()
@@ -284,7 +284,7 @@ pub fn cross_validate(
         }
         let mut per_fold = Vec::with_capacity(k);
         for (f, model) in models.iter().enumerate() {
-            let mut pipeline = DecodePipeline::from_decoder(model, session.bin_ms, true)?;
+            let mut pipeline = DecodePipeline::from_decoder(model, session.bin_width, true)?;
             let mut truth: Vec<Vec<f64>> = vec![Vec::new(); cols.len()];
             let mut est: Vec<Vec<f64>> = vec![Vec::new(); cols.len()];
             for seg in &plan.held_out[f] {

@@ -131,7 +131,7 @@ mod tests {
 
     fn block_with_trials(spans: &[(usize, usize)], n_bins: usize) -> Block {
         Block {
-            bin_ms: 20.0,
+            bin_width: crate::bin_width::BinWidth::from_us(20_000).unwrap(),
             n_bins,
             n_channels: 1,
             counts: vec![0; n_bins],

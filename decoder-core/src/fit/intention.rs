@@ -89,7 +89,7 @@ mod tests {
             kin.set(0, c, *v);
         }
         Block {
-            bin_ms: 20.0,
+            bin_width: crate::bin_width::BinWidth::from_us(20_000).unwrap(),
             n_bins: 1,
             n_channels: 1,
             counts: vec![1],

@@ -271,7 +271,7 @@ pub fn fit_kalman_segments(
     for seg in segments {
         stats.accumulate(session, &sources, options.lag_bins, seg.clone());
     }
-    fit_from_stats(&stats, options, session.bin_ms)
+    fit_from_stats(&stats, options, session.bin_width)
 }
 
 fn solve_spd(
@@ -304,7 +304,7 @@ fn to_dm(c: &CrossSums) -> DMatrix<f64> {
 pub fn fit_from_stats(
     stats: &KalmanStats,
     options: &KalmanFitOptions,
-    bin_ms: f64,
+    bin_width: crate::bin_width::BinWidth,
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
     let (d, n) = (stats.d, stats.n);
     let t_obs = stats.gram.n_rows;
@@ -426,7 +426,7 @@ pub fn fit_from_stats(
         a[(c, c)] = 1.0;
     }
     if options.physical_coupling {
-        let dt = bin_ms / 1000.0;
+        let dt = bin_width.seconds();
         for (i, name) in options.state.iter().enumerate() {
             if let Some(axis) = name.strip_prefix("pos_")
                 && let Some(v) = options

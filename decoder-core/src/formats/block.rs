@@ -15,6 +15,7 @@ use ndarray_npy::{ReadNpyError, ReadNpyExt, WriteNpyExt};
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 
+use crate::bin_width::BinWidth;
 use crate::linalg::Mat;
 
 pub const MANIFEST_FILE: &str = "manifest.toml";
@@ -38,7 +39,7 @@ pub struct Trial {
 /// bins when the block is meant for training.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Block {
-    pub bin_ms: f64,
+    pub bin_width: BinWidth,
     pub n_bins: usize,
     pub n_channels: usize,
     /// `n_bins × n_channels` counts, bin after bin (the bin packet's layout).
@@ -177,7 +178,7 @@ impl Block {
             None
         };
         Ok(Block {
-            bin_ms: manifest.bin_ms,
+            bin_width: BinWidth::from_ms(manifest.bin_ms).expect("checked with the manifest"),
             n_bins,
             n_channels,
             counts,
@@ -198,7 +199,7 @@ impl Block {
         })?;
         let manifest = ManifestFile {
             version: SESSION_FORMAT_VERSION,
-            bin_ms: self.bin_ms,
+            bin_ms: self.bin_width.ms(),
             kinematics: self.kinematic_names.clone(),
             channel_labels: self.channel_labels.clone(),
             notes: self.notes.clone(),
@@ -291,9 +292,9 @@ fn read_manifest(path: &Path) -> Result<ManifestFile, BlockError> {
             manifest.version
         )));
     }
-    if !(manifest.bin_ms.is_finite() && manifest.bin_ms > 0.0) {
+    if let Err(e) = BinWidth::from_ms(manifest.bin_ms) {
         return Err(bad(format!(
-            "key bin_ms is {}; it must be a bin width in milliseconds above zero",
+            "key bin_ms is {}: {e}; it must be the bin width in milliseconds, whole microseconds above zero",
             manifest.bin_ms
         )));
     }

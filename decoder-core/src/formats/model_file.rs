@@ -12,6 +12,7 @@ use std::path::Path;
 use serde::{Deserialize, Serialize};
 use serde_json::{Value, json};
 
+use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
 
 pub const MODEL_MAGIC: &[u8; 8] = b"VDECMODL";
@@ -51,7 +52,9 @@ impl Provenance {
 
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ModelFile {
-    pub bin_ms: f64,
+    /// The bin width the model was trained on (f64 ms on disk).
+    #[serde(with = "crate::bin_width::as_ms")]
+    pub bin_width: BinWidth,
     pub decoder: DecoderModel,
     pub provenance: Provenance,
 }
@@ -173,9 +176,6 @@ impl ModelFile {
     }
 
     pub fn validate(&self) -> Result<(), String> {
-        if !(self.bin_ms.is_finite() && self.bin_ms > 0.0) {
-            return Err(format!("bin_ms is {}", self.bin_ms));
-        }
         match &self.decoder {
             DecoderModel::Kalman(m) => m.validate().map_err(|e| e.to_string()),
             DecoderModel::Wiener(m) => m.validate(),
@@ -191,7 +191,7 @@ pub fn export_json(model: &ModelFile) -> Value {
     let cv: Value = serde_json::from_str(&prov.cv_json).unwrap_or(Value::Null);
     let mut obj = json!({
         "kind": model.decoder.kind(),
-        "bin_ms": model.bin_ms,
+        "bin_ms": model.bin_width.ms(),
         "channels": model.decoder.n_channels(),
         "outputs": model.decoder.outputs(),
         "trained_at": prov.trained_at,

@@ -7,6 +7,8 @@
 //! so the offline replay of a recorded session parses and encodes exactly as
 //! the daemon did.
 
+use crate::bin_width::BinWidth;
+
 /// ASCII `NBIN`.
 pub const BIN_MAGIC: [u8; 4] = *b"NBIN";
 /// ASCII `NVEL`.
@@ -148,7 +150,7 @@ pub fn parse_bin(datagram: &[u8]) -> Result<BinHeader, RejectReason> {
 pub fn parse_bin_for(
     datagram: &[u8],
     n_channels: usize,
-    bin_us: u32,
+    bin_width: BinWidth,
 ) -> Result<BinHeader, RejectReason> {
     let header = parse_bin(datagram)?;
     if usize::from(header.channels) != n_channels {
@@ -157,10 +159,11 @@ pub fn parse_bin_for(
             expected: n_channels,
         });
     }
-    if header.bin_us != bin_us {
+    // One rule for equality: the same whole microseconds.
+    if header.bin_us != bin_width.us() {
         return Err(RejectReason::BinWidthMismatch {
             got: header.bin_us,
-            expected: bin_us,
+            expected: bin_width.us(),
         });
     }
     Ok(header)
@@ -206,11 +209,6 @@ pub fn bin_datagram(counts: &[u16], bin_us: u32) -> Vec<u8> {
         &mut out,
     );
     out
-}
-
-/// Bin width in whole microseconds as the packets carry it.
-pub fn bin_us_of(bin_ms: f64) -> u32 {
-    (bin_ms * 1000.0).round() as u32
 }
 
 /// Byte length of a velocity packet with `dims` outputs.
@@ -362,7 +360,7 @@ mod tests {
     fn bin_round_trip() {
         let bytes = bin(3, &[1, 0, 65535]);
         assert_eq!(bytes.len(), 38);
-        let h = parse_bin_for(&bytes, 3, 20_000).unwrap();
+        let h = parse_bin_for(&bytes, 3, BinWidth::from_us(20_000).unwrap()).unwrap();
         assert_eq!((h.seq, h.origin_ns, h.bin_us), (7, 11, 20_000));
         let mut counts = [0u16; 3];
         read_counts(&bytes, &mut counts);
@@ -394,11 +392,11 @@ mod tests {
             Err(RejectReason::LengthMismatch { .. })
         ));
         assert!(matches!(
-            parse_bin_for(&good, 4, 20_000),
+            parse_bin_for(&good, 4, BinWidth::from_us(20_000).unwrap()),
             Err(RejectReason::ChannelMismatch { .. })
         ));
         assert!(matches!(
-            parse_bin_for(&good, 3, 10_000),
+            parse_bin_for(&good, 3, BinWidth::from_us(10_000).unwrap()),
             Err(RejectReason::BinWidthMismatch { .. })
         ));
     }
@@ -407,7 +405,7 @@ mod tests {
     fn unknown_flag_bits_are_ignored() {
         let mut m = bin(1, &[4]);
         m[28..32].copy_from_slice(&0xdead_beefu32.to_le_bytes());
-        assert!(parse_bin_for(&m, 1, 20_000).is_ok());
+        assert!(parse_bin_for(&m, 1, BinWidth::from_us(20_000).unwrap()).is_ok());
     }
 
     #[test]

@@ -82,7 +82,9 @@ pub struct LogHeader {
     /// Wall-clock time the log was opened, RFC 3339, as the daemon saw it.
     pub opened_at: String,
     pub n_channels: usize,
-    pub bin_us: u32,
+    /// u32 µs on disk.
+    #[serde(with = "crate::bin_width::as_us", rename = "bin_us")]
+    pub bin_width: crate::bin_width::BinWidth,
     pub outputs: Vec<String>,
     pub settings: EngineSettings,
 }

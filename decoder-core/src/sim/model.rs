@@ -27,7 +27,7 @@ pub fn simulated_kalman(
     let (block, _) = simulate(sim)?;
     let (kalman, _) = fit_kalman(&block, fit)?;
     let model = ModelFile {
-        bin_ms: block.bin_ms,
+        bin_width: block.bin_width,
         decoder: DecoderModel::Kalman(kalman),
         provenance: Provenance::untracked(),
     };

@@ -9,6 +9,7 @@
 //! one seeded ChaCha8 stream, so a seed gives the same block on every
 //! machine and release.
 
+use crate::bin_width::BinWidth;
 use std::f64::consts::PI;
 
 use rand::{RngExt, SeedableRng};
@@ -28,7 +29,8 @@ pub struct SimOptions {
     pub population_seed: u64,
     pub minutes: f64,
     pub n_channels: usize,
-    pub bin_ms: f64,
+    /// Whole milliseconds (spikes are drawn on a 1 ms grid).
+    pub bin_width: BinWidth,
     /// Ring radius in cm.
     pub target_radius: f64,
     /// Absolute refractory period in ms.
@@ -45,7 +47,7 @@ impl Default for SimOptions {
             population_seed: 1,
             minutes: 10.0,
             n_channels: 96,
-            bin_ms: 20.0,
+            bin_width: BinWidth::from_us(20_000).expect("20 ms"),
             target_radius: 10.0,
             refractory_ms: 2,
             recovery_ms: 0.0,
@@ -193,14 +195,16 @@ pub fn simulate(options: &SimOptions) -> Result<(Block, SimChannels), SimError> 
             expected: "1 to 16384",
         });
     }
-    let bin_ms_int = options.bin_ms.round() as usize;
-    if options.bin_ms.fract() != 0.0 || bin_ms_int == 0 || bin_ms_int > 1000 {
-        return Err(SimError::Option {
-            key: "bin_ms",
-            value: options.bin_ms.to_string(),
-            expected: "a whole number of ms from 1 to 1000",
-        });
-    }
+    let bin_ms_int = match options.bin_width.whole_ms() {
+        Some(ms) if (1..=1000).contains(&ms) => ms as usize,
+        _ => {
+            return Err(SimError::Option {
+                key: "bin_ms",
+                value: options.bin_width.ms().to_string(),
+                expected: "a whole number of ms from 1 to 1000",
+            });
+        }
+    };
     let channels = draw_channels(
         &mut ChaCha8Rng::seed_from_u64(options.population_seed),
         options.n_channels,
@@ -273,7 +277,7 @@ pub fn simulate(options: &SimOptions) -> Result<(Block, SimChannels), SimError> 
         .filter(|t| t.start_bin < t.end_bin)
         .collect();
     let session = Block {
-        bin_ms: options.bin_ms,
+        bin_width: options.bin_width,
         n_bins,
         n_channels: n,
         counts,

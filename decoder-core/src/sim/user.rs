@@ -18,12 +18,14 @@ use rand::{RngExt, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
+use crate::bin_width::BinWidth;
 use crate::sim::reaching::SimChannels;
 
 #[derive(Clone, Debug, PartialEq)]
 pub struct TaskOptions {
     pub seed: u64,
-    pub bin_ms: f64,
+    /// Whole milliseconds (spikes are drawn on a 1 ms grid).
+    pub bin_width: BinWidth,
     pub n_trials: usize,
     /// Ring radius, cm.
     pub radius: f64,
@@ -41,7 +43,7 @@ impl Default for TaskOptions {
     fn default() -> Self {
         TaskOptions {
             seed: 1,
-            bin_ms: 20.0,
+            bin_width: BinWidth::from_us(20_000).expect("20 ms"),
             n_trials: 16,
             radius: 10.0,
             window: 2.0,
@@ -97,7 +99,7 @@ impl SimulatedUser {
             channels,
             rng: ChaCha8Rng::seed_from_u64(options.seed ^ 0x005E_ED0F_0CE5),
             refractory_left: vec![0; n],
-            bin_ms: options.bin_ms.round().max(1.0) as usize,
+            bin_ms: options.bin_width.whole_ms().unwrap_or(1).max(1) as usize,
             refractory_ms: options.refractory_ms,
         }
     }
@@ -216,7 +218,7 @@ impl CenterOut {
     /// Moves the cursor by one bin of `command` (cm/s) and scores the
     /// trial; returns the finished trial's result when one ends.
     pub fn advance(&mut self, command: [f64; 2]) -> Option<TrialResult> {
-        let dt = self.options.bin_ms / 1000.0;
+        let dt = self.options.bin_width.seconds();
         let step = [command[0] * dt, command[1] * dt];
         if step[0].is_finite() && step[1].is_finite() {
             self.cursor[0] += step[0];
@@ -234,7 +236,7 @@ impl CenterOut {
         } else {
             self.hold_bins = 0;
         }
-        let held = self.hold_bins as f64 * self.options.bin_ms >= self.options.hold_ms;
+        let held = self.hold_bins as f64 * self.options.bin_width.ms() >= self.options.hold_ms;
         let timed_out = elapsed_s * 1000.0 >= self.options.timeout_ms;
         if !(held || timed_out) {
             return None;

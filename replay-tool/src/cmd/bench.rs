@@ -112,7 +112,7 @@ fn bench_model(args: &Args, work: &Path) -> Result<(PathBuf, ModelFile)> {
     let (session, _) = simulate(&SimOptions {
         minutes: 2.0,
         n_channels: args.channels,
-        bin_ms: args.bin_ms,
+        bin_width: super::bin_width_flag(args.bin_ms)?,
         ..SimOptions::default()
     })?;
     let cfg = decoder_core::fit::config::TrainConfig::default();
@@ -127,11 +127,11 @@ fn bins_for(model: &ModelFile) -> Result<(Vec<Vec<u8>>, Block)> {
     let (session, _) = simulate(&SimOptions {
         minutes: 0.5,
         n_channels: model.decoder.n_channels(),
-        bin_ms: model.bin_ms,
+        bin_width: model.bin_width,
         seed: 77,
         ..SimOptions::default()
     })?;
-    let bin_us = packet::bin_us_of(model.bin_ms);
+    let bin_us = model.bin_width.us();
     let bins = (0..session.n_bins)
         .map(|t| packet::bin_datagram(session.bin_counts(t), bin_us))
         .collect();
@@ -157,7 +157,7 @@ pub fn run(args: &Args) -> Result<()> {
         .with_context(|| format!("cannot create {}", args.report.display()))?;
     let work = args.report.join("daemon");
     let (model_path, model) = bench_model(args, &args.report)?;
-    let rate_hz = 1000.0 / model.bin_ms;
+    let rate_hz = 1000.0 / model.bin_width.ms();
     let n = (args.seconds * rate_hz).round().max(1.0) as usize;
     let dims = model.decoder.outputs().len();
     let (bins, _) = bins_for(&model)?;

@@ -151,7 +151,7 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     }
     let n = model.decoder.n_channels();
     let task_options = TaskOptions {
-        bin_ms: model.bin_ms,
+        bin_width: model.bin_width,
         ..setup.task.clone()
     };
     let mut user = SimulatedUser::new(population(setup.array_seed, n), &task_options);
@@ -176,8 +176,8 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     };
     sink.set_read_timeout(Some(Duration::from_millis(50)))?;
     let front_end = UdpSocket::bind("127.0.0.1:0")?;
-    let bin_us = packet::bin_us_of(model.bin_ms);
-    let period = Duration::from_secs_f64(model.bin_ms / 1000.0);
+    let bin_us = model.bin_width.us();
+    let period = Duration::from_secs_f64(model.bin_width.ms() / 1000.0);
     let mut counts = vec![0u16; n];
     let mut datagram = Vec::with_capacity(packet::BIN_HEADER_LEN + 2 * n);
     let mut reply = [0u8; 1024];
@@ -251,7 +251,7 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     let rows: Vec<Vec<f64>> = kinematics.iter().map(|k| k.to_vec()).collect();
     let kin = Mat::from_rows(&rows);
     let block = Block {
-        bin_ms: model.bin_ms,
+        bin_width: model.bin_width,
         n_bins: t,
         n_channels: n,
         counts: all_counts,

@@ -96,7 +96,7 @@ pub fn run(args: &Args) -> Result<()> {
     let eval = cross_validate(&cal, &specs, cfg.folds, |_, _| pb.inc(1))?;
     pb.finish_and_clear();
     let report = out.join("report");
-    evaluate::write_report(&report, &eval, cal.bin_ms)?;
+    evaluate::write_report(&report, &eval, cal.bin_width.ms())?;
     println!("3. cross-validated Kalman against the Wiener baseline:");
     for d in &eval.decoders {
         let parts: Vec<String> = d
@@ -142,7 +142,8 @@ pub fn run(args: &Args) -> Result<()> {
 fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
     let exe = super::find_decoderd(args.decoderd.as_deref())?;
     let work = args.out.join("live");
-    let n_bins = ((args.live_seconds * 1000.0 / block.bin_ms) as usize).clamp(1, block.n_bins);
+    let n_bins =
+        ((args.live_seconds * 1000.0 / block.bin_width.ms()) as usize).clamp(1, block.n_bins);
     let sink = ActuatorSink::on_loopback()?;
     let daemon = Launch::new(model_path, &work, sink.addr)
         .binary(exe.as_deref())
@@ -157,9 +158,9 @@ fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
         "5. started {how} (armed for this bench run) on {} -> actuator sink {}; streaming {n_bins} bins ({:.0} s) of the later block at the bin rate ...",
         daemon.listen,
         sink.addr,
-        n_bins as f64 * block.bin_ms / 1000.0
+        n_bins as f64 * block.bin_width.ms() / 1000.0
     );
-    let bin_us = packet::bin_us_of(block.bin_ms);
+    let bin_us = block.bin_width.us();
     let datagrams: Vec<Vec<u8>> = (0..n_bins)
         .map(|t| packet::bin_datagram(block.bin_counts(t), bin_us))
         .collect();
@@ -169,13 +170,13 @@ fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
         daemon.listen,
         &datagrams,
         n_bins,
-        1000.0 / block.bin_ms,
+        1000.0 / block.bin_width.ms(),
         |_| BinFault::None,
     );
     // The last bin is answered one deadline after it is due.
     let _ = sink.wait_for_seq(
         n_bins as u64 - 1,
-        Duration::from_secs(1) + Duration::from_secs_f64(4.0 * block.bin_ms / 1000.0),
+        Duration::from_secs(1) + Duration::from_secs_f64(4.0 * block.bin_width.ms() / 1000.0),
     );
     let status = daemon.status()?;
     let stopped = daemon.stop()?;

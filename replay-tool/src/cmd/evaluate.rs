@@ -77,7 +77,7 @@ pub fn run(args: &Args) -> Result<()> {
     print!("{}", table(&eval));
     print!("{}", goodness_table(&eval));
     if let Some(dir) = &args.report {
-        write_report(dir, &eval, session.bin_ms)?;
+        write_report(dir, &eval, session.bin_width.ms())?;
         println!("report: {}", dir.display());
     }
     Ok(())

@@ -65,6 +65,11 @@ pub fn socket_addr(flag: &str, text: &str) -> Result<std::net::SocketAddr> {
         .with_context(|| format!("{flag} {text}: not an address (HOST:PORT, e.g. 127.0.0.1:27400)"))
 }
 
+/// Reads `--bin-ms`, naming the flag when it is not a usable bin width.
+pub fn bin_width_flag(ms: f64) -> Result<decoder_core::BinWidth> {
+    decoder_core::BinWidth::from_ms(ms).with_context(|| format!("--bin-ms {ms}"))
+}
+
 /// Checks a `--time-scale` value: a multiple of the bin period between
 /// bins, finite and ≥ 0 (0 where `zero_ok`: as fast as the loop turns).
 pub fn check_time_scale(x: f64, zero_ok: bool) -> Result<()> {

@@ -23,7 +23,7 @@ pub fn summary(model: &ModelFile) -> String {
     let mut s = String::new();
     let p = &model.provenance;
     let _ = writeln!(s, "kind          {}", model.decoder.kind());
-    let _ = writeln!(s, "bin width     {} ms", model.bin_ms);
+    let _ = writeln!(s, "bin width     {} ms", model.bin_width.ms());
     let _ = writeln!(s, "channels      {}", model.decoder.n_channels());
     let _ = writeln!(s, "outputs       {}", model.decoder.outputs().join(", "));
     match &model.decoder {

@@ -42,7 +42,7 @@ pub fn run(args: &Args) -> Result<()> {
         population_seed: args.array_seed,
         minutes: args.minutes,
         n_channels: args.channels,
-        bin_ms: args.bin_ms,
+        bin_width: super::bin_width_flag(args.bin_ms)?,
         refractory_ms: args.refractory_ms,
         recovery_ms: args.recovery_ms,
         ..SimOptions::default()
@@ -55,7 +55,7 @@ pub fn run(args: &Args) -> Result<()> {
         "wrote {}: {} bins of {} ms, {} channels, {} trials",
         args.out.display(),
         session.n_bins,
-        session.bin_ms,
+        session.bin_width.ms(),
         session.n_channels,
         session.trials.as_ref().map_or(0, Vec::len)
     );

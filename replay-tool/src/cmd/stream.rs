@@ -59,7 +59,7 @@ fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFil
     }
     let mut reader = LogReader::open(session)?;
     let n = reader.header().n_channels;
-    let bin_us = reader.header().bin_us;
+    let bin_width = reader.header().bin_width;
     let mut logged_model = None;
     let mut bins = Vec::new();
     while let Some(r) = reader.next_record() {
@@ -71,7 +71,7 @@ fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFil
                 )?);
             }
             LogRecord::Datagram { bytes, .. }
-                if packet::parse_bin_for(&bytes, n, bin_us).is_ok() =>
+                if packet::parse_bin_for(&bytes, n, bin_width).is_ok() =>
             {
                 let mut counts = vec![0u16; n];
                 packet::read_counts(&bytes, &mut counts);
@@ -97,7 +97,7 @@ pub fn run(args: &Args) -> Result<()> {
     }
     let n = bins.len();
     let channels = model.decoder.n_channels();
-    let bin_us = packet::bin_us_of(model.bin_ms);
+    let bin_us = model.bin_width.us();
     let datagrams: Vec<Vec<u8>> = bins
         .iter()
         .map(|c| packet::bin_datagram(c, bin_us))
@@ -119,11 +119,11 @@ pub fn run(args: &Args) -> Result<()> {
     } else {
         "[::1]:0"
     })?;
-    let rate = 1000.0 / model.bin_ms / args.time_scale;
+    let rate = 1000.0 / model.bin_width.ms() / args.time_scale;
     println!(
         "streaming {n} bins of {channels} channels to {target} at {rate:.0} bins/s; collecting on {actuator} ..."
     );
-    let bin = Duration::from_secs_f64(model.bin_ms / 1000.0);
+    let bin = Duration::from_secs_f64(model.bin_width.ms() / 1000.0);
     paced_send_from(&sender, target, &datagrams[..1], 1, rate, base, |_| {
         BinFault::None
     });

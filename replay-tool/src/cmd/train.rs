@@ -128,7 +128,7 @@ pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) ->
         None => serde_json::Value::Null,
     };
     Ok(ModelFile {
-        bin_ms: session.bin_ms,
+        bin_width: session.bin_width,
         decoder,
         provenance: Provenance {
             trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
@@ -237,7 +237,7 @@ pub fn run(args: &Args) -> Result<()> {
         args.out.display(),
         model.decoder.kind(),
         model.decoder.n_channels(),
-        model.bin_ms
+        model.bin_width.ms()
     );
     if let DecoderModel::PointProcess(m) = &model.decoder {
         println!(

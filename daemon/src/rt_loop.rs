@@ -66,6 +66,12 @@ pub struct StaticInfo {
     pub recording: Option<(std::path::PathBuf, Arc<RecorderStats>)>,
 }
 
+/// The real-time loop: one OS thread that owns the bin socket, the
+/// actuator socket and the slot engine. It sleeps in `ppoll` until a
+/// datagram or the next deadline, stamps each datagram's receive time,
+/// hands it to the engine, sends every packet the engine answers with,
+/// serves control requests between bins, and passes record batches to the
+/// recorder without ever waiting on it. Nothing else touches the engine.
 pub struct RtLoop {
     pub input: UdpSocket,
     pub output: UdpSocket,

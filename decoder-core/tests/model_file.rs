@@ -12,8 +12,9 @@ fn small_model() -> ModelFile {
             trained_at: "2026-01-01T00:00:00Z".into(),
             tool_version: "test".into(),
             data_sha256: s.data_sha256(),
-            fit_json: "{\"ridge\":1.0}".into(),
-            cv_json: "null".into(),
+            fit_document: "{\"ridge\":1.0}".into(),
+            silent_channels: vec![2],
+            cv: None,
         },
         ..m
     }
@@ -38,11 +39,11 @@ fn wrong_magic_is_refused() {
 #[test]
 fn future_version_is_refused() {
     let mut b = small_model().to_bytes();
-    b[8] = 2;
+    b[8] = 3;
     let e = ModelFile::from_bytes(&b, "m.model").unwrap_err();
     assert!(matches!(
         e,
-        ModelFileError::UnsupportedVersion { found: 2, .. }
+        ModelFileError::UnsupportedVersion { found: 3, .. }
     ));
     assert!(e.to_string().starts_with("m.model"), "{e}");
 }

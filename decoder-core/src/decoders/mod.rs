@@ -10,9 +10,9 @@ pub mod wiener;
 
 use serde::{Deserialize, Serialize};
 
-use kalman::KalmanModel;
-use point_process::PointProcessModel;
-use wiener::WienerModel;
+use kalman::{KalmanError, KalmanModel};
+use point_process::{PointProcessError, PointProcessModel};
+use wiener::{WienerError, WienerModel};
 
 // One value per loaded model, never per bin: boxing would buy nothing.
 #[allow(clippy::large_enum_variant)]
@@ -48,4 +48,27 @@ impl DecoderModel {
             DecoderModel::PointProcess(m) => m.n_channels(),
         }
     }
+
+    /// The one check of a model's shapes and values, made where a model
+    /// enters: when a model file is read, and when a fit has built it. The
+    /// filters are built from checked models and do not check again.
+    pub fn validate(&self) -> Result<(), ModelError> {
+        match self {
+            DecoderModel::Kalman(m) => m.validate()?,
+            DecoderModel::Wiener(m) => m.validate()?,
+            DecoderModel::PointProcess(m) => m.validate()?,
+        }
+        Ok(())
+    }
+}
+
+/// Why a decoder model cannot be run.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum ModelError {
+    #[error("kalman model: {0}")]
+    Kalman(#[from] KalmanError),
+    #[error("wiener model: {0}")]
+    Wiener(#[from] WienerError),
+    #[error("point-process model: {0}")]
+    PointProcess(#[from] PointProcessError),
 }

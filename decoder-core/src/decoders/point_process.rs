@@ -55,53 +55,77 @@ pub struct PointProcessModel {
     pub history_basis: Option<RaisedCosineBasis>,
 }
 
+/// Why a point-process model cannot be run.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum PointProcessError {
+    #[error("the state has {d} components; 1 to 16 are supported")]
+    StateDim { d: usize },
+    #[error("{name} must be a finite {d} × {d} matrix")]
+    Matrix { name: &'static str, d: usize },
+    #[error("x0 has {got} values for {d} state components")]
+    InitialState { got: usize, d: usize },
+    #[error(
+        "channel {channel}: its coefficient lengths do not fit the state and the history basis"
+    )]
+    Coefficients { channel: usize },
+    #[error("channel {channel}: coupling has {got} weights for {want} channels")]
+    Coupling {
+        channel: usize,
+        got: usize,
+        want: usize,
+    },
+    #[error("output {name:?} is not a state component (state is {state:?})")]
+    UnknownOutput { name: String, state: Vec<String> },
+}
+
 impl PointProcessModel {
     pub fn n_channels(&self) -> usize {
         self.channels.len()
     }
 
-    pub fn output_indices(&self) -> Result<Vec<usize>, String> {
+    pub fn output_indices(&self) -> Result<Vec<usize>, PointProcessError> {
         self.outputs
             .iter()
             .map(|o| {
-                self.state
-                    .iter()
-                    .position(|s| s == o)
-                    .ok_or_else(|| format!("output {o:?} is not a state component"))
+                self.state.iter().position(|s| s == o).ok_or_else(|| {
+                    PointProcessError::UnknownOutput {
+                        name: o.clone(),
+                        state: self.state.clone(),
+                    }
+                })
             })
             .collect()
     }
 
     /// Checks dimensions and finiteness before a filter is built.
-    pub fn validate(&self) -> Result<(), String> {
+    pub fn validate(&self) -> Result<(), PointProcessError> {
         let d = self.state.len();
         if d == 0 || d > 16 {
-            return Err(format!("state has {d} components; 1 to 16 are supported"));
+            return Err(PointProcessError::StateDim { d });
         }
         for (name, m) in [("A", &self.a), ("W", &self.w), ("P0", &self.p0)] {
             if m.rows != d || m.cols != d || !m.is_finite() {
-                return Err(format!("{name} must be a finite {d} × {d} matrix"));
+                return Err(PointProcessError::Matrix { name, d });
             }
         }
         if self.x0.len() != d {
-            return Err(format!(
-                "x0 has {} values for {d} state components",
-                self.x0.len()
-            ));
+            return Err(PointProcessError::InitialState {
+                got: self.x0.len(),
+                d,
+            });
         }
         let span = self.history_basis.as_ref().map_or(0, |b| b.n_basis);
         for (c, ch) in self.channels.iter().enumerate() {
             let Some(ch) = ch else { continue };
             if ch.beta.len() != d || (!ch.history.is_empty() && ch.history.len() != span) {
-                return Err(format!(
-                    "channel {c}: coefficient lengths do not fit the state and basis"
-                ));
+                return Err(PointProcessError::Coefficients { channel: c });
             }
             if !ch.coupling.is_empty() && ch.coupling.len() != self.channels.len() {
-                return Err(format!(
-                    "channel {c}: coupling has {} weights",
-                    ch.coupling.len()
-                ));
+                return Err(PointProcessError::Coupling {
+                    channel: c,
+                    got: ch.coupling.len(),
+                    want: self.channels.len(),
+                });
             }
         }
         self.output_indices()?;
@@ -142,8 +166,14 @@ pub struct PointProcessFilter {
 }
 
 impl PointProcessFilter {
-    pub fn new(model: &PointProcessModel) -> Result<PointProcessFilter, String> {
-        model.validate()?;
+    /// Builds the runtime from a checked model ([`DecoderModel::validate`]).
+    ///
+    /// [`DecoderModel::validate`]: crate::decoders::DecoderModel::validate
+    pub fn new(model: &PointProcessModel) -> Result<PointProcessFilter, PointProcessError> {
+        debug_assert!(
+            model.validate().is_ok(),
+            "filters are built from checked models"
+        );
         let d = model.state.len();
         let n = model.n_channels();
         let span = model.history_basis.as_ref().map_or(0, |b| b.span_bins);

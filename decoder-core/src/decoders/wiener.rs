@@ -24,29 +24,48 @@ pub struct WienerModel {
     pub mean_counts: Vec<f64>,
 }
 
+/// Why a Wiener model cannot be run.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+pub enum WienerError {
+    #[error("taps is 0; a Wiener model uses at least the current bin")]
+    NoTaps,
+    #[error(
+        "weights are {rows}×{cols}, expected {want_rows}×{want_cols} (outputs × (1 + channels·taps))"
+    )]
+    WeightShape {
+        rows: usize,
+        cols: usize,
+        want_rows: usize,
+        want_cols: usize,
+    },
+    #[error("mean_counts has {got} entries for {want} channels")]
+    MeanCounts { got: usize, want: usize },
+    #[error("a weight or mean count is not finite")]
+    NonFinite,
+}
+
 impl WienerModel {
-    pub fn validate(&self) -> Result<(), String> {
+    pub fn validate(&self) -> Result<(), WienerError> {
         let features = 1 + self.n_channels * self.taps;
         if self.taps == 0 {
-            return Err("taps is 0".into());
+            return Err(WienerError::NoTaps);
         }
         if self.weights.rows != self.outputs.len() || self.weights.cols != features {
-            return Err(format!(
-                "weights are {}×{}, expected {}×{features}",
-                self.weights.rows,
-                self.weights.cols,
-                self.outputs.len()
-            ));
+            return Err(WienerError::WeightShape {
+                rows: self.weights.rows,
+                cols: self.weights.cols,
+                want_rows: self.outputs.len(),
+                want_cols: features,
+            });
         }
         if self.mean_counts.len() != self.n_channels {
-            return Err(format!(
-                "mean_counts has {} entries, expected {}",
-                self.mean_counts.len(),
-                self.n_channels
-            ));
+            return Err(WienerError::MeanCounts {
+                got: self.mean_counts.len(),
+                want: self.n_channels,
+            });
         }
         if !self.weights.is_finite() || self.mean_counts.iter().any(|v| !v.is_finite()) {
-            return Err("a weight is not finite".into());
+            return Err(WienerError::NonFinite);
         }
         Ok(())
     }
@@ -66,8 +85,14 @@ pub struct WienerFilter {
 }
 
 impl WienerFilter {
-    pub fn new(model: &WienerModel) -> Result<WienerFilter, String> {
-        model.validate()?;
+    /// Builds the runtime from a checked model ([`DecoderModel::validate`]).
+    ///
+    /// [`DecoderModel::validate`]: crate::decoders::DecoderModel::validate
+    pub fn new(model: &WienerModel) -> WienerFilter {
+        debug_assert!(
+            model.validate().is_ok(),
+            "filters are built from checked models"
+        );
         let mut f = WienerFilter {
             n: model.n_channels,
             taps: model.taps,
@@ -78,7 +103,7 @@ impl WienerFilter {
             estimate: vec![0.0; model.outputs.len()],
         };
         f.reset();
-        Ok(f)
+        f
     }
 
     pub fn reset(&mut self) {

@@ -10,7 +10,7 @@
 use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
 use crate::decoders::kalman::{KalmanError, KalmanFilter};
-use crate::decoders::point_process::PointProcessFilter;
+use crate::decoders::point_process::{PointProcessError, PointProcessFilter};
 use crate::decoders::wiener::WienerFilter;
 use crate::formats::model_file::ModelFile;
 
@@ -42,6 +42,14 @@ pub struct BinEstimate<'a> {
     pub numerical_fault: bool,
 }
 
+/// One decoder ready to run bin by bin: the filter of whichever kind the
+/// model is (Kalman, steady-state Kalman, Wiener, point process), with the
+/// model's channel count, bin width and output components. Each bin it
+/// takes the counts (`step`) or nothing (`predict_only`, a bin that never
+/// came) and gives the estimate of the output components, flagging a
+/// numerical fault instead of returning a value that is not finite. It
+/// holds no clock and allocates nothing after it is built; the slot engine
+/// owns one and swaps it whole at a model change.
 #[derive(Clone, Debug)]
 pub struct DecodePipeline {
     engine: Engine,
@@ -51,14 +59,14 @@ pub struct DecodePipeline {
     last_seq: Option<u64>,
 }
 
-#[derive(Debug, thiserror::Error)]
+/// Why a checked model still cannot be run: the Kalman filter's noise
+/// terms do not invert, or its steady-state gain does not converge.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
 pub enum PipelineError {
     #[error(transparent)]
     Kalman(#[from] KalmanError),
-    #[error("wiener model: {0}")]
-    Wiener(String),
-    #[error("point-process model: {0}")]
-    PointProcess(String),
+    #[error(transparent)]
+    PointProcess(#[from] PointProcessError),
 }
 
 impl DecodePipeline {
@@ -87,13 +95,10 @@ impl DecodePipeline {
                 let d = outputs.len();
                 (Engine::Kalman { filter, outputs }, d)
             }
-            DecoderModel::Wiener(w) => (
-                Engine::Wiener(WienerFilter::new(w).map_err(PipelineError::Wiener)?),
-                w.outputs.len(),
-            ),
+            DecoderModel::Wiener(w) => (Engine::Wiener(WienerFilter::new(w)), w.outputs.len()),
             DecoderModel::PointProcess(m) => {
-                let filter = PointProcessFilter::new(m).map_err(PipelineError::PointProcess)?;
-                let outputs = m.output_indices().map_err(PipelineError::PointProcess)?;
+                let filter = PointProcessFilter::new(m)?;
+                let outputs = m.output_indices()?;
                 let d = outputs.len();
                 (Engine::PointProcess { filter, outputs }, d)
             }

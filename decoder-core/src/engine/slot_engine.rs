@@ -204,6 +204,14 @@ enum SlotSource {
     Missing,
 }
 
+/// Everything the daemon decides, as a pure function of datagrams and
+/// times: the bin clock (which slot each seq belongs to and when it falls
+/// due), the reorder ring, the decode pipeline, the safety supervisor and
+/// the counters. The daemon hands it each datagram with its receive time
+/// (`on_datagram`) and wakes it at each deadline (`on_timeout`); it
+/// answers every slot exactly once with one velocity packet, decoded or
+/// coasted. Offline replay drives the same engine from a session log with
+/// the logged times, so a replay decides bit for bit as the daemon did.
 pub struct SlotEngine {
     settings: EngineSettings,
     pipeline: DecodePipeline,

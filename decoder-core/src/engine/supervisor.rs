@@ -100,6 +100,13 @@ pub struct Supervised {
     pub transition: Option<Transition>,
 }
 
+/// The safety state machine between the decoder and the actuator:
+/// disarmed, armed, coasting or halted, with the operator's arm, disarm and
+/// halt, and the rules that halt on their own (a non-finite estimate, too
+/// many missing bins, a new stream). It turns each estimate into the
+/// command actually sent: zero unless armed, clamped to the speed limit,
+/// slewed to the acceleration limit, decayed while coasting, and ramped to
+/// zero on a stop. When in doubt it commands zero.
 #[derive(Clone, Debug)]
 pub struct Supervisor {
     limits: SafetyLimits,

@@ -41,6 +41,8 @@ pub enum TrainError {
     TooFewBins { bins: u64, needed: u64 },
     #[error("cannot fit {what}: {problem}")]
     Degenerate { what: &'static str, problem: String },
+    #[error("the fitted model cannot be run: {0}")]
+    Model(#[from] crate::decoders::ModelError),
     #[error(transparent)]
     Kalman(#[from] KalmanError),
     #[error(transparent)]

@@ -16,7 +16,7 @@ use serde::{Deserialize, Serialize};
 use crate::decoders::history_basis::RaisedCosineBasis;
 use crate::decoders::point_process::{ChannelGlm, PointProcessModel};
 use crate::fit::TrainError;
-use crate::fit::glm::{GlmFitOptions, fit_poisson};
+use crate::fit::glm::{GlmError, GlmFitOptions, fit_poisson};
 use crate::fit::kalman::{StateSource, fill_state, state_sources};
 use crate::formats::block::Block;
 use crate::linalg::Mat;
@@ -144,13 +144,26 @@ pub fn channel_design(
     (x, y)
 }
 
+/// Why one channel is left out of the point-process model.
+#[derive(Debug, thiserror::Error)]
+pub enum ChannelLeftOut {
+    #[error(transparent)]
+    Block(#[from] TrainError),
+    #[error(transparent)]
+    Glm(#[from] GlmError),
+    #[error("IRLS did not converge in {iterations} iterations")]
+    NotConverged { iterations: usize },
+    #[error("the fit of this channel did not run")]
+    NotRun,
+}
+
 /// Fits one channel; `Err` carries why it is left out.
 pub fn fit_channel(
     session: &Block,
     options: &PointProcessFitOptions,
     channel: usize,
-) -> Result<ChannelGlm, String> {
-    let sources = state_sources(session, &options.state).map_err(|e| e.to_string())?;
+) -> Result<ChannelGlm, ChannelLeftOut> {
+    let sources = state_sources(session, &options.state)?;
     let basis = options.basis();
     let (x, y) = channel_design(session, &sources, basis.as_ref(), options.coupling, channel);
     let fit = fit_poisson(
@@ -161,13 +174,11 @@ pub fn fit_channel(
             max_iterations: options.max_iterations,
             tolerance: options.tolerance,
         },
-    )
-    .map_err(|e| e.to_string())?;
+    )?;
     if !fit.converged {
-        return Err(format!(
-            "IRLS did not converge in {} iterations",
-            fit.iterations
-        ));
+        return Err(ChannelLeftOut::NotConverged {
+            iterations: fit.iterations,
+        });
     }
     let d = sources.len();
     let nb = basis.as_ref().map_or(0, |b| b.n_basis);
@@ -262,7 +273,7 @@ pub fn fit_dynamics(
 pub fn assemble(
     session: &Block,
     options: &PointProcessFitOptions,
-    fits: Vec<Result<ChannelGlm, String>>,
+    fits: Vec<Result<ChannelGlm, ChannelLeftOut>>,
 ) -> Result<(PointProcessModel, PointProcessFitReport), TrainError> {
     if session.kinematics.is_none() {
         return Err(TrainError::NoKinematics);
@@ -288,7 +299,7 @@ pub fn assemble(
                 Some(g)
             }
             Err(reason) => {
-                excluded.push((c, reason));
+                excluded.push((c, reason.to_string()));
                 None
             }
         })
@@ -311,6 +322,9 @@ pub fn assemble(
         excluded: excluded.clone(),
         history_basis: options.basis(),
     };
+    model
+        .validate()
+        .map_err(|e| TrainError::Model(crate::decoders::ModelError::from(e)))?;
     Ok((
         model,
         PointProcessFitReport {

@@ -2,6 +2,7 @@
 //! the counts of the last `taps` bins, from integer sums over the training
 //! bins so folds can be added and subtracted exactly.
 
+use crate::decoders::ModelError;
 use std::ops::Range;
 
 use nalgebra::DMatrix;
@@ -184,9 +185,8 @@ pub fn fit_wiener_from_stats(
         weights: Mat::from_dmatrix(&w),
         mean_counts,
     };
-    model.validate().map_err(|problem| TrainError::Degenerate {
-        what: "Wiener weights",
-        problem,
-    })?;
+    model
+        .validate()
+        .map_err(|e| TrainError::Model(ModelError::from(e)))?;
     Ok(model)
 }

@@ -16,7 +16,9 @@ use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
 
 pub const MODEL_MAGIC: &[u8; 8] = b"VDECMODL";
-pub const MODEL_FORMAT_VERSION: u32 = 1;
+/// Version 2 carries typed provenance (cross-validated scores, silent
+/// channels); version 1 files, whose scores were JSON text, are still read.
+pub const MODEL_FORMAT_VERSION: u32 = 2;
 const HEADER_LEN: usize = 8 + 4 + 8 + 4;
 /// Largest payload a model file may declare (1 GiB).
 const MAX_PAYLOAD: usize = 1 << 30;
@@ -30,22 +32,103 @@ pub struct Provenance {
     pub tool_version: String,
     /// [`crate::formats::block::Block::data_sha256`] of the training block.
     pub data_sha256: String,
-    /// The fit options as JSON text (bincode cannot carry free-form JSON).
-    pub fit_json: String,
-    /// Cross-validated scores as JSON text, `null` when none were run.
-    pub cv_json: String,
+    /// The fit's options and report as a JSON document, exported verbatim
+    /// (PROTOCOL.md §4 `fit`) and never read back here; the options are
+    /// each decoder's own training types, which this layer does not know.
+    pub fit_document: String,
+    /// Channels the fit gave no weight (silent in the training block).
+    pub silent_channels: Vec<usize>,
+    /// Cross-validated scores, when they were run.
+    pub cv: Option<CrossValidation>,
+}
+
+/// Cross-validated scores of the decoder on its training block.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct CrossValidation {
+    pub folds: u32,
+    /// Folds are runs of whole trials (else contiguous runs of bins).
+    pub by_trial: bool,
+    pub outputs: Vec<String>,
+    /// Per output, over the folds.
+    pub mean: Vec<OutputScores>,
+    /// Per fold, per output.
+    pub per_fold: Vec<Vec<OutputScores>>,
+}
+
+/// Held-out scores of one output.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct OutputScores {
+    pub cc: f64,
+    pub r2: f64,
+    pub rmse: f64,
 }
 
 impl Provenance {
     /// Provenance of a model built in code rather than trained from a block
-    /// (tests, benchmarks): every field empty, `fit` and `cv` null.
+    /// (tests, benchmarks): every field empty, no fit document, no scores.
     pub fn untracked() -> Provenance {
         Provenance {
             trained_at: String::new(),
             tool_version: String::new(),
             data_sha256: String::new(),
-            fit_json: "null".into(),
-            cv_json: "null".into(),
+            fit_document: "null".into(),
+            silent_channels: Vec::new(),
+            cv: None,
+        }
+    }
+}
+
+/// The version 1 layout, read and converted; never written.
+mod v1 {
+    use serde::Deserialize;
+
+    use super::{BinWidth, CrossValidation, DecoderModel, ModelFile, Provenance};
+
+    #[derive(Deserialize)]
+    pub struct ProvenanceV1 {
+        trained_at: String,
+        tool_version: String,
+        data_sha256: String,
+        fit_json: String,
+        cv_json: String,
+    }
+
+    #[derive(Deserialize)]
+    pub struct ModelFileV1 {
+        #[serde(with = "crate::bin_width::as_ms")]
+        bin_width: BinWidth,
+        decoder: DecoderModel,
+        provenance: ProvenanceV1,
+    }
+
+    impl From<ModelFileV1> for ModelFile {
+        fn from(m: ModelFileV1) -> ModelFile {
+            let p = m.provenance;
+            let fit: serde_json::Value = serde_json::from_str(&p.fit_json).unwrap_or_default();
+            let silent_channels = fit["report"]["excluded_channels"]
+                .as_array()
+                .map(|a| {
+                    a.iter()
+                        .filter_map(|v| v.as_u64())
+                        .map(|c| c as usize)
+                        .collect()
+                })
+                .unwrap_or_default();
+            // Scores written by version 1 have this struct's field names; a
+            // document that does not parse was not a run (`null`).
+            let cv: Option<CrossValidation> = serde_json::from_str(&p.cv_json).ok().flatten();
+            ModelFile {
+                bin_width: m.bin_width,
+                decoder: m.decoder,
+                provenance: Provenance {
+                    trained_at: p.trained_at,
+                    tool_version: p.tool_version,
+                    data_sha256: p.data_sha256,
+                    fit_document: p.fit_json,
+                    silent_channels,
+                    cv,
+                },
+            }
         }
     }
 }
@@ -71,7 +154,7 @@ pub enum ModelFileError {
     )]
     BadMagic { path: String, found: String },
     #[error(
-        "{path}: model format version {found}; this build reads version {MODEL_FORMAT_VERSION}; retrain or use a matching build"
+        "{path}: model format version {found}; this build reads versions 1 to {MODEL_FORMAT_VERSION}; retrain or use a matching build"
     )]
     UnsupportedVersion { path: String, found: u32 },
     #[error("{path}: truncated ({got} bytes, header declares {want}); copy the file again")]
@@ -90,8 +173,11 @@ pub enum ModelFileError {
     },
     #[error("{path}: payload does not decode: {problem}")]
     Decode { path: String, problem: String },
-    #[error("{path}: invalid model: {problem}")]
-    Invalid { path: String, problem: String },
+    #[error("{path}: invalid model: {source}; retrain it, or copy the file again")]
+    Invalid {
+        path: String,
+        source: crate::decoders::ModelError,
+    },
 }
 
 impl ModelFile {
@@ -125,7 +211,7 @@ impl ModelFile {
             });
         }
         let version = u32::from_le_bytes(bytes[8..12].try_into().expect("4 bytes"));
-        if version != MODEL_FORMAT_VERSION {
+        if version == 0 || version > MODEL_FORMAT_VERSION {
             return Err(ModelFileError::UnsupportedVersion {
                 path: path_s,
                 found: version,
@@ -153,16 +239,25 @@ impl ModelFile {
             });
         }
         let config = bincode::config::standard().with_limit::<MAX_PAYLOAD>();
-        let (model, _): (ModelFile, usize) = bincode::serde::decode_from_slice(payload, config)
-            .map_err(|e| ModelFileError::Decode {
-                path: path_s.clone(),
-                problem: e.to_string(),
-            })?;
+        let decode_error = |e: bincode::error::DecodeError| ModelFileError::Decode {
+            path: path_s.clone(),
+            problem: e.to_string(),
+        };
+        let model: ModelFile = if version == 1 {
+            let (m, _): (v1::ModelFileV1, usize) =
+                bincode::serde::decode_from_slice(payload, config).map_err(decode_error)?;
+            m.into()
+        } else {
+            bincode::serde::decode_from_slice(payload, config)
+                .map_err(decode_error)?
+                .0
+        };
         model
+            .decoder
             .validate()
-            .map_err(|problem| ModelFileError::Invalid {
+            .map_err(|source| ModelFileError::Invalid {
                 path: path_s,
-                problem,
+                source,
             })?;
         Ok(model)
     }
@@ -174,21 +269,13 @@ impl ModelFile {
         })?;
         ModelFile::from_bytes(&bytes, &path.display().to_string())
     }
-
-    pub fn validate(&self) -> Result<(), String> {
-        match &self.decoder {
-            DecoderModel::Kalman(m) => m.validate().map_err(|e| e.to_string()),
-            DecoderModel::Wiener(m) => m.validate(),
-            DecoderModel::PointProcess(m) => m.validate(),
-        }
-    }
 }
 
 /// The PROTOCOL.md §4 JSON export.
 pub fn export_json(model: &ModelFile) -> Value {
     let prov = &model.provenance;
-    let fit: Value = serde_json::from_str(&prov.fit_json).unwrap_or(Value::Null);
-    let cv: Value = serde_json::from_str(&prov.cv_json).unwrap_or(Value::Null);
+    let fit: Value = serde_json::from_str(&prov.fit_document).unwrap_or(Value::Null);
+    let cv = serde_json::to_value(&prov.cv).unwrap_or(Value::Null);
     let mut obj = json!({
         "kind": model.decoder.kind(),
         "bin_ms": model.bin_width.ms(),
@@ -272,4 +359,92 @@ pub fn export_json(model: &ModelFile) -> Value {
         }
     }
     obj
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::decoders::wiener::WienerModel;
+    use crate::linalg::Mat;
+
+    /// The version 1 payload, as the earlier build wrote it.
+    #[derive(Serialize)]
+    struct WrittenV1<'a> {
+        bin_ms: f64,
+        decoder: &'a DecoderModel,
+        provenance: (&'a str, &'a str, &'a str, &'a str, &'a str),
+    }
+
+    fn wiener() -> DecoderModel {
+        DecoderModel::Wiener(WienerModel {
+            outputs: vec!["vel_x".into()],
+            taps: 1,
+            n_channels: 2,
+            weights: Mat::from_rows(&[vec![0.5, 1.0, -1.0]]),
+            mean_counts: vec![1.0, 2.0],
+        })
+    }
+
+    fn framed(version: u32, payload: &[u8]) -> Vec<u8> {
+        let mut out = MODEL_MAGIC.to_vec();
+        out.extend_from_slice(&version.to_le_bytes());
+        out.extend_from_slice(&(payload.len() as u64).to_le_bytes());
+        out.extend_from_slice(&crc32fast::hash(payload).to_le_bytes());
+        out.extend_from_slice(payload);
+        out
+    }
+
+    #[test]
+    fn a_version_1_file_reads_with_its_scores_typed() {
+        let decoder = wiener();
+        let cv = r#"{"folds":5,"by_trial":true,"outputs":["vel_x"],"mean":[{"cc":0.9,"r2":0.8,"rmse":1.5}],"per_fold":[]}"#;
+        let fit = r#"{"decoder":"kalman","report":{"excluded_channels":[3,7]}}"#;
+        let payload = bincode::serde::encode_to_vec(
+            WrittenV1 {
+                bin_ms: 20.0,
+                decoder: &decoder,
+                provenance: ("2026-01-01T00:00:00Z", "0.1.0", "abc", fit, cv),
+            },
+            bincode::config::standard(),
+        )
+        .unwrap();
+        let m = ModelFile::from_bytes(&framed(1, &payload), "old.model").unwrap();
+        assert_eq!(m.bin_width, BinWidth::from_us(20_000).unwrap());
+        assert_eq!(m.decoder, decoder);
+        assert_eq!(m.provenance.silent_channels, vec![3, 7]);
+        let cv = m.provenance.cv.unwrap();
+        assert_eq!((cv.folds, cv.by_trial), (5, true));
+        assert_eq!(cv.mean[0].cc, 0.9);
+        assert_eq!(m.provenance.fit_document, fit);
+    }
+
+    #[test]
+    fn a_version_2_file_round_trips_and_version_3_is_refused() {
+        let mut p = Provenance::untracked();
+        p.cv = Some(CrossValidation {
+            folds: 3,
+            by_trial: false,
+            outputs: vec!["vel_x".into()],
+            mean: vec![OutputScores {
+                cc: 0.5,
+                r2: 0.25,
+                rmse: 2.0,
+            }],
+            per_fold: vec![],
+        });
+        let m = ModelFile {
+            bin_width: BinWidth::from_us(1_000).unwrap(),
+            decoder: wiener(),
+            provenance: p,
+        };
+        let bytes = m.to_bytes();
+        assert_eq!(u32::from_le_bytes(bytes[8..12].try_into().unwrap()), 2);
+        assert_eq!(ModelFile::from_bytes(&bytes, "m").unwrap(), m);
+        let mut future = bytes.clone();
+        future[8..12].copy_from_slice(&3u32.to_le_bytes());
+        assert!(matches!(
+            ModelFile::from_bytes(&future, "m"),
+            Err(ModelFileError::UnsupportedVersion { found: 3, .. })
+        ));
+    }
 }

@@ -87,31 +87,23 @@ pub fn summary(model: &ModelFile) -> String {
     let _ = writeln!(s, "trained at    {}", p.trained_at);
     let _ = writeln!(s, "tool version  {}", p.tool_version);
     let _ = writeln!(s, "data sha256   {}", p.data_sha256);
-    let fit: serde_json::Value = serde_json::from_str(&p.fit_json).unwrap_or_default();
-    if let Some(excluded) = fit["report"]["excluded_channels"].as_array()
-        && !excluded.is_empty()
-    {
+    if !p.silent_channels.is_empty() {
         let _ = writeln!(
             s,
             "silent channels (no weight): {}",
-            excluded
+            p.silent_channels
                 .iter()
-                .map(|v| v.to_string())
+                .map(|c| c.to_string())
                 .collect::<Vec<_>>()
                 .join(", ")
         );
     }
-    let cv: serde_json::Value = serde_json::from_str(&p.cv_json).unwrap_or_default();
-    if let (Some(outputs), Some(mean)) = (cv["outputs"].as_array(), cv["mean"].as_array()) {
-        for (o, m) in outputs.iter().zip(mean) {
+    if let Some(cv) = &p.cv {
+        for (o, m) in cv.outputs.iter().zip(&cv.mean) {
             let _ = writeln!(
                 s,
-                "cv {:<10} CC {:.3}  R² {:.3}  RMSE {:.3}  ({} folds)",
-                o.as_str().unwrap_or("?"),
-                m["cc"].as_f64().unwrap_or(f64::NAN),
-                m["r2"].as_f64().unwrap_or(f64::NAN),
-                m["rmse"].as_f64().unwrap_or(f64::NAN),
-                cv["folds"]
+                "cv {o:<10} CC {:.3}  R² {:.3}  RMSE {:.3}  ({} folds)",
+                m.cc, m.r2, m.rmse, cv.folds
             );
         }
     } else {

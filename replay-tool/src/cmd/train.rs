@@ -11,11 +11,11 @@ use decoder_core::fit::evaluate::{DecoderSpec, Evaluation, cross_validate};
 use decoder_core::fit::intention::reestimate_intention;
 use decoder_core::fit::kalman::fit_kalman;
 use decoder_core::fit::point_process::{
-    PointProcessFitOptions, PointProcessFitReport, assemble, fit_channel,
+    ChannelLeftOut, PointProcessFitOptions, PointProcessFitReport, assemble, fit_channel,
 };
 use decoder_core::fit::wiener::fit_wiener;
 use decoder_core::formats::block::Block;
-use decoder_core::formats::model_file::{ModelFile, Provenance};
+use decoder_core::formats::model_file::{CrossValidation, ModelFile, OutputScores, Provenance};
 use serde_json::json;
 
 use super::load_train_config;
@@ -95,12 +95,14 @@ pub fn spec_for(kind: DecoderKind, cfg: &TrainConfig) -> Result<DecoderSpec> {
 
 /// Trains and returns the model file (not yet written).
 pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) -> Result<ModelFile> {
-    let (decoder, fit) = match spec {
+    let (decoder, fit, silent_channels) = match spec {
         DecoderSpec::Kalman(opts) => {
             let (model, report) = fit_kalman(session, opts)?;
+            let silent = report.excluded_channels.clone();
             (
                 DecoderModel::Kalman(model),
                 json!({ "decoder": "kalman", "options": opts, "report": report }),
+                silent,
             )
         }
         DecoderSpec::Wiener(opts) => {
@@ -108,6 +110,7 @@ pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) ->
             (
                 DecoderModel::Wiener(model),
                 json!({ "decoder": "wiener", "options": opts }),
+                Vec::new(),
             )
         }
         DecoderSpec::PointProcess(opts) => {
@@ -115,6 +118,7 @@ pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) ->
             (
                 DecoderModel::PointProcess(model),
                 json!({ "decoder": "point-process", "options": opts, "report": report }),
+                Vec::new(),
             )
         }
     };
@@ -123,9 +127,9 @@ pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) ->
             let pb = progress::bar(k as u64, "cross-val");
             let eval = cross_validate(session, std::slice::from_ref(spec), k, |_, _| pb.inc(1))?;
             pb.finish_and_clear();
-            cv_json(&eval)
+            Some(cross_validation(&eval))
         }
-        None => serde_json::Value::Null,
+        None => None,
     };
     Ok(ModelFile {
         bin_width: session.bin_width,
@@ -134,21 +138,31 @@ pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) ->
             trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
             tool_version: env!("CARGO_PKG_VERSION").to_string(),
             data_sha256: session.data_sha256(),
-            fit_json: fit.to_string(),
-            cv_json: cv.to_string(),
+            fit_document: fit.to_string(),
+            silent_channels,
+            cv,
         },
     })
 }
 
-fn cv_json(eval: &Evaluation) -> serde_json::Value {
+fn cross_validation(eval: &Evaluation) -> CrossValidation {
     let d = &eval.decoders[0];
-    json!({
-        "folds": eval.folds,
-        "by_trial": eval.by_trial,
-        "outputs": d.outputs,
-        "mean": d.mean,
-        "per_fold": d.per_fold,
-    })
+    let scores = |s: &decoder_core::fit::metrics::Scores| OutputScores {
+        cc: s.cc,
+        r2: s.r2,
+        rmse: s.rmse,
+    };
+    CrossValidation {
+        folds: eval.folds as u32,
+        by_trial: eval.by_trial,
+        outputs: d.outputs.clone(),
+        mean: d.mean.iter().map(scores).collect(),
+        per_fold: d
+            .per_fold
+            .iter()
+            .map(|f| f.iter().map(scores).collect())
+            .collect(),
+    }
 }
 
 /// Fits the point-process decoder, its channels in parallel on all cores
@@ -167,7 +181,7 @@ pub fn fit_point_process_parallel(
         .min(n.max(1));
     let pb = progress::bar(n as u64, "fit GLMs");
     let next = std::sync::atomic::AtomicUsize::new(0);
-    let mut fits: Vec<Option<Result<ChannelGlm, String>>> = vec![None; n];
+    let mut fits: Vec<Option<Result<ChannelGlm, ChannelLeftOut>>> = (0..n).map(|_| None).collect();
     let results = std::sync::Mutex::new(&mut fits);
     std::thread::scope(|scope| {
         for _ in 0..threads {
@@ -187,7 +201,7 @@ pub fn fit_point_process_parallel(
     pb.finish_and_clear();
     let fits = fits
         .into_iter()
-        .map(|f| f.unwrap_or_else(|| Err("not fitted".into())))
+        .map(|f| f.unwrap_or(Err(ChannelLeftOut::NotRun)))
         .collect();
     let (model, report) = assemble(session, options, fits)?;
     for (c, why) in &report.excluded {
@@ -259,24 +273,13 @@ pub fn run(args: &Args) -> Result<()> {
 }
 
 pub fn print_cv_line(model: &ModelFile) {
-    let cv: serde_json::Value = serde_json::from_str(&model.provenance.cv_json).unwrap_or_default();
-    if let (Some(outputs), Some(mean)) = (cv["outputs"].as_array(), cv["mean"].as_array()) {
-        let parts: Vec<String> = outputs
+    if let Some(cv) = &model.provenance.cv {
+        let parts: Vec<String> = cv
+            .outputs
             .iter()
-            .zip(mean)
-            .map(|(o, s)| {
-                format!(
-                    "{} CC {:.3} R² {:.3}",
-                    o.as_str().unwrap_or("?"),
-                    s["cc"].as_f64().unwrap_or(f64::NAN),
-                    s["r2"].as_f64().unwrap_or(f64::NAN)
-                )
-            })
+            .zip(&cv.mean)
+            .map(|(o, s)| format!("{o} CC {:.3} R² {:.3}", s.cc, s.r2))
             .collect();
-        println!(
-            "cross-validated ({} folds): {}",
-            cv["folds"],
-            parts.join(", ")
-        );
+        println!("cross-validated ({} folds): {}", cv.folds, parts.join(", "));
     }
 }

@@ -103,7 +103,10 @@ impl KalmanFilter {
     /// Builds the runtime from a validated model. `use_steady` selects the
     /// steady-state gain when the model carries one.
     pub fn new(model: &KalmanModel, use_steady: bool) -> Result<KalmanFilter, KalmanError> {
-        model.validate()?;
+        debug_assert!(
+            model.validate().is_ok(),
+            "filters are built from checked models"
+        );
         let d = model.state_dim();
         let n = model.n_channels();
         let (ht_q_inv, s) = information_terms(model)?;

@@ -76,7 +76,7 @@ pub struct KalmanModel {
     pub steady: Option<SteadyGain>,
 }
 
-#[derive(Debug, thiserror::Error)]
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
 pub enum KalmanError {
     #[error("model parameter {name} has shape {got}, expected {want}")]
     Shape {

@@ -21,7 +21,10 @@ pub fn steady_state_gain(
     tolerance: f64,
     max_iterations: usize,
 ) -> Result<SteadyGain, KalmanError> {
-    model.validate()?;
+    debug_assert!(
+        model.validate().is_ok(),
+        "filters are built from checked models"
+    );
     let d = model.state_dim();
     let n = model.n_channels();
     let (ht_q_inv, s) = information_terms(model)?;

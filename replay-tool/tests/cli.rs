@@ -434,6 +434,53 @@ fn recorded_session(dir: &Path) -> std::path::PathBuf {
     std::path::PathBuf::from(log)
 }
 
+/// A 3-D block given the default 2-D state trains, and says which
+/// kinematics the decoder does not decode.
+#[test]
+fn training_says_which_kinematics_the_decoder_leaves_out() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = dir.path().join("block3d");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "1",
+        "--channels",
+        "8",
+    ]);
+    let mut b = decoder_core::Block::read(&block).unwrap();
+    let kin = b.kinematics.take().unwrap();
+    let rows: Vec<Vec<f64>> = (0..b.n_bins)
+        .map(|t| {
+            let r: Vec<f64> = (0..kin.cols).map(|c| kin.get(t, c)).collect();
+            vec![r[0], r[1], 0.5 * r[0], r[2], r[3], 0.5 * r[2]]
+        })
+        .collect();
+    b.kinematics = Some(decoder_core::linalg::Mat::from_rows(&rows));
+    b.kinematic_names = ["pos_x", "pos_y", "pos_z", "vel_x", "vel_y", "vel_z"]
+        .map(String::from)
+        .to_vec();
+    b.write(&block).unwrap();
+    let out = tool(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&dir.path().join("k.model")),
+        "--no-cv",
+    ]);
+    assert!(out.status.success());
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        err.contains("kinematics pos_z, vel_z are not decoded by the kalman decoder"),
+        "{err}"
+    );
+    assert!(err.contains("[kalman] state and outputs"), "{err}");
+}
+
 /// Each word means one thing (PROTOCOL.md §5): a log is not a calibration
 /// block, a directory is not a log, and a bad address names its flag.
 #[test]

@@ -40,6 +40,29 @@ impl DecoderSpec {
         }
     }
 
+    /// The block's kinematics columns this decoder leaves out: neither in
+    /// its state nor among its outputs (a 3-D block given a 2-D state).
+    pub fn unused_kinematics(&self, block: &Block) -> Vec<String> {
+        let state: &[String] = match self {
+            DecoderSpec::Kalman(o) => &o.state,
+            DecoderSpec::Wiener(_) => &[],
+            DecoderSpec::PointProcess(o) => &o.state,
+        };
+        block
+            .kinematic_names
+            .iter()
+            .filter(|k| !state.contains(k) && !self.outputs().contains(k))
+            .filter(|k| {
+                // Positions are the integral of velocities: a velocity
+                // decoder that uses vel_z has pos_z's information.
+                let velocity = k.replacen("pos_", "vel_", 1);
+                !(k.starts_with("pos_")
+                    && (state.contains(&velocity) || self.outputs().contains(&velocity)))
+            })
+            .cloned()
+            .collect()
+    }
+
     fn outputs(&self) -> &[String] {
         match self {
             DecoderSpec::Kalman(o) => &o.outputs,

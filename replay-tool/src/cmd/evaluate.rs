@@ -70,6 +70,9 @@ pub fn run(args: &Args) -> Result<()> {
         }
     }
     let session = super::block_with_kinematics(&args.session)?;
+    for spec in &specs {
+        super::warn_unused_kinematics(&session, &args.session, spec);
+    }
     let pb = progress::bar((folds * specs.len()) as u64, "evaluate");
     let eval = cross_validate(&session, &specs, folds, |_, _| pb.inc(1))
         .with_context(|| format!("evaluating on {}", args.session.display()))?;

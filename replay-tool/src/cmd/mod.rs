@@ -44,6 +44,35 @@ pub fn block_with_kinematics(session: &Path) -> Result<Block> {
     Ok(Block::read(session)?)
 }
 
+/// Says which of the block's kinematics the decoder leaves out, so a 3-D
+/// block never trains a 2-D decoder without a word.
+pub fn warn_unused_kinematics(
+    block: &Block,
+    source: &Path,
+    spec: &decoder_core::fit::evaluate::DecoderSpec,
+) {
+    let unused = spec.unused_kinematics(block);
+    if unused.is_empty() {
+        return;
+    }
+    let section = match spec {
+        decoder_core::fit::evaluate::DecoderSpec::Kalman(_) => "[kalman] state and outputs",
+        decoder_core::fit::evaluate::DecoderSpec::Wiener(_) => "[wiener] outputs",
+        decoder_core::fit::evaluate::DecoderSpec::PointProcess(_) => {
+            "[point_process] state and outputs"
+        }
+    };
+    eprintln!(
+        "replay-tool: warning: {}: kinematics {} {} not decoded by the {} decoder; name {} in {section} of the training config (--config) to decode {}",
+        source.display(),
+        unused.join(", "),
+        if unused.len() == 1 { "is" } else { "are" },
+        spec.name(),
+        if unused.len() == 1 { "it" } else { "them" },
+        if unused.len() == 1 { "it" } else { "them" },
+    );
+}
+
 /// The `decoderd` binary: `explicit`, else the one beside this executable;
 /// `None` when there is none (the caller then runs the daemon in-process).
 pub fn find_decoderd(explicit: Option<&Path>) -> Result<Option<PathBuf>> {

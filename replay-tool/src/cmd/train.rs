@@ -242,6 +242,7 @@ pub fn run(args: &Args) -> Result<()> {
     } else {
         block
     };
+    super::warn_unused_kinematics(&session, &source, &spec);
     let folds = if args.no_cv { None } else { Some(cfg.folds) };
     let model = train_model(&session, &spec, folds)
         .with_context(|| format!("training on {}", source.display()))?;

@@ -162,10 +162,23 @@ pub struct Config {
     pub log_format: LogFormat,
     pub log_level: String,
     pub arm_at_start: bool,
+    /// Where each path came from, for errors: the flag (`--model`) or the
+    /// key (`model.path`).
+    pub sources: Sources,
+}
+
+/// The flag or key each path setting came from.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Sources {
+    pub model: &'static str,
+    pub record_dir: &'static str,
+    pub control_socket: &'static str,
 }
 
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {
+    #[error("{flag}: {problem}")]
+    Flag { flag: &'static str, problem: String },
     #[error("{path}: {source}")]
     Read {
         path: String,
@@ -286,8 +299,37 @@ impl Config {
             .clone()
             .or(raw.network.actuator)
             .unwrap_or_else(|| DEFAULT_ACTUATOR.into());
-        let listen = c.addr("network.listen", &listen_text, allow_remote)?;
-        let actuator = c.addr("network.actuator", &actuator_text, allow_remote)?;
+        // A bad value given as a flag is named by the flag, not by the key
+        // it overrides.
+        let as_flag = |flag: &'static str, given: bool| {
+            move |e: ConfigError| match e {
+                ConfigError::Key { problem, .. } if given => ConfigError::Flag { flag, problem },
+                other => other,
+            }
+        };
+        let listen = c
+            .addr("network.listen", &listen_text, allow_remote)
+            .map_err(as_flag("--listen", overrides.listen.is_some()))?;
+        let actuator = c
+            .addr("network.actuator", &actuator_text, allow_remote)
+            .map_err(as_flag("--actuator", overrides.actuator.is_some()))?;
+        let sources = Sources {
+            model: if overrides.model.is_some() {
+                "--model"
+            } else {
+                "model.path"
+            },
+            record_dir: if overrides.record.is_some() {
+                "--record"
+            } else {
+                "recording.dir"
+            },
+            control_socket: if overrides.socket.is_some() {
+                "--socket"
+            } else {
+                "control.socket"
+            },
+        };
         let model = overrides.model.clone().or(raw.model.path).ok_or_else(|| {
             c.err(
                 "model.path",
@@ -410,6 +452,7 @@ impl Config {
             log_format,
             log_level,
             arm_at_start: overrides.arm,
+            sources,
         })
     }
 
@@ -466,6 +509,23 @@ mod tests {
     fn missing_model_names_the_key() {
         let e = resolve("", &Overrides::default()).unwrap_err().to_string();
         assert!(e.contains("model.path"), "{e}");
+    }
+
+    #[test]
+    fn a_bad_flag_value_names_the_flag_and_a_bad_key_the_key() {
+        let o = Overrides {
+            listen: Some("nowhere".into()),
+            ..with_model()
+        };
+        let e = resolve("", &o).unwrap_err().to_string();
+        assert!(e.starts_with("--listen: "), "{e}");
+        let e = resolve("[network]\nactuator = \"nowhere\"", &with_model())
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("key `network.actuator`"), "{e}");
+        let c = resolve("", &with_model()).unwrap();
+        assert_eq!(c.sources.model, "--model");
+        assert_eq!(c.sources.record_dir, "recording.dir");
     }
 
     #[test]

@@ -89,12 +89,7 @@ pub fn bind(path: &Path) -> Result<std::os::unix::net::UnixListener> {
     }
     let std_listener =
         crate::sys::with_umask(0o177, || std::os::unix::net::UnixListener::bind(path))
-            .with_context(|| {
-                format!(
-                    "cannot bind control socket {} (control.socket)",
-                    path.display()
-                )
-            })?;
+            .with_context(|| format!("cannot bind control socket {}", path.display()))?;
     std_listener.set_nonblocking(true)?;
     Ok(std_listener)
 }

@@ -187,8 +187,10 @@ pub fn prepare(args: &RunArgs) -> Result<Config> {
 pub fn init_logging(format: LogFormat, level: &str) {
     let filter = tracing_subscriber::EnvFilter::try_from_default_env()
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(level));
+    // Colour codes only for a person at a terminal, never in a log file.
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
         .with_writer(std::io::stderr);
     let _ = match format {
         LogFormat::Human => builder.try_init(),
@@ -224,10 +226,10 @@ fn bind_udp(addr: SocketAddr, key: &str) -> Result<UdpSocket> {
     UdpSocket::bind(addr).with_context(|| format!("cannot bind {addr} ({key})"))
 }
 
-fn log_path(dir: &Path) -> Result<PathBuf> {
+fn log_path(dir: &Path, source: &str) -> Result<PathBuf> {
     std::fs::create_dir_all(dir).with_context(|| {
         format!(
-            "cannot create recording directory {} (recording.dir)",
+            "{source}: cannot create recording directory {}",
             dir.display()
         )
     })?;
@@ -297,7 +299,7 @@ pub fn run(config: Config, shutdown: Arc<AtomicBool>) -> Result<Status> {
 pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> {
     let started = Instant::now();
     let model_path = config.model.clone();
-    let mut loaded = control::read_model(&model_path).context("model.path / --model")?;
+    let mut loaded = control::read_model(&model_path).context(config.sources.model)?;
     let pipeline = DecodePipeline::new(&loaded.file)
         .with_context(|| format!("model {} cannot be run", model_path.display()))?;
     let settings = config.engine_settings(loaded.file.bin_width);
@@ -331,11 +333,12 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         "[::]:0".parse()?
     };
     let output = bind_udp(out_addr, "network.actuator")?;
-    let listener_std = control::bind(&config.control_socket)?;
+    let listener_std =
+        control::bind(&config.control_socket).with_context(|| config.sources.control_socket)?;
 
     let (recorder, batcher) = match &config.record_dir {
         Some(dir) => {
-            let path = log_path(dir)?;
+            let path = log_path(dir, config.sources.record_dir)?;
             let header = session_log::encode_header(&LogHeader {
                 daemon_version: VERSION.into(),
                 opened_ns: sys::monotonic_ns(),
@@ -384,7 +387,12 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
             "armed at start (--arm): bench use only; the command follows the decoder from the first bin"
         );
     } else {
-        tracing::info!("disarmed: the command stays zero until `decoderd ctl arm`");
+        let ctl = if config.control_socket == std::path::Path::new(config::DEFAULT_SOCKET) {
+            "decoderd ctl".to_string()
+        } else {
+            format!("decoderd ctl --socket {}", config.control_socket.display())
+        };
+        tracing::info!("disarmed: the command stays zero until `{ctl} arm`");
     }
 
     let (control_tx, control_rx) = crossbeam_channel::bounded::<ControlRequest>(64);
@@ -402,6 +410,8 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         model: loaded.info.clone(),
         realtime_warnings: Vec::new(),
         recording: recorder.as_ref().map(|r| (r.path.clone(), r.stats.clone())),
+        control_socket: config.control_socket.clone(),
+        model_warnings: Vec::new(),
     };
     // The model's bytes and parameters are in the pipeline and the log now.
     drop(loaded);
@@ -595,7 +605,7 @@ fn log_events(events: Receiver<TimedEvent>) {
                 "seq jumped outside the reorder window: new stream, decoder reset, supervisor halted"
             ),
             EngineEvent::Transition(t) => {
-                let reason = serde_json::to_string(&t.reason).unwrap_or_default();
+                let reason = t.reason;
                 if matches!(
                     t.to,
                     decoder_core::engine::supervisor::SupervisorState::Halted

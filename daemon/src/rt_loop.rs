@@ -64,6 +64,9 @@ pub struct StaticInfo {
     pub model: ModelInfo,
     pub realtime_warnings: Vec<String>,
     pub recording: Option<(std::path::PathBuf, Arc<RecorderStats>)>,
+    pub control_socket: std::path::PathBuf,
+    /// Models of another kind swapped in while armed.
+    pub model_warnings: Vec<String>,
 }
 
 /// The real-time loop: one OS thread that owns the bin socket, the
@@ -133,6 +136,9 @@ impl SlotSink for Out<'_> {
             if serde_json::to_writer(&mut *self.json, event).is_ok() {
                 b.record(RecordKind::Event, now, &[self.json]);
             }
+        }
+        if let EngineEvent::Transition(t) = event {
+            self.monitor.last_transition = Some(*t);
         }
         if self.events.try_send((now, *event)).is_err() {
             *self.events_not_logged += 1;
@@ -264,6 +270,18 @@ impl RtLoop {
                             if let Some(b) = self.batcher.as_mut() {
                                 b.record_owned(RecordKind::Model, sys::monotonic_ns(), model_bytes);
                             }
+                            let live = matches!(self.engine.state().name(), "armed" | "coasting");
+                            if live && info.kind != self.info.model.kind {
+                                let w = format!(
+                                    "{} model {} swapped in while {} over a {} model; check the decoded velocity before relying on it",
+                                    info.kind,
+                                    info.path,
+                                    self.engine.state().name(),
+                                    self.info.model.kind
+                                );
+                                tracing::warn!("{w}");
+                                self.info.model_warnings.push(w);
+                            }
                             self.info.model = info;
                             let seq = self.engine.next_seq().unwrap_or(0);
                             let _ = reply.send(Ok((seq, old)));
@@ -292,13 +310,24 @@ impl RtLoop {
             stream_started: self.engine.next_seq().is_some(),
             next_seq: self.engine.next_seq(),
             consecutive_missing: self.engine.consecutive_missing(),
+            last_bin_age_s: (self.monitor.last_bin_recv_ns != 0).then(|| {
+                sys::monotonic_ns().saturating_sub(self.monitor.last_bin_recv_ns) as f64 / 1e9
+            }),
+            last_change: self.monitor.last_transition.as_ref().map(Into::into),
+            control_socket: self.info.control_socket.display().to_string(),
+            model_warnings: self.info.model_warnings.clone(),
             rejected: rejected_by_name(&c),
             counters: c,
             send_errors: self.monitor.send_errors,
             events_not_logged: self.events_not_logged,
             rate_clamps: self.engine.rate_clamps(),
             latency: self.monitor.latency(),
-            dead_channels: dead,
+            // Channel health means nothing before the first bin.
+            dead_channels: if self.engine.next_seq().is_some() {
+                dead
+            } else {
+                Vec::new()
+            },
             saturated_channels: saturated,
             recording: self
                 .info

@@ -7,6 +7,7 @@ use std::collections::BTreeMap;
 use std::fmt::Write as _;
 
 use decoder_core::engine::slot_engine::{EngineCounters, SlotAnswer};
+use decoder_core::engine::supervisor::Transition;
 use decoder_core::formats::packet::RejectReason;
 use hdrhistogram::Histogram;
 use serde::{Deserialize, Serialize};
@@ -19,6 +20,10 @@ pub struct Monitor {
     origin_to_send: Histogram<u64>,
     deadline_overrun: Histogram<u64>,
     pub send_errors: u64,
+    /// When the last bin that came was read (0: none yet).
+    pub last_bin_recv_ns: u64,
+    /// The supervisor's last state change.
+    pub last_transition: Option<Transition>,
 }
 
 impl Default for Monitor {
@@ -29,6 +34,8 @@ impl Default for Monitor {
             origin_to_send: h(),
             deadline_overrun: h(),
             send_errors: 0,
+            last_bin_recv_ns: 0,
+            last_transition: None,
         }
     }
 }
@@ -38,6 +45,7 @@ impl Monitor {
     /// allocate.
     pub fn on_sent(&mut self, slot: &SlotAnswer, sent_ns: u64) {
         if slot.recv_ns != 0 {
+            self.last_bin_recv_ns = slot.recv_ns;
             self.recv_to_send
                 .saturating_record(sent_ns.saturating_sub(slot.recv_ns).max(1));
         } else {
@@ -125,6 +133,26 @@ pub struct ModelInfo {
     pub outputs: Vec<String>,
 }
 
+/// The supervisor's last state change, in words.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct StateChange {
+    pub seq: u64,
+    pub from: String,
+    pub to: String,
+    pub reason: String,
+}
+
+impl From<&Transition> for StateChange {
+    fn from(t: &Transition) -> StateChange {
+        StateChange {
+            seq: t.seq,
+            from: t.from.name().into(),
+            to: t.to.name().into(),
+            reason: t.reason.to_string(),
+        }
+    }
+}
+
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Status {
     pub daemon_version: String,
@@ -137,6 +165,18 @@ pub struct Status {
     pub stream_started: bool,
     pub next_seq: Option<u64>,
     pub consecutive_missing: u32,
+    /// Seconds since the last bin was read; `None` before the first.
+    #[serde(default)]
+    pub last_bin_age_s: Option<f64>,
+    /// Why the state is what it is: the last state change.
+    #[serde(default)]
+    pub last_change: Option<StateChange>,
+    /// The control socket, for the hints the table gives.
+    #[serde(default)]
+    pub control_socket: String,
+    /// Models of another decoder kind swapped in while armed, in words.
+    #[serde(default)]
+    pub model_warnings: Vec<String>,
     pub counters: EngineCounters,
     pub rejected: BTreeMap<String, u64>,
     pub send_errors: u64,
@@ -183,9 +223,29 @@ fn pct(p: &Percentiles) -> String {
         return "no samples".into();
     }
     format!(
-        "p50 {:.1}  p90 {:.1}  p99 {:.1}  p99.9 {:.1}  max {:.1} µs  (n={})",
-        p.p50, p.p90, p.p99, p.p999, p.max, p.count
+        "p50 {:.1} µs  p90 {:.1} µs  p99 {:.1} µs  p99.9 {:.1} µs  max {:.1} µs  ({} {})",
+        p.p50,
+        p.p90,
+        p.p99,
+        p.p999,
+        p.max,
+        p.count,
+        if p.count == 1 { "sample" } else { "samples" }
     )
+}
+
+/// "1 bin", "2 bins".
+pub fn plural(n: u64, one: &str, many: &str) -> String {
+    format!("{n} {}", if n == 1 { one } else { many })
+}
+
+/// The `decoderd ctl` prefix that reaches this daemon.
+fn ctl_prefix(socket: &str) -> String {
+    if socket.is_empty() || socket == crate::config::DEFAULT_SOCKET {
+        "decoderd ctl".into()
+    } else {
+        format!("decoderd ctl --socket {socket}")
+    }
 }
 
 impl Status {
@@ -198,7 +258,29 @@ impl Status {
             "decoderd {}  up {:.1} s",
             self.daemon_version, self.uptime_s
         );
-        let _ = writeln!(s, "state              {}", self.state.to_uppercase());
+        let why = self
+            .last_change
+            .as_ref()
+            .map(|c| format!(" since seq {} ({}, from {})", c.seq, c.reason, c.from))
+            .unwrap_or_else(|| {
+                if self.armed_at_start && self.state == "armed" {
+                    " (armed at start with --arm)".into()
+                } else {
+                    String::new()
+                }
+            });
+        let hint = match self.state.as_str() {
+            "disarmed" | "halted" => format!(
+                "; the command is zero until `{} arm`",
+                ctl_prefix(&self.control_socket)
+            ),
+            _ => String::new(),
+        };
+        let _ = writeln!(
+            s,
+            "state              {}{why}{hint}",
+            self.state.to_uppercase()
+        );
         let _ = writeln!(
             s,
             "model              {} ({}, {} channels, {} ms bins, outputs {})",
@@ -209,16 +291,24 @@ impl Status {
             self.model.outputs.join(",")
         );
         let _ = writeln!(s, "model sha256       {}", self.model.sha256);
+        for w in &self.model_warnings {
+            let _ = writeln!(s, "MODEL WARNING      {w}");
+        }
         let _ = writeln!(s, "bins in / out      {} -> {}", self.listen, self.actuator);
         let _ = writeln!(
             s,
             "stream             {}",
-            match self.next_seq {
-                Some(n) => format!(
-                    "next seq {n}, {} consecutive missing",
-                    self.consecutive_missing
+            match (self.next_seq, self.last_bin_age_s) {
+                // Bins stopped a while ago: say since when, not a count that
+                // grows with every heartbeat.
+                (Some(n), Some(age)) if age >= 1.0 => format!(
+                    "next seq {n}, last bin {age:.1} s ago (the sender stopped; heartbeats continue)"
                 ),
-                None => "no bins yet".into(),
+                (Some(n), _) => format!(
+                    "next seq {n}, {} in a row missing",
+                    plural(self.consecutive_missing.into(), "bin", "bins")
+                ),
+                (None, _) => "no bins yet".into(),
             }
         );
         let _ = writeln!(
@@ -249,8 +339,10 @@ impl Status {
         );
         let _ = writeln!(
             s,
-            "faults             {} numerical, {} send errors, {} model changes",
-            c.numerical_faults, self.send_errors, c.model_changes
+            "faults             {} numerical, {}, {}",
+            c.numerical_faults,
+            plural(self.send_errors, "send error", "send errors"),
+            plural(c.model_changes, "model change", "model changes")
         );
         let _ = writeln!(
             s,
@@ -267,8 +359,12 @@ impl Status {
             "deadline overrun   {}",
             pct(&self.latency.deadline_overrun_us)
         );
-        let _ = writeln!(s, "dead channels      {}", list(&self.dead_channels));
-        let _ = writeln!(s, "saturated channels {}", list(&self.saturated_channels));
+        if self.stream_started {
+            let _ = writeln!(s, "dead channels      {}", list(&self.dead_channels));
+            let _ = writeln!(s, "saturated channels {}", list(&self.saturated_channels));
+        } else {
+            let _ = writeln!(s, "channel health     not known before the first bin");
+        }
         match &self.recording {
             Some(r) => {
                 let _ = writeln!(

@@ -267,6 +267,36 @@ fn hot_swap_under_load_misses_no_slot_and_flags_one_bin() {
 }
 
 #[test]
+fn a_model_of_another_kind_swapped_in_while_armed_is_flagged() {
+    let f = fixture();
+    let d = Daemon::start(true, TEST_TIMING);
+    std::thread::scope(|scope| {
+        scope.spawn(|| d.stream(0..40, 0));
+        d.wait_for_seq(10);
+        let r = d.ctl(Request::Load {
+            path: f.wiener_model.clone(),
+        });
+        assert!(r.ok, "{}", r.message);
+    });
+    d.wait_for_seq(39);
+    let s = d.status();
+    assert_eq!(s.model.kind, "wiener");
+    assert_eq!(s.model_warnings.len(), 1, "{:?}", s.model_warnings);
+    assert!(s.model_warnings[0].contains("over a kalman model"));
+    assert!(s.table().contains("MODEL WARNING"), "{}", s.table());
+    // Why it is in its state, and when the last bin came.
+    assert!(d.ctl(Request::Halt).ok);
+    let s = d.status();
+    let change = s.last_change.clone().expect("a state change");
+    assert_eq!(
+        (change.to.as_str(), change.reason.as_str()),
+        ("halted", "operator halt")
+    );
+    assert!(s.table().contains("(operator halt, from "), "{}", s.table());
+    assert!(s.last_bin_age_s.is_some());
+}
+
+#[test]
 fn operator_commands_drive_the_supervisor() {
     let d = Daemon::start(false, TEST_TIMING);
     let r = d.ctl(Request::Arm);

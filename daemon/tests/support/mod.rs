@@ -26,6 +26,8 @@ pub struct Fixture {
     pub model: PathBuf,
     pub other_model: PathBuf,
     pub wrong_model: PathBuf,
+    /// A Wiener model for the same 16 channels.
+    pub wiener_model: PathBuf,
     pub counts: Vec<Vec<u16>>,
     pub n_channels: usize,
 }
@@ -45,6 +47,13 @@ pub fn fixture() -> &'static Fixture {
         std::fs::write(&model, m.to_bytes()).unwrap();
         std::fs::write(&other_model, m2.to_bytes()).unwrap();
         std::fs::write(&wrong_model, m3.to_bytes()).unwrap();
+        let wiener_model = dir.join("w.model");
+        let w = decoder_core::fit::wiener::fit_wiener(&session, &Default::default()).unwrap();
+        let wm = decoder_core::ModelFile {
+            decoder: decoder_core::DecoderModel::Wiener(w),
+            ..m.clone()
+        };
+        std::fs::write(&wiener_model, wm.to_bytes()).unwrap();
         let counts = (0..session.n_bins)
             .map(|t| session.bin_counts(t).to_vec())
             .collect();
@@ -53,6 +62,7 @@ pub fn fixture() -> &'static Fixture {
             model,
             other_model,
             wrong_model,
+            wiener_model,
             counts,
             n_channels: 16,
         }

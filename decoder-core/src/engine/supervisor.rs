@@ -64,6 +64,25 @@ pub enum TransitionReason {
     NewStream,
 }
 
+impl std::fmt::Display for TransitionReason {
+    /// The reason in words, as logs and status show it.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            TransitionReason::ArmedAtStart => write!(f, "armed at start with --arm"),
+            TransitionReason::OperatorArm => write!(f, "operator arm"),
+            TransitionReason::OperatorDisarm => write!(f, "operator disarm"),
+            TransitionReason::OperatorHalt => write!(f, "operator halt"),
+            TransitionReason::BinMissing => write!(f, "bin missing"),
+            TransitionReason::BinsResumed => write!(f, "bins resumed"),
+            TransitionReason::TooManyMissing { missing } => {
+                write!(f, "{missing} bins missing in a row")
+            }
+            TransitionReason::NumericalFault => write!(f, "numerical fault in the decoder"),
+            TransitionReason::NewStream => write!(f, "new stream (seq jumped)"),
+        }
+    }
+}
+
 /// One state change.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub struct Transition {

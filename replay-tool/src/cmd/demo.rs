@@ -24,7 +24,7 @@ use decoder_core::sim::reaching::{SimOptions, simulate};
 
 use super::{evaluate, replay, train};
 use crate::CheckFailed;
-use crate::output::write_atomic;
+use crate::output::{count, write_atomic};
 use crate::progress;
 
 #[derive(Debug, clap::Args)]
@@ -107,6 +107,24 @@ pub fn run(args: &Args) -> Result<()> {
             .collect();
         println!("   {:<7} {}", d.decoder, parts.join(", "));
     }
+    let mean_cc = |name: &str| {
+        eval.decoders
+            .iter()
+            .find(|d| d.decoder == name)
+            .map(|d| d.mean.iter().map(|s| s.cc).sum::<f64>() / d.mean.len().max(1) as f64)
+    };
+    if let (Some(k), Some(w)) = (mean_cc("kalman"), mean_cc("wiener")) {
+        if w > k {
+            println!(
+                "   the Wiener baseline scores higher here (mean CC {w:.3} against {k:.3}): it averages the last {} bins of counts, which smooths an open-loop reconstruction; the Kalman decoder's state model is what carries a cursor smoothly from bin to bin in closed loop, so compare them there too (replay-tool closed-loop) before choosing",
+                cfg.wiener.taps
+            );
+        } else {
+            println!(
+                "   the Kalman decoder beats the Wiener baseline (mean CC {k:.3} against {w:.3}): its state model adds to what the counts alone give"
+            );
+        }
+    }
     println!(
         "   report (scores.csv, evaluation.json, held-out-velocity.svg/.png) -> {}",
         report.display()
@@ -160,6 +178,7 @@ fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
         sink.addr,
         n_bins as f64 * block.bin_width.ms() / 1000.0
     );
+    println!("   {}", crate::NOT_NEXT_TO_A_PERSON);
     let bin_us = block.bin_width.us();
     let datagrams: Vec<Vec<u8>> = (0..n_bins)
         .map(|t| packet::bin_datagram(block.bin_counts(t), bin_us))
@@ -184,14 +203,19 @@ fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
     let c = &status.counters;
     let l = &status.latency;
     let answered: Vec<_> = rec.packets.iter().flatten().collect();
-    let by_state = |s: u8| answered.iter().filter(|p| p.state == s).count();
+    let by_state = |s: u8| answered.iter().filter(|p| p.state == s).count() as u64;
+    let coasted_in_stream = answered
+        .iter()
+        .filter(|p| p.flags & packet::FLAG_BIN_MISSING != 0)
+        .count() as u64;
     println!(
-        "   actuator sink got {} velocity packets for {n_bins} bins: {} armed, {} coasting, {} halted; {} heartbeats after the stream ended",
-        answered.len(),
+        "   the actuator sink got {} for the {} sent: {} armed, {} coasting, {} halted; then {} after the stream ended (answered without a bin)",
+        count(answered.len() as u64, "velocity packet", "velocity packets"),
+        count(n_bins as u64, "bin", "bins"),
         by_state(1),
         by_state(2),
         by_state(3),
-        rec.extra
+        count(rec.extra, "heartbeat slot", "heartbeat slots")
     );
     println!(
         "   latency recv->send: p50 {:.1} µs, p99 {:.1} µs, max {:.1} µs; front end's end of bin -> send: p50 {:.1} µs, p99 {:.1} µs",
@@ -202,8 +226,11 @@ fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
         l.origin_to_send_us.p99
     );
     println!(
-        "   dropouts: {} missing (coasted), {} late, {} duplicate, {} rejected",
-        c.bins_missing, c.bins_late, c.bins_duplicate, c.rejected
+        "   dropouts during the stream: {} (bin missing), {} late, {} duplicate, {} rejected",
+        count(coasted_in_stream, "slot coasted", "slots coasted"),
+        c.bins_late,
+        c.bins_duplicate,
+        c.rejected
     );
     let log = stopped
         .session_log
@@ -221,7 +248,7 @@ fn live_step(args: &Args, model_path: &Path, block: &Block) -> Result<()> {
     );
     println!("   recording -> {}", log.display());
     println!(
-        "   (replay it: replay-tool replay --session {} --out replayed.npy)",
+        "   (check it bit for bit: replay-tool verify {})",
         log.display()
     );
     if same != recorded {

@@ -29,8 +29,15 @@ const PALETTE: [RGBColor; 4] = [
 ];
 
 /// Writes `<stem>.svg` and `<stem>.png`: one panel per output, the true
-/// velocity in black and each decoder in colour.
-pub fn held_out_velocity(traces: &[HeldOutTrace], bin_ms: f64, stem: &Path) -> Result<()> {
+/// velocity in black and each decoder in colour, the legend beside the
+/// traces. `by_trial` says whether the held-out stretch is whole trials
+/// (the block has trials.csv) or a run of bins.
+pub fn held_out_velocity(
+    traces: &[HeldOutTrace],
+    bin_ms: f64,
+    by_trial: bool,
+    stem: &Path,
+) -> Result<()> {
     register_font();
     let mut outputs: Vec<&str> = Vec::new();
     for t in traces {
@@ -38,19 +45,19 @@ pub fn held_out_velocity(traces: &[HeldOutTrace], bin_ms: f64, stem: &Path) -> R
             outputs.push(&t.output);
         }
     }
-    let height = 260 * outputs.len().max(1) as u32;
+    let height = 280 * outputs.len().max(1) as u32;
     let svg = stem.with_extension("svg");
     let png = stem.with_extension("png");
     {
-        let root = SVGBackend::new(&svg, (1000, height)).into_drawing_area();
-        draw(&root, traces, &outputs, bin_ms)
+        let root = SVGBackend::new(&svg, (1200, height)).into_drawing_area();
+        draw(&root, traces, &outputs, bin_ms, by_trial)
             .with_context(|| format!("drawing {}", svg.display()))?;
         root.present()
             .map_err(|e| anyhow!("writing {}: {e}", svg.display()))?;
     }
     {
-        let root = BitMapBackend::new(&png, (1000, height)).into_drawing_area();
-        draw(&root, traces, &outputs, bin_ms)
+        let root = BitMapBackend::new(&png, (1200, height)).into_drawing_area();
+        draw(&root, traces, &outputs, bin_ms, by_trial)
             .with_context(|| format!("drawing {}", png.display()))?;
         root.present()
             .map_err(|e| anyhow!("writing {}: {e}", png.display()))?;
@@ -63,12 +70,18 @@ fn draw<DB: DrawingBackend>(
     traces: &[HeldOutTrace],
     outputs: &[&str],
     bin_ms: f64,
+    by_trial: bool,
 ) -> Result<()>
 where
     DB::ErrorType: 'static,
 {
     root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
     let panels = root.split_evenly((outputs.len().max(1), 1));
+    let x_desc = if by_trial {
+        "time in held-out trials, s"
+    } else {
+        "time in the held-out bins, s"
+    };
     for (panel, output) in panels.iter().zip(outputs) {
         let mine: Vec<&HeldOutTrace> = traces.iter().filter(|t| t.output == *output).collect();
         let Some(first) = mine.first() else { continue };
@@ -76,28 +89,36 @@ where
         let secs = n as f64 * bin_ms / 1000.0;
         let (mut lo, mut hi) = (f64::INFINITY, f64::NEG_INFINITY);
         for t in &mine {
-            for v in t.truth.iter().chain(&t.estimate) {
+            for v in t.truth.iter().chain(&t.estimate).filter(|v| v.is_finite()) {
                 lo = lo.min(*v);
                 hi = hi.max(*v);
             }
         }
         if !(lo.is_finite() && hi.is_finite()) || lo == hi {
-            lo = -1.0;
-            hi = 1.0;
+            lo -= 1.0;
+            hi += 1.0;
+            if !(lo.is_finite() && hi.is_finite()) {
+                (lo, hi) = (-1.0, 1.0);
+            }
         }
         let pad = 0.05 * (hi - lo);
-        let mut chart = ChartBuilder::on(panel)
+        // The legend gets its own strip to the right, so it never covers
+        // a trace.
+        let (plot_area, legend_area) = panel.split_horizontally(panel.dim_in_pixel().0 - 150);
+        let mut chart = ChartBuilder::on(&plot_area)
             .caption(format!("held-out {output}"), ("sans-serif", 18))
             .margin(8)
-            .x_label_area_size(32)
-            .y_label_area_size(56)
+            .x_label_area_size(40)
+            .y_label_area_size(64)
             .build_cartesian_2d(0.0..secs.max(1e-3), (lo - pad)..(hi + pad))
             .map_err(|e| anyhow!("{e}"))?;
         chart
             .configure_mesh()
-            .x_desc("time in held-out trials (s)")
-            .y_desc(format!("{output} (units/s)"))
+            .x_desc(x_desc)
+            .y_desc(format!("{output}, position units/s"))
             .light_line_style(WHITE.mix(0.0))
+            .label_style(("sans-serif", 13))
+            .axis_desc_style(("sans-serif", 14))
             .draw()
             .map_err(|e| anyhow!("{e}"))?;
         let t_of = |i: usize| i as f64 * bin_ms / 1000.0;
@@ -106,9 +127,8 @@ where
                 first.truth.iter().enumerate().map(|(i, v)| (t_of(i), *v)),
                 BLACK.stroke_width(2),
             ))
-            .map_err(|e| anyhow!("{e}"))?
-            .label("true")
-            .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 16, y)], BLACK.stroke_width(2)));
+            .map_err(|e| anyhow!("{e}"))?;
+        let mut legend: Vec<(String, RGBColor, u32)> = vec![("true".into(), BLACK, 2)];
         for (k, t) in mine.iter().enumerate() {
             let colour = PALETTE[k % PALETTE.len()];
             chart
@@ -116,19 +136,21 @@ where
                     t.estimate.iter().enumerate().map(|(i, v)| (t_of(i), *v)),
                     colour.stroke_width(1),
                 ))
-                .map_err(|e| anyhow!("{e}"))?
-                .label(t.decoder.clone())
-                .legend(move |(x, y)| {
-                    PathElement::new(vec![(x, y), (x + 16, y)], colour.stroke_width(2))
-                });
+                .map_err(|e| anyhow!("{e}"))?;
+            legend.push((t.decoder.clone(), colour, 2));
         }
-        chart
-            .configure_series_labels()
-            .background_style(WHITE.mix(0.8))
-            .border_style(BLACK)
-            .position(SeriesLabelPosition::UpperRight)
-            .draw()
-            .map_err(|e| anyhow!("{e}"))?;
+        for (i, (name, colour, width)) in legend.iter().enumerate() {
+            let y = 50 + 22 * i as i32;
+            legend_area
+                .draw(&PathElement::new(
+                    vec![(8, y), (30, y)],
+                    colour.stroke_width(*width),
+                ))
+                .map_err(|e| anyhow!("{e}"))?;
+            legend_area
+                .draw(&Text::new(name.clone(), (36, y - 7), ("sans-serif", 13)))
+                .map_err(|e| anyhow!("{e}"))?;
+        }
     }
     Ok(())
 }
@@ -190,41 +212,69 @@ where
         .max()
         .unwrap_or(1)
         .max(1);
+    // Bars stand on 0.5 so a bin of one count is a visible bar and an
+    // empty bin is no bar at all (a log axis has no zero).
+    let floor = 0.5f64;
+    let x_min = edges
+        .iter()
+        .zip(0..)
+        .find(|(_, i)| counts.iter().any(|(_, c)| c[*i] > 0))
+        .map_or(1.0, |(e, _)| (e / 2.0).max(1.0));
     root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
     let mut chart = ChartBuilder::on(root)
         .margin(12)
-        .x_label_area_size(36)
-        .y_label_area_size(56)
-        .caption("latency", ("sans-serif", 18))
+        .x_label_area_size(44)
+        .y_label_area_size(64)
+        .caption("latency of each bin", ("sans-serif", 18))
         .build_cartesian_2d(
-            (1.0f64..*edges.last().unwrap_or(&10.0)).log_scale(),
-            (1u64..top * 2).log_scale(),
+            (x_min..*edges.last().unwrap_or(&10.0)).log_scale(),
+            (floor..top as f64 * 2.0).log_scale(),
         )
         .map_err(|e| anyhow!("{e}"))?;
     chart
         .configure_mesh()
-        .x_desc("µs")
-        .y_desc("bins")
+        .x_desc("latency, µs (log scale)")
+        .y_desc("bins per interval (log scale)")
+        .x_label_formatter(&|v| format!("{v:.0}"))
+        .y_label_formatter(&|v| format!("{v:.0}"))
+        .label_style(("sans-serif", 13))
+        .axis_desc_style(("sans-serif", 14))
         .draw()
         .map_err(|e| anyhow!("{e}"))?;
     for (k, (name, c)) in counts.iter().enumerate() {
         let color = PALETTE[k % PALETTE.len()];
         chart
-            .draw_series(LineSeries::new(
+            .draw_series(
                 edges
-                    .iter()
+                    .windows(2)
                     .zip(c)
                     .filter(|(_, n)| **n > 0)
-                    .map(|(e, n)| (*e, *n)),
-                color.stroke_width(2),
-            ))
+                    .map(|(w, n)| {
+                        Rectangle::new([(w[0], floor), (w[1], *n as f64)], color.mix(0.35).filled())
+                    }),
+            )
             .map_err(|e| anyhow!("{e}"))?
             .label(name.as_str())
-            .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 16, y)], color));
+            .legend(move |(x, y)| {
+                Rectangle::new([(x, y - 5), (x + 14, y + 5)], color.mix(0.6).filled())
+            });
+        chart
+            .draw_series(
+                edges
+                    .windows(2)
+                    .zip(c)
+                    .filter(|(_, n)| **n > 0)
+                    .map(|(w, n)| {
+                        Rectangle::new([(w[0], floor), (w[1], *n as f64)], color.stroke_width(1))
+                    }),
+            )
+            .map_err(|e| anyhow!("{e}"))?;
     }
     chart
         .configure_series_labels()
-        .background_style(WHITE.mix(0.8))
+        .position(SeriesLabelPosition::UpperRight)
+        .label_font(("sans-serif", 13))
+        .background_style(WHITE.mix(0.85))
         .border_style(BLACK)
         .draw()
         .map_err(|e| anyhow!("{e}"))?;
@@ -232,20 +282,20 @@ where
     Ok(())
 }
 
-/// Writes `<stem>.svg` and `<stem>.png`: latency (µs) of each bin against
-/// time (s) in the run.
-pub fn latency_over_time(points: &[(f64, f64)], stem: &Path) -> Result<()> {
+/// Writes `<stem>.svg` and `<stem>.png`: each named series of (time in the
+/// run, s; latency, µs) points, one colour each.
+pub fn latency_over_time(series: &[(&str, &[(f64, f64)])], stem: &Path) -> Result<()> {
     register_font();
     let svg = stem.with_extension("svg");
     draw_over_time(
-        &SVGBackend::new(&svg, (900, 360)).into_drawing_area(),
-        points,
+        &SVGBackend::new(&svg, (900, 420)).into_drawing_area(),
+        series,
     )
     .with_context(|| format!("drawing {}", svg.display()))?;
     let png = stem.with_extension("png");
     draw_over_time(
-        &BitMapBackend::new(&png, (900, 360)).into_drawing_area(),
-        points,
+        &BitMapBackend::new(&png, (900, 420)).into_drawing_area(),
+        series,
     )
     .with_context(|| format!("drawing {}", png.display()))?;
     Ok(())
@@ -253,73 +303,143 @@ pub fn latency_over_time(points: &[(f64, f64)], stem: &Path) -> Result<()> {
 
 fn draw_over_time<DB: DrawingBackend>(
     root: &DrawingArea<DB, Shift>,
-    points: &[(f64, f64)],
+    series: &[(&str, &[(f64, f64)])],
 ) -> Result<()>
 where
     DB::ErrorType: 'static,
 {
-    let t_max = points.iter().map(|p| p.0).fold(1e-3, f64::max);
-    let y_max = points.iter().map(|p| p.1).fold(1.0, f64::max);
+    let all = || series.iter().flat_map(|(_, p)| p.iter());
+    let t_max = all().map(|p| p.0).fold(1e-3, f64::max);
+    let y_max = all().map(|p| p.1).fold(1.0, f64::max);
     root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
     let mut chart = ChartBuilder::on(root)
         .margin(12)
-        .x_label_area_size(36)
-        .y_label_area_size(56)
-        .caption("recv → send latency over the run", ("sans-serif", 18))
-        .build_cartesian_2d(0.0..t_max, (1.0..y_max * 1.5).log_scale())
+        .x_label_area_size(44)
+        .y_label_area_size(64)
+        .caption("latency of each bin over the run", ("sans-serif", 18))
+        .build_cartesian_2d(0.0..t_max, (1.0..y_max * 3.0).log_scale())
         .map_err(|e| anyhow!("{e}"))?;
     chart
         .configure_mesh()
-        .x_desc("s")
-        .y_desc("µs")
+        .x_desc("time in the run, s")
+        .y_desc("µs (log scale)")
+        .y_label_formatter(&|v| format!("{v:.0}"))
+        .label_style(("sans-serif", 13))
+        .axis_desc_style(("sans-serif", 14))
         .draw()
         .map_err(|e| anyhow!("{e}"))?;
+    for (k, (name, points)) in series.iter().enumerate() {
+        let color = PALETTE[k % PALETTE.len()];
+        chart
+            .draw_series(
+                points
+                    .iter()
+                    .map(|&(t, y)| Circle::new((t, y.max(1.0)), 1, color.filled())),
+            )
+            .map_err(|e| anyhow!("{e}"))?
+            .label(*name)
+            .legend(move |(x, y)| Circle::new((x + 7, y), 4, color.filled()));
+    }
     chart
-        .draw_series(
-            points
-                .iter()
-                .map(|&(t, y)| Circle::new((t, y.max(1.0)), 1, PALETTE[1].filled())),
-        )
+        .configure_series_labels()
+        .position(SeriesLabelPosition::UpperRight)
+        .label_font(("sans-serif", 13))
+        .background_style(WHITE.mix(0.85))
+        .border_style(BLACK)
+        .draw()
         .map_err(|e| anyhow!("{e}"))?;
     root.present().map_err(|e| anyhow!("{e}"))?;
     Ok(())
 }
 
-/// One small KS plot per channel (time-rescaling, Brown et al. 2002): the
-/// sorted rescaled intervals against uniform quantiles, one line per
-/// point-process decoder, with the diagonal and the 95 % band.
+/// Writes `<stem>.svg` and `<stem>.png`: one small KS plot per channel
+/// (time rescaling, Brown et al. 2002): the sorted rescaled intervals
+/// against uniform quantiles, one line per point-process decoder, with the
+/// diagonal and the 95 % band, at most 8 panels a row so the page fits
+/// 1280 px.
 pub fn ks_plots(
     goodness: &[decoder_core::fit::evaluate::DecoderGoodness],
-    path: &Path,
+    stem: &Path,
 ) -> Result<()> {
     register_font();
     let n = goodness.first().map_or(0, |g| g.intervals.len());
-    let cols = (n as f64).sqrt().ceil().max(1.0) as usize;
+    let cols = n.clamp(1, 8);
     let rows = n.div_ceil(cols).max(1);
-    let root =
-        SVGBackend::new(path, (cols as u32 * 150, rows as u32 * 150 + 30)).into_drawing_area();
+    let size = (cols as u32 * 155 + 20, rows as u32 * 155 + 70);
+    let svg = stem.with_extension("svg");
+    draw_ks(
+        &SVGBackend::new(&svg, size).into_drawing_area(),
+        goodness,
+        n,
+        (rows, cols),
+    )
+    .with_context(|| format!("drawing {}", svg.display()))?;
+    let png = stem.with_extension("png");
+    draw_ks(
+        &BitMapBackend::new(&png, size).into_drawing_area(),
+        goodness,
+        n,
+        (rows, cols),
+    )
+    .with_context(|| format!("drawing {}", png.display()))?;
+    Ok(())
+}
+
+fn draw_ks<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    goodness: &[decoder_core::fit::evaluate::DecoderGoodness],
+    n: usize,
+    (rows, cols): (usize, usize),
+) -> Result<()>
+where
+    DB::ErrorType: 'static,
+{
+    let band_colour = RGBColor(150, 150, 150);
     root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
-    let (title, body) = root.split_vertically(30);
-    let legend: Vec<String> = goodness
+    let (head, body) = root.split_vertically(70);
+    head.draw(&Text::new(
+        "KS plots of each channel's encoding model on held-out bins: x = uniform quantile, y = sorted rescaled interval",
+        (10, 8),
+        ("sans-serif", 14),
+    ))
+    .map_err(|e| anyhow!("{e}"))?;
+    // The legend, by name.
+    let mut x = 10;
+    let mut entries: Vec<(String, RGBColor)> = goodness
         .iter()
         .enumerate()
-        .map(|(k, g)| format!("{} = colour {}", g.decoder, k + 1))
+        .map(|(k, g)| (g.decoder.clone(), PALETTE[k % PALETTE.len()]))
         .collect();
-    title
-        .titled(
-            &format!(
-                "KS plots per channel (95 % band dashed); {}",
-                legend.join(", ")
-            ),
-            ("sans-serif", 14),
-        )
+    entries.push(("diagonal (a perfect fit)".into(), BLACK));
+    entries.push(("95 % band, ±1.36/√n".into(), band_colour));
+    for (name, colour) in &entries {
+        head.draw(&PathElement::new(
+            vec![(x, 45), (x + 22, 45)],
+            colour.stroke_width(3),
+        ))
         .map_err(|e| anyhow!("{e}"))?;
+        head.draw(&Text::new(name.clone(), (x + 28, 38), ("sans-serif", 13)))
+            .map_err(|e| anyhow!("{e}"))?;
+        x += 40 + 7 * name.chars().count() as i32;
+    }
     let panels = body.split_evenly((rows, cols));
     for (c, panel) in panels.iter().enumerate().take(n) {
         let mut chart = ChartBuilder::on(panel)
-            .margin(6)
-            .caption(format!("ch {c}"), ("sans-serif", 11))
+            .margin(4)
+            .x_label_area_size(18)
+            .y_label_area_size(26)
+            .caption(format!("channel {c}"), ("sans-serif", 12))
             .build_cartesian_2d(0.0f64..1.0, 0.0f64..1.0)
+            .map_err(|e| anyhow!("{e}"))?;
+        chart
+            .configure_mesh()
+            .disable_mesh()
+            .x_labels(3)
+            .y_labels(3)
+            .x_label_formatter(&|v| format!("{v:.1}"))
+            .y_label_formatter(&|v| format!("{v:.1}"))
+            .label_style(("sans-serif", 10))
+            .draw()
             .map_err(|e| anyhow!("{e}"))?;
         chart
             .draw_series(LineSeries::new(
@@ -340,7 +460,7 @@ pub fn ks_plots(
                     chart
                         .draw_series(LineSeries::new(
                             [(0.0, offset), (1.0, 1.0 + offset)],
-                            RGBColor(150, 150, 150).stroke_width(1),
+                            band_colour.stroke_width(1),
                         ))
                         .map_err(|e| anyhow!("{e}"))?;
                 }

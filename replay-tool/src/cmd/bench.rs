@@ -147,6 +147,37 @@ struct Outcome {
     round_trip: Percentiles,
     jitter: Percentiles,
     floor: Percentiles,
+    /// Per seq: |send time − bin clock| in µs (NaN without a packet).
+    jitter_us: Vec<f64>,
+}
+
+/// What was benched, where and when, for the report's header.
+struct RunFacts {
+    model: String,
+    model_sha256: String,
+    config: String,
+    date: String,
+    host: String,
+    version: &'static str,
+}
+
+impl RunFacts {
+    fn gather(model_path: &Path, config: Option<&Path>) -> RunFacts {
+        use sha2::Digest;
+        let model_sha256 = std::fs::read(model_path)
+            .map(|b| format!("{:x}", sha2::Sha256::digest(&b)))
+            .unwrap_or_else(|e| format!("unreadable ({e})"));
+        RunFacts {
+            model: model_path.display().to_string(),
+            model_sha256,
+            config: config.map_or("defaults (no --config)".into(), |c| c.display().to_string()),
+            date: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
+            host: std::fs::read_to_string("/proc/sys/kernel/hostname")
+                .map(|h| h.trim().to_string())
+                .unwrap_or_else(|_| "unknown".into()),
+            version: env!("CARGO_PKG_VERSION"),
+        }
+    }
 }
 
 pub fn run(args: &Args) -> Result<()> {
@@ -209,6 +240,7 @@ pub fn run(args: &Args) -> Result<()> {
         }
     };
     let outcome = analyse(&rec, n, rate_hz, &faults, &floor_ns);
+    let facts = RunFacts::gather(&model_path, args.config.as_deref());
     write_report(
         args,
         &rec,
@@ -219,6 +251,7 @@ pub fn run(args: &Args) -> Result<()> {
         &daemon_note,
         &floor_ns,
         &faults,
+        &facts,
     )?;
     print_summary(&outcome, args);
     println!("report -> {}", args.report.join("report.html").display());
@@ -256,6 +289,12 @@ pub fn run(args: &Args) -> Result<()> {
 fn wait_for_last(sink: &ActuatorSink, n: usize, rate_hz: f64) {
     let patience = Duration::from_secs(1) + Duration::from_secs_f64(4.0 / rate_hz);
     let _ = sink.wait_for_seq(n as u64 - 1, patience);
+}
+
+fn html_escape(s: &str) -> String {
+    s.replace('&', "&amp;")
+        .replace('<', "&lt;")
+        .replace('>', "&gt;")
 }
 
 fn analyse(
@@ -299,6 +338,13 @@ fn analyse(
         .iter()
         .map(|o| (o - reference).abs().round() as u64)
         .collect();
+    let mut jitter_us = vec![f64::NAN; n];
+    let mut j = jitter.iter();
+    for (k, p) in rec.packets.iter().enumerate() {
+        if p.is_some() {
+            jitter_us[k] = j.next().map_or(f64::NAN, |&v| v as f64 / 1e3);
+        }
+    }
     Outcome {
         missed_slots: missed,
         unexpected_dropouts: unexpected,
@@ -308,6 +354,7 @@ fn analyse(
         round_trip: Percentiles::of_samples_ns(&round_trip),
         jitter: Percentiles::of_samples_ns(&jitter),
         floor: Percentiles::of_samples_ns(floor_ns),
+        jitter_us,
     }
 }
 
@@ -342,10 +389,13 @@ fn write_report(
     daemon_note: &str,
     floor_ns: &[u64],
     faults: &impl Fn(usize) -> BinFault,
+    facts: &RunFacts,
 ) -> Result<()> {
     let dir = &args.report;
     let summary = json!({
         "bins": n, "rate_hz": rate_hz, "channels": channels, "daemon": daemon_note,
+        "model": facts.model, "model_sha256": facts.model_sha256, "config": facts.config,
+        "date": facts.date, "host": facts.host, "tool_version": facts.version,
         "recv_to_send_us": serde_json::to_value(&o.recv_to_send)?,
         "round_trip_us": serde_json::to_value(&o.round_trip)?,
         "loopback_floor_round_trip_us": serde_json::to_value(&o.floor)?,
@@ -362,8 +412,11 @@ fn write_report(
         &dir.join("summary.json"),
         serde_json::to_string_pretty(&summary)?.as_bytes(),
     )?;
-    let mut csv = String::from("seq,fault,state,flags,recv_to_send_us,round_trip_us\n");
+    let mut csv =
+        String::from("seq,fault,state,flags,recv_to_send_us,round_trip_us,send_jitter_us\n");
     let mut over_time = Vec::new();
+    let mut rt_over_time = Vec::new();
+    let mut jitter_over_time = Vec::new();
     let mut r2s = Vec::new();
     let mut rts = Vec::new();
     for k in 0..n {
@@ -389,9 +442,17 @@ fn write_report(
                 } else {
                     f64::NAN
                 };
-                let _ = writeln!(csv, "{k},{fault},{},{},{r},{t}", p.state, p.flags);
+                let jit = o.jitter_us[k];
+                let _ = writeln!(csv, "{k},{fault},{},{},{r},{t},{jit}", p.state, p.flags);
+                let at = k as f64 / rate_hz;
+                if jit.is_finite() {
+                    jitter_over_time.push((at, jit));
+                }
                 if decoded {
-                    over_time.push((k as f64 / rate_hz, r));
+                    over_time.push((at, r));
+                    if t.is_finite() {
+                        rt_over_time.push((at, t));
+                    }
                     r2s.push(r);
                     if t.is_finite() {
                         rts.push(t);
@@ -410,7 +471,14 @@ fn write_report(
         ],
         &dir.join("latency-histogram"),
     )?;
-    plot::latency_over_time(&over_time, &dir.join("latency-over-time"))?;
+    plot::latency_over_time(
+        &[
+            ("decoderd recv→send", &over_time),
+            ("front end → actuator", &rt_over_time),
+            ("send jitter vs bin clock", &jitter_over_time),
+        ],
+        &dir.join("latency-over-time"),
+    )?;
     let verdict = if o.missed_slots == 0
         && o.unexpected_dropouts == 0
         && args.budget_p99_us.is_none_or(|b| o.recv_to_send.p99 <= b)
@@ -421,23 +489,57 @@ fn write_report(
     };
     let row = |name: &str, p: &Percentiles| {
         format!(
-            "<tr><td>{name}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td></tr>",
-            p.p50, p.p90, p.p99, p.p999, p.max
+            "<tr><td>{name}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{:.1}</td><td>{}</td></tr>",
+            p.p50, p.p90, p.p99, p.p999, p.max, p.count
         )
+    };
+    let few = [&o.recv_to_send, &o.round_trip, &o.floor, &o.jitter]
+        .iter()
+        .map(|p| p.count)
+        .min()
+        .unwrap_or(0);
+    let few_note = if few < 1000 {
+        format!(
+            "<p class=note>p99.9 from fewer than 1000 samples ({few} in the smallest row) is the largest one or two values, not a stable estimate of the tail; bench longer (--seconds) to estimate it.</p>"
+        )
+    } else {
+        String::new()
     };
     let html = format!(
         r#"<!doctype html><meta charset=utf-8><title>decoderd bench</title>
-<style>body{{font-family:sans-serif;max-width:960px;margin:2em auto}}table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:4px 10px;text-align:right}}td:first-child{{text-align:left}}.pass{{color:#1a7f37;font-size:2em}}.fail{{color:#c62828;font-size:2em}}</style>
+<style>body{{font-family:sans-serif;max-width:960px;margin:2em auto}}table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:4px 10px;text-align:right}}td:first-child,th:first-child{{text-align:left}}.pass{{color:#1a7f37;font-size:2em}}.fail{{color:#c62828;font-size:2em}}.note{{color:#555;font-size:0.9em}}img{{max-width:100%}}table.facts td{{text-align:left}}</style>
 <h1>decoderd loop bench</h1>
 {verdict}
-<p>{n} bins at {rate_hz:.0} Hz × {channels} channels against the {daemon_note}. Budget: {budget}.</p>
-<table><tr><th>latency (µs)</th><th>p50</th><th>p90</th><th>p99</th><th>p99.9</th><th>max</th></tr>
+<table class=facts>
+<tr><td>model</td><td>{model}</td></tr>
+<tr><td>model sha256</td><td><code>{sha}</code></td></tr>
+<tr><td>daemon configuration</td><td>{config}</td></tr>
+<tr><td>daemon</td><td>{daemon_note}</td></tr>
+<tr><td>run</td><td>{date} on {host}, replay-tool {version}</td></tr>
+<tr><td>stream</td><td>{n} bins at {rate_hz:.0} Hz × {channels} channels</td></tr>
+<tr><td>budget</td><td>{budget}</td></tr>
+</table>
+<h2>Latency</h2>
+<table><tr><th>latency (µs)</th><th>p50</th><th>p90</th><th>p99</th><th>p99.9</th><th>max</th><th>samples</th></tr>
 {r1}{r2}{r3}{r4}</table>
-<p>Missed slots (no packet): <b>{missed}</b>. Bins sent on time but not decoded: <b>{dropouts}</b>. Injected faults: {faults} ({flagged} answered as missing). Heartbeat packets after the stream: {extra}.</p>
-<h2>Latency histogram</h2><img src="latency-histogram.svg" width=900>
-<h2>Latency over the run</h2><img src="latency-over-time.svg" width=900>
+<p class=note><b>decoderd recv→send</b>: from the daemon reading a bin to it sending the velocity packet, stamped by the daemon itself.
+<b>front end → actuator</b>: from the front end's send to the actuator sink's read, the whole loop as a rig sees it.
+<b>loopback floor</b>: the same bins through a relay thread on this machine that receives and sends without decoding — the part of the round trip no decoder can remove.
+<b>send jitter</b>: how far each packet left from the bin clock (the median offset taken as zero); a slot whose bin was missing is answered at its deadline, so it leaves late by the deadline slack on purpose.</p>
+{few_note}
+<h2>Dropouts</h2>
+<p>Missed slots (no packet): <b>{missed}</b>. Bins sent on time but not decoded: <b>{dropouts}</b>. Injected faults: {faults} ({flagged} answered as missing).
+Heartbeat packets after the stream: {extra} — after the last bin the daemon keeps answering every slot (halted packets), so an actuator can tell a stopped stream from a dead daemon; they are not misses.</p>
+<h2>Latency histogram</h2><img src="latency-histogram.svg" alt="latency histogram">
+<h2>Latency over the run</h2><img src="latency-over-time.svg" alt="latency of each bin over the run">
 <p>Per-bin figures: <a href="bins.csv">bins.csv</a>; summary: <a href="summary.json">summary.json</a>.</p>
 "#,
+        model = html_escape(&facts.model),
+        sha = facts.model_sha256,
+        config = html_escape(&facts.config),
+        date = facts.date,
+        host = html_escape(&facts.host),
+        version = facts.version,
         budget = args
             .budget_p99_us
             .map_or("none".to_string(), |b| format!("recv→send p99 ≤ {b} µs")),

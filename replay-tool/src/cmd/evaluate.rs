@@ -169,7 +169,12 @@ pub fn write_report(dir: &std::path::Path, eval: &Evaluation, bin_ms: f64) -> Re
         &dir.join("evaluation.json"),
         serde_json::to_string_pretty(eval)?.as_bytes(),
     )?;
-    plot::held_out_velocity(&eval.traces, bin_ms, &dir.join("held-out-velocity"))?;
+    plot::held_out_velocity(
+        &eval.traces,
+        bin_ms,
+        eval.by_trial,
+        &dir.join("held-out-velocity"),
+    )?;
     if !eval.goodness.is_empty() {
         let mut csv =
             String::from("decoder,channel,spikes,ks,band_95,within_band,bits_per_spike\n");
@@ -183,7 +188,7 @@ pub fn write_report(dir: &std::path::Path, eval: &Evaluation, bin_ms: f64) -> Re
             }
         }
         write_atomic(&dir.join("goodness-of-fit.csv"), csv.as_bytes())?;
-        plot::ks_plots(&eval.goodness, &dir.join("ks-plots.svg"))?;
+        plot::ks_plots(&eval.goodness, &dir.join("ks-plots"))?;
     }
     Ok(())
 }

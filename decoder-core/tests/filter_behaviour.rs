@@ -213,18 +213,15 @@ fn diagonal_q_stores_only_the_diagonal() {
 
 #[test]
 fn replaying_twice_is_bit_identical() {
-    let (session, _) = simulate(&SimOptions {
-        minutes: 1.0,
-        n_channels: 32,
-        ..SimOptions::default()
-    })
+    let (mf, session) = decoder_core::sim::model::simulated_kalman(
+        &SimOptions {
+            minutes: 1.0,
+            n_channels: 32,
+            ..SimOptions::default()
+        },
+        &opts(),
+    )
     .unwrap();
-    let (model, _) = fit_kalman(&session, &opts()).unwrap();
-    let mf = ModelFile {
-        bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
-        decoder: DecoderModel::Kalman(model),
-        provenance: Provenance::untracked(),
-    };
     let mut a = DecodePipeline::new(&mf).unwrap();
     let mut b = DecodePipeline::new(&mf).unwrap();
     let (ea, _) = replay_block(&mut a, &session).unwrap();

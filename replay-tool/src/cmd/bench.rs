@@ -109,15 +109,15 @@ fn bench_model(args: &Args, work: &Path) -> Result<(PathBuf, ModelFile)> {
     if args.channels == 0 || args.channels > packet::MAX_CHANNELS {
         bail!("--channels {}: must be 1..=16384", args.channels);
     }
-    let (session, _) = simulate(&SimOptions {
-        minutes: 2.0,
-        n_channels: args.channels,
-        bin_width: super::bin_width_flag(args.bin_ms)?,
-        ..SimOptions::default()
-    })?;
-    let cfg = decoder_core::fit::config::TrainConfig::default();
-    let spec = decoder_core::fit::evaluate::DecoderSpec::Kalman(cfg.kalman.clone());
-    let model = super::train::train_model(&session, &spec, None)?;
+    let (model, _) = decoder_core::sim::model::simulated_kalman(
+        &SimOptions {
+            minutes: 2.0,
+            n_channels: args.channels,
+            bin_width: super::bin_width_flag(args.bin_ms)?,
+            ..SimOptions::default()
+        },
+        &decoder_core::fit::config::TrainConfig::default().kalman,
+    )?;
     let path = work.join("bench.model");
     write_atomic(&path, &model.to_bytes())?;
     Ok((path, model))

@@ -28,6 +28,25 @@ const PALETTE: [RGBColor; 4] = [
     RGBColor(150, 80, 170),
 ];
 
+/// Draws the same figure twice, as `<stem>.svg` and `<stem>.png`, with
+/// `$draw` called on each backend's root area (a closure cannot be
+/// generic over the backend, a macro can).
+macro_rules! svg_and_png {
+    ($stem:expr, $size:expr, |$root:ident| $draw:expr) => {{
+        let svg = $stem.with_extension("svg");
+        {
+            let $root = &SVGBackend::new(&svg, $size).into_drawing_area();
+            $draw.with_context(|| format!("drawing {}", svg.display()))?;
+        }
+        let png = $stem.with_extension("png");
+        {
+            let $root = &BitMapBackend::new(&png, $size).into_drawing_area();
+            $draw.with_context(|| format!("drawing {}", png.display()))?;
+        }
+        Ok(())
+    }};
+}
+
 /// Writes `<stem>.svg` and `<stem>.png`: one panel per output, the true
 /// velocity in black and each decoder in colour, the legend beside the
 /// traces. `by_trial` says whether the held-out stretch is whole trials
@@ -46,23 +65,10 @@ pub fn held_out_velocity(
         }
     }
     let height = 280 * outputs.len().max(1) as u32;
-    let svg = stem.with_extension("svg");
-    let png = stem.with_extension("png");
-    {
-        let root = SVGBackend::new(&svg, (1200, height)).into_drawing_area();
-        draw(&root, traces, &outputs, bin_ms, by_trial)
-            .with_context(|| format!("drawing {}", svg.display()))?;
-        root.present()
-            .map_err(|e| anyhow!("writing {}: {e}", svg.display()))?;
-    }
-    {
-        let root = BitMapBackend::new(&png, (1200, height)).into_drawing_area();
-        draw(&root, traces, &outputs, bin_ms, by_trial)
-            .with_context(|| format!("drawing {}", png.display()))?;
-        root.present()
-            .map_err(|e| anyhow!("writing {}: {e}", png.display()))?;
-    }
-    Ok(())
+    svg_and_png!(stem, (1200, height), |root| {
+        draw(root, traces, &outputs, bin_ms, by_trial)
+            .and_then(|()| root.present().map_err(|e| anyhow!("{e}")))
+    })
 }
 
 fn draw<DB: DrawingBackend>(
@@ -180,21 +186,9 @@ pub fn latency_histogram(series: &[(&str, &[f64])], stem: &Path) -> Result<()> {
             (name.to_string(), c)
         })
         .collect();
-    let svg = stem.with_extension("svg");
-    draw_histogram(
-        &SVGBackend::new(&svg, (900, 420)).into_drawing_area(),
-        &edges,
-        &counts,
-    )
-    .with_context(|| format!("drawing {}", svg.display()))?;
-    let png = stem.with_extension("png");
-    draw_histogram(
-        &BitMapBackend::new(&png, (900, 420)).into_drawing_area(),
-        &edges,
-        &counts,
-    )
-    .with_context(|| format!("drawing {}", png.display()))?;
-    Ok(())
+    svg_and_png!(stem, (900, 420), |root| draw_histogram(
+        root, &edges, &counts
+    ))
 }
 
 fn draw_histogram<DB: DrawingBackend>(
@@ -286,19 +280,7 @@ where
 /// run, s; latency, µs) points, one colour each.
 pub fn latency_over_time(series: &[(&str, &[(f64, f64)])], stem: &Path) -> Result<()> {
     register_font();
-    let svg = stem.with_extension("svg");
-    draw_over_time(
-        &SVGBackend::new(&svg, (900, 420)).into_drawing_area(),
-        series,
-    )
-    .with_context(|| format!("drawing {}", svg.display()))?;
-    let png = stem.with_extension("png");
-    draw_over_time(
-        &BitMapBackend::new(&png, (900, 420)).into_drawing_area(),
-        series,
-    )
-    .with_context(|| format!("drawing {}", png.display()))?;
-    Ok(())
+    svg_and_png!(stem, (900, 420), |root| draw_over_time(root, series))
 }
 
 fn draw_over_time<DB: DrawingBackend>(
@@ -366,23 +348,7 @@ pub fn ks_plots(
     let cols = n.clamp(1, 8);
     let rows = n.div_ceil(cols).max(1);
     let size = (cols as u32 * 155 + 20, rows as u32 * 155 + 70);
-    let svg = stem.with_extension("svg");
-    draw_ks(
-        &SVGBackend::new(&svg, size).into_drawing_area(),
-        goodness,
-        n,
-        (rows, cols),
-    )
-    .with_context(|| format!("drawing {}", svg.display()))?;
-    let png = stem.with_extension("png");
-    draw_ks(
-        &BitMapBackend::new(&png, size).into_drawing_area(),
-        goodness,
-        n,
-        (rows, cols),
-    )
-    .with_context(|| format!("drawing {}", png.display()))?;
-    Ok(())
+    svg_and_png!(stem, size, |root| draw_ks(root, goodness, n, (rows, cols)))
 }
 
 fn draw_ks<DB: DrawingBackend>(

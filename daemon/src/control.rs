@@ -56,8 +56,7 @@ pub struct LoadedModel {
 
 /// Reads and validates a model file (used at start and for `load`).
 pub fn read_model(path: &Path) -> Result<LoadedModel> {
-    let bytes =
-        std::fs::read(path).with_context(|| format!("cannot read model {}", path.display()))?;
+    let bytes = decoder_core::formats::model_file::read_model_bytes(path)?;
     let file = ModelFile::from_bytes(&bytes, &path.display().to_string())?;
     let sha256: String = Sha256::digest(&bytes)
         .iter()

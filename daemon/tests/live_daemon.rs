@@ -297,6 +297,38 @@ fn a_model_of_another_kind_swapped_in_while_armed_is_flagged() {
 }
 
 #[test]
+fn loading_a_device_or_a_damaged_file_is_refused_and_the_daemon_keeps_its_model() {
+    let d = Daemon::start(true, TEST_TIMING);
+    std::thread::scope(|scope| {
+        scope.spawn(|| d.stream(0..30, 0));
+        d.wait_for_seq(5);
+        let r = d.ctl(Request::Load {
+            path: "/dev/zero".into(),
+        });
+        assert!(
+            !r.ok && r.message.contains("not a regular file"),
+            "{}",
+            r.message
+        );
+        let damaged = d.path().join("damaged.model");
+        let mut bytes = std::fs::read(&fixture().model).unwrap();
+        bytes.extend_from_slice(b"appended");
+        std::fs::write(&damaged, bytes).unwrap();
+        let r = d.ctl(Request::Load { path: damaged });
+        assert!(
+            !r.ok && r.message.contains("after the model"),
+            "{}",
+            r.message
+        );
+    });
+    let p = d.wait_for_seq(29);
+    assert_eq!(seqs(&p[..30]), (0..30).collect::<Vec<_>>());
+    let s = d.status();
+    assert_eq!(s.counters.model_changes, 0);
+    assert!(s.model.path.ends_with("a.model"));
+}
+
+#[test]
 fn operator_commands_drive_the_supervisor() {
     let d = Daemon::start(false, TEST_TIMING);
     let r = d.ctl(Request::Arm);

@@ -11,12 +11,14 @@
 
 use std::fmt;
 
-/// A bin width of whole microseconds, at least 1 µs and at most 60 s.
+/// A bin width of whole microseconds, from 0.1 ms to 10 s.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
 pub struct BinWidth(u32);
 
-/// The longest bin width accepted: 60 s.
-pub const MAX_US: u32 = 60_000_000;
+/// The shortest bin width accepted: 0.1 ms (no front end bins finer).
+pub const MIN_US: u32 = 100;
+/// The longest bin width accepted: 10 s.
+pub const MAX_US: u32 = 10_000_000;
 
 #[derive(Clone, Debug, PartialEq, thiserror::Error)]
 pub enum BinWidthError {
@@ -24,14 +26,14 @@ pub enum BinWidthError {
     NotPositive { value: f64 },
     #[error("bin width {value} ms is not a whole number of microseconds")]
     NotWholeMicroseconds { value: f64 },
-    #[error("bin width {us} µs is outside 1 µs ..= 60 s")]
+    #[error("bin width {us} µs is outside 0.1 ms ..= 10 s")]
     OutOfRange { us: u64 },
 }
 
 impl BinWidth {
     /// From whole microseconds.
     pub const fn from_us(us: u32) -> Result<BinWidth, BinWidthError> {
-        if us == 0 || us > MAX_US {
+        if us < MIN_US || us > MAX_US {
             return Err(BinWidthError::OutOfRange { us: us as u64 });
         }
         Ok(BinWidth(us))
@@ -50,7 +52,7 @@ impl BinWidth {
         if (us - whole).abs() > 1e-6 * whole.max(1.0) {
             return Err(BinWidthError::NotWholeMicroseconds { value: ms });
         }
-        if whole < 1.0 || whole > MAX_US as f64 {
+        if whole < MIN_US as f64 || whole > MAX_US as f64 {
             return Err(BinWidthError::OutOfRange { us: whole as u64 });
         }
         Ok(BinWidth(whole as u32))
@@ -64,7 +66,7 @@ impl BinWidth {
             });
         }
         let us = ns / 1000;
-        if us == 0 || us > MAX_US as u64 {
+        if us < MIN_US as u64 || us > MAX_US as u64 {
             return Err(BinWidthError::OutOfRange { us });
         }
         Ok(BinWidth(us as u32))
@@ -189,6 +191,8 @@ mod tests {
             assert!(BinWidth::from_ms(bad).is_err(), "{bad}");
         }
         assert!(BinWidth::from_us(0).is_err());
-        assert!(BinWidth::from_ms(60_001.0).is_err());
+        assert!(BinWidth::from_ms(10_001.0).is_err());
+        assert!(BinWidth::from_ms(0.05).is_err());
+        assert!(BinWidth::from_ms(0.1).is_ok() && BinWidth::from_ms(10_000.0).is_ok());
     }
 }

@@ -125,3 +125,163 @@ proptest! {
         prop_assert!(ModelFile::from_bytes(&b, "fuzz").is_err());
     }
 }
+
+/// Frames `payload` as a model file (PROTOCOL.md §8) with a right checksum.
+fn framed(payload: &[u8]) -> Vec<u8> {
+    let mut out = b"VDECMODL".to_vec();
+    out.extend_from_slice(&2u32.to_le_bytes());
+    out.extend_from_slice(&(payload.len() as u64).to_le_bytes());
+    out.extend_from_slice(&crc32fast::hash(payload).to_le_bytes());
+    out.extend_from_slice(payload);
+    out
+}
+
+#[test]
+fn trailing_bytes_are_refused() {
+    let mut b = small_model().to_bytes();
+    b.extend_from_slice(b"more");
+    assert!(matches!(
+        ModelFile::from_bytes(&b, "m"),
+        Err(ModelFileError::TrailingBytes { extra: 4, .. })
+    ));
+}
+
+#[test]
+fn a_device_a_pipe_and_a_huge_file_are_refused_before_reading() {
+    // /dev/zero never ends: reading it whole would never return.
+    assert!(matches!(
+        ModelFile::read(std::path::Path::new("/dev/zero")),
+        Err(ModelFileError::NotAFile { .. })
+    ));
+    let dir = tempfile::tempdir().unwrap();
+    let fifo = dir.path().join("pipe.model");
+    let made = std::process::Command::new("mkfifo")
+        .arg(&fifo)
+        .status()
+        .unwrap();
+    assert!(made.success());
+    // Opening a FIFO with no writer would block: it must not be opened.
+    assert!(matches!(
+        ModelFile::read(&fifo),
+        Err(ModelFileError::NotAFile { .. })
+    ));
+    let huge = dir.path().join("huge.model");
+    let f = std::fs::File::create(&huge).unwrap();
+    f.set_len(10 << 30).unwrap(); // sparse: no disk used
+    assert!(matches!(
+        ModelFile::read(&huge),
+        Err(ModelFileError::TooLarge { .. })
+    ));
+    assert!(matches!(
+        ModelFile::read(dir.path()),
+        Err(ModelFileError::NotAFile { .. })
+    ));
+}
+
+/// Every way a decoded payload can be unusable is refused with its reason.
+#[test]
+fn invalid_payloads_of_each_kind_are_refused_with_the_reason() {
+    use decoder_core::DecoderModel;
+    let base = small_model();
+    let DecoderModel::Kalman(k) = &base.decoder else {
+        unreachable!()
+    };
+    let refused = |m: ModelFile, reason: &str| {
+        let e = ModelFile::from_bytes(&m.to_bytes(), "bad.model").unwrap_err();
+        assert!(matches!(e, ModelFileError::Invalid { .. }), "{reason}: {e}");
+        assert!(e.to_string().contains(reason), "{reason}: {e}");
+    };
+    let with = |f: &dyn Fn(&mut decoder_core::decoders::kalman::KalmanModel)| {
+        let mut k = k.clone();
+        f(&mut k);
+        ModelFile {
+            decoder: DecoderModel::Kalman(k),
+            ..base.clone()
+        }
+    };
+    refused(
+        with(&|k| k.a.data[0] = f64::NAN),
+        "A has a value that is not finite",
+    );
+    refused(
+        with(&|k| k.h.data[3] = f64::INFINITY),
+        "H has a value that is not finite",
+    );
+    refused(
+        with(&|k| k.count_scale[2] = 0.0),
+        "count_scale of channel 2 is 0",
+    );
+    refused(
+        with(&|k| k.count_scale[1] = -1.0),
+        "count_scale of channel 1 is -1",
+    );
+    refused(
+        with(&|k| k.outputs = vec!["vel_q".into()]),
+        "\"vel_q\" is not a state component",
+    );
+    refused(with(&|k| k.x0.pop().map(|_| ()).unwrap()), "x0 has shape");
+
+    let session = small_kalman(6, 1, 0.5).1;
+    let w = decoder_core::fit::wiener::fit_wiener(&session, &Default::default()).unwrap();
+    let mut bad_w = w.clone();
+    bad_w.weights.cols -= 1;
+    refused(
+        ModelFile {
+            decoder: DecoderModel::Wiener(bad_w),
+            ..base.clone()
+        },
+        "weights are 2×",
+    );
+    let mut nan_w = w;
+    nan_w.mean_counts[0] = f64::NAN;
+    refused(
+        ModelFile {
+            decoder: DecoderModel::Wiener(nan_w),
+            ..base.clone()
+        },
+        "not finite",
+    );
+
+    let opts = decoder_core::fit::point_process::PointProcessFitOptions {
+        history: None,
+        ..Default::default()
+    };
+    let (pp, _) = decoder_core::fit::point_process::fit_point_process(&session, &opts).unwrap();
+    let mut nan_pp = pp.clone();
+    let c = nan_pp.channels.iter().position(Option::is_some).unwrap();
+    nan_pp.channels[c].as_mut().unwrap().b0 = f64::NAN;
+    refused(
+        ModelFile {
+            decoder: DecoderModel::PointProcess(nan_pp),
+            ..base.clone()
+        },
+        &format!("channel {c}: a coefficient is not finite"),
+    );
+    let mut no_out = pp;
+    no_out.outputs.clear();
+    refused(
+        ModelFile {
+            decoder: DecoderModel::PointProcess(no_out),
+            ..base.clone()
+        },
+        "outputs 0 velocities",
+    );
+}
+
+#[test]
+fn a_bin_width_outside_a_tenth_of_a_millisecond_to_ten_seconds_is_refused() {
+    let good = small_model().to_bytes();
+    // The payload opens with the bin width as an f64 of milliseconds.
+    for ms in [0.05, 10_001.0, 0.0, -20.0, f64::NAN, 16.66666] {
+        let mut payload = good[24..].to_vec();
+        payload[..8].copy_from_slice(&ms.to_le_bytes());
+        let e = ModelFile::from_bytes(&framed(&payload), "m").unwrap_err();
+        assert!(
+            matches!(e, ModelFileError::Decode { .. }) && e.to_string().contains("bin width"),
+            "{ms}: {e}"
+        );
+    }
+    let mut payload = good[24..].to_vec();
+    payload[..8].copy_from_slice(&0.1f64.to_le_bytes());
+    assert!(ModelFile::from_bytes(&framed(&payload), "m").is_ok());
+}

@@ -53,6 +53,14 @@ impl DecoderModel {
     /// enters: when a model file is read, and when a fit has built it. The
     /// filters are built from checked models and do not check again.
     pub fn validate(&self) -> Result<(), ModelError> {
+        let n = self.n_channels();
+        if n == 0 || n > crate::formats::packet::MAX_CHANNELS {
+            return Err(ModelError::Channels { n });
+        }
+        let d = self.outputs().len();
+        if d == 0 || d > crate::formats::packet::MAX_DIMS {
+            return Err(ModelError::Outputs { d });
+        }
         match self {
             DecoderModel::Kalman(m) => m.validate()?,
             DecoderModel::Wiener(m) => m.validate()?,
@@ -65,6 +73,10 @@ impl DecoderModel {
 /// Why a decoder model cannot be run.
 #[derive(Clone, Debug, PartialEq, thiserror::Error)]
 pub enum ModelError {
+    #[error("the model has {n} channels; a bin packet carries 1 to 16384")]
+    Channels { n: usize },
+    #[error("the model outputs {d} velocities; a velocity packet carries 1 to 8")]
+    Outputs { d: usize },
     #[error("kalman model: {0}")]
     Kalman(#[from] KalmanError),
     #[error("wiener model: {0}")]

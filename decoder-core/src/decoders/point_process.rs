@@ -68,6 +68,17 @@ pub enum PointProcessError {
         "channel {channel}: its coefficient lengths do not fit the state and the history basis"
     )]
     Coefficients { channel: usize },
+    #[error("channel {channel}: a coefficient is not finite")]
+    NonFinite { channel: usize },
+    #[error(
+        "the history basis is {rows}×{cols} for {n_basis} functions over {span} bins, or not finite"
+    )]
+    Basis {
+        rows: usize,
+        cols: usize,
+        n_basis: usize,
+        span: usize,
+    },
     #[error("channel {channel}: coupling has {got} weights for {want} channels")]
     Coupling {
         channel: usize,
@@ -114,11 +125,36 @@ impl PointProcessModel {
                 d,
             });
         }
+        if let Some(b) = &self.history_basis {
+            let w = &b.weights;
+            if b.n_basis == 0
+                || b.span_bins == 0
+                || b.span_bins > 100_000
+                || w.rows != b.n_basis
+                || w.cols != b.span_bins
+                || w.data.len() != w.rows * w.cols
+                || !w.is_finite()
+            {
+                return Err(PointProcessError::Basis {
+                    rows: w.rows,
+                    cols: w.cols,
+                    n_basis: b.n_basis,
+                    span: b.span_bins,
+                });
+            }
+        }
         let span = self.history_basis.as_ref().map_or(0, |b| b.n_basis);
         for (c, ch) in self.channels.iter().enumerate() {
             let Some(ch) = ch else { continue };
             if ch.beta.len() != d || (!ch.history.is_empty() && ch.history.len() != span) {
                 return Err(PointProcessError::Coefficients { channel: c });
+            }
+            let finite = ch.b0.is_finite()
+                && [&ch.beta, &ch.history, &ch.coupling]
+                    .iter()
+                    .all(|v| v.iter().all(|x| x.is_finite()));
+            if !finite {
+                return Err(PointProcessError::NonFinite { channel: c });
             }
             if !ch.coupling.is_empty() && ch.coupling.len() != self.channels.len() {
                 return Err(PointProcessError::Coupling {

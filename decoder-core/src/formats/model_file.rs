@@ -171,6 +171,18 @@ pub enum ModelFileError {
         stored: u32,
         computed: u32,
     },
+    #[error(
+        "{path}: not a regular file (a device, a pipe or a directory); pass the model file replay-tool train wrote"
+    )]
+    NotAFile { path: String },
+    #[error(
+        "{path}: {size} bytes, more than any model file (the header and at most 1 GiB of payload); pass the model file replay-tool train wrote"
+    )]
+    TooLarge { path: String, size: u64 },
+    #[error(
+        "{path}: {extra} bytes after the model's payload; the file was appended to or is not one model, copy it again"
+    )]
+    TrailingBytes { path: String, extra: usize },
     #[error("{path}: payload does not decode: {problem}")]
     Decode { path: String, problem: String },
     #[error("{path}: invalid model: {source}; retrain it, or copy the file again")]
@@ -229,6 +241,12 @@ impl ModelFile {
                 want: HEADER_LEN.saturating_add(len),
             });
         }
+        if bytes.len() > HEADER_LEN + len {
+            return Err(ModelFileError::TrailingBytes {
+                path: path_s,
+                extra: bytes.len() - HEADER_LEN - len,
+            });
+        }
         let payload = &bytes[HEADER_LEN..HEADER_LEN + len];
         let computed = crc32fast::hash(payload);
         if computed != stored {
@@ -263,12 +281,39 @@ impl ModelFile {
     }
 
     pub fn read(path: &Path) -> Result<ModelFile, ModelFileError> {
-        let bytes = std::fs::read(path).map_err(|source| ModelFileError::Io {
-            path: path.display().to_string(),
-            source,
-        })?;
+        let bytes = read_model_bytes(path)?;
         ModelFile::from_bytes(&bytes, &path.display().to_string())
     }
+}
+
+/// The bytes of a model file, read only when they can be one: a regular
+/// file no larger than a header and the largest payload, so a device
+/// (`/dev/zero`), a pipe or a huge file is refused at once, before any
+/// read. The header is then checked by [`ModelFile::from_bytes`].
+pub fn read_model_bytes(path: &Path) -> Result<Vec<u8>, ModelFileError> {
+    let path_s = path.display().to_string();
+    let io = |source| ModelFileError::Io {
+        path: path_s.clone(),
+        source,
+    };
+    let meta = std::fs::metadata(path).map_err(io)?;
+    if !meta.is_file() {
+        return Err(ModelFileError::NotAFile { path: path_s });
+    }
+    if meta.len() > (HEADER_LEN + MAX_PAYLOAD) as u64 {
+        return Err(ModelFileError::TooLarge {
+            path: path_s,
+            size: meta.len(),
+        });
+    }
+    use std::io::Read;
+    let file = std::fs::File::open(path).map_err(io)?;
+    // Never more than the limit, even if the file grows while it is read.
+    let mut bytes = Vec::with_capacity(meta.len() as usize);
+    file.take((HEADER_LEN + MAX_PAYLOAD + 1) as u64)
+        .read_to_end(&mut bytes)
+        .map_err(io)?;
+    Ok(bytes)
 }
 
 /// The PROTOCOL.md §4 JSON export.

@@ -246,6 +246,15 @@ pub fn run(args: &Args) -> Result<()> {
     let folds = if args.no_cv { None } else { Some(cfg.folds) };
     let model = train_model(&session, &spec, folds)
         .with_context(|| format!("training on {}", source.display()))?;
+    // Never write a file its readers would refuse.
+    ModelFile::from_bytes(&model.to_bytes(), &args.out.display().to_string()).with_context(
+        || {
+            format!(
+                "the model trained on {} cannot be written",
+                source.display()
+            )
+        },
+    )?;
     write_atomic(&args.out, &model.to_bytes())?;
     println!(
         "wrote {} ({} decoder, {} channels, {} ms bins)",

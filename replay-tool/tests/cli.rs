@@ -540,6 +540,41 @@ fn verbs_refuse_the_wrong_kind_of_input_and_name_the_flag() {
     }
 }
 
+/// Damage in the middle fails the check (exit 1, with its offset); a torn
+/// tail passes what it holds and says the check is partial.
+#[test]
+fn verify_tells_a_damaged_middle_from_a_torn_tail() {
+    use decoder_core::formats::session_log::LogReader;
+    let dir = tempfile::tempdir().unwrap();
+    let log = recorded_session(dir.path());
+    let bytes = std::fs::read(&log).unwrap();
+    let mut reader = LogReader::open(&log).unwrap();
+    let mut starts = vec![reader.offset()];
+    while reader.next_record().is_some() {
+        starts.push(reader.offset());
+    }
+    let middle = starts[starts.len() / 2] as usize;
+    let mut damaged = bytes.clone();
+    let past_the_end = (bytes.len() as u32).to_le_bytes();
+    damaged[middle..middle + 4].copy_from_slice(&past_the_end);
+    let damaged_path = dir.path().join("damaged.vdlog");
+    std::fs::write(&damaged_path, &damaged).unwrap();
+    let err = fails_with(&["verify", p(&damaged_path)], 1);
+    assert!(
+        err.contains(&format!("at byte {middle}")) && err.contains("intact record follows"),
+        "{err}"
+    );
+
+    let last = starts[starts.len() - 2] as usize;
+    let torn_path = dir.path().join("torn.vdlog");
+    std::fs::write(&torn_path, &bytes[..last + 5]).unwrap();
+    let out = ok(&["verify", p(&torn_path)]);
+    assert!(
+        out.contains("a partial check") && out.contains("the last 5 bytes"),
+        "{out}"
+    );
+}
+
 #[test]
 fn verify_passes_on_a_recording_and_names_the_seq_of_a_changed_byte() {
     use decoder_core::formats::session_log::{LogReader, LogRecord};

@@ -134,6 +134,10 @@ pub enum SessionLogError {
     NotALog { path: PathBuf },
     #[error("{path}: session log format version {version}; this build reads version 1")]
     Version { path: PathBuf, version: u32 },
+    #[error(
+        "{path}: the log ends inside its header ({bytes} bytes): the daemon stopped before the header was written, and the file holds no session"
+    )]
+    CutInHeader { path: PathBuf, bytes: u64 },
     #[error("{path}: the log header is damaged ({problem}); the file cannot be read")]
     Header { path: PathBuf, problem: String },
 }
@@ -237,6 +241,15 @@ impl LogReader {
         let file_len = file.metadata().map_err(io)?.len();
         let mut input = BufReader::with_capacity(1 << 16, file);
         let mut fixed = [0u8; FILE_HEADER_LEN];
+        if file_len >= 8 && file_len < FILE_HEADER_LEN as u64 {
+            let mut magic = [0u8; 8];
+            if input.read_exact(&mut magic).is_ok() && &magic == LOG_MAGIC {
+                return Err(SessionLogError::CutInHeader {
+                    path: path.to_path_buf(),
+                    bytes: file_len,
+                });
+            }
+        }
         if input.read_exact(&mut fixed).is_err() || &fixed[0..8] != LOG_MAGIC {
             return Err(SessionLogError::NotALog {
                 path: path.to_path_buf(),
@@ -255,8 +268,14 @@ impl LogReader {
         };
         let len = u32::from_le_bytes(fixed[12..16].try_into().expect("4 bytes")) as usize;
         let crc = u32::from_le_bytes(fixed[16..20].try_into().expect("4 bytes"));
-        if len > MAX_HEADER_LEN || (FILE_HEADER_LEN + len) as u64 > file_len {
+        if len > MAX_HEADER_LEN {
             return Err(header_err(format!("declared length {len} is impossible")));
+        }
+        if (FILE_HEADER_LEN + len) as u64 > file_len {
+            return Err(SessionLogError::CutInHeader {
+                path: path.to_path_buf(),
+                bytes: file_len,
+            });
         }
         let mut json = vec![0u8; len];
         input.read_exact(&mut json).map_err(io)?;
@@ -327,7 +346,19 @@ impl LogReader {
         let crc = u32::from_le_bytes(prefix[4..8].try_into().expect("4 bytes"));
         let total = (RECORD_PREFIX_LEN + len) as u64;
         if total > remaining {
-            self.end = Some(torn(self));
+            // A crash while writing the last batch cuts its last record
+            // short; a damaged length in the middle looks the same, except
+            // that intact records follow it.
+            self.end = Some(match self.intact_record_after() {
+                Some(next) => LogEnd::Corrupt {
+                    offset: self.offset,
+                    problem: format!(
+                        "record length {len} runs past the end of the file, yet an intact record follows at byte {next}"
+                    ),
+                    seq: None,
+                },
+                None => torn(self),
+            });
             return None;
         }
         if !(RECORD_FIXED_LEN..=MAX_RECORD_LEN).contains(&len) {
@@ -375,6 +406,46 @@ impl LogReader {
         }
     }
 }
+
+impl LogReader {
+    /// The offset of the first intact record after the one at `offset`,
+    /// within [`RESYNC_WINDOW`] bytes: a plausible length, a known kind, a
+    /// time within a year of the log's opening, and a matching checksum.
+    fn intact_record_after(&self) -> Option<u64> {
+        use std::io::{Read, Seek, SeekFrom};
+        let start = self.offset + 1;
+        let end = self.file_len.min(start + RESYNC_WINDOW);
+        let mut file = File::open(&self.path).ok()?;
+        file.seek(SeekFrom::Start(start)).ok()?;
+        let mut buf = Vec::with_capacity((end - start) as usize);
+        file.take(end - start).read_to_end(&mut buf).ok()?;
+        let opened = self.header.opened_ns;
+        let earliest = opened.saturating_sub(1_000_000_000);
+        let latest = opened.saturating_add(366 * 86_400 * 1_000_000_000);
+        let fixed = RECORD_PREFIX_LEN + RECORD_FIXED_LEN;
+        for p in 0..buf.len().saturating_sub(fixed) {
+            let len = u32::from_le_bytes(buf[p..p + 4].try_into().expect("4 bytes")) as usize;
+            if !(RECORD_FIXED_LEN..=MAX_RECORD_LEN).contains(&len)
+                || p + RECORD_PREFIX_LEN + len > buf.len()
+                || RecordKind::from_u8(buf[p + 8]).is_none()
+            {
+                continue;
+            }
+            let time = u64::from_le_bytes(buf[p + 9..p + 17].try_into().expect("8 bytes"));
+            if !(earliest..=latest).contains(&time) {
+                continue;
+            }
+            let crc = u32::from_le_bytes(buf[p + 4..p + 8].try_into().expect("4 bytes"));
+            if crc32fast::hash(&buf[p + 8..p + 8 + len]) == crc {
+                return Some(start + p as u64);
+            }
+        }
+        None
+    }
+}
+
+/// How far past a damaged length the reader looks for an intact record.
+const RESYNC_WINDOW: u64 = 16 << 20;
 
 /// The seq a datagram or sent-packet record carries (both packet layouts
 /// have it at byte 8), read without trusting the checksum.

@@ -49,15 +49,22 @@ pub fn run(args: &Args) -> Result<()> {
         None => "bit for bit".to_string(),
         Some(t) => format!("within relative tolerance {t:e}"),
     };
-    println!(
-        "verified {}: {} slots, every estimate, command, state and flag reproduced {how}",
-        args.log.display(),
-        v.slots
-    );
-    if let Some(LogEnd::TornTail { offset, bytes }) = v.end {
-        println!(
-            "(the log ends in a torn tail at byte {offset}: {bytes} bytes after the last intact record, not a whole record, were not checked)"
-        );
+    match v.end {
+        Some(LogEnd::TornTail { offset, bytes }) => println!(
+            "verified {} up to a torn tail — a partial check: {} slots before byte {offset} reproduced {how}; the last {bytes} bytes, a record cut short when the daemon stopped, were dropped unchecked",
+            args.log.display(),
+            v.slots
+        ),
+        Some(LogEnd::Unclosed) => println!(
+            "verified {}: {} slots reproduced {how}; the log has no end record (the daemon was killed or is still running), so this is every slot it holds",
+            args.log.display(),
+            v.slots
+        ),
+        _ => println!(
+            "verified {}: {} slots, every estimate, command, state and flag reproduced {how}",
+            args.log.display(),
+            v.slots
+        ),
     }
     Ok(())
 }

@@ -254,11 +254,15 @@ impl Check<'_> {
         Ok(addr)
     }
 
-    fn positive(&self, key: &'static str, v: f64) -> Result<f64, ConfigError> {
-        if v.is_finite() && v > 0.0 {
+    /// A finite number above 0 and at most `hi`.
+    fn positive(&self, key: &'static str, v: f64, hi: f64) -> Result<f64, ConfigError> {
+        if v.is_finite() && v > 0.0 && v <= hi {
             Ok(v)
         } else {
-            Err(self.err(key, format!("{v} must be a finite number above 0")))
+            Err(self.err(
+                key,
+                format!("{v} must be a finite number above 0 and at most {hi}"),
+            ))
         }
     }
 
@@ -356,8 +360,16 @@ impl Config {
             .or(raw.control.socket)
             .unwrap_or_else(|| PathBuf::from(DEFAULT_SOCKET));
         let safety = SafetyConfig {
-            max_speed: c.positive("safety.max_speed", raw.safety.max_speed.unwrap_or(50.0))?,
-            max_accel: c.positive("safety.max_accel", raw.safety.max_accel.unwrap_or(500.0))?,
+            max_speed: c.positive(
+                "safety.max_speed",
+                raw.safety.max_speed.unwrap_or(50.0),
+                10_000.0,
+            )?,
+            max_accel: c.positive(
+                "safety.max_accel",
+                raw.safety.max_accel.unwrap_or(500.0),
+                1_000_000.0,
+            )?,
             max_coast_bins: c.count(
                 "safety.max_coast_bins",
                 raw.safety.max_coast_bins.unwrap_or(5),
@@ -389,17 +401,23 @@ impl Config {
             0.0,
             0.5,
         )?;
-        let summary_interval = Duration::from_secs_f64(c.positive(
+        let summary_interval = Duration::from_secs_f64(c.within(
             "monitor.summary_interval_s",
             raw.monitor.summary_interval_s.unwrap_or(5.0),
+            0.1,
+            3600.0,
         )?);
-        let dead_channel_s = c.positive(
+        let dead_channel_s = c.within(
             "monitor.dead_channel_s",
             raw.monitor.dead_channel_s.unwrap_or(30.0),
+            0.1,
+            86_400.0,
         )?;
-        let saturation_rate_hz = c.positive(
+        let saturation_rate_hz = c.within(
             "monitor.saturation_rate_hz",
             raw.monitor.saturation_rate_hz.unwrap_or(1000.0),
+            1.0,
+            100_000.0,
         )?;
         let n_cpus = std::thread::available_parallelism().map_or(1, |n| n.get()) as i64;
         let cpu = match raw.realtime.cpu {
@@ -509,6 +527,71 @@ mod tests {
     fn missing_model_names_the_key() {
         let e = resolve("", &Overrides::default()).unwrap_err().to_string();
         assert!(e.contains("model.path"), "{e}");
+    }
+
+    /// Every numeric key, its documented range in config/daemon.toml, and
+    /// values outside it: each is refused at start naming the key, and
+    /// none panics (a huge summary interval once overflowed a Duration, a
+    /// tiny one a timer).
+    #[test]
+    fn every_numeric_key_is_checked_against_its_range() {
+        let table: &[(&str, &str, &str, &[&str])] = &[
+            ("recording", "buffer_bins", "1024", &["15", "1048577", "-1"]),
+            (
+                "safety",
+                "max_speed",
+                "50.0",
+                &["0.0", "-1.0", "1e300", "nan", "inf"],
+            ),
+            (
+                "safety",
+                "max_accel",
+                "500.0",
+                &["0.0", "-5.0", "1e7", "nan", "-inf"],
+            ),
+            ("safety", "max_coast_bins", "5", &["-1", "1001"]),
+            ("safety", "coast_decay", "0.8", &["-0.1", "1.5", "nan"]),
+            (
+                "timing",
+                "deadline_slack_bins",
+                "0.5",
+                &["0.0", "0.01", "5.0", "nan", "inf"],
+            ),
+            ("timing", "reorder_window_bins", "64", &["0", "4097", "-3"]),
+            ("timing", "clock_tracking", "0.01", &["-0.01", "0.6", "nan"]),
+            (
+                "monitor",
+                "summary_interval_s",
+                "5.0",
+                &["1e20", "1e-10", "0.0", "-1.0", "nan", "inf"],
+            ),
+            ("monitor", "dead_channel_s", "30.0", &["0.0", "1e9", "nan"]),
+            (
+                "monitor",
+                "saturation_rate_hz",
+                "1000.0",
+                &["0.5", "1e6", "nan", "-inf"],
+            ),
+            ("realtime", "fifo_priority", "0", &["-1", "100"]),
+        ];
+        for (section, key, good, bads) in table {
+            let ok = format!("[{section}]\n{key} = {good}\n");
+            assert!(
+                resolve(&ok, &with_model()).is_ok(),
+                "{section}.{key} = {good}"
+            );
+            for bad in *bads {
+                let text = format!("[{section}]\n{key} = {bad}\n");
+                let e = resolve(&text, &with_model())
+                    .err()
+                    .unwrap_or_else(|| panic!("{section}.{key} = {bad} was accepted"))
+                    .to_string();
+                assert!(
+                    e.contains(&format!("{section}.{key}")),
+                    "{section}.{key} = {bad}: {e}"
+                );
+            }
+        }
     }
 
     #[test]

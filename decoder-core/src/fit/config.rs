@@ -106,7 +106,7 @@ impl TrainConfig {
         })?;
         let mut cfg = TrainConfig::default();
         if let Some(lag) = raw.lag_bins {
-            let lag = non_negative(lag, "lag_bins").map_err(err)?;
+            let lag = bounded(lag, "lag_bins", 0, MAX_LAG_BINS).map_err(err)?;
             cfg.kalman.lag_bins = lag;
             cfg.wiener.lag_bins = lag;
         }
@@ -117,13 +117,7 @@ impl TrainConfig {
             cfg.point_process.ridge = ridge;
         }
         if let Some(folds) = raw.folds {
-            let folds = non_negative(folds, "folds").map_err(err)?;
-            if folds < 2 {
-                return Err(err(format!(
-                    "key folds is {folds}; cross-validation needs at least 2"
-                )));
-            }
-            cfg.folds = folds;
+            cfg.folds = bounded(folds, "folds", 2, 100).map_err(err)?;
         }
         let k = raw.kalman;
         if let Some(state) = k.state {
@@ -182,18 +176,17 @@ impl TrainConfig {
             cfg.kalman.physical_coupling = p;
         }
         let tolerance = k.steady_state_tolerance.unwrap_or(DEFAULT_TOLERANCE);
-        if !(tolerance.is_finite() && tolerance > 0.0) {
+        if !(tolerance.is_finite() && tolerance > 0.0 && tolerance <= 1.0) {
             return Err(err(format!(
-                "key kalman.steady_state_tolerance is {tolerance}; it must be above zero"
+                "key kalman.steady_state_tolerance is {tolerance}; it must be above 0 and at most 1"
             )));
         }
         let max_iterations = match k.steady_state_max_iterations {
-            Some(v) => non_negative(v, "kalman.steady_state_max_iterations").map_err(err)?,
+            Some(v) => {
+                bounded(v, "kalman.steady_state_max_iterations", 1, 10_000_000).map_err(err)?
+            }
             None => DEFAULT_MAX_ITERATIONS,
         };
-        if max_iterations == 0 {
-            return Err(err("key kalman.steady_state_max_iterations is 0".into()));
-        }
         if k.steady_state.unwrap_or(false) {
             cfg.kalman.steady_state = Some(SteadyStateOptions {
                 tolerance,
@@ -201,13 +194,7 @@ impl TrainConfig {
             });
         }
         if let Some(taps) = raw.wiener.taps {
-            let taps = non_negative(taps, "wiener.taps").map_err(err)?;
-            if taps == 0 {
-                return Err(err(
-                    "key wiener.taps is 0; the filter needs at least the current bin".into(),
-                ));
-            }
-            cfg.wiener.taps = taps;
+            cfg.wiener.taps = bounded(taps, "wiener.taps", 1, 100).map_err(err)?;
         }
         cfg.wiener.outputs = raw
             .wiener
@@ -245,10 +232,11 @@ impl TrainConfig {
             .clone()
             .expect("default has history");
         if let Some(n) = pp.history_basis {
-            history.n_basis = non_negative(n, "point_process.history_basis").map_err(err)?;
+            history.n_basis = bounded(n, "point_process.history_basis", 2, 64).map_err(err)?;
         }
         if let Some(n) = pp.history_span_bins {
-            history.span_bins = non_negative(n, "point_process.history_span_bins").map_err(err)?;
+            history.span_bins =
+                bounded(n, "point_process.history_span_bins", 2, 10_000).map_err(err)?;
         }
         if history.n_basis < 2 || history.span_bins < history.n_basis {
             return Err(err(format!(
@@ -261,16 +249,13 @@ impl TrainConfig {
             cfg.point_process.coupling = c;
         }
         if let Some(n) = pp.max_iterations {
-            let n = non_negative(n, "point_process.max_iterations").map_err(err)?;
-            if n == 0 {
-                return Err(err("key point_process.max_iterations is 0".into()));
-            }
-            cfg.point_process.max_iterations = n;
+            cfg.point_process.max_iterations =
+                bounded(n, "point_process.max_iterations", 1, 10_000).map_err(err)?;
         }
         if let Some(t) = pp.tolerance {
-            if !(t.is_finite() && t > 0.0) {
+            if !(t.is_finite() && t > 0.0 && t <= 1.0) {
                 return Err(err(format!(
-                    "key point_process.tolerance is {t}; it must be above zero"
+                    "key point_process.tolerance is {t}; it must be above 0 and at most 1"
                 )));
             }
             cfg.point_process.tolerance = t;
@@ -279,9 +264,15 @@ impl TrainConfig {
     }
 
     /// Command-line overrides, validated the same way.
-    pub fn override_lag(&mut self, lag: usize) {
+    pub fn override_lag(&mut self, lag: usize) -> Result<(), ConfigError> {
+        let lag =
+            bounded(lag as i64, "lag_bins", 0, MAX_LAG_BINS).map_err(|message| ConfigError {
+                source_name: "--lag".into(),
+                message: message.replace("key lag_bins", "--lag"),
+            })?;
         self.kalman.lag_bins = lag;
         self.wiener.lag_bins = lag;
+        Ok(())
     }
 
     pub fn override_ridge(&mut self, ridge: f64) -> Result<(), ConfigError> {
@@ -296,16 +287,27 @@ impl TrainConfig {
     }
 }
 
-fn non_negative(v: i64, key: &str) -> Result<usize, String> {
-    usize::try_from(v).map_err(|_| format!("key {key} is {v}; it must be zero or more"))
+/// The longest lag between counts and kinematics: 1000 bins (20 s at
+/// 20 ms, far beyond the 50–150 ms by which motor cortex leads movement).
+const MAX_LAG_BINS: i64 = 1000;
+
+/// A whole number in `lo..=hi`.
+fn bounded(v: i64, key: &str, lo: i64, hi: i64) -> Result<usize, String> {
+    if (lo..=hi).contains(&v) {
+        Ok(v as usize)
+    } else {
+        Err(format!(
+            "key {key} is {v}; it must be a whole number from {lo} to {hi}"
+        ))
+    }
 }
 
 fn check_ridge(ridge: f64) -> Result<(), String> {
-    if ridge.is_finite() && ridge >= 0.0 {
+    if ridge.is_finite() && (0.0..=1e12).contains(&ridge) {
         Ok(())
     } else {
         Err(format!(
-            "ridge is {ridge}; it must be zero (no penalty) or more"
+            "ridge is {ridge}; it must be zero (no penalty) or more, at most 1e12"
         ))
     }
 }
@@ -313,6 +315,56 @@ fn check_ridge(ridge: f64) -> Result<(), String> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Every numeric key of config/train.toml, outside its documented
+    /// range, is refused naming the key.
+    #[test]
+    fn every_numeric_key_is_checked_against_its_range() {
+        let table: &[(&str, &str, &[&str])] = &[
+            ("", "lag_bins", &["-1", "1001"]),
+            ("", "ridge", &["-1.0", "nan", "inf", "1e13"]),
+            ("", "folds", &["1", "0", "101"]),
+            (
+                "kalman",
+                "steady_state_tolerance",
+                &["0.0", "-1e-9", "2.0", "nan"],
+            ),
+            (
+                "kalman",
+                "steady_state_max_iterations",
+                &["0", "-4", "20000000"],
+            ),
+            ("wiener", "taps", &["0", "101", "-1"]),
+            ("point_process", "history_basis", &["1", "65"]),
+            ("point_process", "history_span_bins", &["1", "10001"]),
+            ("point_process", "max_iterations", &["0", "10001"]),
+            ("point_process", "tolerance", &["0.0", "1.5", "nan", "-inf"]),
+        ];
+        for (section, key, bads) in table {
+            let name = if section.is_empty() {
+                key.to_string()
+            } else {
+                format!("{section}.{key}")
+            };
+            for bad in *bads {
+                let text = if section.is_empty() {
+                    format!("{key} = {bad}\n")
+                } else {
+                    format!("[{section}]\n{key} = {bad}\n")
+                };
+                let e = TrainConfig::from_toml(&text, "train.toml")
+                    .err()
+                    .unwrap_or_else(|| panic!("{name} = {bad} was accepted"))
+                    .to_string();
+                assert!(
+                    e.contains(&name) || (*key == "ridge" && e.contains("ridge")),
+                    "{name} = {bad}: {e}"
+                );
+            }
+        }
+        let example = include_str!("../../../config/train.toml");
+        assert!(TrainConfig::from_toml(example, "config/train.toml").is_ok());
+    }
 
     #[test]
     fn empty_file_gives_defaults() {

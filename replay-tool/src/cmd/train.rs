@@ -77,7 +77,7 @@ pub fn config_with_overrides(
 ) -> Result<TrainConfig> {
     let mut cfg = load_train_config(config)?;
     if let Some(lag) = lag {
-        cfg.override_lag(lag);
+        cfg.override_lag(lag)?;
     }
     if let Some(ridge) = ridge {
         cfg.override_ridge(ridge)?;

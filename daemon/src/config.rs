@@ -16,7 +16,28 @@ use serde::Deserialize;
 
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:27400";
 pub const DEFAULT_ACTUATOR: &str = "127.0.0.1:27401";
-pub const DEFAULT_SOCKET: &str = "/tmp/decoderd.sock";
+/// The control socket's file name in the default directory.
+pub const SOCKET_NAME: &str = "decoderd.sock";
+
+/// The default control socket: in the user's runtime directory
+/// (`$XDG_RUNTIME_DIR`, else `/run/user/<uid>`), which only that user can
+/// write, never in world-writable `/tmp`; without either, in
+/// `$HOME/.decoderd/`.
+pub fn default_socket() -> PathBuf {
+    if let Some(dir) = std::env::var_os("XDG_RUNTIME_DIR").map(PathBuf::from) {
+        if dir.is_absolute() && dir.is_dir() {
+            return dir.join(SOCKET_NAME);
+        }
+    }
+    // SAFETY: getuid has no preconditions and cannot fail.
+    let uid = unsafe { libc::getuid() };
+    let run = PathBuf::from(format!("/run/user/{uid}"));
+    if run.is_dir() {
+        return run.join(SOCKET_NAME);
+    }
+    let home = std::env::var_os("HOME").map_or_else(|| PathBuf::from("."), PathBuf::from);
+    home.join(".decoderd").join(SOCKET_NAME)
+}
 
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -358,7 +379,7 @@ impl Config {
             .socket
             .clone()
             .or(raw.control.socket)
-            .unwrap_or_else(|| PathBuf::from(DEFAULT_SOCKET));
+            .unwrap_or_else(default_socket);
         let safety = SafetyConfig {
             max_speed: c.positive(
                 "safety.max_speed",
@@ -533,6 +554,14 @@ mod tests {
     /// values outside it: each is refused at start naming the key, and
     /// none panics (a huge summary interval once overflowed a Duration, a
     /// tiny one a timer).
+    #[test]
+    fn the_default_socket_is_not_in_a_world_writable_directory() {
+        let p = default_socket();
+        assert!(p.is_absolute() || p.starts_with("."), "{}", p.display());
+        assert!(!p.starts_with("/tmp"), "{}", p.display());
+        assert_eq!(p.file_name().unwrap(), SOCKET_NAME);
+    }
+
     #[test]
     fn every_numeric_key_is_checked_against_its_range() {
         let table: &[(&str, &str, &str, &[&str])] = &[

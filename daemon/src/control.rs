@@ -73,10 +73,19 @@ pub fn read_model(path: &Path) -> Result<LoadedModel> {
     Ok(LoadedModel { file, bytes, info })
 }
 
-/// Binds the control socket with mode 0600. A stale socket file (no daemon
-/// behind it) is replaced; a live one is an error.
+/// Binds the control socket with mode 0600. Only a stale socket (a socket
+/// file nobody answers on) is removed first; a live socket, or anything
+/// that is not a socket (a user's file at a mistyped path), is left alone
+/// and is an error.
 pub fn bind(path: &Path) -> Result<std::os::unix::net::UnixListener> {
-    if path.exists() {
+    use std::os::unix::fs::{DirBuilderExt, FileTypeExt};
+    if let Ok(meta) = std::fs::symlink_metadata(path) {
+        if !meta.file_type().is_socket() {
+            bail!(
+                "{} exists and is not a socket; refusing to replace it (set control.socket to another path)",
+                path.display()
+            );
+        }
         if std::os::unix::net::UnixStream::connect(path).is_ok() {
             bail!(
                 "control socket {} is in use by another decoderd; stop it or set control.socket to another path",
@@ -85,6 +94,21 @@ pub fn bind(path: &Path) -> Result<std::os::unix::net::UnixListener> {
         }
         std::fs::remove_file(path)
             .with_context(|| format!("cannot remove stale control socket {}", path.display()))?;
+    } else if path
+        .file_name()
+        .is_some_and(|n| n == crate::config::SOCKET_NAME)
+    {
+        // The default's own directory ($HOME/.decoderd), private to the user.
+        if let Some(dir) = path
+            .parent()
+            .filter(|d| !d.as_os_str().is_empty() && !d.exists())
+        {
+            std::fs::DirBuilder::new()
+                .recursive(true)
+                .mode(0o700)
+                .create(dir)
+                .with_context(|| format!("cannot create {}", dir.display()))?;
+        }
     }
     let std_listener =
         crate::sys::with_umask(0o177, || std::os::unix::net::UnixListener::bind(path))
@@ -106,8 +130,21 @@ pub async fn serve(
             return;
         }
     };
+    let open = std::sync::Arc::new(tokio::sync::Semaphore::new(MAX_CONNECTIONS));
     loop {
-        let Ok((stream, _)) = listener.accept().await else {
+        let stream = match listener.accept().await {
+            Ok((stream, _)) => stream,
+            Err(e) => {
+                // Out of file descriptors under a flood: back off instead
+                // of spinning on accept.
+                tracing::warn!("control socket accept failed: {e}");
+                tokio::time::sleep(std::time::Duration::from_millis(50)).await;
+                continue;
+            }
+        };
+        let Ok(permit) = open.clone().try_acquire_owned() else {
+            // Over the limit: close at once; a real operator retries.
+            drop(stream);
             continue;
         };
         let to_rt = to_rt.clone();
@@ -115,9 +152,17 @@ pub async fn serve(
             if let Err(e) = handle(stream, to_rt, shape).await {
                 tracing::warn!("control connection: {e:#}");
             }
+            drop(permit);
         });
     }
 }
+
+/// Connections served at once; more are closed on accept.
+const MAX_CONNECTIONS: usize = 64;
+/// The longest request line accepted.
+const MAX_REQUEST_BYTES: u64 = 64 * 1024;
+/// A connection that has not sent its request line by then is closed.
+const IDLE_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(2);
 
 async fn handle(
     stream: UnixStream,
@@ -126,9 +171,14 @@ async fn handle(
 ) -> Result<()> {
     let (read, mut write) = stream.into_split();
     let mut line = String::new();
-    BufReader::new(read.take(1 << 16))
-        .read_line(&mut line)
-        .await?;
+    let mut reader = BufReader::new(read.take(MAX_REQUEST_BYTES));
+    let reading = reader.read_line(&mut line);
+    match tokio::time::timeout(IDLE_TIMEOUT, reading).await {
+        Ok(r) => {
+            r?;
+        }
+        Err(_) => bail!("no request within {} s; closed", IDLE_TIMEOUT.as_secs()),
+    }
     let reply = match serde_json::from_str::<Request>(&line) {
         Ok(request) => answer(request, &to_rt, shape).await,
         Err(e) => Reply {
@@ -152,13 +202,23 @@ fn fail(message: impl Into<String>) -> Reply {
 }
 
 const RT_GONE: &str = "the decode loop is not running (daemon shutting down)";
+const RT_BUSY: &str = "the decode loop has too many control requests queued; try again";
+
+/// Hands a request to the real-time thread without ever blocking the
+/// control runtime: a full queue is an answer, not a wait.
+fn to_rt_now(to_rt: &Sender<ControlRequest>, request: ControlRequest) -> Result<(), Reply> {
+    to_rt.try_send(request).map_err(|e| match e {
+        crossbeam_channel::TrySendError::Full(_) => fail(RT_BUSY),
+        crossbeam_channel::TrySendError::Disconnected(_) => fail(RT_GONE),
+    })
+}
 
 async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamShape) -> Reply {
     match request {
         Request::Status => {
             let (tx, rx) = oneshot::channel();
-            if to_rt.send(ControlRequest::Status(tx)).is_err() {
-                return fail(RT_GONE);
+            if let Err(reply) = to_rt_now(to_rt, ControlRequest::Status(tx)) {
+                return reply;
             }
             match rx.await {
                 Ok(mut s) => {
@@ -179,11 +239,8 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
                 _ => OperatorCommand::Halt,
             };
             let (reply, rx) = oneshot::channel();
-            if to_rt
-                .send(ControlRequest::Operator { command, reply })
-                .is_err()
-            {
-                return fail(RT_GONE);
+            if let Err(reply) = to_rt_now(to_rt, ControlRequest::Operator { command, reply }) {
+                return reply;
             }
             match rx.await {
                 Ok(Ok(m)) => {
@@ -218,8 +275,8 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
                 info: loaded.info,
                 reply,
             };
-            if to_rt.send(ControlRequest::Load(Box::new(request))).is_err() {
-                return fail(RT_GONE);
+            if let Err(reply) = to_rt_now(to_rt, ControlRequest::Load(Box::new(request))) {
+                return reply;
             }
             match rx.await {
                 Ok(Ok((seq, old))) => {

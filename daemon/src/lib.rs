@@ -110,7 +110,7 @@ impl RunArgs {
 #[derive(Debug, clap::Args)]
 pub struct CtlArgs {
     /// Control socket of the running daemon.
-    #[arg(long, default_value = config::DEFAULT_SOCKET)]
+    #[arg(long, default_value_os_t = config::default_socket())]
     pub socket: PathBuf,
     #[command(subcommand)]
     pub action: CtlAction,
@@ -387,7 +387,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
             "armed at start (--arm): bench use only; the command follows the decoder from the first bin"
         );
     } else {
-        let ctl = if config.control_socket == std::path::Path::new(config::DEFAULT_SOCKET) {
+        let ctl = if config.control_socket == config::default_socket() {
             "decoderd ctl".to_string()
         } else {
             format!("decoderd ctl --socket {}", config.control_socket.display())
@@ -539,7 +539,10 @@ async fn summary_lines(to_rt: crossbeam_channel::Sender<ControlRequest>, every: 
     loop {
         tick.tick().await;
         let (tx, rx) = tokio::sync::oneshot::channel();
-        if to_rt.send(ControlRequest::Status(tx)).is_err() {
+        // Never block the runtime on the decode loop: skip a line when busy.
+        if let Err(crossbeam_channel::TrySendError::Disconnected(_)) =
+            to_rt.try_send(ControlRequest::Status(tx))
+        {
             return;
         }
         if let Ok(s) = rx.await {

@@ -241,7 +241,7 @@ pub fn plural(n: u64, one: &str, many: &str) -> String {
 
 /// The `decoderd ctl` prefix that reaches this daemon.
 fn ctl_prefix(socket: &str) -> String {
-    if socket.is_empty() || socket == crate::config::DEFAULT_SOCKET {
+    if socket.is_empty() || std::path::Path::new(socket) == crate::config::default_socket() {
         "decoderd ctl".into()
     } else {
         format!("decoderd ctl --socket {socket}")

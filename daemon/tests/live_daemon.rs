@@ -435,6 +435,74 @@ fn ctl_status_json_is_the_status_object() {
     assert_eq!(s.state, "disarmed");
 }
 
+/// Garbage, oversized requests and hundreds of idle connections at once
+/// leave every slot answered, and the socket serves again once the idle
+/// ones time out.
+#[test]
+fn a_flood_of_control_connections_leaves_every_slot_answered() {
+    use std::io::{Read, Write};
+    use std::os::unix::net::UnixStream;
+    let d = Daemon::start(true, TEST_TIMING);
+    std::thread::scope(|scope| {
+        scope.spawn(|| d.stream(0..150, 0));
+        d.wait_for_seq(5);
+        let mut idle = Vec::new();
+        for _ in 0..300 {
+            if let Ok(c) = UnixStream::connect(&d.socket) {
+                idle.push(c);
+            }
+        }
+        for _ in 0..50 {
+            if let Ok(mut c) = UnixStream::connect(&d.socket) {
+                let _ = c.write_all(b"\x00\xffnot json at all\n");
+            }
+        }
+        // A request line longer than the limit is cut off and refused.
+        if let Ok(mut c) = UnixStream::connect(&d.socket) {
+            let _ = c.write_all(&vec![b'x'; 200_000]);
+            let mut reply = String::new();
+            let _ = c.read_to_string(&mut reply);
+            assert!(reply.is_empty() || reply.contains("bad request"), "{reply}");
+        }
+        assert!(idle.len() >= 100, "only {} connections opened", idle.len());
+        d.wait_for_seq(149);
+        drop(idle);
+    });
+    let p = d.wait_for_seq(149);
+    assert_eq!(seqs(&p[..150]), (0..150).collect::<Vec<_>>());
+    assert!(
+        p[..150].iter().all(|p| !missing(p)),
+        "a slot coasted under the flood"
+    );
+    let s = d.wait_for_status("the socket serving again", |s| {
+        s.counters.bins_decoded >= 150
+    });
+    assert_eq!(s.counters.bins_decoded, 150);
+}
+
+#[test]
+fn a_regular_file_at_the_socket_path_is_never_deleted() {
+    let dir = tempfile::tempdir().unwrap();
+    let precious = dir.path().join("notes.txt");
+    std::fs::write(&precious, "a user's file").unwrap();
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_decoderd"))
+        .arg("run")
+        .arg("--model")
+        .arg(&fixture().model)
+        .arg("--listen")
+        .arg("127.0.0.1:0")
+        .arg("--socket")
+        .arg(&precious)
+        .arg("--record")
+        .arg(dir.path().join("rec"))
+        .output()
+        .unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(err.contains("is not a socket"), "{err}");
+    assert_eq!(std::fs::read_to_string(&precious).unwrap(), "a user's file");
+}
+
 #[test]
 fn the_control_socket_is_private_to_its_user() {
     use std::os::unix::fs::PermissionsExt;

@@ -21,10 +21,14 @@ Writes, into the directory given as the only argument:
                           the design matrices used
   eden_*.npy              one point-process filter step (Eden et al. 2004)
                           written out in numpy from the equations
-  gof_*.npy, gof.json     time-rescaled intervals (Brown et al. 2002, with the
-                          discrete-time correction of Haslinger et al. 2010)
-                          of one channel under its statsmodels fit, and
-                          scipy.stats.kstest on them
+  gof_*.npy, gof.json     time-rescaled intervals (Brown et al. 2002; the
+                          intensity constant within a bin and each bin's
+                          spikes at uniform positions in it) of one channel
+                          under its statsmodels fit, and scipy.stats.kstest
+                          on them
+  gof_glm_*.npy           for three seeds: velocity, counts drawn from a
+                          known Poisson GLM at 20 ms bins, the true
+                          coefficients and statsmodels' fitted ones
   versions.txt            the versions that produced all of this
 
 The data are synthetic and seeded; nothing here is recorded data.
@@ -50,6 +54,9 @@ T = 2000          # bins
 N = 24            # channels
 BIN_MS = 20.0
 DT = BIN_MS / 1000.0
+GOF_SEEDS = (11, 12, 13)
+GOF_T = 4000      # bins per goodness-of-fit block
+GOF_N = 12        # channels per goodness-of-fit block
 
 
 def make_block(rng):
@@ -261,25 +268,25 @@ def main(out):
                         ("counts", n_obs), ("x_post", x_post), ("P_post", P_post)]:
         np.save(os.path.join(out, f"eden_{name}.npy"), value)
 
-    # Time rescaling of channel 0 under its velocity-only fit. A spike-free
-    # bin adds its expected count; a bin with m spikes is m sub-bins of
-    # lambda/m, each spike adding delta = -log(1 - r (1 - exp(-q))).
+    # Time rescaling of channel 0 under its velocity-only fit: the
+    # intensity is constant within a bin, and a bin's m spikes sit at m
+    # independent uniform positions inside it (sorted); an interval is the
+    # integrated intensity between consecutive spikes.
     c = GLM_CHANNELS[0]
     mu = lnp_mu[c]
     y = counts[:, c]
     r = r2.uniform(size=int(y.sum()))
-    intervals, since, seen, k = [], 0.0, False, 0
+    intervals, since, last, k = [], 0.0, None, 0
     for lam_t, m in zip(mu, y):
         if m == 0:
             since += lam_t
             continue
-        q = lam_t / m
-        for _ in range(m):
-            delta = -np.log(1.0 - r[k] * (1.0 - np.exp(-q)))
-            k += 1
-            if seen:
-                intervals.append(1.0 - np.exp(-(since + delta)))
-            seen, since = True, 0.0
+        for s_pos in np.sort(r[k:k + m]):
+            if last is not None:
+                intervals.append(1.0 - np.exp(-(since + lam_t * s_pos - last)))
+            last, since = lam_t * s_pos, 0.0
+        k += m
+        since += lam_t
     intervals = np.array(intervals)
     np.save(os.path.join(out, "gof_expected.npy"), mu)
     np.save(os.path.join(out, "gof_uniforms.npy"), r)
@@ -287,6 +294,31 @@ def main(out):
     with open(os.path.join(out, "gof.json"), "w") as f:
         ks = scipy.stats.kstest(intervals, "uniform")
         json.dump({"channel": c, "ks_statistic": float(ks.statistic), "n": len(intervals)}, f, indent=2)
+
+    # Counts drawn from a known log-linear Poisson GLM in velocity at 20 ms
+    # bins (often more than one spike a bin), for GOF_SEEDS seeds, with
+    # statsmodels' fit of each channel: the decoder's goodness of fit must
+    # pass correct models, under the true and under the fitted rates.
+    for seed in GOF_SEEDS:
+        g = np.random.default_rng(seed)
+        vel = np.zeros((GOF_T, 2))
+        for t in range(1, GOF_T):
+            vel[t] = 0.95 * vel[t - 1] + g.normal(0.0, 2.0, size=2)
+        b0 = np.log(g.uniform(20.0, 60.0, size=GOF_N) * DT)
+        pd = g.uniform(0.0, 2 * np.pi, size=GOF_N)
+        depth = g.uniform(0.02, 0.05, size=GOF_N)
+        beta = np.column_stack([depth * np.cos(pd), depth * np.sin(pd)])
+        true_coef = np.column_stack([b0, beta])
+        design = sm.add_constant(vel)
+        gcounts = g.poisson(np.exp(design @ true_coef.T)).astype(np.int16)
+        fitted = np.array([
+            sm.GLM(gcounts[:, ch].astype(np.float64), design, family=sm.families.Poisson()).fit().params
+            for ch in range(GOF_N)
+        ])
+        np.save(os.path.join(out, f"gof_glm_velocity_{seed}.npy"), vel)
+        np.save(os.path.join(out, f"gof_glm_counts_{seed}.npy"), gcounts)
+        np.save(os.path.join(out, f"gof_glm_true_coef_{seed}.npy"), true_coef)
+        np.save(os.path.join(out, f"gof_glm_fitted_coef_{seed}.npy"), fitted)
 
     with open(os.path.join(out, "versions.txt"), "w") as f:
         f.write(f"python {sys.version.split()[0]}\n")

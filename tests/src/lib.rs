@@ -31,6 +31,20 @@ pub fn fixture(name: &str) -> (Vec<usize>, Vec<f64>) {
     (shape, flat)
 }
 
+/// An int16 array of counts from the fixture directory, as u16.
+pub fn fixture_counts(name: &str) -> (Vec<usize>, Vec<u16>) {
+    let path = reference_dir().join(name);
+    let file = std::fs::File::open(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let arr = ArrayD::<i16>::read_npy(file).unwrap_or_else(|e| panic!("{}: {e}", path.display()));
+    let shape = arr.shape().to_vec();
+    let flat = arr
+        .as_standard_layout()
+        .iter()
+        .map(|&c| u16::try_from(c).expect("counts are not negative"))
+        .collect();
+    (shape, flat)
+}
+
 pub fn fixture_json(name: &str) -> serde_json::Value {
     let path = reference_dir().join(name);
     let text = std::fs::read_to_string(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()));

@@ -130,6 +130,15 @@ pub fn table(eval: &Evaluation) -> String {
 /// pass the time-rescaling KS test, and the information they carry.
 pub fn goodness_table(eval: &Evaluation) -> String {
     let mut s = String::new();
+    if let Some(g) = eval.goodness.first() {
+        let multi: u64 = g.channels.iter().map(|c| c.multi_spike_bins).sum();
+        let _ = writeln!(
+            s,
+            "goodness of fit (time rescaling, Brown et al. 2002): a channel whose model is right falls outside the 95 % KS band about 1 time in 20, so expect about {:.0} of {} outside by chance; {multi} held-out channel-bins held more than one spike (their spikes are placed at seeded uniform positions inside the bin, which keeps the test exact for a correct model)",
+            0.05 * g.channels.len() as f64,
+            g.channels.len()
+        );
+    }
     for g in &eval.goodness {
         let _ = writeln!(
             s,

@@ -171,7 +171,7 @@ mod tests {
     /// outside the band), and a flat rate of the same mean fails.
     #[test]
     fn poisson_counts_at_coarse_bins_pass_under_the_true_rate() {
-        use rand::{RngExt, SeedableRng};
+        use rand::SeedableRng;
         use rand_distr::{Distribution, Poisson};
         let mut within = 0;
         let channels = 20;

@@ -96,6 +96,23 @@ impl Rig {
         self.engine.on_datagram(at, &self.buf, &mut self.out);
     }
 
+    /// Bin `seq` arriving at `at`, stamped by the front end at `at`.
+    fn send_seq_at(&mut self, seq: u64, at: u64) {
+        let counts = self.session.bin_counts(seq as usize % self.session.n_bins);
+        packet::encode_bin(
+            &BinHeader {
+                channels: counts.len() as u16,
+                seq,
+                origin_ns: at,
+                bin_us: 20_000,
+                flags: 0,
+            },
+            counts,
+            &mut self.buf,
+        );
+        self.engine.on_datagram(at, &self.buf, &mut self.out);
+    }
+
     /// Time passes to just before bin `seq`'s nominal time.
     fn wait_until(&mut self, seq: u64) {
         self.engine.on_timeout(T0 + seq * BIN_NS - 1, &mut self.out);
@@ -402,4 +419,91 @@ fn dead_and_saturated_channels_are_reported() {
     let (dead, saturated) = engine.channel_health();
     assert_eq!(dead, vec![2]);
     assert_eq!(saturated, vec![5]);
+}
+
+/// Seqs run up to u64::MAX and wrap to 0: every slot is answered once, in
+/// order, from its counts (u64::MAX is a seq like any other, not a marker).
+#[test]
+fn a_stream_across_the_end_of_the_seq_range_is_decoded_in_order() {
+    let mut rig = Rig::new(true);
+    let first = u64::MAX - 9;
+    let seqs: Vec<u64> = (0..20).map(|i| first.wrapping_add(i)).collect();
+    for (i, &seq) in seqs.iter().enumerate() {
+        rig.send_seq_at(seq, T0 + i as u64 * BIN_NS + 100_000);
+    }
+    // A duplicate of the last seq before the wrap is a duplicate, not new.
+    rig.send_seq_at(u64::MAX, T0 + 20 * BIN_NS);
+    assert_eq!(rig.seqs(), seqs);
+    assert!(
+        rig.out
+            .packets
+            .iter()
+            .all(|p| p.flags & FLAG_BIN_MISSING == 0)
+    );
+    let c = rig.engine.counters();
+    assert_eq!((c.new_streams, c.bins_decoded), (0, 20), "{c:?}");
+    assert_eq!(c.bins_duplicate + c.bins_late, 1, "{c:?}");
+}
+
+/// A receive clock that steps backwards (a wrong timestamp, a VM pause
+/// undone) never answers a slot twice, never skips one, never panics.
+#[test]
+fn a_clock_that_goes_backwards_answers_each_slot_once() {
+    let mut rig = Rig::new(true);
+    for seq in 0..10 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    // Seq 10 stamped a second before the stream began, then time at zero.
+    rig.send_at(10, 1);
+    rig.engine.on_timeout(0, &mut rig.out);
+    for seq in 11..30 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    assert_eq!(rig.seqs(), (0..30).collect::<Vec<_>>());
+}
+
+/// A decoder that overflows puts no NaN or infinity in any field of the
+/// packets that leave: the estimate reads as zeros, the command is zero
+/// and the supervisor halts.
+#[test]
+fn a_numerical_fault_never_puts_a_non_finite_value_in_a_packet() {
+    use decoder_core::decoders::wiener::WienerModel;
+    let (_, session) = model();
+    let n = session.n_channels;
+    let mut weights = vec![1e308; 1 + n];
+    weights[0] = 0.0;
+    let wiener = WienerModel {
+        outputs: vec!["vel_x".into(), "vel_y".into()],
+        taps: 1,
+        n_channels: n,
+        weights: decoder_core::linalg::Mat {
+            rows: 2,
+            cols: 1 + n,
+            data: [weights.clone(), weights].concat(),
+        },
+        mean_counts: vec![1.0; n],
+    };
+    let m = ModelFile {
+        bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
+        decoder: decoder_core::DecoderModel::Wiener(wiener),
+        provenance: decoder_core::Provenance::untracked(),
+    };
+    let mut rig = Rig::new(true);
+    rig.engine = SlotEngine::new(settings(true), DecodePipeline::new(&m).unwrap());
+    for seq in 0..20 {
+        rig.wait_until(seq);
+        rig.send(seq, 100_000);
+    }
+    let c = rig.engine.counters();
+    assert!(c.numerical_faults > 0, "the model must overflow: {c:?}");
+    for p in &rig.out.packets {
+        assert!(
+            p.estimate.iter().chain(&p.command).all(|v| v.is_finite()),
+            "{p:?}"
+        );
+        assert!(p.command.iter().all(|&v| v == 0.0) || p.state != 3, "{p:?}");
+    }
+    assert_eq!(rig.out.packets.last().unwrap().state, 3, "halted");
 }

@@ -191,7 +191,9 @@ impl DecodePipeline {
         }
     }
 
-    /// Copies the engine's outputs into `estimate`; false if any is not finite.
+    /// Copies the engine's outputs into `estimate`; false if any is not
+    /// finite, and then the estimate reads as zeros: a value that is not a
+    /// number never leaves the pipeline, in a packet or in a replay.
     fn copy_estimate(&mut self) -> bool {
         match &self.engine {
             Engine::Kalman { filter, outputs } => {
@@ -208,7 +210,11 @@ impl DecodePipeline {
                 }
             }
         }
-        self.estimate.iter().all(|v| v.is_finite())
+        let finite = self.estimate.iter().all(|v| v.is_finite());
+        if !finite {
+            self.estimate.fill(0.0);
+        }
+        finite
     }
 }
 

@@ -192,7 +192,9 @@ struct PendingBin {
 
 #[derive(Clone, Copy, Debug)]
 struct AnsweredSlot {
-    seq: u64,
+    /// `None` for a ring entry no slot has used yet (every u64 is a valid
+    /// seq, so none can mark "empty").
+    seq: Option<u64>,
     decoded: bool,
 }
 
@@ -248,7 +250,7 @@ impl SlotEngine {
                 .collect(),
             answered: vec![
                 AnsweredSlot {
-                    seq: u64::MAX,
+                    seq: None,
                     decoded: false,
                 };
                 w
@@ -372,7 +374,11 @@ impl SlotEngine {
         };
         let next = clock.next_seq;
         let w = self.w();
-        let in_window = seq.abs_diff(next) < w || (seq < next && next - seq <= w);
+        // Distances on the circle of u64 seqs, so a stream may run through
+        // u64::MAX to 0 like any other.
+        let ahead = seq.wrapping_sub(next);
+        let behind = next.wrapping_sub(seq);
+        let in_window = ahead < w || behind <= w;
         if in_window {
             self.stray = None;
         }
@@ -380,7 +386,7 @@ impl SlotEngine {
             self.track_clock(recv_ns, seq);
             packet::read_counts(datagram, &mut self.counts);
             self.answer(arrived, recv_ns, sink);
-        } else if seq > next && seq - next < w {
+        } else if ahead < w {
             let slot = &mut self.pending[(seq % w) as usize];
             if slot.occupied && slot.seq == seq {
                 self.counters.bins_duplicate += 1;
@@ -392,9 +398,9 @@ impl SlotEngine {
             slot.recv_ns = recv_ns;
             slot.origin_ns = header.origin_ns;
             packet::read_counts(datagram, &mut slot.counts);
-        } else if seq < next && next - seq <= w {
+        } else if behind <= w {
             let slot = self.answered[(seq % w) as usize];
-            if slot.seq == seq && slot.decoded {
+            if slot.seq == Some(seq) && slot.decoded {
                 self.counters.bins_duplicate += 1;
                 sink.event(&EngineEvent::Duplicate { seq });
             } else {
@@ -403,7 +409,7 @@ impl SlotEngine {
             }
         } else if !self.confirms_restart(seq, recv_ns) {
             self.stray = Some((seq, recv_ns));
-            let from_this_stream = seq < next && seq >= clock.seq0;
+            let from_this_stream = behind <= next.wrapping_sub(clock.seq0);
             if from_this_stream {
                 self.counters.bins_late += 1;
                 sink.event(&EngineEvent::Late { seq });
@@ -455,7 +461,7 @@ impl SlotEngine {
             p.occupied = false;
         }
         for a in &mut self.answered {
-            a.seq = u64::MAX;
+            a.seq = None;
         }
         self.last_nonzero.fill(seq);
         self.last_saturated.fill(u64::MAX);
@@ -562,7 +568,7 @@ impl SlotEngine {
             sink.event(&EngineEvent::Transition(t));
         }
         self.answered[(seq % w) as usize] = AnsweredSlot {
-            seq,
+            seq: Some(seq),
             decoded: !missing,
         };
         if let SlotSource::Pending(i) = source {

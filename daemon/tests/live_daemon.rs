@@ -503,6 +503,79 @@ fn a_regular_file_at_the_socket_path_is_never_deleted() {
     assert_eq!(std::fs::read_to_string(&precious).unwrap(), "a user's file");
 }
 
+/// A seeded flood of near-valid datagrams (reordered, duplicated, far
+/// jumps, wrong widths and channel counts, truncated, bit-flipped) at the
+/// real daemon: it stays up, accounts for every datagram, and every packet
+/// it sends is finite and within the speed limit. `VDEC_FUZZ_LIVE` sets
+/// the count (default 3000; BENCHMARKS.md has a run of 10⁶).
+#[test]
+fn a_seeded_flood_of_damaged_datagrams_at_the_daemon_is_all_accounted_for() {
+    use rand::{RngExt, SeedableRng};
+    let n: u64 = std::env::var("VDEC_FUZZ_LIVE")
+        .ok()
+        .and_then(|v| v.parse().ok())
+        .unwrap_or(3000);
+    let d = Daemon::start(true, TEST_TIMING);
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(0x11FE);
+    let mut seq = 0u64;
+    let started = Instant::now();
+    let per_bin = (n / 3000).max(20);
+    for i in 0..n {
+        seq = match rng.random_range(0..100) {
+            0 => seq.wrapping_add(rng.random_range(100..10_000)),
+            1..=4 => seq.wrapping_sub(rng.random_range(1..10)),
+            5..=9 => seq,
+            _ => seq.wrapping_add(1),
+        };
+        let mut b = d.bin_bytes(seq);
+        match rng.random_range(0..50) {
+            0 => b[24..28].copy_from_slice(&10_000u32.to_le_bytes()),
+            1 => b.truncate(rng.random_range(0..b.len())),
+            2 => {
+                let at = rng.random_range(0..b.len());
+                b[at] ^= 1 << rng.random_range(0..8);
+            }
+            3 => b[6..8].copy_from_slice(&3u16.to_le_bytes()),
+            _ => {}
+        }
+        d.send_raw(&b);
+        // At least 20 datagrams a bin (more in a long run, which is bounded
+        // to about 3000 bins), so seqs move on as a stream does.
+        if i % per_bin == per_bin - 1 {
+            std::thread::sleep(BIN);
+        }
+    }
+    let s = d.wait_for_status("every datagram read", |s| s.counters.datagrams >= n);
+    let c = &s.counters;
+    assert_eq!(c.datagrams, n, "{c:?}");
+    let pending = n
+        - (c.bins_decoded
+            + c.rejected
+            + c.bins_duplicate
+            + c.bins_late
+            + c.bins_stray
+            + c.bins_flushed);
+    assert!(pending <= 64, "{pending} datagrams unaccounted: {c:?}");
+    for p in d.packets() {
+        assert!(
+            p.command.iter().chain(&p.estimate).all(|v| v.is_finite()),
+            "{p:?}"
+        );
+        let speed = p.command.iter().map(|v| v * v).sum::<f64>().sqrt();
+        assert!(speed <= 50.0 + 1e-9, "{p:?}");
+    }
+    eprintln!(
+        "{n} datagrams in {:.1} s: {} decoded, {} rejected, {} late, {} duplicate, {} stray, {} new streams",
+        started.elapsed().as_secs_f64(),
+        c.bins_decoded,
+        c.rejected,
+        c.bins_late,
+        c.bins_duplicate,
+        c.bins_stray,
+        c.new_streams
+    );
+}
+
 #[test]
 fn the_control_socket_is_private_to_its_user() {
     use std::os::unix::fs::PermissionsExt;

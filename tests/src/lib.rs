@@ -51,25 +51,30 @@ pub fn fixture_json(name: &str) -> serde_json::Value {
     serde_json::from_str(&text).expect("fixture json")
 }
 
-/// Largest absolute difference divided by the reference's largest magnitude.
-pub fn relative_error(got: &[f64], want: &[f64]) -> f64 {
-    assert_eq!(got.len(), want.len(), "length differs");
-    let scale = want
-        .iter()
-        .fold(0.0f64, |m, v| m.max(v.abs()))
-        .max(f64::MIN_POSITIVE);
-    got.iter()
-        .zip(want)
-        .fold(0.0f64, |m, (g, w)| m.max((g - w).abs()))
-        / scale
-}
-
-/// Asserts `relative_error(got, want) <= tol`, naming what was compared.
-pub fn assert_close(what: &str, got: &[f64], want: &[f64], tol: f64) {
-    let err = relative_error(got, want);
-    eprintln!("{what}: relative error {err:.3e} (tolerance {tol:.1e})");
+/// Asserts, element by element, |got − want| ≤ atol + rtol·|want| (the rule
+/// of `numpy.allclose`), naming what was compared and the worst element.
+pub fn assert_close(what: &str, got: &[f64], want: &[f64], rtol: f64, atol: f64) {
+    assert_eq!(got.len(), want.len(), "{what}: length differs");
+    let mut worst = (0usize, 0.0f64);
+    for (i, (g, w)) in got.iter().zip(want).enumerate() {
+        let excess = (g - w).abs() / (atol + rtol * w.abs());
+        if !(excess <= worst.1) {
+            worst = (i, excess);
+        }
+    }
+    let (i, excess) = worst;
+    let (g, w) = (
+        got.get(i).copied().unwrap_or(0.0),
+        want.get(i).copied().unwrap_or(0.0),
+    );
+    eprintln!(
+        "{what}: worst element {i}: {g:e} vs {w:e} (|diff| {:.2e}, {:.2} of the allowed rtol {rtol:.0e} + atol {atol:.0e})",
+        (g - w).abs(),
+        excess
+    );
     assert!(
-        err <= tol,
-        "{what}: relative error {err:.3e} exceeds {tol:.1e}"
+        excess <= 1.0,
+        "{what}: element {i} is {g:e}, reference {w:e}: |diff| {:.3e} exceeds atol {atol:.1e} + rtol {rtol:.1e}·|ref|",
+        (g - w).abs()
     );
 }

@@ -375,15 +375,20 @@ impl LogReader {
             return None;
         }
         if crc32fast::hash(&body) != crc {
-            self.end = Some(if total == remaining {
-                torn(self)
-            } else {
-                LogEnd::Corrupt {
-                    offset: self.offset,
-                    problem: "record checksum mismatch".into(),
-                    seq: seq_hint(&body),
-                }
-            });
+            // The last record failing its checksum is a torn write, unless
+            // its length is what is wrong and an intact record hides
+            // inside what it claims.
+            self.end = Some(
+                if total == remaining && self.intact_record_after().is_none() {
+                    torn(self)
+                } else {
+                    LogEnd::Corrupt {
+                        offset: self.offset,
+                        problem: "record checksum mismatch".into(),
+                        seq: seq_hint(&body),
+                    }
+                },
+            );
             return None;
         }
         let at = self.offset;

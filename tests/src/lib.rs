@@ -57,8 +57,14 @@ pub fn assert_close(what: &str, got: &[f64], want: &[f64], rtol: f64, atol: f64)
     assert_eq!(got.len(), want.len(), "{what}: length differs");
     let mut worst = (0usize, 0.0f64);
     for (i, (g, w)) in got.iter().zip(want).enumerate() {
-        let excess = (g - w).abs() / (atol + rtol * w.abs());
-        if !(excess <= worst.1) {
+        let diff = (g - w).abs();
+        let excess = if diff == 0.0 {
+            0.0
+        } else {
+            diff / (atol + rtol * w.abs())
+        };
+        // A NaN difference is the worst there is.
+        if excess.is_nan() || excess > worst.1 {
             worst = (i, excess);
         }
     }

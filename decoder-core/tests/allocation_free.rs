@@ -63,10 +63,22 @@ fn decode_steps_allocate_nothing() {
     };
     let (steady, _) = fit_kalman(&session, &steady_opts).unwrap();
     let wiener = fit_wiener(&session, &WienerFitOptions::default()).unwrap();
+    // The point-process decoder with spike history and coupling: its ring
+    // of past counts and its information-form update run every bin.
+    let (pp, _) = decoder_core::fit::point_process::fit_point_process(
+        &session,
+        &decoder_core::fit::point_process::PointProcessFitOptions {
+            coupling: true,
+            ..Default::default()
+        },
+    )
+    .unwrap();
+    assert!(pp.history_basis.is_some());
     for (name, decoder) in [
         ("kalman", DecoderModel::Kalman(full)),
         ("kalman steady-state", DecoderModel::Kalman(steady)),
         ("wiener", DecoderModel::Wiener(wiener)),
+        ("point process", DecoderModel::PointProcess(pp)),
     ] {
         let mut pipeline = DecodePipeline::new(&model_file(decoder)).unwrap();
         let before = ALLOCATIONS.load(Ordering::Relaxed);

@@ -161,6 +161,15 @@ fn evaluate_prints_both_decoders_and_writes_a_report() {
     let csv = std::fs::read_to_string(report.join("scores.csv")).unwrap();
     assert!(csv.starts_with("decoder,fold,output,cc,r2,rmse"));
     assert_eq!(csv.lines().filter(|l| l.contains(",mean,")).count(), 4);
+    // Both decoders must decode the simulated velocity, not only print a
+    // row: the simulator's channels are cosine-tuned to velocity with a
+    // modulation that a linear decoder recovers at CC well above 0.5 from
+    // 24 channels (the demo's 96 reach about 0.9).
+    for line in csv.lines().filter(|l| l.contains(",mean,")) {
+        let f: Vec<&str> = line.split(',').collect();
+        let (cc, r2): (f64, f64) = (f[3].parse().unwrap(), f[4].parse().unwrap());
+        assert!(cc > 0.5 && cc <= 1.0 && r2 > 0.2, "{line}");
+    }
 }
 
 #[test]
@@ -777,8 +786,10 @@ fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_ref
     );
     eprintln!("good {with_good}\nshuffled {with_shuffled}\nseed {seed_after}\nrefit {refit_after}");
     let per_target = |v: &serde_json::Value| v["mean_trial_time_s"].as_f64().unwrap();
+    // Retraining with intention re-estimation must make targets faster
+    // (Gilja et al. 2012 report the same direction in closed loop).
     assert!(
-        per_target(&refit_after) <= per_target(&seed_after),
+        per_target(&refit_after) < per_target(&seed_after),
         "{refit_after} vs {seed_after}"
     );
 }

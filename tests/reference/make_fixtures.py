@@ -19,6 +19,8 @@ Writes, into the directory given as the only argument:
                           with own-history columns through a raised-cosine
                           basis (written out here from its formula), with
                           the design matrices used
+  wiener_sklearn_weights  sklearn.linear_model.Ridge on the block's lagged
+                          counts (intercept first), for the Wiener filter
   eden_*.npy              one point-process filter step (Eden et al. 2004)
                           written out in numpy from the equations
   gof_*.npy, gof.json     time-rescaled intervals (Brown et al. 2002; the
@@ -47,6 +49,7 @@ import sklearn
 import statsmodels
 import statsmodels.api as sm
 from filterpy.kalman import KalmanFilter
+from sklearn.linear_model import Ridge
 from sklearn.metrics import r2_score
 
 SEED = 20261202
@@ -56,6 +59,8 @@ BIN_MS = 20.0
 DT = BIN_MS / 1000.0
 GOF_SEEDS = (11, 12, 13)
 TIGHT = {"tol": 1e-12, "maxiter": 200}
+WIENER_TAPS = 3
+WIENER_RIDGE = 5.0
 GOF_T = 4000      # bins per goodness-of-fit block
 GOF_N = 12        # channels per goodness-of-fit block
 
@@ -248,6 +253,20 @@ def main(out):
         hist = sm.GLM(y, sm.add_constant(design), family=sm.families.Poisson()).fit(**TIGHT)
         np.save(os.path.join(out, f"glm_history_coef_{c}.npy"), hist.params)
         np.save(os.path.join(out, f"glm_history_deviance_{c}.npy"), np.array([hist.deviance]))
+
+    # The Wiener filter: scikit-learn's Ridge on the lagged design (the
+    # current bin and WIENER_TAPS - 1 bins back, channel by channel within
+    # each lag; rows from the first bin with a full history), intercept
+    # unpenalised.
+    lagged = np.column_stack([
+        counts[WIENER_TAPS - 1 - a:T - a].astype(np.float64) for a in range(WIENER_TAPS)
+    ])
+    ridge = Ridge(alpha=WIENER_RIDGE, fit_intercept=True, solver="cholesky")
+    ridge.fit(lagged, kin[WIENER_TAPS - 1:, 2:4])
+    np.save(
+        os.path.join(out, "wiener_sklearn_weights.npy"),
+        np.column_stack([ridge.intercept_, ridge.coef_]),
+    )
 
     # One step of the point-process filter, from the equations:
     #   x- = A x, P- = A P A' + W, lambda = exp(b0 + beta x-),

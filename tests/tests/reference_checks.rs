@@ -443,3 +443,30 @@ fn goodness_of_fit_passes_correct_poisson_glms_fitted_by_statsmodels() {
         "statsmodels fits: {within_fitted} of {total} channels within the band"
     );
 }
+
+/// The Wiener filter's weights against scikit-learn 1.9.1
+/// `Ridge(alpha=5, fit_intercept=True, solver="cholesky")` on the same
+/// lagged design (3 taps: the current bin and two back), intercept first.
+#[test]
+fn wiener_weights_equal_sklearn_ridge_on_the_lagged_design() {
+    use decoder_core::fit::wiener::{WienerFitOptions, fit_wiener};
+    let m = fit_wiener(
+        &block(),
+        &WienerFitOptions {
+            outputs: vec!["vel_x".into(), "vel_y".into()],
+            taps: 3,
+            lag_bins: 0,
+            ridge: 5.0,
+        },
+    )
+    .unwrap();
+    let want = mat("wiener_sklearn_weights.npy");
+    assert_eq!((m.weights.rows, m.weights.cols), (want.rows, want.cols));
+    assert_close(
+        "Wiener weights vs sklearn Ridge",
+        &m.weights.data,
+        &want.data,
+        1e-9,
+        1e-12,
+    );
+}

@@ -21,6 +21,9 @@ Writes, into the directory given as the only argument:
                           the design matrices used
   wiener_sklearn_weights  sklearn.linear_model.Ridge on the block's lagged
                           counts (intercept first), for the Wiener filter
+  intention_*.npy         a cursor, decoded velocity and trials, and the
+                          velocity re-estimated by the rule of Gilja et al.
+                          2012 written out in numpy
   eden_*.npy              one point-process filter step (Eden et al. 2004)
                           written out in numpy from the equations
   gof_*.npy, gof.json     time-rescaled intervals (Brown et al. 2002; the
@@ -61,6 +64,7 @@ GOF_SEEDS = (11, 12, 13)
 TIGHT = {"tol": 1e-12, "maxiter": 200}
 WIENER_TAPS = 3
 WIENER_RIDGE = 5.0
+INTENT_RADIUS = 1.0
 GOF_T = 4000      # bins per goodness-of-fit block
 GOF_N = 12        # channels per goodness-of-fit block
 
@@ -267,6 +271,30 @@ def main(out):
         os.path.join(out, "wiener_sklearn_weights.npy"),
         np.column_stack([ridge.intercept_, ridge.coef_]),
     )
+
+    # Intention re-estimation (Gilja et al. 2012), the rule written out:
+    # within a trial, the decoded velocity turned to point from the cursor
+    # at the target with its speed kept, and zero within INTENT_RADIUS of
+    # the target; outside trials, left as decoded. Trials leave gaps and
+    # some bins sit inside the window.
+    g = np.random.default_rng(SEED + 7)
+    n_int = 400
+    cursor = np.cumsum(g.normal(0.0, 0.4, size=(n_int, 2)), axis=0)
+    decoded = g.normal(0.0, 5.0, size=(n_int, 2))
+    trials = []
+    for k, start in enumerate(range(10, n_int - 40, 60)):
+        end = start + 45
+        tx, ty = cursor[start + 30] + g.normal(0.0, 0.5, size=2)  # reached late in the trial
+        trials.append((start, end, tx, ty))
+    intended = decoded.copy()
+    for start, end, tx, ty in trials:
+        for b in range(start, end):
+            to = np.array([tx, ty]) - cursor[b]
+            dist = np.hypot(to[0], to[1])
+            intended[b] = 0.0 if dist <= INTENT_RADIUS else to / dist * np.hypot(*decoded[b])
+    np.save(os.path.join(out, "intention_kinematics.npy"), np.column_stack([cursor, decoded]))
+    np.save(os.path.join(out, "intention_trials.npy"), np.array(trials, dtype=np.float64))
+    np.save(os.path.join(out, "intention_velocity.npy"), intended)
 
     # One step of the point-process filter, from the equations:
     #   x- = A x, P- = A P A' + W, lambda = exp(b0 + beta x-),

@@ -470,3 +470,55 @@ fn wiener_weights_equal_sklearn_ridge_on_the_lagged_design() {
         1e-12,
     );
 }
+
+/// Intention re-estimation against the rule of Gilja et al. 2012 written
+/// out in numpy by the fixture script: within a trial, velocity turned
+/// toward the target with its speed kept, zero within the radius; outside
+/// trials, as decoded.
+#[test]
+fn intention_reestimation_equals_the_rule_in_numpy() {
+    use decoder_core::fit::intention::reestimate_intention;
+    use decoder_core::formats::block::Trial;
+    let kin = mat("intention_kinematics.npy");
+    let trials = mat("intention_trials.npy");
+    let n_bins = kin.rows;
+    let block = Block {
+        bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
+        n_bins,
+        n_channels: 1,
+        counts: vec![0; n_bins],
+        kinematic_names: ["pos_x", "pos_y", "vel_x", "vel_y"]
+            .map(String::from)
+            .to_vec(),
+        kinematics: Some(kin),
+        trials: Some(
+            (0..trials.rows)
+                .map(|k| Trial {
+                    trial: k as u32,
+                    start_bin: trials.get(k, 0) as usize,
+                    end_bin: trials.get(k, 1) as usize,
+                    target_x: trials.get(k, 2),
+                    target_y: trials.get(k, 3),
+                })
+                .collect(),
+        ),
+        channel_labels: None,
+        notes: None,
+    };
+    let (refit, counted) = reestimate_intention(&block, 1.0).unwrap();
+    assert!(
+        counted.zeroed > 0 && counted.rotated > 0 && counted.untouched > 0,
+        "{counted:?}"
+    );
+    let got = refit.kinematics.unwrap();
+    let vel: Vec<f64> = (0..n_bins)
+        .flat_map(|t| [got.get(t, 2), got.get(t, 3)])
+        .collect();
+    assert_close(
+        "re-estimated velocity vs numpy",
+        &vel,
+        &fixture("intention_velocity.npy").1,
+        1e-12,
+        1e-14,
+    );
+}

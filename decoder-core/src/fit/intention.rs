@@ -43,7 +43,7 @@ pub fn reestimate_intention(
     })?;
     if !(window.is_finite() && window >= 0.0) {
         return Err(TrainError::Option {
-            key: "refit window",
+            key: "--target-radius",
             problem: format!("{window} must be a distance ≥ 0"),
         });
     }

@@ -10,6 +10,9 @@ Writes, into the directory given as the only argument:
                           settings (see FITS below)
   filterpy_states.npy     filterpy.kalman.KalmanFilter run over the block's
                           counts with the 'plain' parameters
+  filterpy_*_states.npy   the same with a diagonal R, on z-scored counts
+                          under the 'ridge_z' fit, and on mean-centred
+                          counts under the 'velocity_only' fit
   dare_*.npy              a velocity-only model and the steady-state gain
                           from scipy.linalg.solve_discrete_are
   metrics.json            two arrays and their scipy.stats.pearsonr,
@@ -214,6 +217,40 @@ def main(out):
         kf.update(counts[t].astype(np.float64).reshape(N, 1))
         states[t] = kf.x[:, 0]
     np.save(os.path.join(out, "filterpy_states.npy"), states)
+
+    # filterpy on the other decoding paths: a diagonal observation noise
+    # (the plain fit's Q with its off-diagonal dropped), z-scored counts
+    # under the ridge_z fit, and mean-centred counts under the velocity-only
+    # fit (the steady-state decoder is checked against this one once the
+    # time-varying gain has settled).
+    def filterpy_run(fit, R, z):
+        dd = fit["A"].shape[0]
+        f = KalmanFilter(dim_x=dd, dim_z=N)
+        f.F, f.Q, f.H, f.R = fit["A"].copy(), fit["W"].copy(), fit["H"].copy(), R.copy()
+        f.x = fit["x0"].reshape(dd, 1).copy()
+        f.P = fit["P0"].copy()
+        xs = np.zeros((T, dd))
+        for t in range(T):
+            f.predict()
+            f.update(z[t].reshape(N, 1))
+            xs[t] = f.x[:, 0]
+        return xs
+
+    raw = counts.astype(np.float64)
+    np.save(
+        os.path.join(out, "filterpy_diagonal_states.npy"),
+        filterpy_run(p, np.diag(np.diag(p["Q"])), raw),
+    )
+    rz = fits["ridge_z"]
+    np.save(
+        os.path.join(out, "filterpy_zscored_states.npy"),
+        filterpy_run(rz, rz["Q"], (raw - rz["offset"]) / rz["scale"]),
+    )
+    vo = fits["velocity_only"]
+    np.save(
+        os.path.join(out, "filterpy_velocity_only_states.npy"),
+        filterpy_run(vo, vo["Q"], (raw - vo["offset"]) / vo["scale"]),
+    )
 
     # Steady-state gain of the velocity-only model. The a-priori covariance
     # solves the filtering DARE, which scipy writes for the dual system.

@@ -522,3 +522,93 @@ fn intention_reestimation_equals_the_rule_in_numpy() {
         1e-14,
     );
 }
+
+/// Runs the Kalman decoder over the reference block's raw counts.
+fn decode_block(model: &KalmanModel, steady: bool) -> Vec<Vec<f64>> {
+    let session = block();
+    let mut filter = KalmanFilter::new(model, steady).unwrap();
+    (0..session.n_bins)
+        .map(|t| {
+            assert!(filter.step(session.bin_counts(t)));
+            filter.state().to_vec()
+        })
+        .collect()
+}
+
+/// The first `k` components of each state from bin `from` on, flattened.
+fn components(states: &[Vec<f64>], k: usize, from: usize) -> Vec<f64> {
+    states[from..]
+        .iter()
+        .flat_map(|x| x[..k].to_vec())
+        .collect()
+}
+
+fn fixture_states(name: &str, d: usize) -> Vec<Vec<f64>> {
+    fixture(name).1.chunks(d).map(<[f64]>::to_vec).collect()
+}
+
+/// filterpy 2.0.0 `KalmanFilter` with R the diagonal of the plain fit's Q:
+/// the decoder's diagonal-noise path (one reciprocal per channel).
+#[test]
+fn the_diagonal_noise_path_equals_filterpy() {
+    let mut model = numpy_model("plain", &FULL_STATE, &["vel_x", "vel_y"]);
+    let ObservationNoise::Full(q) = &model.q else {
+        unreachable!()
+    };
+    let n = q.rows;
+    model.q = ObservationNoise::Diagonal((0..n).map(|i| q.get(i, i)).collect());
+    let got = decode_block(&model, false);
+    let want = fixture_states("filterpy_diagonal_states.npy", 5);
+    assert_close(
+        "diagonal-Q states vs filterpy",
+        &components(&got, 4, 0),
+        &components(&want, 4, 0),
+        1e-9,
+        1e-9,
+    );
+}
+
+/// filterpy on counts z-scored with the fit's offsets and scales, against
+/// the decoder, which folds the normalisation into its observation terms.
+#[test]
+fn the_z_scored_path_equals_filterpy_on_z_scored_counts() {
+    let model = numpy_model("ridge_z", &FULL_STATE, &["vel_x", "vel_y"]);
+    let got = decode_block(&model, false);
+    let want = fixture_states("filterpy_zscored_states.npy", 5);
+    assert_close(
+        "z-scored states vs filterpy",
+        &components(&got, 4, 0),
+        &components(&want, 4, 0),
+        1e-9,
+        1e-9,
+    );
+}
+
+/// The steady-state decoder (fixed gain, Malik et al. 2011) against
+/// filterpy's time-varying filter on the same mean-centred counts, once
+/// the time-varying gain has settled (from bin 300 on): the two filters
+/// are then the same linear recursion.
+#[test]
+fn the_steady_state_path_equals_filterpy_once_the_gain_has_settled() {
+    let mut model = numpy_model("velocity_only", &["vel_x", "vel_y"], &["vel_x", "vel_y"]);
+    model.steady = Some(steady_state_gain(&model, 1e-13, 100_000).unwrap());
+    let steady = decode_block(&model, true);
+    let full = decode_block(&model, false);
+    let want = fixture_states("filterpy_velocity_only_states.npy", 2);
+    // The full filter equals filterpy from the first bin ...
+    assert_close(
+        "velocity-only states vs filterpy",
+        &components(&full, 2, 0),
+        &components(&want, 2, 0),
+        1e-9,
+        1e-9,
+    );
+    // ... and the steady-state filter once the gain has converged.
+    assert_close(
+        "steady-state states vs filterpy after bin 300",
+        &components(&steady, 2, 300),
+        &components(&want, 2, 300),
+        1e-9,
+        1e-9,
+    );
+}

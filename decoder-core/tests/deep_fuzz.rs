@@ -133,8 +133,9 @@ proptest! {
         } else {
             damaged[at] ^= xor;
         }
-        let dir = tempfile::tempdir().unwrap();
-        let path = dir.path().join("d.vdlog");
+        // One file per test thread, rewritten each case (a directory per
+        // case would cost more than the read).
+        let path = scratch_log();
         std::fs::write(&path, &damaged).unwrap();
         let mut r = LogReader::open(&path).unwrap();
         let mut read = Vec::new();
@@ -178,6 +179,14 @@ proptest! {
             ),
         }
     }
+}
+
+/// This thread's scratch log file, in a directory removed at exit.
+fn scratch_log() -> std::path::PathBuf {
+    static DIR: std::sync::OnceLock<tempfile::TempDir> = std::sync::OnceLock::new();
+    let dir = DIR.get_or_init(|| tempfile::tempdir().unwrap());
+    dir.path()
+        .join(format!("{:?}.vdlog", std::thread::current().id()).replace(['(', ')'], ""))
 }
 
 /// A session log of `n` records of several kinds and an end record:

@@ -8,5 +8,10 @@ static ALLOCATOR: daemon::alloc_count::CountingAllocator = daemon::alloc_count::
 
 fn main() -> std::process::ExitCode {
     daemon::alloc_count::mark_installed();
+    // A file-size limit reached by the recording must not kill the decoder:
+    // ignored, the write fails with EFBIG, the recorder raises its alarm and
+    // decoding goes on, as for a full disk.
+    // SAFETY: setting a signal's disposition before any thread exists.
+    unsafe { libc::signal(libc::SIGXFSZ, libc::SIG_IGN) };
     daemon::main_with(daemon::Cli::parse())
 }

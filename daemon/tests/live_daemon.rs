@@ -11,7 +11,7 @@ use daemon::control::Request;
 use decoder_core::engine::log_replay::replay_log;
 use decoder_core::formats::packet::{FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, VelocityPacket};
 use decoder_core::formats::session_log::{LogEnd, LogReader, LogRecord};
-use support::{BIN, Daemon, TEST_TIMING, fixture, seqs};
+use support::{BIN, Daemon, PATIENCE, TEST_TIMING, fixture, seqs};
 
 fn missing(p: &VelocityPacket) -> bool {
     p.flags & FLAG_BIN_MISSING != 0
@@ -589,6 +589,107 @@ fn a_seeded_flood_of_damaged_datagrams_at_the_daemon_is_all_accounted_for() {
         c.bins_stray,
         c.new_streams
     );
+}
+
+/// The recording's destination fills up while the daemon runs (a file-size
+/// limit stands in for a full disk): every slot is still answered, status
+/// raises the alarm and counts the lost records, and what was written
+/// replays bit for bit.
+#[test]
+fn a_full_recording_destination_leaves_decoding_running_and_what_was_written_verifies() {
+    use std::os::unix::process::CommandExt;
+    let f = fixture();
+    let dir = tempfile::tempdir().unwrap();
+    let socket = dir.path().join("ctl.sock");
+    let sink = daemon_rig::ActuatorSink::on_loopback().unwrap();
+    let config = dir.path().join("daemon.toml");
+    std::fs::write(&config, TEST_TIMING).unwrap();
+    let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_decoderd"));
+    cmd.arg("run")
+        .arg("--config")
+        .arg(&config)
+        .arg("--model")
+        .arg(&f.model)
+        .args(["--listen", "127.0.0.1:0", "--arm", "--actuator"])
+        .arg(sink.addr.to_string())
+        .arg("--socket")
+        .arg(&socket)
+        .arg("--record")
+        .arg(dir.path().join("rec"))
+        .stderr(std::process::Stdio::null());
+    // SAFETY: only setrlimit between fork and exec.
+    unsafe {
+        cmd.pre_exec(|| {
+            let limit = libc::rlimit {
+                rlim_cur: 48 * 1024,
+                rlim_max: 48 * 1024,
+            };
+            if libc::setrlimit(libc::RLIMIT_FSIZE, &limit) == 0 {
+                Ok(())
+            } else {
+                Err(std::io::Error::last_os_error())
+            }
+        });
+    }
+    let mut child = cmd.spawn().unwrap();
+    let status = |socket: &std::path::Path| {
+        daemon::control::request(socket, &Request::Status)
+            .ok()
+            .and_then(|r| r.status)
+    };
+    let deadline = Instant::now() + PATIENCE;
+    let listen = loop {
+        if let Some(s) = status(&socket) {
+            break s.listen;
+        }
+        assert!(Instant::now() < deadline, "decoderd did not come up");
+        std::thread::sleep(Duration::from_millis(10));
+    };
+    let sender = std::net::UdpSocket::bind("127.0.0.1:0").unwrap();
+    let d = Daemon {
+        daemon: None,
+        dir,
+        listen,
+        socket: socket.clone(),
+        sender,
+        sink: None,
+    };
+    d.stream(0..400, 0);
+    sink.wait_for_seq(399, PATIENCE).unwrap();
+    let s = status(&socket).unwrap();
+    let rec = s.recording.clone().unwrap();
+    assert!(rec.alarm.is_some(), "no alarm: {rec:?}");
+    assert!(rec.records_lost > 0, "{rec:?}");
+    assert_eq!(
+        s.counters.slots_answered,
+        s.counters.bins_decoded + s.counters.bins_missing
+    );
+    // SAFETY: signalling our own child.
+    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+    assert!(child.wait().unwrap().success());
+    let packets: Vec<VelocityPacket> = sink.finish().into_iter().map(|a| a.packet).collect();
+    assert_eq!(
+        seqs(&packets[..400]),
+        (0..400).collect::<Vec<_>>(),
+        "a slot was skipped"
+    );
+    // What was written replays: every recorded slot reproduced.
+    let log = std::fs::read_dir(d.path().join("rec"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .find(|p| p.extension().is_some_and(|e| e == "vdlog"))
+        .unwrap();
+    assert!(std::fs::metadata(&log).unwrap().len() <= 48 * 1024);
+    let mut reader = LogReader::open(&log).unwrap();
+    let mut checked = 0;
+    replay_log(&mut reader, None, |slot| {
+        if let Some(r) = slot.recorded {
+            assert_eq!(r, slot.replayed, "slot {checked}");
+            checked += 1;
+        }
+    })
+    .unwrap();
+    assert!(checked > 20, "only {checked} slots were recorded");
 }
 
 #[test]

@@ -7,7 +7,6 @@ use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{
     EngineEvent, EngineSettings, SlotAnswer, SlotEngine, SlotSink,
 };
-use decoder_core::engine::supervisor::SafetyLimits;
 use decoder_core::formats::model_file::ModelFile;
 use decoder_core::formats::packet::{self, BinHeader, VelocityPacket};
 use decoder_core::formats::session_log::LogReader;
@@ -25,22 +24,7 @@ fn model() -> ModelFile {
 }
 
 fn settings() -> EngineSettings {
-    EngineSettings {
-        bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
-        deadline_slack_ns: 10_000_000,
-        reorder_window: 8,
-        clock_tracking: 0.01,
-        limits: SafetyLimits {
-            max_speed: 50.0,
-            max_accel: 500.0,
-            max_coast_bins: 5,
-            coast_decay: 0.8,
-            bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
-        },
-        armed_at_start: true,
-        dead_channel_bins: 100,
-        saturation_count: 21,
-    }
+    decoder_core::sim::model::rig_settings()
 }
 
 struct Check {

@@ -6,7 +6,6 @@
 
 use decoder_core::BinWidth;
 use decoder_core::engine::slot_engine::EngineSettings;
-use decoder_core::engine::supervisor::SafetyLimits;
 use decoder_core::formats::session_log::{
     LogEnd, LogHeader, LogReader, LogRecord, RecordKind, SessionLogError, encode_header,
     encode_record,
@@ -24,20 +23,8 @@ fn header() -> LogHeader {
         bin_width: w,
         outputs: vec!["vel_x".into()],
         settings: EngineSettings {
-            bin_width: w,
-            deadline_slack_ns: 10_000_000,
-            reorder_window: 8,
-            clock_tracking: 0.01,
-            limits: SafetyLimits {
-                max_speed: 50.0,
-                max_accel: 500.0,
-                max_coast_bins: 5,
-                coast_decay: 0.8,
-                bin_width: w,
-            },
             armed_at_start: false,
-            dead_channel_bins: 100,
-            saturation_count: 21,
+            ..decoder_core::sim::model::rig_settings()
         },
     }
 }

@@ -6,7 +6,7 @@ use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{
     EngineEvent, EngineSettings, OperatorCommand, SlotAnswer, SlotEngine, SlotSink,
 };
-use decoder_core::engine::supervisor::{SafetyLimits, SupervisorState};
+use decoder_core::engine::supervisor::SupervisorState;
 use decoder_core::formats::model_file::ModelFile;
 use decoder_core::formats::packet::{
     self, BinHeader, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, VelocityPacket,
@@ -22,20 +22,11 @@ fn model() -> (ModelFile, decoder_core::Block) {
 
 fn settings(armed: bool) -> EngineSettings {
     EngineSettings {
-        bin_width: decoder_core::BinWidth::from_ns(BIN_NS).unwrap(),
-        deadline_slack_ns: BIN_NS / 2,
         reorder_window: 64,
         clock_tracking: 0.0,
-        limits: SafetyLimits {
-            max_speed: 50.0,
-            max_accel: 500.0,
-            max_coast_bins: 5,
-            coast_decay: 0.8,
-            bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
-        },
         armed_at_start: armed,
         dead_channel_bins: 1500,
-        saturation_count: 21,
+        ..decoder_core::sim::model::rig_settings()
     }
 }
 

@@ -16,6 +16,16 @@ use serde::Deserialize;
 
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:27400";
 pub const DEFAULT_ACTUATOR: &str = "127.0.0.1:27401";
+/// The `decoderd ctl` prefix that reaches a daemon on `socket`: with
+/// `--socket` only when it is not the default.
+pub fn ctl_command(socket: &Path) -> String {
+    if socket.as_os_str().is_empty() || socket == default_socket() {
+        "decoderd ctl".into()
+    } else {
+        format!("decoderd ctl --socket {}", socket.display())
+    }
+}
+
 /// The control socket's file name in the default directory.
 pub const SOCKET_NAME: &str = "decoderd.sock";
 

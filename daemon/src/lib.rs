@@ -387,11 +387,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
             "armed at start (--arm): bench use only; the command follows the decoder from the first bin"
         );
     } else {
-        let ctl = if config.control_socket == config::default_socket() {
-            "decoderd ctl".to_string()
-        } else {
-            format!("decoderd ctl --socket {}", config.control_socket.display())
-        };
+        let ctl = config::ctl_command(&config.control_socket);
         tracing::info!("disarmed: the command stays zero until `{ctl} arm`");
     }
 

@@ -17,6 +17,7 @@ use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{
     EngineEvent, OperatorCommand, SlotAnswer, SlotEngine, SlotSink,
 };
+use decoder_core::engine::supervisor::SupervisorState;
 use decoder_core::formats::packet;
 use decoder_core::formats::session_log::{self, RecordKind};
 use tokio::sync::oneshot;
@@ -270,7 +271,10 @@ impl RtLoop {
                             if let Some(b) = self.batcher.as_mut() {
                                 b.record_owned(RecordKind::Model, sys::monotonic_ns(), model_bytes);
                             }
-                            let live = matches!(self.engine.state().name(), "armed" | "coasting");
+                            let live = matches!(
+                                self.engine.state(),
+                                SupervisorState::Armed | SupervisorState::Coasting
+                            );
                             if live && info.kind != self.info.model.kind {
                                 let w = format!(
                                     "{} model {} swapped in while {} over a {} model; check the decoded velocity before relying on it",

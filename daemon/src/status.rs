@@ -239,15 +239,6 @@ pub fn plural(n: u64, one: &str, many: &str) -> String {
     format!("{n} {}", if n == 1 { one } else { many })
 }
 
-/// The `decoderd ctl` prefix that reaches this daemon.
-fn ctl_prefix(socket: &str) -> String {
-    if socket.is_empty() || std::path::Path::new(socket) == crate::config::default_socket() {
-        "decoderd ctl".into()
-    } else {
-        format!("decoderd ctl --socket {socket}")
-    }
-}
-
 impl Status {
     /// The readable table of `decoderd ctl status`.
     pub fn table(&self) -> String {
@@ -272,7 +263,7 @@ impl Status {
         let hint = match self.state.as_str() {
             "disarmed" | "halted" => format!(
                 "; the command is zero until `{} arm`",
-                ctl_prefix(&self.control_socket)
+                crate::config::ctl_command(std::path::Path::new(&self.control_socket))
             ),
             _ => String::new(),
         };

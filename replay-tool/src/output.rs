@@ -8,12 +8,6 @@ use anyhow::{Context, Result, bail};
 use ndarray::Array2;
 use ndarray_npy::WriteNpyExt;
 
-/// "1 slot", "3 slots": a count with its noun in the right number.
-pub fn count(n: impl Into<u64>, one: &str, many: &str) -> String {
-    let n = n.into();
-    format!("{n} {}", if n == 1 { one } else { many })
-}
-
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     if let Some(parent) = path.parent()
         && !parent.as_os_str().is_empty()

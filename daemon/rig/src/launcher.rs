@@ -108,14 +108,13 @@ impl Launch {
             socket: Some(socket.clone()),
             arm: self.arm,
         };
-        let (running, listen) = match &self.decoderd {
+        let running = match &self.decoderd {
             None => {
                 let config = daemon::prepare(&args)?;
                 let shutdown = Arc::new(AtomicBool::new(false));
                 let handle = daemon::start(config, shutdown)
                     .context("decoderd (in-process) failed at start")?;
-                let listen = handle.listen;
-                (Running::InProcess(Some(handle)), Some(listen))
+                Running::InProcess(Some(handle))
             }
             Some(exe) => {
                 let log = std::fs::File::create(&log_file)
@@ -131,19 +130,18 @@ impl Launch {
                         exe.display()
                     )
                 })?;
-                (Running::Process(child), None)
+                Running::Process(child)
             }
         };
-        let mut daemon = RunningDaemon {
+        let (running, status) = wait_until_answering(running, &socket, &log_file)?;
+        Ok(RunningDaemon {
             running,
-            listen: listen.unwrap_or_else(|| ([127, 0, 0, 1], 0).into()),
+            // Typed in status, for a child process and in-process alike.
+            listen: status.listen,
             socket,
             log_file,
             recordings,
-        };
-        let status = daemon.wait_until_answering()?;
-        daemon.listen = status.listen;
-        Ok(daemon)
+        })
     }
 }
 
@@ -174,35 +172,50 @@ pub struct Stopped {
     pub status: Option<Status>,
 }
 
-impl RunningDaemon {
-    fn wait_until_answering(&mut self) -> Result<Status> {
-        let started = Instant::now();
-        loop {
-            if let Ok(Reply {
-                status: Some(s), ..
-            }) = request(&self.socket, &Request::Status)
-            {
-                return Ok(*s);
+/// Polls the control socket until the daemon answers with its status.
+fn wait_until_answering(
+    mut running: Running,
+    socket: &Path,
+    log_file: &Path,
+) -> Result<(Running, Status)> {
+    let started = Instant::now();
+    loop {
+        if let Ok(Reply {
+            status: Some(s), ..
+        }) = request(socket, &Request::Status)
+        {
+            return Ok((running, *s));
+        }
+        if let Running::Process(child) = &mut running {
+            if let Some(exit) = child.try_wait()? {
+                let log = std::fs::read_to_string(log_file).unwrap_or_default();
+                bail!("decoderd exited at start ({exit}): {}", log.trim());
             }
-            if let Running::Process(child) = &mut self.running {
-                if let Some(exit) = child.try_wait()? {
-                    bail!(
-                        "decoderd exited at start ({exit}): {}",
-                        self.log_text().trim()
-                    );
+        }
+        if started.elapsed() > Duration::from_secs(20) {
+            // Not left running behind the error.
+            match &mut running {
+                Running::Process(child) => {
+                    let _ = child.kill();
+                    let _ = child.wait();
+                }
+                Running::InProcess(handle) => {
+                    if let Some(h) = handle.take() {
+                        let _ = h.stop();
+                    }
                 }
             }
-            if started.elapsed() > Duration::from_secs(20) {
-                bail!(
-                    "decoderd did not answer on {} within 20 s; see {}",
-                    self.socket.display(),
-                    self.log_file.display()
-                );
-            }
-            std::thread::sleep(Duration::from_millis(10));
+            bail!(
+                "decoderd did not answer on {} within 20 s; see {}",
+                socket.display(),
+                log_file.display()
+            );
         }
+        std::thread::sleep(Duration::from_millis(10));
     }
+}
 
+impl RunningDaemon {
     /// Whether the daemon runs as its own process.
     pub fn is_process(&self) -> bool {
         matches!(self.running, Running::Process(_))

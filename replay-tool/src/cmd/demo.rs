@@ -24,8 +24,9 @@ use decoder_core::sim::reaching::{SimOptions, simulate};
 
 use super::{evaluate, replay, train};
 use crate::CheckFailed;
-use crate::output::{count, write_atomic};
+use crate::output::write_atomic;
 use crate::progress;
+use daemon::status::plural as count;
 
 #[derive(Debug, clap::Args)]
 pub struct Args {

@@ -307,7 +307,8 @@ fn analyse(
     let period_ns = 1e9 / rate_hz;
     let mut recv_to_send = Vec::new();
     let mut round_trip = Vec::new();
-    let mut offsets = Vec::new();
+    // Per seq: when its packet left, against the bin clock (NaN: none).
+    let mut offsets = vec![f64::NAN; n];
     let (mut missed, mut unexpected, mut flagged, mut n_faults) = (0, 0, 0, 0);
     for k in 0..n {
         let f = faults(k);
@@ -317,7 +318,7 @@ fn analyse(
             missed += 1;
             continue;
         };
-        offsets.push(p.sent_ns as f64 - k as f64 * period_ns);
+        offsets[k] = p.sent_ns as f64 - k as f64 * period_ns;
         let coasted = p.flags & FLAG_BIN_MISSING != 0;
         if injected {
             flagged += usize::from(coasted);
@@ -331,20 +332,18 @@ fn analyse(
             }
         }
     }
-    let mut sorted = offsets.clone();
+    let mut sorted: Vec<f64> = offsets.iter().copied().filter(|o| !o.is_nan()).collect();
     sorted.sort_by(f64::total_cmp);
     let reference = sorted.get(sorted.len() / 2).copied().unwrap_or(0.0);
-    let jitter: Vec<u64> = offsets
+    let jitter_us: Vec<f64> = offsets
         .iter()
-        .map(|o| (o - reference).abs().round() as u64)
+        .map(|o| (o - reference).abs() / 1e3)
         .collect();
-    let mut jitter_us = vec![f64::NAN; n];
-    let mut j = jitter.iter();
-    for (k, p) in rec.packets.iter().enumerate() {
-        if p.is_some() {
-            jitter_us[k] = j.next().map_or(f64::NAN, |&v| v as f64 / 1e3);
-        }
-    }
+    let jitter: Vec<u64> = jitter_us
+        .iter()
+        .filter(|j| !j.is_nan())
+        .map(|j| (j * 1e3).round() as u64)
+        .collect();
     Outcome {
         missed_slots: missed,
         unexpected_dropouts: unexpected,

@@ -310,7 +310,7 @@ fn analyse(
     // Per seq: when its packet left, against the bin clock (NaN: none).
     let mut offsets = vec![f64::NAN; n];
     let (mut missed, mut unexpected, mut flagged, mut n_faults) = (0, 0, 0, 0);
-    for k in 0..n {
+    for (k, offset) in offsets.iter_mut().enumerate() {
         let f = faults(k);
         let injected = matches!(f, BinFault::Drop | BinFault::Malformed);
         n_faults += usize::from(injected);
@@ -318,7 +318,7 @@ fn analyse(
             missed += 1;
             continue;
         };
-        offsets[k] = p.sent_ns as f64 - k as f64 * period_ns;
+        *offset = p.sent_ns as f64 - k as f64 * period_ns;
         let coasted = p.flags & FLAG_BIN_MISSING != 0;
         if injected {
             flagged += usize::from(coasted);

@@ -16,6 +16,7 @@ use serde::Deserialize;
 
 pub const DEFAULT_LISTEN: &str = "127.0.0.1:27400";
 pub const DEFAULT_ACTUATOR: &str = "127.0.0.1:27401";
+pub const DEFAULT_TASK_LISTEN: &str = "127.0.0.1:27402";
 /// The `decoderd ctl` prefix that reaches a daemon on `socket`: with
 /// `--socket` only when it is not the default.
 pub fn ctl_command(socket: &Path) -> String {
@@ -76,6 +77,7 @@ pub struct RawConfig {
 #[serde(deny_unknown_fields)]
 pub struct RawNetwork {
     pub listen: Option<String>,
+    pub task_listen: Option<String>,
     pub actuator: Option<String>,
     pub allow_non_loopback: Option<bool>,
 }
@@ -145,6 +147,7 @@ pub struct RawLog {
 pub struct Overrides {
     pub model: Option<PathBuf>,
     pub listen: Option<String>,
+    pub task_listen: Option<String>,
     pub actuator: Option<String>,
     pub record: Option<PathBuf>,
     pub socket: Option<PathBuf>,
@@ -176,6 +179,8 @@ pub struct RealtimeConfig {
 #[derive(Clone, Debug, PartialEq)]
 pub struct Config {
     pub listen: SocketAddr,
+    /// Where task packets (PROTOCOL.md §6) arrive.
+    pub task_listen: SocketAddr,
     pub actuator: SocketAddr,
     pub model: PathBuf,
     /// Directory for session logs; `None` when recording is off.
@@ -329,6 +334,11 @@ impl Config {
             .clone()
             .or(raw.network.listen)
             .unwrap_or_else(|| DEFAULT_LISTEN.into());
+        let task_listen_text = overrides
+            .task_listen
+            .clone()
+            .or(raw.network.task_listen)
+            .unwrap_or_else(|| DEFAULT_TASK_LISTEN.into());
         let actuator_text = overrides
             .actuator
             .clone()
@@ -348,6 +358,9 @@ impl Config {
         let actuator = c
             .addr("network.actuator", &actuator_text, allow_remote)
             .map_err(as_flag("--actuator", overrides.actuator.is_some()))?;
+        let task_listen = c
+            .addr("network.task_listen", &task_listen_text, allow_remote)
+            .map_err(as_flag("--task-listen", overrides.task_listen.is_some()))?;
         let sources = Sources {
             model: if overrides.model.is_some() {
                 "--model"
@@ -481,6 +494,7 @@ impl Config {
         }
         Ok(Config {
             listen,
+            task_listen,
             actuator,
             model,
             record_dir,

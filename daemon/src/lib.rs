@@ -68,6 +68,9 @@ pub struct RunArgs {
     /// Address to receive bin packets on (overrides network.listen).
     #[arg(long)]
     pub listen: Option<String>,
+    /// Address to receive task packets on (overrides network.task_listen).
+    #[arg(long)]
+    pub task_listen: Option<String>,
     /// Address of the actuator client (overrides network.actuator).
     #[arg(long)]
     pub actuator: Option<String>,
@@ -97,6 +100,7 @@ impl RunArgs {
         flag("--config", self.config.clone().map(Into::into));
         flag("--model", self.model.clone().map(Into::into));
         flag("--listen", self.listen.clone().map(Into::into));
+        flag("--task-listen", self.task_listen.clone().map(Into::into));
         flag("--actuator", self.actuator.clone().map(Into::into));
         flag("--record", self.record.clone().map(Into::into));
         flag("--socket", self.socket.clone().map(Into::into));
@@ -176,6 +180,7 @@ pub fn prepare(args: &RunArgs) -> Result<Config> {
     let overrides = Overrides {
         model: args.model.clone(),
         listen: args.listen.clone(),
+        task_listen: args.task_listen.clone(),
         actuator: args.actuator.clone(),
         record: args.record.clone(),
         socket: args.socket.clone(),
@@ -259,6 +264,8 @@ fn log_path(dir: &Path, source: &str) -> Result<PathBuf> {
 pub struct DaemonHandle {
     /// Where bin packets are received (the bound `network.listen`).
     pub listen: SocketAddr,
+    /// Where task packets are received (the bound `network.task_listen`).
+    pub task_listen: SocketAddr,
     /// Where velocity packets go (`network.actuator`).
     pub actuator: SocketAddr,
     /// The local control socket.
@@ -320,6 +327,8 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
 
     let input = bind_udp(config.listen, "network.listen")?;
     let listen = input.local_addr()?;
+    let task_input = bind_udp(config.task_listen, "network.task_listen")?;
+    let task_listen = task_input.local_addr()?;
     let out_addr: SocketAddr = if config.actuator.is_ipv4() {
         "127.0.0.1:0".parse()?
     } else {
@@ -375,6 +384,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
 
     tracing::info!(
         listen = %listen,
+        task_listen = %task_listen,
         actuator = %config.actuator,
         model = %model_path.display(),
         sha256 = %loaded.info.sha256,
@@ -401,6 +411,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         version: VERSION.into(),
         started,
         listen,
+        task_listen,
         actuator: config.actuator,
         armed_at_start: config.arm_at_start,
         model: loaded.info.clone(),
@@ -426,6 +437,8 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
             info.realtime_warnings = warnings;
             RtLoop {
                 input,
+                task_input,
+                task: Default::default(),
                 output,
                 actuator,
                 engine,
@@ -464,6 +477,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         })?;
     Ok(DaemonHandle {
         listen,
+        task_listen,
         actuator,
         control_socket: config.control_socket.clone(),
         recording,

@@ -1,7 +1,9 @@
 //! The real-time loop: one dedicated thread (never a tokio worker) that
-//! waits for the next of four events — a bin arrived, a deadline passed, a
-//! control request, shutdown — and handles it to the end before waiting
-//! again. Per datagram: read, stamp `recv_ns`, record the raw bytes, hand
+//! waits for the next of five events — a bin arrived, a task packet
+//! arrived, a deadline passed, a control request, shutdown — and handles it
+//! to the end before waiting again. Bins come first: task packets are read
+//! after the bin socket is drained, at most [`TASK_BURST`] per wake, so a
+//! flood of them never delays a velocity packet by more than a burst. Per datagram: read, stamp `recv_ns`, record the raw bytes, hand
 //! them to the slot engine (validate → decode → supervise → encode), stamp
 //! `sent_ns`, send, record the packet. Nothing here allocates per bin, logs
 //! per bin or takes a lock; events go to a logging thread over a bounded
@@ -18,12 +20,12 @@ use decoder_core::engine::slot_engine::{
     EngineEvent, OperatorCommand, SlotAnswer, SlotEngine, SlotSink,
 };
 use decoder_core::engine::supervisor::SupervisorState;
-use decoder_core::formats::packet;
 use decoder_core::formats::session_log::{self, RecordKind};
+use decoder_core::formats::{packet, task_packet};
 use tokio::sync::oneshot;
 
 use crate::recorder::{RecordBatcher, RecorderStats};
-use crate::status::{ModelInfo, Monitor, Status, rejected_by_name};
+use crate::status::{ModelInfo, Monitor, Status, TaskMonitor, rejected_by_name};
 use crate::{alloc_count, sys};
 
 /// The longest the loop sleeps without looking at control requests and
@@ -31,6 +33,8 @@ use crate::{alloc_count, sys};
 const IDLE_WAKE: Duration = Duration::from_millis(20);
 /// Datagrams handled per wake before control and shutdown are looked at.
 const MAX_BURST: usize = 256;
+/// Task packets handled per wake before the loop looks at bins again.
+pub const TASK_BURST: usize = 16;
 
 /// A request from the control socket to the real-time thread.
 pub enum ControlRequest {
@@ -60,6 +64,7 @@ pub struct StaticInfo {
     pub version: String,
     pub started: Instant,
     pub listen: SocketAddr,
+    pub task_listen: SocketAddr,
     pub actuator: SocketAddr,
     pub armed_at_start: bool,
     pub model: ModelInfo,
@@ -78,6 +83,9 @@ pub struct StaticInfo {
 /// recorder without ever waiting on it. Nothing else touches the engine.
 pub struct RtLoop {
     pub input: UdpSocket,
+    /// Task packets from the task computer (PROTOCOL.md §6).
+    pub task_input: UdpSocket,
+    pub task: TaskMonitor,
     pub output: UdpSocket,
     pub actuator: SocketAddr,
     pub engine: SlotEngine,
@@ -155,6 +163,9 @@ impl RtLoop {
         if let Err(e) = self.input.set_nonblocking(true) {
             tracing::error!("cannot make the bin socket non-blocking: {e}");
         }
+        if let Err(e) = self.task_input.set_nonblocking(true) {
+            tracing::error!("cannot make the task socket non-blocking: {e}");
+        }
         // Warm-up (the buffers above) is over: from here on the loop is the
         // decode path, except while it serves control requests.
         alloc_count::set_on_decode_path(true);
@@ -170,12 +181,19 @@ impl RtLoop {
                 Some(d) => Duration::from_nanos(d - now).min(IDLE_WAKE),
                 None => IDLE_WAKE,
             };
-            match sys::wait_readable(&self.input, wait) {
-                Ok(true) => self.drain_socket(&mut buf, &mut json),
-                Ok(false) => {
-                    let now = sys::monotonic_ns();
-                    let mut out = out!(self, &mut json);
-                    self.engine.on_timeout(now, &mut out);
+            match sys::wait_readable_pair(&self.input, &self.task_input, wait) {
+                Ok((bins, task)) => {
+                    if bins {
+                        self.drain_socket(&mut buf, &mut json);
+                    }
+                    if task {
+                        self.read_task_packets(&mut buf);
+                    }
+                    if !bins {
+                        let now = sys::monotonic_ns();
+                        let mut out = out!(self, &mut json);
+                        self.engine.on_timeout(now, &mut out);
+                    }
                 }
                 Err(e) => {
                     tracing::error!("waiting on the bin socket failed: {e}");
@@ -226,6 +244,31 @@ impl RtLoop {
                 }
             }
         }
+    }
+
+    /// Reads up to [`TASK_BURST`] task packets: each is recorded as read,
+    /// parsed and counted. None of them touches the engine.
+    fn read_task_packets(&mut self, buf: &mut [u8]) {
+        for _ in 0..TASK_BURST {
+            match self.task_input.recv_from(buf) {
+                Ok((n, _from)) => {
+                    let recv_ns = sys::monotonic_ns();
+                    let datagram = &buf[..n];
+                    if let Some(b) = self.batcher.as_mut() {
+                        b.record(RecordKind::Task, recv_ns, &[datagram]);
+                    }
+                    self.task
+                        .on_packet(recv_ns, task_packet::parse_task(datagram));
+                }
+                Err(e) if e.kind() == std::io::ErrorKind::WouldBlock => return,
+                Err(e) if e.kind() == std::io::ErrorKind::Interrupted => continue,
+                Err(e) => {
+                    tracing::warn!("reading the task socket failed: {e}");
+                    return;
+                }
+            }
+        }
+        self.task.bursts_cut += 1;
     }
 
     fn serve_control(&mut self, json: &mut Vec<u8>) {
@@ -342,6 +385,7 @@ impl RtLoop {
             rss_bytes: None,
             decode_path_allocations: alloc_count::decode_path_allocations(),
             realtime_warnings: self.info.realtime_warnings.clone(),
+            task: self.task.status(self.info.task_listen, sys::monotonic_ns()),
         }
     }
 }

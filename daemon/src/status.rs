@@ -9,6 +9,7 @@ use std::fmt::Write as _;
 use decoder_core::engine::slot_engine::{EngineCounters, SlotAnswer};
 use decoder_core::engine::supervisor::Transition;
 use decoder_core::formats::packet::RejectReason;
+use decoder_core::formats::task_packet::{N_TASK_REJECT_REASONS, TaskReject, TaskState};
 use hdrhistogram::Histogram;
 use serde::{Deserialize, Serialize};
 
@@ -63,6 +64,104 @@ impl Monitor {
             recv_to_send_us: Percentiles::of(&self.recv_to_send),
             origin_to_send_us: Percentiles::of(&self.origin_to_send),
             deadline_overrun_us: Percentiles::of(&self.deadline_overrun),
+        }
+    }
+}
+
+/// What the real-time loop has seen of the task computer: counts by
+/// outcome and the latest state, kept without allocating.
+#[derive(Default)]
+pub struct TaskMonitor {
+    pub received: u64,
+    pub rejected: [u64; N_TASK_REJECT_REASONS],
+    /// Wakes on which task packets were still waiting when the loop went
+    /// back to the bins (a flood, bounded per wake).
+    pub bursts_cut: u64,
+    pub latest: Option<TaskState>,
+    /// When the latest accepted task packet was read.
+    pub latest_recv_ns: u64,
+}
+
+impl TaskMonitor {
+    pub fn on_packet(&mut self, recv_ns: u64, parsed: Result<TaskState, TaskReject>) {
+        self.received += 1;
+        match parsed {
+            Ok(state) => {
+                self.latest = Some(state);
+                self.latest_recv_ns = recv_ns;
+            }
+            Err(reason) => self.rejected[reason.index()] += 1,
+        }
+    }
+
+    pub fn status(&self, listen: std::net::SocketAddr, now_ns: u64) -> TaskStatus {
+        let rejected: u64 = self.rejected.iter().sum();
+        TaskStatus {
+            listen: Some(listen),
+            received: self.received,
+            accepted: self.received - rejected,
+            rejected: TaskReject::NAMES
+                .iter()
+                .zip(self.rejected)
+                .filter(|(_, v)| *v > 0)
+                .map(|(n, v)| (n.to_string(), v))
+                .collect(),
+            bursts_cut: self.bursts_cut,
+            last_phase: self.latest.map(|t| t.phase.name().to_string()),
+            last_trial: self.latest.map(|t| t.trial),
+            last_bin_seq: self.latest.map(|t| t.bin_seq),
+            closed_loop: self.latest.map(|t| t.closed_loop()),
+            last_age_s: self
+                .latest
+                .map(|_| now_ns.saturating_sub(self.latest_recv_ns) as f64 / 1e9),
+        }
+    }
+}
+
+/// The task computer's side of status (PROTOCOL.md §6).
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct TaskStatus {
+    /// The task socket.
+    pub listen: Option<std::net::SocketAddr>,
+    pub received: u64,
+    pub accepted: u64,
+    /// Rejected task packets by reason (reasons with none left out).
+    pub rejected: BTreeMap<String, u64>,
+    pub bursts_cut: u64,
+    pub last_phase: Option<String>,
+    pub last_trial: Option<u32>,
+    pub last_bin_seq: Option<u64>,
+    pub closed_loop: Option<bool>,
+    /// Seconds since the latest accepted task packet.
+    pub last_age_s: Option<f64>,
+}
+
+impl TaskStatus {
+    /// The status table's line.
+    pub fn line(&self) -> String {
+        let rejected: u64 = self.rejected.values().sum();
+        let why: Vec<String> = self
+            .rejected
+            .iter()
+            .map(|(k, v)| format!("{k} {v}"))
+            .collect();
+        let rejected = if rejected == 0 {
+            "none rejected".to_string()
+        } else {
+            format!("{rejected} rejected ({})", why.join(", "))
+        };
+        match (&self.last_phase, self.last_trial, self.last_age_s) {
+            (Some(phase), Some(trial), Some(age)) => format!(
+                "{} received, {rejected}; trial {trial} {phase}, {}, {age:.1} s ago",
+                self.received,
+                if self.closed_loop == Some(true) {
+                    "closed loop"
+                } else {
+                    "cursor moved by the task"
+                }
+            ),
+            _ if self.received == 0 => "no task packets yet".to_string(),
+            _ => format!("{} received, {rejected}; none usable yet", self.received),
         }
     }
 }
@@ -195,6 +294,9 @@ pub struct Status {
     /// warm-up value); `None` when not counted.
     pub decode_path_allocations: Option<u64>,
     pub realtime_warnings: Vec<String>,
+    /// Task packets: counts, the last phase and trial, and their age.
+    #[serde(default)]
+    pub task: TaskStatus,
 }
 
 pub fn rejected_by_name(c: &EngineCounters) -> BTreeMap<String, u64> {
@@ -286,6 +388,14 @@ impl Status {
             let _ = writeln!(s, "MODEL WARNING      {w}");
         }
         let _ = writeln!(s, "bins in / out      {} -> {}", self.listen, self.actuator);
+        let _ = writeln!(
+            s,
+            "task packets       {}{}",
+            self.task
+                .listen
+                .map_or(String::new(), |a| format!("on {a}: ")),
+            self.task.line()
+        );
         let _ = writeln!(
             s,
             "stream             {}",

@@ -1,6 +1,6 @@
 //! The few operating-system calls the daemon needs beyond std: the
 //! monotonic clock as nanoseconds (the same CLOCK_MONOTONIC the front end
-//! stamps `origin_ns` with), a socket wait with nanosecond timeout, and the
+//! stamps `origin_ns` with), socket waits with nanosecond timeouts, and the
 //! opt-in real-time settings (CPU pinning, mlockall, SCHED_FIFO). Each
 //! real-time setting that the OS refuses is a warning, not a failure: the
 //! daemon still runs, only with less timing margin.
@@ -45,6 +45,42 @@ pub fn wait_readable(socket: &impl AsRawFd, timeout: Duration) -> std::io::Resul
         return Err(err);
     }
     Ok(n > 0 && fds.revents & libc::POLLIN != 0)
+}
+
+/// Waits until `bins` or `task` is readable or `timeout` passes; says
+/// which are readable, bins first.
+pub fn wait_readable_pair(
+    bins: &impl AsRawFd,
+    task: &impl AsRawFd,
+    timeout: Duration,
+) -> std::io::Result<(bool, bool)> {
+    let mut fds = [
+        libc::pollfd {
+            fd: bins.as_raw_fd(),
+            events: libc::POLLIN,
+            revents: 0,
+        },
+        libc::pollfd {
+            fd: task.as_raw_fd(),
+            events: libc::POLLIN,
+            revents: 0,
+        },
+    ];
+    let ts = libc::timespec {
+        tv_sec: timeout.as_secs() as libc::time_t,
+        tv_nsec: timeout.subsec_nanos() as libc::c_long,
+    };
+    // SAFETY: two valid pollfds, a valid timespec, and no signal mask.
+    let n = unsafe { libc::ppoll(fds.as_mut_ptr(), 2, &ts, std::ptr::null()) };
+    if n < 0 {
+        let err = std::io::Error::last_os_error();
+        if err.kind() == std::io::ErrorKind::Interrupted {
+            return Ok((false, false));
+        }
+        return Err(err);
+    }
+    let ready = |f: &libc::pollfd| n > 0 && f.revents & libc::POLLIN != 0;
+    Ok((ready(&fds[0]), ready(&fds[1])))
 }
 
 /// Sets the calling thread's timer slack to 1 ns so timed waits wake on

@@ -638,9 +638,9 @@ fn a_full_recording_destination_leaves_decoding_running_and_what_was_written_ver
             .and_then(|r| r.status)
     };
     let deadline = Instant::now() + PATIENCE;
-    let listen = loop {
+    let (listen, task_listen) = loop {
         if let Some(s) = status(&socket) {
-            break s.listen;
+            break (s.listen, s.task.listen.unwrap());
         }
         assert!(Instant::now() < deadline, "decoderd did not come up");
         std::thread::sleep(Duration::from_millis(10));
@@ -650,6 +650,7 @@ fn a_full_recording_destination_leaves_decoding_running_and_what_was_written_ver
         daemon: None,
         dir,
         listen,
+        task_listen,
         socket: socket.clone(),
         sender,
         sink: None,
@@ -746,4 +747,94 @@ fn the_python_example_sender_drives_the_daemon() {
     assert_eq!(s.counters.bins_decoded, n);
     assert_eq!(s.counters.rejected, 0);
     assert!(s.latency.origin_to_send_us.count >= n);
+}
+
+#[test]
+fn task_packets_are_recorded_and_counted_and_a_flood_of_them_delays_no_bin() {
+    use decoder_core::formats::task_packet::{
+        Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
+    };
+    let mut d = Daemon::start(true, TEST_TIMING);
+    let before = d.status();
+    assert_eq!(before.task.received, 0);
+    assert!(
+        before.table().contains("no task packets yet"),
+        "{}",
+        before.table()
+    );
+    let task = d.sender.try_clone().unwrap();
+    let to = d.task_listen;
+    // 20 task packets per 20 ms bin (1 kHz), one in five malformed, while
+    // the bins stream: the bins are served first, the task packets after.
+    let flood = std::thread::spawn(move || {
+        let (mut good, mut short, mut phase) = (0u64, 0u64, 0u64);
+        let t0 = Instant::now();
+        let mut bytes = Vec::new();
+        for i in 0..2000u64 {
+            let due = t0 + Duration::from_millis(1) * i as u32;
+            if let Some(w) = due.checked_duration_since(Instant::now()) {
+                std::thread::sleep(w);
+            }
+            let mut s = TaskState::new(2);
+            s.phase = Phase::Reach;
+            s.trial = (i / 100) as u32;
+            s.bin_seq = i / 20;
+            s.flags = TASK_FLAG_CLOSED_LOOP | TASK_FLAG_TARGET_VALID;
+            s.target_radius = 1.0;
+            s.cursor_pos[0] = i as f64;
+            encode_task(&s, &mut bytes);
+            match i % 5 {
+                3 => {
+                    bytes.truncate(30);
+                    short += 1;
+                }
+                4 => {
+                    bytes[7] = 9;
+                    phase += 1;
+                }
+                _ => good += 1,
+            }
+            task.send_to(&bytes, to).unwrap();
+        }
+        (good, short, phase)
+    });
+    d.stream(0..100, 0);
+    let (good, short, phase) = flood.join().unwrap();
+    let p = d.wait_for_seq(99);
+    let first: Vec<_> = p.iter().take(100).collect();
+    assert_eq!(
+        first.iter().map(|p| p.seq).collect::<Vec<_>>(),
+        (0..100).collect::<Vec<_>>()
+    );
+    assert!(
+        first.iter().all(|p| !missing(p)),
+        "no bin turned missing under the task flood"
+    );
+    let s = d.wait_for_status("every task packet read", |s| {
+        s.task.received == good + short + phase
+    });
+    assert_eq!(s.task.accepted, good);
+    assert_eq!(s.task.rejected.get("too_short"), Some(&short));
+    assert_eq!(s.task.rejected.get("unknown_phase"), Some(&phase));
+    assert_eq!(s.task.last_phase.as_deref(), Some("reach"));
+    assert_eq!(s.task.last_trial, Some(19));
+    assert_eq!(s.task.closed_loop, Some(true));
+    assert!(s.task.last_age_s.unwrap() < 60.0);
+    assert!(s.table().contains("trial 19 reach"), "{}", s.table());
+    let ended = d.stop();
+    // Every task datagram is in the log as read, malformed ones too, and
+    // the bins still replay bit for bit beside them.
+    let mut reader = LogReader::open(&ended.session_log).unwrap();
+    let mut tasks = 0u64;
+    while let Some(r) = reader.next_record() {
+        if let LogRecord::Task { .. } = r {
+            tasks += 1;
+        }
+    }
+    assert_eq!(tasks, good + short + phase);
+    let mut reader = LogReader::open(&ended.session_log).unwrap();
+    replay_log(&mut reader, None, |slot| {
+        assert_eq!(Some(slot.replayed), slot.recorded)
+    })
+    .unwrap();
 }

@@ -103,6 +103,7 @@ impl Launch {
             config: Some(config),
             model: Some(self.model.clone()),
             listen: Some("127.0.0.1:0".into()),
+            task_listen: Some("127.0.0.1:0".into()),
             actuator: Some(self.actuator.to_string()),
             record: self.record.then(|| recordings.clone()),
             socket: Some(socket.clone()),
@@ -138,6 +139,10 @@ impl Launch {
             running,
             // Typed in status, for a child process and in-process alike.
             listen: status.listen,
+            task_listen: status
+                .task
+                .listen
+                .context("the daemon's status names no task socket")?,
             socket,
             log_file,
             recordings,
@@ -155,6 +160,8 @@ pub struct RunningDaemon {
     running: Running,
     /// Where to send bin packets.
     pub listen: SocketAddr,
+    /// Where to send task packets.
+    pub task_listen: SocketAddr,
     /// The control socket.
     pub socket: PathBuf,
     /// The daemon's log (a process's stderr).

@@ -78,6 +78,7 @@ pub struct Daemon {
     pub daemon: Option<RunningDaemon>,
     pub dir: tempfile::TempDir,
     pub listen: SocketAddr,
+    pub task_listen: SocketAddr,
     pub socket: PathBuf,
     pub sender: UdpSocket,
     pub sink: Option<ActuatorSink>,
@@ -104,6 +105,7 @@ impl Daemon {
             .unwrap();
         Daemon {
             listen: daemon.listen,
+            task_listen: daemon.task_listen,
             socket: daemon.socket.clone(),
             daemon: Some(daemon),
             sender: UdpSocket::bind("127.0.0.1:0").unwrap(),
@@ -137,6 +139,11 @@ impl Daemon {
 
     pub fn send_raw(&self, bytes: &[u8]) {
         self.sender.send_to(bytes, self.listen).unwrap();
+    }
+
+    /// Sends one datagram to the task socket.
+    pub fn send_task(&self, bytes: &[u8]) {
+        self.sender.send_to(bytes, self.task_listen).unwrap();
     }
 
     pub fn bin_bytes(&self, seq: u64) -> Vec<u8> {

@@ -176,7 +176,7 @@ pub fn replay_log(
                 });
             }
             LogRecord::Lost { records, .. } => summary.records_lost += records,
-            LogRecord::Event { .. } | LogRecord::End { .. } => {}
+            LogRecord::Event { .. } | LogRecord::End { .. } | LogRecord::Task { .. } => {}
         }
     }
     for replayed in sink.packets.drain(..) {

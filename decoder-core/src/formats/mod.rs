@@ -1,5 +1,5 @@
-//! The bytes and files that cross the crate's edge: bin, velocity and
-//! operator packets, the calibration block directory, the session log and
+//! The bytes and files that cross the crate's edge: bin, velocity, task
+//! and operator packets, the calibration block directory, the session log and
 //! the model file. Parsers here check every length, magic and version before
 //! they trust a field, and their errors name the file or field at fault.
 //! These parse and encode; reading files from disk happens here too (the
@@ -9,3 +9,4 @@ pub mod block;
 pub mod model_file;
 pub mod packet;
 pub mod session_log;
+pub mod task_packet;

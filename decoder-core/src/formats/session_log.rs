@@ -25,7 +25,11 @@ use serde::{Deserialize, Serialize};
 use crate::engine::slot_engine::{EngineSettings, OperatorCommand};
 
 pub const LOG_MAGIC: &[u8; 8] = b"VDECSLOG";
-pub const LOG_FORMAT_VERSION: u32 = 1;
+/// Version this build writes. Version 2 added task records (kind 8);
+/// version 1 logs, which have none, are read too.
+pub const LOG_FORMAT_VERSION: u32 = 2;
+/// Oldest version this build reads.
+pub const LOG_OLDEST_VERSION: u32 = 1;
 const FILE_HEADER_LEN: usize = 8 + 4 + 4 + 4;
 const RECORD_PREFIX_LEN: usize = 4 + 4;
 /// kind + time_ns
@@ -55,6 +59,9 @@ pub enum RecordKind {
     Lost = 6,
     /// The daemon stopped cleanly; body is a JSON summary.
     End = 7,
+    /// A datagram from the task socket as read (PROTOCOL.md §6); time is
+    /// its receive time. Recorded whether or not it parses.
+    Task = 8,
 }
 
 impl RecordKind {
@@ -67,6 +74,7 @@ impl RecordKind {
             5 => RecordKind::Model,
             6 => RecordKind::Lost,
             7 => RecordKind::End,
+            8 => RecordKind::Task,
             _ => return None,
         })
     }
@@ -121,6 +129,10 @@ pub enum LogRecord {
         time_ns: u64,
         json: String,
     },
+    Task {
+        recv_ns: u64,
+        bytes: Vec<u8>,
+    },
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -132,7 +144,7 @@ pub enum SessionLogError {
     },
     #[error("{path}: not a session log (no VDECSLOG magic); pass the .vdlog file the daemon wrote")]
     NotALog { path: PathBuf },
-    #[error("{path}: session log format version {version}; this build reads version 1")]
+    #[error("{path}: session log format version {version}; this build reads versions 1 and 2")]
     Version { path: PathBuf, version: u32 },
     #[error(
         "{path}: the log ends inside its header ({bytes} bytes): the daemon stopped before the header was written, and the file holds no session"
@@ -256,7 +268,7 @@ impl LogReader {
             });
         }
         let version = u32::from_le_bytes(fixed[8..12].try_into().expect("4 bytes"));
-        if version != LOG_FORMAT_VERSION {
+        if !(LOG_OLDEST_VERSION..=LOG_FORMAT_VERSION).contains(&version) {
             return Err(SessionLogError::Version {
                 path: path.to_path_buf(),
                 version,
@@ -504,6 +516,10 @@ fn decode_body(body: &[u8]) -> Option<LogRecord> {
         RecordKind::End => LogRecord::End {
             time_ns,
             json: String::from_utf8_lossy(rest).into_owned(),
+        },
+        RecordKind::Task => LogRecord::Task {
+            recv_ns: time_ns,
+            bytes: rest.to_vec(),
         },
     })
 }

@@ -117,6 +117,7 @@ fn session_from(counts: Vec<u16>, n: usize) -> Block {
         kinematics: None,
         trials: None,
         channel_labels: None,
+        valid: None,
         notes: None,
     }
 }

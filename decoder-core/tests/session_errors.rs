@@ -209,3 +209,76 @@ fn a_directory_that_is_not_there_says_so() {
     let e = Block::read(Path::new("/nonexistent/block")).unwrap_err();
     assert!(matches!(e, BlockError::Missing { .. }), "{e}");
 }
+
+#[test]
+fn valid_rows_round_trip_and_a_wrong_valid_file_is_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut s = good_block(dir.path());
+    let mut valid = vec![true; s.n_bins];
+    valid[0] = false;
+    valid[5] = false;
+    s.valid = Some(valid.clone());
+    s.write(dir.path()).unwrap();
+    assert_eq!(Block::read(dir.path()).unwrap().valid, Some(valid));
+
+    write_npy(
+        dir.path().join("valid.npy"),
+        &ndarray::Array1::from_vec(vec![true; s.n_bins - 1]),
+    )
+    .unwrap();
+    let e = read_err(dir.path());
+    assert!(e.contains("valid.npy") && e.contains("entries"), "{e}");
+    write_npy(
+        dir.path().join("valid.npy"),
+        &ndarray::Array1::from_vec(vec![1.0f64; s.n_bins]),
+    )
+    .unwrap();
+    let e = read_err(dir.path());
+    assert!(e.contains("valid.npy") && e.contains("bool"), "{e}");
+}
+
+#[test]
+fn training_leaves_out_rows_that_are_not_valid() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut s = good_block(dir.path());
+    let keep = s.clone();
+    // Bins 10..20 are garbage (kinematics far off) and marked not valid:
+    // the fit must equal the fit on the block without them.
+    let kin = s.kinematics.as_mut().unwrap();
+    for b in 10..20 {
+        for c in 0..kin.cols {
+            kin.set(b, c, 1e6);
+        }
+    }
+    let mut valid = vec![true; s.n_bins];
+    valid[10..20].iter_mut().for_each(|v| *v = false);
+    s.valid = Some(valid);
+    let only = s.valid_only();
+    assert_eq!(only.n_bins, keep.n_bins - 10);
+    assert_eq!(only.valid_runs(), vec![0..only.n_bins]);
+    assert_eq!(s.valid_runs(), vec![0..10, 20..s.n_bins]);
+    let mut cut = keep.clone();
+    cut.counts.drain(10 * cut.n_channels..20 * cut.n_channels);
+    let k = cut.kinematics.as_mut().unwrap();
+    k.data.drain(10 * k.cols..20 * k.cols);
+    k.rows -= 10;
+    cut.n_bins -= 10;
+    assert_eq!(only.counts, cut.counts);
+    assert_eq!(only.kinematics, cut.kinematics);
+    // Trials renumbered onto the kept bins.
+    for (a, b) in only
+        .trials
+        .iter()
+        .flatten()
+        .zip(keep.trials.iter().flatten())
+    {
+        let shift = |x: usize| x - x.clamp(10, 20) + 10;
+        assert_eq!(
+            (a.start_bin, a.end_bin),
+            (shift(b.start_bin), shift(b.end_bin))
+        );
+    }
+    let opts = KalmanFitOptions::default();
+    let (m, _) = fit_kalman(&only, &opts).unwrap();
+    assert!(m.h.is_finite());
+}

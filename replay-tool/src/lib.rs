@@ -52,6 +52,9 @@ pub enum Command {
     /// Decode every bin of a block or a session log through the daemon's
     /// decode pipeline and write the estimates.
     Replay(cmd::replay::Args),
+    /// Write a session log as a session directory: counts, the task's
+    /// kinematics, trials, valid rows, and the estimates and commands sent.
+    Export(cmd::export::Args),
     /// Check a session log bit for bit against a replay through the
     /// daemon's slot engine; exit 1 at the first difference.
     Verify(cmd::verify::Args),
@@ -111,6 +114,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Evaluate(a) => cmd::evaluate::run(&a),
         Command::Replay(a) => cmd::replay::run(&a),
         Command::Verify(a) => cmd::verify::run(&a),
+        Command::Export(a) => cmd::export::run(&a),
         Command::Stream(a) => cmd::stream::run(&a),
         Command::ClosedLoop(a) => cmd::closed_loop::run_verb(&a),
         Command::Model {

@@ -1,7 +1,7 @@
 //! The replay-tool binary as a user runs it: verbs, outputs, exit codes and
 //! the messages for bad input.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
 use ndarray::Array2;
@@ -510,7 +510,7 @@ fn verbs_refuse_the_wrong_kind_of_input_and_name_the_flag() {
         2,
     );
     assert!(
-        err.contains("no kinematics") && err.contains("--session"),
+        err.contains("not a session log") && err.contains("--session"),
         "{err}"
     );
     let err = fails_with(&["verify", p(dir.path())], 2);
@@ -689,6 +689,14 @@ fn closed_loop_summary(report: &Path) -> serde_json::Value {
     s["summary"].clone()
 }
 
+/// The session log the closed loop's spawned daemon recorded.
+fn closed_loop_log(report: &Path) -> PathBuf {
+    let s: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("closed-loop.json")).unwrap())
+            .unwrap();
+    PathBuf::from(s["session_log"].as_str().expect("a session log"))
+}
+
 /// A decoder trained on the simulated array lets the simulated user reach
 /// targets; one trained with the channels shuffled does not; a refit from
 /// the good decoder's closed-loop block is at least as good and faster per
@@ -763,12 +771,14 @@ fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_ref
     assert!(success(&with_good) >= 0.5, "{with_good}");
     assert!(success(&with_shuffled) <= 0.25, "{with_shuffled}");
 
+    // The session log is the closed-loop block: its task packets give
+    // cursor, shown velocity, targets and the radius.
     let refit = dir.path().join("refit.model");
-    let block = good_report.join("closed-loop-block");
+    let log = closed_loop_log(&good_report);
     let out = ok(&[
         "train",
         "--session",
-        p(&block),
+        p(&log),
         "--refit",
         "--decoder",
         "kalman",
@@ -970,4 +980,179 @@ fn evaluate_compares_point_process_forms_with_goodness_of_fit() {
             .unwrap()
             .contains("<svg")
     );
+}
+
+/// A session recorded through the daemon with task packets is a
+/// calibration block (PROTOCOL.md §5 `export`, §6): one row per slot, the
+/// kinematics of the screen shown while each bin was counted, trials, valid
+/// rows, and what the daemon sent; and `train --session LOG` trains on it
+/// exactly as on its export.
+#[test]
+fn a_closed_loop_recording_exports_as_a_session_directory_and_trains() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+    ]);
+    let model = dir.path().join("k.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let report = dir.path().join("cl");
+    ok(&[
+        "closed-loop",
+        "--model",
+        p(&model),
+        "--time-scale",
+        "0",
+        "--trials",
+        "4",
+        "--report",
+        p(&report),
+    ]);
+    let summary: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("closed-loop.json")).unwrap())
+            .unwrap();
+    let bins = summary["bins"].as_u64().unwrap() as usize;
+    let log = closed_loop_log(&report);
+
+    let out_dir = dir.path().join("exported");
+    let said = ok(&["export", p(&log), "--out", p(&out_dir)]);
+    assert!(said.contains(&format!("{bins} rows")), "{said}");
+    let block = decoder_core::Block::read(&out_dir).unwrap();
+    assert_eq!(block.n_bins, bins);
+    assert_eq!(
+        block.kinematic_names,
+        ["pos_x", "pos_y", "vel_x", "vel_y"].map(String::from)
+    );
+    // Bin 0 was counted before any task packet: not valid. Every later bin
+    // came (the user waits for each answer) and had a screen.
+    let valid = block.valid.clone().unwrap();
+    assert!(!valid[0]);
+    assert!(valid[1..].iter().all(|v| *v), "{said}");
+    let trials = block.trials.clone().unwrap();
+    assert_eq!(trials.len(), 4);
+    assert_eq!(trials[0].start_bin, 1);
+    for t in &trials {
+        assert!((t.target_x.hypot(t.target_y) - 10.0).abs() < 1e-9, "{t:?}");
+    }
+
+    // The shown velocity of row s is the command sent for bin s − 1 (the
+    // task applied it, then drew the screen bin s was counted under).
+    let read = |name: &str| {
+        Array2::<f64>::read_npy(std::fs::File::open(out_dir.join(name)).unwrap()).unwrap()
+    };
+    let commands = read("commands.npy");
+    let estimates = read("estimates.npy");
+    assert_eq!(commands.dim(), (bins, 2));
+    let kin = block.kinematics.as_ref().unwrap();
+    for s in 1..bins {
+        // Row s − 1 ended its trial when row s starts the next one; the
+        // cursor resets, but the velocity shown is still that command.
+        assert_eq!(kin.get(s, 2), commands[[s - 1, 0]], "row {s}");
+        assert_eq!(kin.get(s, 3), commands[[s - 1, 1]], "row {s}");
+    }
+    // The estimates sent are what offline replay of the log computes.
+    let replayed = dir.path().join("replayed.npy");
+    ok(&["replay", "--session", p(&log), "--out", p(&replayed)]);
+    let replayed = Array2::<f64>::read_npy(std::fs::File::open(&replayed).unwrap()).unwrap();
+    assert_eq!(replayed, estimates);
+
+    // Training on the log and on its export gives the same model.
+    let from_log = dir.path().join("from-log.model");
+    let from_dir = dir.path().join("from-dir.model");
+    for (session, out) in [(&log, &from_log), (&out_dir, &from_dir)] {
+        ok(&[
+            "train",
+            "--session",
+            p(session),
+            "--decoder",
+            "kalman",
+            "--out",
+            p(out),
+            "--no-cv",
+        ]);
+    }
+    let show = |m: &Path| {
+        let mut v: serde_json::Value =
+            serde_json::from_str(&ok(&["model", "show", p(m), "--json"])).unwrap();
+        v.as_object_mut().unwrap().remove("trained_at");
+        v
+    };
+    assert_eq!(show(&from_log), show(&from_dir));
+}
+
+/// A recording made without a task computer holds no kinematics: train
+/// says so and what to do.
+#[test]
+fn a_recording_without_task_packets_is_refused_for_training_with_the_reason() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "16",
+    ]);
+    let model = dir.path().join("k.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let report = dir.path().join("bench");
+    ok(&[
+        "bench",
+        "--model",
+        p(&model),
+        "--seconds",
+        "1",
+        "--report",
+        p(&report),
+    ]);
+    let log = std::fs::read_dir(report.join("daemon").join("recordings"))
+        .unwrap()
+        .next()
+        .unwrap()
+        .unwrap()
+        .path();
+    let err = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&log),
+            "--decoder",
+            "kalman",
+            "--out",
+            "m.model",
+        ],
+        2,
+    );
+    assert!(
+        err.contains("no task packets") && err.contains("task_listen"),
+        "{err}"
+    );
+    let said = ok(&["export", p(&log), "--out", p(&dir.path().join("e"))]);
+    assert!(said.contains("no task packets"), "{said}");
 }

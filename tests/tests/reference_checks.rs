@@ -503,6 +503,7 @@ fn intention_reestimation_equals_the_rule_in_numpy() {
                 .collect(),
         ),
         channel_labels: None,
+        valid: None,
         notes: None,
     };
     let (refit, counted) = reestimate_intention(&block, 1.0).unwrap();

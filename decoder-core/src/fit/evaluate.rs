@@ -122,6 +122,7 @@ fn subset(session: &Block, ranges: &[std::ops::Range<usize>]) -> Block {
         }),
         trials: None,
         channel_labels: None,
+        valid: None,
         notes: None,
     }
 }

@@ -151,6 +151,7 @@ mod tests {
                     .collect(),
             ),
             channel_labels: None,
+            valid: None,
             notes: None,
         }
     }

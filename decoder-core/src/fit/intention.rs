@@ -105,6 +105,7 @@ mod tests {
                 target_y: 0.0,
             }]),
             channel_labels: None,
+            valid: None,
             notes: None,
         }
     }

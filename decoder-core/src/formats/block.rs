@@ -22,6 +22,7 @@ pub const MANIFEST_FILE: &str = "manifest.toml";
 pub const COUNTS_FILE: &str = "counts.npy";
 pub const KINEMATICS_FILE: &str = "kinematics.npy";
 pub const TRIALS_FILE: &str = "trials.csv";
+pub const VALID_FILE: &str = "valid.npy";
 pub const SESSION_FORMAT_VERSION: u32 = 1;
 
 /// One trial of a block: bins `start_bin..end_bin` (end exclusive) and the
@@ -52,6 +53,9 @@ pub struct Block {
     pub trials: Option<Vec<Trial>>,
     pub channel_labels: Option<Vec<String>>,
     pub notes: Option<String>,
+    /// Per bin, whether it is used for training and scoring (`valid.npy`);
+    /// `None` means every bin is valid.
+    pub valid: Option<Vec<bool>>,
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -177,6 +181,12 @@ impl Block {
         } else {
             None
         };
+        let valid_path = dir.join(VALID_FILE);
+        let valid = if valid_path.exists() {
+            Some(read_valid(&valid_path, n_bins)?)
+        } else {
+            None
+        };
         Ok(Block {
             bin_width: BinWidth::from_ms(manifest.bin_ms).expect("checked with the manifest"),
             n_bins,
@@ -187,6 +197,7 @@ impl Block {
             trials,
             channel_labels: manifest.channel_labels,
             notes: manifest.notes,
+            valid,
         })
     }
 
@@ -223,7 +234,108 @@ impl Block {
             let bytes = writer.into_inner().expect("in-memory csv");
             write_atomic(&dir.join(TRIALS_FILE), &bytes)?;
         }
+        if let Some(valid) = &self.valid {
+            let arr = ndarray::Array1::from_vec(valid.clone());
+            let mut out = Vec::new();
+            arr.write_npy(&mut out).expect("in-memory npy write");
+            write_atomic(&dir.join(VALID_FILE), &out)?;
+        }
         Ok(())
+    }
+
+    /// Bins marked valid (all of them without `valid.npy`).
+    pub fn n_valid(&self) -> usize {
+        self.valid
+            .as_ref()
+            .map_or(self.n_bins, |v| v.iter().filter(|b| **b).count())
+    }
+
+    /// The runs of consecutive valid bins, in order.
+    pub fn valid_runs(&self) -> Vec<std::ops::Range<usize>> {
+        let Some(valid) = &self.valid else {
+            return std::iter::once(0..self.n_bins).collect();
+        };
+        let mut runs = Vec::new();
+        let mut start = None;
+        for (b, &ok) in valid.iter().enumerate() {
+            match (ok, start) {
+                (true, None) => start = Some(b),
+                (false, Some(s)) => {
+                    runs.push(s..b);
+                    start = None;
+                }
+                _ => {}
+            }
+        }
+        if let Some(s) = start {
+            runs.push(s..valid.len());
+        }
+        runs
+    }
+
+    /// The block with its bins that are not valid left out, runs joined
+    /// end to end and trials renumbered onto the kept bins (a trial left
+    /// with no bin goes). The block itself when every bin is valid.
+    pub fn valid_only(&self) -> Block {
+        let Some(valid) = &self.valid else {
+            return self.clone();
+        };
+        if valid.iter().all(|v| *v) {
+            return Block {
+                valid: None,
+                ..self.clone()
+            };
+        }
+        let n = self.n_channels;
+        // kept_before[b]: valid bins before bin b.
+        let mut kept_before = Vec::with_capacity(self.n_bins + 1);
+        let mut k = 0usize;
+        for &ok in valid {
+            kept_before.push(k);
+            k += usize::from(ok);
+        }
+        kept_before.push(k);
+        let mut counts = Vec::with_capacity(k * n);
+        let cols = self.kinematic_names.len();
+        let mut kin = Vec::with_capacity(if self.kinematics.is_some() {
+            k * cols
+        } else {
+            0
+        });
+        for (b, _) in valid.iter().enumerate().filter(|(_, ok)| **ok) {
+            counts.extend_from_slice(self.bin_counts(b));
+            if let Some(m) = &self.kinematics {
+                kin.extend_from_slice(m.row(b));
+            }
+        }
+        let trials = self.trials.as_ref().map(|ts| {
+            ts.iter()
+                .filter_map(|t| {
+                    let (s, e) = (kept_before[t.start_bin], kept_before[t.end_bin]);
+                    (s < e).then(|| Trial {
+                        start_bin: s,
+                        end_bin: e,
+                        ..t.clone()
+                    })
+                })
+                .collect()
+        });
+        Block {
+            bin_width: self.bin_width,
+            n_bins: k,
+            n_channels: n,
+            counts,
+            kinematic_names: self.kinematic_names.clone(),
+            kinematics: self.kinematics.as_ref().map(|_| Mat {
+                rows: k,
+                cols,
+                data: kin,
+            }),
+            trials,
+            channel_labels: self.channel_labels.clone(),
+            notes: self.notes.clone(),
+            valid: None,
+        }
     }
 
     /// The counts of one bin.
@@ -510,6 +622,27 @@ fn read_trials(path: &Path, n_bins: usize) -> Result<Vec<Trial>, BlockError> {
         trials.push(trial);
     }
     Ok(trials)
+}
+
+fn read_valid(path: &Path, n_bins: usize) -> Result<Vec<bool>, BlockError> {
+    let bytes = read_bytes(path, "valid.npy")?;
+    let arr = ndarray::Array1::<bool>::read_npy(&bytes[..]).map_err(|e| BlockError::Npy {
+        path: path.to_path_buf(),
+        problem: format!(
+            "{}; valid.npy must be a 1-D bool array, one entry per bin",
+            npy_problem(&e)
+        ),
+    })?;
+    if arr.len() != n_bins {
+        return Err(BlockError::Shape {
+            path: path.to_path_buf(),
+            problem: format!(
+                "valid.npy has {} entries but counts.npy has {n_bins} bins",
+                arr.len()
+            ),
+        });
+    }
+    Ok(arr.to_vec())
 }
 
 fn npy_bytes<T: ndarray_npy::WritableElement>(arr: &Array2<T>) -> Vec<u8> {

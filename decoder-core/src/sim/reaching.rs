@@ -287,6 +287,7 @@ pub fn simulate(options: &SimOptions) -> Result<(Block, SimChannels), SimError> 
         kinematics: Some(kin),
         trials: Some(trials),
         channel_labels: None,
+        valid: None,
         notes: Some(format!(
             "synthetic center-out block: seed {}, population {}, {} channels, {} min, positions in cm, velocities in cm/s",
             options.seed, options.population_seed, n, options.minutes

@@ -1,12 +1,13 @@
 //! `replay-tool closed-loop`: a simulated participant drives the real
-//! daemon, spawned on loopback or already running. Each bin the user intends a velocity toward the target from
-//! where the cursor is; their channels fire accordingly; the bin goes to
-//! `decoderd` over UDP as a front end would send it; the velocity packet
-//! that comes back moves the cursor. This is how a user compares decoders
-//! in closed loop without a participant. The block is written as a session
-//! directory (counts, cursor position, decoded velocity, targets) for
-//! `replay-tool train --refit`. The cursor and target travel with the
-//! bins here; the task packets of PROTOCOL.md §6 are not sent yet.
+//! daemon, spawned on loopback or already running. Each bin the user
+//! intends a velocity toward the target from where the cursor is; their
+//! channels fire accordingly; the bin goes to `decoderd` over UDP as a
+//! front end would send it; the velocity packet that comes back moves the
+//! cursor, and the task computer's side of the simulation tells the daemon
+//! what the screen now shows with a task packet (PROTOCOL.md §6). So the
+//! session is recorded as a real one would be, and its session log is the
+//! closed-loop block `train --refit --session LOG` retrains from. This is
+//! how a user compares decoders in closed loop without a participant.
 
 use std::net::{SocketAddr, UdpSocket};
 use std::path::{Path, PathBuf};
@@ -14,12 +15,14 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result, bail};
 use daemon_rig::Launch;
-use decoder_core::formats::block::Trial;
+use decoder_core::ModelFile;
+use decoder_core::formats::log_block::{LogBlock, read_log_block};
 use decoder_core::formats::packet::{self, BinHeader, VelocityPacket};
-use decoder_core::linalg::Mat;
+use decoder_core::formats::task_packet::{
+    Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
+};
 use decoder_core::sim::reaching::population;
 use decoder_core::sim::user::{CenterOut, SimulatedUser, TaskOptions, TaskSummary, TrialResult};
-use decoder_core::{Block, ModelFile};
 
 use crate::CheckFailed;
 use crate::output::write_atomic;
@@ -45,6 +48,10 @@ pub struct Args {
     /// With --daemon: where to receive its velocity packets.
     #[arg(long, requires = "daemon")]
     pub actuator: Option<String>,
+    /// With --daemon: its task socket (network.task_listen), where the
+    /// simulated task sends cursor, target and phase.
+    #[arg(long, requires = "daemon", default_value = "127.0.0.1:27402")]
+    pub task_listen: String,
     /// Number of center-out trials.
     #[arg(long, default_value_t = 16)]
     pub trials: usize,
@@ -62,8 +69,8 @@ pub struct Args {
     /// Exit 1 when the success rate is below this fraction (0..1).
     #[arg(long)]
     pub min_success: Option<f64>,
-    /// Folder for closed-loop.json, the spawned daemon's files and the
-    /// closed-loop block.
+    /// Folder for closed-loop.json and the spawned daemon's files (its
+    /// session log is the closed-loop block).
     #[arg(long, default_value = "closed-loop-report")]
     pub report: PathBuf,
 }
@@ -80,16 +87,18 @@ pub fn run_verb(args: &Args) -> Result<()> {
         .with_context(|| format!("cannot create {}", args.report.display()))?;
     let exe = super::find_decoderd(args.decoderd.as_deref())?;
     let running = match (&args.daemon, &args.actuator) {
-        (Some(d), Some(a)) => Some((
-            super::socket_addr("--daemon", d)?,
-            super::socket_addr("--actuator", a)?,
-        )),
+        (Some(d), Some(a)) => Some(RunningAddrs {
+            listen: super::socket_addr("--daemon", d)?,
+            actuator: super::socket_addr("--actuator", a)?,
+            task_listen: super::socket_addr("--task-listen", &args.task_listen)?,
+        }),
         _ => None,
     };
     let setup = ClosedLoopSetup {
         decoderd: exe.as_deref(),
         config: args.config.as_deref(),
         running,
+        extra_toml: String::new(),
         model: &args.model,
         work: &args.report.join("daemon"),
         task: TaskOptions {
@@ -117,18 +126,35 @@ pub fn run_verb(args: &Args) -> Result<()> {
 pub struct ClosedLoopRun {
     pub summary: TaskSummary,
     pub trials: Vec<TrialResult>,
-    /// The block as a session directory would hold it.
-    pub block: Block,
+    /// The spawned daemon's session log (bins, task packets, what it
+    /// sent): the closed-loop block. `None` for a running daemon, whose
+    /// recording is its own.
+    pub session_log: Option<PathBuf>,
+    /// That log read as a block (as `export` writes it).
+    pub block: Option<LogBlock>,
+    pub bins: usize,
     /// Slots answered without the bin's counts (late or lost bins).
     pub coasted: usize,
+}
+
+/// A running daemon's addresses.
+#[derive(Clone, Copy, Debug)]
+pub struct RunningAddrs {
+    /// Its bin socket.
+    pub listen: SocketAddr,
+    /// Where it sends velocity packets (this process receives there).
+    pub actuator: SocketAddr,
+    /// Its task socket.
+    pub task_listen: SocketAddr,
 }
 
 pub struct ClosedLoopSetup<'a> {
     pub decoderd: Option<&'a Path>,
     pub config: Option<&'a Path>,
-    /// A running daemon (its bin address, and the actuator address to
-    /// receive on) instead of a spawned one.
-    pub running: Option<(SocketAddr, SocketAddr)>,
+    /// A running daemon instead of a spawned one.
+    pub running: Option<RunningAddrs>,
+    /// Extra daemon configuration for a spawned daemon without --config.
+    pub extra_toml: String,
     pub model: &'a Path,
     pub work: &'a Path,
     pub task: TaskOptions,
@@ -157,21 +183,22 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     let mut user = SimulatedUser::new(population(setup.array_seed, n), &task_options);
     let mut task = CenterOut::new(task_options.clone());
 
-    let (sink, daemon, listen) = match setup.running {
-        Some((listen, actuator)) => {
-            let sink = UdpSocket::bind(actuator)
-                .with_context(|| format!("cannot bind --actuator {actuator}"))?;
-            (sink, None, listen)
+    let (sink, daemon, listen, task_listen) = match setup.running {
+        Some(r) => {
+            let sink = UdpSocket::bind(r.actuator)
+                .with_context(|| format!("cannot bind --actuator {}", r.actuator))?;
+            (sink, None, r.listen, r.task_listen)
         }
         None => {
             let sink = UdpSocket::bind("127.0.0.1:0")?;
             let daemon = Launch::new(setup.model, setup.work, sink.local_addr()?)
                 .binary(setup.decoderd)
                 .config(setup.config)
+                .extra_toml(&setup.extra_toml)
                 .arm(true)
                 .start()?;
-            let listen = daemon.listen;
-            (sink, Some(daemon), listen)
+            let (listen, task_listen) = (daemon.listen, daemon.task_listen);
+            (sink, Some(daemon), listen, task_listen)
         }
     };
     sink.set_read_timeout(Some(Duration::from_millis(50)))?;
@@ -181,10 +208,7 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     let mut counts = vec![0u16; n];
     let mut datagram = Vec::with_capacity(packet::BIN_HEADER_LEN + 2 * n);
     let mut reply = [0u8; 1024];
-    let mut all_counts: Vec<u16> = Vec::new();
-    let mut kinematics: Vec<[f64; 4]> = Vec::new();
-    let mut trials = Vec::new();
-    let mut trial_start = 0usize;
+    let mut task_bytes = Vec::with_capacity(128);
     let mut coasted = 0;
     let t0 = Instant::now();
     let mut seq = 0u64;
@@ -226,52 +250,58 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
             }
         };
         coasted += usize::from(answer.flags & packet::FLAG_BIN_MISSING != 0);
-        let cursor = task.cursor();
         let command = [answer.command[0], answer.command[1]];
-        all_counts.extend_from_slice(&counts);
-        kinematics.push([cursor[0], cursor[1], command[0], command[1]]);
+        let trial = task.trial() as u32;
         let target = task.target();
-        if task.advance(command).is_some() {
-            let end = kinematics.len();
-            trials.push(Trial {
-                trial: trials.len() as u32,
-                start_bin: trial_start,
-                end_bin: end,
-                target_x: target[0],
-                target_y: target[1],
-            });
-            trial_start = end;
+        let ended = task.advance(command);
+        // What the screen shows now, having applied bin `seq`'s command:
+        // the outcome of a trial that just ended, then the next trial.
+        let mut shown = |phase: Phase, trial: u32, cursor: [f64; 2], target: [f64; 2]| {
+            let mut state = TaskState::new(2);
+            state.phase = phase;
+            state.bin_seq = seq;
+            state.origin_ns = daemon::sys::monotonic_ns();
+            state.trial = trial;
+            state.flags = TASK_FLAG_CLOSED_LOOP | TASK_FLAG_TARGET_VALID;
+            state.target_radius = task_options.window;
+            state.cursor_pos[..2].copy_from_slice(&cursor);
+            state.cursor_vel[..2].copy_from_slice(&command);
+            state.target_pos[..2].copy_from_slice(&target);
+            encode_task(&state, &mut task_bytes);
+            front_end.send_to(&task_bytes, task_listen)
+        };
+        if let Some(result) = &ended {
+            let outcome = if result.success {
+                Phase::Success
+            } else {
+                Phase::Failure
+            };
+            shown(outcome, trial, task.cursor(), target)?;
+        }
+        if !task.done() {
+            let phase = if task.inside() {
+                Phase::Hold
+            } else {
+                Phase::Reach
+            };
+            shown(phase, task.trial() as u32, task.cursor(), task.target())?;
         }
         seq += 1;
     }
-    if let Some(d) = daemon {
-        d.stop()?;
-    }
-    let t = kinematics.len();
-    let rows: Vec<Vec<f64>> = kinematics.iter().map(|k| k.to_vec()).collect();
-    let kin = Mat::from_rows(&rows);
-    let block = Block {
-        bin_width: model.bin_width,
-        n_bins: t,
-        n_channels: n,
-        counts: all_counts,
-        kinematic_names: ["pos_x", "pos_y", "vel_x", "vel_y"]
-            .map(String::from)
-            .to_vec(),
-        kinematics: Some(kin),
-        trials: Some(trials),
-        channel_labels: None,
-        notes: Some(format!(
-            "closed-loop center-out block: simulated user (array seed {}), decoder {}, target window {} cm; pos = cursor, vel = decoded command (cm/s)",
-            setup.array_seed,
-            setup.model.display(),
-            task_options.window
-        )),
+    let session_log = match daemon {
+        Some(d) => d.stop()?.session_log,
+        None => None,
+    };
+    let block = match &session_log {
+        Some(log) => Some(read_log_block(log)?),
+        None => None,
     };
     Ok(ClosedLoopRun {
         summary: task.summary(),
         trials: task.results().to_vec(),
+        session_log,
         block,
+        bins: seq as usize,
         coasted,
     })
 }
@@ -279,16 +309,18 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
 /// Runs the closed loop and writes its report; returns the summary.
 pub fn report(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary> {
     let run = run(setup)?;
-    let block_dir: PathBuf = report.join("closed-loop-block");
-    run.block
-        .write(&block_dir)
-        .with_context(|| format!("writing {}", block_dir.display()))?;
+    let session_log = run
+        .session_log
+        .as_ref()
+        .map(|p| std::path::absolute(p).unwrap_or(p.clone()));
     let json = serde_json::json!({
         "model": setup.model.display().to_string(),
         "summary": run.summary,
         "trials": run.trials,
         "slots_coasted": run.coasted,
-        "bins": run.block.n_bins,
+        "bins": run.bins,
+        "session_log": session_log,
+        "valid_rows": run.block.as_ref().map(|b| b.block.n_valid()),
     });
     write_atomic(
         &report.join("closed-loop.json"),
@@ -306,9 +338,15 @@ pub fn report(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary>
         s.mean_path_efficiency
             .map_or("-".into(), |e| format!("{e:.2}")),
     );
-    println!(
-        "   block (counts, cursor, decoded velocity, targets) for `train --refit` -> {}",
-        block_dir.display()
-    );
+    match &session_log {
+        Some(log) => println!(
+            "   session log (bins, task packets, commands) -> {}\n   retrain from it: replay-tool train --session {} --refit --decoder kalman --out refit.model",
+            log.display(),
+            log.display()
+        ),
+        None => println!(
+            "   the running daemon recorded the session (bins and task packets) in its own recording directory; `train --refit --session LOG` retrains from that log"
+        ),
+    }
     Ok(run.summary.clone())
 }

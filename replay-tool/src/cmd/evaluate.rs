@@ -14,7 +14,8 @@ use crate::{plot, progress};
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Block to evaluate on: a session directory with kinematics.
+    /// Block to evaluate on: a session directory with kinematics, or a
+    /// session log recorded with task packets.
     #[arg(long)]
     pub session: PathBuf,
     /// Decoders to compare, comma-separated (kalman, wiener,
@@ -69,7 +70,9 @@ pub fn run(args: &Args) -> Result<()> {
             specs.push(spec_for(*k, &cfg)?);
         }
     }
-    let session = super::block_with_kinematics(&args.session)?;
+    let session = super::block_with_kinematics(&args.session)?
+        .block
+        .valid_only();
     for spec in &specs {
         super::warn_unused_kinematics(&session, &args.session, spec);
     }

@@ -6,6 +6,7 @@ pub mod bench;
 pub mod closed_loop;
 pub mod demo;
 pub mod evaluate;
+pub mod export;
 pub mod model_show;
 pub mod replay;
 pub mod simulate;
@@ -31,17 +32,45 @@ pub fn load_train_config(path: Option<&Path>) -> Result<TrainConfig> {
     }
 }
 
+/// A block behind `--session`, with what a session log adds.
+pub struct SessionBlock {
+    pub block: Block,
+    /// The target radius the task packets gave (a session log only).
+    pub target_radius: Option<f64>,
+}
+
 /// The block behind `--session` for a verb that needs kinematics (train,
-/// evaluate): a session directory (PROTOCOL.md §3). A session log holds
-/// bins but no kinematics, so it is refused with what to do instead.
-pub fn block_with_kinematics(session: &Path) -> Result<Block> {
+/// evaluate): a session directory (PROTOCOL.md §3), or a session log with
+/// task packets, read as `export` writes it (PROTOCOL.md §5). A log
+/// without task packets has no kinematics and is refused with the reason.
+pub fn block_with_kinematics(session: &Path) -> Result<SessionBlock> {
     if session.is_file() {
-        bail!(
-            "--session {}: a session log holds the bins the daemon received but no kinematics, which training and evaluation need; give the session directory of the calibration block",
-            session.display()
+        let log = decoder_core::formats::log_block::read_log_block(session)
+            .with_context(|| format!("--session {}", session.display()))?;
+        if log.block.kinematics.is_none() {
+            bail!(
+                "--session {}: the log holds no task packets, so it has no kinematics to train or score on; record the block with the task computer sending task packets (PROTOCOL.md §6) to the daemon's task socket (network.task_listen)",
+                session.display()
+            );
+        }
+        let s = &log.summary;
+        eprintln!(
+            "replay-tool: {}: {} slots, {} valid for training ({} bins missing, {} before the first task packet)",
+            session.display(),
+            s.rows,
+            log.block.n_valid(),
+            s.bins_missing,
+            s.rows_without_task_state
         );
+        return Ok(SessionBlock {
+            block: log.block,
+            target_radius: log.summary.target_radius,
+        });
     }
-    Ok(Block::read(session)?)
+    Ok(SessionBlock {
+        block: Block::read(session)?,
+        target_radius: None,
+    })
 }
 
 /// Says which of the block's kinematics the decoder leaves out, so a 3-D

@@ -31,21 +31,22 @@ pub enum DecoderKind {
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
-    /// Calibration block: a session directory with kinematics (with
-    /// --refit, a closed-loop block with cursor position, decoded velocity
-    /// and targets).
+    /// Calibration block: a session directory with kinematics, or a
+    /// session log recorded with task packets (with --refit, a closed-loop
+    /// block or log with cursor, shown velocity and targets).
     #[arg(long)]
     pub session: PathBuf,
-    /// Retrain from a closed-loop block (the `closed-loop-block` folder
-    /// `replay-tool closed-loop` writes) with intention re-estimation:
+    /// Retrain from a closed-loop block or log (such as the session log
+    /// `replay-tool closed-loop` records) with intention re-estimation:
     /// decoded velocity turned toward the target, zero inside it (Gilja et
     /// al. 2012).
     #[arg(long)]
     pub refit: bool,
     /// With --refit: the target's acceptance radius, in position units;
-    /// inside it the intended velocity is zero.
-    #[arg(long, default_value_t = 2.0, requires = "refit")]
-    pub target_radius: f64,
+    /// inside it the intended velocity is zero [default: the radius the
+    /// log's task packets gave, else 2].
+    #[arg(long, requires = "refit")]
+    pub target_radius: Option<f64>,
     /// Decoder to train.
     #[arg(long, value_enum)]
     pub decoder: DecoderKind,
@@ -221,15 +222,16 @@ pub fn run(args: &Args) -> Result<()> {
     }
     let spec = spec_for(args.decoder, &cfg)?;
     let source = args.session.clone();
-    let block = super::block_with_kinematics(&source)?;
+    let super::SessionBlock {
+        block,
+        target_radius: logged_radius,
+    } = super::block_with_kinematics(&source)?;
     let session = if args.refit {
-        if !(args.target_radius.is_finite() && args.target_radius >= 0.0) {
-            bail!(
-                "--target-radius {}: must be a finite distance ≥ 0",
-                args.target_radius
-            );
+        let radius = args.target_radius.or(logged_radius).unwrap_or(2.0);
+        if !(radius.is_finite() && radius >= 0.0) {
+            bail!("--target-radius {radius}: must be a finite distance ≥ 0");
         }
-        let (refit, n) = reestimate_intention(&block, args.target_radius)
+        let (refit, n) = reestimate_intention(&block, radius)
             .with_context(|| format!("re-estimating intention in {}", source.display()))?;
         println!(
             "intention re-estimated in {}: {} bins turned toward the target, {} zeroed inside it, {} outside trials left as decoded",
@@ -242,6 +244,9 @@ pub fn run(args: &Args) -> Result<()> {
     } else {
         block
     };
+    // Bins that never came, or came before the task said anything, train
+    // nothing.
+    let session = session.valid_only();
     super::warn_unused_kinematics(&session, &source, &spec);
     let folds = if args.no_cv { None } else { Some(cfg.folds) };
     let model = train_model(&session, &spec, folds)

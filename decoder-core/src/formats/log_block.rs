@@ -1,0 +1,375 @@
+//! A session log read as a calibration block (PROTOCOL.md §5, `export`).
+//!
+//! A rig records its calibration block through the daemon, so the block
+//! has to come out of the log: one row per slot the daemon answered, the
+//! counts as they arrived, the kinematics the task showed while each bin
+//! was counted (for bin seq s, the latest task packet with `bin_seq < s`),
+//! trials from the task's trial number and phase, and what the daemon sent.
+//! Rows whose bin never came, or that had no task state yet, are kept for
+//! timing and marked not valid, so training and scoring leave them out.
+
+use std::path::{Path, PathBuf};
+
+use crate::formats::block::{Block, Trial};
+use crate::formats::packet::{self, FLAG_BIN_MISSING, VelocityPacket};
+use crate::formats::session_log::{LogEnd, LogReader, LogRecord, SessionLogError};
+use crate::formats::task_packet::{self, Phase, TaskState};
+use crate::linalg::Mat;
+
+#[derive(Debug, thiserror::Error)]
+pub enum LogBlockError {
+    #[error(transparent)]
+    Log(#[from] SessionLogError),
+    #[error(
+        "{}: the log holds no answered slot; there is nothing to export (was a bin ever sent to the daemon?)",
+        path.display()
+    )]
+    NoSlots { path: PathBuf },
+    #[error(
+        "{}: the log is damaged at byte {offset} ({problem}); run `replay-tool verify` on it, and cut it before that point to export the rest",
+        path.display()
+    )]
+    Corrupt {
+        path: PathBuf,
+        offset: u64,
+        problem: String,
+    },
+}
+
+/// A log as a block, with what the daemon sent for each row.
+#[derive(Clone, Debug, PartialEq)]
+pub struct LogBlock {
+    /// Counts, task kinematics (`pos_*`, `vel_*`), trials and `valid`.
+    pub block: Block,
+    /// The seq of each row.
+    pub seqs: Vec<u64>,
+    /// `rows × outputs`: the estimate each velocity packet carried.
+    pub estimates: Mat,
+    /// `rows × outputs`: the command each velocity packet carried.
+    pub commands: Mat,
+    /// The task state each row was counted under (`None`: none yet).
+    pub task: Vec<Option<TaskState>>,
+    pub summary: LogBlockSummary,
+}
+
+/// What the export found, for its report.
+#[derive(Clone, Debug, Default, PartialEq, serde::Serialize)]
+pub struct LogBlockSummary {
+    pub rows: usize,
+    pub bins_missing: usize,
+    pub rows_without_task_state: usize,
+    pub task_packets: u64,
+    pub task_packets_rejected: u64,
+    /// Accepted task packets of another dimension than the first one.
+    pub task_packets_other_dims: u64,
+    pub dims: Option<usize>,
+    pub closed_loop_rows: usize,
+    /// The target radius most task packets gave (position units).
+    pub target_radius: Option<f64>,
+    pub torn_tail: bool,
+}
+
+/// Column names for `dims` position dimensions: `pos_x, pos_y[, pos_z,
+/// pos_4 …], vel_x, vel_y[, …]`.
+pub fn kinematic_names(dims: usize) -> Vec<String> {
+    let axis = |i: usize| match i {
+        0 => "x".to_string(),
+        1 => "y".to_string(),
+        2 => "z".to_string(),
+        _ => (i + 1).to_string(),
+    };
+    let mut names: Vec<String> = (0..dims).map(|i| format!("pos_{}", axis(i))).collect();
+    names.extend((0..dims).map(|i| format!("vel_{}", axis(i))));
+    names
+}
+
+/// Reads the whole log at `path` and builds its block.
+pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
+    let mut reader = LogReader::open(path)?;
+    let header = reader.header().clone();
+    let n = header.n_channels;
+    let d_out = header.outputs.len();
+    let bin_us = header.bin_width.us();
+    // Valid bins received and not yet answered, by seq (the first copy of
+    // a seq is the one the daemon decoded).
+    let mut pending: std::collections::BTreeMap<u64, Vec<u16>> = Default::default();
+    let mut counts: Vec<u16> = Vec::new();
+    let mut missing: Vec<bool> = Vec::new();
+    let mut seqs = Vec::new();
+    let mut estimates = Vec::new();
+    let mut commands = Vec::new();
+    // Accepted task packets in arrival order.
+    let mut tasks: Vec<TaskState> = Vec::new();
+    let mut summary = LogBlockSummary::default();
+    while let Some(record) = reader.next_record() {
+        match record {
+            LogRecord::Datagram { bytes, .. } => {
+                let Ok(h) = packet::parse_bin(&bytes) else {
+                    continue;
+                };
+                if usize::from(h.channels) != n || h.bin_us != bin_us {
+                    continue;
+                }
+                pending.entry(h.seq).or_insert_with(|| {
+                    let mut c = vec![0u16; n];
+                    packet::read_counts(&bytes, &mut c);
+                    c
+                });
+            }
+            LogRecord::Sent { packet: bytes, .. } => {
+                let Ok(p) = VelocityPacket::parse(&bytes) else {
+                    continue;
+                };
+                let came = pending.remove(&p.seq);
+                // Bins older than this slot will never be decoded now.
+                pending.retain(|&s, _| s > p.seq);
+                let is_missing = p.flags & FLAG_BIN_MISSING != 0 || came.is_none();
+                match came {
+                    Some(c) if !is_missing => counts.extend_from_slice(&c),
+                    _ => counts.extend(std::iter::repeat_n(0, n)),
+                }
+                missing.push(is_missing);
+                seqs.push(p.seq);
+                let pad = |v: &[f64], out: &mut Vec<f64>| {
+                    out.extend((0..d_out).map(|i| v.get(i).copied().unwrap_or(0.0)))
+                };
+                pad(&p.estimate, &mut estimates);
+                pad(&p.command, &mut commands);
+            }
+            LogRecord::Task { bytes, .. } => {
+                summary.task_packets += 1;
+                match task_packet::parse_task(&bytes) {
+                    Ok(t) => tasks.push(t),
+                    Err(_) => summary.task_packets_rejected += 1,
+                }
+            }
+            _ => {}
+        }
+    }
+    match reader.end() {
+        Some(LogEnd::Corrupt {
+            offset, problem, ..
+        }) => {
+            return Err(LogBlockError::Corrupt {
+                path: path.to_path_buf(),
+                offset: *offset,
+                problem: problem.clone(),
+            });
+        }
+        Some(LogEnd::TornTail { .. }) => summary.torn_tail = true,
+        _ => {}
+    }
+    let rows = seqs.len();
+    if rows == 0 {
+        return Err(LogBlockError::NoSlots {
+            path: path.to_path_buf(),
+        });
+    }
+    let dims = tasks.first().map(TaskState::dims);
+    if let Some(d) = dims {
+        let before = tasks.len();
+        tasks.retain(|t| t.dims() == d);
+        summary.task_packets_other_dims = (before - tasks.len()) as u64;
+    }
+    let task = task_state_per_row(&seqs, &tasks);
+
+    let dims_or_2 = dims.unwrap_or(2);
+    let names = kinematic_names(dims_or_2);
+    let mut kin = Mat::zeros(rows, 2 * dims_or_2);
+    let mut valid = Vec::with_capacity(rows);
+    for (r, t) in task.iter().enumerate() {
+        if let Some(t) = t {
+            for i in 0..dims_or_2 {
+                kin.set(r, i, t.cursor_pos[i]);
+                kin.set(r, dims_or_2 + i, t.cursor_vel[i]);
+            }
+            summary.closed_loop_rows += usize::from(t.closed_loop());
+        } else {
+            summary.rows_without_task_state += 1;
+        }
+        valid.push(t.is_some() && !missing[r]);
+    }
+    summary.rows = rows;
+    summary.bins_missing = missing.iter().filter(|m| **m).count();
+    summary.dims = dims;
+    summary.target_radius = typical_radius(&tasks);
+    let trials = trials_from_task(&task);
+    let block = Block {
+        bin_width: header.bin_width,
+        n_bins: rows,
+        n_channels: n,
+        counts,
+        kinematic_names: names,
+        kinematics: dims.map(|_| kin),
+        trials: dims.map(|_| trials),
+        channel_labels: None,
+        notes: Some(format!(
+            "exported from session log {}: one row per slot (seqs {}..={}); pos and vel are the cursor the task showed{}",
+            path.display(),
+            seqs[0],
+            seqs[rows - 1],
+            summary
+                .target_radius
+                .map_or(String::new(), |r| format!("; target radius {r}"))
+        )),
+        valid: Some(valid),
+    };
+    Ok(LogBlock {
+        block,
+        seqs,
+        estimates: Mat {
+            rows,
+            cols: d_out,
+            data: estimates,
+        },
+        commands: Mat {
+            rows,
+            cols: d_out,
+            data: commands,
+        },
+        task,
+        summary,
+    })
+}
+
+/// For each row's seq s, the latest-arrived task state with `bin_seq < s`.
+fn task_state_per_row(seqs: &[u64], tasks: &[TaskState]) -> Vec<Option<TaskState>> {
+    // Task packets sorted by bin_seq, swept against the rows sorted by
+    // seq; among those admitted so far, the one that arrived last wins.
+    let mut by_seq: Vec<usize> = (0..tasks.len()).collect();
+    by_seq.sort_by_key(|&i| (tasks[i].bin_seq, i));
+    let mut rows: Vec<usize> = (0..seqs.len()).collect();
+    rows.sort_by_key(|&r| (seqs[r], r));
+    let mut out = vec![None; seqs.len()];
+    let mut next = 0;
+    let mut latest: Option<usize> = None;
+    for r in rows {
+        while next < by_seq.len() && tasks[by_seq[next]].bin_seq < seqs[r] {
+            latest = Some(latest.map_or(by_seq[next], |l| l.max(by_seq[next])));
+            next += 1;
+        }
+        out[r] = latest.map(|i| tasks[i]);
+    }
+    out
+}
+
+/// Trials: runs of rows under one trial number in a phase inside a trial;
+/// the target is the first valid one the run showed.
+fn trials_from_task(task: &[Option<TaskState>]) -> Vec<Trial> {
+    let mut trials: Vec<Trial> = Vec::new();
+    let mut open: Option<(u32, usize, Option<[f64; 2]>)> = None;
+    let close =
+        |open: &mut Option<(u32, usize, Option<[f64; 2]>)>, end: usize, out: &mut Vec<Trial>| {
+            if let Some((trial, start, target)) = open.take() {
+                let target = target.unwrap_or([0.0, 0.0]);
+                out.push(Trial {
+                    trial,
+                    start_bin: start,
+                    end_bin: end,
+                    target_x: target[0],
+                    target_y: target[1],
+                });
+            }
+        };
+    for (r, t) in task.iter().enumerate() {
+        let here = t.filter(|t| t.phase != Phase::Between);
+        match (here, open.as_mut()) {
+            (Some(t), Some(o)) if o.0 == t.trial => {
+                if o.2.is_none() && t.target_valid() {
+                    o.2 = Some(target_xy(&t));
+                }
+            }
+            (Some(t), _) => {
+                close(&mut open, r, &mut trials);
+                open = Some((t.trial, r, t.target_valid().then(|| target_xy(&t))));
+            }
+            (None, _) => close(&mut open, r, &mut trials),
+        }
+    }
+    close(&mut open, task.len(), &mut trials);
+    trials
+}
+
+fn target_xy(t: &TaskState) -> [f64; 2] {
+    [
+        t.target_pos[0],
+        if t.dims() > 1 { t.target_pos[1] } else { 0.0 },
+    ]
+}
+
+/// The radius most task packets with a valid target gave.
+fn typical_radius(tasks: &[TaskState]) -> Option<f64> {
+    let mut radii: Vec<f64> = tasks
+        .iter()
+        .filter(|t| t.target_valid())
+        .map(|t| t.target_radius)
+        .collect();
+    if radii.is_empty() {
+        return None;
+    }
+    radii.sort_by(f64::total_cmp);
+    Some(radii[radii.len() / 2])
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::formats::task_packet::TASK_FLAG_TARGET_VALID;
+
+    fn state(bin_seq: u64, trial: u32, phase: Phase, x: f64) -> TaskState {
+        let mut t = TaskState::new(2);
+        t.bin_seq = bin_seq;
+        t.trial = trial;
+        t.phase = phase;
+        t.cursor_pos[0] = x;
+        t.flags = TASK_FLAG_TARGET_VALID;
+        t.target_pos[0] = 10.0 + f64::from(trial);
+        t
+    }
+
+    #[test]
+    fn a_bin_is_paired_with_the_screen_shown_while_it_was_counted() {
+        // PROTOCOL.md §6: for seq s, the latest task packet with bin_seq < s.
+        let tasks = [
+            state(0, 0, Phase::Reach, 1.0),
+            state(1, 0, Phase::Reach, 2.0),
+            // Arrives late, drawn after bin 0: it is still the latest with
+            // bin_seq < s for every later s.
+            state(0, 0, Phase::Reach, 3.0),
+            state(5, 0, Phase::Reach, 4.0),
+        ];
+        let rows = task_state_per_row(&[0, 1, 2, 3, 6], &tasks);
+        let x: Vec<Option<f64>> = rows.iter().map(|t| t.map(|t| t.cursor_pos[0])).collect();
+        assert_eq!(x, [None, Some(3.0), Some(3.0), Some(3.0), Some(4.0)]);
+    }
+
+    #[test]
+    fn trials_run_while_the_task_is_inside_one() {
+        let t = |trial, phase| Some(state(0, trial, phase, 0.0));
+        let rows = [
+            None,
+            t(0, Phase::Between),
+            t(1, Phase::Reach),
+            t(1, Phase::Hold),
+            t(1, Phase::Success),
+            t(1, Phase::Between),
+            t(2, Phase::Reach),
+            t(3, Phase::Reach),
+        ];
+        let trials = trials_from_task(&rows);
+        let spans: Vec<(u32, usize, usize, f64)> = trials
+            .iter()
+            .map(|t| (t.trial, t.start_bin, t.end_bin, t.target_x))
+            .collect();
+        assert_eq!(spans, [(1, 2, 5, 11.0), (2, 6, 7, 12.0), (3, 7, 8, 13.0)]);
+    }
+
+    #[test]
+    fn column_names_follow_the_protocol() {
+        assert_eq!(
+            kinematic_names(3),
+            ["pos_x", "pos_y", "pos_z", "vel_x", "vel_y", "vel_z"]
+        );
+        assert_eq!(kinematic_names(4)[3], "pos_4");
+    }
+}

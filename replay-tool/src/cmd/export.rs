@@ -1,0 +1,81 @@
+//! `replay-tool export LOG --out DIR`: a session log recorded through the
+//! daemon, written as a session directory (PROTOCOL.md §3 and §5) — the
+//! counts as received, the kinematics the task showed, trials, which rows
+//! are valid for training, and the estimates and commands the daemon sent.
+//! The calibration block a rig records is then a folder like any other.
+
+use std::path::PathBuf;
+
+use anyhow::{Context, Result, bail};
+use decoder_core::formats::log_block::read_log_block;
+
+use crate::output::write_table;
+
+#[derive(Debug, clap::Args)]
+pub struct Args {
+    /// The session log (.vdlog) decoderd recorded.
+    pub log: PathBuf,
+    /// Session directory to write (created; files in it are replaced).
+    #[arg(long)]
+    pub out: PathBuf,
+}
+
+pub fn run(args: &Args) -> Result<()> {
+    if args.log.is_dir() {
+        bail!(
+            "{}: export reads a session log (.vdlog) from decoderd; this is a directory",
+            args.log.display()
+        );
+    }
+    let log = read_log_block(&args.log)?;
+    log.block
+        .write(&args.out)
+        .with_context(|| format!("writing {}", args.out.display()))?;
+    let outputs = decoder_core::formats::session_log::LogReader::open(&args.log)?
+        .header()
+        .outputs
+        .clone();
+    for (name, m) in [
+        ("estimates.npy", &log.estimates),
+        ("commands.npy", &log.commands),
+    ] {
+        write_table(&args.out.join(name), &outputs, m.rows, &m.data)?;
+    }
+    let s = &log.summary;
+    println!(
+        "exported {} -> {}: {} rows (one per slot), {} valid; {} bins missing, {} rows before the first task packet; {} trials",
+        args.log.display(),
+        args.out.display(),
+        s.rows,
+        log.block.n_valid(),
+        s.bins_missing,
+        s.rows_without_task_state,
+        log.block.trials.as_ref().map_or(0, Vec::len),
+    );
+    if s.dims.is_none() {
+        println!(
+            "   no task packets in the log: counts, estimates and commands only, no kinematics.npy or trials.csv (send task packets, PROTOCOL.md §6, to train from a recording)"
+        );
+    } else {
+        println!(
+            "   task packets: {} read, {} rejected{}; {} rows in closed loop",
+            s.task_packets,
+            s.task_packets_rejected,
+            if s.task_packets_other_dims > 0 {
+                format!(
+                    ", {} of another dimension left out",
+                    s.task_packets_other_dims
+                )
+            } else {
+                String::new()
+            },
+            s.closed_loop_rows
+        );
+    }
+    if s.torn_tail {
+        println!(
+            "   the log ends in a torn tail (the daemon stopped mid-write); the rows before it are exported"
+        );
+    }
+    Ok(())
+}

@@ -71,6 +71,28 @@ pub struct RawConfig {
     pub realtime: RawRealtime,
     #[serde(default)]
     pub log: RawLog,
+    #[serde(default)]
+    pub adaptation: RawAdaptation,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawAdaptation {
+    pub enabled: Option<bool>,
+    pub parameters: Option<String>,
+    pub batch_s: Option<f64>,
+    pub half_life_s: Option<f64>,
+    pub min_usable_fraction: Option<f64>,
+    pub max_relative_change: Option<f64>,
+    pub ridge: Option<f64>,
+}
+
+/// Online adaptation (`[adaptation]`): off unless `enabled = true` or
+/// `decoderd ctl adapt on`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct AdaptConfig {
+    pub enabled: bool,
+    pub options: decoder_core::fit::adapt::AdaptOptions,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -198,6 +220,7 @@ pub struct Config {
     pub log_format: LogFormat,
     pub log_level: String,
     pub arm_at_start: bool,
+    pub adaptation: AdaptConfig,
     /// Where each path came from, for errors: the flag (`--model`) or the
     /// key (`model.path`).
     pub sources: Sources,
@@ -463,6 +486,41 @@ impl Config {
             1.0,
             100_000.0,
         )?;
+        let a = &raw.adaptation;
+        let parameters = a.parameters.clone().unwrap_or_else(|| "observation".into());
+        if parameters != "observation" {
+            return Err(c.err(
+                "adaptation.parameters",
+                format!(
+                    "{parameters:?}; this version adapts \"observation\" (the Kalman filter's H and Q) only"
+                ),
+            ));
+        }
+        let adaptation = AdaptConfig {
+            enabled: a.enabled.unwrap_or(false),
+            options: decoder_core::fit::adapt::AdaptOptions {
+                batch_s: c.within("adaptation.batch_s", a.batch_s.unwrap_or(10.0), 1.0, 600.0)?,
+                half_life_s: c.within(
+                    "adaptation.half_life_s",
+                    a.half_life_s.unwrap_or(60.0),
+                    1.0,
+                    86_400.0,
+                )?,
+                min_usable_fraction: c.within(
+                    "adaptation.min_usable_fraction",
+                    a.min_usable_fraction.unwrap_or(0.5),
+                    0.0,
+                    1.0,
+                )?,
+                max_relative_change: c.within(
+                    "adaptation.max_relative_change",
+                    a.max_relative_change.unwrap_or(0.25),
+                    0.001,
+                    10.0,
+                )?,
+                ridge: c.within("adaptation.ridge", a.ridge.unwrap_or(1.0), 0.0, 1e6)?,
+            },
+        };
         let n_cpus = std::thread::available_parallelism().map_or(1, |n| n.get()) as i64;
         let cpu = match raw.realtime.cpu {
             None => None,
@@ -493,6 +551,7 @@ impl Config {
             return Err(ConfigError::ArmNotLoopback { actuator });
         }
         Ok(Config {
+            adaptation,
             listen,
             task_listen,
             actuator,
@@ -626,6 +685,21 @@ mod tests {
                 &["0.5", "1e6", "nan", "-inf"],
             ),
             ("realtime", "fifo_priority", "0", &["-1", "100"]),
+            ("adaptation", "batch_s", "10.0", &["0.5", "601.0", "nan"]),
+            ("adaptation", "half_life_s", "60.0", &["0.0", "1e9", "inf"]),
+            (
+                "adaptation",
+                "min_usable_fraction",
+                "0.5",
+                &["-0.1", "1.5", "nan"],
+            ),
+            (
+                "adaptation",
+                "max_relative_change",
+                "0.25",
+                &["0.0", "11.0", "nan"],
+            ),
+            ("adaptation", "ridge", "1.0", &["-1.0", "1e7", "nan"]),
         ];
         for (section, key, good, bads) in table {
             let ok = format!("[{section}]\n{key} = {good}\n");

@@ -29,6 +29,7 @@ pub enum Request {
     Disarm,
     Halt,
     Load { path: PathBuf },
+    Adapt { on: bool },
 }
 
 #[derive(Debug, Serialize, Deserialize)]
@@ -258,6 +259,7 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
                 Err(_) => fail(RT_GONE),
             }
         }
+        Request::Adapt { on } => adapt(on, to_rt).await,
         Request::Load { path } => {
             let loaded = match tokio::task::spawn_blocking(move || prepare_load(&path, shape)).await
             {
@@ -272,8 +274,10 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
             let request = LoadRequest {
                 pipeline,
                 model_bytes: loaded.bytes,
+                model: Box::new(loaded.file),
                 info: loaded.info,
                 reply,
+                adaptation: None,
             };
             if let Err(reply) = to_rt_now(to_rt, ControlRequest::Load(Box::new(request))) {
                 return reply;
@@ -294,6 +298,28 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
                 Err(_) => fail(RT_GONE),
             }
         }
+    }
+}
+
+async fn adapt(on: bool, to_rt: &Sender<ControlRequest>) -> Reply {
+    let (reply, rx) = oneshot::channel();
+    if let Err(reply) = to_rt_now(to_rt, ControlRequest::Adapt { on, reply }) {
+        return reply;
+    }
+    match rx.await {
+        Ok(Ok(m)) => {
+            tracing::info!("operator: {m}");
+            Reply {
+                ok: true,
+                message: m,
+                status: None,
+            }
+        }
+        Ok(Err(m)) => {
+            tracing::warn!("operator: {m}");
+            fail(m)
+        }
+        Err(_) => fail(RT_GONE),
     }
 }
 

@@ -7,6 +7,7 @@
 //! summary line and signals ([`control`]). The decode logic itself is
 //! `decoder_core::engine::slot_engine`, shared with offline replay.
 
+pub mod adaptation;
 pub mod alloc_count;
 pub mod config;
 pub mod control;
@@ -139,6 +140,17 @@ pub enum CtlAction {
         /// Model file from `replay-tool train`.
         model: PathBuf,
     },
+    /// Turn online adaptation on or off (config [adaptation]).
+    Adapt {
+        #[arg(value_enum)]
+        switch: Switch,
+    },
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum Switch {
+    On,
+    Off,
 }
 
 pub fn main_with(cli: Cli) -> ExitCode {
@@ -210,6 +222,9 @@ pub fn ctl(args: &CtlArgs) -> Result<bool> {
         CtlAction::Arm => Request::Arm,
         CtlAction::Disarm => Request::Disarm,
         CtlAction::Halt => Request::Halt,
+        CtlAction::Adapt { switch } => Request::Adapt {
+            on: *switch == Switch::On,
+        },
         CtlAction::Load { model } => Request::Load {
             // The daemon runs elsewhere: send an absolute path.
             path: std::path::absolute(model)
@@ -420,6 +435,18 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         control_socket: config.control_socket.clone(),
         model_warnings: Vec::new(),
     };
+    let mut adapt = adaptation::Collector::start(
+        config.adaptation.options.clone(),
+        &loaded.file,
+        &loaded.info,
+        control_tx.clone(),
+    )?;
+    if config.adaptation.enabled {
+        match adapt.set(true) {
+            Ok(m) => tracing::warn!("adaptation.enabled = true: {m}"),
+            Err(m) => tracing::warn!("adaptation.enabled = true, but {m}"),
+        }
+    }
     // The model's bytes and parameters are in the pipeline and the log now.
     drop(loaded);
     let realtime = config.realtime.clone();
@@ -439,6 +466,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
                 input,
                 task_input,
                 task: Default::default(),
+                adapt,
                 output,
                 actuator,
                 engine,

@@ -24,6 +24,7 @@ use decoder_core::formats::session_log::{self, RecordKind};
 use decoder_core::formats::{packet, task_packet};
 use tokio::sync::oneshot;
 
+use crate::adaptation::Collector;
 use crate::recorder::{RecordBatcher, RecorderStats};
 use crate::status::{ModelInfo, Monitor, Status, TaskMonitor, rejected_by_name};
 use crate::{alloc_count, sys};
@@ -44,13 +45,22 @@ pub enum ControlRequest {
         reply: oneshot::Sender<Result<String, String>>,
     },
     Load(Box<LoadRequest>),
+    /// `ctl adapt on|off`.
+    Adapt {
+        on: bool,
+        reply: oneshot::Sender<Result<String, String>>,
+    },
 }
 
 /// A model already read and validated off the real-time thread.
 pub struct LoadRequest {
     pub pipeline: DecodePipeline,
     pub model_bytes: Vec<u8>,
+    pub model: Box<decoder_core::ModelFile>,
     pub info: ModelInfo,
+    /// An adaptation update, computed in this generation (`None`: an
+    /// operator's load).
+    pub adaptation: Option<u64>,
     /// On success the seq of the first slot the new model decodes, and the
     /// old pipeline, to be freed by the caller.
     pub reply: oneshot::Sender<Result<(u64, DecodePipeline), String>>,
@@ -86,6 +96,8 @@ pub struct RtLoop {
     /// Task packets from the task computer (PROTOCOL.md §6).
     pub task_input: UdpSocket,
     pub task: TaskMonitor,
+    /// Online adaptation's batch collector.
+    pub adapt: Collector,
     pub output: UdpSocket,
     pub actuator: SocketAddr,
     pub engine: SlotEngine,
@@ -110,6 +122,8 @@ macro_rules! out {
             events: &$rt.events,
             events_not_logged: &mut $rt.events_not_logged,
             json: $json,
+            adapt: &mut $rt.adapt,
+            task: $rt.task.latest.as_ref(),
         }
     };
 }
@@ -123,6 +137,8 @@ struct Out<'a> {
     events: &'a Sender<TimedEvent>,
     events_not_logged: &'a mut u64,
     json: &'a mut Vec<u8>,
+    adapt: &'a mut Collector,
+    task: Option<&'a decoder_core::formats::task_packet::TaskState>,
 }
 
 impl SlotSink for Out<'_> {
@@ -133,9 +149,14 @@ impl SlotSink for Out<'_> {
             self.monitor.send_errors += 1;
         }
         self.monitor.on_sent(slot, sent_ns);
+        self.adapt.on_answer(slot, self.task);
         if let Some(b) = self.batcher.as_deref_mut() {
             b.record(RecordKind::Sent, slot.decided_ns, &[packet_bytes]);
         }
+    }
+
+    fn decoded(&mut self, seq: u64, counts: &[u16], estimate: &[f64]) {
+        self.adapt.on_decoded(seq, counts, estimate);
     }
 
     fn event(&mut self, event: &EngineEvent) {
@@ -301,18 +322,55 @@ impl RtLoop {
                         Err(e) => Err(format!("refused: {e}")),
                     });
                 }
+                ControlRequest::Adapt { on, reply } => {
+                    let result = self.adapt.set(on);
+                    if result.is_ok() {
+                        if let Some(b) = self.batcher.as_mut() {
+                            let e = serde_json::json!({"event": "adaptation", "on": on});
+                            b.record_owned(
+                                RecordKind::Event,
+                                sys::monotonic_ns(),
+                                e.to_string().into_bytes(),
+                            );
+                        }
+                    }
+                    let _ = reply.send(result);
+                }
                 ControlRequest::Load(load) => {
                     let LoadRequest {
                         pipeline,
                         model_bytes,
+                        model,
                         info,
                         reply,
+                        adaptation,
                     } = *load;
+                    if let Some(generation) = adaptation
+                        && let Err(why) = self.adapt.accepts(generation, self.engine.state())
+                    {
+                        let _ = reply.send(Err(why));
+                        continue;
+                    }
                     let mut out = out!(self, json);
                     match self.engine.swap_pipeline(pipeline, &mut out) {
                         Ok(old) => {
                             if let Some(b) = self.batcher.as_mut() {
                                 b.record_owned(RecordKind::Model, sys::monotonic_ns(), model_bytes);
+                                if adaptation.is_some() {
+                                    let e = serde_json::json!({
+                                        "event": "adaptation_update",
+                                        "model": info.path,
+                                        "sha256": info.sha256,
+                                    });
+                                    b.record_owned(
+                                        RecordKind::Event,
+                                        sys::monotonic_ns(),
+                                        e.to_string().into_bytes(),
+                                    );
+                                }
+                            }
+                            if adaptation.is_none() {
+                                self.adapt.new_base(&model, &info);
                             }
                             let live = matches!(
                                 self.engine.state(),
@@ -386,6 +444,7 @@ impl RtLoop {
             decode_path_allocations: alloc_count::decode_path_allocations(),
             realtime_warnings: self.info.realtime_warnings.clone(),
             task: self.task.status(self.info.task_listen, sys::monotonic_ns()),
+            adaptation: self.adapt.status(),
         }
     }
 }

@@ -297,6 +297,9 @@ pub struct Status {
     /// Task packets: counts, the last phase and trial, and their age.
     #[serde(default)]
     pub task: TaskStatus,
+    /// Online adaptation: on or off, updates, skips.
+    #[serde(default)]
+    pub adaptation: crate::adaptation::AdaptStatus,
 }
 
 pub fn rejected_by_name(c: &EngineCounters) -> BTreeMap<String, u64> {
@@ -445,6 +448,7 @@ impl Status {
             plural(self.send_errors, "send error", "send errors"),
             plural(c.model_changes, "model change", "model changes")
         );
+        let _ = writeln!(s, "adaptation         {}", self.adaptation.line());
         let _ = writeln!(
             s,
             "recv -> send       {}",

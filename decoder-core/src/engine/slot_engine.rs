@@ -124,6 +124,10 @@ pub trait SlotSink {
     /// patches it just before sending).
     fn answer(&mut self, packet: &mut [u8], slot: &SlotAnswer);
     fn event(&mut self, event: &EngineEvent);
+    /// A bin decoded from its counts, just before its slot is answered:
+    /// the counts and the estimate decoded from them (for the daemon's
+    /// online adaptation; nothing else needs them).
+    fn decoded(&mut self, _seq: u64, _counts: &[u16], _estimate: &[f64]) {}
 }
 
 /// Counters of the stream, all since start.
@@ -525,7 +529,9 @@ impl SlotEngine {
                     }
                 }
                 self.counters.bins_decoded += 1;
-                self.pipeline.step(seq, counts)
+                let e = self.pipeline.step(seq, counts);
+                sink.decoded(seq, counts, e.estimate);
+                e
             }
             None => {
                 self.counters.bins_missing += 1;

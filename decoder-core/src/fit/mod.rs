@@ -8,6 +8,7 @@
 //! The per-bin code ([`crate::decoders`], [`crate::engine`]) never imports
 //! this module.
 
+pub mod adapt;
 pub mod config;
 pub mod evaluate;
 pub mod folds;

@@ -66,6 +66,11 @@ pub struct Args {
     /// 0 = as fast as the loop turns round).
     #[arg(long, default_value_t = 1.0)]
     pub time_scale: f64,
+    /// Turn on online adaptation in the spawned daemon (`ctl adapt on`;
+    /// its [adaptation] settings come from --config, else the defaults).
+    /// For a running daemon use `decoderd ctl adapt on` instead.
+    #[arg(long, conflicts_with = "daemon")]
+    pub adapt: bool,
     /// Exit 1 when the success rate is below this fraction (0..1).
     #[arg(long)]
     pub min_success: Option<f64>,
@@ -99,6 +104,7 @@ pub fn run_verb(args: &Args) -> Result<()> {
         config: args.config.as_deref(),
         running,
         extra_toml: String::new(),
+        adapt: args.adapt,
         model: &args.model,
         work: &args.report.join("daemon"),
         task: TaskOptions {
@@ -135,6 +141,8 @@ pub struct ClosedLoopRun {
     pub bins: usize,
     /// Slots answered without the bin's counts (late or lost bins).
     pub coasted: usize,
+    /// With --adapt: what adaptation did.
+    pub adaptation: Option<daemon::adaptation::AdaptStatus>,
 }
 
 /// A running daemon's addresses.
@@ -155,6 +163,8 @@ pub struct ClosedLoopSetup<'a> {
     pub running: Option<RunningAddrs>,
     /// Extra daemon configuration for a spawned daemon without --config.
     pub extra_toml: String,
+    /// Turn adaptation on in the spawned daemon before the first bin.
+    pub adapt: bool,
     pub model: &'a Path,
     pub work: &'a Path,
     pub task: TaskOptions,
@@ -197,6 +207,12 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
                 .extra_toml(&setup.extra_toml)
                 .arm(true)
                 .start()?;
+            if setup.adapt {
+                let reply = daemon.ctl(&daemon::control::Request::Adapt { on: true })?;
+                if !reply.ok {
+                    bail!("--adapt: {}", reply.message);
+                }
+            }
             let (listen, task_listen) = (daemon.listen, daemon.task_listen);
             (sink, Some(daemon), listen, task_listen)
         }
@@ -288,6 +304,10 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         }
         seq += 1;
     }
+    let adaptation = match &daemon {
+        Some(d) if setup.adapt => Some(d.status()?.adaptation),
+        _ => None,
+    };
     let session_log = match daemon {
         Some(d) => d.stop()?.session_log,
         None => None,
@@ -303,6 +323,7 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         block,
         bins: seq as usize,
         coasted,
+        adaptation,
     })
 }
 
@@ -321,6 +342,7 @@ pub fn report(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary>
         "bins": run.bins,
         "session_log": session_log,
         "valid_rows": run.block.as_ref().map(|b| b.block.n_valid()),
+        "adaptation": run.adaptation,
     });
     write_atomic(
         &report.join("closed-loop.json"),
@@ -338,6 +360,9 @@ pub fn report(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary>
         s.mean_path_efficiency
             .map_or("-".into(), |e| format!("{e:.2}")),
     );
+    if let Some(a) = &run.adaptation {
+        println!("   adaptation: {}", a.line());
+    }
     match &session_log {
         Some(log) => println!(
             "   session log (bins, task packets, commands) -> {}\n   retrain from it: replay-tool train --session {} --refit --decoder kalman --out refit.model",

@@ -1,0 +1,536 @@
+//! Online adaptation in the daemon: the real-time thread's side collects
+//! batches of usable bins without allocating, a worker thread refits and
+//! checks each update (`decoder_core::fit::adapt`), and the update goes in
+//! through the same hot-swap path as an operator's `load`, so it takes
+//! effect at a bin boundary and is a model record in the session log —
+//! which is why `replay-tool verify` reproduces an adaptive session bit
+//! for bit.
+//!
+//! A bin is usable when the daemon was armed (not coasting, not disarmed,
+//! not halted), the bin's counts came, and the task computer's latest
+//! state (drawn before this bin: `bin_seq < seq`) says closed loop, a
+//! valid target, and a reach or hold phase. Each update carries the
+//! generation it was computed in; an operator's load, `adapt on` or `adapt
+//! off` starts a new generation, and the real-time thread refuses an
+//! update from an older one or one that arrives while not armed.
+
+use std::sync::{Arc, Mutex};
+
+use crossbeam_channel::{Receiver, Sender, TryRecvError};
+use decoder_core::ModelFile;
+use decoder_core::decoders::DecoderModel;
+use decoder_core::engine::pipeline::DecodePipeline;
+use decoder_core::engine::slot_engine::SlotAnswer;
+use decoder_core::engine::supervisor::SupervisorState;
+use decoder_core::fit::adapt::{
+    AdaptOptions, AdaptReport, AdaptSkip, Batch, BatchRow, adapt_kalman, check_adaptable,
+};
+use decoder_core::formats::packet::FLAG_BIN_MISSING;
+use decoder_core::formats::task_packet::{MAX_TASK_DIMS, Phase, TaskState};
+use serde::{Deserialize, Serialize};
+use sha2::{Digest, Sha256};
+
+use crate::rt_loop::{ControlRequest, LoadRequest};
+use crate::status::ModelInfo;
+
+/// What the worker is told.
+pub enum AdaptMsg {
+    /// The running model changed (an operator's load, or start).
+    Base {
+        model: Box<ModelFile>,
+        info: ModelInfo,
+    },
+    /// A full batch to refit on.
+    Batch { generation: u64, batch: Batch },
+}
+
+/// What the worker has done, shared with status.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct WorkerCounts {
+    pub updates: u64,
+    pub skipped_too_few_bins: u64,
+    pub skipped_refused: u64,
+    /// Updates computed but refused by the real-time thread (no longer
+    /// armed, adaptation turned off, or another model loaded meanwhile).
+    pub not_applied: u64,
+    pub last_update: Option<AppliedUpdate>,
+    pub last_skip: Option<String>,
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct AppliedUpdate {
+    pub update: u64,
+    /// First seq the adapted model decodes.
+    pub from_seq: u64,
+    pub report: AdaptReport,
+}
+
+/// The adaptation part of status.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct AdaptStatus {
+    pub on: bool,
+    /// Why the running model cannot adapt (`None`: it can).
+    pub unavailable: Option<String>,
+    pub batch_s: f64,
+    pub half_life_s: f64,
+    pub bins_per_batch: usize,
+    /// The batch being collected: usable bins of slots so far.
+    pub batch_rows: usize,
+    pub batch_slots: usize,
+    pub batches_sent: u64,
+    /// Batches dropped because the worker was still busy with the last.
+    pub batches_dropped_busy: u64,
+    #[serde(flatten)]
+    pub worker: WorkerCounts,
+}
+
+impl AdaptStatus {
+    /// The status table's line.
+    pub fn line(&self) -> String {
+        if let Some(why) = &self.unavailable {
+            return format!("not available: {why}");
+        }
+        if !self.on {
+            return format!(
+                "off ({} so far); `ctl adapt on` to start",
+                crate::status::plural(self.worker.updates, "update", "updates")
+            );
+        }
+        let last = self.worker.last_update.as_ref().map_or(String::new(), |u| {
+            format!(
+                "; last from seq {} ({} bins, change {:.3}{})",
+                u.from_seq,
+                u.report.rows,
+                u.report.relative_change,
+                if u.report.limited { ", limited" } else { "" }
+            )
+        });
+        format!(
+            "ON: {}, {} skipped (too few bins), {} refused, {} not applied; batch {}/{} bins ({} usable){last}",
+            crate::status::plural(self.worker.updates, "update", "updates"),
+            self.worker.skipped_too_few_bins,
+            self.worker.skipped_refused,
+            self.worker.not_applied,
+            self.batch_slots,
+            self.bins_per_batch,
+            self.batch_rows
+        )
+    }
+}
+
+/// The real-time thread's side: collects the batch.
+pub struct Collector {
+    pub on: bool,
+    pub generation: u64,
+    options: AdaptOptions,
+    n_channels: usize,
+    bins_per_batch: usize,
+    /// Per model output, the axis it is the velocity of (vel_x → 0).
+    output_axis: Vec<Option<usize>>,
+    unavailable: Option<String>,
+    batch: Batch,
+    staged: Option<(u64, [f64; MAX_TASK_DIMS])>,
+    to_worker: Sender<AdaptMsg>,
+    spare: Receiver<Batch>,
+    spare_tx: Sender<Batch>,
+    buffers: usize,
+    batches_sent: u64,
+    batches_dropped_busy: u64,
+    counts: Arc<Mutex<WorkerCounts>>,
+}
+
+/// Why a model cannot adapt, or `None`.
+fn unavailable(model: &ModelFile) -> Option<String> {
+    match &model.decoder {
+        DecoderModel::Kalman(k) => check_adaptable(k).err().map(|e| e.to_string()),
+        other => Some(format!(
+            "the running model is a {} decoder; this version adapts the Kalman filter's observation model only",
+            other.kind()
+        )),
+    }
+}
+
+fn output_axes(model: &ModelFile) -> Vec<Option<usize>> {
+    model
+        .decoder
+        .outputs()
+        .iter()
+        .map(|o| match o.strip_prefix("vel_") {
+            Some("x") => Some(0),
+            Some("y") => Some(1),
+            Some("z") => Some(2),
+            Some(n) => n.parse::<usize>().ok().and_then(|n| n.checked_sub(1)),
+            None => None,
+        })
+        .map(|a| a.filter(|a| *a < MAX_TASK_DIMS))
+        .collect()
+}
+
+impl Collector {
+    /// The collector and the worker thread, for the model the daemon
+    /// starts with.
+    pub fn start(
+        options: AdaptOptions,
+        model: &ModelFile,
+        info: &ModelInfo,
+        control: Sender<ControlRequest>,
+    ) -> std::io::Result<Collector> {
+        let (to_worker, from_rt) = crossbeam_channel::bounded::<AdaptMsg>(8);
+        let (spare_tx, spare) = crossbeam_channel::bounded::<Batch>(2);
+        let counts = Arc::new(Mutex::new(WorkerCounts::default()));
+        let bin_s = model.bin_width.seconds();
+        let bins_per_batch = ((options.batch_s / bin_s).round() as usize).max(1);
+        let n = model.decoder.n_channels();
+        let worker = Worker {
+            options: options.clone(),
+            base: None,
+            control,
+            spare: spare_tx.clone(),
+            counts: counts.clone(),
+            updates: 0,
+        };
+        std::thread::Builder::new()
+            .name("decoderd-adapt".into())
+            .spawn(move || worker.run(from_rt))?;
+        let c = Collector {
+            on: false,
+            generation: 0,
+            options,
+            n_channels: n,
+            bins_per_batch,
+            output_axis: output_axes(model),
+            unavailable: unavailable(model),
+            batch: Batch::default(),
+            staged: None,
+            to_worker,
+            spare,
+            spare_tx,
+            buffers: 0,
+            batches_sent: 0,
+            batches_dropped_busy: 0,
+            counts,
+        };
+        let _ = c.to_worker.try_send(AdaptMsg::Base {
+            model: Box::new(model.clone()),
+            info: info.clone(),
+        });
+        Ok(c)
+    }
+
+    /// Turns adaptation on or off (a new generation either way); the
+    /// message for the operator.
+    pub fn set(&mut self, on: bool) -> Result<String, String> {
+        if on {
+            if let Some(why) = &self.unavailable {
+                return Err(format!("adaptation refused: {why}"));
+            }
+            // The batch buffers, allocated here on the control path, never
+            // per bin: one collecting, one with the worker.
+            while self.buffers < 2 {
+                let b = Batch::with_capacity(self.n_channels, self.bins_per_batch);
+                if self.buffers == 0 {
+                    self.batch = b;
+                } else {
+                    let _ = self.spare_tx.try_send(b);
+                }
+                self.buffers += 1;
+            }
+        }
+        let was = self.on;
+        self.on = on;
+        self.generation += 1;
+        self.batch.clear();
+        self.staged = None;
+        Ok(match (was, on) {
+            (false, true) => format!(
+                "adaptation on: an update every {} s of armed closed-loop bins ({} bins), half-life {} s",
+                self.options.batch_s, self.bins_per_batch, self.options.half_life_s
+            ),
+            (true, true) => "adaptation already on; its batch starts afresh".into(),
+            (_, false) => "adaptation off; the running model stays as it is".into(),
+        })
+    }
+
+    /// An operator loaded `model`: a new generation, and the worker's
+    /// base. Called on the control path.
+    pub fn new_base(&mut self, model: &ModelFile, info: &ModelInfo) {
+        self.generation += 1;
+        self.unavailable = unavailable(model);
+        self.output_axis = output_axes(model);
+        self.batch.clear();
+        self.staged = None;
+        if self.unavailable.is_some() && self.on {
+            self.on = false;
+            tracing::warn!("adaptation turned off: the loaded model cannot adapt");
+        }
+        let _ = self.to_worker.try_send(AdaptMsg::Base {
+            model: Box::new(model.clone()),
+            info: info.clone(),
+        });
+    }
+
+    /// Whether an update computed in `generation` may go in now.
+    pub fn accepts(&self, generation: u64, state: SupervisorState) -> Result<(), String> {
+        if !self.on {
+            return Err("adaptation is off".into());
+        }
+        if generation != self.generation {
+            return Err("another model was loaded or adaptation restarted meanwhile".into());
+        }
+        if state != SupervisorState::Armed {
+            return Err(format!("the daemon is {}, not armed", state.name()));
+        }
+        Ok(())
+    }
+
+    /// A bin decoded from its counts (before its slot is answered).
+    pub fn on_decoded(&mut self, seq: u64, counts: &[u16], estimate: &[f64]) {
+        if !self.on || counts.len() != self.n_channels {
+            return;
+        }
+        let mut by_axis = [0.0; MAX_TASK_DIMS];
+        for (v, axis) in estimate.iter().zip(&self.output_axis) {
+            if let Some(a) = axis {
+                by_axis[*a] = *v;
+            }
+        }
+        if self.batch.counts.len() + counts.len() <= self.batch.counts.capacity() {
+            self.batch.counts.extend_from_slice(counts);
+            self.staged = Some((seq, by_axis));
+        }
+    }
+
+    /// A slot answered; `task` is the task computer's latest state.
+    pub fn on_answer(&mut self, slot: &SlotAnswer, task: Option<&TaskState>) {
+        if !self.on {
+            return;
+        }
+        let staged = self.staged.take();
+        let usable = match (staged, task) {
+            (Some((seq, decoded)), Some(t))
+                if seq == slot.seq
+                    && slot.state == SupervisorState::Armed
+                    && slot.flags & FLAG_BIN_MISSING == 0
+                    && t.closed_loop()
+                    && t.target_valid()
+                    && matches!(t.phase, Phase::Reach | Phase::Hold)
+                    && t.bin_seq < slot.seq
+                    && self.batch.rows.len() < self.batch.rows.capacity() =>
+            {
+                Some(BatchRow {
+                    seq,
+                    dims: t.dims,
+                    cursor: t.cursor_pos,
+                    target: t.target_pos,
+                    radius: t.target_radius,
+                    decoded,
+                })
+            }
+            _ => None,
+        };
+        match usable {
+            Some(row) => self.batch.rows.push(row),
+            None if staged.is_some() => {
+                let keep = self.batch.counts.len() - self.n_channels;
+                self.batch.counts.truncate(keep);
+            }
+            None => {}
+        }
+        self.batch.slots += 1;
+        if self.batch.slots >= self.bins_per_batch {
+            self.ship();
+        }
+    }
+
+    fn ship(&mut self) {
+        match self.spare.try_recv() {
+            Ok(mut fresh) => {
+                fresh.clear();
+                fresh.n_channels = self.n_channels;
+                let full = std::mem::replace(&mut self.batch, fresh);
+                match self.to_worker.try_send(AdaptMsg::Batch {
+                    generation: self.generation,
+                    batch: full,
+                }) {
+                    Ok(()) => self.batches_sent += 1,
+                    Err(e) => {
+                        self.batches_dropped_busy += 1;
+                        if let AdaptMsg::Batch { batch, .. } = e.into_inner() {
+                            let _ = self.spare_tx.try_send(batch);
+                        }
+                    }
+                }
+            }
+            Err(TryRecvError::Empty | TryRecvError::Disconnected) => {
+                // The worker still holds the other buffer: this batch goes.
+                self.batches_dropped_busy += 1;
+                self.batch.clear();
+            }
+        }
+    }
+
+    pub fn status(&self) -> AdaptStatus {
+        AdaptStatus {
+            on: self.on,
+            unavailable: self.unavailable.clone(),
+            batch_s: self.options.batch_s,
+            half_life_s: self.options.half_life_s,
+            bins_per_batch: self.bins_per_batch,
+            batch_rows: self.batch.rows.len(),
+            batch_slots: self.batch.slots,
+            batches_sent: self.batches_sent,
+            batches_dropped_busy: self.batches_dropped_busy,
+            worker: self.counts.lock().map(|c| c.clone()).unwrap_or_default(),
+        }
+    }
+}
+
+/// The worker thread: refit, check, hand to the real-time thread.
+struct Worker {
+    options: AdaptOptions,
+    base: Option<(ModelFile, ModelInfo)>,
+    control: Sender<ControlRequest>,
+    spare: Sender<Batch>,
+    counts: Arc<Mutex<WorkerCounts>>,
+    updates: u64,
+}
+
+impl Worker {
+    fn run(mut self, from_rt: Receiver<AdaptMsg>) {
+        while let Ok(msg) = from_rt.recv() {
+            match msg {
+                AdaptMsg::Base { model, info } => self.base = Some((*model, info)),
+                AdaptMsg::Batch { generation, batch } => {
+                    // Messages come in order, so a batch is refitted on the
+                    // model it was collected under; an update from a stale
+                    // generation is refused by the real-time thread.
+                    self.update(generation, &batch);
+                    let _ = self.spare.try_send(batch);
+                }
+            }
+        }
+    }
+
+    fn note(&self, f: impl FnOnce(&mut WorkerCounts)) {
+        if let Ok(mut c) = self.counts.lock() {
+            f(&mut c);
+        }
+    }
+
+    fn update(&mut self, generation: u64, batch: &Batch) {
+        let Some((base, base_info)) = &self.base else {
+            return;
+        };
+        let DecoderModel::Kalman(k) = &base.decoder else {
+            return;
+        };
+        let (adapted, report) = match adapt_kalman(k, batch, &self.options) {
+            Ok(r) => r,
+            Err(skip) => {
+                let too_few = matches!(skip, AdaptSkip::TooFewBins { .. });
+                tracing::info!("adaptation batch skipped: {skip}");
+                self.note(|c| {
+                    if too_few {
+                        c.skipped_too_few_bins += 1;
+                    } else {
+                        c.skipped_refused += 1;
+                    }
+                    c.last_skip = Some(skip.to_string());
+                });
+                return;
+            }
+        };
+        let update = self.updates + 1;
+        let mut file = base.clone();
+        file.decoder = DecoderModel::Kalman(adapted);
+        file.provenance.trained_at =
+            humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
+        file.provenance.tool_version = crate::VERSION.into();
+        file.provenance.fit_document = serde_json::json!({
+            "adaptation": {
+                "update": update,
+                "base_sha256": base_info.sha256,
+                "options": self.options,
+                "report": report,
+            },
+            "base_fit": serde_json::from_str::<serde_json::Value>(&base.provenance.fit_document)
+                .unwrap_or_default(),
+        })
+        .to_string();
+        file.provenance.cv = None;
+        let bytes = file.to_bytes();
+        let pipeline = match DecodePipeline::new(&file) {
+            Ok(p) => p,
+            Err(e) => {
+                self.note(|c| {
+                    c.skipped_refused += 1;
+                    c.last_skip = Some(e.to_string());
+                });
+                return;
+            }
+        };
+        let sha256: String = Sha256::digest(&bytes)
+            .iter()
+            .map(|b| format!("{b:02x}"))
+            .collect();
+        let info = ModelInfo {
+            path: format!(
+                "adaptation update {update} of {}",
+                root_path(&base_info.path)
+            ),
+            sha256,
+            ..base_info.clone()
+        };
+        let (reply, rx) = tokio::sync::oneshot::channel();
+        let request = LoadRequest {
+            pipeline,
+            model_bytes: bytes,
+            model: Box::new(file.clone()),
+            info: info.clone(),
+            reply,
+            adaptation: Some(generation),
+        };
+        if self
+            .control
+            .try_send(ControlRequest::Load(Box::new(request)))
+            .is_err()
+        {
+            self.note(|c| c.not_applied += 1);
+            return;
+        }
+        match rx.blocking_recv() {
+            Ok(Ok((from_seq, old))) => {
+                drop(old);
+                self.updates = update;
+                tracing::info!(
+                    "adaptation update {update} decodes from seq {from_seq}: {} bins, change {:.4}{}",
+                    report.rows,
+                    report.relative_change,
+                    if report.limited { " (limited)" } else { "" }
+                );
+                self.note(|c| {
+                    c.updates = update;
+                    c.last_update = Some(AppliedUpdate {
+                        update,
+                        from_seq,
+                        report,
+                    });
+                });
+                self.base = Some((file, info));
+            }
+            Ok(Err(why)) => {
+                tracing::info!("adaptation update not applied: {why}");
+                self.note(|c| {
+                    c.not_applied += 1;
+                    c.last_skip = Some(format!("not applied: {why}"));
+                });
+            }
+            Err(_) => {}
+        }
+    }
+}
+
+/// The operator's model path behind a chain of updates.
+fn root_path(path: &str) -> &str {
+    path.rsplit(" of ").next().unwrap_or(path)
+}

@@ -491,6 +491,7 @@ fn a_regular_file_at_the_socket_path_is_never_deleted() {
         .arg(&fixture().model)
         .arg("--listen")
         .arg("127.0.0.1:0")
+        .args(["--task-listen", "127.0.0.1:0"])
         .arg("--socket")
         .arg(&precious)
         .arg("--record")
@@ -610,7 +611,14 @@ fn a_full_recording_destination_leaves_decoding_running_and_what_was_written_ver
         .arg(&config)
         .arg("--model")
         .arg(&f.model)
-        .args(["--listen", "127.0.0.1:0", "--arm", "--actuator"])
+        .args([
+            "--listen",
+            "127.0.0.1:0",
+            "--task-listen",
+            "127.0.0.1:0",
+            "--arm",
+            "--actuator",
+        ])
         .arg(sink.addr.to_string())
         .arg("--socket")
         .arg(&socket)
@@ -837,4 +845,116 @@ fn task_packets_are_recorded_and_counted_and_a_flood_of_them_delays_no_bin() {
         assert_eq!(Some(slot.replayed), slot.recorded)
     })
     .unwrap();
+}
+
+/// Sends bin `seq` after the task packet drawn after bin `seq − 1`, as a
+/// task computer in closed loop would.
+fn closed_loop_bin(d: &Daemon, seq: u64, closed_loop: bool) {
+    use decoder_core::formats::task_packet::{
+        Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
+    };
+    if seq > 0 {
+        let mut t = TaskState::new(2);
+        t.phase = Phase::Reach;
+        t.bin_seq = seq - 1;
+        t.trial = (seq / 100) as u32;
+        t.flags = TASK_FLAG_TARGET_VALID
+            | if closed_loop {
+                TASK_FLAG_CLOSED_LOOP
+            } else {
+                0
+            };
+        t.target_radius = 1.0;
+        let angle = (seq / 100) as f64;
+        t.target_pos[..2].copy_from_slice(&[10.0 * angle.cos(), 10.0 * angle.sin()]);
+        t.cursor_pos[..2].copy_from_slice(&[(seq % 100) as f64 * 0.05, 0.0]);
+        let mut bytes = Vec::new();
+        encode_task(&t, &mut bytes);
+        d.send_task(&bytes);
+    }
+    d.send_bin(seq);
+}
+
+fn stream_closed_loop(d: &Daemon, seqs: std::ops::Range<u64>, closed_loop: bool) {
+    let t0 = Instant::now();
+    let first = seqs.start;
+    for seq in seqs {
+        let due = t0 + BIN * (seq - first) as u32;
+        if let Some(w) = due.checked_duration_since(Instant::now()) {
+            std::thread::sleep(w);
+        }
+        closed_loop_bin(d, seq, closed_loop);
+    }
+}
+
+#[test]
+fn adaptation_updates_only_while_armed_in_closed_loop_and_the_session_verifies() {
+    let mut d = Daemon::start(
+        true,
+        &format!("{TEST_TIMING}[adaptation]\nbatch_s = 1.0\nhalf_life_s = 5.0\n"),
+    );
+    assert!(d.status().table().contains("adaptation         off"));
+    let r = d.ctl(Request::Adapt { on: true });
+    assert!(r.ok, "{}", r.message);
+    // Armed, closed loop, a target: every batch of 50 bins is an update.
+    stream_closed_loop(&d, 0..160, true);
+    let s = d.wait_for_status("three updates", |s| s.adaptation.worker.updates >= 3);
+    assert!(
+        s.model.path.starts_with("adaptation update"),
+        "{}",
+        s.model.path
+    );
+    assert_eq!(s.adaptation.worker.not_applied, 0);
+    let done = s.adaptation.worker.updates;
+    // Task says the cursor is not following the decoder: nothing usable.
+    stream_closed_loop(&d, 160..260, false);
+    let s = d.wait_for_status("a batch skipped", |s| {
+        s.adaptation.worker.skipped_too_few_bins >= 1
+    });
+    assert_eq!(s.adaptation.worker.updates, done);
+    // Disarmed: never an update.
+    assert!(d.ctl(Request::Disarm).ok);
+    stream_closed_loop(&d, 260..420, true);
+    d.wait_for_seq(419);
+    let s = d.wait_for_status("the disarmed batches skipped", |s| {
+        s.adaptation.worker.skipped_too_few_bins >= 3
+    });
+    assert_eq!(s.adaptation.worker.updates, done, "{:?}", s.adaptation);
+    assert!(d.ctl(Request::Adapt { on: false }).ok);
+    let ended = d.stop();
+    // Every update is a model record; the adaptive session replays bit
+    // for bit.
+    let mut reader = LogReader::open(&ended.session_log).unwrap();
+    let mut n = 0;
+    let summary = replay_log(&mut reader, None, |slot| {
+        assert_eq!(Some(slot.replayed), slot.recorded, "slot {n}");
+        n += 1;
+    })
+    .unwrap();
+    assert_eq!(summary.model_loads, 1 + done);
+    assert_eq!(summary.slots as usize, ended.packets.len());
+}
+
+#[test]
+fn a_model_that_cannot_adapt_refuses_adaptation_with_the_reason() {
+    let f = fixture();
+    let d = Daemon::start(true, TEST_TIMING);
+    let r = d.ctl(Request::Load {
+        path: f.wiener_model.clone(),
+    });
+    assert!(r.ok, "{}", r.message);
+    let r = d.ctl(Request::Adapt { on: true });
+    assert!(!r.ok);
+    assert!(
+        r.message.contains("wiener") && r.message.contains("Kalman"),
+        "{}",
+        r.message
+    );
+    let s = d.status();
+    assert!(!s.adaptation.on);
+    assert!(
+        s.table().contains("adaptation         not available"),
+        "{}",
+        s.table()
+    );
 }

@@ -15,6 +15,7 @@ pub mod recorder;
 pub mod rt_loop;
 pub mod status;
 pub mod sys;
+pub mod watch;
 
 use std::net::{SocketAddr, UdpSocket};
 use std::path::{Path, PathBuf};
@@ -140,6 +141,10 @@ pub enum CtlAction {
         /// Model file from `replay-tool train`.
         model: PathBuf,
     },
+    /// A live view for the operator, redrawn four times a second: state,
+    /// rates, latency, dropouts, command, channels, task and adaptation.
+    /// `h` halts; `q` leaves the view.
+    Watch,
     /// Turn online adaptation on or off (config [adaptation]).
     Adapt {
         #[arg(value_enum)]
@@ -218,6 +223,10 @@ pub fn init_logging(format: LogFormat, level: &str) {
 /// `decoderd ctl`: prints the reply; Ok(false) when the daemon refused.
 pub fn ctl(args: &CtlArgs) -> Result<bool> {
     let request = match &args.action {
+        CtlAction::Watch => {
+            watch::run(&args.socket)?;
+            return Ok(true);
+        }
         CtlAction::Status { .. } => Request::Status,
         CtlAction::Arm => Request::Arm,
         CtlAction::Disarm => Request::Disarm,

@@ -149,6 +149,7 @@ impl SlotSink for Out<'_> {
             self.monitor.send_errors += 1;
         }
         self.monitor.on_sent(slot, sent_ns);
+        self.monitor.note_values(packet_bytes);
         self.adapt.on_answer(slot, self.task);
         if let Some(b) = self.batcher.as_deref_mut() {
             b.record(RecordKind::Sent, slot.decided_ns, &[packet_bytes]);
@@ -445,6 +446,8 @@ impl RtLoop {
             realtime_warnings: self.info.realtime_warnings.clone(),
             task: self.task.status(self.info.task_listen, sys::monotonic_ns()),
             adaptation: self.adapt.status(),
+            last_command: self.monitor.last_command[..self.monitor.dims].to_vec(),
+            last_estimate: self.monitor.last_estimate[..self.monitor.dims].to_vec(),
         }
     }
 }

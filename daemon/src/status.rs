@@ -25,6 +25,10 @@ pub struct Monitor {
     pub last_bin_recv_ns: u64,
     /// The supervisor's last state change.
     pub last_transition: Option<Transition>,
+    /// The last packet's command and estimate (first `dims` entries).
+    pub last_command: [f64; 8],
+    pub last_estimate: [f64; 8],
+    pub dims: usize,
 }
 
 impl Default for Monitor {
@@ -37,6 +41,9 @@ impl Default for Monitor {
             send_errors: 0,
             last_bin_recv_ns: 0,
             last_transition: None,
+            last_command: [0.0; 8],
+            last_estimate: [0.0; 8],
+            dims: 0,
         }
     }
 }
@@ -57,6 +64,21 @@ impl Monitor {
             self.origin_to_send
                 .saturating_record((sent_ns - slot.origin_ns).max(1));
         }
+    }
+
+    /// Keeps the command and estimate of a packet as sent (PROTOCOL.md
+    /// §2: byte 7 the dimension, command from byte 48, then the estimate).
+    pub fn note_values(&mut self, packet: &[u8]) {
+        let d = usize::from(packet.get(7).copied().unwrap_or(0)).min(8);
+        if packet.len() < 48 + 16 * d {
+            return;
+        }
+        let f = |at: usize| f64::from_le_bytes(packet[at..at + 8].try_into().expect("8 bytes"));
+        for i in 0..d {
+            self.last_command[i] = f(48 + 8 * i);
+            self.last_estimate[i] = f(48 + 8 * (d + i));
+        }
+        self.dims = d;
     }
 
     pub fn latency(&self) -> LatencyReport {
@@ -300,6 +322,11 @@ pub struct Status {
     /// Online adaptation: on or off, updates, skips.
     #[serde(default)]
     pub adaptation: crate::adaptation::AdaptStatus,
+    /// The last velocity packet's command and estimate.
+    #[serde(default)]
+    pub last_command: Vec<f64>,
+    #[serde(default)]
+    pub last_estimate: Vec<f64>,
 }
 
 pub fn rejected_by_name(c: &EngineCounters) -> BTreeMap<String, u64> {

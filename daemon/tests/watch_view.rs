@@ -1,0 +1,193 @@
+//! `decoderd ctl watch` as an operator sees it: driven in a real terminal
+//! (a tmux pane) against the real daemon, and its frames rendered from
+//! real status snapshots.
+
+mod support;
+
+use std::process::Command;
+use std::time::{Duration, Instant};
+
+use daemon::watch::{Snapshot, render};
+use support::{BIN, Daemon, PATIENCE, TEST_TIMING};
+
+/// A tmux session, killed when dropped.
+struct Pane(String);
+
+impl Pane {
+    fn open(command: &str) -> Pane {
+        static NEXT: std::sync::atomic::AtomicUsize = std::sync::atomic::AtomicUsize::new(0);
+        let n = NEXT.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
+        let name = format!("vdec-watch-{}-{n}", std::process::id());
+        let ok = Command::new("tmux")
+            .args([
+                "new-session",
+                "-d",
+                "-s",
+                &name,
+                "-x",
+                "120",
+                "-y",
+                "40",
+                command,
+            ])
+            .status()
+            .expect("tmux is needed for this test (apt install tmux; .ci/run installs it)");
+        assert!(ok.success());
+        Pane(name)
+    }
+
+    fn text(&self) -> String {
+        let out = Command::new("tmux")
+            .args(["capture-pane", "-p", "-t", &self.0])
+            .output()
+            .unwrap();
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    }
+
+    fn wait_for(&self, what: &[&str]) -> String {
+        let start = Instant::now();
+        loop {
+            let t = self.text();
+            if what.iter().all(|w| t.contains(w)) {
+                return t;
+            }
+            assert!(
+                start.elapsed() < PATIENCE,
+                "the view never showed {what:?}:\n{t}"
+            );
+            std::thread::sleep(Duration::from_millis(50));
+        }
+    }
+
+    fn key(&self, k: &str) {
+        Command::new("tmux")
+            .args(["send-keys", "-t", &self.0, k])
+            .status()
+            .unwrap();
+    }
+}
+
+impl Drop for Pane {
+    fn drop(&mut self) {
+        let _ = Command::new("tmux")
+            .args(["kill-session", "-t", &self.0])
+            .status();
+    }
+}
+
+fn task_packet(seq: u64) -> Vec<u8> {
+    use decoder_core::formats::task_packet::{
+        Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
+    };
+    let mut t = TaskState::new(2);
+    t.phase = Phase::Reach;
+    t.bin_seq = seq;
+    t.trial = 7;
+    t.flags = TASK_FLAG_CLOSED_LOOP | TASK_FLAG_TARGET_VALID;
+    t.target_radius = 1.0;
+    let mut b = Vec::new();
+    encode_task(&t, &mut b);
+    b
+}
+
+#[test]
+fn the_view_shows_the_live_daemon_halts_on_one_key_and_exits_when_it_stops() {
+    let mut d = Daemon::start(true, TEST_TIMING);
+    let command = format!(
+        "{} ctl --socket {} watch; echo VIEW-EXITED $?; sleep 60",
+        env!("CARGO_BIN_EXE_decoderd"),
+        d.socket.display()
+    );
+    let pane = Pane::open(&command);
+    std::thread::scope(|s| {
+        let d = &d;
+        s.spawn(move || {
+            let t0 = Instant::now();
+            for seq in 0..150u64 {
+                if let Some(w) = (t0 + BIN * seq as u32).checked_duration_since(Instant::now()) {
+                    std::thread::sleep(w);
+                }
+                d.send_task(&task_packet(seq.saturating_sub(1)));
+                d.send_bin(seq);
+            }
+        });
+        let shown = pane.wait_for(&["STATE      ARMED", "bins/s decoded", "trial 7 reach"]);
+        assert!(shown.contains("latency    p50"), "{shown}");
+        assert!(shown.contains("h halt"), "{shown}");
+        // One key halts the daemon.
+        pane.key("h");
+        d.wait_for_status("halted by the view", |s| s.state == "halted");
+        pane.wait_for(&["STATE      HALTED", "operator halt"]);
+    });
+    d.stop();
+    let t = pane.wait_for(&["decoderd stopped", "VIEW-EXITED 0"]);
+    assert!(!t.contains("panicked"), "{t}");
+}
+
+#[test]
+fn q_leaves_the_view_and_changes_nothing() {
+    let d = Daemon::start(true, TEST_TIMING);
+    d.stream(0..20, 0);
+    // The sender stopped: the daemon halts by itself first.
+    let before = d.wait_for_status("halted after the stream", |s| s.state == "halted");
+    let command = format!(
+        "{} ctl --socket {} watch; echo VIEW-EXITED $?; sleep 60",
+        env!("CARGO_BIN_EXE_decoderd"),
+        d.socket.display()
+    );
+    let pane = Pane::open(&command);
+    pane.wait_for(&["STATE      HALTED"]);
+    pane.key("x");
+    pane.key("q");
+    pane.wait_for(&["VIEW-EXITED 0"]);
+    let after = d.status();
+    assert_eq!(after.state, before.state);
+    assert_eq!(after.counters.transitions, before.counters.transitions);
+}
+
+#[test]
+fn a_frame_holds_what_the_operator_needs() {
+    let d = Daemon::start(true, TEST_TIMING);
+    let first = Snapshot {
+        status: d.status(),
+        at: Instant::now(),
+    };
+    let frame = render(&first, None, "");
+    assert!(frame.contains("no bin yet"), "{frame}");
+    assert!(
+        frame.contains("channels   not known before the first bin"),
+        "{frame}"
+    );
+    assert!(frame.contains("task       no task packets yet"), "{frame}");
+    assert!(frame.contains("measuring"), "{frame}");
+    for seq in 0..50u64 {
+        d.send_task(&task_packet(seq.saturating_sub(1)));
+        d.send_bin(seq);
+        std::thread::sleep(BIN);
+    }
+    d.wait_for_seq(49);
+    let second = Snapshot {
+        status: d.status(),
+        at: Instant::now(),
+    };
+    let frame = render(&second, Some(&first), "halt: armed -> halted at seq 3");
+    let rate_line = frame.lines().find(|l| l.starts_with("stream")).unwrap();
+    let rate: f64 = rate_line
+        .split_whitespace()
+        .nth(1)
+        .unwrap()
+        .parse()
+        .unwrap();
+    // 50 bins in about 1 s (the first snapshot was before the stream).
+    assert!((20.0..=60.0).contains(&rate), "{rate_line}");
+    assert!(frame.contains("command    vel_x"), "{frame}");
+    assert!(frame.contains("estimate   vel_x"), "{frame}");
+    assert!(frame.contains("trial 7 reach, closed loop"), "{frame}");
+    assert!(frame.contains("adaptation off"), "{frame}");
+    assert!(frame.contains("dropouts   0 missing"), "{frame}");
+    assert!(
+        frame.ends_with("halt: armed -> halted at seq 3\n"),
+        "{frame}"
+    );
+    assert!(!frame.contains('\x1b'), "a frame is plain text");
+}

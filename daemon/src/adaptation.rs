@@ -23,7 +23,8 @@ use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::SlotAnswer;
 use decoder_core::engine::supervisor::SupervisorState;
 use decoder_core::fit::adapt::{
-    AdaptOptions, AdaptReport, AdaptSkip, Batch, BatchRow, adapt_kalman, check_adaptable,
+    AdaptOptions, AdaptReport, AdaptSkip, Batch, BatchRow, adapt_kalman, adapt_point_process,
+    check_adaptable,
 };
 use decoder_core::formats::packet::FLAG_BIN_MISSING;
 use decoder_core::formats::task_packet::{MAX_TASK_DIMS, Phase, TaskState};
@@ -106,7 +107,7 @@ impl AdaptStatus {
             )
         });
         format!(
-            "ON: {}, {} skipped (too few bins), {} refused, {} not applied; batch {}/{} bins ({} usable){last}",
+            "ON: {}, {} skipped (too few bins), {} refused, {} not applied; batch {}/{} slots ({} usable){last}",
             crate::status::plural(self.worker.updates, "update", "updates"),
             self.worker.skipped_too_few_bins,
             self.worker.skipped_refused,
@@ -142,9 +143,10 @@ pub struct Collector {
 /// Why a model cannot adapt, or `None`.
 fn unavailable(model: &ModelFile) -> Option<String> {
     match &model.decoder {
-        DecoderModel::Kalman(k) => check_adaptable(k).err().map(|e| e.to_string()),
+        DecoderModel::Kalman(k) => check_adaptable(&k.state).err().map(|e| e.to_string()),
+        DecoderModel::PointProcess(p) => check_adaptable(&p.state).err().map(|e| e.to_string()),
         other => Some(format!(
-            "the running model is a {} decoder; this version adapts the Kalman filter's observation model only",
+            "the running model is a {} decoder; adaptation refits the observation model of a Kalman or point-process decoder",
             other.kind()
         )),
     }
@@ -305,36 +307,33 @@ impl Collector {
         if !self.on {
             return;
         }
-        let staged = self.staged.take();
-        let usable = match (staged, task) {
-            (Some((seq, decoded)), Some(t))
-                if seq == slot.seq
-                    && slot.state == SupervisorState::Armed
-                    && slot.flags & FLAG_BIN_MISSING == 0
-                    && t.closed_loop()
-                    && t.target_valid()
-                    && matches!(t.phase, Phase::Reach | Phase::Hold)
-                    && t.bin_seq < slot.seq
-                    && self.batch.rows.len() < self.batch.rows.capacity() =>
-            {
-                Some(BatchRow {
+        // Every decoded bin is a row (its counts are the spike history of
+        // the next); only a usable one is fitted.
+        if let Some((seq, decoded)) = self.staged.take() {
+            if seq == slot.seq && self.batch.rows.len() < self.batch.rows.capacity() {
+                let usable = task.is_some_and(|t| {
+                    slot.state == SupervisorState::Armed
+                        && slot.flags & FLAG_BIN_MISSING == 0
+                        && t.closed_loop()
+                        && t.target_valid()
+                        && matches!(t.phase, Phase::Reach | Phase::Hold)
+                        && t.bin_seq < slot.seq
+                });
+                let blank = TaskState::new(1);
+                let t = task.filter(|_| usable).unwrap_or(&blank);
+                self.batch.rows.push(BatchRow {
                     seq,
+                    usable,
                     dims: t.dims,
                     cursor: t.cursor_pos,
                     target: t.target_pos,
                     radius: t.target_radius,
                     decoded,
-                })
-            }
-            _ => None,
-        };
-        match usable {
-            Some(row) => self.batch.rows.push(row),
-            None if staged.is_some() => {
+                });
+            } else {
                 let keep = self.batch.counts.len() - self.n_channels;
                 self.batch.counts.truncate(keep);
             }
-            None => {}
         }
         self.batch.slots += 1;
         if self.batch.slots >= self.bins_per_batch {
@@ -376,7 +375,7 @@ impl Collector {
             batch_s: self.options.batch_s,
             half_life_s: self.options.half_life_s,
             bins_per_batch: self.bins_per_batch,
-            batch_rows: self.batch.rows.len(),
+            batch_rows: self.batch.usable_rows(),
             batch_slots: self.batch.slots,
             batches_sent: self.batches_sent,
             batches_dropped_busy: self.batches_dropped_busy,
@@ -421,10 +420,15 @@ impl Worker {
         let Some((base, base_info)) = &self.base else {
             return;
         };
-        let DecoderModel::Kalman(k) = &base.decoder else {
-            return;
+        let result = match &base.decoder {
+            DecoderModel::Kalman(k) => {
+                adapt_kalman(k, batch, &self.options).map(|(m, r)| (DecoderModel::Kalman(m), r))
+            }
+            DecoderModel::PointProcess(p) => adapt_point_process(p, batch, &self.options)
+                .map(|(m, r)| (DecoderModel::PointProcess(m), r)),
+            _ => return,
         };
-        let (adapted, report) = match adapt_kalman(k, batch, &self.options) {
+        let (adapted, report) = match result {
             Ok(r) => r,
             Err(skip) => {
                 let too_few = matches!(skip, AdaptSkip::TooFewBins { .. });
@@ -442,7 +446,7 @@ impl Worker {
         };
         let update = self.updates + 1;
         let mut file = base.clone();
-        file.decoder = DecoderModel::Kalman(adapted);
+        file.decoder = adapted;
         file.provenance.trained_at =
             humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string();
         file.provenance.tool_version = crate::VERSION.into();

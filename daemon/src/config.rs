@@ -492,7 +492,7 @@ impl Config {
             return Err(c.err(
                 "adaptation.parameters",
                 format!(
-                    "{parameters:?}; this version adapts \"observation\" (the Kalman filter's H and Q) only"
+                    "{parameters:?}; this version adapts \"observation\" (Kalman H and Q, point-process b0 and β) only"
                 ),
             ));
         }

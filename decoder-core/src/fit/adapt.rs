@@ -4,12 +4,15 @@
 //! While the participant drives the cursor, each batch of bins (a few
 //! seconds) is labelled with the velocity the participant intended —
 //! the decoded velocity turned toward the target, zero inside it
-//! (intention re-estimation, Gilja et al. 2012) — and the Kalman filter's
-//! observation model (H, Q) is refitted on that batch alone. The running
+//! (intention re-estimation, Gilja et al. 2012) — and the observation
+//! model is refitted on that batch alone: the Kalman filter's H and Q, or
+//! each point-process channel's tuning (b0 and β, by Poisson IRLS with
+//! its spike-history and coupling terms held as an offset). The running
 //! model moves toward the batch fit by a fixed fraction per batch, so old
 //! batches fade with a half-life rather than being forgotten at once:
 //! `H ← α·H + (1 − α)·H_batch` with `α = 0.5^(batch / half-life)`, and the
-//! same for Q. The state model (A, W) is the calibration's and stays.
+//! same for Q (or b0, β). The state model (A, W) is the calibration's and
+//! stays.
 //!
 //! Every update is checked before it may run: finite, Q positive definite,
 //! the change per update within a limit (a larger step is cut to the
@@ -20,18 +23,24 @@
 
 use nalgebra::DMatrix;
 
+use crate::decoders::history_basis::ETA_LIMIT;
 use crate::decoders::kalman::model::{KalmanModel, ObservationNoise};
 use crate::decoders::kalman::steady::{
     DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE, steady_state_gain,
 };
+use crate::decoders::point_process::PointProcessModel;
 use crate::formats::task_packet::MAX_TASK_DIMS;
 use crate::linalg::{self, Mat};
 
-/// One usable bin of a batch: what the participant saw and what was
-/// decoded from the bin's counts.
+/// One decoded bin of a batch: what the participant saw and what was
+/// decoded from the bin's counts. Every decoded bin is a row (the
+/// point-process fit needs the spike history); only `usable` rows are
+/// fitted.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct BatchRow {
     pub seq: u64,
+    /// Armed, closed loop, a valid target, reach or hold.
+    pub usable: bool,
     pub dims: u8,
     pub cursor: [f64; MAX_TASK_DIMS],
     pub target: [f64; MAX_TASK_DIMS],
@@ -40,8 +49,8 @@ pub struct BatchRow {
     pub decoded: [f64; MAX_TASK_DIMS],
 }
 
-/// A batch: `rows.len()` usable bins and their counts, out of `slots`
-/// slots answered while it was collected.
+/// A batch: `rows.len()` decoded bins in seq order and their counts, out
+/// of `slots` slots answered while it was collected.
 #[derive(Clone, Debug, Default, PartialEq)]
 pub struct Batch {
     pub n_channels: usize,
@@ -66,6 +75,10 @@ impl Batch {
         self.counts.clear();
         self.rows.clear();
         self.slots = 0;
+    }
+
+    pub fn usable_rows(&self) -> usize {
+        self.rows.iter().filter(|r| r.usable).count()
     }
 }
 
@@ -135,8 +148,9 @@ pub struct AdaptReport {
     pub relative_change: f64,
     /// The step was cut to `max_relative_change`.
     pub limited: bool,
-    /// Spectral radius of the steady-state closed loop after the update.
-    pub spectral_radius: f64,
+    /// Spectral radius of the steady-state closed loop after the update
+    /// (Kalman filter only).
+    pub spectral_radius: Option<f64>,
     pub keep: f64,
 }
 
@@ -166,15 +180,14 @@ enum Source {
     Constant,
 }
 
-fn sources(model: &KalmanModel) -> Result<Vec<Source>, AdaptSkip> {
+fn sources(state: &[String]) -> Result<Vec<Source>, AdaptSkip> {
     let axis = |a: &str| match a {
         "x" => Some(0),
         "y" => Some(1),
         "z" => Some(2),
         other => other.parse::<usize>().ok().and_then(|n| n.checked_sub(1)),
     };
-    model
-        .state
+    state
         .iter()
         .map(|name| {
             let bad = || AdaptSkip::UnsupportedState { name: name.clone() };
@@ -197,10 +210,36 @@ fn sources(model: &KalmanModel) -> Result<Vec<Source>, AdaptSkip> {
         .collect()
 }
 
-/// Checks that `model` can be adapted at all (its state is made of
-/// positions, velocities and the constant).
-pub fn check_adaptable(model: &KalmanModel) -> Result<(), AdaptSkip> {
-    sources(model).map(|_| ())
+/// Checks that a model with this state can be adapted at all (its state
+/// is made of positions, velocities and the constant).
+pub fn check_adaptable(state: &[String]) -> Result<(), AdaptSkip> {
+    sources(state).map(|_| ())
+}
+
+/// The intended state of a row.
+fn intended_state(row: &BatchRow, src: &[Source], out: &mut [f64]) {
+    let v = intended_velocity(row);
+    for (o, s) in out.iter_mut().zip(src) {
+        *o = match *s {
+            Source::Pos(i) => row.cursor[i],
+            Source::Vel(i) => v[i],
+            Source::Constant => 1.0,
+        };
+    }
+}
+
+fn enough(batch: &Batch, options: &AdaptOptions, params: usize) -> Result<(), AdaptSkip> {
+    let usable = batch.usable_rows();
+    let needed =
+        ((options.min_usable_fraction * batch.slots as f64).ceil() as usize).max(params + 2);
+    if usable < needed {
+        return Err(AdaptSkip::TooFewBins {
+            usable,
+            slots: batch.slots,
+            needed,
+        });
+    }
+    Ok(())
 }
 
 /// One SmoothBatch update of `model`'s observation model from `batch`.
@@ -209,33 +248,27 @@ pub fn adapt_kalman(
     batch: &Batch,
     options: &AdaptOptions,
 ) -> Result<(KalmanModel, AdaptReport), AdaptSkip> {
-    let src = sources(model)?;
-    let (d, n, t) = (model.state_dim(), model.n_channels(), batch.rows.len());
-    let needed = ((options.min_usable_fraction * batch.slots as f64).ceil() as usize).max(d + 2);
-    if t < needed {
-        return Err(AdaptSkip::TooFewBins {
-            usable: t,
-            slots: batch.slots,
-            needed,
-        });
-    }
+    let src = sources(&model.state)?;
+    let (d, n) = (model.state_dim(), model.n_channels());
+    enough(batch, options, d)?;
+    let used: Vec<usize> = (0..batch.rows.len())
+        .filter(|r| batch.rows[*r].usable)
+        .collect();
+    let t = used.len();
     // Design: the intended state of each row; targets: normalised counts
     // in the running model's units.
     let mut x = DMatrix::<f64>::zeros(t, d);
-    for (r, row) in batch.rows.iter().enumerate() {
-        let v = intended_velocity(row);
-        for (c, s) in src.iter().enumerate() {
-            x[(r, c)] = match *s {
-                Source::Pos(i) => row.cursor[i],
-                Source::Vel(i) => v[i],
-                Source::Constant => 1.0,
-            };
+    let mut state = vec![0.0; d];
+    for (r, &row) in used.iter().enumerate() {
+        intended_state(&batch.rows[row], &src, &mut state);
+        for (c, v) in state.iter().enumerate() {
+            x[(r, c)] = *v;
         }
     }
     let mut y = DMatrix::<f64>::zeros(t, n);
-    for r in 0..t {
+    for (r, &row) in used.iter().enumerate() {
         for ch in 0..n {
-            let c = f64::from(batch.counts[r * n + ch]);
+            let c = f64::from(batch.counts[row * n + ch]);
             y[(r, ch)] = (c - model.count_offset[ch]) / model.count_scale[ch];
         }
     }
@@ -334,14 +367,209 @@ pub fn adapt_kalman(
     let report = AdaptReport {
         rows: t,
         slots: batch.slots,
-        first_seq: batch.rows[0].seq,
-        last_seq: batch.rows[t - 1].seq,
+        first_seq: batch.rows[used[0]].seq,
+        last_seq: batch.rows[used[t - 1]].seq,
         relative_change: change * step,
         limited,
-        spectral_radius: radius,
+        spectral_radius: Some(radius),
         keep,
     };
     Ok((adapted, report))
+}
+
+/// One SmoothBatch update of a point-process model's tuning: per channel,
+/// b0 and β refitted by Poisson IRLS on the batch's intended states, with
+/// the channel's spike-history and coupling terms (from the batch's own
+/// counts; a bin that never came counts zero, as in the filter) held as an
+/// offset, then blended and limited as for the Kalman filter.
+pub fn adapt_point_process(
+    model: &PointProcessModel,
+    batch: &Batch,
+    options: &AdaptOptions,
+) -> Result<(PointProcessModel, AdaptReport), AdaptSkip> {
+    let src = sources(&model.state)?;
+    let (d, n) = (model.state.len(), model.n_channels());
+    enough(batch, options, d + 1)?;
+    let span = model.history_basis.as_ref().map_or(0, |b| b.span_bins);
+    let coupled = model
+        .channels
+        .iter()
+        .flatten()
+        .any(|c| !c.coupling.is_empty());
+    let back = span.max(usize::from(coupled)) as u64;
+    let first = batch.rows[0].seq;
+    let last = batch.rows[batch.rows.len() - 1].seq;
+    // Row of each seq in the batch (None: the bin never came).
+    let mut row_of = vec![None; (last - first + 1) as usize];
+    for (r, row) in batch.rows.iter().enumerate() {
+        row_of[(row.seq - first) as usize] = Some(r);
+    }
+    let count = |seq: u64, ch: usize| -> f64 {
+        row_of[(seq - first) as usize].map_or(0.0, |r| f64::from(batch.counts[r * n + ch]))
+    };
+    // Rows fitted: usable, with their whole history inside the batch.
+    let used: Vec<usize> = (0..batch.rows.len())
+        .filter(|&r| batch.rows[r].usable && batch.rows[r].seq - first >= back)
+        .collect();
+    if used.len() < d + 3 {
+        return Err(AdaptSkip::TooFewBins {
+            usable: used.len(),
+            slots: batch.slots,
+            needed: d + 3,
+        });
+    }
+    let p = d + 1;
+    let t = used.len();
+    let mut x = DMatrix::<f64>::zeros(t, p);
+    let mut state = vec![0.0; d];
+    for (i, &r) in used.iter().enumerate() {
+        intended_state(&batch.rows[r], &src, &mut state);
+        x[(i, 0)] = 1.0;
+        for (c, v) in state.iter().enumerate() {
+            x[(i, 1 + c)] = *v;
+        }
+    }
+    let keep = options.keep();
+    let mut adapted = model.clone();
+    let (mut old_norm, mut diff) = (0.0f64, Vec::new());
+    for (ch, glm) in model.channels.iter().enumerate() {
+        let Some(glm) = glm else { continue };
+        let theta_old: Vec<f64> = std::iter::once(glm.b0)
+            .chain(glm.beta.iter().copied())
+            .collect();
+        old_norm += theta_old.iter().map(|v| v * v).sum::<f64>();
+        let y: Vec<f64> = used
+            .iter()
+            .map(|&r| f64::from(batch.counts[r * n + ch]))
+            .collect();
+        if y.iter().all(|v| *v == 0.0) {
+            // Silent in this batch: its tuning stays.
+            diff.push((ch, vec![0.0; p]));
+            continue;
+        }
+        let kernel: Vec<f64> = match &model.history_basis {
+            Some(b) => (0..span)
+                .map(|lag0| {
+                    glm.history
+                        .iter()
+                        .enumerate()
+                        .map(|(j, h)| h * b.weights.get(j, lag0))
+                        .sum()
+                })
+                .collect(),
+            None => Vec::new(),
+        };
+        let offset: Vec<f64> = used
+            .iter()
+            .map(|&r| {
+                let seq = batch.rows[r].seq;
+                let mut o = 0.0;
+                for (lag0, k) in kernel.iter().enumerate() {
+                    o += k * count(seq - 1 - lag0 as u64, ch);
+                }
+                for (j, g) in glm.coupling.iter().enumerate() {
+                    o += g * count(seq - 1, j);
+                }
+                o
+            })
+            .collect();
+        let theta = poisson_irls(&x, &y, &offset, &theta_old, options.ridge)
+            .map_err(|e| AdaptSkip::Fit(format!("channel {ch}: {e}")))?;
+        let target: Vec<f64> = theta_old
+            .iter()
+            .zip(&theta)
+            .map(|(o, b)| keep * o + (1.0 - keep) * b)
+            .collect();
+        diff.push((
+            ch,
+            target.iter().zip(&theta_old).map(|(t, o)| t - o).collect(),
+        ));
+    }
+    let old_norm = old_norm.sqrt().max(f64::MIN_POSITIVE);
+    let change = diff
+        .iter()
+        .flat_map(|(_, d)| d.iter().map(|v| v * v))
+        .sum::<f64>()
+        .sqrt()
+        / old_norm;
+    let limited = change > options.max_relative_change;
+    let step = if limited {
+        options.max_relative_change / change
+    } else {
+        1.0
+    };
+    for (ch, delta) in &diff {
+        if let Some(glm) = adapted.channels[*ch].as_mut() {
+            glm.b0 += step * delta[0];
+            for (b, dv) in glm.beta.iter_mut().zip(&delta[1..]) {
+                *b += step * dv;
+            }
+        }
+    }
+    adapted
+        .validate()
+        .map_err(|e| AdaptSkip::Refused(e.to_string()))?;
+    let report = AdaptReport {
+        rows: t,
+        slots: batch.slots,
+        first_seq: batch.rows[used[0]].seq,
+        last_seq: batch.rows[used[t - 1]].seq,
+        relative_change: change * step,
+        limited,
+        spectral_radius: None,
+        keep,
+    };
+    Ok((adapted, report))
+}
+
+/// Poisson regression of `y` on `x` with a fixed `offset` by Newton's
+/// method (IRLS), a ridge on every coefficient but the first, started at
+/// `start`.
+fn poisson_irls(
+    x: &DMatrix<f64>,
+    y: &[f64],
+    offset: &[f64],
+    start: &[f64],
+    ridge: f64,
+) -> Result<Vec<f64>, String> {
+    let (t, p) = x.shape();
+    let mut theta = nalgebra::DVector::from_column_slice(start);
+    for _ in 0..50 {
+        let mut grad = nalgebra::DVector::<f64>::zeros(p);
+        let mut hess = DMatrix::<f64>::zeros(p, p);
+        for r in 0..t {
+            let row = x.row(r);
+            let eta = (row.dot(&theta.transpose()) + offset[r]).clamp(-ETA_LIMIT, ETA_LIMIT);
+            let mu = eta.exp();
+            let resid = y[r] - mu;
+            for i in 0..p {
+                grad[i] += row[i] * resid;
+                for j in 0..=i {
+                    hess[(i, j)] += mu * row[i] * row[j];
+                }
+            }
+        }
+        for i in 0..p {
+            for j in 0..i {
+                hess[(j, i)] = hess[(i, j)];
+            }
+            if i > 0 {
+                grad[i] -= ridge * theta[i];
+                hess[(i, i)] += ridge;
+            }
+        }
+        let delta = nalgebra::Cholesky::new(hess)
+            .ok_or("the information matrix is singular")?
+            .solve(&grad);
+        theta += &delta;
+        if !theta.iter().all(|v| v.is_finite()) {
+            return Err("the fit diverged".into());
+        }
+        if delta.amax() < 1e-9 {
+            return Ok(theta.iter().copied().collect());
+        }
+    }
+    Err("IRLS did not converge in 50 iterations".into())
 }
 
 /// Spectral radius of `m` with the constant component (which A holds at
@@ -364,6 +592,7 @@ mod tests {
     fn row(cursor: [f64; 2], target: [f64; 2], decoded: [f64; 2]) -> BatchRow {
         let mut r = BatchRow {
             seq: 0,
+            usable: true,
             dims: 2,
             cursor: [0.0; MAX_TASK_DIMS],
             target: [0.0; MAX_TASK_DIMS],

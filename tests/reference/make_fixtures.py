@@ -21,7 +21,8 @@ Writes, into the directory given as the only argument:
                           channels on the block's velocity, without and
                           with own-history columns through a raised-cosine
                           basis (written out here from its formula), with
-                          the design matrices used
+                          the design matrices used; glm_offset_* the same
+                          fit of one channel with a fixed offset
   wiener_sklearn_weights  sklearn.linear_model.Ridge on the block's lagged
                           counts (intercept first), for the Wiener filter
   intention_*.npy         a cursor, decoded velocity and trials, and the
@@ -294,6 +295,16 @@ def main(out):
         hist = sm.GLM(y, sm.add_constant(design), family=sm.families.Poisson()).fit(**TIGHT)
         np.save(os.path.join(out, f"glm_history_coef_{c}.npy"), hist.params)
         np.save(os.path.join(out, f"glm_history_deviance_{c}.npy"), np.array([hist.deviance]))
+
+    # A Poisson GLM with a fixed offset (what online adaptation fits: the
+    # tuning, with the spike-history drive held fixed): statsmodels'
+    # GLM(offset=...) on the velocity, the offset a known kernel on the
+    # channel's own history columns.
+    y = counts[:, 5].astype(np.float64)
+    offset = history_columns(y, basis) @ np.array([0.3, -0.2, 0.1, -0.05])
+    np.save(os.path.join(out, "glm_offset_offset.npy"), offset)
+    fit = sm.GLM(y, sm.add_constant(vel), offset=offset, family=sm.families.Poisson()).fit(**TIGHT)
+    np.save(os.path.join(out, "glm_offset_coef.npy"), fit.params)
 
     # The Wiener filter: scikit-learn's Ridge on the lagged design (the
     # current bin and WIENER_TAPS - 1 bins back, channel by channel within

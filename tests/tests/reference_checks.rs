@@ -613,3 +613,34 @@ fn the_steady_state_path_equals_filterpy_once_the_gain_has_settled() {
         1e-9,
     );
 }
+
+/// What online adaptation fits per point-process channel: a Poisson GLM
+/// with the history drive held as a fixed offset. Reference: statsmodels
+/// `GLM(family=Poisson(), offset=...)`, both run to convergence.
+#[test]
+fn poisson_fit_with_an_offset_matches_statsmodels() {
+    use decoder_core::fit::adapt::poisson_with_offset;
+    let s = block();
+    let kin = s.kinematics.as_ref().unwrap();
+    let (vx, vy) = (
+        s.kinematic_index("vel_x").unwrap(),
+        s.kinematic_index("vel_y").unwrap(),
+    );
+    let y: Vec<f64> = (0..s.n_bins)
+        .map(|t| f64::from(s.bin_counts(t)[5]))
+        .collect();
+    let x = nalgebra::DMatrix::from_fn(s.n_bins, 3, |t, j| match j {
+        0 => 1.0,
+        1 => kin.get(t, vx),
+        _ => kin.get(t, vy),
+    });
+    let offset = fixture("glm_offset_offset.npy").1;
+    let got = poisson_with_offset(&x, &y, &offset, &[0.0, 0.0, 0.0], 0.0).unwrap();
+    assert_close(
+        "offset GLM coefficients vs statsmodels",
+        &got,
+        &fixture("glm_offset_coef.npy").1,
+        1e-8,
+        1e-10,
+    );
+}

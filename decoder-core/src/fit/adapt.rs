@@ -473,7 +473,7 @@ pub fn adapt_point_process(
                 o
             })
             .collect();
-        let theta = poisson_irls(&x, &y, &offset, &theta_old, options.ridge)
+        let theta = poisson_with_offset(&x, &y, &offset, &theta_old, options.ridge)
             .map_err(|e| AdaptSkip::Fit(format!("channel {ch}: {e}")))?;
         let target: Vec<f64> = theta_old
             .iter()
@@ -524,8 +524,8 @@ pub fn adapt_point_process(
 
 /// Poisson regression of `y` on `x` with a fixed `offset` by Newton's
 /// method (IRLS), a ridge on every coefficient but the first, started at
-/// `start`.
-fn poisson_irls(
+/// `start`; converged when no coefficient moves by 1e-9.
+pub fn poisson_with_offset(
     x: &DMatrix<f64>,
     y: &[f64],
     offset: &[f64],

@@ -1093,6 +1093,71 @@ fn a_closed_loop_recording_exports_as_a_session_directory_and_trains() {
         v
     };
     assert_eq!(show(&from_log), show(&from_dir));
+    // Evaluation reads the log too.
+    let said = ok(&[
+        "evaluate",
+        "--session",
+        p(&log),
+        "--decoders",
+        "kalman",
+        "--folds",
+        "2",
+    ]);
+    assert!(said.contains("kalman") && said.contains("wiener"), "{said}");
+}
+
+/// An adaptive closed-loop session (PROTOCOL.md §9): the spawned daemon
+/// adapts with no operator action, and `verify` reproduces the session,
+/// every update included, bit for bit.
+#[test]
+fn an_adaptive_closed_loop_session_verifies_bit_for_bit() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+    ]);
+    let model = dir.path().join("k.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let config = dir.path().join("daemon.toml");
+    std::fs::write(&config, "[adaptation]\nbatch_s = 2.0\nhalf_life_s = 10.0\n").unwrap();
+    let report = dir.path().join("cl");
+    let said = ok(&[
+        "closed-loop",
+        "--model",
+        p(&model),
+        "--config",
+        p(&config),
+        "--adapt",
+        "--time-scale",
+        "0",
+        "--trials",
+        "6",
+        "--report",
+        p(&report),
+    ]);
+    assert!(said.contains("adaptation: ON"), "{said}");
+    let s: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(report.join("closed-loop.json")).unwrap())
+            .unwrap();
+    let updates = s["adaptation"]["updates"].as_u64().unwrap();
+    assert!(updates >= 2, "{}", s["adaptation"]);
+    let said = ok(&["verify", p(&closed_loop_log(&report))]);
+    assert!(said.contains("bit for bit"), "{said}");
 }
 
 /// A recording made without a task computer holds no kinematics: train

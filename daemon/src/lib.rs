@@ -145,7 +145,7 @@ pub enum CtlAction {
     /// rates, latency, dropouts, command, channels, task and adaptation.
     /// `h` halts; `q` leaves the view.
     Watch,
-    /// Turn online adaptation on or off (config [adaptation]).
+    /// Turn online adaptation on or off (config section `[adaptation]`).
     Adapt {
         #[arg(value_enum)]
         switch: Switch,

@@ -67,7 +67,7 @@ pub struct Args {
     #[arg(long, default_value_t = 1.0)]
     pub time_scale: f64,
     /// Turn on online adaptation in the spawned daemon (`ctl adapt on`;
-    /// its [adaptation] settings come from --config, else the defaults).
+    /// its `[adaptation]` settings come from --config, else the defaults).
     /// For a running daemon use `decoderd ctl adapt on` instead.
     #[arg(long, conflicts_with = "daemon")]
     pub adapt: bool,

@@ -446,3 +446,69 @@ where
     root.present().map_err(|e| anyhow!("{e}"))?;
     Ok(())
 }
+
+/// Writes `<stem>.svg` and `<stem>.png`: per decoder, its cross-validated
+/// CC (mean over outputs) at each session index, for a merged evaluation.
+pub fn cc_by_session(series: &[(String, Vec<(f64, f64)>)], max_x: f64, stem: &Path) -> Result<()> {
+    register_font();
+    svg_and_png!(stem, (900, 480), |root| {
+        draw_cc_by_session(root, series, max_x)
+            .and_then(|()| root.present().map_err(|e| anyhow!("{e}")))
+    })
+}
+
+fn draw_cc_by_session<DB: DrawingBackend>(
+    root: &DrawingArea<DB, Shift>,
+    series: &[(String, Vec<(f64, f64)>)],
+    max_x: f64,
+) -> Result<()>
+where
+    DB::ErrorType: 'static,
+{
+    let e = |e: DrawingAreaErrorKind<DB::ErrorType>| anyhow!("{e}");
+    root.fill(&WHITE).map_err(e)?;
+    let mut chart = ChartBuilder::on(root)
+        .caption("Cross-validated CC per session", ("sans-serif", 20))
+        .margin(12)
+        .x_label_area_size(44)
+        .y_label_area_size(60)
+        .build_cartesian_2d(-0.5..max_x + 0.5, -0.2f64..1.0)
+        .map_err(e)?;
+    chart
+        .configure_mesh()
+        .x_desc("session (its line in the list, from 0)")
+        .x_labels((max_x as usize + 2).min(24))
+        .x_label_formatter(&|x| {
+            if x.fract() == 0.0 && *x >= 0.0 {
+                format!("{x:.0}")
+            } else {
+                String::new()
+            }
+        })
+        .y_desc("CC, mean over outputs")
+        .label_style(("sans-serif", 14))
+        .draw()
+        .map_err(e)?;
+    for (i, (name, pts)) in series.iter().enumerate() {
+        let colour = PALETTE[i % PALETTE.len()];
+        chart
+            .draw_series(LineSeries::new(pts.iter().copied(), colour.stroke_width(2)))
+            .map_err(e)?
+            .label(name.as_str())
+            .legend(move |(x, y)| {
+                PathElement::new(vec![(x, y), (x + 16, y)], colour.stroke_width(2))
+            });
+        chart
+            .draw_series(pts.iter().map(|p| Circle::new(*p, 4, colour.filled())))
+            .map_err(e)?;
+    }
+    chart
+        .configure_series_labels()
+        .position(SeriesLabelPosition::LowerRight)
+        .background_style(WHITE.mix(0.9))
+        .border_style(BLACK)
+        .label_font(("sans-serif", 14))
+        .draw()
+        .map_err(e)?;
+    Ok(())
+}

@@ -1221,3 +1221,103 @@ fn a_recording_without_task_packets_is_refused_for_training_with_the_reason() {
     let said = ok(&["export", p(&log), "--out", p(&dir.path().join("e"))]);
     assert!(said.contains("no task packets"), "{said}");
 }
+
+/// A list of sessions split into shards and merged gives the same table
+/// as the unsharded run; a merge with a shard missing says which.
+#[test]
+fn sharded_evaluation_merges_to_the_unsharded_result() {
+    let dir = tempfile::tempdir().unwrap();
+    let mut list = String::from("# three sessions, one per line\n");
+    for seed in 1..=3 {
+        let s = dir.path().join(format!("s{seed}"));
+        ok(&[
+            "simulate",
+            "--out",
+            p(&s),
+            "--minutes",
+            "0.4",
+            "--channels",
+            "12",
+            "--seed",
+            &seed.to_string(),
+        ]);
+        list.push_str(&format!("s{seed}\n"));
+    }
+    let list_path = dir.path().join("sessions.txt");
+    std::fs::write(&list_path, list).unwrap();
+    let run = |report: &Path, shard: &str| {
+        ok(&[
+            "evaluate",
+            "--sessions",
+            p(&list_path),
+            "--shard",
+            shard,
+            "--decoders",
+            "kalman",
+            "--folds",
+            "2",
+            "--report",
+            p(report),
+        ])
+    };
+    let sharded = dir.path().join("sharded");
+    run(&sharded, "2/2");
+    // One shard missing: the merge names it and fails.
+    let err = fails_with(&["evaluate", "--merge", p(&sharded)], 1);
+    assert!(err.contains("1/2") && err.contains("not finished"), "{err}");
+    run(&sharded, "1/2");
+    let said = ok(&["evaluate", "--merge", p(&sharded)]);
+    assert!(said.contains("merged 3 sessions from 2 shards"), "{said}");
+    let whole = dir.path().join("whole");
+    run(&whole, "1/1");
+    ok(&["evaluate", "--merge", p(&whole)]);
+    for f in ["scores.csv", "summary.csv"] {
+        let a = std::fs::read_to_string(sharded.join(f)).unwrap();
+        let b = std::fs::read_to_string(whole.join(f)).unwrap();
+        assert_eq!(a, b, "{f}");
+    }
+    let table = std::fs::read_to_string(whole.join("scores.csv")).unwrap();
+    // 3 sessions × 2 decoders (kalman and the Wiener baseline) × 2 outputs.
+    assert_eq!(table.lines().count(), 1 + 3 * 2 * 2, "{table}");
+    assert!(whole.join("cc-by-session.png").is_file());
+    // Every session evaluates as `evaluate --session` does.
+    let single = ok(&[
+        "evaluate",
+        "--session",
+        p(&dir.path().join("s2")),
+        "--decoders",
+        "kalman",
+        "--folds",
+        "2",
+    ]);
+    let mean_line = single
+        .lines()
+        .find(|l| l.starts_with("kalman") && l.contains("mean") && l.contains("vel_x"))
+        .unwrap()
+        .to_string();
+    let cc: f64 = mean_line
+        .split_whitespace()
+        .nth(3)
+        .unwrap()
+        .parse()
+        .unwrap();
+    let row = table
+        .lines()
+        .find(|l| l.starts_with("1,") && l.contains(",kalman,vel_x,"))
+        .unwrap();
+    let merged_cc: f64 = row.split(',').nth(4).unwrap().parse().unwrap();
+    assert!((cc - merged_cc).abs() < 5e-4, "{mean_line} vs {row}");
+    let err = fails_with(
+        &[
+            "evaluate",
+            "--sessions",
+            p(&list_path),
+            "--shard",
+            "3/2",
+            "--report",
+            p(&whole),
+        ],
+        2,
+    );
+    assert!(err.contains("--shard 3/2"), "{err}");
+}

@@ -1,6 +1,8 @@
 //! `replay-tool evaluate`: cross-validated scores of one or more decoders on
 //! a block, always beside the Wiener baseline, as a table and optionally a
 //! report directory (CSV, JSON, plots of decoded against true velocity).
+//! Many sessions at once (`--sessions LIST --shard I/N`, then `--merge`)
+//! are in [`super::evaluate_many`].
 
 use std::fmt::Write as _;
 use std::path::PathBuf;
@@ -16,8 +18,22 @@ use crate::{plot, progress};
 pub struct Args {
     /// Block to evaluate on: a session directory with kinematics, or a
     /// session log recorded with task packets.
-    #[arg(long)]
-    pub session: PathBuf,
+    #[arg(long, required_unless_present_any = ["sessions", "merge"], conflicts_with_all = ["sessions", "merge"])]
+    pub session: Option<PathBuf>,
+    /// A list of sessions, one path per line (directories or logs; blank
+    /// lines and lines starting with # are skipped), evaluated into
+    /// --report DIR one file per session.
+    #[arg(long, requires = "report", conflicts_with = "merge")]
+    pub sessions: Option<PathBuf>,
+    /// With --sessions: evaluate only share I of N (I from 1 to N;
+    /// sessions I, I + N, I + 2N, … of the list), as one task of a job
+    /// array. Default 1/1.
+    #[arg(long, requires = "sessions")]
+    pub shard: Option<String>,
+    /// Merge the per-session results that sharded runs wrote into DIR:
+    /// the combined table, a summary per decoder and a plot.
+    #[arg(long, value_name = "DIR")]
+    pub merge: Option<PathBuf>,
     /// Decoders to compare, comma-separated (kalman, wiener,
     /// point-process); the Wiener baseline is always added.
     #[arg(long, value_enum, value_delimiter = ',', default_value = "kalman")]
@@ -42,9 +58,49 @@ pub struct Args {
 }
 
 pub fn run(args: &Args) -> Result<()> {
+    if let Some(dir) = &args.merge {
+        return super::evaluate_many::merge(dir);
+    }
     let cfg = config_with_overrides(args.config.as_deref(), args.lag, args.ridge)?;
     let folds = args.folds.unwrap_or(cfg.folds);
-    let mut kinds = args.decoders.clone();
+    let specs = specs(&args.decoders, &cfg)?;
+    if let Some(list) = &args.sessions {
+        let report = args.report.as_deref().expect("clap requires --report");
+        return super::evaluate_many::run_shard(
+            list,
+            args.shard.as_deref().unwrap_or("1/1"),
+            report,
+            &specs,
+            folds,
+        );
+    }
+    let session_path = args.session.as_ref().expect("clap requires --session");
+    let session = super::block_with_kinematics(session_path)?
+        .block
+        .valid_only();
+    for spec in &specs {
+        super::warn_unused_kinematics(&session, session_path, spec);
+    }
+    let pb = progress::bar((folds * specs.len()) as u64, "evaluate");
+    let eval = cross_validate(&session, &specs, folds, |_, _| pb.inc(1))
+        .with_context(|| format!("evaluating on {}", session_path.display()))?;
+    pb.finish_and_clear();
+    print!("{}", table(&eval));
+    print!("{}", goodness_table(&eval));
+    if let Some(dir) = &args.report {
+        write_report(dir, &eval, session.bin_width.ms())?;
+        println!("report: {}", dir.display());
+    }
+    Ok(())
+}
+
+/// The decoder specs to compare: the kinds asked for and always the
+/// Wiener baseline; the point-process decoder in its forms.
+pub fn specs(
+    decoders: &[DecoderKind],
+    cfg: &decoder_core::fit::config::TrainConfig,
+) -> Result<Vec<DecoderSpec>> {
+    let mut kinds = decoders.to_vec();
     if !kinds.contains(&DecoderKind::Wiener) {
         kinds.push(DecoderKind::Wiener);
     }
@@ -67,26 +123,10 @@ pub fn run(args: &Args) -> Result<()> {
                 specs.push(DecoderSpec::PointProcess(full));
             }
         } else {
-            specs.push(spec_for(*k, &cfg)?);
+            specs.push(spec_for(*k, cfg)?);
         }
     }
-    let session = super::block_with_kinematics(&args.session)?
-        .block
-        .valid_only();
-    for spec in &specs {
-        super::warn_unused_kinematics(&session, &args.session, spec);
-    }
-    let pb = progress::bar((folds * specs.len()) as u64, "evaluate");
-    let eval = cross_validate(&session, &specs, folds, |_, _| pb.inc(1))
-        .with_context(|| format!("evaluating on {}", args.session.display()))?;
-    pb.finish_and_clear();
-    print!("{}", table(&eval));
-    print!("{}", goodness_table(&eval));
-    if let Some(dir) = &args.report {
-        write_report(dir, &eval, session.bin_width.ms())?;
-        println!("report: {}", dir.display());
-    }
-    Ok(())
+    Ok(specs)
 }
 
 /// The per-fold and mean table, as printed.

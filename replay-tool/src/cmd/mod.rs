@@ -6,6 +6,7 @@ pub mod bench;
 pub mod closed_loop;
 pub mod demo;
 pub mod evaluate;
+pub mod evaluate_many;
 pub mod export;
 pub mod model_show;
 pub mod replay;

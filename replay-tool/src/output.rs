@@ -48,3 +48,86 @@ pub fn write_table(path: &Path, header: &[String], rows: usize, data: &[f64]) ->
     };
     write_atomic(path, &bytes)
 }
+
+/// A (rows × cols) f64 table written as it is computed, `.npy` or `.csv`
+/// by the extension, through a temporary name and a rename.
+pub enum TableWriter {
+    Npy(decoder_core::formats::npy_stream::NpyWriter),
+    Csv {
+        path: std::path::PathBuf,
+        tmp: std::path::PathBuf,
+        out: std::io::BufWriter<std::fs::File>,
+        cols: usize,
+    },
+}
+
+impl TableWriter {
+    pub fn create(path: &Path, header: &[String], rows: usize, ext: &str) -> Result<TableWriter> {
+        if let Some(parent) = path.parent()
+            && !parent.as_os_str().is_empty()
+        {
+            std::fs::create_dir_all(parent)
+                .with_context(|| format!("cannot create {}", parent.display()))?;
+        }
+        match ext {
+            "npy" => Ok(TableWriter::Npy(
+                decoder_core::formats::npy_stream::NpyWriter::create(path, rows, header.len())?,
+            )),
+            "csv" => {
+                use std::io::Write;
+                let name = path
+                    .file_name()
+                    .map(|n| n.to_string_lossy().into_owned())
+                    .unwrap_or_default();
+                let tmp = path.with_file_name(format!(".{name}.partial"));
+                let file = std::fs::File::create(&tmp)
+                    .with_context(|| format!("cannot write {}", path.display()))?;
+                let mut out = std::io::BufWriter::with_capacity(1 << 20, file);
+                writeln!(out, "{}", header.join(","))
+                    .with_context(|| format!("cannot write {}", path.display()))?;
+                Ok(TableWriter::Csv {
+                    path: path.to_path_buf(),
+                    tmp,
+                    out,
+                    cols: header.len(),
+                })
+            }
+            _ => bail!("{}: output must end in .npy or .csv", path.display()),
+        }
+    }
+
+    /// Writes whole rows.
+    pub fn write_rows(&mut self, values: &[f64]) -> Result<()> {
+        match self {
+            TableWriter::Npy(w) => Ok(w.write_rows(values)?),
+            TableWriter::Csv {
+                path, out, cols, ..
+            } => {
+                use std::io::Write;
+                for row in values.chunks(*cols) {
+                    let line: Vec<String> = row.iter().map(|v| format!("{v:?}")).collect();
+                    writeln!(out, "{}", line.join(","))
+                        .with_context(|| format!("cannot write {}", path.display()))?;
+                }
+                Ok(())
+            }
+        }
+    }
+
+    pub fn finish(self) -> Result<()> {
+        match self {
+            TableWriter::Npy(w) => Ok(w.finish()?),
+            TableWriter::Csv { path, tmp, out, .. } => {
+                let file = out
+                    .into_inner()
+                    .map_err(|e| anyhow::anyhow!("cannot write {}: {e}", path.display()))?;
+                file.sync_all()
+                    .with_context(|| format!("cannot write {}", path.display()))?;
+                drop(file);
+                std::fs::rename(&tmp, &path)
+                    .with_context(|| format!("cannot write {}", path.display()))?;
+                Ok(())
+            }
+        }
+    }
+}

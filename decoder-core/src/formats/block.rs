@@ -384,6 +384,31 @@ fn read_bytes(path: &Path, what: &'static str) -> Result<Vec<u8>, BlockError> {
     }
 }
 
+/// What a session directory's manifest says, for readers that stream the
+/// arrays rather than load them ([`crate::formats::npy_stream`]).
+#[derive(Clone, Debug, PartialEq)]
+pub struct BlockManifest {
+    pub bin_width: BinWidth,
+    pub kinematic_names: Vec<String>,
+}
+
+impl BlockManifest {
+    /// Reads `dir/manifest.toml`, checked as [`Block::read`] checks it.
+    pub fn read(dir: &Path) -> Result<BlockManifest, BlockError> {
+        if !dir.is_dir() {
+            return Err(BlockError::Missing {
+                path: dir.to_path_buf(),
+                what: "the session directory",
+            });
+        }
+        let m = read_manifest(&dir.join(MANIFEST_FILE))?;
+        Ok(BlockManifest {
+            bin_width: BinWidth::from_ms(m.bin_ms).expect("checked with the manifest"),
+            kinematic_names: m.kinematics,
+        })
+    }
+}
+
 fn read_manifest(path: &Path) -> Result<ManifestFile, BlockError> {
     let bytes = read_bytes(path, "manifest.toml")?;
     let text = String::from_utf8(bytes).map_err(|_| BlockError::Manifest {

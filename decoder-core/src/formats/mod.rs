@@ -8,6 +8,7 @@
 pub mod block;
 pub mod log_block;
 pub mod model_file;
+pub mod npy_stream;
 pub mod packet;
 pub mod session_log;
 pub mod task_packet;

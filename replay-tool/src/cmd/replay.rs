@@ -1,7 +1,8 @@
 //! `replay-tool replay`: decode a stored block with a model, bin by bin,
 //! through the same pipeline the daemon runs, and write the estimates.
 //!
-//! A session directory is decoded bin after bin. A session log from
+//! A session directory is decoded bin after bin, read and written a chunk
+//! of rows at a time, so a block of any length replays in bounded memory. A session log from
 //! `decoderd` is replayed through the daemon's own slot engine — the same
 //! datagrams at the same times, the same operator commands and model loads —
 //! so every slot the daemon answered is answered again (with the logged
@@ -12,12 +13,11 @@ use std::path::PathBuf;
 use std::time::Instant;
 
 use anyhow::{Context, Result, bail};
+use decoder_core::ModelFile;
 use decoder_core::engine::log_replay::replay_log;
-use decoder_core::engine::pipeline::{DecodePipeline, replay_block};
-use decoder_core::fit::metrics::scores;
+use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::formats::packet::VelocityPacket;
 use decoder_core::formats::session_log::{LogEnd, LogReader};
-use decoder_core::{Block, ModelFile};
 
 use crate::output::write_table;
 
@@ -67,42 +67,178 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
         bail!("--model is required to replay a session directory");
     };
     let model = ModelFile::read(model_path)?;
-    let session = Block::read(&args.session)?;
     let mut pipeline = DecodePipeline::with_options(&model, !args.no_steady_state)
         .with_context(|| format!("building the decoder from {}", model_path.display()))?;
-    let started = Instant::now();
-    let (estimates, faults) = replay_block(&mut pipeline, &session).with_context(|| {
-        format!(
-            "{} does not fit {}",
-            args.session.display(),
-            model_path.display()
-        )
-    })?;
-    let elapsed = started.elapsed().as_secs_f64();
-    if faults > 0 {
-        tracing::warn!(faults, "bins with a numerical fault (estimate unusable)");
-    }
     let outputs = model.decoder.outputs().to_vec();
-    write_table(out, &outputs, session.n_bins, &estimates)?;
-    let d = outputs.len();
-    let mut cc = Vec::new();
-    if let Some(kin) = &session.kinematics {
-        for (dim, name) in outputs.iter().enumerate() {
-            if let Some(col) = session.kinematic_index(name) {
-                let truth: Vec<f64> = (0..session.n_bins).map(|t| kin.get(t, col)).collect();
-                let est: Vec<f64> = (0..session.n_bins)
-                    .map(|t| estimates[t * d + dim])
-                    .collect();
-                cc.push((name.clone(), scores(&truth, &est).cc));
-            }
-        }
+    let started = Instant::now();
+    let streamed =
+        replay_dir_streaming(&args.session, &mut pipeline, &outputs, out).with_context(|| {
+            format!(
+                "replaying {} with {}",
+                args.session.display(),
+                model_path.display()
+            )
+        })?;
+    let elapsed = started.elapsed().as_secs_f64();
+    if streamed.faults > 0 {
+        tracing::warn!(
+            faults = streamed.faults,
+            "bins with a numerical fault (estimate unusable)"
+        );
     }
     Ok(ReplaySummary {
-        n_bins: session.n_bins,
-        bins_per_second: session.n_bins as f64 / elapsed.max(1e-9),
-        cc,
+        n_bins: streamed.bins,
+        bins_per_second: streamed.bins as f64 / elapsed.max(1e-9),
+        cc: streamed.cc,
         identical: None,
     })
+}
+
+/// Rows decoded per chunk: big enough to amortise the reads, small
+/// enough that memory stays a few MB whatever the block's length.
+const CHUNK_ROWS: usize = 4096;
+
+struct Streamed {
+    bins: usize,
+    faults: usize,
+    cc: Vec<(String, f64)>,
+}
+
+/// Pearson correlation accumulated one pair at a time (Welford's
+/// co-moments), so a block's CC needs no copy of the block.
+#[derive(Default)]
+struct OnlineCc {
+    n: f64,
+    mx: f64,
+    my: f64,
+    cxx: f64,
+    cyy: f64,
+    cxy: f64,
+}
+
+impl OnlineCc {
+    fn add(&mut self, x: f64, y: f64) {
+        self.n += 1.0;
+        let dx = x - self.mx;
+        self.mx += dx / self.n;
+        let dy = y - self.my;
+        self.my += dy / self.n;
+        self.cxx += dx * (x - self.mx);
+        self.cyy += dy * (y - self.my);
+        self.cxy += dx * (y - self.my);
+    }
+
+    fn cc(&self) -> f64 {
+        self.cxy / (self.cxx * self.cyy).sqrt()
+    }
+}
+
+/// Decodes a session directory chunk by chunk: counts.npy (and
+/// kinematics.npy, for the CC) are read a few thousand rows at a time and
+/// the estimates written as they come, so memory does not grow with the
+/// block's length.
+fn replay_dir_streaming(
+    dir: &std::path::Path,
+    pipeline: &mut DecodePipeline,
+    outputs: &[String],
+    out: &std::path::Path,
+) -> Result<Streamed> {
+    use decoder_core::formats::block::{BlockManifest, COUNTS_FILE, KINEMATICS_FILE, VALID_FILE};
+    use decoder_core::formats::npy_stream::NpyRows;
+    let manifest = BlockManifest::read(dir)?;
+    let mut counts = NpyRows::open(&dir.join(COUNTS_FILE), "counts.npy")?;
+    let (bins, n) = (counts.rows, counts.cols);
+    if n != pipeline.n_channels() {
+        bail!(
+            "{}: counts.npy has {n} columns but the model expects {} channels; use the model trained for this array",
+            dir.display(),
+            pipeline.n_channels()
+        );
+    }
+    if manifest.bin_width != pipeline.bin_width() {
+        bail!(
+            "{}: the block has {} bins but the model was trained on {} bins; rebin the block or retrain",
+            dir.display(),
+            manifest.bin_width,
+            pipeline.bin_width()
+        );
+    }
+    // The truth for the CC: the output columns of kinematics.npy.
+    let kin_path = dir.join(KINEMATICS_FILE);
+    let mut kin = if kin_path.exists() {
+        let k = NpyRows::open(&kin_path, "kinematics.npy")?;
+        if k.rows != bins {
+            bail!(
+                "{}: kinematics.npy has {} rows but counts.npy has {bins}",
+                dir.display(),
+                k.rows
+            );
+        }
+        Some(k)
+    } else {
+        None
+    };
+    let truth_cols: Vec<Option<usize>> = outputs
+        .iter()
+        .map(|o| manifest.kinematic_names.iter().position(|k| k == o))
+        .collect();
+    let valid: Option<Vec<bool>> = {
+        let p = dir.join(VALID_FILE);
+        if p.exists() {
+            let mut v = NpyRows::open(&p, "valid.npy")?;
+            let mut raw = Vec::new();
+            v.read_counts(v.rows, &mut raw)?;
+            Some(raw.into_iter().map(|b| b != 0).collect())
+        } else {
+            None
+        }
+    };
+    let d = outputs.len();
+    let mut cc: Vec<OnlineCc> = (0..d).map(|_| OnlineCc::default()).collect();
+    let ext = out.extension().and_then(|e| e.to_str()).unwrap_or("");
+    let mut sink = crate::output::TableWriter::create(out, outputs, bins, ext)?;
+    pipeline.reset();
+    let (mut chunk, mut kin_rows, mut est) = (Vec::new(), Vec::new(), Vec::new());
+    let (mut bin, mut faults) = (0usize, 0usize);
+    loop {
+        let got = counts.read_counts(CHUNK_ROWS, &mut chunk)?;
+        if got == 0 {
+            break;
+        }
+        if let Some(k) = kin.as_mut() {
+            k.read_f64(got, &manifest.kinematic_names, &mut kin_rows)?;
+        }
+        est.clear();
+        for r in 0..got {
+            let e = pipeline.step(bin as u64, &chunk[r * n..(r + 1) * n]);
+            faults += usize::from(e.numerical_fault);
+            est.extend_from_slice(e.estimate);
+            let keep = valid.as_ref().is_none_or(|v| v[bin]);
+            if keep && kin.is_some() {
+                let cols = manifest.kinematic_names.len();
+                for (dim, col) in truth_cols.iter().enumerate() {
+                    if let Some(c) = col {
+                        cc[dim].add(kin_rows[r * cols + c], e.estimate[dim]);
+                    }
+                }
+            }
+            bin += 1;
+        }
+        sink.write_rows(&est)?;
+    }
+    sink.finish()?;
+    let cc = if kin.is_some() {
+        outputs
+            .iter()
+            .zip(&truth_cols)
+            .zip(&cc)
+            .filter(|((_, col), _)| col.is_some())
+            .map(|((o, _), c)| (o.clone(), c.cc()))
+            .collect()
+    } else {
+        Vec::new()
+    };
+    Ok(Streamed { bins, faults, cc })
 }
 
 fn replay_session_log(args: &Args) -> Result<ReplaySummary> {

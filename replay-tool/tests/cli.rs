@@ -1187,7 +1187,9 @@ fn a_recording_without_task_packets_is_refused_for_training_with_the_reason() {
         "--no-cv",
     ]);
     let report = dir.path().join("bench");
-    ok(&[
+    // Any recording without a task computer will do; the bench's own
+    // verdict (its latency budget on a loaded machine) is not under test.
+    tool(&[
         "bench",
         "--model",
         p(&model),

@@ -282,3 +282,32 @@ fn training_leaves_out_rows_that_are_not_valid() {
     let (m, _) = fit_kalman(&only, &opts).unwrap();
     assert!(m.h.is_finite());
 }
+
+#[test]
+fn the_simulator_writes_the_same_files_streaming_as_in_memory() {
+    use decoder_core::sim::reaching::simulate_to_dir;
+    let options = SimOptions {
+        minutes: 0.5,
+        n_channels: 9,
+        seed: 5,
+        recovery_ms: 3.0,
+        ..SimOptions::default()
+    };
+    let (a, b) = (tempfile::tempdir().unwrap(), tempfile::tempdir().unwrap());
+    let (block, _) = simulate(&options).unwrap();
+    block.write(a.path()).unwrap();
+    let written = simulate_to_dir(&options, b.path()).unwrap();
+    assert_eq!(written.n_bins, block.n_bins);
+    for f in [
+        "manifest.toml",
+        "counts.npy",
+        "kinematics.npy",
+        "trials.csv",
+    ] {
+        assert_eq!(
+            std::fs::read(a.path().join(f)).unwrap(),
+            std::fs::read(b.path().join(f)).unwrap(),
+            "{f}"
+        );
+    }
+}

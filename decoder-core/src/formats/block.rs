@@ -204,19 +204,13 @@ impl Block {
     /// Writes the block as a session directory, each file through a temporary
     /// name and a rename so an interrupted write never leaves half a file.
     pub fn write(&self, dir: &Path) -> Result<(), BlockError> {
-        fs::create_dir_all(dir).map_err(|source| BlockError::Write {
-            path: dir.to_path_buf(),
-            source,
-        })?;
-        let manifest = ManifestFile {
-            version: SESSION_FORMAT_VERSION,
-            bin_ms: self.bin_width.ms(),
-            kinematics: self.kinematic_names.clone(),
-            channel_labels: self.channel_labels.clone(),
-            notes: self.notes.clone(),
-        };
-        let text = toml::to_string(&manifest).expect("manifest serialises");
-        write_atomic(&dir.join(MANIFEST_FILE), text.as_bytes())?;
+        write_manifest(
+            dir,
+            self.bin_width,
+            &self.kinematic_names,
+            self.channel_labels.clone(),
+            self.notes.clone(),
+        )?;
 
         let counts = Array2::from_shape_vec((self.n_bins, self.n_channels), self.counts.clone())
             .expect("counts length matches shape");
@@ -227,12 +221,7 @@ impl Block {
             write_atomic(&dir.join(KINEMATICS_FILE), &npy_bytes(&arr))?;
         }
         if let Some(trials) = &self.trials {
-            let mut writer = csv::Writer::from_writer(Vec::new());
-            for t in trials {
-                writer.serialize(t).expect("trial serialises");
-            }
-            let bytes = writer.into_inner().expect("in-memory csv");
-            write_atomic(&dir.join(TRIALS_FILE), &bytes)?;
+            write_trials(dir, trials)?;
         }
         if let Some(valid) = &self.valid {
             let arr = ndarray::Array1::from_vec(valid.clone());
@@ -382,6 +371,40 @@ fn read_bytes(path: &Path, what: &'static str) -> Result<Vec<u8>, BlockError> {
             source,
         }),
     }
+}
+
+/// Writes `dir/manifest.toml` (creating `dir`), for writers that stream
+/// the arrays themselves.
+pub fn write_manifest(
+    dir: &Path,
+    bin_width: BinWidth,
+    kinematic_names: &[String],
+    channel_labels: Option<Vec<String>>,
+    notes: Option<String>,
+) -> Result<(), BlockError> {
+    fs::create_dir_all(dir).map_err(|source| BlockError::Write {
+        path: dir.to_path_buf(),
+        source,
+    })?;
+    let manifest = ManifestFile {
+        version: SESSION_FORMAT_VERSION,
+        bin_ms: bin_width.ms(),
+        kinematics: kinematic_names.to_vec(),
+        channel_labels,
+        notes,
+    };
+    let text = toml::to_string(&manifest).expect("manifest serialises");
+    write_atomic(&dir.join(MANIFEST_FILE), text.as_bytes())
+}
+
+/// Writes `dir/trials.csv`.
+pub fn write_trials(dir: &Path, trials: &[Trial]) -> Result<(), BlockError> {
+    let mut writer = csv::Writer::from_writer(Vec::new());
+    for t in trials {
+        writer.serialize(t).expect("trial serialises");
+    }
+    let bytes = writer.into_inner().expect("in-memory csv");
+    write_atomic(&dir.join(TRIALS_FILE), &bytes)
 }
 
 /// What a session directory's manifest says, for readers that stream the

@@ -292,9 +292,9 @@ impl NpyRows {
     }
 }
 
-/// A (rows, cols) float64 C-order `.npy` written a row at a time, through a
-/// temporary name and a rename, so an interrupted run never leaves half a
-/// file under the final name.
+/// A (rows, cols) C-order `.npy` of float64 (or uint16, for counts)
+/// written a row at a time, through a temporary name and a rename, so an
+/// interrupted run never leaves half a file under the final name.
 pub struct NpyWriter {
     path: PathBuf,
     tmp: PathBuf,
@@ -305,7 +305,22 @@ pub struct NpyWriter {
 }
 
 impl NpyWriter {
+    /// A float64 file.
     pub fn create(path: &Path, rows: usize, cols: usize) -> Result<NpyWriter, BlockError> {
+        Self::create_typed(path, rows, cols, "<f8")
+    }
+
+    /// A uint16 file (counts).
+    pub fn create_u16(path: &Path, rows: usize, cols: usize) -> Result<NpyWriter, BlockError> {
+        Self::create_typed(path, rows, cols, "<u2")
+    }
+
+    fn create_typed(
+        path: &Path,
+        rows: usize,
+        cols: usize,
+        descr: &str,
+    ) -> Result<NpyWriter, BlockError> {
         let err = |source| BlockError::Write {
             path: path.to_path_buf(),
             source,
@@ -317,7 +332,7 @@ impl NpyWriter {
         let tmp = path.with_file_name(format!(".{name}.partial"));
         let mut out = BufWriter::with_capacity(1 << 20, File::create(&tmp).map_err(err)?);
         let header = Header {
-            type_descriptor: py_literal::Value::String("<f8".into()),
+            type_descriptor: py_literal::Value::String(descr.into()),
             layout: Layout::Standard,
             shape: vec![rows, cols],
         };
@@ -337,6 +352,20 @@ impl NpyWriter {
     /// Writes rows (a whole number of them, `cols` values each).
     pub fn write_rows(&mut self, values: &[f64]) -> Result<(), BlockError> {
         debug_assert_eq!(values.len() % self.cols.max(1), 0);
+        for v in values {
+            self.out
+                .write_all(&v.to_le_bytes())
+                .map_err(|source| BlockError::Write {
+                    path: self.path.clone(),
+                    source,
+                })?;
+        }
+        self.written += values.len() / self.cols.max(1);
+        Ok(())
+    }
+
+    /// Writes whole rows of counts (a file made by [`NpyWriter::create_u16`]).
+    pub fn write_u16_rows(&mut self, values: &[u16]) -> Result<(), BlockError> {
         for v in values {
             self.out
                 .write_all(&v.to_le_bytes())

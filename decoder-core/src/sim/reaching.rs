@@ -73,6 +73,8 @@ pub enum SimError {
         value: String,
         expected: &'static str,
     },
+    #[error(transparent)]
+    Write(#[from] crate::formats::block::BlockError),
 }
 
 /// Minimum-jerk position fraction and its time derivative at s ∈ [0, 1].
@@ -85,73 +87,122 @@ fn min_jerk(s: f64) -> (f64, f64) {
     )
 }
 
+/// One piece of the hand's path: held still, or a minimum-jerk reach.
+#[derive(Clone, Copy, Debug)]
+enum Segment {
+    Hold {
+        at: [f64; 2],
+        ms: usize,
+    },
+    Reach {
+        from: [f64; 2],
+        to: [f64; 2],
+        ms: usize,
+    },
+}
+
+impl Segment {
+    fn ms(&self) -> usize {
+        match *self {
+            Segment::Hold { ms, .. } | Segment::Reach { ms, .. } => ms,
+        }
+    }
+
+    /// Position and velocity (cm, cm/s) `k` ms into the segment.
+    fn at(&self, k: usize) -> ([f64; 2], [f64; 2]) {
+        match *self {
+            Segment::Hold { at, .. } => (at, [0.0, 0.0]),
+            Segment::Reach { from, to, ms } => {
+                let secs = ms as f64 / 1000.0;
+                let (f, df) = min_jerk((k as f64 + 0.5) / ms as f64);
+                (
+                    [
+                        from[0] + (to[0] - from[0]) * f,
+                        from[1] + (to[1] - from[1]) * f,
+                    ],
+                    [(to[0] - from[0]) * df / secs, (to[1] - from[1]) * df / secs],
+                )
+            }
+        }
+    }
+}
+
+/// The whole movement as segments (a few per trial, not a sample per ms,
+/// so a long block costs no memory for it).
 struct Movement {
-    /// Position and velocity (cm, cm/s) every ms.
-    pos: Vec<[f64; 2]>,
-    vel: Vec<[f64; 2]>,
+    segments: Vec<Segment>,
     /// (start ms, end ms, target) of each outward reach and its hold.
     trials: Vec<(usize, usize, [f64; 2])>,
 }
 
 fn draw_movement(rng: &mut ChaCha8Rng, total_ms: usize, radius: f64) -> Movement {
-    let mut pos = Vec::with_capacity(total_ms);
-    let mut vel = Vec::with_capacity(total_ms);
+    let mut segments = Vec::new();
     let mut trials = Vec::new();
     let mut here = [0.0f64, 0.0];
     let scatter = Normal::new(0.0, 0.4).expect("valid sd");
-    let hold = |pos: &mut Vec<[f64; 2]>, vel: &mut Vec<[f64; 2]>, at: [f64; 2], ms: usize| {
-        for _ in 0..ms {
-            pos.push(at);
-            vel.push([0.0, 0.0]);
-        }
+    let mut len = 0usize;
+    let push = |segments: &mut Vec<Segment>, len: &mut usize, s: Segment| {
+        *len += s.ms();
+        segments.push(s);
+        *len
     };
-    let reach = |pos: &mut Vec<[f64; 2]>,
-                 vel: &mut Vec<[f64; 2]>,
-                 from: [f64; 2],
-                 to: [f64; 2],
-                 ms: usize| {
-        let secs = ms as f64 / 1000.0;
-        for k in 0..ms {
-            let (f, df) = min_jerk((k as f64 + 0.5) / ms as f64);
-            pos.push([
-                from[0] + (to[0] - from[0]) * f,
-                from[1] + (to[1] - from[1]) * f,
-            ]);
-            vel.push([(to[0] - from[0]) * df / secs, (to[1] - from[1]) * df / secs]);
-        }
-    };
-    while pos.len() < total_ms {
-        hold(&mut pos, &mut vel, here, rng.random_range(300..600));
+    while len < total_ms {
+        let ms = rng.random_range(300..600);
+        push(&mut segments, &mut len, Segment::Hold { at: here, ms });
         let direction = rng.random_range(0..8) as f64 * PI / 4.0;
         let target = [radius * direction.cos(), radius * direction.sin()];
         let endpoint = [
             target[0] + scatter.sample(rng),
             target[1] + scatter.sample(rng),
         ];
-        let start = pos.len();
-        reach(
-            &mut pos,
-            &mut vel,
-            here,
-            endpoint,
-            rng.random_range(500..900),
+        let start = len;
+        let ms = rng.random_range(500..900);
+        push(
+            &mut segments,
+            &mut len,
+            Segment::Reach {
+                from: here,
+                to: endpoint,
+                ms,
+            },
         );
-        hold(&mut pos, &mut vel, endpoint, rng.random_range(300..500));
-        trials.push((start, pos.len(), target));
+        let ms = rng.random_range(300..500);
+        let end = push(&mut segments, &mut len, Segment::Hold { at: endpoint, ms });
+        trials.push((start, end, target));
         let home = [scatter.sample(rng) * 0.5, scatter.sample(rng) * 0.5];
-        reach(
-            &mut pos,
-            &mut vel,
-            endpoint,
-            home,
-            rng.random_range(500..900),
+        let ms = rng.random_range(500..900);
+        push(
+            &mut segments,
+            &mut len,
+            Segment::Reach {
+                from: endpoint,
+                to: home,
+                ms,
+            },
         );
         here = home;
     }
-    pos.truncate(total_ms);
-    vel.truncate(total_ms);
     trials.retain(|t| t.1 <= total_ms);
-    Movement { pos, vel, trials }
+    Movement { segments, trials }
+}
+
+/// Walks a movement's segments a millisecond at a time.
+struct MovementCursor<'a> {
+    segments: &'a [Segment],
+    index: usize,
+    k: usize,
+}
+
+impl MovementCursor<'_> {
+    fn next_ms(&mut self) -> ([f64; 2], [f64; 2]) {
+        while self.k >= self.segments[self.index].ms() {
+            self.index += 1;
+            self.k = 0;
+        }
+        let out = self.segments[self.index].at(self.k);
+        self.k += 1;
+        out
+    }
 }
 
 /// The simulated array of `population_seed`: the same channels every block
@@ -177,10 +228,69 @@ fn draw_channels(rng: &mut ChaCha8Rng, n: usize) -> SimChannels {
     SimChannels { log_baseline, beta }
 }
 
-/// Draws a block. Returns the session (with kinematics pos_x, pos_y, vel_x,
-/// vel_y as bin means, and the outward reaches as trials) and the channels'
-/// true tuning.
-pub fn simulate(options: &SimOptions) -> Result<(Block, SimChannels), SimError> {
+/// What [`simulate_to_dir`] wrote.
+#[derive(Clone, Debug, PartialEq)]
+pub struct SimWritten {
+    pub n_bins: usize,
+    pub n_channels: usize,
+    pub bin_width: BinWidth,
+    pub trials: usize,
+}
+
+/// Bins drawn and written per chunk by [`simulate_to_dir`].
+const SIM_CHUNK_BINS: usize = 4096;
+
+/// Draws a block straight into a session directory, a chunk of bins at a
+/// time, so a block of any length costs a few MB of memory. The same
+/// options give the same files as [`simulate`] followed by
+/// [`Block::write`].
+pub fn simulate_to_dir(
+    options: &SimOptions,
+    dir: &std::path::Path,
+) -> Result<SimWritten, SimError> {
+    use crate::formats::block::{COUNTS_FILE, KINEMATICS_FILE, write_manifest, write_trials};
+    use crate::formats::npy_stream::NpyWriter;
+    let (channels, rng, n_bins, bin_ms) = prepare(options)?;
+    let n = options.n_channels;
+    let mut sim = SimStream::new(options, channels, rng, n_bins, bin_ms)?;
+    write_manifest(
+        dir,
+        options.bin_width,
+        &kinematic_names(),
+        None,
+        Some(notes(options)),
+    )?;
+    let mut counts_out = NpyWriter::create_u16(&dir.join(COUNTS_FILE), n_bins, n)?;
+    let mut kin_out = NpyWriter::create(&dir.join(KINEMATICS_FILE), n_bins, 4)?;
+    let mut counts = vec![0u16; SIM_CHUNK_BINS * n];
+    let mut kin = vec![0.0; SIM_CHUNK_BINS * 4];
+    let mut row_kin = [0.0; 4];
+    let mut bin = 0;
+    while bin < n_bins {
+        let chunk = SIM_CHUNK_BINS.min(n_bins - bin);
+        for r in 0..chunk {
+            sim.next_bin(&mut counts[r * n..(r + 1) * n], &mut row_kin);
+            kin[r * 4..(r + 1) * 4].copy_from_slice(&row_kin);
+        }
+        counts_out.write_u16_rows(&counts[..chunk * n])?;
+        kin_out.write_rows(&kin[..chunk * 4])?;
+        bin += chunk;
+    }
+    counts_out.finish()?;
+    kin_out.finish()?;
+    let trials = sim.trials();
+    write_trials(dir, &trials)?;
+    Ok(SimWritten {
+        n_bins,
+        n_channels: n,
+        bin_width: options.bin_width,
+        trials: trials.len(),
+    })
+}
+
+/// Checks the options; the array, the block's generator, its length in
+/// bins and the bin width in whole ms.
+fn prepare(options: &SimOptions) -> Result<(SimChannels, ChaCha8Rng, usize, usize), SimError> {
     if !(options.minutes.is_finite() && options.minutes > 0.0 && options.minutes <= 24.0 * 60.0) {
         return Err(SimError::Option {
             key: "minutes",
@@ -209,89 +319,162 @@ pub fn simulate(options: &SimOptions) -> Result<(Block, SimChannels), SimError> 
         &mut ChaCha8Rng::seed_from_u64(options.population_seed),
         options.n_channels,
     );
-    let mut rng = ChaCha8Rng::seed_from_u64(options.seed);
+    let rng = ChaCha8Rng::seed_from_u64(options.seed);
     let n_bins = ((options.minutes * 60_000.0) as usize) / bin_ms_int;
-    let total_ms = n_bins * bin_ms_int;
-    let movement = draw_movement(&mut rng, total_ms, options.target_radius);
+    Ok((channels, rng, n_bins, bin_ms_int))
+}
+
+/// Draws a block. Returns the session (with kinematics pos_x, pos_y, vel_x,
+/// vel_y as bin means, and the outward reaches as trials) and the channels'
+/// true tuning.
+pub fn simulate(options: &SimOptions) -> Result<(Block, SimChannels), SimError> {
+    let (channels, rng, n_bins, bin_ms_int) = prepare(options)?;
+    let mut sim = SimStream::new(options, channels.clone(), rng, n_bins, bin_ms_int)?;
     let n = options.n_channels;
-
     let mut counts = vec![0u16; n_bins * n];
-    if !(options.recovery_ms.is_finite() && options.recovery_ms >= 0.0) {
-        return Err(SimError::Option {
-            key: "recovery_ms",
-            value: options.recovery_ms.to_string(),
-            expected: "0 or more",
-        });
-    }
-    let mut refractory_left = vec![0usize; n];
-    // ms since each channel's last spike past its absolute refractory period.
-    let mut recovered_ms = vec![f64::INFINITY; n];
-    for ms in 0..total_ms {
-        let v = movement.vel[ms];
-        let bin = ms / bin_ms_int;
-        let row = &mut counts[bin * n..(bin + 1) * n];
-        for ch in 0..n {
-            if refractory_left[ch] > 0 {
-                refractory_left[ch] -= 1;
-                continue;
-            }
-            recovered_ms[ch] += 1.0;
-            let b = channels.beta[ch];
-            let mut rate_hz = (channels.log_baseline[ch] + b[0] * v[0] + b[1] * v[1]).exp();
-            if options.recovery_ms > 0.0 {
-                rate_hz *= 1.0 - (-recovered_ms[ch] / options.recovery_ms).exp();
-            }
-            let p = (rate_hz / 1000.0).min(1.0);
-            if rng.random::<f64>() < p {
-                row[ch] = row[ch].saturating_add(1);
-                refractory_left[ch] = options.refractory_ms;
-                recovered_ms[ch] = 0.0;
-            }
-        }
-    }
-
     let mut kin = Mat::zeros(n_bins, 4);
+    let mut row_kin = [0.0; 4];
     for bin in 0..n_bins {
-        let mut acc = [0.0f64; 4];
-        for ms in bin * bin_ms_int..(bin + 1) * bin_ms_int {
-            acc[0] += movement.pos[ms][0];
-            acc[1] += movement.pos[ms][1];
-            acc[2] += movement.vel[ms][0];
-            acc[3] += movement.vel[ms][1];
-        }
-        for (c, a) in acc.iter().enumerate() {
-            kin.set(bin, c, a / bin_ms_int as f64);
+        sim.next_bin(&mut counts[bin * n..(bin + 1) * n], &mut row_kin);
+        for (c, v) in row_kin.iter().enumerate() {
+            kin.set(bin, c, *v);
         }
     }
-    let trials = movement
-        .trials
-        .iter()
-        .enumerate()
-        .map(|(i, &(start, end, target))| Trial {
-            trial: i as u32,
-            start_bin: start / bin_ms_int,
-            end_bin: end.div_ceil(bin_ms_int).min(n_bins),
-            target_x: target[0],
-            target_y: target[1],
-        })
-        .filter(|t| t.start_bin < t.end_bin)
-        .collect();
+    let trials = sim.trials();
     let session = Block {
         bin_width: options.bin_width,
         n_bins,
         n_channels: n,
         counts,
-        kinematic_names: ["pos_x", "pos_y", "vel_x", "vel_y"]
-            .map(String::from)
-            .to_vec(),
+        kinematic_names: kinematic_names(),
         kinematics: Some(kin),
         trials: Some(trials),
         channel_labels: None,
         valid: None,
-        notes: Some(format!(
-            "synthetic center-out block: seed {}, population {}, {} channels, {} min, positions in cm, velocities in cm/s",
-            options.seed, options.population_seed, n, options.minutes
-        )),
+        notes: Some(notes(options)),
     };
     Ok((session, channels))
+}
+
+fn kinematic_names() -> Vec<String> {
+    ["pos_x", "pos_y", "vel_x", "vel_y"]
+        .map(String::from)
+        .to_vec()
+}
+
+fn notes(options: &SimOptions) -> String {
+    format!(
+        "synthetic center-out block: seed {}, population {}, {} channels, {} min, positions in cm, velocities in cm/s",
+        options.seed, options.population_seed, options.n_channels, options.minutes
+    )
+}
+
+/// The simulator as a stream of bins: movement drawn up front as segments,
+/// spikes drawn a millisecond at a time as bins are asked for. The same
+/// seeds give the same bins whether the block is built in memory
+/// ([`simulate`]) or written a chunk at a time ([`simulate_to_dir`]).
+struct SimStream {
+    movement: Movement,
+    channels: SimChannels,
+    rng: ChaCha8Rng,
+    options: SimOptions,
+    bin_ms: usize,
+    n_bins: usize,
+    seg: usize,
+    k: usize,
+    refractory_left: Vec<usize>,
+    /// ms since each channel's last spike past its absolute refractory period.
+    recovered_ms: Vec<f64>,
+}
+
+impl SimStream {
+    fn new(
+        options: &SimOptions,
+        channels: SimChannels,
+        mut rng: ChaCha8Rng,
+        n_bins: usize,
+        bin_ms: usize,
+    ) -> Result<SimStream, SimError> {
+        let total_ms = n_bins * bin_ms;
+        let movement = draw_movement(&mut rng, total_ms, options.target_radius);
+        if !(options.recovery_ms.is_finite() && options.recovery_ms >= 0.0) {
+            return Err(SimError::Option {
+                key: "recovery_ms",
+                value: options.recovery_ms.to_string(),
+                expected: "0 or more",
+            });
+        }
+        let n = options.n_channels;
+        Ok(SimStream {
+            movement,
+            channels,
+            rng,
+            options: options.clone(),
+            bin_ms,
+            n_bins,
+            seg: 0,
+            k: 0,
+            refractory_left: vec![0; n],
+            recovered_ms: vec![f64::INFINITY; n],
+        })
+    }
+
+    /// The next bin's counts (into `row`, zeroed first) and its mean
+    /// pos_x, pos_y, vel_x, vel_y.
+    fn next_bin(&mut self, row: &mut [u16], kin: &mut [f64; 4]) {
+        row.fill(0);
+        let mut acc = [0.0f64; 4];
+        let mut cursor = MovementCursor {
+            segments: &self.movement.segments,
+            index: self.seg,
+            k: self.k,
+        };
+        for _ in 0..self.bin_ms {
+            let (p, v) = cursor.next_ms();
+            acc[0] += p[0];
+            acc[1] += p[1];
+            acc[2] += v[0];
+            acc[3] += v[1];
+            for (ch, count) in row.iter_mut().enumerate() {
+                if self.refractory_left[ch] > 0 {
+                    self.refractory_left[ch] -= 1;
+                    continue;
+                }
+                self.recovered_ms[ch] += 1.0;
+                let b = self.channels.beta[ch];
+                let mut rate_hz =
+                    (self.channels.log_baseline[ch] + b[0] * v[0] + b[1] * v[1]).exp();
+                if self.options.recovery_ms > 0.0 {
+                    rate_hz *= 1.0 - (-self.recovered_ms[ch] / self.options.recovery_ms).exp();
+                }
+                let p = (rate_hz / 1000.0).min(1.0);
+                if self.rng.random::<f64>() < p {
+                    *count = count.saturating_add(1);
+                    self.refractory_left[ch] = self.options.refractory_ms;
+                    self.recovered_ms[ch] = 0.0;
+                }
+            }
+        }
+        (self.seg, self.k) = (cursor.index, cursor.k);
+        for (k, a) in kin.iter_mut().zip(acc) {
+            *k = a / self.bin_ms as f64;
+        }
+    }
+
+    fn trials(&self) -> Vec<Trial> {
+        let b = self.bin_ms;
+        self.movement
+            .trials
+            .iter()
+            .enumerate()
+            .map(|(i, &(start, end, target))| Trial {
+                trial: i as u32,
+                start_bin: start / b,
+                end_bin: end.div_ceil(b).min(self.n_bins),
+                target_x: target[0],
+                target_y: target[1],
+            })
+            .filter(|t| t.start_bin < t.end_bin)
+            .collect()
+    }
 }

@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result};
-use decoder_core::sim::reaching::{SimOptions, simulate};
+use decoder_core::sim::reaching::{SimOptions, simulate_to_dir};
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
@@ -47,17 +47,16 @@ pub fn run(args: &Args) -> Result<()> {
         recovery_ms: args.recovery_ms,
         ..SimOptions::default()
     };
-    let (session, _) = simulate(&options)?;
-    session
-        .write(&args.out)
+    // Written a chunk of bins at a time: a block of any length.
+    let written = simulate_to_dir(&options, &args.out)
         .with_context(|| format!("writing session {}", args.out.display()))?;
     println!(
         "wrote {}: {} bins of {} ms, {} channels, {} trials",
         args.out.display(),
-        session.n_bins,
-        session.bin_width.ms(),
-        session.n_channels,
-        session.trials.as_ref().map_or(0, Vec::len)
+        written.n_bins,
+        written.bin_width.ms(),
+        written.n_channels,
+        written.trials
     );
     Ok(())
 }

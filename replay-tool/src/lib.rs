@@ -55,6 +55,9 @@ pub enum Command {
     /// Write a session log as a session directory: counts, the task's
     /// kinematics, trials, valid rows, and the estimates and commands sent.
     Export(cmd::export::Args),
+    /// Write a Neurodata Without Borders 2.x file (units, position,
+    /// trials) as a session directory.
+    Import(cmd::import::Args),
     /// Check a session log bit for bit against a replay through the
     /// daemon's slot engine; exit 1 at the first difference.
     Verify(cmd::verify::Args),
@@ -115,6 +118,7 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Replay(a) => cmd::replay::run(&a),
         Command::Verify(a) => cmd::verify::run(&a),
         Command::Export(a) => cmd::export::run(&a),
+        Command::Import(a) => cmd::import::run(&a),
         Command::Stream(a) => cmd::stream::run(&a),
         Command::ClosedLoop(a) => cmd::closed_loop::run_verb(&a),
         Command::Model {

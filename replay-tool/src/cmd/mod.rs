@@ -8,6 +8,7 @@ pub mod demo;
 pub mod evaluate;
 pub mod evaluate_many;
 pub mod export;
+pub mod import;
 pub mod model_show;
 pub mod replay;
 pub mod simulate;

@@ -1054,6 +1054,27 @@ fn a_closed_loop_recording_exports_as_a_session_directory_and_trains() {
     assert!(said.contains(&format!("{bins} rows")), "{said}");
     let block = decoder_core::Block::read(&out_dir).unwrap();
     assert_eq!(block.n_bins, bins);
+    // The streaming export writes what the in-memory reading of the log
+    // (the one train and evaluate use) holds, byte for byte.
+    let in_memory = dir.path().join("in-memory");
+    decoder_core::formats::log_block::read_log_block(&log)
+        .unwrap()
+        .block
+        .write(&in_memory)
+        .unwrap();
+    for f in [
+        "manifest.toml",
+        "counts.npy",
+        "kinematics.npy",
+        "trials.csv",
+        "valid.npy",
+    ] {
+        assert_eq!(
+            std::fs::read(out_dir.join(f)).unwrap(),
+            std::fs::read(in_memory.join(f)).unwrap(),
+            "{f}"
+        );
+    }
     assert_eq!(
         block.kinematic_names,
         ["pos_x", "pos_y", "vel_x", "vel_y"].map(String::from)

@@ -10,6 +10,8 @@
 
 use std::path::{Path, PathBuf};
 
+use ndarray_npy::WriteNpyExt;
+
 use crate::formats::block::{Block, Trial};
 use crate::formats::packet::{self, FLAG_BIN_MISSING, VelocityPacket};
 use crate::formats::session_log::{LogEnd, LogReader, LogRecord, SessionLogError};
@@ -20,6 +22,8 @@ use crate::linalg::Mat;
 pub enum LogBlockError {
     #[error(transparent)]
     Log(#[from] SessionLogError),
+    #[error(transparent)]
+    Write(#[from] crate::formats::block::BlockError),
     #[error(
         "{}: the log holds no answered slot; there is nothing to export (was a bin ever sent to the daemon?)",
         path.display()
@@ -56,6 +60,9 @@ pub struct LogBlock {
 #[derive(Clone, Debug, Default, PartialEq, serde::Serialize)]
 pub struct LogBlockSummary {
     pub rows: usize,
+    /// Rows whose bin came and that had task state: what training uses.
+    pub valid_rows: usize,
+    pub trials: usize,
     pub bins_missing: usize,
     pub rows_without_task_state: usize,
     pub task_packets: u64,
@@ -83,24 +90,22 @@ pub fn kinematic_names(dims: usize) -> Vec<String> {
     names
 }
 
-/// Reads the whole log at `path` and builds its block.
-pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
-    let mut reader = LogReader::open(path)?;
+/// One pass over a log: `on_slot` gets each answered slot's velocity
+/// packet, in the order sent, with its bin's counts when the bin came and
+/// was decoded (`None`: a coasted slot); accepted task packets go to
+/// `tasks`. The first copy of a seq is the one the daemon decoded; bins
+/// older than a slot just answered will never be decoded.
+fn walk_slots(
+    path: &Path,
+    reader: &mut LogReader,
+    summary: &mut LogBlockSummary,
+    tasks: &mut Vec<TaskState>,
+    mut on_slot: impl FnMut(&VelocityPacket, Option<&[u16]>) -> Result<(), LogBlockError>,
+) -> Result<(), LogBlockError> {
     let header = reader.header().clone();
     let n = header.n_channels;
-    let d_out = header.outputs.len();
     let bin_us = header.bin_width.us();
-    // Valid bins received and not yet answered, by seq (the first copy of
-    // a seq is the one the daemon decoded).
     let mut pending: std::collections::BTreeMap<u64, Vec<u16>> = Default::default();
-    let mut counts: Vec<u16> = Vec::new();
-    let mut missing: Vec<bool> = Vec::new();
-    let mut seqs = Vec::new();
-    let mut estimates = Vec::new();
-    let mut commands = Vec::new();
-    // Accepted task packets in arrival order.
-    let mut tasks: Vec<TaskState> = Vec::new();
-    let mut summary = LogBlockSummary::default();
     while let Some(record) = reader.next_record() {
         match record {
             LogRecord::Datagram { bytes, .. } => {
@@ -121,20 +126,9 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
                     continue;
                 };
                 let came = pending.remove(&p.seq);
-                // Bins older than this slot will never be decoded now.
                 pending.retain(|&s, _| s > p.seq);
-                let is_missing = p.flags & FLAG_BIN_MISSING != 0 || came.is_none();
-                match came {
-                    Some(c) if !is_missing => counts.extend_from_slice(&c),
-                    _ => counts.extend(std::iter::repeat_n(0, n)),
-                }
-                missing.push(is_missing);
-                seqs.push(p.seq);
-                let pad = |v: &[f64], out: &mut Vec<f64>| {
-                    out.extend((0..d_out).map(|i| v.get(i).copied().unwrap_or(0.0)))
-                };
-                pad(&p.estimate, &mut estimates);
-                pad(&p.command, &mut commands);
+                let counts = came.filter(|_| p.flags & FLAG_BIN_MISSING == 0);
+                on_slot(&p, counts.as_deref())?;
             }
             LogRecord::Task { bytes, .. } => {
                 summary.task_packets += 1;
@@ -159,59 +153,114 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
         Some(LogEnd::TornTail { .. }) => summary.torn_tail = true,
         _ => {}
     }
+    Ok(())
+}
+
+/// The first `d` values of `v`, zeros after.
+fn padded(v: &[f64], d: usize) -> impl Iterator<Item = f64> + '_ {
+    (0..d).map(|i| v.get(i).copied().unwrap_or(0.0))
+}
+
+/// What a log's task packets make of its rows.
+struct RowTask {
+    dims: Option<usize>,
+    tasks: Vec<TaskState>,
+    /// Per row, the index in `tasks` of the screen it was counted under.
+    index: Vec<Option<u32>>,
+}
+
+impl RowTask {
+    fn new(seqs: &[u64], mut tasks: Vec<TaskState>, summary: &mut LogBlockSummary) -> RowTask {
+        let dims = tasks.first().map(TaskState::dims);
+        if let Some(d) = dims {
+            let before = tasks.len();
+            tasks.retain(|t| t.dims() == d);
+            summary.task_packets_other_dims = (before - tasks.len()) as u64;
+        }
+        summary.dims = dims;
+        summary.target_radius = typical_radius(&tasks);
+        let index = task_index_per_row(seqs, &tasks);
+        RowTask { dims, tasks, index }
+    }
+
+    fn of(&self, row: usize) -> Option<&TaskState> {
+        self.index[row].map(|i| &self.tasks[i as usize])
+    }
+
+    /// The kinematics row (pos, vel) of `row`; zeros without task state.
+    fn kinematics(&self, row: usize, out: &mut [f64]) {
+        let d = self.dims.unwrap_or(2);
+        out.fill(0.0);
+        if let Some(t) = self.of(row) {
+            out[..d].copy_from_slice(&t.cursor_pos[..d]);
+            out[d..2 * d].copy_from_slice(&t.cursor_vel[..d]);
+        }
+    }
+}
+
+fn notes(path: &Path, seqs: &[u64], summary: &LogBlockSummary) -> String {
+    format!(
+        "exported from session log {}: one row per slot (seqs {}..={}); pos and vel are the cursor the task showed{}",
+        path.display(),
+        seqs[0],
+        seqs[seqs.len() - 1],
+        summary
+            .target_radius
+            .map_or(String::new(), |r| format!("; target radius {r}"))
+    )
+}
+
+/// Reads the whole log at `path` and builds its block in memory (for
+/// training and evaluation, which need it there).
+pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
+    let mut reader = LogReader::open(path)?;
+    let header = reader.header().clone();
+    let n = header.n_channels;
+    let d_out = header.outputs.len();
+    let (mut counts, mut missing, mut seqs) = (Vec::new(), Vec::new(), Vec::new());
+    let (mut estimates, mut commands) = (Vec::new(), Vec::new());
+    let mut tasks = Vec::new();
+    let mut summary = LogBlockSummary::default();
+    walk_slots(path, &mut reader, &mut summary, &mut tasks, |p, c| {
+        match c {
+            Some(c) => counts.extend_from_slice(c),
+            None => counts.extend(std::iter::repeat_n(0, n)),
+        }
+        missing.push(c.is_none());
+        seqs.push(p.seq);
+        estimates.extend(padded(&p.estimate, d_out));
+        commands.extend(padded(&p.command, d_out));
+        Ok(())
+    })?;
     let rows = seqs.len();
     if rows == 0 {
         return Err(LogBlockError::NoSlots {
             path: path.to_path_buf(),
         });
     }
-    let dims = tasks.first().map(TaskState::dims);
-    if let Some(d) = dims {
-        let before = tasks.len();
-        tasks.retain(|t| t.dims() == d);
-        summary.task_packets_other_dims = (before - tasks.len()) as u64;
-    }
-    let task = task_state_per_row(&seqs, &tasks);
-
-    let dims_or_2 = dims.unwrap_or(2);
-    let names = kinematic_names(dims_or_2);
-    let mut kin = Mat::zeros(rows, 2 * dims_or_2);
+    let rt = RowTask::new(&seqs, tasks, &mut summary);
+    let d = rt.dims.unwrap_or(2);
+    let mut kin = Mat::zeros(rows, 2 * d);
     let mut valid = Vec::with_capacity(rows);
-    for (r, t) in task.iter().enumerate() {
-        if let Some(t) = t {
-            for i in 0..dims_or_2 {
-                kin.set(r, i, t.cursor_pos[i]);
-                kin.set(r, dims_or_2 + i, t.cursor_vel[i]);
-            }
-            summary.closed_loop_rows += usize::from(t.closed_loop());
-        } else {
-            summary.rows_without_task_state += 1;
-        }
-        valid.push(t.is_some() && !missing[r]);
+    let task: Vec<Option<TaskState>> = (0..rows).map(|r| rt.of(r).copied()).collect();
+    for r in 0..rows {
+        rt.kinematics(r, &mut kin.data[r * 2 * d..(r + 1) * 2 * d]);
+        count_row(&mut summary, rt.of(r), missing[r]);
+        valid.push(rt.of(r).is_some() && !missing[r]);
     }
     summary.rows = rows;
-    summary.bins_missing = missing.iter().filter(|m| **m).count();
-    summary.dims = dims;
-    summary.target_radius = typical_radius(&tasks);
-    let trials = trials_from_task(&task);
+    let trials = trials_from_task(rows, |r| rt.of(r).copied());
+    summary.trials = trials.len();
     let block = Block {
         bin_width: header.bin_width,
         n_bins: rows,
         n_channels: n,
         counts,
-        kinematic_names: names,
-        kinematics: dims.map(|_| kin),
-        trials: dims.map(|_| trials),
+        kinematic_names: kinematic_names(d),
+        kinematics: rt.dims.map(|_| kin),
+        trials: rt.dims.map(|_| trials),
         channel_labels: None,
-        notes: Some(format!(
-            "exported from session log {}: one row per slot (seqs {}..={}); pos and vel are the cursor the task showed{}",
-            path.display(),
-            seqs[0],
-            seqs[rows - 1],
-            summary
-                .target_radius
-                .map_or(String::new(), |r| format!("; target radius {r}"))
-        )),
+        notes: Some(notes(path, &seqs, &summary)),
         valid: Some(valid),
     };
     Ok(LogBlock {
@@ -232,8 +281,124 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
     })
 }
 
+fn count_row(summary: &mut LogBlockSummary, task: Option<&TaskState>, missing: bool) {
+    summary.valid_rows += usize::from(task.is_some() && !missing);
+    match task {
+        Some(t) => summary.closed_loop_rows += usize::from(t.closed_loop()),
+        None => summary.rows_without_task_state += 1,
+    }
+    summary.bins_missing += usize::from(missing);
+}
+
+/// Writes the log at `path` as a session directory in bounded memory: a
+/// first pass finds the slots and the task state of each, a second writes
+/// the rows as it meets them. The files are those [`read_log_block`]
+/// followed by [`Block::write`] would write, plus `estimates.npy` and
+/// `commands.npy`.
+pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockError> {
+    use crate::formats::block::{
+        COUNTS_FILE, KINEMATICS_FILE, VALID_FILE, write_atomic, write_manifest, write_trials,
+    };
+    use crate::formats::npy_stream::NpyWriter;
+    let mut reader = LogReader::open(path)?;
+    let header = reader.header().clone();
+    let (n, d_out) = (header.n_channels, header.outputs.len());
+    let (mut seqs, mut missing, mut tasks) = (Vec::new(), Vec::new(), Vec::new());
+    let mut summary = LogBlockSummary::default();
+    walk_slots(path, &mut reader, &mut summary, &mut tasks, |p, c| {
+        seqs.push(p.seq);
+        missing.push(c.is_none());
+        Ok(())
+    })?;
+    let rows = seqs.len();
+    if rows == 0 {
+        return Err(LogBlockError::NoSlots {
+            path: path.to_path_buf(),
+        });
+    }
+    let rt = RowTask::new(&seqs, tasks, &mut summary);
+    let d = rt.dims.unwrap_or(2);
+    let mut valid = Vec::with_capacity(rows);
+    for r in 0..rows {
+        count_row(&mut summary, rt.of(r), missing[r]);
+        valid.push(rt.of(r).is_some() && !missing[r]);
+    }
+    summary.rows = rows;
+    write_manifest(
+        dir,
+        header.bin_width,
+        &kinematic_names(d),
+        None,
+        Some(notes(path, &seqs, &summary)),
+    )?;
+    let mut counts_out = NpyWriter::create_u16(&dir.join(COUNTS_FILE), rows, n)?;
+    let mut kin_out = match rt.dims {
+        Some(_) => Some(NpyWriter::create(&dir.join(KINEMATICS_FILE), rows, 2 * d)?),
+        None => None,
+    };
+    let mut est_out = NpyWriter::create(&dir.join("estimates.npy"), rows, d_out)?;
+    let mut cmd_out = NpyWriter::create(&dir.join("commands.npy"), rows, d_out)?;
+    let zeros = vec![0u16; n];
+    let mut kin_row = vec![0.0; 2 * d];
+    let mut values = Vec::with_capacity(d_out);
+    let mut row = 0usize;
+    let mut reader = LogReader::open(path)?;
+    let mut ignored = Vec::new();
+    walk_slots(
+        path,
+        &mut reader,
+        &mut LogBlockSummary::default(),
+        &mut ignored,
+        |p, c| {
+            if row >= rows {
+                return Ok(());
+            }
+            counts_out.write_u16_rows(c.unwrap_or(&zeros))?;
+            if let Some(k) = kin_out.as_mut() {
+                rt.kinematics(row, &mut kin_row);
+                k.write_rows(&kin_row)?;
+            }
+            values.clear();
+            values.extend(padded(&p.estimate, d_out));
+            est_out.write_rows(&values)?;
+            values.clear();
+            values.extend(padded(&p.command, d_out));
+            cmd_out.write_rows(&values)?;
+            row += 1;
+            Ok(())
+        },
+    )?;
+    counts_out.finish()?;
+    if let Some(k) = kin_out {
+        k.finish()?;
+    }
+    est_out.finish()?;
+    cmd_out.finish()?;
+    if rt.dims.is_some() {
+        let trials = trials_from_task(rows, |r| rt.of(r).copied());
+        summary.trials = trials.len();
+        write_trials(dir, &trials)?;
+    }
+    let mut v = Vec::new();
+    ndarray::Array1::from_vec(valid)
+        .write_npy(&mut v)
+        .expect("in-memory npy write");
+    write_atomic(&dir.join(VALID_FILE), &v)?;
+    Ok(summary)
+}
+
 /// For each row's seq s, the latest-arrived task state with `bin_seq < s`.
+#[cfg(test)]
 fn task_state_per_row(seqs: &[u64], tasks: &[TaskState]) -> Vec<Option<TaskState>> {
+    task_index_per_row(seqs, tasks)
+        .into_iter()
+        .map(|i| i.map(|i| tasks[i as usize]))
+        .collect()
+}
+
+/// For each row's seq s, the index of the latest-arrived task state with
+/// `bin_seq < s`.
+fn task_index_per_row(seqs: &[u64], tasks: &[TaskState]) -> Vec<Option<u32>> {
     // Task packets sorted by bin_seq, swept against the rows sorted by
     // seq; among those admitted so far, the one that arrived last wins.
     let mut by_seq: Vec<usize> = (0..tasks.len()).collect();
@@ -248,14 +413,14 @@ fn task_state_per_row(seqs: &[u64], tasks: &[TaskState]) -> Vec<Option<TaskState
             latest = Some(latest.map_or(by_seq[next], |l| l.max(by_seq[next])));
             next += 1;
         }
-        out[r] = latest.map(|i| tasks[i]);
+        out[r] = latest.map(|i| i as u32);
     }
     out
 }
 
 /// Trials: runs of rows under one trial number in a phase inside a trial;
 /// the target is the first valid one the run showed.
-fn trials_from_task(task: &[Option<TaskState>]) -> Vec<Trial> {
+fn trials_from_task(rows: usize, task_of: impl Fn(usize) -> Option<TaskState>) -> Vec<Trial> {
     let mut trials: Vec<Trial> = Vec::new();
     let mut open: Option<(u32, usize, Option<[f64; 2]>)> = None;
     let close =
@@ -271,8 +436,8 @@ fn trials_from_task(task: &[Option<TaskState>]) -> Vec<Trial> {
                 });
             }
         };
-    for (r, t) in task.iter().enumerate() {
-        let here = t.filter(|t| t.phase != Phase::Between);
+    for r in 0..rows {
+        let here = task_of(r).filter(|t| t.phase != Phase::Between);
         match (here, open.as_mut()) {
             (Some(t), Some(o)) if o.0 == t.trial => {
                 if o.2.is_none() && t.target_valid() {
@@ -286,7 +451,7 @@ fn trials_from_task(task: &[Option<TaskState>]) -> Vec<Trial> {
             (None, _) => close(&mut open, r, &mut trials),
         }
     }
-    close(&mut open, task.len(), &mut trials);
+    close(&mut open, rows, &mut trials);
     trials
 }
 
@@ -356,7 +521,7 @@ mod tests {
             t(2, Phase::Reach),
             t(3, Phase::Reach),
         ];
-        let trials = trials_from_task(&rows);
+        let trials = trials_from_task(rows.len(), |r| rows[r]);
         let spans: Vec<(u32, usize, usize, f64)> = trials
             .iter()
             .map(|t| (t.trial, t.start_bin, t.end_bin, t.target_x))

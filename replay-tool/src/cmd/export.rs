@@ -7,9 +7,7 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
-use decoder_core::formats::log_block::read_log_block;
-
-use crate::output::write_table;
+use decoder_core::formats::log_block::export_log;
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
@@ -27,30 +25,19 @@ pub fn run(args: &Args) -> Result<()> {
             args.log.display()
         );
     }
-    let log = read_log_block(&args.log)?;
-    log.block
-        .write(&args.out)
-        .with_context(|| format!("writing {}", args.out.display()))?;
-    let outputs = decoder_core::formats::session_log::LogReader::open(&args.log)?
-        .header()
-        .outputs
-        .clone();
-    for (name, m) in [
-        ("estimates.npy", &log.estimates),
-        ("commands.npy", &log.commands),
-    ] {
-        write_table(&args.out.join(name), &outputs, m.rows, &m.data)?;
-    }
-    let s = &log.summary;
+    // Two passes over the log, the rows written as they are met: a log
+    // of any length exports in bounded memory.
+    let s = export_log(&args.log, &args.out)
+        .with_context(|| format!("exporting {} to {}", args.log.display(), args.out.display()))?;
     println!(
         "exported {} -> {}: {} rows (one per slot), {} valid; {} bins missing, {} rows before the first task packet; {} trials",
         args.log.display(),
         args.out.display(),
         s.rows,
-        log.block.n_valid(),
+        s.valid_rows,
         s.bins_missing,
         s.rows_without_task_state,
-        log.block.trials.as_ref().map_or(0, Vec::len),
+        s.trials,
     );
     if s.dims.is_none() {
         println!(

@@ -243,10 +243,10 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
     let mut kin = Mat::zeros(rows, 2 * d);
     let mut valid = Vec::with_capacity(rows);
     let task: Vec<Option<TaskState>> = (0..rows).map(|r| rt.of(r).copied()).collect();
-    for r in 0..rows {
+    for (r, &gone) in missing.iter().enumerate() {
         rt.kinematics(r, &mut kin.data[r * 2 * d..(r + 1) * 2 * d]);
-        count_row(&mut summary, rt.of(r), missing[r]);
-        valid.push(rt.of(r).is_some() && !missing[r]);
+        count_row(&mut summary, rt.of(r), gone);
+        valid.push(rt.of(r).is_some() && !gone);
     }
     summary.rows = rows;
     let trials = trials_from_task(rows, |r| rt.of(r).copied());
@@ -319,9 +319,9 @@ pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockEr
     let rt = RowTask::new(&seqs, tasks, &mut summary);
     let d = rt.dims.unwrap_or(2);
     let mut valid = Vec::with_capacity(rows);
-    for r in 0..rows {
-        count_row(&mut summary, rt.of(r), missing[r]);
-        valid.push(rt.of(r).is_some() && !missing[r]);
+    for (r, &gone) in missing.iter().enumerate() {
+        count_row(&mut summary, rt.of(r), gone);
+        valid.push(rt.of(r).is_some() && !gone);
     }
     summary.rows = rows;
     write_manifest(

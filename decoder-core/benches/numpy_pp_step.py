@@ -6,13 +6,11 @@ prints it beside the criterion medians of `pp_step` from the same run.
     python numpy_pp_step.py [CRITERION_DIR]
 """
 
-import json
-import os
 import sys
 
 import numpy as np
 
-from numpy_step import median_time
+from numpy_step import criterion_median, median_time
 
 
 def step(x, P, y, A, W, b0, B, K, ring):
@@ -47,12 +45,7 @@ def main():
             P = 10.0 * np.eye(2)
             t = median_time(lambda: step(x, P, y, A, W, b0, B, K, ring))
             name = "history" if history else "lnp"
-            rust = None
-            if criterion:
-                path = os.path.join(criterion, "pp_step", name, str(n), "new", "estimates.json")
-                if os.path.exists(path):
-                    with open(path) as f:
-                        rust = json.load(f)["median"]["point_estimate"] * 1e-9
+            rust = criterion_median(criterion, "pp_step", name, n)
             rust_s = f"{rust * 1e6:9.2f} us" if rust else "         -"
             ratio = f"{t / rust:10.1f}x" if rust else "          -"
             print(f"{n:>6} {name:>8} {t * 1e6:9.2f} us {rust_s} {ratio}")

@@ -63,6 +63,18 @@ def median_time(fn, repeats=15, inner=None):
     return float(np.median(times))
 
 
+def criterion_median(criterion, group, name, n):
+    """The median of criterion's last run of GROUP/NAME/N in seconds, or
+    None when it has not been run."""
+    if not criterion:
+        return None
+    path = os.path.join(criterion, group, name, str(n), "new", "estimates.json")
+    if not os.path.exists(path):
+        return None
+    with open(path) as f:
+        return json.load(f)["median"]["point_estimate"] * 1e-9
+
+
 def main():
     criterion = sys.argv[1] if len(sys.argv) > 1 else None
     rng = np.random.default_rng(7)
@@ -78,12 +90,7 @@ def main():
         P = np.diag([1.0, 1.0, 1.0, 1.0, 0.0])
         t_naive = median_time(lambda: naive_step(x, P, y, A, W, H, Q))
         t_info = median_time(lambda: info_step(x, P, y, A, W, G, S))
-        rust = None
-        if criterion:
-            path = os.path.join(criterion, "decode_step", "full", str(n), "new", "estimates.json")
-            if os.path.exists(path):
-                with open(path) as f:
-                    rust = json.load(f)["median"]["point_estimate"] * 1e-9
+        rust = criterion_median(criterion, "decode_step", "full", n)
         rust_s = f"{rust * 1e6:9.3f} us" if rust else "         -"
         ratio = f"{t_naive / rust:10.0f}x" if rust else "          -"
         print(f"{n:>6} {t_naive * 1e6:11.1f} us {t_info * 1e6:11.1f} us {rust_s} {ratio}")

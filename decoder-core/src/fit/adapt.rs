@@ -154,6 +154,28 @@ pub struct AdaptReport {
     pub keep: f64,
 }
 
+impl AdaptReport {
+    fn of(
+        batch: &Batch,
+        used: &[usize],
+        relative_change: f64,
+        limited: bool,
+        spectral_radius: Option<f64>,
+        keep: f64,
+    ) -> AdaptReport {
+        AdaptReport {
+            rows: used.len(),
+            slots: batch.slots,
+            first_seq: batch.rows[used[0]].seq,
+            last_seq: batch.rows[used[used.len() - 1]].seq,
+            relative_change,
+            limited,
+            spectral_radius,
+            keep,
+        }
+    }
+}
+
 /// The intended velocity of a row: the decoded velocity's speed toward
 /// the target, zero inside it.
 pub fn intended_velocity(row: &BatchRow) -> [f64; MAX_TASK_DIMS] {
@@ -364,16 +386,7 @@ pub fn adapt_kalman(
     if model.steady.is_some() {
         adapted.steady = Some(gain);
     }
-    let report = AdaptReport {
-        rows: t,
-        slots: batch.slots,
-        first_seq: batch.rows[used[0]].seq,
-        last_seq: batch.rows[used[t - 1]].seq,
-        relative_change: change * step,
-        limited,
-        spectral_radius: Some(radius),
-        keep,
-    };
+    let report = AdaptReport::of(batch, &used, change * step, limited, Some(radius), keep);
     Ok((adapted, report))
 }
 
@@ -509,16 +522,7 @@ pub fn adapt_point_process(
     adapted
         .validate()
         .map_err(|e| AdaptSkip::Refused(e.to_string()))?;
-    let report = AdaptReport {
-        rows: t,
-        slots: batch.slots,
-        first_seq: batch.rows[used[0]].seq,
-        last_seq: batch.rows[used[t - 1]].seq,
-        relative_change: change * step,
-        limited,
-        spectral_radius: None,
-        keep,
-    };
+    let report = AdaptReport::of(batch, &used, change * step, limited, None, keep);
     Ok((adapted, report))
 }
 

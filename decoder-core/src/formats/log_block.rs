@@ -232,23 +232,13 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
         commands.extend(padded(&p.command, d_out));
         Ok(())
     })?;
-    let rows = seqs.len();
-    if rows == 0 {
-        return Err(LogBlockError::NoSlots {
-            path: path.to_path_buf(),
-        });
-    }
-    let rt = RowTask::new(&seqs, tasks, &mut summary);
+    let (rows, rt, valid) = rows_and_tasks(path, &seqs, &missing, tasks, &mut summary)?;
     let d = rt.dims.unwrap_or(2);
     let mut kin = Mat::zeros(rows, 2 * d);
-    let mut valid = Vec::with_capacity(rows);
     let task: Vec<Option<TaskState>> = (0..rows).map(|r| rt.of(r).copied()).collect();
-    for (r, &gone) in missing.iter().enumerate() {
+    for r in 0..rows {
         rt.kinematics(r, &mut kin.data[r * 2 * d..(r + 1) * 2 * d]);
-        count_row(&mut summary, rt.of(r), gone);
-        valid.push(rt.of(r).is_some() && !gone);
     }
-    summary.rows = rows;
     let trials = trials_from_task(rows, |r| rt.of(r).copied());
     summary.trials = trials.len();
     let block = Block {
@@ -281,13 +271,35 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
     })
 }
 
-fn count_row(summary: &mut LogBlockSummary, task: Option<&TaskState>, missing: bool) {
-    summary.valid_rows += usize::from(task.is_some() && !missing);
-    match task {
-        Some(t) => summary.closed_loop_rows += usize::from(t.closed_loop()),
-        None => summary.rows_without_task_state += 1,
+/// The rows a first pass found, each with its task state, and which are
+/// valid; the summary's row counts filled in.
+fn rows_and_tasks(
+    path: &Path,
+    seqs: &[u64],
+    missing: &[bool],
+    tasks: Vec<TaskState>,
+    summary: &mut LogBlockSummary,
+) -> Result<(usize, RowTask, Vec<bool>), LogBlockError> {
+    let rows = seqs.len();
+    if rows == 0 {
+        return Err(LogBlockError::NoSlots {
+            path: path.to_path_buf(),
+        });
     }
-    summary.bins_missing += usize::from(missing);
+    let rt = RowTask::new(seqs, tasks, summary);
+    let mut valid = Vec::with_capacity(rows);
+    for (r, &gone) in missing.iter().enumerate() {
+        let task = rt.of(r);
+        valid.push(task.is_some() && !gone);
+        summary.valid_rows += usize::from(task.is_some() && !gone);
+        match task {
+            Some(t) => summary.closed_loop_rows += usize::from(t.closed_loop()),
+            None => summary.rows_without_task_state += 1,
+        }
+        summary.bins_missing += usize::from(gone);
+    }
+    summary.rows = rows;
+    Ok((rows, rt, valid))
 }
 
 /// Writes the log at `path` as a session directory in bounded memory: a
@@ -310,20 +322,8 @@ pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockEr
         missing.push(c.is_none());
         Ok(())
     })?;
-    let rows = seqs.len();
-    if rows == 0 {
-        return Err(LogBlockError::NoSlots {
-            path: path.to_path_buf(),
-        });
-    }
-    let rt = RowTask::new(&seqs, tasks, &mut summary);
+    let (rows, rt, valid) = rows_and_tasks(path, &seqs, &missing, tasks, &mut summary)?;
     let d = rt.dims.unwrap_or(2);
-    let mut valid = Vec::with_capacity(rows);
-    for (r, &gone) in missing.iter().enumerate() {
-        count_row(&mut summary, rt.of(r), gone);
-        valid.push(rt.of(r).is_some() && !gone);
-    }
-    summary.rows = rows;
     write_manifest(
         dir,
         header.bin_width,

@@ -351,30 +351,27 @@ impl NpyWriter {
 
     /// Writes rows (a whole number of them, `cols` values each).
     pub fn write_rows(&mut self, values: &[f64]) -> Result<(), BlockError> {
-        debug_assert_eq!(values.len() % self.cols.max(1), 0);
-        for v in values {
-            self.out
-                .write_all(&v.to_le_bytes())
-                .map_err(|source| BlockError::Write {
-                    path: self.path.clone(),
-                    source,
-                })?;
-        }
-        self.written += values.len() / self.cols.max(1);
-        Ok(())
+        self.write_le(values.len(), values.iter().map(|v| v.to_le_bytes()))
     }
 
     /// Writes whole rows of counts (a file made by [`NpyWriter::create_u16`]).
     pub fn write_u16_rows(&mut self, values: &[u16]) -> Result<(), BlockError> {
-        for v in values {
-            self.out
-                .write_all(&v.to_le_bytes())
-                .map_err(|source| BlockError::Write {
-                    path: self.path.clone(),
-                    source,
-                })?;
+        self.write_le(values.len(), values.iter().map(|v| v.to_le_bytes()))
+    }
+
+    fn write_le<const W: usize>(
+        &mut self,
+        len: usize,
+        bytes: impl Iterator<Item = [u8; W]>,
+    ) -> Result<(), BlockError> {
+        debug_assert_eq!(len % self.cols.max(1), 0);
+        for b in bytes {
+            self.out.write_all(&b).map_err(|source| BlockError::Write {
+                path: self.path.clone(),
+                source,
+            })?;
         }
-        self.written += values.len() / self.cols.max(1);
+        self.written += len / self.cols.max(1);
         Ok(())
     }
 

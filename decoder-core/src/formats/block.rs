@@ -492,74 +492,24 @@ fn npy_problem(e: &ReadNpyError) -> String {
     }
 }
 
-macro_rules! try_int_dtype {
-    ($bytes:expr, $($t:ty),*) => {{
-        let mut found = None;
-        $(
-            if found.is_none() {
-                match Array2::<$t>::read_npy($bytes) {
-                    Ok(arr) => found = Some(Ok(arr.mapv(i128::from))),
-                    Err(ReadNpyError::WrongDescriptor(_)) => {}
-                    Err(e) => found = Some(Err(e)),
-                }
-            }
-        )*
-        found
-    }};
-}
-
+/// Reads counts.npy straight into u16, a chunk of rows at a time, so the
+/// block costs its counts' size in memory and no wider copy.
 fn read_counts(path: &Path) -> Result<(usize, usize, Vec<u16>), BlockError> {
-    let bytes = read_bytes(path, "counts.npy")?;
-    let found = try_int_dtype!(&bytes[..], i64, i32, i16, i8, u64, u32, u16, u8);
-    let arr = match found {
-        Some(Ok(arr)) => arr,
-        Some(Err(e)) => {
-            return Err(BlockError::Npy {
-                path: path.to_path_buf(),
-                problem: npy_problem(&e),
-            });
-        }
-        None => {
-            let dtype = match Array2::<f64>::read_npy(&bytes[..]) {
-                Ok(_) => "float64".to_string(),
-                Err(_) => match Array2::<f32>::read_npy(&bytes[..]) {
-                    Ok(_) => "float32".to_string(),
-                    Err(e) => {
-                        return Err(BlockError::Npy {
-                            path: path.to_path_buf(),
-                            problem: npy_problem(&e),
-                        });
-                    }
-                },
-            };
-            return Err(BlockError::Npy {
-                path: path.to_path_buf(),
-                problem: format!(
-                    "counts have dtype {dtype}; spike counts must be an integer dtype (save with counts.astype(np.uint16))"
-                ),
-            });
-        }
-    };
-    let (n_bins, n_channels) = arr.dim();
+    let mut rows = crate::formats::npy_stream::NpyRows::open(path, "counts.npy")?;
+    if rows.ndim != 2 {
+        return Err(BlockError::Npy {
+            path: path.to_path_buf(),
+            problem: format!(
+                "array has {} dimensions; expected 2 (bins × channels)",
+                rows.ndim
+            ),
+        });
+    }
+    let (n_bins, n_channels) = (rows.rows, rows.cols);
     let mut counts = Vec::with_capacity(n_bins * n_channels);
-    for ((bin, channel), &value) in arr.indexed_iter() {
-        if value < 0 {
-            return Err(BlockError::NegativeCount {
-                path: path.to_path_buf(),
-                bin,
-                channel,
-                value,
-            });
-        }
-        if value > i128::from(u16::MAX) {
-            return Err(BlockError::CountTooLarge {
-                path: path.to_path_buf(),
-                bin,
-                channel,
-                value,
-            });
-        }
-        counts.push(value as u16);
+    let mut chunk = Vec::new();
+    while rows.read_counts(4096, &mut chunk)? > 0 {
+        counts.extend_from_slice(&chunk);
     }
     Ok((n_bins, n_channels, counts))
 }

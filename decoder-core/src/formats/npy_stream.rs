@@ -32,6 +32,8 @@ pub struct NpyRows {
     big_endian: bool,
     pub rows: usize,
     pub cols: usize,
+    /// Dimensions in the file (1 is read as one column).
+    pub ndim: usize,
     rows_read: usize,
     raw: Vec<u8>,
     /// A Fortran-order file, read whole and reordered into C order.
@@ -100,6 +102,7 @@ impl NpyRows {
             big_endian,
             rows,
             cols,
+            ndim: header.shape.len(),
             rows_read: 0,
             raw: Vec::new(),
             whole: None,

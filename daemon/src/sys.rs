@@ -22,33 +22,10 @@ pub fn monotonic_ns() -> u64 {
     ts.tv_sec as u64 * 1_000_000_000 + ts.tv_nsec as u64
 }
 
-/// Waits until `socket` is readable or `timeout` passes; true if readable.
-/// `ppoll` takes a timespec, so a wait of 300 µs is 300 µs (plus the
-/// thread's timer slack), where a socket read timeout rounds to jiffies.
-pub fn wait_readable(socket: &impl AsRawFd, timeout: Duration) -> std::io::Result<bool> {
-    let mut fds = libc::pollfd {
-        fd: socket.as_raw_fd(),
-        events: libc::POLLIN,
-        revents: 0,
-    };
-    let ts = libc::timespec {
-        tv_sec: timeout.as_secs() as libc::time_t,
-        tv_nsec: timeout.subsec_nanos() as libc::c_long,
-    };
-    // SAFETY: one valid pollfd, a valid timespec, and no signal mask.
-    let n = unsafe { libc::ppoll(&mut fds, 1, &ts, std::ptr::null()) };
-    if n < 0 {
-        let err = std::io::Error::last_os_error();
-        if err.kind() == std::io::ErrorKind::Interrupted {
-            return Ok(false);
-        }
-        return Err(err);
-    }
-    Ok(n > 0 && fds.revents & libc::POLLIN != 0)
-}
-
 /// Waits until `bins` or `task` is readable or `timeout` passes; says
-/// which are readable, bins first.
+/// which are readable, bins first. `ppoll` takes a timespec, so a wait of
+/// 300 µs is 300 µs (plus the thread's timer slack), where a socket read
+/// timeout rounds to jiffies.
 pub fn wait_readable_pair(
     bins: &impl AsRawFd,
     task: &impl AsRawFd,

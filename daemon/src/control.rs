@@ -239,27 +239,17 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
                 Request::Disarm => OperatorCommand::Disarm,
                 _ => OperatorCommand::Halt,
             };
-            let (reply, rx) = oneshot::channel();
-            if let Err(reply) = to_rt_now(to_rt, ControlRequest::Operator { command, reply }) {
-                return reply;
-            }
-            match rx.await {
-                Ok(Ok(m)) => {
-                    tracing::info!("operator {command:?}: {m}");
-                    Reply {
-                        ok: true,
-                        message: m,
-                        status: None,
-                    }
-                }
-                Ok(Err(m)) => {
-                    tracing::warn!("operator {command:?} {m}");
-                    fail(m)
-                }
-                Err(_) => fail(RT_GONE),
-            }
+            let what = format!("operator {command:?}");
+            operator_reply(to_rt, &what, |reply| ControlRequest::Operator {
+                command,
+                reply,
+            })
+            .await
         }
-        Request::Adapt { on } => adapt(on, to_rt).await,
+        Request::Adapt { on } => {
+            let what = format!("operator adapt {}", if on { "on" } else { "off" });
+            operator_reply(to_rt, &what, |reply| ControlRequest::Adapt { on, reply }).await
+        }
         Request::Load { path } => {
             let loaded = match tokio::task::spawn_blocking(move || prepare_load(&path, shape)).await
             {
@@ -301,14 +291,20 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
     }
 }
 
-async fn adapt(on: bool, to_rt: &Sender<ControlRequest>) -> Reply {
+/// Hands an operator's request to the real-time thread and turns its
+/// answer (a message, or a refusal) into the reply, logging it as `what`.
+async fn operator_reply(
+    to_rt: &Sender<ControlRequest>,
+    what: &str,
+    request: impl FnOnce(oneshot::Sender<Result<String, String>>) -> ControlRequest,
+) -> Reply {
     let (reply, rx) = oneshot::channel();
-    if let Err(reply) = to_rt_now(to_rt, ControlRequest::Adapt { on, reply }) {
+    if let Err(reply) = to_rt_now(to_rt, request(reply)) {
         return reply;
     }
     match rx.await {
         Ok(Ok(m)) => {
-            tracing::info!("operator: {m}");
+            tracing::info!("{what}: {m}");
             Reply {
                 ok: true,
                 message: m,
@@ -316,7 +312,7 @@ async fn adapt(on: bool, to_rt: &Sender<ControlRequest>) -> Reply {
             }
         }
         Ok(Err(m)) => {
-            tracing::warn!("operator: {m}");
+            tracing::warn!("{what}: {m}");
             fail(m)
         }
         Err(_) => fail(RT_GONE),

@@ -297,18 +297,10 @@ impl Block {
                 kin.extend_from_slice(m.row(b));
             }
         }
-        let trials = self.trials.as_ref().map(|ts| {
-            ts.iter()
-                .filter_map(|t| {
-                    let (s, e) = (kept_before[t.start_bin], kept_before[t.end_bin]);
-                    (s < e).then(|| Trial {
-                        start_bin: s,
-                        end_bin: e,
-                        ..t.clone()
-                    })
-                })
-                .collect()
-        });
+        let trials = self
+            .trials
+            .as_ref()
+            .map(|ts| crate::formats::block_rows::renumber_trials(ts, |b| kept_before[b]));
         Block {
             bin_width: self.bin_width,
             n_bins: k,
@@ -413,6 +405,7 @@ pub fn write_trials(dir: &Path, trials: &[Trial]) -> Result<(), BlockError> {
 pub struct BlockManifest {
     pub bin_width: BinWidth,
     pub kinematic_names: Vec<String>,
+    pub channel_labels: Option<Vec<String>>,
 }
 
 impl BlockManifest {
@@ -428,6 +421,7 @@ impl BlockManifest {
         Ok(BlockManifest {
             bin_width: BinWidth::from_ms(m.bin_ms).expect("checked with the manifest"),
             kinematic_names: m.kinematics,
+            channel_labels: m.channel_labels,
         })
     }
 }
@@ -567,7 +561,7 @@ fn read_kinematics(path: &Path, names: &[String]) -> Result<Mat, BlockError> {
     Ok(Mat { rows, cols, data })
 }
 
-fn read_trials(path: &Path, n_bins: usize) -> Result<Vec<Trial>, BlockError> {
+pub(crate) fn read_trials(path: &Path, n_bins: usize) -> Result<Vec<Trial>, BlockError> {
     let bytes = read_bytes(path, "trials.csv")?;
     let mut reader = csv::ReaderBuilder::new()
         .trim(csv::Trim::All)

@@ -6,6 +6,7 @@
 //! block directory, the model file), but nothing here opens a socket.
 
 pub mod block;
+pub mod block_rows;
 pub mod log_block;
 pub mod model_file;
 pub mod npy_stream;

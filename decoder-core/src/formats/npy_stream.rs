@@ -21,6 +21,8 @@ enum Elem {
     I(u8),
     U(u8),
     F(u8),
+    /// NumPy's bool, one byte: 0 or 1.
+    B,
 }
 
 /// Rows of a 2-D (or 1-D, as one column) C-order NumPy array, read in
@@ -93,6 +95,7 @@ impl NpyRows {
             (Some('i'), 1 | 2 | 4 | 8) => Elem::I(size),
             (Some('u'), 1 | 2 | 4 | 8) => Elem::U(size),
             (Some('f'), 4 | 8) => Elem::F(size),
+            (Some('b'), 1) => Elem::B,
             _ => return Err(npy_err(path, format!("dtype {descr:?} is not supported"))),
         };
         let mut r = NpyRows {
@@ -138,12 +141,14 @@ impl NpyRows {
             Elem::I(s) => format!("int{}", 8 * s),
             Elem::U(s) => format!("uint{}", 8 * s),
             Elem::F(s) => format!("float{}", 8 * s),
+            Elem::B => "bool".into(),
         }
     }
 
     fn elem_size(&self) -> usize {
         match self.elem {
             Elem::I(s) | Elem::U(s) | Elem::F(s) => usize::from(s),
+            Elem::B => 1,
         }
     }
 
@@ -183,7 +188,7 @@ impl NpyRows {
             le[..s].copy_from_slice(b);
         }
         match self.elem {
-            Elem::U(_) => i128::from(u64::from_le_bytes(le)),
+            Elem::U(_) | Elem::B => i128::from(u64::from_le_bytes(le)),
             Elem::I(_) => {
                 // Sign-extend from s bytes.
                 let v = u64::from_le_bytes(le);

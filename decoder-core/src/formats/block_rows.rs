@@ -1,0 +1,452 @@
+//! A block seen as passes over its rows, a chunk at a time, so that fitting
+//! and cross-validation cost the same memory for a one-minute block and a
+//! four-hour one. A block in memory ([`Block`]) and a session directory
+//! read from disk chunk by chunk ([`BlockFiles`]) offer the same passes and
+//! give the same rows, so evaluation run either way gives the same bits.
+//!
+//! Rows not marked valid (`valid.npy`, PROTOCOL.md §3) are left out of a
+//! pass, the kept rows numbered end to end as [`Block::valid_only`] numbers
+//! them, with the trials renumbered onto them.
+
+use std::path::{Path, PathBuf};
+
+use crate::bin_width::BinWidth;
+use crate::formats::block::{
+    Block, BlockError, BlockManifest, COUNTS_FILE, KINEMATICS_FILE, TRIALS_FILE, Trial, VALID_FILE,
+    read_trials,
+};
+use crate::formats::npy_stream::NpyRows;
+
+/// What a block is, without its rows: enough to plan folds and check
+/// options before the first pass.
+#[derive(Clone, Debug, PartialEq)]
+pub struct BlockInfo {
+    pub bin_width: BinWidth,
+    /// Valid rows, the ones a pass visits.
+    pub n_bins: usize,
+    pub n_channels: usize,
+    pub kinematic_names: Vec<String>,
+    pub has_kinematics: bool,
+    /// Trials on the valid rows' numbering.
+    pub trials: Option<Vec<Trial>>,
+}
+
+impl BlockInfo {
+    /// Index of a kinematics column by name.
+    pub fn kinematic_index(&self, name: &str) -> Option<usize> {
+        self.kinematic_names.iter().position(|n| n == name)
+    }
+}
+
+/// Consecutive valid rows: `rows` of them from row `first`, their counts
+/// (`rows × n_channels`) and kinematics (`rows × kinematic_names.len()`,
+/// empty for a block without kinematics).
+#[derive(Clone, Copy, Debug)]
+pub struct RowChunk<'a> {
+    pub first: usize,
+    pub rows: usize,
+    pub counts: &'a [u16],
+    pub kinematics: &'a [f64],
+}
+
+/// A block that can be read from its first valid row to its last, as many
+/// times as a fit needs.
+pub trait BlockRows {
+    fn info(&self) -> BlockInfo;
+    /// Visits every valid row once, in order, a chunk at a time.
+    fn pass(&self, visit: &mut dyn FnMut(RowChunk<'_>)) -> Result<(), BlockError>;
+}
+
+/// The trials with their bins counted on the kept rows only (`kept(b)`:
+/// kept rows before bin b); a trial left with no row goes.
+pub fn renumber_trials(trials: &[Trial], mut kept: impl FnMut(usize) -> usize) -> Vec<Trial> {
+    trials
+        .iter()
+        .filter_map(|t| {
+            let (s, e) = (kept(t.start_bin), kept(t.end_bin));
+            (s < e).then(|| Trial {
+                start_bin: s,
+                end_bin: e,
+                ..t.clone()
+            })
+        })
+        .collect()
+}
+
+impl BlockRows for Block {
+    fn info(&self) -> BlockInfo {
+        let runs = self.valid_runs();
+        // Kept rows before bin b, from the runs of valid bins.
+        let kept = |b: usize| {
+            runs.iter()
+                .map(|r| r.end.min(b).saturating_sub(r.start))
+                .sum()
+        };
+        BlockInfo {
+            bin_width: self.bin_width,
+            n_bins: self.n_valid(),
+            n_channels: self.n_channels,
+            kinematic_names: self.kinematic_names.clone(),
+            has_kinematics: self.kinematics.is_some(),
+            trials: match (&self.trials, &self.valid) {
+                (Some(t), Some(_)) => Some(renumber_trials(t, kept)),
+                (t, _) => t.clone(),
+            },
+        }
+    }
+
+    fn pass(&self, visit: &mut dyn FnMut(RowChunk<'_>)) -> Result<(), BlockError> {
+        let (n, k) = (self.n_channels, self.kinematic_names.len());
+        let mut first = 0;
+        // Each run of valid bins is contiguous in memory: no copy.
+        for run in self.valid_runs() {
+            visit(RowChunk {
+                first,
+                rows: run.len(),
+                counts: &self.counts[run.start * n..run.end * n],
+                kinematics: self
+                    .kinematics
+                    .as_ref()
+                    .map_or(&[][..], |m| &m.data[run.start * k..run.end * k]),
+            });
+            first += run.len();
+        }
+        Ok(())
+    }
+}
+
+/// Rows read per chunk from disk: large enough to amortise the reads,
+/// small enough that a pass holds a few MB whatever the block's length.
+pub const CHUNK_ROWS: usize = 4096;
+
+/// A session directory read a chunk at a time: its files are checked
+/// (shapes, dtypes, trials, `valid.npy`) when it is opened and every value
+/// as a pass reads it.
+#[derive(Clone, Debug)]
+pub struct BlockFiles {
+    dir: PathBuf,
+    info: BlockInfo,
+    /// Bins in the files, valid or not.
+    file_bins: usize,
+    has_valid: bool,
+    chunk_rows: usize,
+}
+
+impl BlockFiles {
+    pub fn open(dir: &Path) -> Result<BlockFiles, BlockError> {
+        BlockFiles::open_with_chunk(dir, CHUNK_ROWS)
+    }
+
+    /// [`BlockFiles::open`] reading `chunk_rows` rows at a time (tests use
+    /// tiny chunks to cross every boundary).
+    pub fn open_with_chunk(dir: &Path, chunk_rows: usize) -> Result<BlockFiles, BlockError> {
+        let manifest = BlockManifest::read(dir)?;
+        let counts_path = dir.join(COUNTS_FILE);
+        let counts = NpyRows::open(&counts_path, "counts.npy")?;
+        let shape = |problem: String| BlockError::Shape {
+            path: counts_path.clone(),
+            problem,
+        };
+        if counts.ndim != 2 {
+            return Err(BlockError::Npy {
+                path: counts_path.clone(),
+                problem: format!(
+                    "array has {} dimensions; expected 2 (bins × channels)",
+                    counts.ndim
+                ),
+            });
+        }
+        let (file_bins, n_channels) = (counts.rows, counts.cols);
+        if file_bins == 0 || n_channels == 0 {
+            return Err(shape(format!(
+                "the block is empty (shape ({file_bins}, {n_channels})); it needs at least one bin and one channel"
+            )));
+        }
+        if n_channels > 16384 {
+            return Err(shape(format!(
+                "{n_channels} channels; a bin packet carries at most 16384"
+            )));
+        }
+        if let Some(labels) = &manifest.channel_labels
+            && labels.len() != n_channels
+        {
+            return Err(BlockError::Manifest {
+                path: dir.join(crate::formats::block::MANIFEST_FILE),
+                problem: format!(
+                    "key channel_labels has {} labels but counts.npy has {n_channels} channels",
+                    labels.len()
+                ),
+            });
+        }
+        if !counts.is_integer() {
+            return Err(BlockError::Npy {
+                path: counts_path.clone(),
+                problem: format!(
+                    "counts have dtype {}; spike counts must be an integer dtype (save with counts.astype(np.uint16))",
+                    counts.dtype_name()
+                ),
+            });
+        }
+        let kin_path = dir.join(KINEMATICS_FILE);
+        let has_kinematics = kin_path.exists();
+        if has_kinematics {
+            let kin = NpyRows::open(&kin_path, "kinematics.npy")?;
+            let problem = if kin.ndim != 2 {
+                Some(format!(
+                    "array has {} dimensions; expected 2 (bins × columns)",
+                    kin.ndim
+                ))
+            } else if kin.is_integer() || kin.dtype_name() == "float16" {
+                Some(format!(
+                    "dtype {} is not float64 or float32",
+                    kin.dtype_name()
+                ))
+            } else {
+                None
+            };
+            if let Some(problem) = problem {
+                return Err(BlockError::Npy {
+                    path: kin_path,
+                    problem,
+                });
+            }
+            if kin.cols != manifest.kinematic_names.len() {
+                return Err(BlockError::Shape {
+                    path: kin_path,
+                    problem: format!(
+                        "kinematics.npy has {} columns but manifest.toml key kinematics names {} ({})",
+                        kin.cols,
+                        manifest.kinematic_names.len(),
+                        manifest.kinematic_names.join(", ")
+                    ),
+                });
+            }
+            if kin.rows != file_bins {
+                return Err(BlockError::Shape {
+                    path: kin_path,
+                    problem: format!(
+                        "kinematics.npy has {} rows but counts.npy has {file_bins}; row t of both must describe the same bin",
+                        kin.rows
+                    ),
+                });
+            }
+        }
+        let trials_path = dir.join(TRIALS_FILE);
+        let trials = if trials_path.exists() {
+            Some(read_trials(&trials_path, file_bins)?)
+        } else {
+            None
+        };
+        let valid_path = dir.join(VALID_FILE);
+        let has_valid = valid_path.exists();
+        let (n_bins, trials) = if has_valid {
+            let mut valid = open_valid(&valid_path, file_bins)?;
+            // One pass over valid.npy: the kept rows before every trial
+            // boundary, in order.
+            let mut edges: Vec<usize> = trials
+                .iter()
+                .flatten()
+                .flat_map(|t| [t.start_bin, t.end_bin])
+                .collect();
+            edges.sort_unstable();
+            edges.dedup();
+            let mut kept_at = Vec::with_capacity(edges.len());
+            let (mut bin, mut kept, mut next) = (0usize, 0usize, 0usize);
+            let mut chunk = Vec::new();
+            loop {
+                let got = valid.read_counts(chunk_rows.max(1), &mut chunk)?;
+                for &v in &chunk[..got] {
+                    while next < edges.len() && edges[next] == bin {
+                        kept_at.push(kept);
+                        next += 1;
+                    }
+                    kept += usize::from(v != 0);
+                    bin += 1;
+                }
+                if got == 0 {
+                    break;
+                }
+            }
+            kept_at.resize(edges.len(), kept);
+            let lookup = |b: usize| kept_at[edges.binary_search(&b).expect("an edge")];
+            let trials = trials.map(|t| renumber_trials(&t, lookup));
+            (kept, trials)
+        } else {
+            (file_bins, trials)
+        };
+        Ok(BlockFiles {
+            dir: dir.to_path_buf(),
+            info: BlockInfo {
+                bin_width: manifest.bin_width,
+                n_bins,
+                n_channels,
+                kinematic_names: manifest.kinematic_names,
+                has_kinematics,
+                trials,
+            },
+            file_bins,
+            has_valid,
+            chunk_rows: chunk_rows.max(1),
+        })
+    }
+
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+}
+
+fn open_valid(path: &Path, file_bins: usize) -> Result<NpyRows, BlockError> {
+    let valid = NpyRows::open(path, "valid.npy")?;
+    if valid.ndim != 1 || valid.dtype_name() != "bool" {
+        return Err(BlockError::Npy {
+            path: path.to_path_buf(),
+            problem: "valid.npy must be a 1-D bool array, one entry per bin".into(),
+        });
+    }
+    if valid.rows != file_bins {
+        return Err(BlockError::Shape {
+            path: path.to_path_buf(),
+            problem: format!(
+                "valid.npy has {} entries but counts.npy has {file_bins} bins",
+                valid.rows
+            ),
+        });
+    }
+    Ok(valid)
+}
+
+impl BlockRows for BlockFiles {
+    fn info(&self) -> BlockInfo {
+        self.info.clone()
+    }
+
+    fn pass(&self, visit: &mut dyn FnMut(RowChunk<'_>)) -> Result<(), BlockError> {
+        let (n, k) = (self.info.n_channels, self.info.kinematic_names.len());
+        let mut counts = NpyRows::open(&self.dir.join(COUNTS_FILE), "counts.npy")?;
+        let mut kin = if self.info.has_kinematics {
+            Some(NpyRows::open(
+                &self.dir.join(KINEMATICS_FILE),
+                "kinematics.npy",
+            )?)
+        } else {
+            None
+        };
+        let mut valid = if self.has_valid {
+            Some(open_valid(&self.dir.join(VALID_FILE), self.file_bins)?)
+        } else {
+            None
+        };
+        let (mut c, mut x, mut v) = (Vec::new(), Vec::new(), Vec::new());
+        let mut first = 0;
+        loop {
+            let got = counts.read_counts(self.chunk_rows, &mut c)?;
+            if got == 0 {
+                return Ok(());
+            }
+            if let Some(kin) = kin.as_mut() {
+                kin.read_f64(got, &self.info.kinematic_names, &mut x)?;
+            }
+            let rows = if let Some(valid) = valid.as_mut() {
+                valid.read_counts(got, &mut v)?;
+                // Keep the valid rows, moved down in place.
+                let mut kept = 0;
+                for (r, &ok) in v.iter().enumerate() {
+                    if ok == 0 {
+                        continue;
+                    }
+                    if kept != r {
+                        c.copy_within(r * n..(r + 1) * n, kept * n);
+                        if !x.is_empty() {
+                            x.copy_within(r * k..(r + 1) * k, kept * k);
+                        }
+                    }
+                    kept += 1;
+                }
+                kept
+            } else {
+                got
+            };
+            if rows > 0 {
+                visit(RowChunk {
+                    first,
+                    rows,
+                    counts: &c[..rows * n],
+                    kinematics: if x.is_empty() { &[] } else { &x[..rows * k] },
+                });
+            }
+            first += rows;
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn collect(rows: &dyn BlockRows) -> (Vec<u16>, Vec<f64>, Vec<usize>) {
+        let (mut c, mut x, mut firsts) = (Vec::new(), Vec::new(), Vec::new());
+        rows.pass(&mut |chunk| {
+            assert_eq!(chunk.first, c.len() / rows.info().n_channels);
+            firsts.push(chunk.first);
+            c.extend_from_slice(chunk.counts);
+            x.extend_from_slice(chunk.kinematics);
+        })
+        .unwrap();
+        (c, x, firsts)
+    }
+
+    #[test]
+    fn files_and_memory_give_the_same_valid_rows_and_trials() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut block = crate::sim::reaching::simulate(&crate::sim::reaching::SimOptions {
+            minutes: 0.4,
+            n_channels: 5,
+            ..Default::default()
+        })
+        .unwrap()
+        .0;
+        let mut valid = vec![true; block.n_bins];
+        for b in (3..block.n_bins).step_by(7) {
+            valid[b] = false;
+        }
+        valid[..40].fill(false);
+        block.valid = Some(valid);
+        block.write(dir.path()).unwrap();
+        let only = block.valid_only();
+        let (mc, mx, _) = collect(&block);
+        assert_eq!(
+            (&mc, &mx),
+            (&only.counts, &only.kinematics.as_ref().unwrap().data)
+        );
+        assert!(only.trials.as_ref().is_some_and(|t| t.len() > 3));
+        for chunk in [1, 3, 64, 100_000] {
+            let files = BlockFiles::open_with_chunk(dir.path(), chunk).unwrap();
+            assert_eq!(files.info(), block.info());
+            assert_eq!(files.info().trials, only.trials);
+            assert_eq!(files.info().n_bins, only.n_bins);
+            let (fc, fx, _) = collect(&files);
+            assert_eq!(fc, only.counts);
+            assert_eq!(fx, only.kinematics.as_ref().unwrap().data);
+        }
+    }
+
+    #[test]
+    fn a_valid_file_of_the_wrong_length_is_named() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut block = crate::sim::reaching::simulate(&crate::sim::reaching::SimOptions {
+            minutes: 0.05,
+            n_channels: 3,
+            ..Default::default()
+        })
+        .unwrap()
+        .0;
+        block.valid = Some(vec![true; block.n_bins]);
+        block.write(dir.path()).unwrap();
+        let mut short = Vec::new();
+        ndarray_npy::WriteNpyExt::write_npy(&ndarray::Array1::from_vec(vec![true; 5]), &mut short)
+            .unwrap();
+        std::fs::write(dir.path().join(VALID_FILE), short).unwrap();
+        let e = BlockFiles::open(dir.path()).unwrap_err().to_string();
+        assert!(e.contains("valid.npy has 5 entries"), "{e}");
+    }
+}

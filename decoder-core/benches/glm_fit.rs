@@ -1,7 +1,9 @@
 //! Fitting the point-process encoding models at scale, for the comparison
 //! with statsmodels in `compare_statsmodels.sh`: 192 channels × 90 000 bins
 //! with 15 coefficients each (intercept, 2 velocity, 12 history basis
-//! functions), by `pp_fit::fit_channel` on one thread and on all cores.
+//! functions), by `fit_channels` (all channels side by side in the same
+//! passes over the block) on one thread, and on all cores with the
+//! channels dealt to one group per core.
 //! The designs and the fitted coefficients of the first channels are
 //! written as .npy into the directory given as the first argument (or
 //! target/glm-bench) so statsmodels can fit the same designs.
@@ -11,9 +13,8 @@
 use std::path::PathBuf;
 use std::time::Instant;
 
-use decoder_core::fit::kalman::state_sources;
 use decoder_core::fit::point_process::{
-    HistoryOptions, PointProcessFitOptions, channel_design, fit_channel,
+    ChannelDesigns, HistoryOptions, PointProcessFitOptions, fit_channels,
 };
 use decoder_core::sim::reaching::{SimOptions, simulate};
 use ndarray::{Array1, Array2};
@@ -47,31 +48,34 @@ fn main() {
     };
 
     let one = Instant::now();
-    let fits: Vec<_> = (0..CHANNELS)
-        .map(|c| fit_channel(&session, &options, c))
-        .collect();
+    let everyone: Vec<usize> = (0..CHANNELS).collect();
+    let fits = fit_channels(&session, &options, &everyone).unwrap();
     let single = one.elapsed().as_secs_f64();
     let threads = std::thread::available_parallelism().map_or(1, |t| t.get());
     let all = Instant::now();
     std::thread::scope(|scope| {
-        let per = CHANNELS.div_ceil(threads);
         for t in 0..threads {
             let (session, options) = (&session, &options);
             scope.spawn(move || {
-                for c in t * per..((t + 1) * per).min(CHANNELS) {
-                    std::hint::black_box(fit_channel(session, options, c).ok());
-                }
+                let group: Vec<usize> = (t..CHANNELS).step_by(threads).collect();
+                std::hint::black_box(fit_channels(session, options, &group).ok());
             });
         }
     });
     let parallel = all.elapsed().as_secs_f64();
     let failed = fits.iter().filter(|f| f.is_err()).count();
 
-    let sources = state_sources(&session, &options.state).unwrap();
-    let basis = options.basis();
     for (c, fit) in fits.iter().enumerate().take(WRITTEN) {
-        let (x, y) = channel_design(&session, &sources, basis.as_ref(), false, c);
-        Array2::from_shape_vec((x.rows, x.cols), x.data)
+        let designs = ChannelDesigns::new(&session, &options, vec![c]).unwrap();
+        let (mut x, mut y, mut cols) = (Vec::new(), Vec::new(), 0);
+        designs
+            .each_row(&[true], &mut |_, row, count| {
+                x.extend_from_slice(row);
+                y.push(count);
+                cols = row.len();
+            })
+            .unwrap();
+        Array2::from_shape_vec((y.len(), cols), x)
             .unwrap()
             .write_npy(std::fs::File::create(out.join(format!("design_{c}.npy"))).unwrap())
             .unwrap();

@@ -335,7 +335,7 @@ where
 }
 
 /// Writes `<stem>.svg` and `<stem>.png`: one small KS plot per channel
-/// (time rescaling, Brown et al. 2002): the sorted rescaled intervals
+/// (time rescaling, Brown et al. 2002): the rescaled intervals' quantiles
 /// against uniform quantiles, one line per point-process decoder, with the
 /// diagonal and the 95 % band, at most 8 panels a row so the page fits
 /// 1280 px.
@@ -344,7 +344,7 @@ pub fn ks_plots(
     stem: &Path,
 ) -> Result<()> {
     register_font();
-    let n = goodness.first().map_or(0, |g| g.intervals.len());
+    let n = goodness.first().map_or(0, |g| g.curves.len());
     let cols = n.clamp(1, 8);
     let rows = n.div_ceil(cols).max(1);
     let size = (cols as u32 * 155 + 20, rows as u32 * 155 + 70);
@@ -414,13 +414,11 @@ where
             ))
             .map_err(|e| anyhow!("{e}"))?;
         for (k, g) in goodness.iter().enumerate() {
-            let mut u = g.intervals[c].clone();
-            if u.is_empty() {
+            let fit = &g.channels[c];
+            if fit.spikes < 2 {
                 continue;
             }
-            u.sort_by(f64::total_cmp);
-            let m = u.len() as f64;
-            let band = 1.36 / m.sqrt();
+            let band = fit.band;
             if k == 0 {
                 for offset in [band, -band] {
                     chart
@@ -431,13 +429,11 @@ where
                         .map_err(|e| anyhow!("{e}"))?;
                 }
             }
-            let step = (u.len() / 200).max(1);
+            let curve = &g.curves[c];
+            let step = (curve.len() / 200).max(1);
             chart
                 .draw_series(LineSeries::new(
-                    u.iter()
-                        .enumerate()
-                        .step_by(step)
-                        .map(|(i, &v)| ((i as f64 + 0.5) / m, v)),
+                    curve.iter().step_by(step).chain(curve.last()).copied(),
                     PALETTE[k % PALETTE.len()].stroke_width(1),
                 ))
                 .map_err(|e| anyhow!("{e}"))?;

@@ -3,7 +3,9 @@
 //! Each decoder is fitted on all folds but one and run, through the same
 //! [`DecodePipeline`] the daemon uses, over the held-out fold's segments,
 //! starting from its initial state at each segment. Scores are per output
-//! dimension, per fold, and their mean.
+//! dimension, per fold, and their mean. Everything is gathered in passes
+//! over the block's rows, so evaluation of a block of any length holds a
+//! few rows, the folds' sums and models, not the block.
 
 use serde::Serialize;
 
@@ -13,14 +15,15 @@ use crate::engine::pipeline::DecodePipeline;
 use crate::engine::pipeline::PipelineError;
 use crate::fit::TrainError;
 use crate::fit::folds::FoldPlan;
-use crate::fit::goodness::{self, ChannelFit};
+use crate::fit::goodness::{ChannelFit, ChannelFitSums};
 use crate::fit::kalman::{
     KalmanFitOptions, KalmanStats, check_options, fill_state, fit_from_stats, state_sources,
 };
-use crate::fit::metrics::{Scores, mean_scores, scores};
+use crate::fit::metrics::{ScoreSums, Scores, mean_scores};
 use crate::fit::point_process::{PointProcessFitOptions, fit_point_process};
+use crate::fit::rows::{SegmentWalk, Without, each_row};
 use crate::fit::wiener::{WienerFitOptions, WienerStats, fit_wiener_from_stats, output_columns};
-use crate::formats::block::Block;
+use crate::formats::block_rows::{BlockInfo, BlockRows};
 
 #[derive(Clone, Debug, PartialEq)]
 pub enum DecoderSpec {
@@ -42,14 +45,13 @@ impl DecoderSpec {
 
     /// The block's kinematics columns this decoder leaves out: neither in
     /// its state nor among its outputs (a 3-D block given a 2-D state).
-    pub fn unused_kinematics(&self, block: &Block) -> Vec<String> {
+    pub fn unused_kinematics(&self, kinematic_names: &[String]) -> Vec<String> {
         let state: &[String] = match self {
             DecoderSpec::Kalman(o) => &o.state,
             DecoderSpec::Wiener(_) => &[],
             DecoderSpec::PointProcess(o) => &o.state,
         };
-        block
-            .kinematic_names
+        kinematic_names
             .iter()
             .filter(|k| !state.contains(k) && !self.outputs().contains(k))
             .filter(|k| {
@@ -89,42 +91,10 @@ pub struct DecoderGoodness {
     /// Channels whose KS statistic is within the 95 % band.
     pub within_band: usize,
     pub mean_bits_per_spike: f64,
-    /// Rescaled intervals per channel (for KS plots).
+    /// Per channel, the KS curve: (uniform quantile, rescaled interval)
+    /// points, for plots.
     #[serde(skip)]
-    pub intervals: Vec<Vec<f64>>,
-}
-
-/// A copy of the block made of `ranges` only, in order.
-fn subset(session: &Block, ranges: &[std::ops::Range<usize>]) -> Block {
-    let n = session.n_channels;
-    let mut counts = Vec::new();
-    let kin = session.kinematics.as_ref();
-    let k = session.kinematic_names.len();
-    let mut rows: Vec<f64> = Vec::new();
-    let mut bins = 0;
-    for r in ranges {
-        counts.extend_from_slice(&session.counts[r.start * n..r.end * n]);
-        if let Some(m) = kin {
-            rows.extend_from_slice(&m.data[r.start * k..r.end * k]);
-        }
-        bins += r.len();
-    }
-    Block {
-        bin_width: session.bin_width,
-        n_bins: bins,
-        n_channels: n,
-        counts,
-        kinematic_names: session.kinematic_names.clone(),
-        kinematics: kin.map(|_| crate::linalg::Mat {
-            rows: bins,
-            cols: k,
-            data: rows,
-        }),
-        trials: None,
-        channel_labels: None,
-        valid: None,
-        notes: None,
-    }
+    pub curves: Vec<Vec<(f64, f64)>>,
 }
 
 #[derive(Clone, Debug, PartialEq, Serialize)]
@@ -159,80 +129,85 @@ pub struct Evaluation {
 /// Bins of held-out trace kept for plotting.
 const TRACE_BINS: usize = 1500;
 
-/// Per-fold fitted models for one decoder spec.
+/// Per-fold fitted models for one decoder spec; `on_fold` after each.
 fn fit_per_fold(
-    session: &Block,
+    session: &dyn BlockRows,
+    info: &BlockInfo,
     spec: &DecoderSpec,
     plan: &FoldPlan,
+    on_fold: &mut dyn FnMut(&str, usize),
 ) -> Result<Vec<DecoderModel>, TrainError> {
     let k = plan.k();
+    // Fold f trains on the sums of every other fold's pieces.
     match spec {
         DecoderSpec::Kalman(opts) => {
-            let sources = check_options(session, opts)?;
-            let parts: Vec<KalmanStats> = plan
-                .pieces
-                .iter()
-                .map(|pieces| {
-                    let mut s = KalmanStats::new(sources.len(), session.n_channels, opts.q_form);
-                    for seg in pieces {
-                        s.accumulate(session, &sources, opts.lag_bins, seg.clone());
-                    }
-                    s
-                })
-                .collect();
+            let sources = check_options(info, opts)?;
+            let parts =
+                KalmanStats::gather(session, &sources, opts.lag_bins, opts.q_form, &plan.pieces)?;
             (0..k)
                 .map(|f| {
-                    let mut train =
-                        KalmanStats::new(sources.len(), session.n_channels, opts.q_form);
+                    let mut train = KalmanStats::new(sources.len(), info.n_channels, opts.q_form);
                     for (g, p) in parts.iter().enumerate() {
                         if g != f {
                             train.add_assign(p);
                         }
                     }
-                    fit_from_stats(&train, opts, session.bin_width)
-                        .map(|(m, _)| DecoderModel::Kalman(m))
+                    let model = fit_from_stats(&train, opts, info.bin_width)
+                        .map(|(m, _)| DecoderModel::Kalman(m));
+                    on_fold(spec.name(), f);
+                    model
                 })
                 .collect()
         }
         DecoderSpec::Wiener(opts) => {
-            let cols = output_columns(session, &opts.outputs)?;
-            let parts: Vec<WienerStats> = plan
-                .pieces
-                .iter()
-                .map(|pieces| {
-                    let mut s = WienerStats::new(session.n_channels, opts.taps, cols.len());
-                    for seg in pieces {
-                        s.accumulate(session, &cols, opts.taps, opts.lag_bins, seg.clone());
-                    }
-                    s
-                })
-                .collect();
+            let cols = output_columns(info, &opts.outputs)?;
+            let parts =
+                WienerStats::gather(session, &cols, opts.taps, opts.lag_bins, &plan.pieces)?;
             (0..k)
                 .map(|f| {
-                    let mut train = WienerStats::new(session.n_channels, opts.taps, cols.len());
+                    let mut train = WienerStats::new(info.n_channels, opts.taps, cols.len());
                     for (g, p) in parts.iter().enumerate() {
                         if g != f {
                             train.add_assign(p);
                         }
                     }
-                    fit_wiener_from_stats(&train, opts, session.n_channels)
-                        .map(DecoderModel::Wiener)
+                    let model = fit_wiener_from_stats(&train, opts, info.n_channels)
+                        .map(DecoderModel::Wiener);
+                    on_fold(spec.name(), f);
+                    model
                 })
                 .collect()
         }
         DecoderSpec::PointProcess(opts) => (0..k)
             .map(|f| {
-                fit_point_process(&subset(session, &plan.training_segments(f)), opts)
-                    .map(|(m, _)| DecoderModel::PointProcess(m))
+                // The other folds' pieces, joined end to end.
+                let training = Without::new(session, plan.pieces[f].clone());
+                let model =
+                    fit_point_process(&training, opts).map(|(m, _)| DecoderModel::PointProcess(m));
+                on_fold(spec.name(), f);
+                model
             })
             .collect(),
     }
 }
 
+/// The held-out segments of every fold, tagged by fold, for one walk.
+fn held_out_walk(plan: &FoldPlan) -> SegmentWalk<usize> {
+    SegmentWalk::new(
+        plan.held_out
+            .iter()
+            .enumerate()
+            .flat_map(|(f, segs)| segs.iter().map(move |s| (s.clone(), f)))
+            .collect(),
+    )
+}
+
 /// Walks each fold's encoding models over its held-out bins with the true
-/// kinematics and the observed history, and scores every channel.
+/// kinematics and the observed history, and scores every channel: one
+/// pass, all folds at once (each bin is held out by one fold).
 fn goodness_of_fit(
-    session: &Block,
+    session: &dyn BlockRows,
+    info: &BlockInfo,
     spec: &DecoderSpec,
     plan: &FoldPlan,
     models: &[DecoderModel],
@@ -240,37 +215,37 @@ fn goodness_of_fit(
     let DecoderSpec::PointProcess(opts) = spec else {
         return Ok(None);
     };
-    let sources = state_sources(session, &opts.state)?;
-    let n = session.n_channels;
-    let mut expected: Vec<Vec<f64>> = vec![Vec::new(); n];
-    let mut counts: Vec<Vec<u16>> = vec![Vec::new(); n];
+    let sources = state_sources(&info.kinematic_names, &opts.state)?;
+    let n = info.n_channels;
+    let mut filters = models
+        .iter()
+        .map(|m| match m {
+            DecoderModel::PointProcess(m) => {
+                PointProcessFilter::new(m).map_err(PipelineError::PointProcess)
+            }
+            _ => unreachable!("a point-process spec fits point-process models"),
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    let mut sums: Vec<ChannelFitSums> = (0..n).map(ChannelFitSums::new).collect();
     let mut state = vec![0.0; sources.len()];
     let mut lambda = vec![0.0; n];
-    for (f, model) in models.iter().enumerate() {
-        let DecoderModel::PointProcess(m) = model else {
-            continue;
+    let mut walk = held_out_walk(plan);
+    each_row(session, info.kinematic_names.len(), |t, counts, kin| {
+        let Some((seg, f)) = walk.at(t) else {
+            return;
         };
-        let mut filter = PointProcessFilter::new(m).map_err(PipelineError::PointProcess)?;
-        for seg in &plan.held_out[f] {
+        let filter = &mut filters[f];
+        if t == seg.start {
             filter.reset();
-            for t in seg.clone() {
-                fill_state(session, &sources, t, &mut state);
-                filter.expected_counts(&state, &mut lambda);
-                let bin = session.bin_counts(t);
-                for c in 0..n {
-                    expected[c].push(lambda[c]);
-                    counts[c].push(bin[c]);
-                }
-                filter.observe(bin);
-            }
         }
-    }
-    let channels: Vec<ChannelFit> = (0..n)
-        .map(|c| goodness::channel_fit(c, &expected[c], &counts[c]))
-        .collect();
-    let intervals = (0..n)
-        .map(|c| goodness::rescaled_intervals_seeded(&expected[c], &counts[c], 0x6F17 ^ c as u64))
-        .collect();
+        fill_state(kin, &sources, &mut state);
+        filter.expected_counts(&state, &mut lambda);
+        for (s, (&l, &c)) in sums.iter_mut().zip(lambda.iter().zip(counts)) {
+            s.add(l, c);
+        }
+        filter.observe(counts);
+    })?;
+    let channels: Vec<ChannelFit> = sums.iter().map(ChannelFitSums::finish).collect();
     let within_band = channels.iter().filter(|c| c.within_band).count();
     let mean_bits_per_spike =
         channels.iter().map(|c| c.bits_per_spike).sum::<f64>() / n.max(1) as f64;
@@ -279,65 +254,109 @@ fn goodness_of_fit(
         channels,
         within_band,
         mean_bits_per_spike,
-        intervals,
+        curves: sums.iter().map(ChannelFitSums::ks_curve).collect(),
     }))
 }
 
+/// What decoding the held-out segments gathers.
+struct HeldOut {
+    /// `sums[fold][dim]`.
+    sums: Vec<Vec<ScoreSums>>,
+    /// Per output dimension, (true, decoded) over fold 0's first
+    /// [`TRACE_BINS`] bins.
+    traces: Vec<(Vec<f64>, Vec<f64>)>,
+}
+
+/// Decodes every fold's held-out segments with its model, each from the
+/// model's initial state, in one pass: the per-fold scores and, from
+/// fold 0, the first [`TRACE_BINS`] of decoded and true values.
+fn decode_held_out(
+    session: &dyn BlockRows,
+    info: &BlockInfo,
+    plan: &FoldPlan,
+    models: &[DecoderModel],
+    cols: &[usize],
+    lag: usize,
+) -> Result<HeldOut, TrainError> {
+    let d = cols.len();
+    let mut pipelines = models
+        .iter()
+        .map(|m| DecodePipeline::from_decoder(m, info.bin_width, true))
+        .collect::<Result<Vec<_>, _>>()?;
+    let mut sums = vec![vec![ScoreSums::default(); d]; plan.k()];
+    let mut traces: Vec<(Vec<f64>, Vec<f64>)> = vec![(Vec::new(), Vec::new()); d];
+    // Estimates of the last lag + 1 bins, each paired with the kinematics
+    // lag bins later.
+    let mut recent = vec![0.0; (lag + 1) * d];
+    let mut walk = held_out_walk(plan);
+    each_row(session, info.kinematic_names.len(), |t, counts, kin| {
+        let Some((seg, f)) = walk.at(t) else {
+            return;
+        };
+        if t == seg.start {
+            pipelines[f].reset();
+        }
+        if t + lag < seg.end {
+            let out = pipelines[f].step(t as u64, counts);
+            let at = (t % (lag + 1)) * d;
+            recent[at..at + d].copy_from_slice(&out.estimate[..d]);
+        }
+        if t >= seg.start + lag {
+            let at = ((t - lag) % (lag + 1)) * d;
+            for (dim, &c) in cols.iter().enumerate() {
+                let (truth, estimate) = (kin[c], recent[at + dim]);
+                sums[f][dim].add(truth, estimate);
+                if f == 0 && traces[dim].0.len() < TRACE_BINS {
+                    traces[dim].0.push(truth);
+                    traces[dim].1.push(estimate);
+                }
+            }
+        }
+    })?;
+    Ok(HeldOut { sums, traces })
+}
+
 /// Runs `k`-fold cross-validation of each spec; `on_fold` is called after
-/// each fitted fold (for progress display).
+/// each fitted fold (for progress display). A few passes over the block's
+/// rows per decoder (more for the point-process fits), never the block in
+/// memory: a session directory is read a chunk at a time
+/// ([`crate::formats::block_rows::BlockFiles`]), and the result is the same
+/// bits as for the block in memory.
 pub fn cross_validate(
-    session: &Block,
+    session: &dyn BlockRows,
     specs: &[DecoderSpec],
     k: usize,
     mut on_fold: impl FnMut(&str, usize),
 ) -> Result<Evaluation, TrainError> {
-    let plan = FoldPlan::new(session, k)?;
-    let kin = session
-        .kinematics
-        .as_ref()
-        .ok_or(TrainError::NoKinematics)?;
+    let info = session.info();
+    if !info.has_kinematics {
+        return Err(TrainError::NoKinematics);
+    }
+    let plan = FoldPlan::new(&info, k)?;
     let mut decoders = Vec::new();
     let mut traces = Vec::new();
     let mut goodness = Vec::new();
     for spec in specs {
-        let cols = output_columns(session, spec.outputs())?;
-        let lag = spec.lag();
-        let models = fit_per_fold(session, spec, &plan)?;
-        if let Some(g) = goodness_of_fit(session, spec, &plan, &models)? {
+        let cols = output_columns(&info, spec.outputs())?;
+        let models = fit_per_fold(session, &info, spec, &plan, &mut on_fold)?;
+        if let Some(g) = goodness_of_fit(session, &info, spec, &plan, &models)? {
             goodness.push(g);
         }
-        let mut per_fold = Vec::with_capacity(k);
-        for (f, model) in models.iter().enumerate() {
-            let mut pipeline = DecodePipeline::from_decoder(model, session.bin_width, true)?;
-            let mut truth: Vec<Vec<f64>> = vec![Vec::new(); cols.len()];
-            let mut est: Vec<Vec<f64>> = vec![Vec::new(); cols.len()];
-            for seg in &plan.held_out[f] {
-                pipeline.reset();
-                for t in seg.start..seg.end.saturating_sub(lag) {
-                    let out = pipeline.step(t as u64, session.bin_counts(t));
-                    for (dim, &c) in cols.iter().enumerate() {
-                        truth[dim].push(kin.get(t + lag, c));
-                        est[dim].push(out.estimate[dim]);
-                    }
-                }
-            }
-            per_fold.push(
-                (0..cols.len())
-                    .map(|dim| scores(&truth[dim], &est[dim]))
-                    .collect::<Vec<_>>(),
-            );
-            if f == 0 {
-                for (dim, name) in spec.outputs().iter().enumerate() {
-                    let n = truth[dim].len().min(TRACE_BINS);
-                    traces.push(HeldOutTrace {
-                        decoder: spec.name().into(),
-                        output: name.clone(),
-                        truth: truth[dim][..n].to_vec(),
-                        estimate: est[dim][..n].to_vec(),
-                    });
-                }
-            }
-            on_fold(spec.name(), f);
+        let HeldOut {
+            sums,
+            traces: fold0,
+        } = decode_held_out(session, &info, &plan, &models, &cols, spec.lag())?;
+        let per_fold: Vec<Vec<Scores>> = sums
+            .iter()
+            .map(|dims| dims.iter().map(ScoreSums::scores).collect())
+            .collect();
+        for (name, (truth, estimate)) in spec.outputs().iter().zip(fold0) {
+            traces.push(HeldOutTrace {
+                decoder: spec.name().into(),
+                output: name.clone(),
+                truth,
+                estimate,
+            });
         }
         decoders.push(DecoderEvaluation {
             decoder: spec.name().into(),

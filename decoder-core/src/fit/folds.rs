@@ -12,7 +12,7 @@
 use std::ops::Range;
 
 use crate::fit::TrainError;
-use crate::formats::block::Block;
+use crate::formats::block_rows::BlockInfo;
 
 #[derive(Clone, Debug, PartialEq)]
 pub struct FoldPlan {
@@ -26,7 +26,7 @@ pub struct FoldPlan {
 
 impl FoldPlan {
     /// `k` folds: contiguous runs of trials, or contiguous blocks of bins.
-    pub fn new(session: &Block, k: usize) -> Result<FoldPlan, TrainError> {
+    pub fn new(session: &BlockInfo, k: usize) -> Result<FoldPlan, TrainError> {
         if k < 2 {
             return Err(TrainError::Option {
                 key: "folds",
@@ -122,7 +122,8 @@ pub fn split_evenly(len: usize, k: usize) -> Vec<Range<usize>> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::formats::block::Trial;
+    use crate::formats::block::{Block, Trial};
+    use crate::formats::block_rows::BlockRows;
 
     #[test]
     fn even_split_covers_everything_once() {
@@ -159,7 +160,7 @@ mod tests {
     #[test]
     fn trial_pieces_partition_the_block_and_hold_out_whole_trials() {
         let s = block_with_trials(&[(5, 10), (12, 20), (25, 30), (31, 40)], 45);
-        let plan = FoldPlan::new(&s, 2).unwrap();
+        let plan = FoldPlan::new(&s.info(), 2).unwrap();
         assert_eq!(
             plan.held_out,
             vec![vec![5..10, 12..20], vec![25..30, 31..40]]
@@ -174,7 +175,7 @@ mod tests {
     fn too_many_folds_for_the_trials_is_refused() {
         let s = block_with_trials(&[(0, 5)], 10);
         assert!(matches!(
-            FoldPlan::new(&s, 2),
+            FoldPlan::new(&s.info(), 2),
             Err(TrainError::Option { key: "folds", .. })
         ));
     }

@@ -64,117 +64,224 @@ pub enum GlmError {
     Singular,
 }
 
-fn poisson_deviance(y: &[f64], mu: &[f64]) -> f64 {
-    2.0 * y
-        .iter()
-        .zip(mu)
-        .map(|(&y, &m)| {
-            let term = if y > 0.0 { y * (y / m).ln() } else { 0.0 };
-            term - (y - m)
-        })
-        .sum::<f64>()
+/// The designs of many Poisson GLMs fitted side by side (one per channel),
+/// offered as passes over their rows so that no design is ever held whole:
+/// a pass visits every row once, in order, and gives each fit still
+/// running its row.
+pub trait GlmDesigns {
+    /// Number of fits.
+    fn fits(&self) -> usize;
+    /// Design columns of every fit, without the intercept.
+    fn columns(&self) -> usize;
+    /// One pass: `row(fit, x, y)` for every row, for each fit with
+    /// `active[fit]`.
+    fn pass(
+        &self,
+        active: &[bool],
+        row: &mut dyn FnMut(usize, &[f64], f64),
+    ) -> Result<(), crate::fit::TrainError>;
+}
+
+/// One in-memory design.
+struct OneDesign<'a> {
+    x: &'a Mat,
+    y: &'a [f64],
+}
+
+impl GlmDesigns for OneDesign<'_> {
+    fn fits(&self) -> usize {
+        1
+    }
+    fn columns(&self) -> usize {
+        self.x.cols
+    }
+    fn pass(
+        &self,
+        _active: &[bool],
+        row: &mut dyn FnMut(usize, &[f64], f64),
+    ) -> Result<(), crate::fit::TrainError> {
+        for (i, &y) in self.y.iter().enumerate() {
+            row(0, self.x.row(i), y);
+        }
+        Ok(())
+    }
 }
 
 /// Fits log E(y) = b0 + X·β by penalised IRLS. `x` is `n × p` without the
 /// intercept column.
 pub fn fit_poisson(x: &Mat, y: &[f64], options: &GlmFitOptions) -> Result<GlmFit, GlmError> {
-    let n = x.rows;
-    if y.len() != n {
+    if y.len() != x.rows {
         return Err(GlmError::Shape {
-            rows: n,
+            rows: x.rows,
             counts: y.len(),
         });
     }
-    let total: f64 = y.iter().sum();
-    if total <= 0.0 {
-        return Err(GlmError::NeverFires);
+    fit_poisson_many(&OneDesign { x, y }, options)
+        .expect("an in-memory design reads without error")
+        .pop()
+        .expect("one fit")
+}
+
+/// One fit's running state.
+struct Running {
+    beta: Vec<f64>,
+    /// Σ y over the rows, and the rows.
+    total: f64,
+    rows: f64,
+    null_deviance: f64,
+    /// Deviance of the current β (the half-sum, ×2 when read).
+    half_deviance: f64,
+    previous: Option<f64>,
+    clamped: usize,
+    iterations: usize,
+    xtwx: Vec<f64>,
+    xtwz: Vec<f64>,
+    done: Option<Result<GlmFit, GlmError>>,
+}
+
+/// Fits every design of `designs` by penalised IRLS, all in the same
+/// passes: pass k gives each running fit its deviance at βₖ and the
+/// weighted normal equations for βₖ₊₁, so a fit of i iterations costs
+/// i + 2 passes (one for the totals) and memory is p² per fit. Each fit
+/// follows [`fit_poisson`]'s rule exactly: it stops when the deviance
+/// changes by less than `tolerance` relative to itself, or after
+/// `max_iterations` solves.
+pub fn fit_poisson_many(
+    designs: &dyn GlmDesigns,
+    options: &GlmFitOptions,
+) -> Result<Vec<Result<GlmFit, GlmError>>, crate::fit::TrainError> {
+    let m = designs.fits();
+    let p = designs.columns() + 1;
+    let mut fits: Vec<Running> = (0..m)
+        .map(|_| Running {
+            beta: vec![0.0; p],
+            total: 0.0,
+            rows: 0.0,
+            null_deviance: 0.0,
+            half_deviance: 0.0,
+            previous: None,
+            clamped: 0,
+            iterations: 0,
+            xtwx: vec![0.0; p * p],
+            xtwz: vec![0.0; p],
+            done: None,
+        })
+        .collect();
+    let mut active = vec![true; m];
+    designs.pass(&active, &mut |f, _, y| {
+        fits[f].total += y;
+        fits[f].rows += 1.0;
+    })?;
+    for (f, fit) in fits.iter_mut().enumerate() {
+        if fit.total <= 0.0 {
+            fit.done = Some(Err(GlmError::NeverFires));
+            active[f] = false;
+        } else {
+            fit.beta[0] = (fit.total / fit.rows).ln();
+        }
     }
-    let p = x.cols + 1;
-    let mean = total / n as f64;
-    let null_deviance = poisson_deviance(y, &vec![mean; n]);
-    let mut beta = vec![0.0; p];
-    beta[0] = mean.ln();
-    let mut eta = vec![0.0; n];
-    let mut mu = vec![0.0; n];
-    let mut clamped = 0;
-    let predict = |beta: &[f64], eta: &mut [f64], mu: &mut [f64]| -> usize {
-        let mut clamped = 0;
-        for i in 0..n {
-            let mut e = beta[0];
-            for (b, v) in beta[1..].iter().zip(x.row(i)) {
+    let mut row = vec![0.0; p];
+    let mut first = true;
+    while active.iter().any(|a| *a) {
+        for fit in fits.iter_mut() {
+            fit.half_deviance = 0.0;
+            fit.clamped = 0;
+            fit.xtwx.fill(0.0);
+            fit.xtwz.fill(0.0);
+        }
+        designs.pass(&active, &mut |f, x, y| {
+            let fit = &mut fits[f];
+            if first {
+                // The intercept-only model: the mean count.
+                let mean = fit.total / fit.rows;
+                let term = if y > 0.0 { y * (y / mean).ln() } else { 0.0 };
+                fit.null_deviance += term - (y - mean);
+            }
+            let mut e = fit.beta[0];
+            for (b, v) in fit.beta[1..].iter().zip(x) {
                 e += b * v;
             }
             if e.abs() > ETA_LIMIT {
-                clamped += 1;
+                fit.clamped += 1;
                 e = e.clamp(-ETA_LIMIT, ETA_LIMIT);
             }
-            eta[i] = e;
-            mu[i] = e.exp();
-        }
-        clamped
-    };
-    predict(&beta, &mut eta, &mut mu);
-    let mut deviance = poisson_deviance(y, &mu);
-    let mut converged = false;
-    let mut iterations = 0;
-    let mut xtwx = vec![0.0; p * p];
-    let mut xtwz = vec![0.0; p];
-    let mut row = vec![0.0; p];
-    for iter in 1..=options.max_iterations {
-        iterations = iter;
-        xtwx.fill(0.0);
-        xtwz.fill(0.0);
-        for i in 0..n {
+            let mu = e.exp();
+            let term = if y > 0.0 { y * (y / mu).ln() } else { 0.0 };
+            fit.half_deviance += term - (y - mu);
             // Working weight μ and working response z = η + (y − μ)/μ.
-            let w = mu[i];
-            let z = eta[i] + (y[i] - mu[i]) / mu[i];
+            let z = e + (y - mu) / mu;
             row[0] = 1.0;
-            row[1..].copy_from_slice(x.row(i));
+            row[1..].copy_from_slice(x);
             for a in 0..p {
-                let wa = w * row[a];
-                xtwz[a] += wa * z;
-                let out = &mut xtwx[a * p..a * p + a + 1];
+                let wa = mu * row[a];
+                fit.xtwz[a] += wa * z;
+                let out = &mut fit.xtwx[a * p..a * p + a + 1];
                 for (o, rb) in out.iter_mut().zip(&row[..=a]) {
                     *o += wa * rb;
                 }
             }
-        }
-        let mut m = DMatrix::<f64>::zeros(p, p);
-        for a in 0..p {
-            for b in 0..=a {
-                m[(a, b)] = xtwx[a * p + b];
-                m[(b, a)] = xtwx[a * p + b];
+        })?;
+        first = false;
+        for (f, fit) in fits.iter_mut().enumerate() {
+            if !active[f] {
+                continue;
             }
-            if a > 0 {
-                m[(a, a)] += options.ridge;
+            let deviance = 2.0 * fit.half_deviance;
+            let converged = fit.previous.is_some_and(|prev| {
+                (deviance - prev).abs() / (deviance.abs() + 0.1) < options.tolerance
+            });
+            if converged || fit.iterations >= options.max_iterations {
+                fit.done = Some(Ok(GlmFit {
+                    coefficients: fit.beta.clone(),
+                    deviance,
+                    null_deviance: 2.0 * fit.null_deviance,
+                    iterations: fit.iterations,
+                    converged,
+                    clamped: fit.clamped,
+                }));
+                active[f] = false;
+                continue;
             }
-        }
-        let rhs = DVector::from_column_slice(&xtwz);
-        let solved = match m.clone().cholesky() {
-            Some(c) => c.solve(&rhs),
-            None => m.lu().solve(&rhs).ok_or(GlmError::Singular)?,
-        };
-        if !solved.iter().all(|v| v.is_finite()) {
-            return Err(GlmError::Singular);
-        }
-        beta.copy_from_slice(solved.as_slice());
-        clamped = predict(&beta, &mut eta, &mut mu);
-        let new_deviance = poisson_deviance(y, &mu);
-        let change = (new_deviance - deviance).abs() / (new_deviance.abs() + 0.1);
-        deviance = new_deviance;
-        if change < options.tolerance {
-            converged = true;
-            break;
+            match solve_normal_equations(&fit.xtwx, &fit.xtwz, p, options.ridge) {
+                Some(beta) => fit.beta = beta,
+                None => {
+                    fit.done = Some(Err(GlmError::Singular));
+                    active[f] = false;
+                    continue;
+                }
+            }
+            fit.iterations += 1;
+            fit.previous = Some(deviance);
         }
     }
-    Ok(GlmFit {
-        coefficients: beta,
-        deviance,
-        null_deviance,
-        iterations,
-        converged,
-        clamped,
-    })
+    Ok(fits
+        .into_iter()
+        .map(|f| f.done.expect("every fit ends"))
+        .collect())
+}
+
+/// Solves (XᵀWX + λR) β = XᵀWz from the lower triangle of XᵀWX, R the
+/// identity but for the intercept; `None` when singular or not finite.
+fn solve_normal_equations(xtwx: &[f64], xtwz: &[f64], p: usize, ridge: f64) -> Option<Vec<f64>> {
+    let mut m = DMatrix::<f64>::zeros(p, p);
+    for a in 0..p {
+        for b in 0..=a {
+            m[(a, b)] = xtwx[a * p + b];
+            m[(b, a)] = xtwx[a * p + b];
+        }
+        if a > 0 {
+            m[(a, a)] += ridge;
+        }
+    }
+    let rhs = DVector::from_column_slice(xtwz);
+    let solved = match m.clone().cholesky() {
+        Some(c) => c.solve(&rhs),
+        None => m.lu().solve(&rhs)?,
+    };
+    solved
+        .iter()
+        .all(|v| v.is_finite())
+        .then(|| solved.as_slice().to_vec())
 }
 
 #[cfg(test)]

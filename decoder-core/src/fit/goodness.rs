@@ -21,45 +21,69 @@
 
 use serde::Serialize;
 
-/// The rescaled, uniformised inter-spike intervals of one channel: u_k =
+/// The time-rescaling walk of one channel, a bin at a time: emits u_k =
 /// 1 − exp(−z_k), with z_k the integrated intensity between spikes k − 1
 /// and k, uniform when the model is right. `uniform` supplies each spike's
 /// position in its bin, in (0, 1); the interval before the first spike is
 /// not counted.
+#[derive(Clone, Debug, Default)]
+pub struct IntervalRescaler {
+    /// Integrated intensity since the last spike, up to the current bin's
+    /// start; and the last spike's position within its bin, as intensity.
+    since_last: f64,
+    last: Option<f64>,
+    positions: Vec<f64>,
+}
+
+impl IntervalRescaler {
+    pub fn add(
+        &mut self,
+        lambda: f64,
+        m: u16,
+        mut uniform: impl FnMut() -> f64,
+        mut emit: impl FnMut(f64),
+    ) {
+        if m == 0 {
+            self.since_last += lambda;
+            return;
+        }
+        self.positions.clear();
+        self.positions.extend((0..m).map(|_| uniform()));
+        self.positions.sort_by(f64::total_cmp);
+        for &s in &self.positions {
+            if let Some(prev) = self.last {
+                // From the last spike: the bins since its bin's start, this
+                // bin up to s, less the part of its bin before it.
+                let z = self.since_last + lambda * s - prev;
+                emit(1.0 - (-z).exp());
+            }
+            // Measure the next interval from this spike: λ·s is the part of
+            // this bin before it.
+            self.last = Some(lambda * s);
+            self.since_last = 0.0;
+        }
+        self.since_last += lambda;
+    }
+}
+
+/// The rescaled, uniformised inter-spike intervals of one channel (see
+/// [`IntervalRescaler`]).
 pub fn rescaled_intervals(
     expected: &[f64],
     counts: &[u16],
     mut uniform: impl FnMut() -> f64,
 ) -> Vec<f64> {
     let mut out = Vec::new();
-    let mut positions: Vec<f64> = Vec::new();
-    // Integrated intensity since the last spike, up to the current bin's
-    // start; and the last spike's position within its bin.
-    let mut since_last = 0.0;
-    let mut last: Option<f64> = None;
+    let mut walk = IntervalRescaler::default();
     for (&lambda, &m) in expected.iter().zip(counts) {
-        if m == 0 {
-            since_last += lambda;
-            continue;
-        }
-        positions.clear();
-        positions.extend((0..m).map(|_| uniform()));
-        positions.sort_by(f64::total_cmp);
-        for &s in &positions {
-            if let Some(prev) = last {
-                // From the last spike: the bins since its bin's start, this
-                // bin up to s, less the part of its bin before it.
-                let z = since_last + lambda * s - prev;
-                out.push(1.0 - (-z).exp());
-            }
-            // Measure the next interval from this spike: λ·s is the part of
-            // this bin before it.
-            last = Some(lambda * s);
-            since_last = 0.0;
-        }
-        since_last += lambda;
+        walk.add(lambda, m, &mut uniform, |u| out.push(u));
     }
     out
+}
+
+/// The seed of channel `c`'s spike positions.
+fn position_seed(channel: usize) -> u64 {
+    0x6F17 ^ channel as u64
 }
 
 /// [`rescaled_intervals`] with positions from a ChaCha8 stream of `seed`.
@@ -94,8 +118,12 @@ pub fn poisson_log_likelihood(expected: &[f64], counts: &[u16]) -> f64 {
     expected
         .iter()
         .zip(counts)
-        .map(|(&l, &n)| f64::from(n) * l.max(f64::MIN_POSITIVE).ln() - l)
+        .map(|(&l, &n)| log_likelihood_term(l, n))
         .sum()
+}
+
+fn log_likelihood_term(expected: f64, count: u16) -> f64 {
+    f64::from(count) * expected.max(f64::MIN_POSITIVE).ln() - expected
 }
 
 #[derive(Clone, Debug, PartialEq, Serialize)]
@@ -106,31 +134,133 @@ pub struct ChannelFit {
     /// their bin for the rescaling).
     pub multi_spike_bins: u64,
     pub ks: f64,
+    /// The KS statistic is read from a histogram of the rescaled
+    /// intervals ([`KS_BINS`] bins): the exact statistic lies in
+    /// [ks, ks + ks_resolution].
+    pub ks_resolution: f64,
     pub band: f64,
     pub within_band: bool,
     /// (log L(model) − log L(homogeneous Poisson)) / spikes, in bits.
     pub bits_per_spike: f64,
 }
 
+/// Bins of the histogram the KS statistic is read from. With n intervals
+/// the statistic is within max(1/KS_BINS, the fullest bin's share) of the
+/// exact one, a few hundredths of the 95 % band for well-fitted channels
+/// of up to a million intervals, in 16 KB a channel whatever the length.
+pub const KS_BINS: usize = 4096;
+
+/// One channel's goodness of fit gathered a held-out bin at a time, so
+/// scoring a long block keeps no per-bin or per-spike list: the
+/// log-likelihood sums, and the rescaled intervals as a histogram.
+#[derive(Clone, Debug)]
+pub struct ChannelFitSums {
+    channel: usize,
+    rng: rand_chacha::ChaCha8Rng,
+    walk: IntervalRescaler,
+    bins: u64,
+    spikes: u64,
+    multi_spike_bins: u64,
+    log_likelihood: f64,
+    histogram: Vec<u32>,
+    intervals: u64,
+}
+
+impl ChannelFitSums {
+    pub fn new(channel: usize) -> ChannelFitSums {
+        use rand::SeedableRng;
+        ChannelFitSums {
+            channel,
+            rng: rand_chacha::ChaCha8Rng::seed_from_u64(position_seed(channel)),
+            walk: IntervalRescaler::default(),
+            bins: 0,
+            spikes: 0,
+            multi_spike_bins: 0,
+            log_likelihood: 0.0,
+            histogram: vec![0; KS_BINS],
+            intervals: 0,
+        }
+    }
+
+    /// Adds one held-out bin: the model's expected count and the count.
+    pub fn add(&mut self, expected: f64, count: u16) {
+        use rand::RngExt;
+        self.bins += 1;
+        self.spikes += u64::from(count);
+        self.multi_spike_bins += u64::from(count > 1);
+        self.log_likelihood += log_likelihood_term(expected, count);
+        let (rng, histogram, intervals) = (&mut self.rng, &mut self.histogram, &mut self.intervals);
+        self.walk.add(
+            expected,
+            count,
+            || rng.random::<f64>(),
+            |u| {
+                let at = (u.clamp(0.0, 1.0) * KS_BINS as f64) as usize;
+                histogram[at.min(KS_BINS - 1)] += 1;
+                *intervals += 1;
+            },
+        );
+    }
+
+    /// The KS statistic at the histogram's edges and how far the exact one
+    /// can lie above it.
+    fn ks(&self) -> (f64, f64) {
+        let n = self.intervals as f64;
+        let (mut below, mut ks, mut fullest) = (0u64, 0.0f64, 0u32);
+        for (j, &c) in self.histogram.iter().enumerate() {
+            ks = ks.max((below as f64 / n - j as f64 / KS_BINS as f64).abs());
+            below += u64::from(c);
+            fullest = fullest.max(c);
+        }
+        (ks, (f64::from(fullest) / n).max(1.0 / KS_BINS as f64))
+    }
+
+    /// The KS curve: (uniform quantile, rescaled interval) at the
+    /// histogram's edges.
+    pub fn ks_curve(&self) -> Vec<(f64, f64)> {
+        let n = self.intervals.max(1) as f64;
+        let mut below = 0u64;
+        let mut out = Vec::with_capacity(KS_BINS + 1);
+        for (j, &c) in self.histogram.iter().enumerate() {
+            out.push((below as f64 / n, j as f64 / KS_BINS as f64));
+            below += u64::from(c);
+        }
+        out.push((below as f64 / n, 1.0));
+        out
+    }
+
+    pub fn finish(&self) -> ChannelFit {
+        let mean = self.spikes as f64 / self.bins.max(1) as f64;
+        // log L of a homogeneous Poisson model at the mean count.
+        let homogeneous =
+            self.spikes as f64 * mean.max(f64::MIN_POSITIVE).ln() - self.bins as f64 * mean;
+        let gain = self.log_likelihood - homogeneous;
+        let (ks, ks_resolution) = if self.intervals == 0 {
+            (1.0, 0.0)
+        } else {
+            self.ks()
+        };
+        let band = ks_band_95(self.intervals as usize);
+        ChannelFit {
+            channel: self.channel,
+            spikes: self.spikes,
+            multi_spike_bins: self.multi_spike_bins,
+            ks,
+            ks_resolution,
+            band,
+            within_band: self.intervals > 0 && ks <= band,
+            bits_per_spike: gain / std::f64::consts::LN_2 / (self.spikes.max(1) as f64),
+        }
+    }
+}
+
 /// The fit of one channel given its expected counts on held-out bins.
 pub fn channel_fit(channel: usize, expected: &[f64], counts: &[u16]) -> ChannelFit {
-    let u = rescaled_intervals_seeded(expected, counts, 0x6F17 ^ channel as u64);
-    let spikes: u64 = counts.iter().map(|&c| u64::from(c)).sum();
-    let mean = spikes as f64 / counts.len().max(1) as f64;
-    let homogeneous = vec![mean; counts.len()];
-    let gain =
-        poisson_log_likelihood(expected, counts) - poisson_log_likelihood(&homogeneous, counts);
-    let ks = if u.is_empty() { 1.0 } else { ks_uniform(&u) };
-    let band = ks_band_95(u.len());
-    ChannelFit {
-        channel,
-        spikes,
-        multi_spike_bins: counts.iter().filter(|&&c| c > 1).count() as u64,
-        ks,
-        band,
-        within_band: !u.is_empty() && ks <= band,
-        bits_per_spike: gain / std::f64::consts::LN_2 / (spikes.max(1) as f64),
+    let mut sums = ChannelFitSums::new(channel);
+    for (&l, &c) in expected.iter().zip(counts) {
+        sums.add(l, c);
     }
+    sums.finish()
 }
 
 #[cfg(test)]
@@ -141,6 +271,39 @@ mod tests {
     fn ks_of_evenly_spread_values_is_half_a_step() {
         let u: Vec<f64> = (0..10).map(|i| (i as f64 + 0.5) / 10.0).collect();
         assert!((ks_uniform(&u) - 0.05).abs() < 1e-12);
+    }
+
+    /// The histogram's KS statistic brackets the exact one (the sorted
+    /// intervals' supremum, Brown et al. 2002) within its stated
+    /// resolution, for a right and a wrong model.
+    #[test]
+    fn the_histogram_statistic_brackets_the_exact_one() {
+        use rand::SeedableRng;
+        use rand_distr::{Distribution, Poisson};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let lambda: Vec<f64> = (0..200_000)
+            .map(|t| 0.3 + 0.25 * (t as f64 / 300.0).sin())
+            .collect();
+        let counts: Vec<u16> = lambda
+            .iter()
+            .map(|&l| Poisson::new(l).unwrap().sample(&mut rng) as u16)
+            .collect();
+        for (right, model) in [(true, lambda.clone()), (false, vec![0.3; lambda.len()])] {
+            let exact = ks_uniform(&rescaled_intervals_seeded(
+                &model,
+                &counts,
+                position_seed(0),
+            ));
+            let fit = channel_fit(0, &model, &counts);
+            assert!(
+                fit.ks <= exact && exact <= fit.ks + fit.ks_resolution,
+                "{fit:?} exact {exact}"
+            );
+            assert_eq!(fit.within_band, right, "{fit:?}");
+            if right {
+                assert!(fit.ks_resolution < 0.1 * fit.band, "{fit:?}");
+            }
+        }
     }
 
     #[test]

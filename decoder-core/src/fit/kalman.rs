@@ -5,8 +5,10 @@
 //! model by least squares of counts on the state (H = YXᵀ(XXᵀ + λR)⁻¹, Q the
 //! covariance of its residuals), where R is the identity with a zero at the
 //! constant component, so the baseline rates are not shrunk. All of it is
-//! computed from [`KalmanStats`], sums that add over segments, so
-//! cross-validation folds cost one pass over the block.
+//! computed from [`KalmanStats`], sums that add over segments, gathered in
+//! one pass over the block's rows (a session directory is read a chunk at
+//! a time), so cross-validation folds cost one pass and a block of any
+//! length the same memory.
 
 use std::ops::Range;
 
@@ -17,7 +19,8 @@ use crate::decoders::kalman::model::{KalmanModel, ObservationNoise};
 use crate::decoders::kalman::steady::steady_state_gain;
 use crate::fit::TrainError;
 use crate::fit::least_squares::{CountGram, CrossSums, nonzero_counts};
-use crate::formats::block::Block;
+use crate::fit::rows::{RowWindow, SegmentWalk, each_row};
+use crate::formats::block_rows::{BlockInfo, BlockRows};
 use crate::linalg::{self, Mat};
 
 /// The name of the constant state component.
@@ -97,33 +100,46 @@ pub enum StateSource {
 }
 
 /// Resolves state names against the block's kinematics columns.
-pub fn state_sources(session: &Block, state: &[String]) -> Result<Vec<StateSource>, TrainError> {
+pub fn state_sources(
+    kinematic_names: &[String],
+    state: &[String],
+) -> Result<Vec<StateSource>, TrainError> {
     state
         .iter()
         .map(|name| {
             if name == CONSTANT {
                 Ok(StateSource::Constant)
             } else {
-                session
-                    .kinematic_index(name)
+                kinematic_names
+                    .iter()
+                    .position(|k| k == name)
                     .map(StateSource::Column)
                     .ok_or_else(|| TrainError::UnknownKinematic {
                         name: name.clone(),
-                        available: session.kinematic_names.clone(),
+                        available: kinematic_names.to_vec(),
                     })
             }
         })
         .collect()
 }
 
-pub fn fill_state(session: &Block, sources: &[StateSource], bin: usize, out: &mut [f64]) {
-    let kin = session.kinematics.as_ref().expect("checked by caller");
+/// The state of one bin from its row of kinematics.
+pub fn fill_state(kinematics: &[f64], sources: &[StateSource], out: &mut [f64]) {
     for (o, s) in out.iter_mut().zip(sources) {
         *o = match s {
-            StateSource::Column(c) => kin.get(bin, *c),
+            StateSource::Column(c) => kinematics[*c],
             StateSource::Constant => 1.0,
         };
     }
+}
+
+/// Scratch space for adding rows to [`KalmanStats`] (and
+/// [`crate::fit::wiener::WienerStats`]).
+#[derive(Clone, Debug, Default)]
+pub struct StateScratch {
+    pub(crate) x: Vec<f64>,
+    pub(crate) x_prev: Vec<f64>,
+    pub(crate) nz: Vec<(usize, u16)>,
 }
 
 /// Sums over the training bins of one or more segments.
@@ -164,38 +180,75 @@ impl KalmanStats {
         }
     }
 
-    /// Adds the bins of `segment`: observation pairs (counts t, state t+lag)
-    /// and state transitions (t, t+1) that both lie inside it.
-    pub fn accumulate(
+    /// Adds the window's newest row, `since_start` rows into its segment:
+    /// the observation pair (counts `lag` rows back, state now) and the
+    /// transition (state one row back, state now) when both rows lie inside
+    /// the segment. Over a segment's rows in order this adds exactly the
+    /// pairs of the segment, in order of time.
+    pub fn add_newest(
         &mut self,
-        session: &Block,
+        window: &RowWindow,
         sources: &[StateSource],
         lag: usize,
-        segment: Range<usize>,
+        since_start: usize,
+        scratch: &mut StateScratch,
     ) {
-        let d = self.d;
-        let mut x = vec![0.0; d];
-        let mut x_next = vec![0.0; d];
-        let mut nz = Vec::with_capacity(self.n);
-        for t in segment.start..segment.end.saturating_sub(lag) {
-            fill_state(session, sources, t + lag, &mut x);
+        let StateScratch { x, x_prev, nz } = scratch;
+        x.resize(self.d, 0.0);
+        x_prev.resize(self.d, 0.0);
+        fill_state(window.kinematics(0), sources, x);
+        if since_start >= lag {
             nz.clear();
-            nonzero_counts(session.bin_counts(t), 0, &mut nz);
-            self.gram.add_sparse(&nz);
-            self.syx.add_sparse_outer(&nz, &x);
-            self.sxx.add_outer(&x, &x);
-            for (s, v) in self.sx.iter_mut().zip(&x) {
+            nonzero_counts(window.counts(lag), 0, nz);
+            self.gram.add_sparse(nz);
+            self.syx.add_sparse_outer(nz, x);
+            self.sxx.add_outer(x, x);
+            for (s, v) in self.sx.iter_mut().zip(x.iter()) {
                 *s += v;
             }
         }
-        for t in segment.start..segment.end.saturating_sub(1) {
-            fill_state(session, sources, t, &mut x);
-            fill_state(session, sources, t + 1, &mut x_next);
-            self.s11.add_outer(&x, &x);
-            self.s21.add_outer(&x_next, &x);
-            self.s22.add_outer(&x_next, &x_next);
+        if since_start >= 1 {
+            fill_state(window.kinematics(1), sources, x_prev);
+            self.s11.add_outer(x_prev, x_prev);
+            self.s21.add_outer(x, x_prev);
+            self.s22.add_outer(x, x);
             self.n_transitions += 1;
         }
+    }
+
+    /// One pass over `source`: the sums of each group of segments
+    /// (`groups[g]`, disjoint across groups), in one [`KalmanStats`] per
+    /// group.
+    pub fn gather(
+        source: &dyn BlockRows,
+        sources: &[StateSource],
+        lag: usize,
+        q_form: QForm,
+        groups: &[Vec<Range<usize>>],
+    ) -> Result<Vec<KalmanStats>, TrainError> {
+        let info = source.info();
+        let (n, k) = (info.n_channels, info.kinematic_names.len());
+        let mut stats: Vec<KalmanStats> = groups
+            .iter()
+            .map(|_| KalmanStats::new(sources.len(), n, q_form))
+            .collect();
+        let mut walk = SegmentWalk::new(
+            groups
+                .iter()
+                .enumerate()
+                .flat_map(|(g, segs)| segs.iter().map(move |s| (s.clone(), g)))
+                .collect(),
+        );
+        let mut window = RowWindow::new(n, k, lag.max(1) + 1);
+        let mut scratch = StateScratch::default();
+        each_row(source, k, |t, counts, kin| {
+            let Some((seg, g)) = walk.at(t) else {
+                return;
+            };
+            window.push(counts, kin);
+            stats[g].add_newest(&window, sources, lag, t - seg.start, &mut scratch);
+        })?;
+        Ok(stats)
     }
 
     pub fn add_assign(&mut self, o: &KalmanStats) {
@@ -235,13 +288,13 @@ impl KalmanStats {
 
 /// Checks the options against the block before any pass over it.
 pub fn check_options(
-    session: &Block,
+    info: &BlockInfo,
     options: &KalmanFitOptions,
 ) -> Result<Vec<StateSource>, TrainError> {
-    if session.kinematics.is_none() {
+    if !info.has_kinematics {
         return Err(TrainError::NoKinematics);
     }
-    let sources = state_sources(session, &options.state)?;
+    let sources = state_sources(&info.kinematic_names, &options.state)?;
     for out in &options.outputs {
         if !options.state.contains(out) {
             return Err(TrainError::Option {
@@ -253,25 +306,34 @@ pub fn check_options(
     Ok(sources)
 }
 
-/// Fits on the whole block.
+/// Fits on the whole block (its valid rows).
 pub fn fit_kalman(
-    session: &Block,
+    session: &dyn BlockRows,
     options: &KalmanFitOptions,
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
-    fit_kalman_segments(session, options, std::slice::from_ref(&(0..session.n_bins)))
+    let n_bins = session.info().n_bins;
+    fit_kalman_segments(session, options, std::slice::from_ref(&(0..n_bins)))
 }
 
+/// Fits on `segments` of the block, no pair of bins crossing from one
+/// segment to the next.
 pub fn fit_kalman_segments(
-    session: &Block,
+    session: &dyn BlockRows,
     options: &KalmanFitOptions,
     segments: &[Range<usize>],
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
-    let sources = check_options(session, options)?;
-    let mut stats = KalmanStats::new(sources.len(), session.n_channels, options.q_form);
-    for seg in segments {
-        stats.accumulate(session, &sources, options.lag_bins, seg.clone());
-    }
-    fit_from_stats(&stats, options, session.bin_width)
+    let info = session.info();
+    let sources = check_options(&info, options)?;
+    let stats = KalmanStats::gather(
+        session,
+        &sources,
+        options.lag_bins,
+        options.q_form,
+        &[segments.to_vec()],
+    )?
+    .pop()
+    .expect("one group");
+    fit_from_stats(&stats, options, info.bin_width)
 }
 
 fn solve_spd(

@@ -11,64 +11,94 @@ pub struct Scores {
     pub rmse: f64,
 }
 
+/// The sums behind [`Scores`], added one (truth, estimate) pair at a time
+/// (Welford's running means and co-moments, which stay accurate over
+/// millions of bins), so a block is scored without keeping its estimates.
+#[derive(Clone, Copy, Debug, Default, PartialEq)]
+pub struct ScoreSums {
+    n: f64,
+    mean_t: f64,
+    mean_e: f64,
+    /// Σ (t − t̄)², Σ (e − ē)², Σ (t − t̄)(e − ē).
+    ss_t: f64,
+    ss_e: f64,
+    ss_te: f64,
+    /// Σ (t − e)².
+    ss_res: f64,
+}
+
+impl ScoreSums {
+    pub fn add(&mut self, truth: f64, estimate: f64) {
+        self.n += 1.0;
+        let dt = truth - self.mean_t;
+        self.mean_t += dt / self.n;
+        let de = estimate - self.mean_e;
+        self.mean_e += de / self.n;
+        self.ss_t += dt * (truth - self.mean_t);
+        self.ss_e += de * (estimate - self.mean_e);
+        self.ss_te += dt * (estimate - self.mean_e);
+        self.ss_res += (truth - estimate) * (truth - estimate);
+    }
+
+    pub fn of(truth: &[f64], estimate: &[f64]) -> ScoreSums {
+        let mut s = ScoreSums::default();
+        for (&t, &e) in truth.iter().zip(estimate) {
+            s.add(t, e);
+        }
+        s
+    }
+
+    pub fn pairs(&self) -> u64 {
+        self.n as u64
+    }
+
+    /// Pearson correlation; NaN when either series is constant.
+    pub fn cc(&self) -> f64 {
+        if self.n < 2.0 || self.ss_t == 0.0 || self.ss_e == 0.0 {
+            return f64::NAN;
+        }
+        self.ss_te / (self.ss_t.sqrt() * self.ss_e.sqrt())
+    }
+
+    /// 1 − SS_res / SS_tot; NaN when the truth is constant.
+    pub fn r2(&self) -> f64 {
+        if self.n == 0.0 || self.ss_t == 0.0 {
+            return f64::NAN;
+        }
+        1.0 - self.ss_res / self.ss_t
+    }
+
+    pub fn rmse(&self) -> f64 {
+        if self.n == 0.0 {
+            return f64::NAN;
+        }
+        (self.ss_res / self.n).sqrt()
+    }
+
+    pub fn scores(&self) -> Scores {
+        Scores {
+            cc: self.cc(),
+            r2: self.r2(),
+            rmse: self.rmse(),
+        }
+    }
+}
+
 /// Pearson correlation; NaN when either series is constant.
 pub fn pearson(truth: &[f64], estimate: &[f64]) -> f64 {
-    let n = truth.len().min(estimate.len());
-    if n < 2 {
-        return f64::NAN;
-    }
-    let mt = truth[..n].iter().sum::<f64>() / n as f64;
-    let me = estimate[..n].iter().sum::<f64>() / n as f64;
-    let (mut stt, mut see, mut ste) = (0.0, 0.0, 0.0);
-    for (t, e) in truth.iter().zip(estimate) {
-        let (dt, de) = (t - mt, e - me);
-        stt += dt * dt;
-        see += de * de;
-        ste += dt * de;
-    }
-    if stt == 0.0 || see == 0.0 {
-        return f64::NAN;
-    }
-    ste / (stt.sqrt() * see.sqrt())
+    ScoreSums::of(truth, estimate).cc()
 }
 
 pub fn r_squared(truth: &[f64], estimate: &[f64]) -> f64 {
-    let n = truth.len().min(estimate.len());
-    if n == 0 {
-        return f64::NAN;
-    }
-    let mt = truth[..n].iter().sum::<f64>() / n as f64;
-    let (mut ss_res, mut ss_tot) = (0.0, 0.0);
-    for (t, e) in truth.iter().zip(estimate) {
-        ss_res += (t - e) * (t - e);
-        ss_tot += (t - mt) * (t - mt);
-    }
-    if ss_tot == 0.0 {
-        return f64::NAN;
-    }
-    1.0 - ss_res / ss_tot
+    ScoreSums::of(truth, estimate).r2()
 }
 
 pub fn rmse(truth: &[f64], estimate: &[f64]) -> f64 {
-    let n = truth.len().min(estimate.len());
-    if n == 0 {
-        return f64::NAN;
-    }
-    (truth
-        .iter()
-        .zip(estimate)
-        .map(|(t, e)| (t - e) * (t - e))
-        .sum::<f64>()
-        / n as f64)
-        .sqrt()
+    ScoreSums::of(truth, estimate).rmse()
 }
 
 pub fn scores(truth: &[f64], estimate: &[f64]) -> Scores {
-    Scores {
-        cc: pearson(truth, estimate),
-        r2: r_squared(truth, estimate),
-        rmse: rmse(truth, estimate),
-    }
+    ScoreSums::of(truth, estimate).scores()
 }
 
 /// Mean of scores, dimension by dimension.

@@ -19,6 +19,7 @@ pub mod kalman;
 pub mod least_squares;
 pub mod metrics;
 pub mod point_process;
+pub mod rows;
 pub mod wiener;
 
 use crate::decoders::kalman::KalmanError;
@@ -48,4 +49,6 @@ pub enum TrainError {
     Kalman(#[from] KalmanError),
     #[error(transparent)]
     Pipeline(#[from] PipelineError),
+    #[error(transparent)]
+    Block(#[from] crate::formats::block::BlockError),
 }

@@ -4,11 +4,14 @@
 //! optional coupling to the other channels' previous bin; and the state
 //! dynamics A, W by least squares on the kinematics.
 //!
-//! Channels are independent given the design, so [`fit_channel`] fits one
-//! and callers may run channels in parallel (this crate spawns no threads;
-//! `replay-tool train` does). A channel that never fires, or whose fit does
-//! not converge or is singular, is left out of the model and listed with
-//! the reason — never silently kept.
+//! The designs are never held: [`ChannelDesigns`] builds each row as a
+//! pass over the block reads it, and every channel's IRLS runs in the same
+//! passes, so memory is a few rows and p² per channel whatever the block's
+//! length. Channels are independent given the design, so callers may fit
+//! groups of channels in parallel with [`fit_channels`] (this crate spawns
+//! no threads; `replay-tool train` does). A channel that never fires, or
+//! whose fit does not converge or is singular, is left out of the model and
+//! listed with the reason — never silently kept.
 
 use nalgebra::DMatrix;
 use serde::{Deserialize, Serialize};
@@ -16,9 +19,10 @@ use serde::{Deserialize, Serialize};
 use crate::decoders::history_basis::RaisedCosineBasis;
 use crate::decoders::point_process::{ChannelGlm, PointProcessModel};
 use crate::fit::TrainError;
-use crate::fit::glm::{GlmError, GlmFitOptions, fit_poisson};
+use crate::fit::glm::{GlmDesigns, GlmError, GlmFitOptions, fit_poisson_many};
 use crate::fit::kalman::{StateSource, fill_state, state_sources};
-use crate::formats::block::Block;
+use crate::fit::rows::{RowWindow, each_row};
+use crate::formats::block_rows::BlockRows;
 use crate::linalg::Mat;
 
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -77,78 +81,137 @@ pub struct PointProcessFitReport {
     pub deviance_explained: Vec<(usize, f64)>,
 }
 
-/// The design of one channel: state covariates, history, coupling; and
-/// its counts as f64.
-pub fn channel_design(
-    session: &Block,
-    sources: &[StateSource],
-    basis: Option<&RaisedCosineBasis>,
+/// The designs of a set of channels over a block, built a row at a time
+/// as a pass reads it: the state covariates from the row's kinematics, the
+/// history columns from the channel's last `span_bins` counts through the
+/// basis, the coupling columns from the other channels' previous bin.
+pub struct ChannelDesigns<'a> {
+    source: &'a dyn BlockRows,
+    sources: Vec<StateSource>,
+    /// Per lag (0 = the previous bin), the basis functions with a non-zero
+    /// weight there and the weight.
+    taps: Vec<Vec<(usize, f64)>>,
+    n_basis: usize,
     coupling: bool,
-    channel: usize,
-) -> (Mat, Vec<f64>) {
-    let n = session.n_channels;
-    let d = sources.len();
-    let nb = basis.map_or(0, |b| b.n_basis);
-    let nc = if coupling { n - 1 } else { 0 };
-    let p = d + nb + nc;
-    let y: Vec<f64> = (0..session.n_bins)
-        .map(|t| f64::from(session.bin_counts(t)[channel]))
-        .collect();
-    let mut x = Mat::zeros(session.n_bins, p);
-    let mut row = vec![0.0; p];
-    for t in 0..session.n_bins {
-        fill_state(session, sources, t, &mut row[..d]);
-        x.data[t * p..t * p + d].copy_from_slice(&row[..d]);
-        if coupling && t > 0 {
-            let mut k = d + nb;
-            let prev = session.bin_counts(t - 1);
-            for (other, &v) in prev.iter().enumerate() {
-                if other == channel {
+    channels: Vec<usize>,
+}
+
+impl<'a> ChannelDesigns<'a> {
+    pub fn new(
+        source: &'a dyn BlockRows,
+        options: &PointProcessFitOptions,
+        channels: Vec<usize>,
+    ) -> Result<ChannelDesigns<'a>, TrainError> {
+        let info = source.info();
+        if !info.has_kinematics {
+            return Err(TrainError::NoKinematics);
+        }
+        let sources = state_sources(&info.kinematic_names, &options.state)?;
+        let basis = options.basis();
+        let taps = basis.as_ref().map_or(Vec::new(), |b| {
+            (0..b.span_bins)
+                .map(|lag0| {
+                    (0..b.n_basis)
+                        .filter_map(|j| {
+                            let w = b.weights.get(j, lag0);
+                            (w != 0.0).then_some((j, w))
+                        })
+                        .collect()
+                })
+                .collect()
+        });
+        Ok(ChannelDesigns {
+            source,
+            sources,
+            taps,
+            n_basis: basis.map_or(0, |b| b.n_basis),
+            coupling: options.coupling,
+            channels,
+        })
+    }
+
+    /// One pass over the block: `row(i, x, y)` with the design row and the
+    /// count of `channels[i]`, for each i with `active[i]`.
+    pub fn each_row(
+        &self,
+        active: &[bool],
+        row: &mut dyn FnMut(usize, &[f64], f64),
+    ) -> Result<(), TrainError> {
+        let info = self.source.info();
+        let (n, k) = (info.n_channels, info.kinematic_names.len());
+        let d = self.sources.len();
+        let nb = self.n_basis;
+        let span = self.taps.len();
+        let p = self.columns();
+        // The last `span` rows of counts (and at least the previous one,
+        // for coupling), newest last.
+        let mut window = RowWindow::new(n, 0, span.max(1));
+        let mut x = vec![0.0; p];
+        let mut state = vec![0.0; d];
+        each_row(self.source, k, |t, counts, kin| {
+            fill_state(kin, &self.sources, &mut state);
+            for (i, &c) in self.channels.iter().enumerate() {
+                if !active[i] {
                     continue;
                 }
-                x.data[t * p + k] = f64::from(v);
-                k += 1;
-            }
-        }
-    }
-    // History columns driven by the spikes: each count adds the basis,
-    // lag by lag, to the rows after it (counts are sparse, so this is far
-    // cheaper than summing over every lag of every row). Same values as
-    // `RaisedCosineBasis::covariates`.
-    if let Some(b) = basis {
-        let taps: Vec<Vec<(usize, f64)>> = (0..b.span_bins)
-            .map(|lag0| {
-                (0..b.n_basis)
-                    .filter_map(|j| {
-                        let w = b.weights.get(j, lag0);
-                        (w != 0.0).then_some((j, w))
-                    })
-                    .collect()
-            })
-            .collect();
-        for (s_bin, &count) in y.iter().enumerate() {
-            if count == 0.0 {
-                continue;
-            }
-            for (lag0, tap) in taps.iter().enumerate() {
-                let t = s_bin + lag0 + 1;
-                if t >= session.n_bins {
-                    break;
+                x.fill(0.0);
+                x[..d].copy_from_slice(&state);
+                // History: each earlier count adds the basis at its lag,
+                // oldest first (the order the sums were always taken in).
+                for lag0 in (0..span.min(t)).rev() {
+                    let count = window.counts(lag0)[c];
+                    if count == 0 {
+                        continue;
+                    }
+                    let count = f64::from(count);
+                    for &(j, w) in &self.taps[lag0] {
+                        x[d + j] += w * count;
+                    }
                 }
-                for &(j, w) in tap {
-                    x.data[t * p + d + j] += w * count;
+                if self.coupling && t > 0 {
+                    let prev = window.counts(0);
+                    let mut at = d + nb;
+                    for (other, &v) in prev.iter().enumerate() {
+                        if other != c {
+                            x[at] = f64::from(v);
+                            at += 1;
+                        }
+                    }
                 }
+                row(i, &x, f64::from(counts[c]));
             }
-        }
+            window.push(counts, &[]);
+        })?;
+        Ok(())
     }
-    (x, y)
+}
+
+impl GlmDesigns for ChannelDesigns<'_> {
+    fn fits(&self) -> usize {
+        self.channels.len()
+    }
+
+    fn columns(&self) -> usize {
+        let nc = if self.coupling {
+            self.source.info().n_channels - 1
+        } else {
+            0
+        };
+        self.sources.len() + self.n_basis + nc
+    }
+
+    fn pass(
+        &self,
+        active: &[bool],
+        row: &mut dyn FnMut(usize, &[f64], f64),
+    ) -> Result<(), TrainError> {
+        self.each_row(active, row)
+    }
 }
 
 /// Why one channel is left out of the point-process model.
 #[derive(Debug, thiserror::Error)]
 pub enum ChannelLeftOut {
-    #[error(transparent)]
-    Block(#[from] TrainError),
     #[error(transparent)]
     Glm(#[from] GlmError),
     #[error("IRLS did not converge in {iterations} iterations")]
@@ -157,85 +220,97 @@ pub enum ChannelLeftOut {
     NotRun,
 }
 
-/// Fits one channel; `Err` carries why it is left out.
-pub fn fit_channel(
-    session: &Block,
+/// Fits `channels` side by side, in the same passes over the block; each
+/// `Err` carries why that channel is left out.
+pub fn fit_channels(
+    session: &dyn BlockRows,
     options: &PointProcessFitOptions,
-    channel: usize,
-) -> Result<ChannelGlm, ChannelLeftOut> {
-    let sources = state_sources(session, &options.state)?;
-    let basis = options.basis();
-    let (x, y) = channel_design(session, &sources, basis.as_ref(), options.coupling, channel);
-    let fit = fit_poisson(
-        &x,
-        &y,
+    channels: &[usize],
+) -> Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, TrainError> {
+    let n = session.info().n_channels;
+    let designs = ChannelDesigns::new(session, options, channels.to_vec())?;
+    let d = designs.sources.len();
+    let nb = designs.n_basis;
+    let fits = fit_poisson_many(
+        &designs,
         &GlmFitOptions {
             ridge: options.ridge,
             max_iterations: options.max_iterations,
             tolerance: options.tolerance,
         },
     )?;
-    if !fit.converged {
-        return Err(ChannelLeftOut::NotConverged {
-            iterations: fit.iterations,
-        });
-    }
-    let d = sources.len();
-    let nb = basis.as_ref().map_or(0, |b| b.n_basis);
-    let c = &fit.coefficients;
-    let coupling = if options.coupling {
-        let mut g = vec![0.0; session.n_channels];
-        let mut k = 1 + d + nb;
-        for (other, gv) in g.iter_mut().enumerate() {
-            if other != channel {
-                *gv = c[k];
-                k += 1;
+    Ok(fits
+        .into_iter()
+        .zip(channels)
+        .map(|(fit, &channel)| {
+            let fit = fit?;
+            if !fit.converged {
+                return Err(ChannelLeftOut::NotConverged {
+                    iterations: fit.iterations,
+                });
             }
-        }
-        g
-    } else {
-        Vec::new()
-    };
-    Ok(ChannelGlm {
-        b0: c[0],
-        beta: c[1..1 + d].to_vec(),
-        history: c[1 + d..1 + d + nb].to_vec(),
-        coupling,
-        deviance: fit.deviance,
-        null_deviance: fit.null_deviance,
-        iterations: fit.iterations,
-    })
+            let c = &fit.coefficients;
+            let coupling = if options.coupling {
+                let mut g = vec![0.0; n];
+                let mut k = 1 + d + nb;
+                for (other, gv) in g.iter_mut().enumerate() {
+                    if other != channel {
+                        *gv = c[k];
+                        k += 1;
+                    }
+                }
+                g
+            } else {
+                Vec::new()
+            };
+            Ok(ChannelGlm {
+                b0: c[0],
+                beta: c[1..1 + d].to_vec(),
+                history: c[1 + d..1 + d + nb].to_vec(),
+                coupling,
+                deviance: fit.deviance,
+                null_deviance: fit.null_deviance,
+                iterations: fit.iterations,
+            })
+        })
+        .collect())
 }
 
 /// A and W by least squares on consecutive bins, x0 and P0 from the
-/// state's mean and covariance.
+/// state's mean and covariance: two passes over the kinematics.
 pub fn fit_dynamics(
-    session: &Block,
+    session: &dyn BlockRows,
     sources: &[StateSource],
 ) -> Result<(Mat, Mat, Vec<f64>, Mat), TrainError> {
     let d = sources.len();
-    let t = session.n_bins;
+    let info = session.info();
+    let (t, k) = (info.n_bins, info.kinematic_names.len());
     if t < d + 3 {
         return Err(TrainError::TooFewBins {
             bins: t as u64,
             needed: d as u64 + 3,
         });
     }
-    let mut xs = vec![0.0; t * d];
-    for b in 0..t {
-        fill_state(session, sources, b, &mut xs[b * d..(b + 1) * d]);
-    }
-    let x = |b: usize| &xs[b * d..(b + 1) * d];
+    let mut x = vec![0.0; d];
+    let mut prev = vec![0.0; d];
     let mut s00 = DMatrix::<f64>::zeros(d, d);
     let mut s10 = DMatrix::<f64>::zeros(d, d);
-    for b in 0..t - 1 {
-        for i in 0..d {
-            for j in 0..d {
-                s00[(i, j)] += x(b)[i] * x(b)[j];
-                s10[(i, j)] += x(b + 1)[i] * x(b)[j];
+    let mut mean = vec![0.0; d];
+    each_row(session, k, |b, _, kin| {
+        fill_state(kin, sources, &mut x);
+        if b > 0 {
+            for i in 0..d {
+                for j in 0..d {
+                    s00[(i, j)] += prev[i] * prev[j];
+                    s10[(i, j)] += x[i] * prev[j];
+                }
             }
         }
-    }
+        for (m, v) in mean.iter_mut().zip(&x) {
+            *m += v / t as f64;
+        }
+        prev.copy_from_slice(&x);
+    })?;
     let inv = s00
         .clone()
         .try_inverse()
@@ -245,40 +320,37 @@ pub fn fit_dynamics(
         })?;
     let a = &s10 * inv;
     let mut w = DMatrix::<f64>::zeros(d, d);
-    for b in 0..t - 1 {
-        let xb = nalgebra::DVector::from_column_slice(x(b));
-        let r = nalgebra::DVector::from_column_slice(x(b + 1)) - &a * xb;
-        w += &r * r.transpose();
-    }
-    w /= (t - 1) as f64;
-    let mut mean = vec![0.0; d];
-    for b in 0..t {
-        for (m, v) in mean.iter_mut().zip(x(b)) {
-            *m += v / t as f64;
-        }
-    }
     let mut p0 = Mat::zeros(d, d);
-    for b in 0..t {
+    each_row(session, k, |b, _, kin| {
+        fill_state(kin, sources, &mut x);
+        if b > 0 {
+            let xb = nalgebra::DVector::from_column_slice(&prev);
+            let r = nalgebra::DVector::from_column_slice(&x) - &a * xb;
+            w += &r * r.transpose();
+        }
         for i in 0..d {
             for j in 0..d {
-                let v = p0.get(i, j) + (x(b)[i] - mean[i]) * (x(b)[j] - mean[j]) / t as f64;
+                let v = p0.get(i, j) + (x[i] - mean[i]) * (x[j] - mean[j]) / t as f64;
                 p0.set(i, j, v);
             }
         }
-    }
+        prev.copy_from_slice(&x);
+    })?;
+    w /= (t - 1) as f64;
     Ok((Mat::from_dmatrix(&a), Mat::from_dmatrix(&w), mean, p0))
 }
 
 /// Puts per-channel fits and the dynamics together.
 pub fn assemble(
-    session: &Block,
+    session: &dyn BlockRows,
     options: &PointProcessFitOptions,
     fits: Vec<Result<ChannelGlm, ChannelLeftOut>>,
 ) -> Result<(PointProcessModel, PointProcessFitReport), TrainError> {
-    if session.kinematics.is_none() {
+    let info = session.info();
+    if !info.has_kinematics {
         return Err(TrainError::NoKinematics);
     }
-    let sources = state_sources(session, &options.state)?;
+    let sources = state_sources(&info.kinematic_names, &options.state)?;
     for o in &options.outputs {
         if !options.state.contains(o) {
             return Err(TrainError::Option {
@@ -335,17 +407,18 @@ pub fn assemble(
     ))
 }
 
-/// Fits every channel in turn (see [`fit_channel`] to run them in parallel).
+/// Fits every channel, side by side in the same passes (see
+/// [`fit_channels`] to run groups of channels in parallel).
 pub fn fit_point_process(
-    session: &Block,
+    session: &dyn BlockRows,
     options: &PointProcessFitOptions,
 ) -> Result<(PointProcessModel, PointProcessFitReport), TrainError> {
-    if session.kinematics.is_none() {
+    let info = session.info();
+    if !info.has_kinematics {
         return Err(TrainError::NoKinematics);
     }
-    state_sources(session, &options.state)?;
-    let fits = (0..session.n_channels)
-        .map(|c| fit_channel(session, options, c))
-        .collect();
+    state_sources(&info.kinematic_names, &options.state)?;
+    let channels: Vec<usize> = (0..info.n_channels).collect();
+    let fits = fit_channels(session, options, &channels)?;
     assemble(session, options, fits)
 }

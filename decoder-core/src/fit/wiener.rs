@@ -1,6 +1,7 @@
 //! Fitting the Wiener filter baseline: ridge regression of the kinematics on
 //! the counts of the last `taps` bins, from integer sums over the training
-//! bins so folds can be added and subtracted exactly.
+//! bins so folds can be added and subtracted exactly, gathered in one pass
+//! over the block's rows.
 
 use crate::decoders::ModelError;
 use std::ops::Range;
@@ -10,8 +11,10 @@ use serde::{Deserialize, Serialize};
 
 use crate::decoders::wiener::WienerModel;
 use crate::fit::TrainError;
+use crate::fit::kalman::StateScratch;
 use crate::fit::least_squares::{CountGram, CrossSums, nonzero_counts};
-use crate::formats::block::Block;
+use crate::fit::rows::{RowWindow, SegmentWalk, each_row};
+use crate::formats::block_rows::{BlockInfo, BlockRows};
 use crate::linalg::Mat;
 
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -52,33 +55,69 @@ impl WienerStats {
         }
     }
 
-    pub fn accumulate(
+    /// Adds the window's newest row, `since_start` rows into its segment:
+    /// its kinematics as the target of the counts `lag` to `lag + taps − 1`
+    /// rows back, when all of them lie inside the segment.
+    pub fn add_newest(
         &mut self,
-        session: &Block,
+        window: &RowWindow,
         output_cols: &[usize],
         taps: usize,
         lag: usize,
-        segment: Range<usize>,
+        since_start: usize,
+        scratch: &mut StateScratch,
     ) {
-        let kin = session.kinematics.as_ref().expect("checked by caller");
-        let n = session.n_channels;
-        let mut nz = Vec::new();
-        let mut y = vec![0.0; output_cols.len()];
-        let first = segment.start + taps - 1;
-        for t in first..segment.end.saturating_sub(lag) {
-            nz.clear();
-            for a in 0..taps {
-                nonzero_counts(session.bin_counts(t - a), a * n, &mut nz);
-            }
-            for (o, &c) in y.iter_mut().zip(output_cols) {
-                *o = kin.get(t + lag, c);
-            }
-            self.gram.add_sparse(&nz);
-            self.sfy.add_sparse_outer(&nz, &y);
-            for (s, v) in self.sy.iter_mut().zip(&y) {
-                *s += v;
-            }
+        let StateScratch { x: y, nz, .. } = scratch;
+        if since_start + 1 < lag + taps {
+            return;
         }
+        let n = self.gram.dim / taps.max(1);
+        nz.clear();
+        for a in 0..taps {
+            nonzero_counts(window.counts(lag + a), a * n, nz);
+        }
+        let kin = window.kinematics(0);
+        y.clear();
+        y.extend(output_cols.iter().map(|&c| kin[c]));
+        self.gram.add_sparse(nz);
+        self.sfy.add_sparse_outer(nz, y);
+        for (s, v) in self.sy.iter_mut().zip(y.iter()) {
+            *s += v;
+        }
+    }
+
+    /// One pass over `source`: the sums of each group of segments, one
+    /// [`WienerStats`] per group.
+    pub fn gather(
+        source: &dyn BlockRows,
+        output_cols: &[usize],
+        taps: usize,
+        lag: usize,
+        groups: &[Vec<Range<usize>>],
+    ) -> Result<Vec<WienerStats>, TrainError> {
+        let info = source.info();
+        let (n, k) = (info.n_channels, info.kinematic_names.len());
+        let mut stats: Vec<WienerStats> = groups
+            .iter()
+            .map(|_| WienerStats::new(n, taps, output_cols.len()))
+            .collect();
+        let mut walk = SegmentWalk::new(
+            groups
+                .iter()
+                .enumerate()
+                .flat_map(|(g, segs)| segs.iter().map(move |s| (s.clone(), g)))
+                .collect(),
+        );
+        let mut window = RowWindow::new(n, k, lag + taps);
+        let mut scratch = StateScratch::default();
+        each_row(source, k, |t, counts, kin| {
+            let Some((seg, g)) = walk.at(t) else {
+                return;
+            };
+            window.push(counts, kin);
+            stats[g].add_newest(&window, output_cols, taps, lag, t - seg.start, &mut scratch);
+        })?;
+        Ok(stats)
     }
 
     pub fn add_assign(&mut self, o: &WienerStats) {
@@ -98,8 +137,8 @@ impl WienerStats {
     }
 }
 
-pub fn output_columns(session: &Block, outputs: &[String]) -> Result<Vec<usize>, TrainError> {
-    if session.kinematics.is_none() {
+pub fn output_columns(session: &BlockInfo, outputs: &[String]) -> Result<Vec<usize>, TrainError> {
+    if !session.has_kinematics {
         return Err(TrainError::NoKinematics);
     }
     outputs
@@ -115,12 +154,16 @@ pub fn output_columns(session: &Block, outputs: &[String]) -> Result<Vec<usize>,
         .collect()
 }
 
-pub fn fit_wiener(session: &Block, options: &WienerFitOptions) -> Result<WienerModel, TrainError> {
-    fit_wiener_segments(session, options, std::slice::from_ref(&(0..session.n_bins)))
+pub fn fit_wiener(
+    session: &dyn BlockRows,
+    options: &WienerFitOptions,
+) -> Result<WienerModel, TrainError> {
+    let n_bins = session.info().n_bins;
+    fit_wiener_segments(session, options, std::slice::from_ref(&(0..n_bins)))
 }
 
 pub fn fit_wiener_segments(
-    session: &Block,
+    session: &dyn BlockRows,
     options: &WienerFitOptions,
     segments: &[Range<usize>],
 ) -> Result<WienerModel, TrainError> {
@@ -130,12 +173,18 @@ pub fn fit_wiener_segments(
             problem: "must be at least 1".into(),
         });
     }
-    let cols = output_columns(session, &options.outputs)?;
-    let mut stats = WienerStats::new(session.n_channels, options.taps, cols.len());
-    for seg in segments {
-        stats.accumulate(session, &cols, options.taps, options.lag_bins, seg.clone());
-    }
-    fit_wiener_from_stats(&stats, options, session.n_channels)
+    let info = session.info();
+    let cols = output_columns(&info, &options.outputs)?;
+    let stats = WienerStats::gather(
+        session,
+        &cols,
+        options.taps,
+        options.lag_bins,
+        &[segments.to_vec()],
+    )?
+    .pop()
+    .expect("one group");
+    fit_wiener_from_stats(&stats, options, info.n_channels)
 }
 
 pub fn fit_wiener_from_stats(

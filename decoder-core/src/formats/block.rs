@@ -13,7 +13,6 @@ use std::path::{Path, PathBuf};
 use ndarray::Array2;
 use ndarray_npy::{ReadNpyError, ReadNpyExt, WriteNpyExt};
 use serde::{Deserialize, Serialize};
-use sha2::{Digest, Sha256};
 
 use crate::bin_width::BinWidth;
 use crate::linalg::Mat;
@@ -329,25 +328,10 @@ impl Block {
         self.kinematic_names.iter().position(|n| n == name)
     }
 
-    /// SHA-256 over the block as decoded: counts as u16 little-endian, bin
-    /// after bin, then kinematics as f64 little-endian when present. The same
-    /// data stored with another integer dtype hashes the same, so a model's
-    /// `data_sha256` identifies the numbers it was trained on.
+    /// SHA-256 over the block's valid rows as decoded (see
+    /// [`crate::formats::block_rows::data_sha256`]).
     pub fn data_sha256(&self) -> String {
-        let mut hasher = Sha256::new();
-        for c in &self.counts {
-            hasher.update(c.to_le_bytes());
-        }
-        if let Some(kin) = &self.kinematics {
-            for v in &kin.data {
-                hasher.update(v.to_le_bytes());
-            }
-        }
-        hasher
-            .finalize()
-            .iter()
-            .map(|b| format!("{b:02x}"))
-            .collect()
+        crate::formats::block_rows::data_sha256(self).expect("a block in memory reads")
     }
 }
 

@@ -115,6 +115,33 @@ impl BlockRows for Block {
     }
 }
 
+/// SHA-256 over the valid rows as decoded: counts as u16 little-endian,
+/// row after row, then kinematics as f64 little-endian when present (two
+/// passes). The same data stored with another integer dtype hashes the
+/// same, so a model's `data_sha256` identifies the numbers it was trained
+/// on.
+pub fn data_sha256(rows: &dyn BlockRows) -> Result<String, BlockError> {
+    use sha2::{Digest, Sha256};
+    let mut hasher = Sha256::new();
+    rows.pass(&mut |chunk| {
+        for c in chunk.counts {
+            hasher.update(c.to_le_bytes());
+        }
+    })?;
+    if rows.info().has_kinematics {
+        rows.pass(&mut |chunk| {
+            for v in chunk.kinematics {
+                hasher.update(v.to_le_bytes());
+            }
+        })?;
+    }
+    Ok(hasher
+        .finalize()
+        .iter()
+        .map(|b| format!("{b:02x}"))
+        .collect())
+}
+
 /// Rows read per chunk from disk: large enough to amortise the reads,
 /// small enough that a pass holds a few MB whatever the block's length.
 pub const CHUNK_ROWS: usize = 4096;

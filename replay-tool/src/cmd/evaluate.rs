@@ -9,6 +9,7 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result};
 use decoder_core::fit::evaluate::{DecoderSpec, Evaluation, cross_validate};
+use decoder_core::formats::block_rows::BlockRows;
 
 use super::train::{DecoderKind, config_with_overrides, spec_for};
 use crate::output::write_atomic;
@@ -75,20 +76,21 @@ pub fn run(args: &Args) -> Result<()> {
         );
     }
     let session_path = args.session.as_ref().expect("clap requires --session");
-    let session = super::block_with_kinematics(session_path)?
-        .block
-        .valid_only();
+    // Read in passes, a chunk at a time: memory does not grow with the
+    // block's length.
+    let session = super::rows_with_kinematics(session_path)?;
+    let info = session.rows.info();
     for spec in &specs {
-        super::warn_unused_kinematics(&session, session_path, spec);
+        super::warn_unused_kinematics(&info.kinematic_names, session_path, spec);
     }
     let pb = progress::bar((folds * specs.len()) as u64, "evaluate");
-    let eval = cross_validate(&session, &specs, folds, |_, _| pb.inc(1))
+    let eval = cross_validate(&session.rows, &specs, folds, |_, _| pb.inc(1))
         .with_context(|| format!("evaluating on {}", session_path.display()))?;
     pb.finish_and_clear();
     print!("{}", table(&eval));
     print!("{}", goodness_table(&eval));
     if let Some(dir) = &args.report {
-        write_report(dir, &eval, session.bin_width.ms())?;
+        write_report(dir, &eval, info.bin_width.ms())?;
         println!("report: {}", dir.display());
     }
     Ok(())

@@ -13,6 +13,7 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result, bail};
 use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
 use decoder_core::fit::metrics::Scores;
+use decoder_core::formats::block_rows::BlockRows;
 use serde::{Deserialize, Serialize};
 
 use crate::CheckFailed;
@@ -177,14 +178,14 @@ pub fn run_shard(
 }
 
 fn evaluate_one(path: &Path, specs: &[DecoderSpec], folds: usize) -> Result<SessionResult> {
-    let block = super::block_with_kinematics(path)?.block.valid_only();
-    let eval = cross_validate(&block, specs, folds, |_, _| {})?;
+    let session = super::rows_with_kinematics(path)?;
+    let eval = cross_validate(&session.rows, specs, folds, |_, _| {})?;
     Ok(SessionResult {
         index: 0,
         session: path.display().to_string(),
         folds: eval.folds,
         by_trial: eval.by_trial,
-        bins: block.n_bins,
+        bins: session.rows.info().n_bins,
         decoders: eval
             .decoders
             .iter()

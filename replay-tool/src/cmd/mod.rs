@@ -21,6 +21,7 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result, bail};
 use decoder_core::Block;
 use decoder_core::fit::config::TrainConfig;
+use decoder_core::formats::block_rows::{BlockFiles, BlockRows};
 
 /// Reads `--config FILE` (or the defaults when absent).
 pub fn load_train_config(path: Option<&Path>) -> Result<TrainConfig> {
@@ -50,10 +51,7 @@ pub fn block_with_kinematics(session: &Path) -> Result<SessionBlock> {
         let log = decoder_core::formats::log_block::read_log_block(session)
             .with_context(|| format!("--session {}", session.display()))?;
         if log.block.kinematics.is_none() {
-            bail!(
-                "--session {}: the log holds no task packets, so it has no kinematics to train or score on; record the block with the task computer sending task packets (PROTOCOL.md §6) to the daemon's task socket (network.task_listen)",
-                session.display()
-            );
+            bail!("{}", no_task_packets(session));
         }
         let s = &log.summary;
         eprintln!(
@@ -75,14 +73,67 @@ pub fn block_with_kinematics(session: &Path) -> Result<SessionBlock> {
     })
 }
 
+/// The rows behind `--session` for a verb that reads them in passes
+/// (evaluate): a session directory read a chunk at a time, or a session
+/// log first exported (streaming, as `export` does) to a temporary session
+/// directory under TMPDIR, removed when this is dropped. Neither is held in
+/// memory.
+pub struct SessionRows {
+    pub rows: BlockFiles,
+    /// The target radius the task packets gave (a session log only).
+    pub target_radius: Option<f64>,
+    _exported: Option<tempfile::TempDir>,
+}
+
+pub fn rows_with_kinematics(session: &Path) -> Result<SessionRows> {
+    if session.is_file() {
+        let tmp = tempfile::Builder::new()
+            .prefix("replay-tool-session-")
+            .tempdir()
+            .context("creating a temporary folder for the session log's rows (set TMPDIR to a disk with room)")?;
+        let s = decoder_core::formats::log_block::export_log(session, tmp.path())
+            .with_context(|| format!("--session {}", session.display()))?;
+        let rows = BlockFiles::open(tmp.path())
+            .with_context(|| format!("--session {}", session.display()))?;
+        if !rows.info().has_kinematics {
+            bail!("{}", no_task_packets(session));
+        }
+        eprintln!(
+            "replay-tool: {}: {} slots, {} valid for training ({} bins missing, {} before the first task packet)",
+            session.display(),
+            s.rows,
+            s.valid_rows,
+            s.bins_missing,
+            s.rows_without_task_state
+        );
+        return Ok(SessionRows {
+            rows,
+            target_radius: s.target_radius,
+            _exported: Some(tmp),
+        });
+    }
+    Ok(SessionRows {
+        rows: BlockFiles::open(session)?,
+        target_radius: None,
+        _exported: None,
+    })
+}
+
+fn no_task_packets(session: &Path) -> String {
+    format!(
+        "--session {}: the log holds no task packets, so it has no kinematics to train or score on; record the block with the task computer sending task packets (PROTOCOL.md §6) to the daemon's task socket (network.task_listen)",
+        session.display()
+    )
+}
+
 /// Says which of the block's kinematics the decoder leaves out, so a 3-D
 /// block never trains a 2-D decoder without a word.
 pub fn warn_unused_kinematics(
-    block: &Block,
+    kinematic_names: &[String],
     source: &Path,
     spec: &decoder_core::fit::evaluate::DecoderSpec,
 ) {
-    let unused = spec.unused_kinematics(block);
+    let unused = spec.unused_kinematics(kinematic_names);
     if unused.is_empty() {
         return;
     }

@@ -11,10 +11,10 @@ use decoder_core::fit::evaluate::{DecoderSpec, Evaluation, cross_validate};
 use decoder_core::fit::intention::reestimate_intention;
 use decoder_core::fit::kalman::fit_kalman;
 use decoder_core::fit::point_process::{
-    ChannelLeftOut, PointProcessFitOptions, PointProcessFitReport, assemble, fit_channel,
+    ChannelLeftOut, PointProcessFitOptions, PointProcessFitReport, assemble, fit_channels,
 };
 use decoder_core::fit::wiener::fit_wiener;
-use decoder_core::formats::block::Block;
+use decoder_core::formats::block_rows::{BlockRows, data_sha256};
 use decoder_core::formats::model_file::{CrossValidation, ModelFile, OutputScores, Provenance};
 use serde_json::json;
 
@@ -95,7 +95,11 @@ pub fn spec_for(kind: DecoderKind, cfg: &TrainConfig) -> Result<DecoderSpec> {
 }
 
 /// Trains and returns the model file (not yet written).
-pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) -> Result<ModelFile> {
+pub fn train_model(
+    session: &(dyn BlockRows + Sync),
+    spec: &DecoderSpec,
+    folds: Option<usize>,
+) -> Result<ModelFile> {
     let (decoder, fit, silent_channels) = match spec {
         DecoderSpec::Kalman(opts) => {
             let (model, report) = fit_kalman(session, opts)?;
@@ -133,12 +137,12 @@ pub fn train_model(session: &Block, spec: &DecoderSpec, folds: Option<usize>) ->
         None => None,
     };
     Ok(ModelFile {
-        bin_width: session.bin_width,
+        bin_width: session.info().bin_width,
         decoder,
         provenance: Provenance {
             trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
             tool_version: env!("CARGO_PKG_VERSION").to_string(),
-            data_sha256: session.data_sha256(),
+            data_sha256: data_sha256(session)?,
             fit_document: fit.to_string(),
             silent_channels,
             cv,
@@ -167,43 +171,52 @@ fn cross_validation(eval: &Evaluation) -> CrossValidation {
 }
 
 /// Fits the point-process decoder, its channels in parallel on all cores
-/// (each channel's GLM is independent of the others).
+/// (each channel's GLM is independent of the others): channels are dealt
+/// to one group per core, each group fitted side by side in its own passes
+/// over the block.
 pub fn fit_point_process_parallel(
-    session: &Block,
+    session: &(dyn BlockRows + Sync),
     options: &PointProcessFitOptions,
 ) -> Result<(PointProcessModel, PointProcessFitReport)> {
-    if session.kinematics.is_none() {
+    let info = session.info();
+    if !info.has_kinematics {
         return Err(decoder_core::TrainError::NoKinematics.into());
     }
-    decoder_core::fit::kalman::state_sources(session, &options.state)?;
-    let n = session.n_channels;
+    decoder_core::fit::kalman::state_sources(&info.kinematic_names, &options.state)?;
+    let n = info.n_channels;
     let threads = std::thread::available_parallelism()
         .map_or(1, |t| t.get())
         .min(n.max(1));
-    let pb = progress::bar(n as u64, "fit GLMs");
-    let next = std::sync::atomic::AtomicUsize::new(0);
-    let mut fits: Vec<Option<Result<ChannelGlm, ChannelLeftOut>>> = (0..n).map(|_| None).collect();
-    let results = std::sync::Mutex::new(&mut fits);
-    std::thread::scope(|scope| {
-        for _ in 0..threads {
-            scope.spawn(|| {
-                loop {
-                    let c = next.fetch_add(1, std::sync::atomic::Ordering::Relaxed);
-                    if c >= n {
-                        break;
-                    }
-                    let fit = fit_channel(session, options, c);
-                    results.lock().expect("fit results")[c] = Some(fit);
-                    pb.inc(1);
-                }
-            });
-        }
-    });
-    pb.finish_and_clear();
-    let fits = fits
-        .into_iter()
-        .map(|f| f.unwrap_or(Err(ChannelLeftOut::NotRun)))
+    let groups: Vec<Vec<usize>> = (0..threads)
+        .map(|g| (g..n).step_by(threads).collect())
         .collect();
+    let pb = progress::bar(threads as u64, "fit GLMs");
+    let results: Vec<Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, decoder_core::TrainError>> =
+        std::thread::scope(|scope| {
+            let handles: Vec<_> = groups
+                .iter()
+                .map(|channels| {
+                    let pb = &pb;
+                    scope.spawn(move || {
+                        let fits = fit_channels(session, options, channels);
+                        pb.inc(1);
+                        fits
+                    })
+                })
+                .collect();
+            handles
+                .into_iter()
+                .map(|h| h.join().expect("a fitting thread panicked"))
+                .collect()
+        });
+    pb.finish_and_clear();
+    let mut fits: Vec<Result<ChannelGlm, ChannelLeftOut>> =
+        (0..n).map(|_| Err(ChannelLeftOut::NotRun)).collect();
+    for (channels, group) in groups.iter().zip(results) {
+        for (&c, fit) in channels.iter().zip(group?) {
+            fits[c] = fit;
+        }
+    }
     let (model, report) = assemble(session, options, fits)?;
     for (c, why) in &report.excluded {
         tracing::warn!("channel {c} left out of the point-process model: {why}");
@@ -222,11 +235,12 @@ pub fn run(args: &Args) -> Result<()> {
     }
     let spec = spec_for(args.decoder, &cfg)?;
     let source = args.session.clone();
-    let super::SessionBlock {
-        block,
-        target_radius: logged_radius,
-    } = super::block_with_kinematics(&source)?;
-    let session = if args.refit {
+    let folds = if args.no_cv { None } else { Some(cfg.folds) };
+    let model = if args.refit {
+        let super::SessionBlock {
+            block,
+            target_radius: logged_radius,
+        } = super::block_with_kinematics(&source)?;
         let radius = args.target_radius.or(logged_radius).unwrap_or(2.0);
         if !(radius.is_finite() && radius >= 0.0) {
             bail!("--target-radius {radius}: must be a finite distance ≥ 0");
@@ -240,17 +254,17 @@ pub fn run(args: &Args) -> Result<()> {
             n.zeroed,
             n.untouched
         );
-        refit
+        // Bins that never came, or came before the task said anything,
+        // train nothing (a pass visits the valid rows only).
+        super::warn_unused_kinematics(&refit.kinematic_names, &source, &spec);
+        train_model(&refit, &spec, folds)
     } else {
-        block
-    };
-    // Bins that never came, or came before the task said anything, train
-    // nothing.
-    let session = session.valid_only();
-    super::warn_unused_kinematics(&session, &source, &spec);
-    let folds = if args.no_cv { None } else { Some(cfg.folds) };
-    let model = train_model(&session, &spec, folds)
-        .with_context(|| format!("training on {}", source.display()))?;
+        // Read in passes, a chunk at a time.
+        let session = super::rows_with_kinematics(&source)?;
+        super::warn_unused_kinematics(&session.rows.info().kinematic_names, &source, &spec);
+        train_model(&session.rows, &spec, folds)
+    }
+    .with_context(|| format!("training on {}", source.display()))?;
     // Never write a file its readers would refuse.
     ModelFile::from_bytes(&model.to_bytes(), &args.out.display().to_string()).with_context(
         || {

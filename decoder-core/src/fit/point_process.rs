@@ -143,31 +143,26 @@ impl<'a> ChannelDesigns<'a> {
         let nb = self.n_basis;
         let span = self.taps.len();
         let p = self.columns();
-        // The last `span` rows of counts (and at least the previous one,
-        // for coupling), newest last.
-        let mut window = RowWindow::new(n, 0, span.max(1));
+        // The previous row of counts, for coupling.
+        let mut window = RowWindow::new(n, 0, 1);
         let mut x = vec![0.0; p];
         let mut state = vec![0.0; d];
+        // The history columns of the next `span` rows, `nb` per channel,
+        // row t's at slot t % span: each count adds the basis to the rows
+        // after it as it is read (counts are sparse, so this is far cheaper
+        // than summing over every lag of every row), and every sum is
+        // taken oldest count first.
+        let width = self.channels.len() * nb;
+        let mut ahead = vec![0.0; span.max(1) * width];
         each_row(self.source, k, |t, counts, kin| {
             fill_state(kin, &self.sources, &mut state);
+            let now = (t % span.max(1)) * width;
             for (i, &c) in self.channels.iter().enumerate() {
                 if !active[i] {
                     continue;
                 }
-                x.fill(0.0);
                 x[..d].copy_from_slice(&state);
-                // History: each earlier count adds the basis at its lag,
-                // oldest first (the order the sums were always taken in).
-                for lag0 in (0..span.min(t)).rev() {
-                    let count = window.counts(lag0)[c];
-                    if count == 0 {
-                        continue;
-                    }
-                    let count = f64::from(count);
-                    for &(j, w) in &self.taps[lag0] {
-                        x[d + j] += w * count;
-                    }
-                }
+                x[d..d + nb].copy_from_slice(&ahead[now + i * nb..now + (i + 1) * nb]);
                 if self.coupling && t > 0 {
                     let prev = window.counts(0);
                     let mut at = d + nb;
@@ -179,6 +174,21 @@ impl<'a> ChannelDesigns<'a> {
                     }
                 }
                 row(i, &x, f64::from(counts[c]));
+            }
+            if span > 0 {
+                ahead[now..now + width].fill(0.0);
+                for (i, &c) in self.channels.iter().enumerate() {
+                    if counts[c] == 0 {
+                        continue;
+                    }
+                    let count = f64::from(counts[c]);
+                    for (lag0, taps) in self.taps.iter().enumerate() {
+                        let at = ((t + lag0 + 1) % span) * width + i * nb;
+                        for &(j, w) in taps {
+                            ahead[at + j] += w * count;
+                        }
+                    }
+                }
             }
             window.push(counts, &[]);
         })?;

@@ -1111,6 +1111,19 @@ fn a_closed_loop_recording_exports_as_a_session_directory_and_trains() {
     ok(&["replay", "--session", p(&log), "--out", p(&replayed)]);
     let replayed = Array2::<f64>::read_npy(std::fs::File::open(&replayed).unwrap()).unwrap();
     assert_eq!(replayed, estimates);
+    // So does the exported folder, valid.npy (NumPy's bool) and all.
+    let from_folder = dir.path().join("replayed-folder.npy");
+    ok(&[
+        "replay",
+        "--session",
+        p(&out_dir),
+        "--model",
+        p(&model),
+        "--out",
+        p(&from_folder),
+    ]);
+    let from_folder = Array2::<f64>::read_npy(std::fs::File::open(&from_folder).unwrap()).unwrap();
+    assert_eq!(from_folder, estimates);
 
     // Training on the log and on its export gives the same model.
     let from_log = dir.path().join("from-log.model");

@@ -104,35 +104,6 @@ struct Streamed {
     cc: Vec<(String, f64)>,
 }
 
-/// Pearson correlation accumulated one pair at a time (Welford's
-/// co-moments), so a block's CC needs no copy of the block.
-#[derive(Default)]
-struct OnlineCc {
-    n: f64,
-    mx: f64,
-    my: f64,
-    cxx: f64,
-    cyy: f64,
-    cxy: f64,
-}
-
-impl OnlineCc {
-    fn add(&mut self, x: f64, y: f64) {
-        self.n += 1.0;
-        let dx = x - self.mx;
-        self.mx += dx / self.n;
-        let dy = y - self.my;
-        self.my += dy / self.n;
-        self.cxx += dx * (x - self.mx);
-        self.cyy += dy * (y - self.my);
-        self.cxy += dx * (y - self.my);
-    }
-
-    fn cc(&self) -> f64 {
-        self.cxy / (self.cxx * self.cyy).sqrt()
-    }
-}
-
 /// Decodes a session directory chunk by chunk: counts.npy (and
 /// kinematics.npy, for the CC) are read a few thousand rows at a time and
 /// the estimates written as they come, so memory does not grow with the
@@ -194,7 +165,9 @@ fn replay_dir_streaming(
         }
     };
     let d = outputs.len();
-    let mut cc: Vec<OnlineCc> = (0..d).map(|_| OnlineCc::default()).collect();
+    // Pearson correlation accumulated one pair at a time: no copy of the
+    // block.
+    let mut cc = vec![decoder_core::fit::metrics::ScoreSums::default(); d];
     let ext = out.extension().and_then(|e| e.to_str()).unwrap_or("");
     let mut sink = crate::output::TableWriter::create(out, outputs, bins, ext)?;
     pipeline.reset();

@@ -288,7 +288,13 @@ mod tests {
             .iter()
             .map(|&l| Poisson::new(l).unwrap().sample(&mut rng) as u16)
             .collect();
-        for (right, model) in [(true, lambda.clone()), (false, vec![0.3; lambda.len()])] {
+        // The flat rate errs above the diagonal, the doubled one below it.
+        let doubled: Vec<f64> = lambda.iter().map(|l| 2.0 * l).collect();
+        for (right, model) in [
+            (true, lambda.clone()),
+            (false, vec![0.3; lambda.len()]),
+            (false, doubled),
+        ] {
             let exact = ks_uniform(&rescaled_intervals_seeded(
                 &model,
                 &counts,

@@ -364,7 +364,7 @@ where
     root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
     let (head, body) = root.split_vertically(70);
     head.draw(&Text::new(
-        "KS plots of each channel's encoding model on held-out bins: x = uniform quantile, y = sorted rescaled interval",
+        "KS plots of each channel's encoding model on held-out bins: x = uniform quantile, y = rescaled interval quantile",
         (10, 8),
         ("sans-serif", 14),
     ))
@@ -429,11 +429,9 @@ where
                         .map_err(|e| anyhow!("{e}"))?;
                 }
             }
-            let curve = &g.curves[c];
-            let step = (curve.len() / 200).max(1);
             chart
                 .draw_series(LineSeries::new(
-                    curve.iter().step_by(step).chain(curve.last()).copied(),
+                    g.curves[c].iter().copied(),
                     PALETTE[k % PALETTE.len()].stroke_width(1),
                 ))
                 .map_err(|e| anyhow!("{e}"))?;

@@ -74,7 +74,7 @@ pub trait GlmDesigns {
     /// Design columns of every fit, without the intercept.
     fn columns(&self) -> usize;
     /// One pass: `row(fit, x, y)` for every row, for each fit with
-    /// `active[fit]`.
+    /// `active[fit]`; each fit's rows in order (fits may interleave).
     fn pass(
         &self,
         active: &[bool],
@@ -180,7 +180,6 @@ pub fn fit_poisson_many(
             fit.beta[0] = (fit.total / fit.rows).ln();
         }
     }
-    let mut row = vec![0.0; p];
     let mut first = true;
     while active.iter().any(|a| *a) {
         for fit in fits.iter_mut() {
@@ -208,15 +207,17 @@ pub fn fit_poisson_many(
             let mu = e.exp();
             let term = if y > 0.0 { y * (y / mu).ln() } else { 0.0 };
             fit.half_deviance += term - (y - mu);
-            // Working weight μ and working response z = η + (y − μ)/μ.
+            // Working weight μ and working response z = η + (y − μ)/μ;
+            // the row is (1, x), the intercept's products written out.
             let z = e + (y - mu) / mu;
-            row[0] = 1.0;
-            row[1..].copy_from_slice(x);
-            for a in 0..p {
-                let wa = mu * row[a];
+            fit.xtwz[0] += mu * z;
+            fit.xtwx[0] += mu;
+            for a in 1..p {
+                let wa = mu * x[a - 1];
                 fit.xtwz[a] += wa * z;
                 let out = &mut fit.xtwx[a * p..a * p + a + 1];
-                for (o, rb) in out.iter_mut().zip(&row[..=a]) {
+                out[0] += wa;
+                for (o, rb) in out[1..].iter_mut().zip(&x[..a]) {
                     *o += wa * rb;
                 }
             }

@@ -21,7 +21,7 @@ use crate::decoders::point_process::{ChannelGlm, PointProcessModel};
 use crate::fit::TrainError;
 use crate::fit::glm::{GlmDesigns, GlmError, GlmFitOptions, fit_poisson_many};
 use crate::fit::kalman::{StateSource, fill_state, state_sources};
-use crate::fit::rows::{RowWindow, each_row};
+use crate::fit::rows::each_row;
 use crate::formats::block_rows::BlockRows;
 use crate::linalg::Mat;
 
@@ -131,7 +131,10 @@ impl<'a> ChannelDesigns<'a> {
     }
 
     /// One pass over the block: `row(i, x, y)` with the design row and the
-    /// count of `channels[i]`, for each i with `active[i]`.
+    /// count of `channels[i]`, for each i with `active[i]`, each channel's
+    /// rows in order. Rows are gathered [`BATCH_ROWS`] at a time and given
+    /// channel by channel within a batch, so each channel's sums stay in
+    /// cache while its rows go by.
     pub fn each_row(
         &self,
         active: &[bool],
@@ -139,32 +142,111 @@ impl<'a> ChannelDesigns<'a> {
     ) -> Result<(), TrainError> {
         let info = self.source.info();
         let (n, k) = (info.n_channels, info.kinematic_names.len());
-        let d = self.sources.len();
         let nb = self.n_basis;
         let span = self.taps.len();
-        let p = self.columns();
-        // The previous row of counts, for coupling.
-        let mut window = RowWindow::new(n, 0, 1);
-        let mut x = vec![0.0; p];
-        let mut state = vec![0.0; d];
-        // The history columns of the next `span` rows, `nb` per channel,
-        // row t's at slot t % span: each count adds the basis to the rows
-        // after it as it is read (counts are sparse, so this is far cheaper
-        // than summing over every lag of every row), and every sum is
-        // taken oldest count first.
+        let mut x = vec![0.0; self.columns()];
+        let mut state = vec![0.0; self.sources.len()];
+        // The history columns of the batch's rows and the `span` rows
+        // after them, `nb` per channel, row t's at slot t % slots: each
+        // count adds the basis to the rows after it as it is read (counts
+        // are sparse, so this is far cheaper than summing over every lag of
+        // every row), and every sum is taken oldest count first.
         let width = self.channels.len() * nb;
-        let mut ahead = vec![0.0; span.max(1) * width];
+        let slots = BATCH_ROWS + span;
+        let mut batch = Batch {
+            history: vec![0.0; slots * width],
+            ..Batch::default()
+        };
+        let mut previous: Option<Vec<u16>> = None;
+        let mut ahead = vec![0usize; span];
         each_row(self.source, k, |t, counts, kin| {
             fill_state(kin, &self.sources, &mut state);
-            let now = (t % span.max(1)) * width;
-            for (i, &c) in self.channels.iter().enumerate() {
-                if !active[i] {
-                    continue;
+            if batch.rows == 0 {
+                batch.first = t;
+            }
+            batch.states.extend_from_slice(&state);
+            batch.counts.extend_from_slice(counts);
+            if self.coupling {
+                match &previous {
+                    Some(prev) => batch.previous.extend_from_slice(prev),
+                    None => batch.previous.resize(batch.previous.len() + n, 0),
                 }
-                x[..d].copy_from_slice(&state);
-                x[d..d + nb].copy_from_slice(&ahead[now + i * nb..now + (i + 1) * nb]);
-                if self.coupling && t > 0 {
-                    let prev = window.counts(0);
+                previous.get_or_insert_with(Vec::new).clear();
+                previous.as_mut().expect("set").extend_from_slice(counts);
+            }
+            batch.rows += 1;
+            if span > 0 {
+                // Row t + span is first reached now; its slot last held a
+                // row already given out.
+                let last = ((t + span) % slots) * width;
+                batch.history[last..last + width].fill(0.0);
+                // Where rows t + 1 ..= t + span start in the ring.
+                for (lag0, at) in ahead.iter_mut().enumerate() {
+                    *at = ((t + lag0 + 1) % slots) * width;
+                }
+                for (i, &c) in self.channels.iter().enumerate() {
+                    if counts[c] == 0 || !active[i] {
+                        continue;
+                    }
+                    let count = f64::from(counts[c]);
+                    for (taps, &at) in self.taps.iter().zip(&ahead) {
+                        let h = &mut batch.history[at + i * nb..at + (i + 1) * nb];
+                        for &(j, w) in taps {
+                            h[j] += w * count;
+                        }
+                    }
+                }
+            }
+            if batch.rows == BATCH_ROWS {
+                batch.flush(self, n, active, &mut x, row);
+            }
+        })?;
+        batch.flush(self, n, active, &mut x, row);
+        Ok(())
+    }
+}
+
+/// Rows gathered before they are given channel by channel.
+pub const BATCH_ROWS: usize = 128;
+
+/// A batch of rows from row `first`: each row's state, every channel's
+/// history columns (a ring of `BATCH_ROWS + span` rows), the counts, and
+/// (for coupling) the previous row's counts, zero before the first row.
+#[derive(Default)]
+struct Batch {
+    rows: usize,
+    first: usize,
+    states: Vec<f64>,
+    history: Vec<f64>,
+    counts: Vec<u16>,
+    previous: Vec<u16>,
+}
+
+impl Batch {
+    fn flush(
+        &mut self,
+        designs: &ChannelDesigns<'_>,
+        n: usize,
+        active: &[bool],
+        x: &mut [f64],
+        row: &mut dyn FnMut(usize, &[f64], f64),
+    ) {
+        let d = designs.sources.len();
+        let nb = designs.n_basis;
+        let width = designs.channels.len() * nb;
+        let slots = self.history.len() / width.max(1);
+        for (i, &c) in designs.channels.iter().enumerate() {
+            if !active[i] {
+                continue;
+            }
+            for r in 0..self.rows {
+                x[..d].copy_from_slice(&self.states[r * d..(r + 1) * d]);
+                if nb > 0 {
+                    let h = ((self.first + r) % slots) * width + i * nb;
+                    x[d..d + nb].copy_from_slice(&self.history[h..h + nb]);
+                }
+                if designs.coupling {
+                    let prev = &self.previous[r * n..(r + 1) * n];
                     let mut at = d + nb;
                     for (other, &v) in prev.iter().enumerate() {
                         if other != c {
@@ -173,26 +255,13 @@ impl<'a> ChannelDesigns<'a> {
                         }
                     }
                 }
-                row(i, &x, f64::from(counts[c]));
+                row(i, x, f64::from(self.counts[r * n + c]));
             }
-            if span > 0 {
-                ahead[now..now + width].fill(0.0);
-                for (i, &c) in self.channels.iter().enumerate() {
-                    if counts[c] == 0 {
-                        continue;
-                    }
-                    let count = f64::from(counts[c]);
-                    for (lag0, taps) in self.taps.iter().enumerate() {
-                        let at = ((t + lag0 + 1) % span) * width + i * nb;
-                        for &(j, w) in taps {
-                            ahead[at + j] += w * count;
-                        }
-                    }
-                }
-            }
-            window.push(counts, &[]);
-        })?;
-        Ok(())
+        }
+        self.rows = 0;
+        self.states.clear();
+        self.counts.clear();
+        self.previous.clear();
     }
 }
 

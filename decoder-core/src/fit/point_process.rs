@@ -144,17 +144,20 @@ impl<'a> ChannelDesigns<'a> {
         let (n, k) = (info.n_channels, info.kinematic_names.len());
         let nb = self.n_basis;
         let span = self.taps.len();
+        let d = self.sources.len();
         let mut x = vec![0.0; self.columns()];
-        let mut state = vec![0.0; self.sources.len()];
-        // The history columns of the batch's rows and the `span` rows
-        // after them, `nb` per channel, row t's at slot t % slots: each
-        // count adds the basis to the rows after it as it is read (counts
-        // are sparse, so this is far cheaper than summing over every lag of
-        // every row), and every sum is taken oldest count first.
-        let width = self.channels.len() * nb;
+        let mut state = vec![0.0; d];
+        // The design rows (state, then history columns) of every channel
+        // for the batch's rows and the `span` rows after them, row t's at
+        // slot t % slots: each count adds the basis to the rows after it as
+        // it is read (counts are sparse, so this is far cheaper than
+        // summing over every lag of every row), and every sum is taken
+        // oldest count first.
+        let q = d + nb;
+        let width = self.channels.len() * q;
         let slots = BATCH_ROWS + span;
         let mut batch = Batch {
-            history: vec![0.0; slots * width],
+            designs: vec![0.0; slots * width],
             ..Batch::default()
         };
         let mut previous: Option<Vec<u16>> = None;
@@ -164,7 +167,12 @@ impl<'a> ChannelDesigns<'a> {
             if batch.rows == 0 {
                 batch.first = t;
             }
-            batch.states.extend_from_slice(&state);
+            let now = (t % slots) * width;
+            for (i, at) in (now..now + width).step_by(q.max(1)).enumerate() {
+                if active[i] {
+                    batch.designs[at..at + d].copy_from_slice(&state);
+                }
+            }
             batch.counts.extend_from_slice(counts);
             if self.coupling {
                 match &previous {
@@ -179,7 +187,7 @@ impl<'a> ChannelDesigns<'a> {
                 // Row t + span is first reached now; its slot last held a
                 // row already given out.
                 let last = ((t + span) % slots) * width;
-                batch.history[last..last + width].fill(0.0);
+                batch.designs[last..last + width].fill(0.0);
                 // Where rows t + 1 ..= t + span start in the ring.
                 for (lag0, at) in ahead.iter_mut().enumerate() {
                     *at = ((t + lag0 + 1) % slots) * width;
@@ -190,7 +198,7 @@ impl<'a> ChannelDesigns<'a> {
                     }
                     let count = f64::from(counts[c]);
                     for (taps, &at) in self.taps.iter().zip(&ahead) {
-                        let h = &mut batch.history[at + i * nb..at + (i + 1) * nb];
+                        let h = &mut batch.designs[at + i * q + d..at + (i + 1) * q];
                         for &(j, w) in taps {
                             h[j] += w * count;
                         }
@@ -209,15 +217,15 @@ impl<'a> ChannelDesigns<'a> {
 /// Rows gathered before they are given channel by channel.
 pub const BATCH_ROWS: usize = 128;
 
-/// A batch of rows from row `first`: each row's state, every channel's
-/// history columns (a ring of `BATCH_ROWS + span` rows), the counts, and
-/// (for coupling) the previous row's counts, zero before the first row.
+/// A batch of rows from row `first`: every channel's design row (state
+/// and history columns, a ring of `BATCH_ROWS + span` rows), the counts,
+/// and (for coupling) the previous row's counts, zero before the first
+/// row.
 #[derive(Default)]
 struct Batch {
     rows: usize,
     first: usize,
-    states: Vec<f64>,
-    history: Vec<f64>,
+    designs: Vec<f64>,
     counts: Vec<u16>,
     previous: Vec<u16>,
 }
@@ -231,35 +239,33 @@ impl Batch {
         x: &mut [f64],
         row: &mut dyn FnMut(usize, &[f64], f64),
     ) {
-        let d = designs.sources.len();
-        let nb = designs.n_basis;
-        let width = designs.channels.len() * nb;
-        let slots = self.history.len() / width.max(1);
+        let q = designs.sources.len() + designs.n_basis;
+        let width = designs.channels.len() * q;
+        let slots = self.designs.len() / width.max(1);
         for (i, &c) in designs.channels.iter().enumerate() {
             if !active[i] {
                 continue;
             }
             for r in 0..self.rows {
-                x[..d].copy_from_slice(&self.states[r * d..(r + 1) * d]);
-                if nb > 0 {
-                    let h = ((self.first + r) % slots) * width + i * nb;
-                    x[d..d + nb].copy_from_slice(&self.history[h..h + nb]);
+                let at = ((self.first + r) % slots) * width + i * q;
+                let own = &self.designs[at..at + q];
+                if !designs.coupling {
+                    row(i, own, f64::from(self.counts[r * n + c]));
+                    continue;
                 }
-                if designs.coupling {
-                    let prev = &self.previous[r * n..(r + 1) * n];
-                    let mut at = d + nb;
-                    for (other, &v) in prev.iter().enumerate() {
-                        if other != c {
-                            x[at] = f64::from(v);
-                            at += 1;
-                        }
+                x[..q].copy_from_slice(own);
+                let prev = &self.previous[r * n..(r + 1) * n];
+                let mut at = q;
+                for (other, &v) in prev.iter().enumerate() {
+                    if other != c {
+                        x[at] = f64::from(v);
+                        at += 1;
                     }
                 }
                 row(i, x, f64::from(self.counts[r * n + c]));
             }
         }
         self.rows = 0;
-        self.states.clear();
         self.counts.clear();
         self.previous.clear();
     }

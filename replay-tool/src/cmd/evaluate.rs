@@ -230,14 +230,22 @@ pub fn write_report(dir: &std::path::Path, eval: &Evaluation, bin_ms: f64) -> Re
         &dir.join("held-out-velocity"),
     )?;
     if !eval.goodness.is_empty() {
-        let mut csv =
-            String::from("decoder,channel,spikes,ks,band_95,within_band,bits_per_spike\n");
+        let mut csv = String::from(
+            "decoder,channel,spikes,ks,ks_resolution,band_95,within_band,bits_per_spike\n",
+        );
         for g in &eval.goodness {
             for c in &g.channels {
                 let _ = writeln!(
                     csv,
-                    "{},{},{},{:?},{:?},{},{:?}",
-                    g.decoder, c.channel, c.spikes, c.ks, c.band, c.within_band, c.bits_per_spike
+                    "{},{},{},{:?},{:?},{:?},{},{:?}",
+                    g.decoder,
+                    c.channel,
+                    c.spikes,
+                    c.ks,
+                    c.ks_resolution,
+                    c.band,
+                    c.within_band,
+                    c.bits_per_spike
                 );
             }
         }

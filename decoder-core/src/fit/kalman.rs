@@ -19,7 +19,7 @@ use crate::decoders::kalman::model::{KalmanModel, ObservationNoise};
 use crate::decoders::kalman::steady::steady_state_gain;
 use crate::fit::TrainError;
 use crate::fit::least_squares::{CountGram, CrossSums, nonzero_counts};
-use crate::fit::rows::{RowWindow, SegmentWalk, each_row};
+use crate::fit::rows::{RowWindow, each_segment_row};
 use crate::formats::block_rows::{BlockInfo, BlockRows};
 use crate::linalg::{self, Mat};
 
@@ -227,26 +227,14 @@ impl KalmanStats {
         groups: &[Vec<Range<usize>>],
     ) -> Result<Vec<KalmanStats>, TrainError> {
         let info = source.info();
-        let (n, k) = (info.n_channels, info.kinematic_names.len());
+        let n = info.n_channels;
         let mut stats: Vec<KalmanStats> = groups
             .iter()
             .map(|_| KalmanStats::new(sources.len(), n, q_form))
             .collect();
-        let mut walk = SegmentWalk::new(
-            groups
-                .iter()
-                .enumerate()
-                .flat_map(|(g, segs)| segs.iter().map(move |s| (s.clone(), g)))
-                .collect(),
-        );
-        let mut window = RowWindow::new(n, k, lag.max(1) + 1);
         let mut scratch = StateScratch::default();
-        each_row(source, k, |t, counts, kin| {
-            let Some((seg, g)) = walk.at(t) else {
-                return;
-            };
-            window.push(counts, kin);
-            stats[g].add_newest(&window, sources, lag, t - seg.start, &mut scratch);
+        each_segment_row(source, groups, lag.max(1) + 1, |g, since_start, window| {
+            stats[g].add_newest(window, sources, lag, since_start, &mut scratch);
         })?;
         Ok(stats)
     }

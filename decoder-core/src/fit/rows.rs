@@ -84,6 +84,35 @@ pub fn each_row(
     })
 }
 
+/// One pass over the rows of groups of segments (`groups[g]`, disjoint
+/// across groups): each row inside a segment is pushed into a window of
+/// the last `window_rows` rows of its segment and `visit(g, since_start,
+/// window)` called with its group and how many rows of its segment came
+/// before it. Rows outside every segment are skipped.
+pub fn each_segment_row(
+    source: &dyn BlockRows,
+    groups: &[Vec<Range<usize>>],
+    window_rows: usize,
+    mut visit: impl FnMut(usize, usize, &RowWindow),
+) -> Result<(), BlockError> {
+    let info = source.info();
+    let (n, k) = (info.n_channels, info.kinematic_names.len());
+    let mut walk = SegmentWalk::new(
+        groups
+            .iter()
+            .enumerate()
+            .flat_map(|(g, segs)| segs.iter().map(move |s| (s.clone(), g)))
+            .collect(),
+    );
+    let mut window = RowWindow::new(n, k, window_rows);
+    each_row(source, k, |t, counts, kin| {
+        if let Some((seg, g)) = walk.at(t) {
+            window.push(counts, kin);
+            visit(g, t - seg.start, &window);
+        }
+    })
+}
+
 /// Which of a sorted list of disjoint segments a row lies in, for rows
 /// visited in increasing order.
 #[derive(Clone, Debug)]

@@ -13,7 +13,7 @@ use crate::decoders::wiener::WienerModel;
 use crate::fit::TrainError;
 use crate::fit::kalman::StateScratch;
 use crate::fit::least_squares::{CountGram, CrossSums, nonzero_counts};
-use crate::fit::rows::{RowWindow, SegmentWalk, each_row};
+use crate::fit::rows::{RowWindow, each_segment_row};
 use crate::formats::block_rows::{BlockInfo, BlockRows};
 use crate::linalg::Mat;
 
@@ -96,26 +96,14 @@ impl WienerStats {
         groups: &[Vec<Range<usize>>],
     ) -> Result<Vec<WienerStats>, TrainError> {
         let info = source.info();
-        let (n, k) = (info.n_channels, info.kinematic_names.len());
+        let n = info.n_channels;
         let mut stats: Vec<WienerStats> = groups
             .iter()
             .map(|_| WienerStats::new(n, taps, output_cols.len()))
             .collect();
-        let mut walk = SegmentWalk::new(
-            groups
-                .iter()
-                .enumerate()
-                .flat_map(|(g, segs)| segs.iter().map(move |s| (s.clone(), g)))
-                .collect(),
-        );
-        let mut window = RowWindow::new(n, k, lag + taps);
         let mut scratch = StateScratch::default();
-        each_row(source, k, |t, counts, kin| {
-            let Some((seg, g)) = walk.at(t) else {
-                return;
-            };
-            window.push(counts, kin);
-            stats[g].add_newest(&window, output_cols, taps, lag, t - seg.start, &mut scratch);
+        each_segment_row(source, groups, lag + taps, |g, since_start, window| {
+            stats[g].add_newest(window, output_cols, taps, lag, since_start, &mut scratch);
         })?;
         Ok(stats)
     }

@@ -133,20 +133,6 @@ impl Block {
         let manifest = read_manifest(&manifest_path)?;
         let counts_path = dir.join(COUNTS_FILE);
         let (n_bins, n_channels, counts) = read_counts(&counts_path)?;
-        if n_bins == 0 || n_channels == 0 {
-            return Err(BlockError::Shape {
-                path: counts_path,
-                problem: format!(
-                    "the block is empty (shape ({n_bins}, {n_channels})); it needs at least one bin and one channel"
-                ),
-            });
-        }
-        if n_channels > 16384 {
-            return Err(BlockError::Shape {
-                path: counts_path,
-                problem: format!("{n_channels} channels; a bin packet carries at most 16384"),
-            });
-        }
         if let Some(labels) = &manifest.channel_labels
             && labels.len() != n_channels
         {
@@ -470,10 +456,11 @@ fn npy_problem(e: &ReadNpyError) -> String {
     }
 }
 
-/// Reads counts.npy straight into u16, a chunk of rows at a time, so the
-/// block costs its counts' size in memory and no wider copy.
-fn read_counts(path: &Path) -> Result<(usize, usize, Vec<u16>), BlockError> {
-    let mut rows = crate::formats::npy_stream::NpyRows::open(path, "counts.npy")?;
+/// Opens counts.npy for reading by rows, its shape checked: two
+/// dimensions, at least one bin and one channel, at most the 16384
+/// channels a bin packet carries.
+pub(crate) fn open_counts(path: &Path) -> Result<crate::formats::npy_stream::NpyRows, BlockError> {
+    let rows = crate::formats::npy_stream::NpyRows::open(path, "counts.npy")?;
     if rows.ndim != 2 {
         return Err(BlockError::Npy {
             path: path.to_path_buf(),
@@ -483,6 +470,28 @@ fn read_counts(path: &Path) -> Result<(usize, usize, Vec<u16>), BlockError> {
             ),
         });
     }
+    let shape = |problem: String| BlockError::Shape {
+        path: path.to_path_buf(),
+        problem,
+    };
+    let (n_bins, n_channels) = (rows.rows, rows.cols);
+    if n_bins == 0 || n_channels == 0 {
+        return Err(shape(format!(
+            "the block is empty (shape ({n_bins}, {n_channels})); it needs at least one bin and one channel"
+        )));
+    }
+    if n_channels > 16384 {
+        return Err(shape(format!(
+            "{n_channels} channels; a bin packet carries at most 16384"
+        )));
+    }
+    Ok(rows)
+}
+
+/// Reads counts.npy straight into u16, a chunk of rows at a time, so the
+/// block costs its counts' size in memory and no wider copy.
+fn read_counts(path: &Path) -> Result<(usize, usize, Vec<u16>), BlockError> {
+    let mut rows = open_counts(path)?;
     let (n_bins, n_channels) = (rows.rows, rows.cols);
     let mut counts = Vec::with_capacity(n_bins * n_channels);
     let mut chunk = Vec::new();

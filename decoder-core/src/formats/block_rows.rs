@@ -13,7 +13,7 @@ use std::path::{Path, PathBuf};
 use crate::bin_width::BinWidth;
 use crate::formats::block::{
     Block, BlockError, BlockManifest, COUNTS_FILE, KINEMATICS_FILE, TRIALS_FILE, Trial, VALID_FILE,
-    read_trials,
+    open_counts, read_trials,
 };
 use crate::formats::npy_stream::NpyRows;
 
@@ -169,31 +169,8 @@ impl BlockFiles {
     pub fn open_with_chunk(dir: &Path, chunk_rows: usize) -> Result<BlockFiles, BlockError> {
         let manifest = BlockManifest::read(dir)?;
         let counts_path = dir.join(COUNTS_FILE);
-        let counts = NpyRows::open(&counts_path, "counts.npy")?;
-        let shape = |problem: String| BlockError::Shape {
-            path: counts_path.clone(),
-            problem,
-        };
-        if counts.ndim != 2 {
-            return Err(BlockError::Npy {
-                path: counts_path.clone(),
-                problem: format!(
-                    "array has {} dimensions; expected 2 (bins × channels)",
-                    counts.ndim
-                ),
-            });
-        }
+        let counts = open_counts(&counts_path)?;
         let (file_bins, n_channels) = (counts.rows, counts.cols);
-        if file_bins == 0 || n_channels == 0 {
-            return Err(shape(format!(
-                "the block is empty (shape ({file_bins}, {n_channels})); it needs at least one bin and one channel"
-            )));
-        }
-        if n_channels > 16384 {
-            return Err(shape(format!(
-                "{n_channels} channels; a bin packet carries at most 16384"
-            )));
-        }
         if let Some(labels) = &manifest.channel_labels
             && labels.len() != n_channels
         {
@@ -422,16 +399,44 @@ mod tests {
         (c, x, firsts)
     }
 
+    /// A block of made-up counts and kinematics with a trial every 100
+    /// bins (the simulator lives above this module).
+    fn block(n_bins: usize, n_channels: usize) -> Block {
+        let names: Vec<String> = ["pos_x", "vel_x"].map(String::from).to_vec();
+        Block {
+            bin_width: BinWidth::from_us(20_000).unwrap(),
+            n_bins,
+            n_channels,
+            counts: (0..n_bins * n_channels)
+                .map(|i| (i * 7 % 5) as u16)
+                .collect(),
+            kinematics: Some(crate::linalg::Mat {
+                rows: n_bins,
+                cols: 2,
+                data: (0..n_bins * 2).map(|i| (i as f64 * 0.37).sin()).collect(),
+            }),
+            kinematic_names: names,
+            trials: Some(
+                (0..n_bins / 100)
+                    .map(|k| Trial {
+                        trial: k as u32,
+                        start_bin: 100 * k + 10,
+                        end_bin: 100 * k + 90,
+                        target_x: 1.0,
+                        target_y: -1.0,
+                    })
+                    .collect(),
+            ),
+            channel_labels: None,
+            notes: None,
+            valid: None,
+        }
+    }
+
     #[test]
     fn files_and_memory_give_the_same_valid_rows_and_trials() {
         let dir = tempfile::tempdir().unwrap();
-        let mut block = crate::sim::reaching::simulate(&crate::sim::reaching::SimOptions {
-            minutes: 0.4,
-            n_channels: 5,
-            ..Default::default()
-        })
-        .unwrap()
-        .0;
+        let mut block = block(1200, 5);
         let mut valid = vec![true; block.n_bins];
         for b in (3..block.n_bins).step_by(7) {
             valid[b] = false;
@@ -460,13 +465,7 @@ mod tests {
     #[test]
     fn a_valid_file_of_the_wrong_length_is_named() {
         let dir = tempfile::tempdir().unwrap();
-        let mut block = crate::sim::reaching::simulate(&crate::sim::reaching::SimOptions {
-            minutes: 0.05,
-            n_channels: 3,
-            ..Default::default()
-        })
-        .unwrap()
-        .0;
+        let mut block = block(150, 3);
         block.valid = Some(vec![true; block.n_bins]);
         block.write(dir.path()).unwrap();
         let mut short = Vec::new();

@@ -128,6 +128,7 @@ struct Running {
     /// Σ y over the rows, and the rows.
     total: f64,
     rows: f64,
+    /// Deviance of the intercept-only model (the half-sum, ×2 when read).
     null_deviance: f64,
     /// Deviance of the current β (the half-sum, ×2 when read).
     half_deviance: f64,

@@ -146,17 +146,7 @@ impl Block {
         }
         let kin_path = dir.join(KINEMATICS_FILE);
         let kinematics = if kin_path.exists() {
-            let kin = read_kinematics(&kin_path, &manifest.kinematics)?;
-            if kin.rows != n_bins {
-                return Err(BlockError::Shape {
-                    path: kin_path,
-                    problem: format!(
-                        "kinematics.npy has {} rows but counts.npy has {n_bins}; row t of both must describe the same bin",
-                        kin.rows
-                    ),
-                });
-            }
-            Some(kin)
+            Some(read_kinematics(&kin_path, &manifest.kinematics, n_bins)?)
         } else {
             None
         };
@@ -501,7 +491,35 @@ fn read_counts(path: &Path) -> Result<(usize, usize, Vec<u16>), BlockError> {
     Ok((n_bins, n_channels, counts))
 }
 
-fn read_kinematics(path: &Path, names: &[String]) -> Result<Mat, BlockError> {
+/// Checks kinematics.npy's shape: one column per name in the manifest, one
+/// row per bin of counts.npy.
+pub(crate) fn check_kinematics_shape(
+    path: &Path,
+    rows: usize,
+    cols: usize,
+    names: &[String],
+    n_bins: usize,
+) -> Result<(), BlockError> {
+    let problem = if cols != names.len() {
+        format!(
+            "kinematics.npy has {cols} columns but manifest.toml key kinematics names {} ({})",
+            names.len(),
+            names.join(", ")
+        )
+    } else if rows != n_bins {
+        format!(
+            "kinematics.npy has {rows} rows but counts.npy has {n_bins}; row t of both must describe the same bin"
+        )
+    } else {
+        return Ok(());
+    };
+    Err(BlockError::Shape {
+        path: path.to_path_buf(),
+        problem,
+    })
+}
+
+fn read_kinematics(path: &Path, names: &[String], n_bins: usize) -> Result<Mat, BlockError> {
     let bytes = read_bytes(path, "kinematics.npy")?;
     let arr = match Array2::<f64>::read_npy(&bytes[..]) {
         Ok(a) => a,
@@ -528,16 +546,7 @@ fn read_kinematics(path: &Path, names: &[String]) -> Result<Mat, BlockError> {
         }
     };
     let (rows, cols) = arr.dim();
-    if cols != names.len() {
-        return Err(BlockError::Shape {
-            path: path.to_path_buf(),
-            problem: format!(
-                "kinematics.npy has {cols} columns but manifest.toml key kinematics names {} ({})",
-                names.len(),
-                names.join(", ")
-            ),
-        });
-    }
+    check_kinematics_shape(path, rows, cols, names, n_bins)?;
     let mut data = Vec::with_capacity(rows * cols);
     for ((bin, column), &value) in arr.indexed_iter() {
         if !value.is_finite() {

@@ -13,7 +13,7 @@ use std::path::{Path, PathBuf};
 use crate::bin_width::BinWidth;
 use crate::formats::block::{
     Block, BlockError, BlockManifest, COUNTS_FILE, KINEMATICS_FILE, TRIALS_FILE, Trial, VALID_FILE,
-    open_counts, read_trials,
+    check_kinematics_shape, open_counts, read_trials,
 };
 use crate::formats::npy_stream::NpyRows;
 
@@ -200,7 +200,7 @@ impl BlockFiles {
                     "array has {} dimensions; expected 2 (bins × columns)",
                     kin.ndim
                 ))
-            } else if kin.is_integer() || kin.dtype_name() == "float16" {
+            } else if kin.is_integer() {
                 Some(format!(
                     "dtype {} is not float64 or float32",
                     kin.dtype_name()
@@ -214,26 +214,13 @@ impl BlockFiles {
                     problem,
                 });
             }
-            if kin.cols != manifest.kinematic_names.len() {
-                return Err(BlockError::Shape {
-                    path: kin_path,
-                    problem: format!(
-                        "kinematics.npy has {} columns but manifest.toml key kinematics names {} ({})",
-                        kin.cols,
-                        manifest.kinematic_names.len(),
-                        manifest.kinematic_names.join(", ")
-                    ),
-                });
-            }
-            if kin.rows != file_bins {
-                return Err(BlockError::Shape {
-                    path: kin_path,
-                    problem: format!(
-                        "kinematics.npy has {} rows but counts.npy has {file_bins}; row t of both must describe the same bin",
-                        kin.rows
-                    ),
-                });
-            }
+            check_kinematics_shape(
+                &kin_path,
+                kin.rows,
+                kin.cols,
+                &manifest.kinematic_names,
+                file_bins,
+            )?;
         }
         let trials_path = dir.join(TRIALS_FILE);
         let trials = if trials_path.exists() {

@@ -232,3 +232,52 @@ impl Daemon {
 pub fn seqs(p: &[VelocityPacket]) -> Vec<u64> {
     p.iter().map(|p| p.seq).collect()
 }
+
+/// Whether the daemon answered this slot with a predict-only step.
+pub fn missing(p: &VelocityPacket) -> bool {
+    p.flags & packet::FLAG_BIN_MISSING != 0
+}
+
+/// What a live test controls about a stream, checked without asking what
+/// the host's scheduler decided: every slot in `slots` answered once and in
+/// order; every seq in `withheld` (never sent) answered as missing; and
+/// every bin that was sent accounted for — decoded in its slot, or, when a
+/// loaded host held the sender or the daemon past the slot's deadline,
+/// answered as missing and counted late when it came. Whether a sent bin
+/// beat its deadline is the scheduler's call, so no test asserts it; the
+/// slot engine's own tests pin that rule with time as data, and
+/// `replay-tool bench` measures it.
+pub fn assert_slots_accounted(
+    packets: &[VelocityPacket],
+    slots: std::ops::Range<u64>,
+    withheld: &[u64],
+    status: &Status,
+) {
+    let n = (slots.end - slots.start) as usize;
+    assert!(packets.len() >= n, "{} packets for {n} slots", packets.len());
+    let answered = &packets[..n];
+    assert_eq!(seqs(answered), slots.clone().collect::<Vec<_>>());
+    for p in answered {
+        if withheld.contains(&p.seq) {
+            assert!(missing(p), "seq {} was never sent but was decoded", p.seq);
+        } else {
+            // A decoded slot is armed; a coasted one says so.
+            assert_eq!(p.state, if missing(p) { 2 } else { 1 }, "seq {}", p.seq);
+        }
+    }
+    let sent_but_coasted = answered
+        .iter()
+        .filter(|p| missing(p) && !withheld.contains(&p.seq))
+        .count() as u64;
+    let sent = (n - withheld.len()) as u64;
+    let c = &status.counters;
+    assert_eq!(
+        c.bins_decoded + sent_but_coasted,
+        sent,
+        "every sent bin decoded or answered late: {c:?}"
+    );
+    assert!(
+        c.bins_late >= sent_but_coasted,
+        "a coasted slot's bin is counted late when it comes: {c:?}"
+    );
+}

@@ -18,9 +18,9 @@ use std::time::Duration;
 use daemon::status::Percentiles;
 use daemon_rig::{ActuatorSink, BinFault, Launch, loopback_floor, paced_send};
 use decoder_core::fit::kalman::{KalmanFitOptions, SteadyStateOptions};
-use decoder_core::formats::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::sim::model::simulated_kalman;
 use decoder_core::sim::reaching::SimOptions;
+use decoder_core::wire::packet::{self, FLAG_BIN_MISSING};
 
 fn env(name: &str, default: u64) -> u64 {
     std::env::var(name)

@@ -19,20 +19,17 @@ use std::sync::{Arc, Mutex};
 use crossbeam_channel::{Receiver, Sender, TryRecvError};
 use decoder_core::ModelFile;
 use decoder_core::decoders::DecoderModel;
-use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::SlotAnswer;
 use decoder_core::engine::supervisor::SupervisorState;
 use decoder_core::fit::adapt::{
-    AdaptOptions, AdaptReport, AdaptSkip, Batch, BatchRow, adapt_kalman, adapt_point_process,
-    check_adaptable,
+    AdaptOptions, AdaptSkip, Batch, BatchRow, adapt_kalman, adapt_point_process, check_adaptable,
 };
-use decoder_core::formats::packet::FLAG_BIN_MISSING;
-use decoder_core::formats::task_packet::{MAX_TASK_DIMS, Phase, TaskState};
-use serde::{Deserialize, Serialize};
-use sha2::{Digest, Sha256};
+use decoder_core::wire::packet::FLAG_BIN_MISSING;
+use decoder_core::wire::task_packet::{MAX_TASK_DIMS, Phase, TaskState};
 
-use crate::rt_loop::{ControlRequest, LoadRequest};
-use crate::status::ModelInfo;
+use crate::model_identity::ModelInfo;
+use crate::requests::{ControlRequest, LoadRequest, Swapped};
+use crate::status::{AdaptStatus, AppliedUpdate, WorkerCounts};
 
 /// What the worker is told.
 pub enum AdaptMsg {
@@ -43,80 +40,6 @@ pub enum AdaptMsg {
     },
     /// A full batch to refit on.
     Batch { generation: u64, batch: Batch },
-}
-
-/// What the worker has done, shared with status.
-#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
-pub struct WorkerCounts {
-    pub updates: u64,
-    pub skipped_too_few_bins: u64,
-    pub skipped_refused: u64,
-    /// Updates computed but refused by the real-time thread (no longer
-    /// armed, adaptation turned off, or another model loaded meanwhile).
-    pub not_applied: u64,
-    pub last_update: Option<AppliedUpdate>,
-    pub last_skip: Option<String>,
-}
-
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct AppliedUpdate {
-    pub update: u64,
-    /// First seq the adapted model decodes.
-    pub from_seq: u64,
-    pub report: AdaptReport,
-}
-
-/// The adaptation part of status.
-#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
-pub struct AdaptStatus {
-    pub on: bool,
-    /// Why the running model cannot adapt (`None`: it can).
-    pub unavailable: Option<String>,
-    pub batch_s: f64,
-    pub half_life_s: f64,
-    pub bins_per_batch: usize,
-    /// The batch being collected: usable bins of slots so far.
-    pub batch_rows: usize,
-    pub batch_slots: usize,
-    pub batches_sent: u64,
-    /// Batches dropped because the worker was still busy with the last.
-    pub batches_dropped_busy: u64,
-    #[serde(flatten)]
-    pub worker: WorkerCounts,
-}
-
-impl AdaptStatus {
-    /// The status table's line.
-    pub fn line(&self) -> String {
-        if let Some(why) = &self.unavailable {
-            return format!("not available: {why}");
-        }
-        if !self.on {
-            return format!(
-                "off ({} so far); `ctl adapt on` to start",
-                crate::status::plural(self.worker.updates, "update", "updates")
-            );
-        }
-        let last = self.worker.last_update.as_ref().map_or(String::new(), |u| {
-            format!(
-                "; last from seq {} ({} bins, change {:.3}{})",
-                u.from_seq,
-                u.report.rows,
-                u.report.relative_change,
-                if u.report.limited { ", limited" } else { "" }
-            )
-        });
-        format!(
-            "ON: {}, {} skipped (too few bins), {} refused, {} not applied; batch {}/{} slots ({} usable){last}",
-            crate::status::plural(self.worker.updates, "update", "updates"),
-            self.worker.skipped_too_few_bins,
-            self.worker.skipped_refused,
-            self.worker.not_applied,
-            self.batch_slots,
-            self.bins_per_batch,
-            self.batch_rows
-        )
-    }
 }
 
 /// The real-time thread's side: collects the batch.
@@ -463,7 +386,7 @@ impl Worker {
         .to_string();
         file.provenance.cv = None;
         let bytes = file.to_bytes();
-        let pipeline = match DecodePipeline::new(&file) {
+        let pipeline = match file.pipeline() {
             Ok(p) => p,
             Err(e) => {
                 self.note(|c| {
@@ -473,37 +396,30 @@ impl Worker {
                 return;
             }
         };
-        let sha256: String = Sha256::digest(&bytes)
-            .iter()
-            .map(|b| format!("{b:02x}"))
-            .collect();
-        let info = ModelInfo {
-            path: format!(
+        let info = ModelInfo::of(
+            format!(
                 "adaptation update {update} of {}",
                 root_path(&base_info.path)
             ),
-            sha256,
-            ..base_info.clone()
-        };
-        let (reply, rx) = tokio::sync::oneshot::channel();
-        let request = LoadRequest {
+            &file,
+            &bytes,
+        );
+        let (request, rx) = LoadRequest::ask(
+            file.clone(),
+            bytes,
+            info.clone(),
             pipeline,
-            model_bytes: bytes,
-            model: Box::new(file.clone()),
-            info: info.clone(),
-            reply,
-            adaptation: Some(generation),
-        };
-        if self
-            .control
-            .try_send(ControlRequest::Load(Box::new(request)))
-            .is_err()
-        {
+            Some(generation),
+        );
+        if self.control.try_send(request).is_err() {
             self.note(|c| c.not_applied += 1);
             return;
         }
         match rx.blocking_recv() {
-            Ok(Ok((from_seq, old))) => {
+            Ok(Ok(Swapped {
+                first_seq: from_seq,
+                old,
+            })) => {
                 drop(old);
                 self.updates = update;
                 tracing::info!(

@@ -13,13 +13,13 @@ use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{OperatorCommand, check_swap_against};
 use decoder_core::formats::model_file::ModelFile;
 use serde::{Deserialize, Serialize};
-use sha2::{Digest, Sha256};
 use tokio::io::{AsyncBufReadExt, AsyncReadExt, AsyncWriteExt, BufReader};
 use tokio::net::{UnixListener, UnixStream};
 use tokio::sync::oneshot;
 
-use crate::rt_loop::{ControlRequest, LoadRequest};
-use crate::status::{ModelInfo, Status};
+use crate::model_identity::ModelInfo;
+use crate::requests::{ControlRequest, LoadRequest, Refused, Swapped};
+use crate::status::Status;
 
 #[derive(Debug, Serialize, Deserialize)]
 #[serde(tag = "cmd", rename_all = "lowercase")]
@@ -59,18 +59,7 @@ pub struct LoadedModel {
 pub fn read_model(path: &Path) -> Result<LoadedModel> {
     let bytes = decoder_core::formats::model_file::read_model_bytes(path)?;
     let file = ModelFile::from_bytes(&bytes, &path.display().to_string())?;
-    let sha256: String = Sha256::digest(&bytes)
-        .iter()
-        .map(|b| format!("{b:02x}"))
-        .collect();
-    let info = ModelInfo {
-        path: path.display().to_string(),
-        sha256,
-        kind: file.decoder.kind().into(),
-        channels: file.decoder.n_channels(),
-        bin_ms: file.bin_width.ms(),
-        outputs: file.decoder.outputs().to_vec(),
-    };
+    let info = ModelInfo::of(path.display().to_string(), &file, &bytes);
     Ok(LoadedModel { file, bytes, info })
 }
 
@@ -260,20 +249,16 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
             let (pipeline, loaded) = loaded;
             let sha = loaded.info.sha256.clone();
             let path = loaded.info.path.clone();
-            let (reply, rx) = oneshot::channel();
-            let request = LoadRequest {
-                pipeline,
-                model_bytes: loaded.bytes,
-                model: Box::new(loaded.file),
-                info: loaded.info,
-                reply,
-                adaptation: None,
-            };
-            if let Err(reply) = to_rt_now(to_rt, ControlRequest::Load(Box::new(request))) {
+            let (request, rx) =
+                LoadRequest::ask(loaded.file, loaded.bytes, loaded.info, pipeline, None);
+            if let Err(reply) = to_rt_now(to_rt, request) {
                 return reply;
             }
             match rx.await {
-                Ok(Ok((seq, old))) => {
+                Ok(Ok(Swapped {
+                    first_seq: seq,
+                    old,
+                })) => {
                     // The old decoder is freed here, not on the real-time thread.
                     drop(old);
                     let m = format!("loaded {path} (sha256 {sha}); it decodes from seq {seq}");
@@ -292,18 +277,20 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
 }
 
 /// Hands an operator's request to the real-time thread and turns its
-/// answer (a message, or a refusal) into the reply, logging it as `what`.
-async fn operator_reply(
+/// answer (what it did, or why it refused) into the reply, logging it as
+/// `what`.
+async fn operator_reply<T: std::fmt::Display>(
     to_rt: &Sender<ControlRequest>,
     what: &str,
-    request: impl FnOnce(oneshot::Sender<Result<String, String>>) -> ControlRequest,
+    request: impl FnOnce(oneshot::Sender<Result<T, Refused>>) -> ControlRequest,
 ) -> Reply {
     let (reply, rx) = oneshot::channel();
     if let Err(reply) = to_rt_now(to_rt, request(reply)) {
         return reply;
     }
     match rx.await {
-        Ok(Ok(m)) => {
+        Ok(Ok(done)) => {
+            let m = done.to_string();
             tracing::info!("{what}: {m}");
             Reply {
                 ok: true,
@@ -311,7 +298,8 @@ async fn operator_reply(
                 status: None,
             }
         }
-        Ok(Err(m)) => {
+        Ok(Err(refused)) => {
+            let m = refused.to_string();
             tracing::warn!("{what}: {m}");
             fail(m)
         }
@@ -321,7 +309,9 @@ async fn operator_reply(
 
 fn prepare_load(path: &Path, shape: StreamShape) -> Result<(DecodePipeline, LoadedModel)> {
     let loaded = read_model(path)?;
-    let pipeline = DecodePipeline::new(&loaded.file)
+    let pipeline = loaded
+        .file
+        .pipeline()
         .with_context(|| format!("model {} cannot be run", path.display()))?;
     check_swap_against(
         &pipeline,

@@ -11,7 +11,9 @@ pub mod adaptation;
 pub mod alloc_count;
 pub mod config;
 pub mod control;
+pub mod model_identity;
 pub mod recorder;
+pub mod requests;
 pub mod rt_loop;
 pub mod status;
 pub mod sys;
@@ -27,15 +29,15 @@ use std::time::{Duration, Instant, SystemTime};
 use anyhow::{Context, Result};
 use clap::{Parser, Subcommand};
 use crossbeam_channel::Receiver;
-use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{EngineEvent, SlotEngine};
-use decoder_core::formats::packet;
 use decoder_core::formats::session_log::{self, LogHeader, RecordKind};
+use decoder_core::wire::packet;
 
 use crate::config::{Config, LogFormat, Overrides, RawConfig};
 use crate::control::{Reply, Request, StreamShape};
 use crate::recorder::Recorder;
-use crate::rt_loop::{ControlRequest, RtLoop, StaticInfo, TimedEvent};
+use crate::requests::ControlRequest;
+use crate::rt_loop::{RtLoop, StaticInfo, TimedEvent};
 use crate::status::{Monitor, Status};
 
 pub const VERSION: &str = env!("CARGO_PKG_VERSION");
@@ -331,7 +333,9 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
     let started = Instant::now();
     let model_path = config.model.clone();
     let mut loaded = control::read_model(&model_path).context(config.sources.model)?;
-    let pipeline = DecodePipeline::new(&loaded.file)
+    let pipeline = loaded
+        .file
+        .pipeline()
         .with_context(|| format!("model {} cannot be run", model_path.display()))?;
     let settings = config.engine_settings(loaded.file.bin_width);
     let n_channels = pipeline.n_channels();

@@ -15,18 +15,18 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
 use crossbeam_channel::{Receiver, Sender};
-use decoder_core::engine::pipeline::DecodePipeline;
-use decoder_core::engine::slot_engine::{
-    EngineEvent, OperatorCommand, SlotAnswer, SlotEngine, SlotSink,
-};
+use decoder_core::engine::slot_engine::{EngineEvent, SlotAnswer, SlotEngine, SlotSink};
 use decoder_core::engine::supervisor::SupervisorState;
 use decoder_core::formats::session_log::{self, RecordKind};
-use decoder_core::formats::{packet, task_packet};
-use tokio::sync::oneshot;
+use decoder_core::wire::{packet, task_packet};
 
 use crate::adaptation::Collector;
+use crate::model_identity::ModelInfo;
 use crate::recorder::{RecordBatcher, RecorderStats};
-use crate::status::{ModelInfo, Monitor, Status, TaskMonitor, rejected_by_name};
+use crate::requests::{
+    AdaptOutcome, ControlRequest, LoadRequest, OperatorOutcome, Refused, Swapped,
+};
+use crate::status::{Monitor, Status, TaskMonitor, rejected_by_name};
 use crate::{alloc_count, sys};
 
 /// The longest the loop sleeps without looking at control requests and
@@ -36,35 +36,6 @@ const IDLE_WAKE: Duration = Duration::from_millis(20);
 const MAX_BURST: usize = 256;
 /// Task packets handled per wake before the loop looks at bins again.
 pub const TASK_BURST: usize = 16;
-
-/// A request from the control socket to the real-time thread.
-pub enum ControlRequest {
-    Status(oneshot::Sender<Status>),
-    Operator {
-        command: OperatorCommand,
-        reply: oneshot::Sender<Result<String, String>>,
-    },
-    Load(Box<LoadRequest>),
-    /// `ctl adapt on|off`.
-    Adapt {
-        on: bool,
-        reply: oneshot::Sender<Result<String, String>>,
-    },
-}
-
-/// A model already read and validated off the real-time thread.
-pub struct LoadRequest {
-    pub pipeline: DecodePipeline,
-    pub model_bytes: Vec<u8>,
-    pub model: Box<decoder_core::ModelFile>,
-    pub info: ModelInfo,
-    /// An adaptation update, computed in this generation (`None`: an
-    /// operator's load).
-    pub adaptation: Option<u64>,
-    /// On success the seq of the first slot the new model decodes, and the
-    /// old pipeline, to be freed by the caller.
-    pub reply: oneshot::Sender<Result<(u64, DecodePipeline), String>>,
-}
 
 /// An event with its time, for the logging thread.
 pub type TimedEvent = (u64, EngineEvent);
@@ -138,7 +109,7 @@ struct Out<'a> {
     events_not_logged: &'a mut u64,
     json: &'a mut Vec<u8>,
     adapt: &'a mut Collector,
-    task: Option<&'a decoder_core::formats::task_packet::TaskState>,
+    task: Option<&'a decoder_core::wire::task_packet::TaskState>,
 }
 
 impl SlotSink for Out<'_> {
@@ -313,14 +284,9 @@ impl RtLoop {
                     }
                     let state = self.engine.state().name();
                     let _ = reply.send(match result {
-                        Ok(Some(t)) => Ok(format!(
-                            "{} -> {} at seq {}",
-                            t.from.name(),
-                            t.to.name(),
-                            t.seq
-                        )),
-                        Ok(None) => Ok(format!("already {state}")),
-                        Err(e) => Err(format!("refused: {e}")),
+                        Ok(Some(t)) => Ok(OperatorOutcome::Changed(t)),
+                        Ok(None) => Ok(OperatorOutcome::Unchanged { state }),
+                        Err(e) => Err(Refused::Operator(e)),
                     });
                 }
                 ControlRequest::Adapt { on, reply } => {
@@ -335,7 +301,7 @@ impl RtLoop {
                             );
                         }
                     }
-                    let _ = reply.send(result);
+                    let _ = reply.send(result.map(AdaptOutcome).map_err(Refused::Adaptation));
                 }
                 ControlRequest::Load(load) => {
                     let LoadRequest {
@@ -349,7 +315,7 @@ impl RtLoop {
                     if let Some(generation) = adaptation
                         && let Err(why) = self.adapt.accepts(generation, self.engine.state())
                     {
-                        let _ = reply.send(Err(why));
+                        let _ = reply.send(Err(Refused::Adaptation(why)));
                         continue;
                     }
                     let mut out = out!(self, json);
@@ -390,10 +356,13 @@ impl RtLoop {
                             }
                             self.info.model = info;
                             let seq = self.engine.next_seq().unwrap_or(0);
-                            let _ = reply.send(Ok((seq, old)));
+                            let _ = reply.send(Ok(Swapped {
+                                first_seq: seq,
+                                old,
+                            }));
                         }
                         Err(refused) => {
-                            let _ = reply.send(Err(refused.0.to_string()));
+                            let _ = reply.send(Err(Refused::Swap(refused.0)));
                         }
                     }
                 }

@@ -8,11 +8,13 @@ use std::fmt::Write as _;
 
 use decoder_core::engine::slot_engine::{EngineCounters, SlotAnswer};
 use decoder_core::engine::supervisor::Transition;
-use decoder_core::formats::packet::RejectReason;
-use decoder_core::formats::task_packet::{N_TASK_REJECT_REASONS, TaskReject, TaskState};
+use decoder_core::fit::adapt::AdaptReport;
+use decoder_core::wire::packet::RejectReason;
+use decoder_core::wire::task_packet::{N_TASK_REJECT_REASONS, TaskReject, TaskState};
 use hdrhistogram::Histogram;
 use serde::{Deserialize, Serialize};
 
+pub use crate::model_identity::ModelInfo;
 use crate::recorder::RecorderSnapshot;
 
 /// Latency histograms, in ns, 1 ns to 60 s at 3 significant digits.
@@ -244,16 +246,6 @@ pub struct LatencyReport {
     pub deadline_overrun_us: Percentiles,
 }
 
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct ModelInfo {
-    pub path: String,
-    pub sha256: String,
-    pub kind: String,
-    pub channels: usize,
-    pub bin_ms: f64,
-    pub outputs: Vec<String>,
-}
-
 /// The supervisor's last state change, in words.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct StateChange {
@@ -321,7 +313,7 @@ pub struct Status {
     pub task: TaskStatus,
     /// Online adaptation: on or off, updates, skips.
     #[serde(default)]
-    pub adaptation: crate::adaptation::AdaptStatus,
+    pub adaptation: AdaptStatus,
     /// The last velocity packet's command and estimate.
     #[serde(default)]
     pub last_command: Vec<f64>,
@@ -546,6 +538,80 @@ impl Status {
             l.p99,
             l.max,
             self.recording.as_ref().map_or(0, |r| r.records_lost)
+        )
+    }
+}
+
+/// What the worker has done, shared with status.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct WorkerCounts {
+    pub updates: u64,
+    pub skipped_too_few_bins: u64,
+    pub skipped_refused: u64,
+    /// Updates computed but refused by the real-time thread (no longer
+    /// armed, adaptation turned off, or another model loaded meanwhile).
+    pub not_applied: u64,
+    pub last_update: Option<AppliedUpdate>,
+    pub last_skip: Option<String>,
+}
+
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct AppliedUpdate {
+    pub update: u64,
+    /// First seq the adapted model decodes.
+    pub from_seq: u64,
+    pub report: AdaptReport,
+}
+
+/// The adaptation part of status.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct AdaptStatus {
+    pub on: bool,
+    /// Why the running model cannot adapt (`None`: it can).
+    pub unavailable: Option<String>,
+    pub batch_s: f64,
+    pub half_life_s: f64,
+    pub bins_per_batch: usize,
+    /// The batch being collected: usable bins of slots so far.
+    pub batch_rows: usize,
+    pub batch_slots: usize,
+    pub batches_sent: u64,
+    /// Batches dropped because the worker was still busy with the last.
+    pub batches_dropped_busy: u64,
+    #[serde(flatten)]
+    pub worker: WorkerCounts,
+}
+
+impl AdaptStatus {
+    /// The status table's line.
+    pub fn line(&self) -> String {
+        if let Some(why) = &self.unavailable {
+            return format!("not available: {why}");
+        }
+        if !self.on {
+            return format!(
+                "off ({} so far); `ctl adapt on` to start",
+                plural(self.worker.updates, "update", "updates")
+            );
+        }
+        let last = self.worker.last_update.as_ref().map_or(String::new(), |u| {
+            format!(
+                "; last from seq {} ({} bins, change {:.3}{})",
+                u.from_seq,
+                u.report.rows,
+                u.report.relative_change,
+                if u.report.limited { ", limited" } else { "" }
+            )
+        });
+        format!(
+            "ON: {}, {} skipped (too few bins), {} refused, {} not applied; batch {}/{} slots ({} usable){last}",
+            plural(self.worker.updates, "update", "updates"),
+            self.worker.skipped_too_few_bins,
+            self.worker.skipped_refused,
+            self.worker.not_applied,
+            self.batch_slots,
+            self.bins_per_batch,
+            self.batch_rows
         )
     }
 }

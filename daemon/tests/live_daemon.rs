@@ -8,12 +8,10 @@ mod support;
 use std::time::{Duration, Instant};
 
 use daemon::control::Request;
-use decoder_core::engine::log_replay::replay_log;
-use decoder_core::formats::packet::{FLAG_MODEL_CHANGED, VelocityPacket};
+use decoder_core::formats::log_replay::replay_log;
 use decoder_core::formats::session_log::{LogEnd, LogReader, LogRecord};
-use support::{
-    BIN, Daemon, PATIENCE, TEST_TIMING, assert_slots_accounted, fixture, missing, seqs,
-};
+use decoder_core::wire::packet::{FLAG_MODEL_CHANGED, VelocityPacket};
+use support::{BIN, Daemon, PATIENCE, TEST_TIMING, assert_slots_accounted, fixture, missing, seqs};
 
 #[test]
 fn normal_stream_is_decoded_bin_by_bin() {
@@ -147,7 +145,11 @@ fn duplicates_are_dropped_and_reordered_bins_decoded_in_order() {
     if p[..20].iter().all(|p| !missing(p)) {
         assert_eq!(s.counters.bins_duplicate, 2);
     } else {
-        assert!(s.counters.bins_duplicate + s.counters.bins_late >= 2, "{:?}", s.counters);
+        assert!(
+            s.counters.bins_duplicate + s.counters.bins_late >= 2,
+            "{:?}",
+            s.counters
+        );
     }
 }
 
@@ -754,7 +756,7 @@ fn the_python_example_sender_drives_the_daemon() {
 
 #[test]
 fn task_packets_are_recorded_and_counted_and_a_flood_of_them_delays_no_bin() {
-    use decoder_core::formats::task_packet::{
+    use decoder_core::wire::task_packet::{
         Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
     };
     let mut d = Daemon::start(true, TEST_TIMING);
@@ -838,7 +840,7 @@ fn task_packets_are_recorded_and_counted_and_a_flood_of_them_delays_no_bin() {
 /// Sends bin `seq` after the task packet drawn after bin `seq − 1`, as a
 /// task computer in closed loop would.
 fn closed_loop_bin(d: &Daemon, seq: u64, closed_loop: bool) {
-    use decoder_core::formats::task_packet::{
+    use decoder_core::wire::task_packet::{
         Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
     };
     if seq > 0 {

@@ -91,7 +91,7 @@ impl Drop for Pane {
 }
 
 fn task_packet(seq: u64) -> Vec<u8> {
-    use decoder_core::formats::task_packet::{
+    use decoder_core::wire::task_packet::{
         Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
     };
     let mut t = TaskState::new(2);
@@ -217,10 +217,22 @@ fn a_frame_holds_what_the_operator_needs() {
         frame.contains("stream     24.5 bins/s decoded, 25.0 slots/s"),
         "{frame}"
     );
-    assert!(frame.contains("last bin   12 ms ago; next seq 50"), "{frame}");
-    assert!(frame.contains("dropouts   1 missing (coasted), 0 late"), "{frame}");
-    assert!(frame.contains("command    vel_x    +0.25  vel_y    -1.50"), "{frame}");
-    assert!(frame.contains("estimate   vel_x    +0.50  vel_y    -3.00"), "{frame}");
+    assert!(
+        frame.contains("last bin   12 ms ago; next seq 50"),
+        "{frame}"
+    );
+    assert!(
+        frame.contains("dropouts   1 missing (coasted), 0 late"),
+        "{frame}"
+    );
+    assert!(
+        frame.contains("command    vel_x    +0.25  vel_y    -1.50"),
+        "{frame}"
+    );
+    assert!(
+        frame.contains("estimate   vel_x    +0.50  vel_y    -3.00"),
+        "{frame}"
+    );
     assert!(frame.contains("trial 7 reach, closed loop"), "{frame}");
     assert!(frame.contains("adaptation off"), "{frame}");
     assert!(

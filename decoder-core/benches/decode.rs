@@ -11,11 +11,11 @@ use decoder_core::decoders::history_basis::RaisedCosineBasis;
 use decoder_core::decoders::kalman::steady::steady_state_gain;
 use decoder_core::decoders::kalman::{KalmanFilter, KalmanModel, ObservationNoise};
 use decoder_core::decoders::point_process::{ChannelGlm, PointProcessFilter, PointProcessModel};
-use decoder_core::engine::pipeline::{DecodePipeline, replay_block};
 use decoder_core::fit::kalman::{KalmanFitOptions, fit_kalman};
 use decoder_core::formats::block::Block;
 use decoder_core::formats::model_file::{ModelFile, Provenance};
 use decoder_core::linalg::Mat;
+use decoder_core::session::replay::replay_block;
 use decoder_core::sim::reaching::{SimOptions, simulate};
 use rand::{RngExt, SeedableRng};
 use rand_chacha::ChaCha8Rng;
@@ -139,7 +139,7 @@ fn replay_throughput(c: &mut Criterion) {
             decoder: DecoderModel::Kalman(model),
             provenance: Provenance::untracked(),
         };
-        let mut pipeline = DecodePipeline::new(&mf).unwrap();
+        let mut pipeline = mf.pipeline().unwrap();
         let name = if steady { "steady/192" } else { "full/192" };
         group.bench_function(name, |b| {
             b.iter(|| black_box(replay_block(&mut pipeline, &session).unwrap()))

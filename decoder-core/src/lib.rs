@@ -2,12 +2,16 @@
 //! estimate, and everything needed to get a decoder trained and checked.
 //!
 //! Rooms, from the per-bin code up:
-//! - [`linalg`]: the small dense linear algebra every room shares;
+//! - [`linalg`] and [`bin_width`]: the small dense linear algebra and the
+//!   one bin-width type every room shares;
+//! - [`wire`]: the bin, velocity and task packets and the protocol's
+//!   limits;
 //! - [`decoders`]: each decoder's model and its per-bin filter;
 //! - [`engine`]: the decode pipeline, the safety supervisor and the slot
 //!   engine that the daemon and every replay run;
-//! - [`formats`]: packets, the calibration block directory, the session log
-//!   and the model file;
+//! - [`formats`]: the files: the calibration block directory, the session
+//!   log and the model file (above the engine: the log records what the
+//!   engine handled);
 //! - [`fit`]: training, evaluation and goodness of fit (offline only);
 //! - [`sim`]: synthetic blocks and a simulated user (offline only).
 //!
@@ -24,7 +28,9 @@ pub mod engine;
 pub mod fit;
 pub mod formats;
 pub mod linalg;
+pub mod session;
 pub mod sim;
+pub mod wire;
 
 pub use bin_width::BinWidth;
 pub use decoders::DecoderModel;

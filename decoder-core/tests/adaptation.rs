@@ -12,15 +12,14 @@
 
 use decoder_core::ModelFile;
 use decoder_core::decoders::DecoderModel;
-use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::fit::adapt::{
     AdaptOptions, AdaptSkip, Batch, BatchRow, adapt_kalman, adapt_point_process,
 };
 use decoder_core::fit::kalman::KalmanFitOptions;
-use decoder_core::formats::task_packet::MAX_TASK_DIMS;
 use decoder_core::sim::model::simulated_kalman;
 use decoder_core::sim::reaching::{SimOptions, population};
 use decoder_core::sim::user::{CenterOut, SimulatedUser, TaskOptions, TaskSummary};
+use decoder_core::wire::task_packet::MAX_TASK_DIMS;
 
 const CHANNELS: usize = 32;
 const MAX_SPEED: f64 = 50.0;
@@ -105,7 +104,7 @@ fn session(start: &ModelFile, trials: usize, seed: u64, adapt: Option<&AdaptOpti
     let mut user = SimulatedUser::new(population(1, CHANNELS), &opts);
     let mut task = CenterOut::new(opts.clone());
     let mut model = start.clone();
-    let mut pipeline = DecodePipeline::new(&model).unwrap();
+    let mut pipeline = model.pipeline().unwrap();
     let bins = adapt.map_or(1, |a| (a.batch_s / 0.02).round() as usize);
     let mut batch = Batch::with_capacity(CHANNELS, bins);
     let mut counts = vec![0u16; CHANNELS];
@@ -150,7 +149,7 @@ fn session(start: &ModelFile, trials: usize, seed: u64, adapt: Option<&AdaptOpti
                         updates += 1;
                         limited += usize::from(report.limited);
                         model.decoder = adapted;
-                        pipeline = DecodePipeline::new(&model).unwrap();
+                        pipeline = model.pipeline().unwrap();
                     }
                     Err(e) => {
                         eprintln!("skipped: {e}");

@@ -6,7 +6,6 @@ use std::alloc::{GlobalAlloc, Layout, System};
 use std::sync::atomic::{AtomicUsize, Ordering};
 
 use decoder_core::decoders::DecoderModel;
-use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::fit::kalman::{KalmanFitOptions, SteadyStateOptions, fit_kalman};
 use decoder_core::fit::wiener::{WienerFitOptions, fit_wiener};
 use decoder_core::formats::model_file::{ModelFile, Provenance};
@@ -80,7 +79,7 @@ fn decode_steps_allocate_nothing() {
         ("wiener", DecoderModel::Wiener(wiener)),
         ("point process", DecoderModel::PointProcess(pp)),
     ] {
-        let mut pipeline = DecodePipeline::new(&model_file(decoder)).unwrap();
+        let mut pipeline = model_file(decoder).pipeline().unwrap();
         let before = ALLOCATIONS.load(Ordering::Relaxed);
         let mut checksum = 0.0;
         for bin in 0..session.n_bins {

@@ -7,16 +7,15 @@
 //! 20 000). CI runs the defaults; BENCHMARKS.md has a long run.
 
 use decoder_core::BinWidth;
-use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{
     EngineEvent, EngineSettings, SlotAnswer, SlotEngine, SlotSink,
 };
 use decoder_core::formats::model_file::{ModelFile, ModelFileError};
-use decoder_core::formats::packet::{self, BinHeader, RejectReason, VelocityPacket};
 use decoder_core::formats::session_log::{
     LogEnd, LogHeader, LogReader, LogRecord, RecordKind, encode_header, encode_record,
 };
 use decoder_core::sim::model::small_kalman;
+use decoder_core::wire::packet::{self, BinHeader, RejectReason, VelocityPacket};
 use proptest::prelude::*;
 use rand::{RngExt, SeedableRng};
 
@@ -243,7 +242,7 @@ impl SlotSink for Limits {
 fn a_long_seeded_stream_of_damaged_datagrams_keeps_every_invariant() {
     let n = env_count("VDEC_FUZZ_DATAGRAMS", 20_000);
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(0x0F0220);
-    let mut e = SlotEngine::new(settings(), DecodePipeline::new(model()).unwrap());
+    let mut e = SlotEngine::new(settings(), model().pipeline().unwrap());
     let mut sink = Limits {
         last: None,
         answered: 0,

@@ -2,13 +2,13 @@
 
 use decoder_core::decoders::DecoderModel;
 use decoder_core::decoders::kalman::{KalmanFilter, ObservationNoise};
-use decoder_core::engine::pipeline::{DecodePipeline, replay_block};
 use decoder_core::fit::kalman::{
     CountNormalisation, KalmanFitOptions, QForm, SteadyStateOptions, fit_kalman,
 };
 use decoder_core::fit::metrics::pearson;
 use decoder_core::formats::model_file::{ModelFile, Provenance};
 use decoder_core::linalg::is_positive_definite;
+use decoder_core::session::replay::replay_block;
 use decoder_core::sim::reaching::{SimOptions, simulate};
 
 fn opts() -> KalmanFitOptions {
@@ -115,7 +115,7 @@ fn velocity_only_layout_decodes() {
         decoder: DecoderModel::Kalman(model),
         provenance: Provenance::untracked(),
     };
-    let mut p = DecodePipeline::new(&mf).unwrap();
+    let mut p = mf.pipeline().unwrap();
     let (est, faults) = replay_block(&mut p, &test).unwrap();
     assert_eq!(faults, 0);
     let kin = test.kinematics.as_ref().unwrap();
@@ -222,8 +222,8 @@ fn replaying_twice_is_bit_identical() {
         &opts(),
     )
     .unwrap();
-    let mut a = DecodePipeline::new(&mf).unwrap();
-    let mut b = DecodePipeline::new(&mf).unwrap();
+    let mut a = mf.pipeline().unwrap();
+    let mut b = mf.pipeline().unwrap();
     let (ea, _) = replay_block(&mut a, &session).unwrap();
     // b is fed bin by bin, as the daemon does.
     let mut eb = Vec::new();

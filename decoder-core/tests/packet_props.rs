@@ -3,20 +3,19 @@
 //! packet parser and the session log reader. Each returns a value or a
 //! typed error for any input; none panics.
 
-use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{
     EngineEvent, EngineSettings, SlotAnswer, SlotEngine, SlotSink,
 };
 use decoder_core::formats::model_file::ModelFile;
-use decoder_core::formats::packet::{self, BinHeader, VelocityPacket};
 use decoder_core::formats::session_log::LogReader;
 use decoder_core::sim::model::small_kalman;
+use decoder_core::wire::packet::{self, BinHeader, VelocityPacket};
 use proptest::prelude::*;
 
 fn engine() -> SlotEngine {
     static MODEL: std::sync::OnceLock<ModelFile> = std::sync::OnceLock::new();
     let m = MODEL.get_or_init(model);
-    SlotEngine::new(settings(), DecodePipeline::new(m).unwrap())
+    SlotEngine::new(settings(), m.pipeline().unwrap())
 }
 
 fn model() -> ModelFile {

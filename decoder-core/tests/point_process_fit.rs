@@ -93,7 +93,6 @@ fn history_models_pass_the_ks_band_where_lnp_models_fail() {
 fn an_absurd_rate_is_clamped_counted_and_stays_finite() {
     use decoder_core::decoders::DecoderModel;
     use decoder_core::decoders::point_process::{ChannelGlm, PointProcessModel};
-    use decoder_core::engine::pipeline::DecodePipeline;
     use decoder_core::formats::model_file::{ModelFile, Provenance};
     use decoder_core::linalg::Mat;
     let channel = |b0: f64| {
@@ -123,7 +122,7 @@ fn an_absurd_rate_is_clamped_counted_and_stays_finite() {
         }),
         provenance: Provenance::untracked(),
     };
-    let mut p = DecodePipeline::new(&model).unwrap();
+    let mut p = model.pipeline().unwrap();
     let est = p.step(0, &[3, 1]);
     assert!(est.estimate.iter().all(|v| v.is_finite()));
     assert_eq!(p.rate_clamps(), 1);

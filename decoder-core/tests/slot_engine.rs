@@ -2,16 +2,15 @@
 //! and halting on missing bins, late, duplicate and reordered bins, new
 //! streams and model swaps — checked without sockets or clocks.
 
-use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{
     EngineEvent, EngineSettings, OperatorCommand, SlotAnswer, SlotEngine, SlotSink,
 };
 use decoder_core::engine::supervisor::SupervisorState;
 use decoder_core::formats::model_file::ModelFile;
-use decoder_core::formats::packet::{
+use decoder_core::sim::model::small_kalman;
+use decoder_core::wire::packet::{
     self, BinHeader, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, VelocityPacket,
 };
-use decoder_core::sim::model::small_kalman;
 
 const BIN_NS: u64 = 20_000_000;
 const T0: u64 = 1_000_000_000;
@@ -58,7 +57,7 @@ impl Rig {
     fn new(armed: bool) -> Rig {
         let (m, session) = model();
         Rig {
-            engine: SlotEngine::new(settings(armed), DecodePipeline::new(&m).unwrap()),
+            engine: SlotEngine::new(settings(armed), m.pipeline().unwrap()),
             session,
             out: Collected::default(),
             buf: Vec::new(),
@@ -292,7 +291,7 @@ fn a_swapped_model_flags_exactly_the_next_slot() {
     let (m, _) = model();
     let old = rig
         .engine
-        .swap_pipeline(DecodePipeline::new(&m).unwrap(), &mut rig.out)
+        .swap_pipeline(m.pipeline().unwrap(), &mut rig.out)
         .unwrap();
     drop(old);
     for seq in 5..8 {
@@ -339,7 +338,7 @@ fn a_mismatched_model_is_refused_for_swap() {
     let (m, _) = small_kalman(9, 1, 1.0);
     let err = rig
         .engine
-        .swap_pipeline(DecodePipeline::new(&m).unwrap(), &mut rig.out)
+        .swap_pipeline(m.pipeline().unwrap(), &mut rig.out)
         .err()
         .unwrap()
         .0;
@@ -354,7 +353,7 @@ fn clock_tracking_follows_a_slow_sender() {
     let (m, session) = model();
     let mut s = settings(true);
     s.clock_tracking = 0.05;
-    let mut engine = SlotEngine::new(s, DecodePipeline::new(&m).unwrap());
+    let mut engine = SlotEngine::new(s, m.pipeline().unwrap());
     let mut out = Collected::default();
     let mut buf = Vec::new();
     for seq in 0..20_000u64 {
@@ -383,7 +382,7 @@ fn dead_and_saturated_channels_are_reported() {
     let (m, _) = model();
     let mut s = settings(true);
     s.dead_channel_bins = 50;
-    let mut engine = SlotEngine::new(s, DecodePipeline::new(&m).unwrap());
+    let mut engine = SlotEngine::new(s, m.pipeline().unwrap());
     let mut out = Collected::default();
     let mut buf = Vec::new();
     for seq in 0..200u64 {
@@ -482,7 +481,7 @@ fn a_numerical_fault_never_puts_a_non_finite_value_in_a_packet() {
         provenance: decoder_core::Provenance::untracked(),
     };
     let mut rig = Rig::new(true);
-    rig.engine = SlotEngine::new(settings(true), DecodePipeline::new(&m).unwrap());
+    rig.engine = SlotEngine::new(settings(true), m.pipeline().unwrap());
     for seq in 0..20 {
         rig.wait_until(seq);
         rig.send(seq, 100_000);

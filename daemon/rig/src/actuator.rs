@@ -12,7 +12,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Result, bail};
 use daemon::sys::monotonic_ns;
-use decoder_core::formats::packet::VelocityPacket;
+use decoder_core::wire::packet::VelocityPacket;
 
 /// One packet as the sink read it.
 #[derive(Clone, Debug)]

@@ -8,7 +8,7 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::Duration;
 
-use decoder_core::formats::packet;
+use decoder_core::wire::packet;
 
 use crate::actuator::ActuatorSink;
 use crate::front_end::{BinFault, paced_send};

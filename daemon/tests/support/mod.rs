@@ -13,8 +13,8 @@ use std::time::{Duration, Instant};
 use daemon::control::{Reply, Request};
 use daemon::status::Status;
 use daemon_rig::{ActuatorSink, Launch, RunningDaemon};
-use decoder_core::formats::packet::{self, BinHeader, VelocityPacket};
 use decoder_core::sim::model::small_kalman;
+use decoder_core::wire::packet::{self, BinHeader, VelocityPacket};
 
 pub const BIN_MS: f64 = 20.0;
 pub const BIN: Duration = Duration::from_millis(20);
@@ -254,7 +254,11 @@ pub fn assert_slots_accounted(
     status: &Status,
 ) {
     let n = (slots.end - slots.start) as usize;
-    assert!(packets.len() >= n, "{} packets for {n} slots", packets.len());
+    assert!(
+        packets.len() >= n,
+        "{} packets for {n} slots",
+        packets.len()
+    );
     let answered = &packets[..n];
     assert_eq!(seqs(answered), slots.clone().collect::<Vec<_>>());
     for p in answered {

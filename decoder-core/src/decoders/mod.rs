@@ -54,11 +54,11 @@ impl DecoderModel {
     /// filters are built from checked models and do not check again.
     pub fn validate(&self) -> Result<(), ModelError> {
         let n = self.n_channels();
-        if n == 0 || n > crate::formats::packet::MAX_CHANNELS {
+        if n == 0 || n > crate::wire::packet::MAX_CHANNELS {
             return Err(ModelError::Channels { n });
         }
         let d = self.outputs().len();
-        if d == 0 || d > crate::formats::packet::MAX_DIMS {
+        if d == 0 || d > crate::wire::packet::MAX_DIMS {
             return Err(ModelError::Outputs { d });
         }
         match self {

@@ -12,7 +12,6 @@ use crate::decoders::DecoderModel;
 use crate::decoders::kalman::{KalmanError, KalmanFilter};
 use crate::decoders::point_process::{PointProcessError, PointProcessFilter};
 use crate::decoders::wiener::WienerFilter;
-use crate::formats::model_file::ModelFile;
 
 // One value per loaded model, never per bin: boxing would buy nothing.
 #[allow(clippy::large_enum_variant)]
@@ -70,19 +69,10 @@ pub enum PipelineError {
 }
 
 impl DecodePipeline {
-    /// A pipeline for `model`; `use_steady_state` picks the steady-state gain
-    /// when the model has one (the default for models trained with it).
-    pub fn new(model: &ModelFile) -> Result<DecodePipeline, PipelineError> {
-        Self::with_options(model, true)
-    }
-
-    pub fn with_options(
-        model: &ModelFile,
-        use_steady_state: bool,
-    ) -> Result<DecodePipeline, PipelineError> {
-        Self::from_decoder(&model.decoder, model.bin_width, use_steady_state)
-    }
-
+    /// A pipeline for `decoder` at `bin_width`; `use_steady_state` picks the
+    /// steady-state gain when the model has one (the default for models
+    /// trained with it). A model file builds its pipeline through this
+    /// (`ModelFile::pipeline`).
     pub fn from_decoder(
         decoder: &DecoderModel,
         bin_width: BinWidth,
@@ -216,57 +206,4 @@ impl DecodePipeline {
         }
         finite
     }
-}
-
-/// Why a block cannot be decoded with a model.
-#[derive(Debug, thiserror::Error)]
-pub enum MismatchError {
-    #[error(
-        "counts.npy has {block} columns but the model expects {model} channels; use the model trained for this array"
-    )]
-    Channels { block: usize, model: usize },
-    #[error(
-        "the block has {block} bins but the model was trained on {model} bins; rebin the block or retrain"
-    )]
-    BinWidth { block: BinWidth, model: BinWidth },
-}
-
-/// Checks that a block's channel count and bin width match a model's.
-pub fn check_block(
-    pipeline: &DecodePipeline,
-    session: &crate::formats::block::Block,
-) -> Result<(), MismatchError> {
-    if session.n_channels != pipeline.n_channels() {
-        return Err(MismatchError::Channels {
-            block: session.n_channels,
-            model: pipeline.n_channels(),
-        });
-    }
-    if session.bin_width != pipeline.bin_width() {
-        return Err(MismatchError::BinWidth {
-            block: session.bin_width,
-            model: pipeline.bin_width(),
-        });
-    }
-    Ok(())
-}
-
-/// Decodes every bin of a block from the model's initial state, returning
-/// the estimates as `n_bins × n_outputs`, bin after bin, and how many bins
-/// had a numerical fault.
-pub fn replay_block(
-    pipeline: &mut DecodePipeline,
-    session: &crate::formats::block::Block,
-) -> Result<(Vec<f64>, usize), MismatchError> {
-    check_block(pipeline, session)?;
-    pipeline.reset();
-    let d = pipeline.n_outputs();
-    let mut out = Vec::with_capacity(session.n_bins * d);
-    let mut faults = 0;
-    for bin in 0..session.n_bins {
-        let est = pipeline.step(bin as u64, session.bin_counts(bin));
-        faults += usize::from(est.numerical_fault);
-        out.extend_from_slice(est.estimate);
-    }
-    Ok((out, faults))
 }

@@ -37,7 +37,7 @@ use crate::engine::pipeline::DecodePipeline;
 use crate::engine::supervisor::{
     ArmRefused, SafetyLimits, Supervisor, SupervisorState, Transition, TransitionReason,
 };
-use crate::formats::packet::{
+use crate::wire::packet::{
     self, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, N_REJECT_REASONS, RejectReason, VelocityFields,
 };
 

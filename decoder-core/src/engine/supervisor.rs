@@ -14,7 +14,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::formats::packet::{FLAG_ACCEL_CLAMPED, FLAG_SPEED_CLAMPED};
+use crate::wire::packet::{FLAG_ACCEL_CLAMPED, FLAG_SPEED_CLAMPED};
 
 /// The supervisor state, with its wire value (PROTOCOL.md §2).
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]

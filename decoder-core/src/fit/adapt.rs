@@ -29,8 +29,8 @@ use crate::decoders::kalman::steady::{
     DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE, steady_state_gain,
 };
 use crate::decoders::point_process::PointProcessModel;
-use crate::formats::task_packet::MAX_TASK_DIMS;
 use crate::linalg::{self, Mat};
+use crate::wire::task_packet::MAX_TASK_DIMS;
 
 /// One decoded bin of a batch: what the participant saw and what was
 /// decoded from the bin's counts. Every decoded bin is a row (the

@@ -11,9 +11,10 @@
 use std::path::{Path, PathBuf};
 
 use crate::bin_width::BinWidth;
-use crate::formats::block::{
-    Block, BlockError, BlockManifest, COUNTS_FILE, KINEMATICS_FILE, TRIALS_FILE, Trial, VALID_FILE,
-    check_kinematics_shape, open_counts, read_trials,
+use crate::formats::block::{Block, open_counts};
+use crate::formats::block_dir::{
+    BlockError, BlockManifest, COUNTS_FILE, KINEMATICS_FILE, TRIALS_FILE, Trial, VALID_FILE,
+    check_kinematics_shape, read_trials, renumber_trials,
 };
 use crate::formats::npy_stream::NpyRows;
 
@@ -49,6 +50,25 @@ pub struct RowChunk<'a> {
     pub kinematics: &'a [f64],
 }
 
+/// Consecutive rows, valid or not, as a replay decodes them: `rows` of
+/// them from row `first`, their counts, kinematics (empty without) and
+/// whether each is valid.
+#[derive(Clone, Copy, Debug)]
+pub struct AllRowsChunk<'a> {
+    pub first: usize,
+    pub rows: usize,
+    pub counts: &'a [u16],
+    pub kinematics: &'a [f64],
+    /// One per row; empty when every row is valid.
+    pub valid: &'a [bool],
+}
+
+impl AllRowsChunk<'_> {
+    pub fn is_valid(&self, row: usize) -> bool {
+        self.valid.is_empty() || self.valid[row]
+    }
+}
+
 /// A block that can be read from its first valid row to its last, as many
 /// times as a fit needs.
 pub trait BlockRows {
@@ -57,20 +77,21 @@ pub trait BlockRows {
     fn pass(&self, visit: &mut dyn FnMut(RowChunk<'_>)) -> Result<(), BlockError>;
 }
 
-/// The trials with their bins counted on the kept rows only (`kept(b)`:
-/// kept rows before bin b); a trial left with no row goes.
-pub fn renumber_trials(trials: &[Trial], mut kept: impl FnMut(usize) -> usize) -> Vec<Trial> {
-    trials
-        .iter()
-        .filter_map(|t| {
-            let (s, e) = (kept(t.start_bin), kept(t.end_bin));
-            (s < e).then(|| Trial {
-                start_bin: s,
-                end_bin: e,
-                ..t.clone()
-            })
-        })
-        .collect()
+/// A whole block (not a fold's subset), read from its first row to its
+/// last as a replay decodes it: a bin that never came still had its slot.
+pub trait AllRows: BlockRows {
+    /// Every row, valid or not.
+    fn all_bins(&self) -> usize;
+    /// Visits every row once, in order, a chunk at a time.
+    fn pass_all(&self, visit: &mut dyn FnMut(AllRowsChunk<'_>)) -> Result<(), BlockError>;
+}
+
+impl Block {
+    /// SHA-256 over the block's valid rows as decoded (see
+    /// [`data_sha256`]).
+    pub fn data_sha256(&self) -> String {
+        data_sha256(self).expect("a block in memory reads")
+    }
 }
 
 impl BlockRows for Block {
@@ -110,6 +131,32 @@ impl BlockRows for Block {
                     .map_or(&[][..], |m| &m.data[run.start * k..run.end * k]),
             });
             first += run.len();
+        }
+        Ok(())
+    }
+}
+
+impl AllRows for Block {
+    fn all_bins(&self) -> usize {
+        self.n_bins
+    }
+
+    fn pass_all(&self, visit: &mut dyn FnMut(AllRowsChunk<'_>)) -> Result<(), BlockError> {
+        let (n, k) = (self.n_channels, self.kinematic_names.len());
+        let mut first = 0;
+        while first < self.n_bins {
+            let end = (first + CHUNK_ROWS).min(self.n_bins);
+            visit(AllRowsChunk {
+                first,
+                rows: end - first,
+                counts: &self.counts[first * n..end * n],
+                kinematics: self
+                    .kinematics
+                    .as_ref()
+                    .map_or(&[][..], |m| &m.data[first * k..end * k]),
+                valid: self.valid.as_ref().map_or(&[][..], |v| &v[first..end]),
+            });
+            first = end;
         }
         Ok(())
     }
@@ -175,7 +222,7 @@ impl BlockFiles {
             && labels.len() != n_channels
         {
             return Err(BlockError::Manifest {
-                path: dir.join(crate::formats::block::MANIFEST_FILE),
+                path: dir.join(crate::formats::block_dir::MANIFEST_FILE),
                 problem: format!(
                     "key channel_labels has {} labels but counts.npy has {n_channels} channels",
                     labels.len()
@@ -366,6 +413,53 @@ impl BlockRows for BlockFiles {
                 });
             }
             first += rows;
+        }
+    }
+}
+
+impl AllRows for BlockFiles {
+    fn all_bins(&self) -> usize {
+        self.file_bins
+    }
+
+    fn pass_all(&self, visit: &mut dyn FnMut(AllRowsChunk<'_>)) -> Result<(), BlockError> {
+        let mut counts = NpyRows::open(&self.dir.join(COUNTS_FILE), "counts.npy")?;
+        let mut kin = if self.info.has_kinematics {
+            Some(NpyRows::open(
+                &self.dir.join(KINEMATICS_FILE),
+                "kinematics.npy",
+            )?)
+        } else {
+            None
+        };
+        let mut valid = if self.has_valid {
+            Some(open_valid(&self.dir.join(VALID_FILE), self.file_bins)?)
+        } else {
+            None
+        };
+        let (mut c, mut x, mut v, mut ok) = (Vec::new(), Vec::new(), Vec::new(), Vec::new());
+        let mut first = 0;
+        loop {
+            let got = counts.read_counts(self.chunk_rows, &mut c)?;
+            if got == 0 {
+                return Ok(());
+            }
+            if let Some(kin) = kin.as_mut() {
+                kin.read_f64(got, &self.info.kinematic_names, &mut x)?;
+            }
+            ok.clear();
+            if let Some(valid) = valid.as_mut() {
+                valid.read_counts(got, &mut v)?;
+                ok.extend(v.iter().map(|&b| b != 0));
+            }
+            visit(AllRowsChunk {
+                first,
+                rows: got,
+                counts: &c,
+                kinematics: &x,
+                valid: &ok,
+            });
+            first += got;
         }
     }
 }

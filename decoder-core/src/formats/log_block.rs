@@ -13,10 +13,10 @@ use std::path::{Path, PathBuf};
 use ndarray_npy::WriteNpyExt;
 
 use crate::formats::block::{Block, Trial};
-use crate::formats::packet::{self, FLAG_BIN_MISSING, VelocityPacket};
 use crate::formats::session_log::{LogEnd, LogReader, LogRecord, SessionLogError};
-use crate::formats::task_packet::{self, Phase, TaskState};
 use crate::linalg::Mat;
+use crate::wire::packet::{self, FLAG_BIN_MISSING, VelocityPacket};
+use crate::wire::task_packet::{self, Phase, TaskState};
 
 #[derive(Debug, thiserror::Error)]
 pub enum LogBlockError {
@@ -479,7 +479,7 @@ fn typical_radius(tasks: &[TaskState]) -> Option<f64> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::formats::task_packet::TASK_FLAG_TARGET_VALID;
+    use crate::wire::task_packet::TASK_FLAG_TARGET_VALID;
 
     fn state(bin_seq: u64, trial: u32, phase: Phase, x: f64) -> TaskState {
         let mut t = TaskState::new(2);

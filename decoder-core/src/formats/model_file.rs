@@ -14,6 +14,7 @@ use serde_json::{Value, json};
 
 use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
+use crate::engine::pipeline::{DecodePipeline, PipelineError};
 
 pub const MODEL_MAGIC: &[u8; 8] = b"VDECMODL";
 /// Version 2 carries typed provenance (cross-validated scores, silent
@@ -193,6 +194,18 @@ pub enum ModelFileError {
 }
 
 impl ModelFile {
+    /// The per-bin pipeline for this model, with the steady-state gain
+    /// when the model has one.
+    pub fn pipeline(&self) -> Result<DecodePipeline, PipelineError> {
+        self.pipeline_with(true)
+    }
+
+    /// The per-bin pipeline; `use_steady_state = false` runs the full
+    /// covariance update even when the model has a steady-state gain.
+    pub fn pipeline_with(&self, use_steady_state: bool) -> Result<DecodePipeline, PipelineError> {
+        DecodePipeline::from_decoder(&self.decoder, self.bin_width, use_steady_state)
+    }
+
     pub fn to_bytes(&self) -> Vec<u8> {
         let payload = bincode::serde::encode_to_vec(self, bincode::config::standard())
             .expect("model serialises");

@@ -13,7 +13,7 @@ use std::path::{Path, PathBuf};
 
 use ndarray_npy::npy::header::{Header, Layout};
 
-use crate::formats::block::BlockError;
+use crate::formats::block_dir::BlockError;
 
 /// The element types a block's arrays may have.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]

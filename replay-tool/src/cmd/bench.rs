@@ -21,8 +21,8 @@ use std::time::Duration;
 use anyhow::{Context, Result, bail};
 use daemon::status::Percentiles;
 use daemon_rig::{ActuatorSink, BinFault, Launch, SinkRecord, loopback_floor, paced_send};
-use decoder_core::formats::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::sim::reaching::{SimOptions, simulate};
+use decoder_core::wire::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::{Block, ModelFile};
 use serde_json::json;
 

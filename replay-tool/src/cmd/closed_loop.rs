@@ -17,12 +17,12 @@ use anyhow::{Context, Result, bail};
 use daemon_rig::Launch;
 use decoder_core::ModelFile;
 use decoder_core::formats::log_block::{LogBlock, read_log_block};
-use decoder_core::formats::packet::{self, BinHeader, VelocityPacket};
-use decoder_core::formats::task_packet::{
-    Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
-};
 use decoder_core::sim::reaching::population;
 use decoder_core::sim::user::{CenterOut, SimulatedUser, TaskOptions, TaskSummary, TrialResult};
+use decoder_core::wire::packet::{self, BinHeader, VelocityPacket};
+use decoder_core::wire::task_packet::{
+    Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
+};
 
 use crate::CheckFailed;
 use crate::output::write_atomic;
@@ -142,7 +142,7 @@ pub struct ClosedLoopRun {
     /// Slots answered without the bin's counts (late or lost bins).
     pub coasted: usize,
     /// With --adapt: what adaptation did.
-    pub adaptation: Option<daemon::adaptation::AdaptStatus>,
+    pub adaptation: Option<daemon::status::AdaptStatus>,
 }
 
 /// A running daemon's addresses.

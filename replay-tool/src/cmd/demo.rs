@@ -12,13 +12,13 @@ use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
 use daemon_rig::{ActuatorSink, BinFault, Launch, paced_send};
-use decoder_core::formats::packet;
+use decoder_core::wire::packet;
 
 use anyhow::{Context, Result};
 use decoder_core::Block;
-use decoder_core::engine::log_replay::replay_log;
 use decoder_core::fit::config::TrainConfig;
 use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
+use decoder_core::formats::log_replay::replay_log;
 use decoder_core::formats::session_log::LogReader;
 use decoder_core::sim::reaching::{SimOptions, simulate};
 

@@ -14,10 +14,11 @@ use std::time::Instant;
 
 use anyhow::{Context, Result, bail};
 use decoder_core::ModelFile;
-use decoder_core::engine::log_replay::replay_log;
-use decoder_core::engine::pipeline::DecodePipeline;
-use decoder_core::formats::packet::VelocityPacket;
+use decoder_core::formats::block_rows::{AllRows, BlockFiles};
+use decoder_core::formats::log_replay::replay_log;
 use decoder_core::formats::session_log::{LogEnd, LogReader};
+use decoder_core::session::replay::replay_rows;
+use decoder_core::wire::packet::VelocityPacket;
 
 use crate::output::write_table;
 
@@ -67,18 +68,25 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
         bail!("--model is required to replay a session directory");
     };
     let model = ModelFile::read(model_path)?;
-    let mut pipeline = DecodePipeline::with_options(&model, !args.no_steady_state)
+    let mut pipeline = model
+        .pipeline_with(!args.no_steady_state)
         .with_context(|| format!("building the decoder from {}", model_path.display()))?;
     let outputs = model.decoder.outputs().to_vec();
     let started = Instant::now();
-    let streamed =
-        replay_dir_streaming(&args.session, &mut pipeline, &outputs, out).with_context(|| {
-            format!(
-                "replaying {} with {}",
-                args.session.display(),
-                model_path.display()
-            )
-        })?;
+    let rows = BlockFiles::open(&args.session)?;
+    let ext = out.extension().and_then(|e| e.to_str()).unwrap_or("");
+    let mut sink = crate::output::TableWriter::create(out, &outputs, rows.all_bins(), ext)?;
+    let streamed = replay_rows(&rows, &args.session, &mut pipeline, &outputs, |est| {
+        sink.write_rows(est).map_err(Into::into)
+    })
+    .with_context(|| {
+        format!(
+            "replaying {} with {}",
+            args.session.display(),
+            model_path.display()
+        )
+    })?;
+    sink.finish()?;
     let elapsed = started.elapsed().as_secs_f64();
     if streamed.faults > 0 {
         tracing::warn!(
@@ -92,126 +100,6 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
         cc: streamed.cc,
         identical: None,
     })
-}
-
-/// Rows decoded per chunk: big enough to amortise the reads, small
-/// enough that memory stays a few MB whatever the block's length.
-const CHUNK_ROWS: usize = 4096;
-
-struct Streamed {
-    bins: usize,
-    faults: usize,
-    cc: Vec<(String, f64)>,
-}
-
-/// Decodes a session directory chunk by chunk: counts.npy (and
-/// kinematics.npy, for the CC) are read a few thousand rows at a time and
-/// the estimates written as they come, so memory does not grow with the
-/// block's length.
-fn replay_dir_streaming(
-    dir: &std::path::Path,
-    pipeline: &mut DecodePipeline,
-    outputs: &[String],
-    out: &std::path::Path,
-) -> Result<Streamed> {
-    use decoder_core::formats::block::{BlockManifest, COUNTS_FILE, KINEMATICS_FILE, VALID_FILE};
-    use decoder_core::formats::npy_stream::NpyRows;
-    let manifest = BlockManifest::read(dir)?;
-    let mut counts = NpyRows::open(&dir.join(COUNTS_FILE), "counts.npy")?;
-    let (bins, n) = (counts.rows, counts.cols);
-    if n != pipeline.n_channels() {
-        bail!(
-            "{}: counts.npy has {n} columns but the model expects {} channels; use the model trained for this array",
-            dir.display(),
-            pipeline.n_channels()
-        );
-    }
-    if manifest.bin_width != pipeline.bin_width() {
-        bail!(
-            "{}: the block has {} bins but the model was trained on {} bins; rebin the block or retrain",
-            dir.display(),
-            manifest.bin_width,
-            pipeline.bin_width()
-        );
-    }
-    // The truth for the CC: the output columns of kinematics.npy.
-    let kin_path = dir.join(KINEMATICS_FILE);
-    let mut kin = if kin_path.exists() {
-        let k = NpyRows::open(&kin_path, "kinematics.npy")?;
-        if k.rows != bins {
-            bail!(
-                "{}: kinematics.npy has {} rows but counts.npy has {bins}",
-                dir.display(),
-                k.rows
-            );
-        }
-        Some(k)
-    } else {
-        None
-    };
-    let truth_cols: Vec<Option<usize>> = outputs
-        .iter()
-        .map(|o| manifest.kinematic_names.iter().position(|k| k == o))
-        .collect();
-    let valid: Option<Vec<bool>> = {
-        let p = dir.join(VALID_FILE);
-        if p.exists() {
-            let mut v = NpyRows::open(&p, "valid.npy")?;
-            let mut raw = Vec::new();
-            v.read_counts(v.rows, &mut raw)?;
-            Some(raw.into_iter().map(|b| b != 0).collect())
-        } else {
-            None
-        }
-    };
-    let d = outputs.len();
-    // Pearson correlation accumulated one pair at a time: no copy of the
-    // block.
-    let mut cc = vec![decoder_core::fit::metrics::ScoreSums::default(); d];
-    let ext = out.extension().and_then(|e| e.to_str()).unwrap_or("");
-    let mut sink = crate::output::TableWriter::create(out, outputs, bins, ext)?;
-    pipeline.reset();
-    let (mut chunk, mut kin_rows, mut est) = (Vec::new(), Vec::new(), Vec::new());
-    let (mut bin, mut faults) = (0usize, 0usize);
-    loop {
-        let got = counts.read_counts(CHUNK_ROWS, &mut chunk)?;
-        if got == 0 {
-            break;
-        }
-        if let Some(k) = kin.as_mut() {
-            k.read_f64(got, &manifest.kinematic_names, &mut kin_rows)?;
-        }
-        est.clear();
-        for r in 0..got {
-            let e = pipeline.step(bin as u64, &chunk[r * n..(r + 1) * n]);
-            faults += usize::from(e.numerical_fault);
-            est.extend_from_slice(e.estimate);
-            let keep = valid.as_ref().is_none_or(|v| v[bin]);
-            if keep && kin.is_some() {
-                let cols = manifest.kinematic_names.len();
-                for (dim, col) in truth_cols.iter().enumerate() {
-                    if let Some(c) = col {
-                        cc[dim].add(kin_rows[r * cols + c], e.estimate[dim]);
-                    }
-                }
-            }
-            bin += 1;
-        }
-        sink.write_rows(&est)?;
-    }
-    sink.finish()?;
-    let cc = if kin.is_some() {
-        outputs
-            .iter()
-            .zip(&truth_cols)
-            .zip(&cc)
-            .filter(|((_, col), _)| col.is_some())
-            .map(|((o, _), c)| (o.clone(), c.cc()))
-            .collect()
-    } else {
-        Vec::new()
-    };
-    Ok(Streamed { bins, faults, cc })
 }
 
 fn replay_session_log(args: &Args) -> Result<ReplaySummary> {

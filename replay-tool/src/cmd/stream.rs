@@ -12,9 +12,8 @@ use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
 use daemon_rig::{ActuatorSink, BinFault, paced_send_from};
-use decoder_core::engine::pipeline::DecodePipeline;
-use decoder_core::formats::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::formats::session_log::{LogReader, LogRecord};
+use decoder_core::wire::packet::{self, FLAG_BIN_MISSING};
 use decoder_core::{Block, ModelFile};
 
 use crate::CheckFailed;
@@ -51,7 +50,7 @@ fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFil
         };
         let model = ModelFile::read(m)?;
         let s = Block::read(session)?;
-        decoder_core::engine::pipeline::check_block(&DecodePipeline::new(&model)?, &s)?;
+        decoder_core::session::replay::check_block(&model.pipeline()?, s.n_channels, s.bin_width)?;
         return Ok((
             (0..s.n_bins).map(|t| s.bin_counts(t).to_vec()).collect(),
             model,
@@ -154,7 +153,7 @@ pub fn run(args: &Args) -> Result<()> {
             "no velocity packets came back on {actuator}; is the daemon's network.actuator set to it?"
         );
     };
-    let mut pipeline = DecodePipeline::new(&model)?;
+    let mut pipeline = model.pipeline()?;
     // Bins before the first answered one were taken as a stray (a daemon
     // that ran another stream before) and are not counted against it.
     let (mut equal, mut decoded, mut coasted, mut absent) = (0usize, 0usize, 0usize, 0usize);

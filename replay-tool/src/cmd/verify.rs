@@ -15,9 +15,9 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{Result, bail};
 use decoder_core::ModelFile;
-use decoder_core::engine::log_replay::{LogReplayError, replay_log};
-use decoder_core::formats::packet::VelocityPacket;
+use decoder_core::formats::log_replay::{LogReplayError, replay_log};
 use decoder_core::formats::session_log::{LogEnd, LogReader};
+use decoder_core::wire::packet::VelocityPacket;
 
 use crate::CheckFailed;
 use crate::output::write_atomic;
@@ -276,7 +276,7 @@ pub fn compare_models(log: &Path, other: &ModelFile, out: &Path) -> Result<(usiz
 #[cfg(test)]
 mod tests {
     use super::*;
-    use decoder_core::formats::packet::{VelocityFields, encode_velocity, velocity_len};
+    use decoder_core::wire::packet::{VelocityFields, encode_velocity, velocity_len};
 
     fn packet(estimate: [f64; 2]) -> Vec<u8> {
         let mut out = vec![0; velocity_len(2)];

@@ -1,0 +1,166 @@
+//! A session log replayed through the slot engine: this file reads the
+//! log's records and hands them to the engine's
+//! [`SessionReplay`](crate::engine::session_replay::SessionReplay), building each
+//! logged model from its model-file bytes, and names the log in every error.
+
+use crate::engine::pipeline::PipelineError;
+use crate::engine::session_replay::{
+    RecordedStream, ReplayCounts, ReplayedSlot, SessionRecord, SessionReplay, SessionReplayError,
+};
+use crate::formats::model_file::{ModelFile, ModelFileError};
+use crate::formats::session_log::{LogEnd, LogReader, LogRecord};
+
+#[derive(Debug, thiserror::Error)]
+pub enum LogReplayError {
+    #[error("{path}: the log holds no model record before its first bin; it cannot be replayed")]
+    NoModel { path: String },
+    #[error("{path}: model record at offset {offset}: {source}")]
+    Model {
+        path: String,
+        offset: u64,
+        source: ModelFileError,
+    },
+    #[error("{path}: model record at offset {offset}: {source}")]
+    Pipeline {
+        path: String,
+        offset: u64,
+        source: PipelineError,
+    },
+    #[error("{path}: the replay model does not fit the logged stream: {source}")]
+    Override {
+        path: String,
+        source: crate::engine::slot_engine::SwapRefused,
+    },
+    #[error(
+        "{path}: a sent packet for seq {seq} is recorded at offset {offset} but the replay has no slot for it"
+    )]
+    UnmatchedSent { path: String, seq: u64, offset: u64 },
+}
+
+/// What a log's replay went through, and how the log ended.
+#[derive(Clone, Debug, Default)]
+pub struct ReplaySummary {
+    pub slots: u64,
+    pub datagrams: u64,
+    pub model_loads: u64,
+    pub operator_commands: u64,
+    /// Records the daemon's recorder reported lost; a nonzero value means
+    /// the replay after that point may differ from the session.
+    pub records_lost: u64,
+    pub end: Option<LogEnd>,
+}
+
+/// Why a logged model could not be built.
+#[derive(Debug)]
+enum LoadError {
+    File(ModelFileError),
+    Pipeline(PipelineError),
+}
+
+impl LogRecord {
+    /// The record as the slot engine's replay takes it.
+    pub fn as_session_record(&self) -> SessionRecord<'_> {
+        match self {
+            LogRecord::Model { model_file, .. } => SessionRecord::Model { model_file },
+            LogRecord::Datagram { recv_ns, bytes } => SessionRecord::Datagram {
+                recv_ns: *recv_ns,
+                bytes,
+            },
+            LogRecord::Operator { command, .. } => SessionRecord::Operator { command: *command },
+            LogRecord::Sent { decided_ns, packet } => SessionRecord::Sent {
+                decided_ns: *decided_ns,
+                packet,
+            },
+            LogRecord::Lost { records, .. } => SessionRecord::Lost { records: *records },
+            LogRecord::Event { .. } | LogRecord::End { .. } | LogRecord::Task { .. } => {
+                SessionRecord::Other
+            }
+        }
+    }
+}
+
+/// Replays the log behind `reader`. With `model` the logged model loads are
+/// ignored and every bin is decoded by `model` instead (to compare
+/// decoders on the same session); the slots stay the logged ones.
+pub fn replay_log(
+    reader: &mut LogReader,
+    model: Option<&ModelFile>,
+    mut on_slot: impl FnMut(&ReplayedSlot<'_>),
+) -> Result<ReplaySummary, LogReplayError> {
+    let path = reader.path().display().to_string();
+    let h = reader.header();
+    let stream = RecordedStream {
+        settings: h.settings.clone(),
+        n_channels: h.n_channels,
+        bin_width: h.bin_width,
+        n_outputs: h.outputs.len(),
+    };
+    let named = |e: SessionReplayError<LoadError>| match e {
+        SessionReplayError::NoModel => LogReplayError::NoModel { path: path.clone() },
+        SessionReplayError::Model {
+            offset,
+            source: LoadError::File(source),
+        } => LogReplayError::Model {
+            path: path.clone(),
+            offset,
+            source,
+        },
+        SessionReplayError::Model {
+            offset,
+            source: LoadError::Pipeline(source),
+        } => LogReplayError::Pipeline {
+            path: path.clone(),
+            offset,
+            source,
+        },
+        SessionReplayError::Override(source) => LogReplayError::Override {
+            path: path.clone(),
+            source,
+        },
+        SessionReplayError::UnmatchedSent { seq, offset } => LogReplayError::UnmatchedSent {
+            path: path.clone(),
+            seq,
+            offset,
+        },
+    };
+    let mut replay = match model {
+        Some(m) => {
+            let p = m.pipeline().map_err(|source| LogReplayError::Pipeline {
+                path: path.clone(),
+                offset: 0,
+                source,
+            })?;
+            SessionReplay::with_model(&stream, p).map_err(named)?
+        }
+        None => SessionReplay::new(stream.settings.clone()),
+    };
+    loop {
+        let offset = reader.offset();
+        let Some(record) = reader.next_record() else {
+            break;
+        };
+        let load = |bytes: &[u8]| {
+            let m = ModelFile::from_bytes(bytes, &format!("{path} (offset {offset})"))
+                .map_err(LoadError::File)?;
+            m.pipeline().map_err(LoadError::Pipeline)
+        };
+        replay
+            .feed(offset, record.as_session_record(), load, &mut on_slot)
+            .map_err(named)?;
+    }
+    let ReplayCounts {
+        slots,
+        datagrams,
+        model_loads,
+        operator_commands,
+        records_lost,
+    } = replay.finish(reader.offset(), &mut on_slot);
+    Ok(ReplaySummary {
+        slots,
+        datagrams,
+        model_loads,
+        operator_commands,
+        records_lost,
+        end: reader.end().cloned(),
+    })
+}

@@ -128,7 +128,7 @@ pub struct CtlArgs {
 pub enum CtlAction {
     /// Show state, counters, latency, channel health and recording.
     Status {
-        /// Print the status as JSON (PROTOCOL.md §5) instead of a table.
+        /// Print the status document as JSON (PROTOCOL.md §11) instead of a table.
         #[arg(long)]
         json: bool,
     },

@@ -375,6 +375,7 @@ impl RtLoop {
         let c = self.engine.counters().clone();
         let (dead, saturated) = self.engine.channel_health();
         Status {
+            status_version: crate::status::STATUS_VERSION,
             daemon_version: self.info.version.clone(),
             uptime_s: self.info.started.elapsed().as_secs_f64(),
             state: self.engine.state().name().into(),

@@ -268,6 +268,9 @@ impl From<&Transition> for StateChange {
 
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Status {
+    /// The status document's version (PROTOCOL.md §11).
+    #[serde(default)]
+    pub status_version: u32,
     pub daemon_version: String,
     pub uptime_s: f64,
     pub state: String,
@@ -320,6 +323,10 @@ pub struct Status {
     #[serde(default)]
     pub last_estimate: Vec<f64>,
 }
+
+/// The status document's version (PROTOCOL.md §11): a field removed or
+/// changed in meaning raises it, a field added does not.
+pub const STATUS_VERSION: u32 = 1;
 
 pub fn rejected_by_name(c: &EngineCounters) -> BTreeMap<String, u64> {
     RejectReason::NAMES

@@ -1,6 +1,7 @@
 //! The replay-tool binary as a user runs it: verbs, outputs, exit codes and
 //! the messages for bad input.
 
+use daemon_rig::protocol::{json_keys, protocol_table};
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
 
@@ -160,6 +161,9 @@ fn evaluate_prints_both_decoders_and_writes_a_report() {
     }
     let csv = std::fs::read_to_string(report.join("scores.csv")).unwrap();
     assert!(csv.starts_with("decoder,fold,output,cc,r2,rmse"));
+    // evaluation.json has the fields PROTOCOL.md §12 lists.
+    let eval = json_file(&report.join("evaluation.json"));
+    assert_eq!(json_keys(&eval), protocol_table("evaluation-json"));
     assert_eq!(csv.lines().filter(|l| l.contains(",mean,")).count(), 4);
     // Both decoders must decode the simulated velocity, not only print a
     // row: the simulator's channels are cosine-tuned to velocity with a
@@ -632,10 +636,14 @@ fn verify_passes_on_a_recording_and_names_the_seq_of_a_changed_byte() {
     assert!(err.contains(&format!("seq {seq}: estimate")), "{err}");
 }
 
+fn json_file(path: &Path) -> serde_json::Value {
+    serde_json::from_str(&std::fs::read_to_string(path).unwrap()).unwrap()
+}
+
 fn bench_p99(report: &Path) -> f64 {
-    let s: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(report.join("summary.json")).unwrap())
-            .unwrap();
+    let s = json_file(&report.join("summary.json"));
+    // summary.json has the fields PROTOCOL.md §12 lists.
+    assert_eq!(json_keys(&s), protocol_table("bench-summary-json"));
     s["recv_to_send_us"]["p99"].as_f64().unwrap()
 }
 
@@ -703,9 +711,9 @@ fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
 }
 
 fn closed_loop_summary(report: &Path) -> serde_json::Value {
-    let s: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(report.join("closed-loop.json")).unwrap())
-            .unwrap();
+    let s = json_file(&report.join("closed-loop.json"));
+    // closed-loop.json has the fields PROTOCOL.md §12 lists.
+    assert_eq!(json_keys(&s), protocol_table("closed-loop-json"));
     s["summary"].clone()
 }
 

@@ -15,6 +15,7 @@ pub mod actuator;
 pub mod floor;
 pub mod front_end;
 pub mod launcher;
+pub mod protocol;
 
 pub use actuator::{ActuatorSink, SinkRecord};
 pub use floor::loopback_floor;

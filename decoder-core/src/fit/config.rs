@@ -80,53 +80,102 @@ impl Default for TrainConfig {
     }
 }
 
+/// Why a training configuration was refused; each names where the value
+/// came from (the file, or the flag) and the key, as the daemon's own
+/// configuration errors do.
 #[derive(Debug, thiserror::Error)]
-#[error("{source_name}: {message}")]
-pub struct ConfigError {
-    pub source_name: String,
-    pub message: String,
+pub enum ConfigError {
+    #[error("{path}: cannot read: {source}")]
+    Read {
+        path: String,
+        source: std::io::Error,
+    },
+    #[error("{origin}: {message}")]
+    Parse { origin: String, message: String },
+    #[error("{origin}: key `{key}`: {problem}")]
+    Key {
+        origin: String,
+        key: &'static str,
+        problem: String,
+    },
+    #[error("{flag}: {problem}")]
+    Flag { flag: &'static str, problem: String },
+}
+
+/// A refused key, before the origin is known.
+struct KeyProblem {
+    key: &'static str,
+    problem: String,
+}
+
+fn refuse(key: &'static str, problem: String) -> KeyProblem {
+    KeyProblem { key, problem }
 }
 
 impl TrainConfig {
     /// Parses and validates TOML text; `source_name` (usually the file path)
     /// prefixes every message.
     pub fn from_toml(text: &str, source_name: &str) -> Result<TrainConfig, ConfigError> {
-        let err = |message: String| ConfigError {
-            source_name: source_name.to_string(),
-            message,
-        };
-        let raw: RawTrainConfig = toml::from_str(text).map_err(|e| {
-            err(e
+        let raw: RawTrainConfig = toml::from_str(text).map_err(|e| ConfigError::Parse {
+            origin: source_name.to_string(),
+            message: e
                 .to_string()
                 .split('\n')
                 .map(str::trim)
                 .filter(|l| !l.is_empty())
                 .collect::<Vec<_>>()
-                .join(" "))
+                .join(" "),
         })?;
+        Self::from_raw(raw).map_err(|KeyProblem { key, problem }| ConfigError::Key {
+            origin: source_name.to_string(),
+            key,
+            // The key is named once, by the error.
+            problem: problem
+                .strip_prefix(&format!("key {key}"))
+                .map_or(problem.as_str(), |p| p.trim_start_matches([':', ' ']))
+                .to_string(),
+        })
+    }
+
+    /// Reads `path` (the defaults when `None`).
+    pub fn read(path: Option<&std::path::Path>) -> Result<TrainConfig, ConfigError> {
+        let Some(path) = path else {
+            return Ok(TrainConfig::default());
+        };
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+            path: path.display().to_string(),
+            source,
+        })?;
+        TrainConfig::from_toml(&text, &path.display().to_string())
+    }
+
+    fn from_raw(raw: RawTrainConfig) -> Result<TrainConfig, KeyProblem> {
         let mut cfg = TrainConfig::default();
         if let Some(lag) = raw.lag_bins {
-            let lag = bounded(lag, "lag_bins", 0, MAX_LAG_BINS).map_err(err)?;
+            let lag = bounded(lag, "lag_bins", 0, MAX_LAG_BINS)?;
             cfg.kalman.lag_bins = lag;
             cfg.wiener.lag_bins = lag;
         }
         if let Some(ridge) = raw.ridge {
-            check_ridge(ridge).map_err(err)?;
+            check_ridge(ridge).map_err(|p| refuse("ridge", p))?;
             cfg.kalman.ridge = ridge;
             cfg.wiener.ridge = ridge;
             cfg.point_process.ridge = ridge;
         }
         if let Some(folds) = raw.folds {
-            cfg.folds = bounded(folds, "folds", 2, 100).map_err(err)?;
+            cfg.folds = bounded(folds, "folds", 2, 100)?;
         }
         let k = raw.kalman;
         if let Some(state) = k.state {
             if state.is_empty() {
-                return Err(err("key kalman.state is empty".into()));
+                return Err(refuse("kalman.state", "key kalman.state is empty".into()));
             }
             for (i, s) in state.iter().enumerate() {
                 if state[..i].contains(s) {
-                    return Err(err(format!("key kalman.state names {s:?} twice")));
+                    return Err(refuse(
+                        "kalman.state",
+                        format!("key kalman.state names {s:?} twice"),
+                    ));
                 }
             }
             cfg.kalman.outputs.retain(|o| state.contains(o));
@@ -136,17 +185,23 @@ impl TrainConfig {
             cfg.kalman.outputs = outputs;
         }
         if cfg.kalman.outputs.is_empty() || cfg.kalman.outputs.len() > 8 {
-            return Err(err(format!(
-                "key kalman.outputs has {} entries; a velocity packet carries 1 to 8",
-                cfg.kalman.outputs.len()
-            )));
+            return Err(refuse(
+                "kalman.outputs",
+                format!(
+                    "key kalman.outputs has {} entries; a velocity packet carries 1 to 8",
+                    cfg.kalman.outputs.len()
+                ),
+            ));
         }
         for o in &cfg.kalman.outputs {
             if !cfg.kalman.state.contains(o) || o == CONSTANT {
-                return Err(err(format!(
-                    "key kalman.outputs: {o:?} is not a kinematic component of kalman.state {:?}",
-                    cfg.kalman.state
-                )));
+                return Err(refuse(
+                    "kalman.outputs",
+                    format!(
+                        "key kalman.outputs: {o:?} is not a kinematic component of kalman.state {:?}",
+                        cfg.kalman.state
+                    ),
+                ));
             }
         }
         if let Some(n) = k.count_normalisation {
@@ -155,9 +210,12 @@ impl TrainConfig {
                 "mean-centred" => CountNormalisation::MeanCentred,
                 "z-scored" => CountNormalisation::ZScored,
                 other => {
-                    return Err(err(format!(
-                        "key kalman.count_normalisation is {other:?}; expected \"none\", \"mean-centred\" or \"z-scored\""
-                    )));
+                    return Err(refuse(
+                        "kalman.count_normalisation",
+                        format!(
+                            "key kalman.count_normalisation is {other:?}; expected \"none\", \"mean-centred\" or \"z-scored\""
+                        ),
+                    ));
                 }
             };
         }
@@ -166,9 +224,12 @@ impl TrainConfig {
                 "full" => QForm::Full,
                 "diagonal" => QForm::Diagonal,
                 other => {
-                    return Err(err(format!(
-                        "key kalman.q_form is {other:?}; expected \"full\" or \"diagonal\""
-                    )));
+                    return Err(refuse(
+                        "kalman.q_form",
+                        format!(
+                            "key kalman.q_form is {other:?}; expected \"full\" or \"diagonal\""
+                        ),
+                    ));
                 }
             };
         }
@@ -177,14 +238,15 @@ impl TrainConfig {
         }
         let tolerance = k.steady_state_tolerance.unwrap_or(DEFAULT_TOLERANCE);
         if !(tolerance.is_finite() && tolerance > 0.0 && tolerance <= 1.0) {
-            return Err(err(format!(
-                "key kalman.steady_state_tolerance is {tolerance}; it must be above 0 and at most 1"
-            )));
+            return Err(refuse(
+                "kalman.steady_state_tolerance",
+                format!(
+                    "key kalman.steady_state_tolerance is {tolerance}; it must be above 0 and at most 1"
+                ),
+            ));
         }
         let max_iterations = match k.steady_state_max_iterations {
-            Some(v) => {
-                bounded(v, "kalman.steady_state_max_iterations", 1, 10_000_000).map_err(err)?
-            }
+            Some(v) => bounded(v, "kalman.steady_state_max_iterations", 1, 10_000_000)?,
             None => DEFAULT_MAX_ITERATIONS,
         };
         if k.steady_state.unwrap_or(false) {
@@ -194,7 +256,7 @@ impl TrainConfig {
             });
         }
         if let Some(taps) = raw.wiener.taps {
-            cfg.wiener.taps = bounded(taps, "wiener.taps", 1, 100).map_err(err)?;
+            cfg.wiener.taps = bounded(taps, "wiener.taps", 1, 100)?;
         }
         cfg.wiener.outputs = raw
             .wiener
@@ -203,9 +265,7 @@ impl TrainConfig {
         let pp = raw.point_process;
         if let Some(state) = pp.state {
             if state.is_empty() || state.len() > 16 || state.iter().any(|s| s == CONSTANT) {
-                return Err(err(
-                    "key point_process.state must name 1 to 16 kinematics columns (the intercept b0 is always fitted)".into(),
-                ));
+                return Err(refuse("point_process.state", "key point_process.state must name 1 to 16 kinematics columns (the intercept b0 is always fitted)".into(),));
             }
             cfg.point_process.outputs.retain(|o| state.contains(o));
             cfg.point_process.state = state;
@@ -221,10 +281,13 @@ impl TrainConfig {
                 .iter()
                 .any(|o| !cfg.point_process.state.contains(o))
         {
-            return Err(err(format!(
-                "key point_process.outputs {:?}: 1 to 8 components of point_process.state {:?}",
-                cfg.point_process.outputs, cfg.point_process.state
-            )));
+            return Err(refuse(
+                "point_process.outputs",
+                format!(
+                    "key point_process.outputs {:?}: 1 to 8 components of point_process.state {:?}",
+                    cfg.point_process.outputs, cfg.point_process.state
+                ),
+            ));
         }
         let mut history = cfg
             .point_process
@@ -232,17 +295,19 @@ impl TrainConfig {
             .clone()
             .expect("default has history");
         if let Some(n) = pp.history_basis {
-            history.n_basis = bounded(n, "point_process.history_basis", 2, 64).map_err(err)?;
+            history.n_basis = bounded(n, "point_process.history_basis", 2, 64)?;
         }
         if let Some(n) = pp.history_span_bins {
-            history.span_bins =
-                bounded(n, "point_process.history_span_bins", 2, 10_000).map_err(err)?;
+            history.span_bins = bounded(n, "point_process.history_span_bins", 2, 10_000)?;
         }
         if history.n_basis < 2 || history.span_bins < history.n_basis {
-            return Err(err(format!(
-                "keys point_process.history_basis = {} and history_span_bins = {}: need at least 2 basis functions and a span of at least as many bins",
-                history.n_basis, history.span_bins
-            )));
+            return Err(refuse(
+                "point_process.history_basis",
+                format!(
+                    "keys point_process.history_basis = {} and history_span_bins = {}: need at least 2 basis functions and a span of at least as many bins",
+                    history.n_basis, history.span_bins
+                ),
+            ));
         }
         cfg.point_process.history = pp.history.unwrap_or(true).then_some(history);
         if let Some(c) = pp.coupling {
@@ -250,13 +315,14 @@ impl TrainConfig {
         }
         if let Some(n) = pp.max_iterations {
             cfg.point_process.max_iterations =
-                bounded(n, "point_process.max_iterations", 1, 10_000).map_err(err)?;
+                bounded(n, "point_process.max_iterations", 1, 10_000)?;
         }
         if let Some(t) = pp.tolerance {
             if !(t.is_finite() && t > 0.0 && t <= 1.0) {
-                return Err(err(format!(
-                    "key point_process.tolerance is {t}; it must be above 0 and at most 1"
-                )));
+                return Err(refuse(
+                    "point_process.tolerance",
+                    format!("key point_process.tolerance is {t}; it must be above 0 and at most 1"),
+                ));
             }
             cfg.point_process.tolerance = t;
         }
@@ -266,9 +332,9 @@ impl TrainConfig {
     /// Command-line overrides, validated the same way.
     pub fn override_lag(&mut self, lag: usize) -> Result<(), ConfigError> {
         let lag =
-            bounded(lag as i64, "lag_bins", 0, MAX_LAG_BINS).map_err(|message| ConfigError {
-                source_name: "--lag".into(),
-                message: message.replace("key lag_bins", "--lag"),
+            bounded(lag as i64, "lag_bins", 0, MAX_LAG_BINS).map_err(|p| ConfigError::Flag {
+                flag: "--lag",
+                problem: p.problem.replace("key lag_bins ", ""),
             })?;
         self.kalman.lag_bins = lag;
         self.wiener.lag_bins = lag;
@@ -276,9 +342,9 @@ impl TrainConfig {
     }
 
     pub fn override_ridge(&mut self, ridge: f64) -> Result<(), ConfigError> {
-        check_ridge(ridge).map_err(|message| ConfigError {
-            source_name: "--ridge".into(),
-            message,
+        check_ridge(ridge).map_err(|problem| ConfigError::Flag {
+            flag: "--ridge",
+            problem,
         })?;
         self.kalman.ridge = ridge;
         self.wiener.ridge = ridge;
@@ -292,12 +358,13 @@ impl TrainConfig {
 const MAX_LAG_BINS: i64 = 1000;
 
 /// A whole number in `lo..=hi`.
-fn bounded(v: i64, key: &str, lo: i64, hi: i64) -> Result<usize, String> {
+fn bounded(v: i64, key: &'static str, lo: i64, hi: i64) -> Result<usize, KeyProblem> {
     if (lo..=hi).contains(&v) {
         Ok(v as usize)
     } else {
-        Err(format!(
-            "key {key} is {v}; it must be a whole number from {lo} to {hi}"
+        Err(refuse(
+            key,
+            format!("key {key} is {v}; it must be a whole number from {lo} to {hi}"),
         ))
     }
 }

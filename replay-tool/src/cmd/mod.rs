@@ -25,14 +25,7 @@ use decoder_core::formats::block_rows::{BlockFiles, BlockRows};
 
 /// Reads `--config FILE` (or the defaults when absent).
 pub fn load_train_config(path: Option<&Path>) -> Result<TrainConfig> {
-    match path {
-        None => Ok(TrainConfig::default()),
-        Some(p) => {
-            let text = std::fs::read_to_string(p)
-                .with_context(|| format!("cannot read config {}", p.display()))?;
-            Ok(TrainConfig::from_toml(&text, &p.display().to_string())?)
-        }
-    }
+    Ok(TrainConfig::read(path)?)
 }
 
 /// A block behind `--session`, with what a session log adds.

@@ -342,48 +342,82 @@ impl Check<'_> {
     }
 }
 
-impl Config {
-    /// Validates `raw` with `overrides` applied; `origin` names the file in
-    /// errors.
-    pub fn resolve(
-        raw: RawConfig,
-        overrides: &Overrides,
-        origin: &str,
-    ) -> Result<Config, ConfigError> {
-        let c = Check { origin };
-        let allow_remote = raw.network.allow_non_loopback.unwrap_or(false);
-        let listen_text = overrides
-            .listen
-            .clone()
-            .or(raw.network.listen)
-            .unwrap_or_else(|| DEFAULT_LISTEN.into());
-        let task_listen_text = overrides
-            .task_listen
-            .clone()
-            .or(raw.network.task_listen)
-            .unwrap_or_else(|| DEFAULT_TASK_LISTEN.into());
-        let actuator_text = overrides
-            .actuator
-            .clone()
-            .or(raw.network.actuator)
-            .unwrap_or_else(|| DEFAULT_ACTUATOR.into());
+/// The three addresses, checked (`network`).
+struct Addresses {
+    listen: SocketAddr,
+    task_listen: SocketAddr,
+    actuator: SocketAddr,
+}
+
+/// The files and sockets outside the network (`model`, `recording`,
+/// `control`).
+struct Places {
+    model: PathBuf,
+    record_dir: Option<PathBuf>,
+    record_buffer_bins: usize,
+    control_socket: PathBuf,
+    sources: Sources,
+}
+
+/// `timing` and `monitor`, checked.
+struct Clocking {
+    deadline_slack_bins: f64,
+    reorder_window_bins: u32,
+    clock_tracking: f64,
+    summary_interval: Duration,
+    dead_channel_s: f64,
+    saturation_rate_hz: f64,
+}
+
+impl Check<'_> {
+    /// `network`, with `--listen`, `--task-listen` and `--actuator` over it.
+    fn network(&self, raw: &RawNetwork, overrides: &Overrides) -> Result<Addresses, ConfigError> {
+        let allow_remote = raw.allow_non_loopback.unwrap_or(false);
         // A bad value given as a flag is named by the flag, not by the key
         // it overrides.
-        let as_flag = |flag: &'static str, given: bool| {
-            move |e: ConfigError| match e {
-                ConfigError::Key { problem, .. } if given => ConfigError::Flag { flag, problem },
+        let one = |key: &'static str,
+                   flag: &'static str,
+                   given: &Option<String>,
+                   file: &Option<String>,
+                   default: &str| {
+            let text = given
+                .clone()
+                .or_else(|| file.clone())
+                .unwrap_or_else(|| default.into());
+            self.addr(key, &text, allow_remote).map_err(|e| match e {
+                ConfigError::Key { problem, .. } if given.is_some() => {
+                    ConfigError::Flag { flag, problem }
+                }
                 other => other,
-            }
+            })
         };
-        let listen = c
-            .addr("network.listen", &listen_text, allow_remote)
-            .map_err(as_flag("--listen", overrides.listen.is_some()))?;
-        let actuator = c
-            .addr("network.actuator", &actuator_text, allow_remote)
-            .map_err(as_flag("--actuator", overrides.actuator.is_some()))?;
-        let task_listen = c
-            .addr("network.task_listen", &task_listen_text, allow_remote)
-            .map_err(as_flag("--task-listen", overrides.task_listen.is_some()))?;
+        Ok(Addresses {
+            listen: one(
+                "network.listen",
+                "--listen",
+                &overrides.listen,
+                &raw.listen,
+                DEFAULT_LISTEN,
+            )?,
+            actuator: one(
+                "network.actuator",
+                "--actuator",
+                &overrides.actuator,
+                &raw.actuator,
+                DEFAULT_ACTUATOR,
+            )?,
+            task_listen: one(
+                "network.task_listen",
+                "--task-listen",
+                &overrides.task_listen,
+                &raw.task_listen,
+                DEFAULT_TASK_LISTEN,
+            )?,
+        })
+    }
+
+    /// The model, the recording and the control socket, flags over keys.
+    fn places(&self, raw: &RawConfig, overrides: &Overrides) -> Result<Places, ConfigError> {
         let sources = Sources {
             model: if overrides.model.is_some() {
                 "--model"
@@ -401,8 +435,8 @@ impl Config {
                 "control.socket"
             },
         };
-        let model = overrides.model.clone().or(raw.model.path).ok_or_else(|| {
-            c.err(
+        let model = overrides.model.clone().or_else(|| raw.model.path.clone()).ok_or_else(|| {
+            self.err(
                 "model.path",
                 "no model given; set model.path or pass --model FILE (a file from `replay-tool train`)",
             )
@@ -412,10 +446,10 @@ impl Config {
             overrides
                 .record
                 .clone()
-                .or(raw.recording.dir)
+                .or_else(|| raw.recording.dir.clone())
                 .unwrap_or_else(|| PathBuf::from("recordings"))
         });
-        let record_buffer_bins = c.count(
+        let record_buffer_bins = self.count(
             "recording.buffer_bins",
             raw.recording.buffer_bins.unwrap_or(1024),
             16,
@@ -424,72 +458,95 @@ impl Config {
         let control_socket = overrides
             .socket
             .clone()
-            .or(raw.control.socket)
+            .or_else(|| raw.control.socket.clone())
             .unwrap_or_else(default_socket);
-        let safety = SafetyConfig {
-            max_speed: c.positive(
+        Ok(Places {
+            model,
+            record_dir,
+            record_buffer_bins,
+            control_socket,
+            sources,
+        })
+    }
+
+    fn safety(&self, raw: &RawSafety) -> Result<SafetyConfig, ConfigError> {
+        Ok(SafetyConfig {
+            max_speed: self.positive(
                 "safety.max_speed",
-                raw.safety.max_speed.unwrap_or(50.0),
+                raw.max_speed.unwrap_or(50.0),
                 10_000.0,
             )?,
-            max_accel: c.positive(
+            max_accel: self.positive(
                 "safety.max_accel",
-                raw.safety.max_accel.unwrap_or(500.0),
+                raw.max_accel.unwrap_or(500.0),
                 1_000_000.0,
             )?,
-            max_coast_bins: c.count(
+            max_coast_bins: self.count(
                 "safety.max_coast_bins",
-                raw.safety.max_coast_bins.unwrap_or(5),
+                raw.max_coast_bins.unwrap_or(5),
                 0,
                 1000,
             )? as u32,
-            coast_decay: c.within(
+            coast_decay: self.within(
                 "safety.coast_decay",
-                raw.safety.coast_decay.unwrap_or(0.8),
+                raw.coast_decay.unwrap_or(0.8),
                 0.0,
                 1.0,
             )?,
-        };
-        let deadline_slack_bins = c.within(
+        })
+    }
+
+    fn clocking(&self, timing: &RawTiming, monitor: &RawMonitor) -> Result<Clocking, ConfigError> {
+        let deadline_slack_bins = self.within(
             "timing.deadline_slack_bins",
-            raw.timing.deadline_slack_bins.unwrap_or(0.5),
+            timing.deadline_slack_bins.unwrap_or(0.5),
             0.05,
             4.0,
         )?;
-        let reorder_window_bins = c.count(
+        let reorder_window_bins = self.count(
             "timing.reorder_window_bins",
-            raw.timing.reorder_window_bins.unwrap_or(64),
+            timing.reorder_window_bins.unwrap_or(64),
             1,
             4096,
         )? as u32;
-        let clock_tracking = c.within(
+        let clock_tracking = self.within(
             "timing.clock_tracking",
-            raw.timing.clock_tracking.unwrap_or(0.01),
+            timing.clock_tracking.unwrap_or(0.01),
             0.0,
             0.5,
         )?;
-        let summary_interval = Duration::from_secs_f64(c.within(
+        let summary_interval = Duration::from_secs_f64(self.within(
             "monitor.summary_interval_s",
-            raw.monitor.summary_interval_s.unwrap_or(5.0),
+            monitor.summary_interval_s.unwrap_or(5.0),
             0.1,
             3600.0,
         )?);
-        let dead_channel_s = c.within(
+        let dead_channel_s = self.within(
             "monitor.dead_channel_s",
-            raw.monitor.dead_channel_s.unwrap_or(30.0),
+            monitor.dead_channel_s.unwrap_or(30.0),
             0.1,
             86_400.0,
         )?;
-        let saturation_rate_hz = c.within(
+        let saturation_rate_hz = self.within(
             "monitor.saturation_rate_hz",
-            raw.monitor.saturation_rate_hz.unwrap_or(1000.0),
+            monitor.saturation_rate_hz.unwrap_or(1000.0),
             1.0,
             100_000.0,
         )?;
-        let a = &raw.adaptation;
+        Ok(Clocking {
+            deadline_slack_bins,
+            reorder_window_bins,
+            clock_tracking,
+            summary_interval,
+            dead_channel_s,
+            saturation_rate_hz,
+        })
+    }
+
+    fn adaptation(&self, a: &RawAdaptation) -> Result<AdaptConfig, ConfigError> {
         let parameters = a.parameters.clone().unwrap_or_else(|| "observation".into());
         if parameters != "observation" {
-            return Err(c.err(
+            return Err(self.err(
                 "adaptation.parameters",
                 format!(
                     "{parameters:?}; this version adapts \"observation\" (Kalman H and Q, point-process b0 and β) only"
@@ -499,54 +556,95 @@ impl Config {
         let adaptation = AdaptConfig {
             enabled: a.enabled.unwrap_or(false),
             options: decoder_core::fit::adapt::AdaptOptions {
-                batch_s: c.within("adaptation.batch_s", a.batch_s.unwrap_or(10.0), 1.0, 600.0)?,
-                half_life_s: c.within(
+                batch_s: self.within(
+                    "adaptation.batch_s",
+                    a.batch_s.unwrap_or(10.0),
+                    1.0,
+                    600.0,
+                )?,
+                half_life_s: self.within(
                     "adaptation.half_life_s",
                     a.half_life_s.unwrap_or(60.0),
                     1.0,
                     86_400.0,
                 )?,
-                min_usable_fraction: c.within(
+                min_usable_fraction: self.within(
                     "adaptation.min_usable_fraction",
                     a.min_usable_fraction.unwrap_or(0.5),
                     0.0,
                     1.0,
                 )?,
-                max_relative_change: c.within(
+                max_relative_change: self.within(
                     "adaptation.max_relative_change",
                     a.max_relative_change.unwrap_or(0.25),
                     0.001,
                     10.0,
                 )?,
-                ridge: c.within("adaptation.ridge", a.ridge.unwrap_or(1.0), 0.0, 1e6)?,
+                ridge: self.within("adaptation.ridge", a.ridge.unwrap_or(1.0), 0.0, 1e6)?,
             },
         };
+        Ok(adaptation)
+    }
+
+    fn realtime(&self, raw: &RawRealtime) -> Result<RealtimeConfig, ConfigError> {
         let n_cpus = std::thread::available_parallelism().map_or(1, |n| n.get()) as i64;
-        let cpu = match raw.realtime.cpu {
+        let cpu = match raw.cpu {
             None => None,
-            Some(v) => Some(c.count("realtime.cpu", v, 0, n_cpus - 1)? as usize),
+            Some(v) => Some(self.count("realtime.cpu", v, 0, n_cpus - 1)? as usize),
         };
-        let fifo_priority = match raw.realtime.fifo_priority.unwrap_or(0) {
+        let fifo_priority = match raw.fifo_priority.unwrap_or(0) {
             0 => None,
-            v => Some(c.count("realtime.fifo_priority", v, 1, 99)? as i32),
+            v => Some(self.count("realtime.fifo_priority", v, 1, 99)? as i32),
         };
-        let log_format = match raw.log.format.as_deref().unwrap_or("human") {
+        Ok(RealtimeConfig {
+            cpu,
+            mlockall: raw.mlockall.unwrap_or(false),
+            fifo_priority,
+        })
+    }
+
+    fn log(&self, raw: &RawLog) -> Result<(LogFormat, String), ConfigError> {
+        let log_format = match raw.format.as_deref().unwrap_or("human") {
             "human" => LogFormat::Human,
             "json" => LogFormat::Json,
             other => {
-                return Err(c.err(
+                return Err(self.err(
                     "log.format",
                     format!("{other:?}; use \"human\" or \"json\""),
                 ));
             }
         };
-        let log_level = raw.log.level.unwrap_or_else(|| "info".into());
+        let log_level = raw.level.clone().unwrap_or_else(|| "info".into());
         if !["error", "warn", "info", "debug", "trace"].contains(&log_level.as_str()) {
-            return Err(c.err(
+            return Err(self.err(
                 "log.level",
                 format!("{log_level:?}; use error, warn, info, debug or trace"),
             ));
         }
+        Ok((log_format, log_level))
+    }
+}
+
+impl Config {
+    /// Validates `raw` with `overrides` applied, a section at a time;
+    /// `origin` names the file in errors.
+    pub fn resolve(
+        raw: RawConfig,
+        overrides: &Overrides,
+        origin: &str,
+    ) -> Result<Config, ConfigError> {
+        let c = Check { origin };
+        let Addresses {
+            listen,
+            task_listen,
+            actuator,
+        } = c.network(&raw.network, overrides)?;
+        let places = c.places(&raw, overrides)?;
+        let safety = c.safety(&raw.safety)?;
+        let clocking = c.clocking(&raw.timing, &raw.monitor)?;
+        let adaptation = c.adaptation(&raw.adaptation)?;
+        let realtime = c.realtime(&raw.realtime)?;
+        let (log_format, log_level) = c.log(&raw.log)?;
         if overrides.arm && !actuator.ip().is_loopback() {
             return Err(ConfigError::ArmNotLoopback { actuator });
         }
@@ -555,26 +653,22 @@ impl Config {
             listen,
             task_listen,
             actuator,
-            model,
-            record_dir,
-            record_buffer_bins,
-            control_socket,
+            model: places.model,
+            record_dir: places.record_dir,
+            record_buffer_bins: places.record_buffer_bins,
+            control_socket: places.control_socket,
             safety,
-            deadline_slack_bins,
-            reorder_window_bins,
-            clock_tracking,
-            summary_interval,
-            dead_channel_s,
-            saturation_rate_hz,
-            realtime: RealtimeConfig {
-                cpu,
-                mlockall: raw.realtime.mlockall.unwrap_or(false),
-                fifo_priority,
-            },
+            deadline_slack_bins: clocking.deadline_slack_bins,
+            reorder_window_bins: clocking.reorder_window_bins,
+            clock_tracking: clocking.clock_tracking,
+            summary_interval: clocking.summary_interval,
+            dead_channel_s: clocking.dead_channel_s,
+            saturation_rate_hz: clocking.saturation_rate_hz,
+            realtime,
             log_format,
             log_level,
             arm_at_start: overrides.arm,
-            sources,
+            sources: places.sources,
         })
     }
 

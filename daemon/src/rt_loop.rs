@@ -1,7 +1,8 @@
 //! The real-time loop: one dedicated thread (never a tokio worker) that
-//! waits for the next of five events — a bin arrived, a task packet
-//! arrived, a deadline passed, a control request, shutdown — and handles it
-//! to the end before waiting again. Bins come first: task packets are read
+//! waits for the next of its events ([`LoopEvent`]: a deadline passed,
+//! bins or task packets readable, a status or operator request, a model
+//! load, an adaptation result or switch; then shutdown) and handles each
+//! to the end, in its own handler, before waiting again. Bins come first: task packets are read
 //! after the bin socket is drained, at most [`TASK_BURST`] per wake, so a
 //! flood of them never delays a velocity packet by more than a burst. Per datagram: read, stamp `recv_ns`, record the raw bytes, hand
 //! them to the slot engine (validate → decode → supervise → encode), stamp
@@ -148,11 +149,64 @@ impl SlotSink for Out<'_> {
     }
 }
 
+/// What wakes the decode loop: one closed set, each with its handler.
+/// Bins are handled before task packets, and both before control
+/// requests, so nothing an operator or a task computer sends delays a
+/// velocity packet by more than one burst.
+enum LoopEvent {
+    /// The next slot's deadline passed with no bin readable.
+    DeadlinePassed { now_ns: u64 },
+    /// Datagrams wait on the bin socket.
+    BinsReadable,
+    /// Datagrams wait on the task socket.
+    TaskPacketsReadable,
+    /// `ctl status`.
+    StatusAsked(tokio::sync::oneshot::Sender<Status>),
+    /// `ctl arm|disarm|halt`.
+    OperatorCommand {
+        command: decoder_core::engine::slot_engine::OperatorCommand,
+        reply: tokio::sync::oneshot::Sender<Result<OperatorOutcome, Refused>>,
+    },
+    /// `ctl load`: an operator's model, checked off this thread.
+    ModelLoad(Box<LoadRequest>),
+    /// An adaptation update from the worker.
+    AdaptationResult(Box<LoadRequest>),
+    /// `ctl adapt on|off`.
+    AdaptationSwitch {
+        on: bool,
+        reply: tokio::sync::oneshot::Sender<Result<AdaptOutcome, Refused>>,
+    },
+}
+
+impl From<ControlRequest> for LoopEvent {
+    fn from(r: ControlRequest) -> LoopEvent {
+        match r {
+            ControlRequest::Status(reply) => LoopEvent::StatusAsked(reply),
+            ControlRequest::Operator { command, reply } => {
+                LoopEvent::OperatorCommand { command, reply }
+            }
+            ControlRequest::Load(load) if load.adaptation.is_some() => {
+                LoopEvent::AdaptationResult(load)
+            }
+            ControlRequest::Load(load) => LoopEvent::ModelLoad(load),
+            ControlRequest::Adapt { on, reply } => LoopEvent::AdaptationSwitch { on, reply },
+        }
+    }
+}
+
+/// The loop's buffers, made once before the decode path starts.
+struct Scratch {
+    datagram: Vec<u8>,
+    json: Vec<u8>,
+}
+
 impl RtLoop {
     /// Runs until the shutdown flag is set; returns the final status.
     pub fn run(mut self) -> Status {
-        let mut buf = vec![0u8; 65_536];
-        let mut json = Vec::with_capacity(1024);
+        let mut scratch = Scratch {
+            datagram: vec![0u8; 65_536],
+            json: Vec::with_capacity(1024),
+        };
         if let Err(e) = self.input.set_nonblocking(true) {
             tracing::error!("cannot make the bin socket non-blocking: {e}");
         }
@@ -163,44 +217,81 @@ impl RtLoop {
         // decode path, except while it serves control requests.
         alloc_count::set_on_decode_path(true);
         while !self.shutdown.load(Ordering::Relaxed) {
-            let now = sys::monotonic_ns();
-            let wait = match self.engine.next_deadline() {
-                Some(d) if d <= now => {
-                    let mut out = out!(self, &mut json);
-                    self.engine.on_timeout(now, &mut out);
-                    self.flush_records();
-                    continue;
-                }
-                Some(d) => Duration::from_nanos(d - now).min(IDLE_WAKE),
-                None => IDLE_WAKE,
-            };
-            match sys::wait_readable_pair(&self.input, &self.task_input, wait) {
-                Ok((bins, task)) => {
-                    if bins {
-                        self.drain_socket(&mut buf, &mut json);
-                    }
-                    if task {
-                        self.read_task_packets(&mut buf);
-                    }
-                    if !bins {
-                        let now = sys::monotonic_ns();
-                        let mut out = out!(self, &mut json);
-                        self.engine.on_timeout(now, &mut out);
-                    }
-                }
-                Err(e) => {
-                    tracing::error!("waiting on the bin socket failed: {e}");
-                    std::thread::sleep(Duration::from_millis(1));
-                }
+            let (first, second) = self.wait();
+            for event in [first, second].into_iter().flatten() {
+                self.handle(event, &mut scratch);
             }
             self.flush_records();
             if !self.control.is_empty() {
                 alloc_count::set_on_decode_path(false);
-                self.serve_control(&mut json);
+                while let Ok(request) = self.control.try_recv() {
+                    self.handle(request.into(), &mut scratch);
+                    self.flush_records();
+                }
                 alloc_count::set_on_decode_path(true);
             }
         }
         alloc_count::set_on_decode_path(false);
+        self.on_shutdown()
+    }
+
+    /// Sleeps until the next deadline or a readable socket, at most
+    /// [`IDLE_WAKE`]; says what woke it (bins before task packets).
+    fn wait(&mut self) -> (Option<LoopEvent>, Option<LoopEvent>) {
+        let now_ns = sys::monotonic_ns();
+        let wait = match self.engine.next_deadline() {
+            Some(d) if d <= now_ns => return (Some(LoopEvent::DeadlinePassed { now_ns }), None),
+            Some(d) => Duration::from_nanos(d - now_ns).min(IDLE_WAKE),
+            None => IDLE_WAKE,
+        };
+        match sys::wait_readable_pair(&self.input, &self.task_input, wait) {
+            Ok((bins, task)) => {
+                let first = if bins {
+                    LoopEvent::BinsReadable
+                } else {
+                    LoopEvent::DeadlinePassed {
+                        now_ns: sys::monotonic_ns(),
+                    }
+                };
+                (Some(first), task.then_some(LoopEvent::TaskPacketsReadable))
+            }
+            Err(e) => {
+                tracing::error!("waiting on the bin socket failed: {e}");
+                std::thread::sleep(Duration::from_millis(1));
+                (None, None)
+            }
+        }
+    }
+
+    fn handle(&mut self, event: LoopEvent, scratch: &mut Scratch) {
+        match event {
+            LoopEvent::DeadlinePassed { now_ns } => self.on_deadline(now_ns, &mut scratch.json),
+            LoopEvent::BinsReadable => self.on_bins_readable(scratch),
+            LoopEvent::TaskPacketsReadable => self.on_task_packets_readable(scratch),
+            LoopEvent::StatusAsked(reply) => {
+                let _ = reply.send(self.status());
+            }
+            LoopEvent::OperatorCommand { command, reply } => {
+                let _ = reply.send(self.on_operator_command(command, &mut scratch.json));
+            }
+            LoopEvent::ModelLoad(load) => self.on_model_load(*load, &mut scratch.json),
+            LoopEvent::AdaptationResult(load) => {
+                self.on_adaptation_result(*load, &mut scratch.json)
+            }
+            LoopEvent::AdaptationSwitch { on, reply } => {
+                let _ = reply.send(self.on_adaptation_switch(on));
+            }
+        }
+    }
+
+    /// A slot's deadline passed: the engine answers every slot due.
+    fn on_deadline(&mut self, now_ns: u64, json: &mut Vec<u8>) {
+        let mut out = out!(self, json);
+        self.engine.on_timeout(now_ns, &mut out);
+    }
+
+    /// Shutdown: the final status, and the log's end record.
+    fn on_shutdown(&mut self) -> Status {
         let status = self.status();
         if let Some(b) = self.batcher.as_mut() {
             let end = serde_json::to_vec(&status).unwrap_or_default();
@@ -216,7 +307,13 @@ impl RtLoop {
         }
     }
 
-    fn drain_socket(&mut self, buf: &mut [u8], json: &mut Vec<u8>) {
+    /// Reads up to [`MAX_BURST`] bin datagrams: each is stamped, recorded
+    /// as read and handed to the engine.
+    fn on_bins_readable(&mut self, scratch: &mut Scratch) {
+        let Scratch {
+            datagram: buf,
+            json,
+        } = scratch;
         for _ in 0..MAX_BURST {
             match self.input.recv_from(buf) {
                 Ok((n, _from)) => {
@@ -241,7 +338,8 @@ impl RtLoop {
 
     /// Reads up to [`TASK_BURST`] task packets: each is recorded as read,
     /// parsed and counted. None of them touches the engine.
-    fn read_task_packets(&mut self, buf: &mut [u8]) {
+    fn on_task_packets_readable(&mut self, scratch: &mut Scratch) {
+        let buf = &mut scratch.datagram;
         for _ in 0..TASK_BURST {
             match self.task_input.recv_from(buf) {
                 Ok((n, _from)) => {
@@ -264,110 +362,115 @@ impl RtLoop {
         self.task.bursts_cut += 1;
     }
 
-    fn serve_control(&mut self, json: &mut Vec<u8>) {
-        while let Ok(request) = self.control.try_recv() {
-            match request {
-                ControlRequest::Status(reply) => {
-                    let _ = reply.send(self.status());
-                }
-                ControlRequest::Operator { command, reply } => {
-                    let mut out = out!(self, json);
-                    let result = self.engine.operator(command, &mut out);
-                    let code = session_log::operator_code(command);
-                    let outcome = u8::from(result.is_err());
-                    if let Some(b) = self.batcher.as_mut() {
-                        b.record(
-                            RecordKind::Operator,
+    /// Arm, disarm or halt, recorded as applied or refused.
+    fn on_operator_command(
+        &mut self,
+        command: decoder_core::engine::slot_engine::OperatorCommand,
+        json: &mut Vec<u8>,
+    ) -> Result<OperatorOutcome, Refused> {
+        let mut out = out!(self, json);
+        let result = self.engine.operator(command, &mut out);
+        let code = session_log::operator_code(command);
+        let outcome = u8::from(result.is_err());
+        if let Some(b) = self.batcher.as_mut() {
+            b.record(
+                RecordKind::Operator,
+                sys::monotonic_ns(),
+                &[&[code, outcome]],
+            );
+        }
+        let state = self.engine.state().name();
+        match result {
+            Ok(Some(t)) => Ok(OperatorOutcome::Changed(t)),
+            Ok(None) => Ok(OperatorOutcome::Unchanged { state }),
+            Err(e) => Err(Refused::Operator(e)),
+        }
+    }
+
+    /// `adapt on|off`, recorded as an event when it took.
+    fn on_adaptation_switch(&mut self, on: bool) -> Result<AdaptOutcome, Refused> {
+        let result = self.adapt.set(on);
+        if result.is_ok() {
+            if let Some(b) = self.batcher.as_mut() {
+                let e = serde_json::json!({"event": "adaptation", "on": on});
+                b.record_owned(
+                    RecordKind::Event,
+                    sys::monotonic_ns(),
+                    e.to_string().into_bytes(),
+                );
+            }
+        }
+        result.map(AdaptOutcome).map_err(Refused::Adaptation)
+    }
+
+    /// An adaptation update: refused when stale or not armed, else swapped
+    /// in as a load is.
+    fn on_adaptation_result(&mut self, load: LoadRequest, json: &mut Vec<u8>) {
+        let generation = load.adaptation.expect("an adaptation update");
+        if let Err(why) = self.adapt.accepts(generation, self.engine.state()) {
+            let _ = load.reply.send(Err(Refused::Adaptation(why)));
+            return;
+        }
+        self.on_model_load(load, json);
+    }
+
+    /// A checked model swapped in at the next bin boundary, recorded as a
+    /// model record (so a replay swaps it in where the daemon did).
+    fn on_model_load(&mut self, load: LoadRequest, json: &mut Vec<u8>) {
+        let LoadRequest {
+            pipeline,
+            model_bytes,
+            model,
+            info,
+            reply,
+            adaptation,
+        } = load;
+        let mut out = out!(self, json);
+        match self.engine.swap_pipeline(pipeline, &mut out) {
+            Ok(old) => {
+                if let Some(b) = self.batcher.as_mut() {
+                    b.record_owned(RecordKind::Model, sys::monotonic_ns(), model_bytes);
+                    if adaptation.is_some() {
+                        let e = serde_json::json!({
+                            "event": "adaptation_update",
+                            "model": info.path,
+                            "sha256": info.sha256,
+                        });
+                        b.record_owned(
+                            RecordKind::Event,
                             sys::monotonic_ns(),
-                            &[&[code, outcome]],
+                            e.to_string().into_bytes(),
                         );
                     }
-                    let state = self.engine.state().name();
-                    let _ = reply.send(match result {
-                        Ok(Some(t)) => Ok(OperatorOutcome::Changed(t)),
-                        Ok(None) => Ok(OperatorOutcome::Unchanged { state }),
-                        Err(e) => Err(Refused::Operator(e)),
-                    });
                 }
-                ControlRequest::Adapt { on, reply } => {
-                    let result = self.adapt.set(on);
-                    if result.is_ok() {
-                        if let Some(b) = self.batcher.as_mut() {
-                            let e = serde_json::json!({"event": "adaptation", "on": on});
-                            b.record_owned(
-                                RecordKind::Event,
-                                sys::monotonic_ns(),
-                                e.to_string().into_bytes(),
-                            );
-                        }
-                    }
-                    let _ = reply.send(result.map(AdaptOutcome).map_err(Refused::Adaptation));
+                if adaptation.is_none() {
+                    self.adapt.new_base(&model, &info);
                 }
-                ControlRequest::Load(load) => {
-                    let LoadRequest {
-                        pipeline,
-                        model_bytes,
-                        model,
-                        info,
-                        reply,
-                        adaptation,
-                    } = *load;
-                    if let Some(generation) = adaptation
-                        && let Err(why) = self.adapt.accepts(generation, self.engine.state())
-                    {
-                        let _ = reply.send(Err(Refused::Adaptation(why)));
-                        continue;
-                    }
-                    let mut out = out!(self, json);
-                    match self.engine.swap_pipeline(pipeline, &mut out) {
-                        Ok(old) => {
-                            if let Some(b) = self.batcher.as_mut() {
-                                b.record_owned(RecordKind::Model, sys::monotonic_ns(), model_bytes);
-                                if adaptation.is_some() {
-                                    let e = serde_json::json!({
-                                        "event": "adaptation_update",
-                                        "model": info.path,
-                                        "sha256": info.sha256,
-                                    });
-                                    b.record_owned(
-                                        RecordKind::Event,
-                                        sys::monotonic_ns(),
-                                        e.to_string().into_bytes(),
-                                    );
-                                }
-                            }
-                            if adaptation.is_none() {
-                                self.adapt.new_base(&model, &info);
-                            }
-                            let live = matches!(
-                                self.engine.state(),
-                                SupervisorState::Armed | SupervisorState::Coasting
-                            );
-                            if live && info.kind != self.info.model.kind {
-                                let w = format!(
-                                    "{} model {} swapped in while {} over a {} model; check the decoded velocity before relying on it",
-                                    info.kind,
-                                    info.path,
-                                    self.engine.state().name(),
-                                    self.info.model.kind
-                                );
-                                tracing::warn!("{w}");
-                                self.info.model_warnings.push(w);
-                            }
-                            self.info.model = info;
-                            let seq = self.engine.next_seq().unwrap_or(0);
-                            let _ = reply.send(Ok(Swapped {
-                                first_seq: seq,
-                                old,
-                            }));
-                        }
-                        Err(refused) => {
-                            let _ = reply.send(Err(Refused::Swap(refused.0)));
-                        }
-                    }
+                let live = matches!(
+                    self.engine.state(),
+                    SupervisorState::Armed | SupervisorState::Coasting
+                );
+                if live && info.kind != self.info.model.kind {
+                    let w = format!(
+                        "{} model {} swapped in while {} over a {} model; check the decoded velocity before relying on it",
+                        info.kind,
+                        info.path,
+                        self.engine.state().name(),
+                        self.info.model.kind
+                    );
+                    tracing::warn!("{w}");
+                    self.info.model_warnings.push(w);
                 }
+                self.info.model = info;
+                let seq = self.engine.next_seq().unwrap_or(0);
+                let _ = reply.send(Ok(Swapped {
+                    first_seq: seq,
+                    old,
+                }));
             }
-            self.flush_records();
+            Err(refused) => {
+                let _ = reply.send(Err(Refused::Swap(refused.0)));
+            }
         }
     }
 

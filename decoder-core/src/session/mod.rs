@@ -5,4 +5,6 @@
 //! on the formats, the engine and the fits, and the tool's verbs call it
 //! and print.
 
+pub mod open;
 pub mod replay;
+pub mod train;

@@ -85,7 +85,7 @@ pub fn run(args: &Args) -> Result<()> {
 
     let cfg = TrainConfig::default();
     let kalman = DecoderSpec::Kalman(cfg.kalman.clone());
-    let model = train::train_model(&cal, &kalman, Some(cfg.folds))?;
+    let model = train::train_with_progress(&cal, &kalman, Some(cfg.folds))?.model;
     let model_path = out.join("kalman.model");
     write_atomic(&model_path, &model.to_bytes())?;
     println!("2. trained a Kalman decoder -> {}", model_path.display());

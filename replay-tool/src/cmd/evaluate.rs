@@ -14,6 +14,7 @@ use decoder_core::formats::block_rows::BlockRows;
 use super::train::{DecoderKind, config_with_overrides, spec_for};
 use crate::output::write_atomic;
 use crate::{plot, progress};
+use decoder_core::session::open::Session;
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
@@ -78,7 +79,10 @@ pub fn run(args: &Args) -> Result<()> {
     let session_path = args.session.as_ref().expect("clap requires --session");
     // Read in passes, a chunk at a time: memory does not grow with the
     // block's length.
-    let session = super::rows_with_kinematics(session_path)?;
+    let session = Session::at(session_path)?.rows_with_kinematics()?;
+    if let Some(s) = &session.from_log {
+        super::train::print_log_rows(session_path, s);
+    }
     let info = session.rows.info();
     for spec in &specs {
         super::warn_unused_kinematics(&info.kinematic_names, session_path, spec);
@@ -125,7 +129,7 @@ pub fn specs(
                 specs.push(DecoderSpec::PointProcess(full));
             }
         } else {
-            specs.push(spec_for(*k, cfg)?);
+            specs.push(spec_for(*k, cfg));
         }
     }
     Ok(specs)

@@ -7,6 +7,7 @@
 //! decoder and output, and a plot. A session evaluates exactly as
 //! `evaluate --session` would, so a merged table equals an unsharded run.
 
+use decoder_core::session::open::Session;
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
@@ -178,7 +179,7 @@ pub fn run_shard(
 }
 
 fn evaluate_one(path: &Path, specs: &[DecoderSpec], folds: usize) -> Result<SessionResult> {
-    let session = super::rows_with_kinematics(path)?;
+    let session = Session::at(path)?.rows_with_kinematics()?;
     let eval = cross_validate(&session.rows, specs, folds, |_, _| {})?;
     Ok(SessionResult {
         index: 0,

@@ -4,9 +4,10 @@
 //! are valid for training, and the estimates and commands the daemon sent.
 //! The calibration block a rig records is then a folder like any other.
 
+use decoder_core::session::open::Session;
 use std::path::PathBuf;
 
-use anyhow::{Context, Result, bail};
+use anyhow::{Context, Result};
 use decoder_core::formats::log_block::export_log;
 
 #[derive(Debug, clap::Args)]
@@ -19,12 +20,7 @@ pub struct Args {
 }
 
 pub fn run(args: &Args) -> Result<()> {
-    if args.log.is_dir() {
-        bail!(
-            "{}: export reads a session log (.vdlog) from decoderd; this is a directory",
-            args.log.display()
-        );
-    }
+    Session::log_at(&args.log, "export")?;
     // Two passes over the log, the rows written as they are met: a log
     // of any length exports in bounded memory.
     let s = export_log(&args.log, &args.out)

@@ -1,6 +1,8 @@
-//! One module per verb; each has an `Args` (clap) and a `run`. What several
-//! verbs share is here: the training config with its flag overrides, the
-//! block behind `--session`, and the `decoderd` binary to launch.
+//! One module per verb; each has an `Args` (clap) and a `run`: it parses
+//! its flags, calls the core (`decoder_core::session` opens what
+//! `--session` names, trains and replays) and prints. What several verbs
+//! share is here: flag checks, the kinematics warning and the `decoderd`
+//! binary to launch.
 
 pub mod bench;
 pub mod closed_loop;
@@ -19,105 +21,6 @@ pub mod verify;
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
-use decoder_core::Block;
-use decoder_core::fit::config::TrainConfig;
-use decoder_core::formats::block_rows::{BlockFiles, BlockRows};
-
-/// Reads `--config FILE` (or the defaults when absent).
-pub fn load_train_config(path: Option<&Path>) -> Result<TrainConfig> {
-    Ok(TrainConfig::read(path)?)
-}
-
-/// A block behind `--session`, with what a session log adds.
-pub struct SessionBlock {
-    pub block: Block,
-    /// The target radius the task packets gave (a session log only).
-    pub target_radius: Option<f64>,
-}
-
-/// The block behind `--session` for a verb that needs kinematics (train,
-/// evaluate): a session directory (PROTOCOL.md §3), or a session log with
-/// task packets, read as `export` writes it (PROTOCOL.md §5). A log
-/// without task packets has no kinematics and is refused with the reason.
-pub fn block_with_kinematics(session: &Path) -> Result<SessionBlock> {
-    if session.is_file() {
-        let log = decoder_core::formats::log_block::read_log_block(session)
-            .with_context(|| format!("--session {}", session.display()))?;
-        if log.block.kinematics.is_none() {
-            bail!("{}", no_task_packets(session));
-        }
-        let s = &log.summary;
-        eprintln!(
-            "replay-tool: {}: {} slots, {} valid for training ({} bins missing, {} before the first task packet)",
-            session.display(),
-            s.rows,
-            log.block.n_valid(),
-            s.bins_missing,
-            s.rows_without_task_state
-        );
-        return Ok(SessionBlock {
-            block: log.block,
-            target_radius: log.summary.target_radius,
-        });
-    }
-    Ok(SessionBlock {
-        block: Block::read(session)?,
-        target_radius: None,
-    })
-}
-
-/// The rows behind `--session` for a verb that reads them in passes
-/// (evaluate): a session directory read a chunk at a time, or a session
-/// log first exported (streaming, as `export` does) to a temporary session
-/// directory under TMPDIR, removed when this is dropped. Neither is held in
-/// memory.
-pub struct SessionRows {
-    pub rows: BlockFiles,
-    /// The target radius the task packets gave (a session log only).
-    pub target_radius: Option<f64>,
-    _exported: Option<tempfile::TempDir>,
-}
-
-pub fn rows_with_kinematics(session: &Path) -> Result<SessionRows> {
-    if session.is_file() {
-        let tmp = tempfile::Builder::new()
-            .prefix("replay-tool-session-")
-            .tempdir()
-            .context("creating a temporary folder for the session log's rows (set TMPDIR to a disk with room)")?;
-        let s = decoder_core::formats::log_block::export_log(session, tmp.path())
-            .with_context(|| format!("--session {}", session.display()))?;
-        let rows = BlockFiles::open(tmp.path())
-            .with_context(|| format!("--session {}", session.display()))?;
-        if !rows.info().has_kinematics {
-            bail!("{}", no_task_packets(session));
-        }
-        eprintln!(
-            "replay-tool: {}: {} slots, {} valid for training ({} bins missing, {} before the first task packet)",
-            session.display(),
-            s.rows,
-            s.valid_rows,
-            s.bins_missing,
-            s.rows_without_task_state
-        );
-        return Ok(SessionRows {
-            rows,
-            target_radius: s.target_radius,
-            _exported: Some(tmp),
-        });
-    }
-    Ok(SessionRows {
-        rows: BlockFiles::open(session)?,
-        target_radius: None,
-        _exported: None,
-    })
-}
-
-fn no_task_packets(session: &Path) -> String {
-    format!(
-        "--session {}: the log holds no task packets, so it has no kinematics to train or score on; record the block with the task computer sending task packets (PROTOCOL.md §6) to the daemon's task socket (network.task_listen)",
-        session.display()
-    )
-}
 
 /// Says which of the block's kinematics the decoder leaves out, so a 3-D
 /// block never trains a 2-D decoder without a word.

@@ -17,6 +17,7 @@ use decoder_core::ModelFile;
 use decoder_core::formats::block_rows::{AllRows, BlockFiles};
 use decoder_core::formats::log_replay::replay_log;
 use decoder_core::formats::session_log::{LogEnd, LogReader};
+use decoder_core::session::open::Session;
 use decoder_core::session::replay::replay_rows;
 use decoder_core::wire::packet::VelocityPacket;
 
@@ -57,7 +58,7 @@ pub struct ReplaySummary {
 }
 
 pub fn replay(args: &Args) -> Result<ReplaySummary> {
-    if args.session.is_file() {
+    if let Session::Log(_) = Session::at(&args.session)? {
         return replay_session_log(args);
     }
     if args.compare.is_some() {
@@ -166,9 +167,7 @@ fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
 
 pub fn run(args: &Args) -> Result<()> {
     if let (Some(other), Some(csv)) = (&args.model, &args.compare) {
-        if !args.session.is_file() {
-            bail!("--compare needs a session log (.vdlog) from decoderd");
-        }
+        Session::log_at(&args.session, "--compare")?;
         let model = ModelFile::read(other)?;
         let (n, rms) = super::verify::compare_models(&args.session, &model, csv)?;
         let parts: Vec<String> = rms.iter().map(|r| format!("{r:.4}")).collect();

@@ -6,6 +6,7 @@
 //! equal a predict-only step. This is how a user checks that the daemon on
 //! a rig computer decodes exactly what the offline tools do.
 
+use decoder_core::session::open::Session;
 use std::net::UdpSocket;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
@@ -44,7 +45,7 @@ pub struct Args {
 /// The bins of a session directory or of a session log's valid datagrams,
 /// with the model to check against.
 fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFile)> {
-    if session.is_dir() {
+    if let Session::Directory(_) = Session::at(session)? {
         let Some(m) = model else {
             bail!("--model is required to stream a session directory (the model the daemon runs)");
         };

@@ -4,21 +4,18 @@
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
+use decoder_core::TrainError;
 use decoder_core::decoders::DecoderModel;
-use decoder_core::decoders::point_process::{ChannelGlm, PointProcessModel};
+use decoder_core::decoders::point_process::ChannelGlm;
 use decoder_core::fit::config::TrainConfig;
-use decoder_core::fit::evaluate::{DecoderSpec, Evaluation, cross_validate};
-use decoder_core::fit::intention::reestimate_intention;
-use decoder_core::fit::kalman::fit_kalman;
-use decoder_core::fit::point_process::{
-    ChannelLeftOut, PointProcessFitOptions, PointProcessFitReport, assemble, fit_channels,
-};
-use decoder_core::fit::wiener::fit_wiener;
-use decoder_core::formats::block_rows::{BlockRows, data_sha256};
-use decoder_core::formats::model_file::{CrossValidation, ModelFile, OutputScores, Provenance};
-use serde_json::json;
+use decoder_core::fit::evaluate::DecoderSpec;
+use decoder_core::fit::point_process::{ChannelLeftOut, PointProcessFitOptions, fit_channels};
+use decoder_core::formats::block_rows::BlockRows;
+use decoder_core::formats::log_block::LogBlockSummary;
+use decoder_core::formats::model_file::ModelFile;
+use decoder_core::session::open::Session;
+use decoder_core::session::train::{ChannelFits, FitRecord, Stamp, Trained, train, train_refit};
 
-use super::load_train_config;
 use crate::output::write_atomic;
 use crate::progress;
 
@@ -76,7 +73,7 @@ pub fn config_with_overrides(
     lag: Option<usize>,
     ridge: Option<f64>,
 ) -> Result<TrainConfig> {
-    let mut cfg = load_train_config(config)?;
+    let mut cfg = TrainConfig::read(config)?;
     if let Some(lag) = lag {
         cfg.override_lag(lag)?;
     }
@@ -86,119 +83,49 @@ pub fn config_with_overrides(
     Ok(cfg)
 }
 
-pub fn spec_for(kind: DecoderKind, cfg: &TrainConfig) -> Result<DecoderSpec> {
+pub fn spec_for(kind: DecoderKind, cfg: &TrainConfig) -> DecoderSpec {
     match kind {
-        DecoderKind::Kalman => Ok(DecoderSpec::Kalman(cfg.kalman.clone())),
-        DecoderKind::Wiener => Ok(DecoderSpec::Wiener(cfg.wiener.clone())),
-        DecoderKind::PointProcess => Ok(DecoderSpec::PointProcess(cfg.point_process.clone())),
+        DecoderKind::Kalman => DecoderSpec::Kalman(cfg.kalman.clone()),
+        DecoderKind::Wiener => DecoderSpec::Wiener(cfg.wiener.clone()),
+        DecoderKind::PointProcess => DecoderSpec::PointProcess(cfg.point_process.clone()),
     }
 }
 
-/// Trains and returns the model file (not yet written).
-pub fn train_model(
-    session: &(dyn BlockRows + Sync),
-    spec: &DecoderSpec,
-    folds: Option<usize>,
-) -> Result<ModelFile> {
-    let (decoder, fit, silent_channels) = match spec {
-        DecoderSpec::Kalman(opts) => {
-            let (model, report) = fit_kalman(session, opts)?;
-            let silent = report.excluded_channels.clone();
-            (
-                DecoderModel::Kalman(model),
-                json!({ "decoder": "kalman", "options": opts, "report": report }),
-                silent,
-            )
-        }
-        DecoderSpec::Wiener(opts) => {
-            let model = fit_wiener(session, opts)?;
-            (
-                DecoderModel::Wiener(model),
-                json!({ "decoder": "wiener", "options": opts }),
-                Vec::new(),
-            )
-        }
-        DecoderSpec::PointProcess(opts) => {
-            let (model, report) = fit_point_process_parallel(session, opts)?;
-            (
-                DecoderModel::PointProcess(model),
-                json!({ "decoder": "point-process", "options": opts, "report": report }),
-                Vec::new(),
-            )
-        }
-    };
-    let cv = match folds {
-        Some(k) => {
-            let pb = progress::bar(k as u64, "cross-val");
-            let eval = cross_validate(session, std::slice::from_ref(spec), k, |_, _| pb.inc(1))?;
-            pb.finish_and_clear();
-            Some(cross_validation(&eval))
-        }
-        None => None,
-    };
-    Ok(ModelFile {
-        bin_width: session.info().bin_width,
-        decoder,
-        provenance: Provenance {
-            trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
-            tool_version: env!("CARGO_PKG_VERSION").to_string(),
-            data_sha256: data_sha256(session)?,
-            fit_document: fit.to_string(),
-            silent_channels,
-            cv,
-        },
-    })
-}
-
-fn cross_validation(eval: &Evaluation) -> CrossValidation {
-    let d = &eval.decoders[0];
-    let scores = |s: &decoder_core::fit::metrics::Scores| OutputScores {
-        cc: s.cc,
-        r2: s.r2,
-        rmse: s.rmse,
-    };
-    CrossValidation {
-        folds: eval.folds as u32,
-        by_trial: eval.by_trial,
-        outputs: d.outputs.clone(),
-        mean: d.mean.iter().map(scores).collect(),
-        per_fold: d
-            .per_fold
-            .iter()
-            .map(|f| f.iter().map(scores).collect())
-            .collect(),
+/// This run's stamp: when (the tool reads the clock, the core does not)
+/// and which version.
+pub fn stamp() -> Stamp {
+    Stamp {
+        trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
+        tool_version: env!("CARGO_PKG_VERSION").to_string(),
     }
 }
 
-/// Fits the point-process decoder, its channels in parallel on all cores
-/// (each channel's GLM is independent of the others): channels are dealt
-/// to one group per core, each group fitted side by side in its own passes
-/// over the block.
-pub fn fit_point_process_parallel(
-    session: &(dyn BlockRows + Sync),
-    options: &PointProcessFitOptions,
-) -> Result<(PointProcessModel, PointProcessFitReport)> {
-    let info = session.info();
-    if !info.has_kinematics {
-        return Err(decoder_core::TrainError::NoKinematics.into());
-    }
-    decoder_core::fit::kalman::state_sources(&info.kinematic_names, &options.state)?;
-    let n = info.n_channels;
-    let threads = std::thread::available_parallelism()
-        .map_or(1, |t| t.get())
-        .min(n.max(1));
-    let groups: Vec<Vec<usize>> = (0..threads)
-        .map(|g| (g..n).step_by(threads).collect())
-        .collect();
-    let pb = progress::bar(threads as u64, "fit GLMs");
-    let results: Vec<Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, decoder_core::TrainError>> =
-        std::thread::scope(|scope| {
+/// A point-process fit's channels side by side on every core: channels
+/// are dealt to one group per core, each group fitted in its own passes
+/// over the block (each channel's GLM is independent of the others).
+pub struct SideBySide;
+
+impl ChannelFits for SideBySide {
+    fn fit(
+        &self,
+        rows: &(dyn BlockRows + Sync),
+        options: &PointProcessFitOptions,
+        n: usize,
+    ) -> Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, TrainError> {
+        let threads = std::thread::available_parallelism()
+            .map_or(1, |t| t.get())
+            .min(n.max(1));
+        let groups: Vec<Vec<usize>> = (0..threads)
+            .map(|g| (g..n).step_by(threads).collect())
+            .collect();
+        let pb = progress::bar(threads as u64, "fit GLMs");
+        let results: Vec<_> = std::thread::scope(|scope| {
             let handles: Vec<_> = groups
                 .iter()
                 .map(|channels| {
                     let pb = &pb;
                     scope.spawn(move || {
-                        let fits = fit_channels(session, options, channels);
+                        let fits = fit_channels(rows, options, channels);
                         pb.inc(1);
                         fits
                     })
@@ -209,19 +136,28 @@ pub fn fit_point_process_parallel(
                 .map(|h| h.join().expect("a fitting thread panicked"))
                 .collect()
         });
-    pb.finish_and_clear();
-    let mut fits: Vec<Result<ChannelGlm, ChannelLeftOut>> =
-        (0..n).map(|_| Err(ChannelLeftOut::NotRun)).collect();
-    for (channels, group) in groups.iter().zip(results) {
-        for (&c, fit) in channels.iter().zip(group?) {
-            fits[c] = fit;
+        pb.finish_and_clear();
+        let mut fits: Vec<Result<ChannelGlm, ChannelLeftOut>> =
+            (0..n).map(|_| Err(ChannelLeftOut::NotRun)).collect();
+        for (channels, group) in groups.iter().zip(results) {
+            for (&c, fit) in channels.iter().zip(group?) {
+                fits[c] = fit;
+            }
         }
+        Ok(fits)
     }
-    let (model, report) = assemble(session, options, fits)?;
-    for (c, why) in &report.excluded {
-        tracing::warn!("channel {c} left out of the point-process model: {why}");
-    }
-    Ok((model, report))
+}
+
+/// Trains `spec` on `rows` with a progress bar over the folds.
+pub fn train_with_progress(
+    rows: &(dyn BlockRows + Sync),
+    spec: &DecoderSpec,
+    folds: Option<usize>,
+) -> Result<Trained> {
+    let pb = progress::bar(folds.unwrap_or(0) as u64, "cross-val");
+    let trained = train(rows, spec, folds, &stamp(), &SideBySide, &mut || pb.inc(1))?;
+    pb.finish_and_clear();
+    Ok(trained)
 }
 
 pub fn run(args: &Args) -> Result<()> {
@@ -233,20 +169,30 @@ pub fn run(args: &Args) -> Result<()> {
         cfg.point_process.history = None;
         cfg.point_process.coupling = false;
     }
-    let spec = spec_for(args.decoder, &cfg)?;
-    let source = args.session.clone();
+    let spec = spec_for(args.decoder, &cfg);
+    let source = &args.session;
+    let session = Session::at(source)?;
     let folds = if args.no_cv { None } else { Some(cfg.folds) };
-    let model = if args.refit {
-        let super::SessionBlock {
-            block,
-            target_radius: logged_radius,
-        } = super::block_with_kinematics(&source)?;
-        let radius = args.target_radius.or(logged_radius).unwrap_or(2.0);
-        if !(radius.is_finite() && radius >= 0.0) {
-            bail!("--target-radius {radius}: must be a finite distance ≥ 0");
+    let trained = if args.refit {
+        let opened = session.block_with_kinematics()?;
+        if let Some(s) = &opened.from_log {
+            print_log_rows(source, s);
         }
-        let (refit, n) = reestimate_intention(&block, radius)
-            .with_context(|| format!("re-estimating intention in {}", source.display()))?;
+        let logged_radius = opened.from_log.as_ref().and_then(|s| s.target_radius);
+        let radius = args.target_radius.or(logged_radius).unwrap_or(2.0);
+        super::warn_unused_kinematics(&opened.block.kinematic_names, source, &spec);
+        let pb = progress::bar(folds.unwrap_or(0) as u64, "cross-val");
+        let (trained, n) = train_refit(
+            &opened.block,
+            radius,
+            &spec,
+            folds,
+            &stamp(),
+            &SideBySide,
+            &mut || pb.inc(1),
+        )
+        .with_context(|| format!("training on {}", source.display()))?;
+        pb.finish_and_clear();
         println!(
             "intention re-estimated in {}: {} bins turned toward the target, {} zeroed inside it, {} outside trials left as decoded",
             source.display(),
@@ -254,26 +200,18 @@ pub fn run(args: &Args) -> Result<()> {
             n.zeroed,
             n.untouched
         );
-        // Bins that never came, or came before the task said anything,
-        // train nothing (a pass visits the valid rows only).
-        super::warn_unused_kinematics(&refit.kinematic_names, &source, &spec);
-        train_model(&refit, &spec, folds)
+        trained
     } else {
         // Read in passes, a chunk at a time.
-        let session = super::rows_with_kinematics(&source)?;
-        super::warn_unused_kinematics(&session.rows.info().kinematic_names, &source, &spec);
-        train_model(&session.rows, &spec, folds)
-    }
-    .with_context(|| format!("training on {}", source.display()))?;
-    // Never write a file its readers would refuse.
-    ModelFile::from_bytes(&model.to_bytes(), &args.out.display().to_string()).with_context(
-        || {
-            format!(
-                "the model trained on {} cannot be written",
-                source.display()
-            )
-        },
-    )?;
+        let opened = session.rows_with_kinematics()?;
+        if let Some(s) = &opened.from_log {
+            print_log_rows(source, s);
+        }
+        super::warn_unused_kinematics(&opened.rows.info().kinematic_names, source, &spec);
+        train_with_progress(&opened.rows, &spec, folds)
+            .with_context(|| format!("training on {}", source.display()))?
+    };
+    let model = trained.model;
     write_atomic(&args.out, &model.to_bytes())?;
     println!(
         "wrote {} ({} decoder, {} channels, {} ms bins)",
@@ -282,7 +220,12 @@ pub fn run(args: &Args) -> Result<()> {
         model.decoder.n_channels(),
         model.bin_width.ms()
     );
-    if let DecoderModel::PointProcess(m) = &model.decoder {
+    if let (DecoderModel::PointProcess(m), FitRecord::PointProcess { report, .. }) =
+        (&model.decoder, &trained.fit)
+    {
+        for (c, why) in &report.excluded {
+            tracing::warn!("channel {c} left out of the point-process model: {why}");
+        }
         println!(
             "point-process encoding models: {} channels fitted of {}, history {}",
             m.channels.iter().flatten().count(),
@@ -311,4 +254,16 @@ pub fn print_cv_line(model: &ModelFile) {
             .collect();
         println!("cross-validated ({} folds): {}", cv.folds, parts.join(", "));
     }
+}
+
+/// What reading a session log as a block found, for the operator.
+pub fn print_log_rows(source: &Path, s: &LogBlockSummary) {
+    eprintln!(
+        "replay-tool: {}: {} slots, {} valid for training ({} bins missing, {} before the first task packet)",
+        source.display(),
+        s.rows,
+        s.valid_rows,
+        s.bins_missing,
+        s.rows_without_task_state
+    );
 }

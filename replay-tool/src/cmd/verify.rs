@@ -10,6 +10,7 @@
 //! bins decoded by the logged model and by another one, side by side — how
 //! a user checks a retrained decoder on a real session before it is loaded.
 
+use decoder_core::session::open::Session;
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
@@ -38,12 +39,7 @@ pub fn run(args: &Args) -> Result<()> {
             bail!("--tolerance {t}: must be a finite number ≥ 0");
         }
     }
-    if args.log.is_dir() {
-        bail!(
-            "{}: verify checks a session log (.vdlog) from decoderd, not a session directory",
-            args.log.display()
-        );
-    }
+    Session::log_at(&args.log, "verify")?;
     let v = verify(&args.log, args.tolerance)?;
     let how = match args.tolerance {
         None => "bit for bit".to_string(),

@@ -38,7 +38,8 @@ struct Packets(Vec<VelocityPacket>);
 
 impl SlotSink for Packets {
     fn answer(&mut self, packet: &mut [u8], _slot: &SlotAnswer) {
-        self.0.push(VelocityPacket::parse(packet).expect("the engine encodes"));
+        self.0
+            .push(VelocityPacket::parse(packet).expect("the engine encodes"));
     }
     fn event(&mut self, _event: &EngineEvent) {}
 }
@@ -102,7 +103,9 @@ fn one_recording_gives_the_same_bits_on_every_path() {
         .start()
         .unwrap();
     let sender = UdpSocket::bind("127.0.0.1:0").unwrap();
-    paced_send(&sender, daemon.listen, &datagrams, n, 50.0, |_| BinFault::None);
+    paced_send(&sender, daemon.listen, &datagrams, n, 50.0, |_| {
+        BinFault::None
+    });
     actuator
         .wait_for_seq(n as u64 - 1, Duration::from_secs(20))
         .unwrap();
@@ -140,11 +143,7 @@ fn one_recording_gives_the_same_bits_on_every_path() {
     .unwrap();
     assert_eq!(differing, 0, "a replayed packet differs from the sent one");
     assert!(summary.slots as usize >= n);
-    assert_same_bits(
-        "replay of the log",
-        &estimates(&replayed[..n]),
-        &live_est,
-    );
+    assert_same_bits("replay of the log", &estimates(&replayed[..n]), &live_est);
 
     // The log exported as a session directory and replayed as rows.
     let exported = dir.path().join("export");

@@ -1,0 +1,279 @@
+//! Verbs that drive a live daemon: `bench`, `closed-loop` and `stream`.
+
+use super::*;
+
+#[test]
+fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
+    let dir = tempfile::tempdir().unwrap();
+    // The budget verdict is under test, not this machine's scheduling: a
+    // wide deadline slack keeps a host stall from turning a bin late.
+    let config = dir.path().join("daemon.toml");
+    std::fs::write(&config, "[timing]\ndeadline_slack_bins = 4.0\n").unwrap();
+    let first = dir.path().join("first");
+    let base = [
+        "bench",
+        "--seconds",
+        "1.5",
+        "--channels",
+        "16",
+        "--config",
+        p(&config),
+    ];
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&first)]);
+    let stdout = ok(&args);
+    assert!(stdout.contains("bench passed"), "{stdout}");
+    for f in [
+        "summary.json",
+        "bins.csv",
+        "report.html",
+        "latency-histogram.svg",
+        "latency-over-time.png",
+    ] {
+        assert!(first.join(f).is_file(), "{f}");
+    }
+    let measured = bench_p99(&first);
+    assert!(measured > 0.0);
+    let model = first.join("bench.model");
+    let base = [
+        "bench",
+        "--seconds",
+        "1.5",
+        "--model",
+        p(&model),
+        "--config",
+        p(&config),
+    ];
+
+    // A budget far above what this machine just measured passes ...
+    let generous = format!("{}", measured * 100.0 + 10_000.0);
+    let second = dir.path().join("second");
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&second), "--budget-p99-us", &generous]);
+    ok(&args);
+    // ... and one far below it fails with exit 1.
+    let tight = format!("{}", measured / 1000.0);
+    let third = dir.path().join("third");
+    let mut args = base.to_vec();
+    args.extend(["--report", p(&third), "--budget-p99-us", &tight]);
+    let err = fails_with(&args, 1);
+    assert!(err.contains("over the budget"), "{err}");
+    assert!(
+        std::fs::read_to_string(third.join("report.html"))
+            .unwrap()
+            .contains("FAIL")
+    );
+}
+
+/// A decoder trained on the simulated array lets the simulated user reach
+/// targets; one trained with the channels shuffled does not; a refit from
+/// the good decoder's closed-loop block is at least as good and faster per
+/// target. Every run is seeded and the loop turns as fast as it can
+/// (bins early for their slots), so the outcomes repeat.
+#[test]
+fn simulated_user_succeeds_with_a_good_decoder_fails_with_a_shuffled_one_and_refit_helps() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "3",
+        "--channels",
+        "32",
+    ]);
+    let good = dir.path().join("good.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&good),
+        "--no-cv",
+    ]);
+
+    // The same block with its channel columns rotated by one: the decoder
+    // reads every channel as its neighbour.
+    let mut s = decoder_core::Block::read(&cal).unwrap();
+    let n = s.n_channels;
+    for row in s.counts.chunks_mut(n) {
+        row.rotate_left(1);
+    }
+    let shuffled_dir = dir.path().join("shuffled");
+    s.write(&shuffled_dir).unwrap();
+    let shuffled = dir.path().join("shuffled.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&shuffled_dir),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&shuffled),
+        "--no-cv",
+    ]);
+
+    let run = |model: &Path, name: &str, seed: &str| {
+        let report = dir.path().join(name);
+        ok(&[
+            "closed-loop",
+            "--model",
+            p(model),
+            "--time-scale",
+            "0",
+            "--trials",
+            "12",
+            "--task-seed",
+            seed,
+            "--report",
+            p(&report),
+        ]);
+        (closed_loop_summary(&report), report)
+    };
+    let (with_good, good_report) = run(&good, "cl-good", "3");
+    let (with_shuffled, _) = run(&shuffled, "cl-shuffled", "3");
+    let success = |v: &serde_json::Value| v["success_rate"].as_f64().unwrap();
+    assert!(success(&with_good) >= 0.5, "{with_good}");
+    assert!(success(&with_shuffled) <= 0.25, "{with_shuffled}");
+
+    // The session log is the closed-loop block: its task packets give
+    // cursor, shown velocity, targets and the radius.
+    let refit = dir.path().join("refit.model");
+    let log = closed_loop_log(&good_report);
+    let out = ok(&[
+        "train",
+        "--session",
+        p(&log),
+        "--refit",
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&refit),
+        "--no-cv",
+    ]);
+    assert!(out.contains("intention re-estimated"), "{out}");
+    // Judged on targets it was not refit on.
+    let (seed_after, _) = run(&good, "cl-good-2", "4");
+    let (refit_after, _) = run(&refit, "cl-refit", "4");
+    assert!(
+        success(&refit_after) >= success(&seed_after),
+        "{refit_after} vs {seed_after}"
+    );
+    eprintln!("good {with_good}\nshuffled {with_shuffled}\nseed {seed_after}\nrefit {refit_after}");
+    let per_target = |v: &serde_json::Value| v["mean_trial_time_s"].as_f64().unwrap();
+    // Retraining with intention re-estimation must make targets faster
+    // (Gilja et al. 2012 report the same direction in closed loop).
+    assert!(
+        per_target(&refit_after) < per_target(&seed_after),
+        "{refit_after} vs {seed_after}"
+    );
+}
+
+#[test]
+fn stream_through_a_running_daemon_equals_offline_decoding() {
+    let dir = tempfile::tempdir().unwrap();
+    let (_, model) = fixture::calibration_16();
+    let block = dir.path().join("block");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "0.1",
+        "--channels",
+        "16",
+        "--seed",
+        "5",
+    ]);
+    // The running daemon (here on threads of this test) sends to `sink`.
+    let sink = std::net::UdpSocket::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap();
+    let daemon = daemon_rig::Launch::new(&model, &dir.path().join("d"), sink)
+        .start()
+        .unwrap();
+    let target = daemon.listen.to_string();
+    let sink_text = sink.to_string();
+    let out = ok(&[
+        "stream",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--daemon",
+        &target,
+        "--actuator",
+        &sink_text,
+        "--time-scale",
+        "0.25",
+    ]);
+    assert!(
+        out.contains("300 of 300 live estimates equal offline decoding bit for bit"),
+        "{out}"
+    );
+
+    // Against another model, the same stream differs and the check fails.
+    let other_cal = dir.path().join("other-cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&other_cal),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+        "--seed",
+        "9",
+        "--array-seed",
+        "2",
+    ]);
+    let other = dir.path().join("other.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&other_cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&other),
+        "--no-cv",
+    ]);
+    let err = fails_with(
+        &[
+            "stream",
+            "--session",
+            p(&block),
+            "--model",
+            p(&other),
+            "--daemon",
+            &target,
+            "--actuator",
+            &sink_text,
+            "--time-scale",
+            "0.25",
+        ],
+        1,
+    );
+    assert!(err.contains("differ"), "{err}");
+    // And with the right model again, on the now used daemon: a new stream
+    // resets it, and the check passes from the stream's first decoded bin.
+    let out = ok(&[
+        "stream",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--daemon",
+        &target,
+        "--actuator",
+        &sink_text,
+        "--time-scale",
+        "0.25",
+    ]);
+    assert!(out.contains("299 of 299 live estimates equal"), "{out}");
+    daemon.stop().unwrap();
+}

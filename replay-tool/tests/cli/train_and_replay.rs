@@ -1,0 +1,249 @@
+//! `simulate`, `train`, `replay`, `model show` and the demo, as a user runs them.
+
+use super::*;
+
+#[test]
+fn simulate_train_replay_and_show() {
+    let dir = tempfile::tempdir().unwrap();
+    // `simulate` as a user runs it, shared with the evaluation test.
+    let block = fixture::block("1", "24", &[]);
+    let model = dir.path().join("k.model");
+    let est = dir.path().join("est.npy");
+    let said = ok(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--lag",
+        "0",
+        "--ridge",
+        "0",
+    ]);
+    assert!(said.contains("cross-validated"), "{said}");
+    ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--out",
+        p(&est),
+    ]);
+    let arr = Array2::<f64>::read_npy(std::fs::File::open(&est).unwrap()).unwrap();
+    assert_eq!(arr.dim(), (3000, 2));
+
+    let csv = dir.path().join("est.csv");
+    ok(&[
+        "replay",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--out",
+        p(&csv),
+    ]);
+    let text = std::fs::read_to_string(&csv).unwrap();
+    assert_eq!(text.lines().next(), Some("vel_x,vel_y"));
+    assert_eq!(text.lines().count(), 3001);
+
+    let json: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+    assert_eq!(json["kind"], "kalman");
+    assert_eq!(json["channels"], 24);
+    assert_eq!(
+        json["fit"]["options"]["ridge"], 0.0,
+        "the --ridge flag is recorded"
+    );
+    assert_eq!(json["cv"]["folds"], 5);
+    let summary = ok(&["model", "show", p(&model)]);
+    assert!(
+        summary.contains("data sha256") && summary.contains("cv vel_x"),
+        "{summary}"
+    );
+}
+
+#[test]
+fn point_process_decoder_trains_replays_and_exports() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&cal),
+        "--minutes",
+        "2",
+        "--channels",
+        "16",
+    ]);
+    let later = dir.path().join("later");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&later),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "16",
+        "--seed",
+        "4",
+    ]);
+    for (name, extra) in [("pp.model", None), ("lnp.model", Some("--no-history"))] {
+        let model = dir.path().join(name);
+        let mut args = vec![
+            "train",
+            "--session",
+            p(&cal),
+            "--decoder",
+            "point-process",
+            "--out",
+            p(&model),
+        ];
+        args.extend(extra);
+        let out = ok(&args);
+        assert!(out.contains("16 channels fitted of 16"), "{out}");
+        let shown = ok(&["model", "show", p(&model)]);
+        assert!(shown.contains("point-process"), "{shown}");
+        let json: serde_json::Value =
+            serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+        assert_eq!(json["kind"], "point-process");
+        for key in [
+            "b0", "beta", "history", "A", "W", "x0", "P0", "state", "outputs",
+        ] {
+            assert!(!json[key].is_null(), "{key} missing");
+        }
+        assert_eq!(json["history_basis"].is_null(), extra.is_some());
+        let est = dir.path().join(format!("{name}.npy"));
+        let out = ok(&[
+            "replay",
+            "--session",
+            p(&later),
+            "--model",
+            p(&model),
+            "--out",
+            p(&est),
+        ]);
+        // Decoding the later block from the same simulated array works.
+        let cc: Vec<f64> = out
+            .lines()
+            .find(|l| l.contains("kinematics"))
+            .unwrap()
+            .split("CC ")
+            .skip(1)
+            .map(|w| {
+                w.split(|c: char| c == ',' || c.is_whitespace())
+                    .next()
+                    .unwrap()
+                    .parse()
+                    .unwrap()
+            })
+            .collect();
+        assert!(cc.iter().all(|&c| c > 0.5), "{name}: {out}");
+    }
+    // The daemon runs it unchanged: a closed-loop run through decoderd.
+    let report = dir.path().join("cl");
+    let out = ok(&[
+        "closed-loop",
+        "--model",
+        p(&dir.path().join("pp.model")),
+        "--time-scale",
+        "0",
+        "--trials",
+        "4",
+        "--report",
+        p(&report),
+    ]);
+    assert!(out.contains("closed loop with"), "{out}");
+}
+
+/// A 3-D block given the default 2-D state trains, and says which
+/// kinematics the decoder does not decode.
+#[test]
+fn training_says_which_kinematics_the_decoder_leaves_out() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = dir.path().join("block3d");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&block),
+        "--minutes",
+        "1",
+        "--channels",
+        "8",
+    ]);
+    let mut b = decoder_core::Block::read(&block).unwrap();
+    let kin = b.kinematics.take().unwrap();
+    let rows: Vec<Vec<f64>> = (0..b.n_bins)
+        .map(|t| {
+            let r: Vec<f64> = (0..kin.cols).map(|c| kin.get(t, c)).collect();
+            vec![r[0], r[1], 0.5 * r[0], r[2], r[3], 0.5 * r[2]]
+        })
+        .collect();
+    b.kinematics = Some(decoder_core::linalg::Mat::from_rows(&rows));
+    b.kinematic_names = ["pos_x", "pos_y", "pos_z", "vel_x", "vel_y", "vel_z"]
+        .map(String::from)
+        .to_vec();
+    b.write(&block).unwrap();
+    let out = tool(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&dir.path().join("k.model")),
+        "--no-cv",
+    ]);
+    assert!(out.status.success());
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert!(
+        err.contains("kinematics pos_z, vel_z are not decoded by the kalman decoder"),
+        "{err}"
+    );
+    assert!(err.contains("[kalman] state and outputs"), "{err}");
+}
+
+#[test]
+fn the_example_config_is_valid() {
+    let cfg = concat!(env!("CARGO_MANIFEST_DIR"), "/../config/train.toml");
+    let text = std::fs::read_to_string(cfg).unwrap();
+    decoder_core::fit::config::TrainConfig::from_toml(&text, cfg).unwrap();
+}
+
+#[test]
+fn demo_runs_the_daemon_live_and_the_recording_replays() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("demo");
+    let stdout = ok(&[
+        "demo",
+        "--out",
+        p(&out),
+        "--minutes",
+        "1",
+        "--channels",
+        "16",
+        "--live-seconds",
+        "2",
+    ]);
+    assert!(stdout.contains("streaming 100 bins"), "{stdout}");
+    let line = stdout
+        .lines()
+        .find(|l| l.contains("reproduced"))
+        .unwrap_or_else(|| panic!("no replay check in {stdout}"));
+    // "offline replay of the recording reproduced N of N sent packets"
+    let nums: Vec<u64> = line
+        .split_whitespace()
+        .filter_map(|w| w.parse().ok())
+        .collect();
+    assert_eq!(nums.len(), 2, "{line}");
+    assert_eq!(nums[0], nums[1], "{line}");
+    assert!(nums[0] >= 100, "{line}");
+    assert!(stdout.contains("latency recv->send"), "{stdout}");
+    let log = stdout
+        .lines()
+        .find_map(|l| l.trim().strip_prefix("recording -> "))
+        .expect("the recording's path");
+    assert!(Path::new(log).is_file(), "{log}");
+}

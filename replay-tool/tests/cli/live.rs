@@ -6,7 +6,9 @@ use super::*;
 fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
     let dir = tempfile::tempdir().unwrap();
     // The budget verdict is under test, not this machine's scheduling: a
-    // wide deadline slack keeps a host stall from turning a bin late.
+    // wide deadline slack keeps a host stall from turning a bin late, and
+    // a bin that a loaded host made late anyway fails the bench for that
+    // reason, never for the budget (`assert_no_budget_failure`).
     let config = dir.path().join("daemon.toml");
     std::fs::write(&config, "[timing]\ndeadline_slack_bins = 4.0\n").unwrap();
     let first = dir.path().join("first");
@@ -21,8 +23,7 @@ fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
     ];
     let mut args = base.to_vec();
     args.extend(["--report", p(&first)]);
-    let stdout = ok(&args);
-    assert!(stdout.contains("bench passed"), "{stdout}");
+    assert_no_budget_failure(&args);
     for f in [
         "summary.json",
         "bins.csv",
@@ -50,7 +51,7 @@ fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
     let second = dir.path().join("second");
     let mut args = base.to_vec();
     args.extend(["--report", p(&second), "--budget-p99-us", &generous]);
-    ok(&args);
+    assert_no_budget_failure(&args);
     // ... and one far below it fails with exit 1.
     let tight = format!("{}", measured / 1000.0);
     let third = dir.path().join("third");
@@ -63,6 +64,24 @@ fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
             .unwrap()
             .contains("FAIL")
     );
+}
+
+/// Runs a bench whose budget (if any) is far above this machine's: it
+/// passes, or — when a loaded host held a bin past its deadline, which is
+/// the scheduler's call and not under test — fails for that reason alone,
+/// never for the budget. Its report is written either way.
+fn assert_no_budget_failure(args: &[&str]) {
+    let out = tool(args);
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    let stderr = String::from_utf8_lossy(&out.stderr);
+    match out.status.code() {
+        Some(0) => assert!(stdout.contains("bench passed"), "{stdout}"),
+        Some(1) => assert!(
+            !stderr.contains("over the budget") && stderr.contains("bench failed"),
+            "{stderr}"
+        ),
+        other => panic!("{args:?} exited {other:?}: {stderr}"),
+    }
 }
 
 /// A decoder trained on the simulated array lets the simulated user reach

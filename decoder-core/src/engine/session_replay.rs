@@ -230,3 +230,20 @@ impl SessionReplay {
         self.counts
     }
 }
+
+/// Replays `records` (each with its offset) in order through `replay`:
+/// [`SessionReplay::feed`] over any iterator, for records already in
+/// memory or read by any reader. The last offset stands for the end.
+pub fn replay_records<'r, E>(
+    mut replay: SessionReplay,
+    records: impl IntoIterator<Item = (u64, SessionRecord<'r>)>,
+    mut load: impl FnMut(&[u8]) -> Result<DecodePipeline, E>,
+    mut on_slot: impl FnMut(&ReplayedSlot<'_>),
+) -> Result<ReplayCounts, SessionReplayError<E>> {
+    let mut end = 0;
+    for (offset, record) in records {
+        end = offset;
+        replay.feed(offset, record, &mut load, &mut on_slot)?;
+    }
+    Ok(replay.finish(end, on_slot))
+}

@@ -360,6 +360,73 @@ impl BlockRows for BlockFiles {
 
     fn pass(&self, visit: &mut dyn FnMut(RowChunk<'_>)) -> Result<(), BlockError> {
         let (n, k) = (self.info.n_channels, self.info.kinematic_names.len());
+        let mut first = 0;
+        self.read_chunks(&mut |c, x, valid| {
+            let rows = match valid {
+                Some(v) => {
+                    // Keep the valid rows, moved down in place.
+                    let mut kept = 0;
+                    for (r, &ok) in v.iter().enumerate() {
+                        if ok == 0 {
+                            continue;
+                        }
+                        if kept != r {
+                            c.copy_within(r * n..(r + 1) * n, kept * n);
+                            if !x.is_empty() {
+                                x.copy_within(r * k..(r + 1) * k, kept * k);
+                            }
+                        }
+                        kept += 1;
+                    }
+                    kept
+                }
+                None => c.len() / n.max(1),
+            };
+            if rows > 0 {
+                visit(RowChunk {
+                    first,
+                    rows,
+                    counts: &c[..rows * n],
+                    kinematics: if x.is_empty() { &[] } else { &x[..rows * k] },
+                });
+            }
+            first += rows;
+        })
+    }
+}
+
+impl AllRows for BlockFiles {
+    fn all_bins(&self) -> usize {
+        self.file_bins
+    }
+
+    fn pass_all(&self, visit: &mut dyn FnMut(AllRowsChunk<'_>)) -> Result<(), BlockError> {
+        let n = self.info.n_channels;
+        let (mut first, mut ok) = (0, Vec::new());
+        self.read_chunks(&mut |c, x, valid| {
+            let rows = c.len() / n.max(1);
+            ok.clear();
+            ok.extend(valid.into_iter().flatten().map(|&b| b != 0));
+            visit(AllRowsChunk {
+                first,
+                rows,
+                counts: c,
+                kinematics: x,
+                valid: &ok,
+            });
+            first += rows;
+        })
+    }
+}
+
+impl BlockFiles {
+    /// Reads the files a chunk of rows at a time, in step: the counts, the
+    /// kinematics (empty without) and `valid.npy` as 0 or 1 (`None`
+    /// without), for `visit` to use or compact in place.
+    fn read_chunks(
+        &self,
+        visit: &mut dyn FnMut(&mut Vec<u16>, &mut Vec<f64>, Option<&[u16]>),
+    ) -> Result<(), BlockError> {
         let mut counts = NpyRows::open(&self.dir.join(COUNTS_FILE), "counts.npy")?;
         let mut kin = if self.info.has_kinematics {
             Some(NpyRows::open(
@@ -375,7 +442,6 @@ impl BlockRows for BlockFiles {
             None
         };
         let (mut c, mut x, mut v) = (Vec::new(), Vec::new(), Vec::new());
-        let mut first = 0;
         loop {
             let got = counts.read_counts(self.chunk_rows, &mut c)?;
             if got == 0 {
@@ -384,82 +450,14 @@ impl BlockRows for BlockFiles {
             if let Some(kin) = kin.as_mut() {
                 kin.read_f64(got, &self.info.kinematic_names, &mut x)?;
             }
-            let rows = if let Some(valid) = valid.as_mut() {
-                valid.read_counts(got, &mut v)?;
-                // Keep the valid rows, moved down in place.
-                let mut kept = 0;
-                for (r, &ok) in v.iter().enumerate() {
-                    if ok == 0 {
-                        continue;
-                    }
-                    if kept != r {
-                        c.copy_within(r * n..(r + 1) * n, kept * n);
-                        if !x.is_empty() {
-                            x.copy_within(r * k..(r + 1) * k, kept * k);
-                        }
-                    }
-                    kept += 1;
+            let flags = match valid.as_mut() {
+                Some(valid) => {
+                    valid.read_counts(got, &mut v)?;
+                    Some(&v[..got])
                 }
-                kept
-            } else {
-                got
+                None => None,
             };
-            if rows > 0 {
-                visit(RowChunk {
-                    first,
-                    rows,
-                    counts: &c[..rows * n],
-                    kinematics: if x.is_empty() { &[] } else { &x[..rows * k] },
-                });
-            }
-            first += rows;
-        }
-    }
-}
-
-impl AllRows for BlockFiles {
-    fn all_bins(&self) -> usize {
-        self.file_bins
-    }
-
-    fn pass_all(&self, visit: &mut dyn FnMut(AllRowsChunk<'_>)) -> Result<(), BlockError> {
-        let mut counts = NpyRows::open(&self.dir.join(COUNTS_FILE), "counts.npy")?;
-        let mut kin = if self.info.has_kinematics {
-            Some(NpyRows::open(
-                &self.dir.join(KINEMATICS_FILE),
-                "kinematics.npy",
-            )?)
-        } else {
-            None
-        };
-        let mut valid = if self.has_valid {
-            Some(open_valid(&self.dir.join(VALID_FILE), self.file_bins)?)
-        } else {
-            None
-        };
-        let (mut c, mut x, mut v, mut ok) = (Vec::new(), Vec::new(), Vec::new(), Vec::new());
-        let mut first = 0;
-        loop {
-            let got = counts.read_counts(self.chunk_rows, &mut c)?;
-            if got == 0 {
-                return Ok(());
-            }
-            if let Some(kin) = kin.as_mut() {
-                kin.read_f64(got, &self.info.kinematic_names, &mut x)?;
-            }
-            ok.clear();
-            if let Some(valid) = valid.as_mut() {
-                valid.read_counts(got, &mut v)?;
-                ok.extend(v.iter().map(|&b| b != 0));
-            }
-            visit(AllRowsChunk {
-                first,
-                rows: got,
-                counts: &c,
-                kinematics: &x,
-                valid: &ok,
-            });
-            first += got;
+            visit(&mut c, &mut x, flags);
         }
     }
 }

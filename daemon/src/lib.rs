@@ -1,6 +1,6 @@
 //! `decoderd`: the program between the spike front end and the actuator.
 //!
-//! [`run`] ([`start`] and a wait) loads the model, binds the sockets,
+//! [`run()`] ([`start()`] and a wait) loads the model, binds the sockets,
 //! opens the session log and starts three kinds of work: the real-time loop on its own thread
 //! ([`rt_loop`]), the recorder's writer thread ([`recorder`]), and a
 //! single-threaded tokio runtime for the control socket, the periodic

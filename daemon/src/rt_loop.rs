@@ -1,5 +1,5 @@
 //! The real-time loop: one dedicated thread (never a tokio worker) that
-//! waits for the next of its events ([`LoopEvent`]: a deadline passed,
+//! waits for the next of its events (`LoopEvent`: a deadline passed,
 //! bins or task packets readable, a status or operator request, a model
 //! load, an adaptation result or switch; then shutdown) and handles each
 //! to the end, in its own handler, before waiting again. Bins come first: task packets are read

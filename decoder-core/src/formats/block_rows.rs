@@ -419,14 +419,16 @@ impl AllRows for BlockFiles {
     }
 }
 
+/// What [`BlockFiles::read_chunks`] hands over per chunk: the counts and
+/// kinematics, mutable so a pass can compact them in place, and the valid
+/// flags.
+type ChunkVisit<'v> = dyn FnMut(&mut Vec<u16>, &mut Vec<f64>, Option<&[u16]>) + 'v;
+
 impl BlockFiles {
     /// Reads the files a chunk of rows at a time, in step: the counts, the
     /// kinematics (empty without) and `valid.npy` as 0 or 1 (`None`
     /// without), for `visit` to use or compact in place.
-    fn read_chunks(
-        &self,
-        visit: &mut dyn FnMut(&mut Vec<u16>, &mut Vec<f64>, Option<&[u16]>),
-    ) -> Result<(), BlockError> {
+    fn read_chunks(&self, visit: &mut ChunkVisit<'_>) -> Result<(), BlockError> {
         let mut counts = NpyRows::open(&self.dir.join(COUNTS_FILE), "counts.npy")?;
         let mut kin = if self.info.has_kinematics {
             Some(NpyRows::open(

@@ -1,6 +1,6 @@
 //! A session log replayed through the slot engine: this file reads the
 //! log's records and hands them to the engine's
-//! [`SessionReplay`](crate::engine::session_replay::SessionReplay), building each
+//! [`SessionReplay`], building each
 //! logged model from its model-file bytes, and names the log in every error.
 
 use crate::engine::pipeline::PipelineError;

@@ -212,7 +212,15 @@ pub fn run(args: &Args) -> Result<()> {
             .with_context(|| format!("training on {}", source.display()))?
     };
     let model = trained.model;
-    write_atomic(&args.out, &model.to_bytes())?;
+    // Never write a file its readers would refuse.
+    let bytes = model.to_bytes();
+    ModelFile::from_bytes(&bytes, &args.out.display().to_string()).with_context(|| {
+        format!(
+            "the model trained on {} cannot be written",
+            source.display()
+        )
+    })?;
+    write_atomic(&args.out, &bytes)?;
     println!(
         "wrote {} ({} decoder, {} channels, {} ms bins)",
         args.out.display(),

@@ -129,11 +129,7 @@ impl TrainConfig {
         Self::from_raw(raw).map_err(|KeyProblem { key, problem }| ConfigError::Key {
             origin: source_name.to_string(),
             key,
-            // The key is named once, by the error.
-            problem: problem
-                .strip_prefix(&format!("key {key}"))
-                .map_or(problem.as_str(), |p| p.trim_start_matches([':', ' ']))
-                .to_string(),
+            problem,
         })
     }
 
@@ -168,14 +164,11 @@ impl TrainConfig {
         let k = raw.kalman;
         if let Some(state) = k.state {
             if state.is_empty() {
-                return Err(refuse("kalman.state", "key kalman.state is empty".into()));
+                return Err(refuse("kalman.state", "is empty".into()));
             }
             for (i, s) in state.iter().enumerate() {
                 if state[..i].contains(s) {
-                    return Err(refuse(
-                        "kalman.state",
-                        format!("key kalman.state names {s:?} twice"),
-                    ));
+                    return Err(refuse("kalman.state", format!("names {s:?} twice")));
                 }
             }
             cfg.kalman.outputs.retain(|o| state.contains(o));
@@ -188,7 +181,7 @@ impl TrainConfig {
             return Err(refuse(
                 "kalman.outputs",
                 format!(
-                    "key kalman.outputs has {} entries; a velocity packet carries 1 to 8",
+                    "has {} entries; a velocity packet carries 1 to 8",
                     cfg.kalman.outputs.len()
                 ),
             ));
@@ -198,7 +191,7 @@ impl TrainConfig {
                 return Err(refuse(
                     "kalman.outputs",
                     format!(
-                        "key kalman.outputs: {o:?} is not a kinematic component of kalman.state {:?}",
+                        "{o:?} is not a kinematic component of kalman.state {:?}",
                         cfg.kalman.state
                     ),
                 ));
@@ -213,7 +206,7 @@ impl TrainConfig {
                     return Err(refuse(
                         "kalman.count_normalisation",
                         format!(
-                            "key kalman.count_normalisation is {other:?}; expected \"none\", \"mean-centred\" or \"z-scored\""
+                            "is {other:?}; expected \"none\", \"mean-centred\" or \"z-scored\""
                         ),
                     ));
                 }
@@ -226,9 +219,7 @@ impl TrainConfig {
                 other => {
                     return Err(refuse(
                         "kalman.q_form",
-                        format!(
-                            "key kalman.q_form is {other:?}; expected \"full\" or \"diagonal\""
-                        ),
+                        format!("is {other:?}; expected \"full\" or \"diagonal\""),
                     ));
                 }
             };
@@ -240,9 +231,7 @@ impl TrainConfig {
         if !(tolerance.is_finite() && tolerance > 0.0 && tolerance <= 1.0) {
             return Err(refuse(
                 "kalman.steady_state_tolerance",
-                format!(
-                    "key kalman.steady_state_tolerance is {tolerance}; it must be above 0 and at most 1"
-                ),
+                format!("is {tolerance}; it must be above 0 and at most 1"),
             ));
         }
         let max_iterations = match k.steady_state_max_iterations {
@@ -265,7 +254,11 @@ impl TrainConfig {
         let pp = raw.point_process;
         if let Some(state) = pp.state {
             if state.is_empty() || state.len() > 16 || state.iter().any(|s| s == CONSTANT) {
-                return Err(refuse("point_process.state", "key point_process.state must name 1 to 16 kinematics columns (the intercept b0 is always fitted)".into(),));
+                return Err(refuse(
+                    "point_process.state",
+                    "must name 1 to 16 kinematics columns (the intercept b0 is always fitted)"
+                        .into(),
+                ));
             }
             cfg.point_process.outputs.retain(|o| state.contains(o));
             cfg.point_process.state = state;
@@ -284,7 +277,7 @@ impl TrainConfig {
             return Err(refuse(
                 "point_process.outputs",
                 format!(
-                    "key point_process.outputs {:?}: 1 to 8 components of point_process.state {:?}",
+                    "{:?}: 1 to 8 components of point_process.state {:?}",
                     cfg.point_process.outputs, cfg.point_process.state
                 ),
             ));
@@ -304,7 +297,7 @@ impl TrainConfig {
             return Err(refuse(
                 "point_process.history_basis",
                 format!(
-                    "keys point_process.history_basis = {} and history_span_bins = {}: need at least 2 basis functions and a span of at least as many bins",
+                    "{} with history_span_bins = {}: need at least 2 basis functions and a span of at least as many bins",
                     history.n_basis, history.span_bins
                 ),
             ));
@@ -321,7 +314,7 @@ impl TrainConfig {
             if !(t.is_finite() && t > 0.0 && t <= 1.0) {
                 return Err(refuse(
                     "point_process.tolerance",
-                    format!("key point_process.tolerance is {t}; it must be above 0 and at most 1"),
+                    format!("is {t}; it must be above 0 and at most 1"),
                 ));
             }
             cfg.point_process.tolerance = t;
@@ -334,7 +327,7 @@ impl TrainConfig {
         let lag =
             bounded(lag as i64, "lag_bins", 0, MAX_LAG_BINS).map_err(|p| ConfigError::Flag {
                 flag: "--lag",
-                problem: p.problem.replace("key lag_bins ", ""),
+                problem: p.problem,
             })?;
         self.kalman.lag_bins = lag;
         self.wiener.lag_bins = lag;
@@ -364,7 +357,7 @@ fn bounded(v: i64, key: &'static str, lo: i64, hi: i64) -> Result<usize, KeyProb
     } else {
         Err(refuse(
             key,
-            format!("key {key} is {v}; it must be a whole number from {lo} to {hi}"),
+            format!("is {v}; it must be a whole number from {lo} to {hi}"),
         ))
     }
 }
@@ -374,7 +367,7 @@ fn check_ridge(ridge: f64) -> Result<(), String> {
         Ok(())
     } else {
         Err(format!(
-            "ridge is {ridge}; it must be zero (no penalty) or more, at most 1e12"
+            "is {ridge}; it must be zero (no penalty) or more, at most 1e12"
         ))
     }
 }

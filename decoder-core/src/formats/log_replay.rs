@@ -10,31 +10,12 @@ use crate::engine::session_replay::{
 use crate::formats::model_file::{ModelFile, ModelFileError};
 use crate::formats::session_log::{LogEnd, LogReader, LogRecord};
 
+/// Why a log could not be replayed: the engine's reason, with the log.
 #[derive(Debug, thiserror::Error)]
-pub enum LogReplayError {
-    #[error("{path}: the log holds no model record before its first bin; it cannot be replayed")]
-    NoModel { path: String },
-    #[error("{path}: model record at offset {offset}: {source}")]
-    Model {
-        path: String,
-        offset: u64,
-        source: ModelFileError,
-    },
-    #[error("{path}: model record at offset {offset}: {source}")]
-    Pipeline {
-        path: String,
-        offset: u64,
-        source: PipelineError,
-    },
-    #[error("{path}: the replay model does not fit the logged stream: {source}")]
-    Override {
-        path: String,
-        source: crate::engine::slot_engine::SwapRefused,
-    },
-    #[error(
-        "{path}: a sent packet for seq {seq} is recorded at offset {offset} but the replay has no slot for it"
-    )]
-    UnmatchedSent { path: String, seq: u64, offset: u64 },
+#[error("{path}: {source}")]
+pub struct LogReplayError {
+    pub path: String,
+    pub source: SessionReplayError<LoadError>,
 }
 
 /// What a log's replay went through, and how the log ended.
@@ -50,11 +31,14 @@ pub struct ReplaySummary {
     pub end: Option<LogEnd>,
 }
 
-/// Why a logged model could not be built.
-#[derive(Debug)]
-enum LoadError {
-    File(ModelFileError),
-    Pipeline(PipelineError),
+/// Why a model in the log (or the one given to replace them) could not
+/// be built.
+#[derive(Debug, thiserror::Error)]
+pub enum LoadError {
+    #[error(transparent)]
+    File(#[from] ModelFileError),
+    #[error(transparent)]
+    Pipeline(#[from] PipelineError),
 }
 
 impl LogRecord {
@@ -95,40 +79,17 @@ pub fn replay_log(
         bin_width: h.bin_width,
         n_outputs: h.outputs.len(),
     };
-    let named = |e: SessionReplayError<LoadError>| match e {
-        SessionReplayError::NoModel => LogReplayError::NoModel { path: path.clone() },
-        SessionReplayError::Model {
-            offset,
-            source: LoadError::File(source),
-        } => LogReplayError::Model {
-            path: path.clone(),
-            offset,
-            source,
-        },
-        SessionReplayError::Model {
-            offset,
-            source: LoadError::Pipeline(source),
-        } => LogReplayError::Pipeline {
-            path: path.clone(),
-            offset,
-            source,
-        },
-        SessionReplayError::Override(source) => LogReplayError::Override {
-            path: path.clone(),
-            source,
-        },
-        SessionReplayError::UnmatchedSent { seq, offset } => LogReplayError::UnmatchedSent {
-            path: path.clone(),
-            seq,
-            offset,
-        },
+    let named = |source| LogReplayError {
+        path: path.clone(),
+        source,
     };
     let mut replay = match model {
         Some(m) => {
-            let p = m.pipeline().map_err(|source| LogReplayError::Pipeline {
-                path: path.clone(),
-                offset: 0,
-                source,
+            let p = m.pipeline().map_err(|e| {
+                named(SessionReplayError::Model {
+                    offset: 0,
+                    source: e.into(),
+                })
             })?;
             SessionReplay::with_model(&stream, p).map_err(named)?
         }
@@ -140,9 +101,8 @@ pub fn replay_log(
             break;
         };
         let load = |bytes: &[u8]| {
-            let m = ModelFile::from_bytes(bytes, &format!("{path} (offset {offset})"))
-                .map_err(LoadError::File)?;
-            m.pipeline().map_err(LoadError::Pipeline)
+            let m = ModelFile::from_bytes(bytes, &format!("{path} (offset {offset})"))?;
+            Ok::<_, LoadError>(m.pipeline()?)
         };
         replay
             .feed(offset, record.as_session_record(), load, &mut on_slot)

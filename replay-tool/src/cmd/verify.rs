@@ -16,6 +16,7 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{Result, bail};
 use decoder_core::ModelFile;
+use decoder_core::engine::session_replay::SessionReplayError;
 use decoder_core::formats::log_replay::{LogReplayError, replay_log};
 use decoder_core::formats::session_log::{LogEnd, LogReader};
 use decoder_core::wire::packet::VelocityPacket;
@@ -192,7 +193,10 @@ pub fn verify(log: &Path, tolerance: Option<f64>) -> Result<Verified> {
     });
     let summary = match result {
         Ok(s) => s,
-        Err(LogReplayError::UnmatchedSent { seq, offset, .. }) if first.is_none() => {
+        Err(LogReplayError {
+            source: SessionReplayError::UnmatchedSent { seq, offset },
+            ..
+        }) if first.is_none() => {
             return Err(CheckFailed(format!(
                 "seq {seq}: the log records a sent packet (byte {offset}) for a slot the replay does not produce"
             ))

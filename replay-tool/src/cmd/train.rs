@@ -148,16 +148,26 @@ impl ChannelFits for SideBySide {
     }
 }
 
+/// Runs a training with a progress bar over its cross-validation folds.
+fn with_fold_progress<T>(
+    folds: Option<usize>,
+    run: impl FnOnce(&mut dyn FnMut()) -> Result<T, TrainError>,
+) -> Result<T> {
+    let pb = progress::bar(folds.unwrap_or(0) as u64, "cross-val");
+    let done = run(&mut || pb.inc(1))?;
+    pb.finish_and_clear();
+    Ok(done)
+}
+
 /// Trains `spec` on `rows` with a progress bar over the folds.
 pub fn train_with_progress(
     rows: &(dyn BlockRows + Sync),
     spec: &DecoderSpec,
     folds: Option<usize>,
 ) -> Result<Trained> {
-    let pb = progress::bar(folds.unwrap_or(0) as u64, "cross-val");
-    let trained = train(rows, spec, folds, &stamp(), &SideBySide, &mut || pb.inc(1))?;
-    pb.finish_and_clear();
-    Ok(trained)
+    with_fold_progress(folds, |on_fold| {
+        train(rows, spec, folds, &stamp(), &SideBySide, on_fold)
+    })
 }
 
 pub fn run(args: &Args) -> Result<()> {
@@ -181,18 +191,18 @@ pub fn run(args: &Args) -> Result<()> {
         let logged_radius = opened.from_log.as_ref().and_then(|s| s.target_radius);
         let radius = args.target_radius.or(logged_radius).unwrap_or(2.0);
         super::warn_unused_kinematics(&opened.block.kinematic_names, source, &spec);
-        let pb = progress::bar(folds.unwrap_or(0) as u64, "cross-val");
-        let (trained, n) = train_refit(
-            &opened.block,
-            radius,
-            &spec,
-            folds,
-            &stamp(),
-            &SideBySide,
-            &mut || pb.inc(1),
-        )
+        let (trained, n) = with_fold_progress(folds, |on_fold| {
+            train_refit(
+                &opened.block,
+                radius,
+                &spec,
+                folds,
+                &stamp(),
+                &SideBySide,
+                on_fold,
+            )
+        })
         .with_context(|| format!("training on {}", source.display()))?;
-        pb.finish_and_clear();
         println!(
             "intention re-estimated in {}: {} bins turned toward the target, {} zeroed inside it, {} outside trials left as decoded",
             source.display(),

@@ -8,6 +8,7 @@
 //! means "the run worked but the thing checked did not pass" (exit 1);
 //! anything else is a user error (exit 2).
 
+pub mod bench_meter;
 pub mod cmd;
 pub mod output;
 pub mod plot;

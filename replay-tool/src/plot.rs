@@ -6,7 +6,10 @@ use std::path::Path;
 use std::sync::Once;
 
 use anyhow::{Context, Result, anyhow};
+
+use crate::bench_meter::Envelope;
 use decoder_core::fit::evaluate::HeldOutTrace;
+use hdrhistogram::Histogram;
 use plotters::coord::Shift;
 use plotters::prelude::*;
 
@@ -162,26 +165,26 @@ where
 }
 
 /// Writes `<stem>.svg` and `<stem>.png`: a histogram of latencies in µs
-/// (one series per name), on a log-spaced axis from 1 µs.
-pub fn latency_histogram(series: &[(&str, &[f64])], stem: &Path) -> Result<()> {
+/// (one series per name, each a running histogram in ns), on a
+/// log-spaced axis from 1 µs.
+pub fn latency_histogram(series: &[(&str, &Histogram<u64>)], stem: &Path) -> Result<()> {
     register_font();
     let max = series
         .iter()
-        .flat_map(|(_, v)| v.iter())
-        .copied()
+        .filter(|(_, h)| !h.is_empty())
+        .map(|(_, h)| h.max() as f64 / 1e3)
         .fold(1.0f64, f64::max);
     let edges: Vec<f64> = (0..=((max.log10() * 20.0).ceil() as i32 + 1))
         .map(|i| 10f64.powf(i as f64 / 20.0))
         .collect();
     let counts: Vec<(String, Vec<u64>)> = series
         .iter()
-        .map(|(name, v)| {
+        .map(|(name, h)| {
             let mut c = vec![0u64; edges.len()];
-            for &x in v.iter() {
-                let i = edges
-                    .partition_point(|&e| e <= x.max(1.0))
-                    .saturating_sub(1);
-                c[i.min(edges.len() - 1)] += 1;
+            for v in h.iter_recorded() {
+                let x = (v.value_iterated_to() as f64 / 1e3).max(1.0);
+                let i = edges.partition_point(|&e| e <= x).saturating_sub(1);
+                c[i.min(edges.len() - 1)] += v.count_at_value();
             }
             (name.to_string(), c)
         })
@@ -276,60 +279,98 @@ where
     Ok(())
 }
 
-/// Writes `<stem>.svg` and `<stem>.png`: each named series of (time in the
-/// run, s; latency, µs) points, one colour each.
-pub fn latency_over_time(series: &[(&str, &[(f64, f64)])], stem: &Path) -> Result<()> {
+/// Writes `<stem>.svg` and `<stem>.png`: one panel per latency series,
+/// stacked, each with its own log axis, drawing the run over time as
+/// envelopes (median, p99 and max of each bucket) so no series hides
+/// another and the files stay small whatever the run's length.
+pub fn latency_envelopes(series: &[(&str, &[Envelope])], bucket_s: f64, stem: &Path) -> Result<()> {
     register_font();
-    svg_and_png!(stem, (900, 420), |root| draw_over_time(root, series))
+    let height = 40 + 230 * series.len().max(1) as u32;
+    svg_and_png!(stem, (900, height), |root| draw_envelopes(
+        root, series, bucket_s
+    ))
 }
 
-fn draw_over_time<DB: DrawingBackend>(
+fn draw_envelopes<DB: DrawingBackend>(
     root: &DrawingArea<DB, Shift>,
-    series: &[(&str, &[(f64, f64)])],
+    series: &[(&str, &[Envelope])],
+    bucket_s: f64,
 ) -> Result<()>
 where
     DB::ErrorType: 'static,
 {
-    let all = || series.iter().flat_map(|(_, p)| p.iter());
-    let t_max = all().map(|p| p.0).fold(1e-3, f64::max);
-    let y_max = all().map(|p| p.1).fold(1.0, f64::max);
     root.fill(&WHITE).map_err(|e| anyhow!("{e}"))?;
-    let mut chart = ChartBuilder::on(root)
-        .margin(12)
-        .x_label_area_size(44)
-        .y_label_area_size(64)
-        .caption("latency of each bin over the run", ("sans-serif", 18))
-        .build_cartesian_2d(0.0..t_max, (1.0..y_max * 3.0).log_scale())
+    let bucket = if bucket_s == 1.0 {
+        "second".to_string()
+    } else {
+        format!("{bucket_s} s")
+    };
+    let (title, body) = root.split_vertically(40);
+    title
+        .titled(
+            &format!("latency over the run: median, p99 and max of each {bucket}"),
+            ("sans-serif", 18),
+        )
         .map_err(|e| anyhow!("{e}"))?;
-    chart
-        .configure_mesh()
-        .x_desc("time in the run, s")
-        .y_desc("µs (log scale)")
-        .y_label_formatter(&|v| format!("{v:.0}"))
-        .label_style(("sans-serif", 13))
-        .axis_desc_style(("sans-serif", 14))
-        .draw()
-        .map_err(|e| anyhow!("{e}"))?;
-    for (k, (name, points)) in series.iter().enumerate() {
+    let t_max = series
+        .iter()
+        .flat_map(|(_, e)| e.iter())
+        .map(|e| e.t_s + bucket_s)
+        .fold(1.0, f64::max);
+    let panels = body.split_evenly((series.len().max(1), 1));
+    for (k, ((name, points), area)) in series.iter().zip(&panels).enumerate() {
         let color = PALETTE[k % PALETTE.len()];
+        let y_min = points
+            .iter()
+            .map(|e| e.median_us)
+            .fold(f64::INFINITY, f64::min)
+            .clamp(1.0, 1e9)
+            / 2.0;
+        // Headroom above the largest value for the legend.
+        let y_max = points.iter().map(|e| e.max_us).fold(10.0, f64::max) * 6.0;
+        let mut chart = ChartBuilder::on(area)
+            .margin(8)
+            .x_label_area_size(36)
+            .y_label_area_size(64)
+            .caption(*name, ("sans-serif", 15))
+            .build_cartesian_2d(0.0..t_max, (y_min.max(0.5)..y_max).log_scale())
+            .map_err(|e| anyhow!("{e}"))?;
         chart
-            .draw_series(
-                points
-                    .iter()
-                    .map(|&(t, y)| Circle::new((t, y.max(1.0)), 1, color.filled())),
-            )
-            .map_err(|e| anyhow!("{e}"))?
-            .label(*name)
-            .legend(move |(x, y)| Circle::new((x + 7, y), 4, color.filled()));
+            .configure_mesh()
+            .x_desc("time in the run, s")
+            .y_desc("µs (log scale)")
+            .y_labels(6)
+            .light_line_style(WHITE)
+            .y_label_formatter(&|v| format!("{v:.0}"))
+            .label_style(("sans-serif", 12))
+            .axis_desc_style(("sans-serif", 13))
+            .draw()
+            .map_err(|e| anyhow!("{e}"))?;
+        let mid = |e: &Envelope| e.t_s + bucket_s / 2.0;
+        let lines: [(&str, fn(&Envelope) -> f64, ShapeStyle); 3] = [
+            ("max", |e| e.max_us, color.mix(0.4).stroke_width(1)),
+            ("p99", |e| e.p99_us, color.mix(0.7).stroke_width(1)),
+            ("median", |e| e.median_us, color.stroke_width(2)),
+        ];
+        for (label, value, style) in lines {
+            chart
+                .draw_series(LineSeries::new(
+                    points.iter().map(|e| (mid(e), value(e).max(y_min))),
+                    style,
+                ))
+                .map_err(|e| anyhow!("{e}"))?
+                .label(label)
+                .legend(move |(x, y)| PathElement::new(vec![(x, y), (x + 16, y)], style));
+        }
+        chart
+            .configure_series_labels()
+            .position(SeriesLabelPosition::UpperRight)
+            .label_font(("sans-serif", 12))
+            .background_style(WHITE.mix(0.85))
+            .border_style(BLACK)
+            .draw()
+            .map_err(|e| anyhow!("{e}"))?;
     }
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::UpperRight)
-        .label_font(("sans-serif", 13))
-        .background_style(WHITE.mix(0.85))
-        .border_style(BLACK)
-        .draw()
-        .map_err(|e| anyhow!("{e}"))?;
     root.present().map_err(|e| anyhow!("{e}"))?;
     Ok(())
 }

@@ -1,8 +1,10 @@
 //! The actuator's stand-in: a thread that reads every velocity packet
 //! (PROTOCOL.md §2) the daemon sends, times its arrival and keeps it in
 //! arrival order. Tests wait on it for an event (a packet for a seq, or
-//! any condition on what has come) instead of sleeping; the bench takes
-//! the per-seq view of it at the end.
+//! any condition on what has come) instead of sleeping. A short run takes
+//! the per-seq view of it at the end; an hours-long bench hands each
+//! packet to a meter as it comes ([`ActuatorSink::metered`]) and keeps
+//! none, so its memory does not grow with the run.
 
 use std::net::{SocketAddr, UdpSocket};
 use std::sync::atomic::{AtomicBool, Ordering};
@@ -23,8 +25,16 @@ pub struct Arrival {
 }
 
 #[derive(Default)]
+struct Kept {
+    /// Every packet in arrival order (none for a metered sink).
+    arrivals: Vec<Arrival>,
+    /// The newest seq that has come, in both modes.
+    newest_seq: Option<u64>,
+}
+
+#[derive(Default)]
 struct Shared {
-    arrivals: Mutex<Vec<Arrival>>,
+    kept: Mutex<Kept>,
     /// Datagrams that were not velocity packets.
     malformed: Mutex<u64>,
     arrived: Condvar,
@@ -53,9 +63,26 @@ pub struct ActuatorSink {
     pub addr: SocketAddr,
 }
 
+/// What the sink does with each packet it reads.
+type OnArrival = Box<dyn FnMut(Arrival) + Send>;
+
 impl ActuatorSink {
-    /// Reads packets on `socket` from now on.
+    /// Reads packets on `socket` from now on and keeps them all.
     pub fn start(socket: UdpSocket) -> std::io::Result<ActuatorSink> {
+        Self::spawn(socket, None)
+    }
+
+    /// Reads packets on `socket` from now on and hands each to `meter` on
+    /// the sink's thread as it is read, keeping none: [`ActuatorSink::arrivals`]
+    /// stays empty, [`ActuatorSink::wait_for_seq`] still works.
+    pub fn metered(
+        socket: UdpSocket,
+        meter: impl FnMut(Arrival) + Send + 'static,
+    ) -> std::io::Result<ActuatorSink> {
+        Self::spawn(socket, Some(Box::new(meter)))
+    }
+
+    fn spawn(socket: UdpSocket, mut meter: Option<OnArrival>) -> std::io::Result<ActuatorSink> {
         socket.set_read_timeout(Some(Duration::from_millis(20)))?;
         let addr = socket.local_addr()?;
         let stop = Arc::new(AtomicBool::new(false));
@@ -76,10 +103,18 @@ impl ActuatorSink {
                     let received_ns = monotonic_ns();
                     match VelocityPacket::parse(&buf[..len]) {
                         Ok(packet) => {
-                            into.arrivals.lock().unwrap().push(Arrival {
+                            let seq = packet.seq;
+                            let arrival = Arrival {
                                 received_ns,
                                 packet,
-                            });
+                            };
+                            let mut kept = into.kept.lock().unwrap();
+                            match meter.as_mut() {
+                                Some(meter) => meter(arrival),
+                                None => kept.arrivals.push(arrival),
+                            }
+                            kept.newest_seq = Some(kept.newest_seq.map_or(seq, |n| n.max(seq)));
+                            drop(kept);
                             into.arrived.notify_all();
                         }
                         Err(_) => *into.malformed.lock().unwrap() += 1,
@@ -101,13 +136,13 @@ impl ActuatorSink {
 
     /// Every packet so far, in arrival order.
     pub fn arrivals(&self) -> Vec<Arrival> {
-        self.shared.arrivals.lock().unwrap().clone()
+        self.shared.kept.lock().unwrap().arrivals.clone()
     }
 
     /// Every packet so far, in arrival order.
     pub fn packets(&self) -> Vec<VelocityPacket> {
-        let a = self.shared.arrivals.lock().unwrap();
-        a.iter().map(|a| a.packet.clone()).collect()
+        let kept = self.shared.kept.lock().unwrap();
+        kept.arrivals.iter().map(|a| a.packet.clone()).collect()
     }
 
     /// Datagrams that did not parse as velocity packets.
@@ -123,34 +158,45 @@ impl ActuatorSink {
         timeout: Duration,
         done: impl Fn(&[Arrival]) -> bool,
     ) -> Result<Vec<VelocityPacket>> {
+        self.wait_kept(what, timeout, |k| done(&k.arrivals))
+    }
+
+    /// Blocks until a packet for `seq` or a later one has come; returns the
+    /// packets kept so far (none for a metered sink).
+    pub fn wait_for_seq(&self, seq: u64, timeout: Duration) -> Result<Vec<VelocityPacket>> {
+        self.wait_kept(&format!("packet for seq {seq}"), timeout, |k| {
+            k.newest_seq.is_some_and(|n| n >= seq)
+        })
+    }
+
+    fn wait_kept(
+        &self,
+        what: &str,
+        timeout: Duration,
+        done: impl Fn(&Kept) -> bool,
+    ) -> Result<Vec<VelocityPacket>> {
         let deadline = Instant::now() + timeout;
-        let mut a = self.shared.arrivals.lock().unwrap();
+        let mut kept = self.shared.kept.lock().unwrap();
         loop {
-            if done(&a) {
-                return Ok(a.iter().map(|a| a.packet.clone()).collect());
+            if done(&kept) {
+                return Ok(kept.arrivals.iter().map(|a| a.packet.clone()).collect());
             }
             let now = Instant::now();
             if now >= deadline {
                 bail!(
-                    "no {what} within {:.1} s ({} packets came)",
+                    "no {what} within {:.1} s ({})",
                     timeout.as_secs_f64(),
-                    a.len()
+                    kept.newest_seq
+                        .map_or("no packet came".to_string(), |n| format!("newest seq {n}"))
                 );
             }
-            a = self
+            kept = self
                 .shared
                 .arrived
-                .wait_timeout(a, deadline - now)
+                .wait_timeout(kept, deadline - now)
                 .unwrap()
                 .0;
         }
-    }
-
-    /// Blocks until a packet for `seq` or a later one has come.
-    pub fn wait_for_seq(&self, seq: u64, timeout: Duration) -> Result<Vec<VelocityPacket>> {
-        self.wait_until(&format!("packet for seq {seq}"), timeout, |a| {
-            a.iter().any(|a| a.packet.seq >= seq)
-        })
     }
 
     /// Stops reading once the socket's buffer is empty and returns every
@@ -160,7 +206,7 @@ impl ActuatorSink {
         if let Some(t) = self.thread.take() {
             let _ = t.join();
         }
-        std::mem::take(&mut *self.shared.arrivals.lock().unwrap())
+        std::mem::take(&mut self.shared.kept.lock().unwrap().arrivals)
     }
 
     /// [`ActuatorSink::finish`], seen per seq for `first_seq .. first_seq + n`.

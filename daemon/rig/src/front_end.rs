@@ -23,8 +23,8 @@ pub enum BinFault {
 /// Sends `n` bins at `rate_hz`: bin k is a copy of `bins[k % len]` with seq
 /// k and origin_ns stamped just before sending. Sleeps to 30 µs before each
 /// due time and spins the rest (with a 1 ns timer slack), so bins leave on
-/// the clock without the sender holding a whole core. Returns the send time
-/// of each bin (0 for a dropped one).
+/// the clock without the sender holding a whole core. Keeps nothing per
+/// bin, so an hours-long stream costs no more memory than a short one.
 pub fn paced_send(
     socket: &UdpSocket,
     target: SocketAddr,
@@ -32,7 +32,7 @@ pub fn paced_send(
     n: usize,
     rate_hz: f64,
     fault: impl Fn(usize) -> BinFault,
-) -> Vec<u64> {
+) {
     paced_send_from(socket, target, bins, n, rate_hz, 0, fault)
 }
 
@@ -45,14 +45,13 @@ pub fn paced_send_from(
     rate_hz: f64,
     first_seq: u64,
     fault: impl Fn(usize) -> BinFault,
-) -> Vec<u64> {
+) {
     tighten_timer_slack();
     let period = Duration::from_secs_f64(1.0 / rate_hz);
     let mut buf = bins[0].clone();
     let mut held: Vec<Vec<u8>> = Vec::new();
-    let mut sent_at = vec![0u64; n];
     let t0 = Instant::now() + Duration::from_millis(5);
-    for (k, sent) in sent_at.iter_mut().enumerate() {
+    for k in 0..n {
         let due = t0 + period.mul_f64(k as f64);
         if let Some(w) = due.checked_duration_since(Instant::now()) {
             if w > Duration::from_micros(30) {
@@ -85,10 +84,8 @@ pub fn paced_send_from(
             let _ = socket.send_to(&h, target);
         }
         let _ = socket.send_to(&buf, target);
-        *sent = now;
     }
     for h in held.drain(..) {
         let _ = socket.send_to(&h, target);
     }
-    sent_at
 }

@@ -9,23 +9,28 @@
 //! packet itself (`sent_ns − recv_ns`), the round trip from the front end's
 //! send to the sink, and the send-time jitter against the bin clock; the
 //! loopback floor (the same traffic through a relay that does not decode)
-//! is measured in the same run. It writes JSON, CSV, plots and a one-page
-//! HTML report, and exits 1 when a slot got no packet, a bin that was sent
+//! is measured in the same run. Packets are measured as they come
+//! ([`crate::bench_meter`]), so a bench of hours holds no more memory than
+//! one of a minute. It writes JSON, CSV, plots and a one-page HTML report, and exits 1 when a slot got no packet, a bin that was sent
 //! was not decoded, or recv→send p99 is over `--budget-p99-us`.
 
 use std::fmt::Write as _;
 use std::net::UdpSocket;
 use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
 use anyhow::{Context, Result, bail};
 use daemon::status::Percentiles;
-use daemon_rig::{ActuatorSink, BinFault, Launch, SinkRecord, loopback_floor, paced_send};
+use daemon_rig::actuator::Arrival;
+use daemon_rig::{ActuatorSink, Launch, loopback_floor, paced_send};
+use decoder_core::ModelFile;
 use decoder_core::sim::reaching::{SimOptions, simulate};
-use decoder_core::wire::packet::{self, FLAG_BIN_MISSING};
-use decoder_core::{Block, ModelFile};
+use decoder_core::wire::packet;
+use hdrhistogram::Histogram;
 use serde_json::json;
 
+use crate::bench_meter::{BenchMeter, FaultSchedule, Measured};
 use crate::output::write_atomic;
 use crate::{CheckFailed, plot};
 
@@ -75,21 +80,11 @@ pub struct Args {
     pub burst_every: Option<usize>,
 }
 
-fn fault_schedule(args: &Args) -> impl Fn(usize) -> BinFault + '_ {
-    move |k| {
-        let hit = |every: Option<usize>| every.is_some_and(|e| e > 0 && k % e == e - 1);
-        if hit(args.drop_every) {
-            BinFault::Drop
-        } else if hit(args.malformed_every) {
-            BinFault::Malformed
-        } else if args
-            .burst_every
-            .is_some_and(|e| e > 0 && k % e >= e.saturating_sub(3))
-        {
-            BinFault::Hold
-        } else {
-            BinFault::None
-        }
+fn fault_schedule(args: &Args) -> FaultSchedule {
+    FaultSchedule {
+        drop_every: args.drop_every,
+        malformed_every: args.malformed_every,
+        burst_every: args.burst_every,
     }
 }
 
@@ -109,9 +104,12 @@ fn bench_model(args: &Args, work: &Path) -> Result<(PathBuf, ModelFile)> {
     if args.channels == 0 || args.channels > packet::MAX_CHANNELS {
         bail!("--channels {}: must be 1..=16384", args.channels);
     }
+    // Two minutes of bins, or 20 000 when that is fewer: plenty for a
+    // synthetic model, and a 1 kHz × 1 024-channel block stays at 40 MB.
+    let bins_in_two_minutes = 120_000.0 / args.bin_ms;
     let (model, _) = decoder_core::sim::model::simulated_kalman(
         &SimOptions {
-            minutes: 2.0,
+            minutes: 2.0 * (20_000.0 / bins_in_two_minutes).min(1.0),
             n_channels: args.channels,
             bin_width: super::bin_width_flag(args.bin_ms)?,
             ..SimOptions::default()
@@ -123,9 +121,13 @@ fn bench_model(args: &Args, work: &Path) -> Result<(PathBuf, ModelFile)> {
     Ok((path, model))
 }
 
-fn bins_for(model: &ModelFile) -> Result<(Vec<Vec<u8>>, Block)> {
+/// The distinct bins the front end cycles through: half a minute of a
+/// simulated session, or 4 096 bins when that is fewer, so a 1 kHz ×
+/// 1 024-channel bench holds 8 MB of datagrams rather than 60.
+fn bins_for(model: &ModelFile) -> Result<Vec<Vec<u8>>> {
+    let bins_in_half_a_minute = 30_000.0 / model.bin_width.ms();
     let (session, _) = simulate(&SimOptions {
-        minutes: 0.5,
+        minutes: 0.5 * (4096.0 / bins_in_half_a_minute).min(1.0),
         n_channels: model.decoder.n_channels(),
         bin_width: model.bin_width,
         seed: 77,
@@ -135,20 +137,7 @@ fn bins_for(model: &ModelFile) -> Result<(Vec<Vec<u8>>, Block)> {
     let bins = (0..session.n_bins)
         .map(|t| packet::bin_datagram(session.bin_counts(t), bin_us))
         .collect();
-    Ok((bins, session))
-}
-
-struct Outcome {
-    missed_slots: usize,
-    unexpected_dropouts: usize,
-    faults_flagged: usize,
-    faults: usize,
-    recv_to_send: Percentiles,
-    round_trip: Percentiles,
-    jitter: Percentiles,
-    floor: Percentiles,
-    /// Per seq: |send time − bin clock| in µs (NaN without a packet).
-    jitter_us: Vec<f64>,
+    Ok(bins)
 }
 
 /// What was benched, where and when, for the report's header.
@@ -191,7 +180,7 @@ pub fn run(args: &Args) -> Result<()> {
     let rate_hz = 1000.0 / model.bin_width.ms();
     let n = (args.seconds * rate_hz).round().max(1.0) as usize;
     let dims = model.decoder.outputs().len();
-    let (bins, _) = bins_for(&model)?;
+    let bins = bins_for(&model)?;
     let channels = model.decoder.n_channels();
     println!(
         "bench: {n} bins at {rate_hz:.0} Hz × {channels} channels ({:.0} s), model {}",
@@ -204,31 +193,37 @@ pub fn run(args: &Args) -> Result<()> {
     let floor_ns: Vec<u64> = floor_ns.into_iter().filter(|&v| v > 0).collect();
 
     let faults = fault_schedule(args);
-    let (rec, daemon_note) = match (&args.daemon, &args.actuator) {
+    let table = args.report.join("bins.csv");
+    let meter = Arc::new(Mutex::new(
+        BenchMeter::new(n, rate_hz, faults, Some(&table))
+            .with_context(|| format!("cannot write {}", table.display()))?,
+    ));
+    let into = meter.clone();
+    let on_arrival = move |a: Arrival| into.lock().unwrap().arrive(&a);
+    let send = |sender: &UdpSocket, target| {
+        paced_send(sender, target, &bins, n, rate_hz, |k| faults.at(k))
+    };
+    let daemon_note = match (&args.daemon, &args.actuator) {
         (Some(daemon), Some(actuator)) => {
             let target = super::socket_addr("--daemon", daemon)?;
             let actuator = super::socket_addr("--actuator", actuator)?;
-            let sink = ActuatorSink::start(UdpSocket::bind(actuator).with_context(|| {
+            let sink = ActuatorSink::metered(UdpSocket::bind(actuator).with_context(|| {
                 format!("cannot bind --actuator {actuator}; it must be the daemon's network.actuator, on this machine and not in use")
-            })?)?;
-            let sender = UdpSocket::bind("127.0.0.1:0")?;
-            paced_send(&sender, target, &bins, n, rate_hz, &faults);
+            })?, on_arrival)?;
+            send(&UdpSocket::bind("127.0.0.1:0")?, target);
             wait_for_last(&sink, n, rate_hz);
-            (
-                sink.finish_per_seq(0, n),
-                format!("running daemon at {target}"),
-            )
+            sink.finish();
+            format!("running daemon at {target}")
         }
         _ => {
             let exe = super::find_decoderd(args.decoderd.as_deref())?;
-            let sink = ActuatorSink::on_loopback()?;
+            let sink = ActuatorSink::metered(UdpSocket::bind("127.0.0.1:0")?, on_arrival)?;
             let d = Launch::new(&model_path, &work, sink.addr)
                 .binary(exe.as_deref())
                 .config(args.config.as_deref())
                 .arm(true)
                 .start()?;
-            let sender = UdpSocket::bind("127.0.0.1:0")?;
-            paced_send(&sender, d.listen, &bins, n, rate_hz, &faults);
+            send(&UdpSocket::bind("127.0.0.1:0")?, d.listen);
             wait_for_last(&sink, n, rate_hz);
             let note = if d.is_process() {
                 "spawned decoderd".to_string()
@@ -236,44 +231,47 @@ pub fn run(args: &Args) -> Result<()> {
                 "decoderd in-process".to_string()
             };
             d.stop()?;
-            (sink.finish_per_seq(0, n), note)
+            sink.finish();
+            note
         }
     };
-    let outcome = analyse(&rec, n, rate_hz, &faults, &floor_ns);
+    let meter = Arc::try_unwrap(meter)
+        .map_err(|_| anyhow::anyhow!("the actuator sink still holds the bench's meter"))?
+        .into_inner()
+        .unwrap();
+    let measured = meter.finish().map_err(anyhow::Error::msg)?;
+    let floor = Percentiles::of_samples_ns(&floor_ns);
     let facts = RunFacts::gather(&model_path, args.config.as_deref());
-    write_report(
-        args,
-        &rec,
-        &outcome,
+    let run = Run {
         n,
         rate_hz,
         channels,
-        &daemon_note,
-        &floor_ns,
-        &faults,
-        &facts,
-    )?;
-    print_summary(&outcome, args);
+        daemon_note: &daemon_note,
+        facts: &facts,
+    };
+    write_report(args, &run, &measured, &floor, &floor_ns)?;
+    print_summary(&measured, &floor, args);
     println!("report -> {}", args.report.join("report.html").display());
 
     let mut failures = Vec::new();
-    if outcome.missed_slots > 0 {
+    if measured.missed_slots > 0 {
         failures.push(format!(
             "{} slots got no velocity packet",
-            outcome.missed_slots
+            measured.missed_slots
         ));
     }
-    if outcome.unexpected_dropouts > 0 {
+    if measured.unexpected_dropouts > 0 {
         failures.push(format!(
             "{} bins that were sent on time were not decoded (coasted)",
-            outcome.unexpected_dropouts
+            measured.unexpected_dropouts
         ));
     }
+    let recv_to_send = measured.recv_to_send.percentiles();
     if let Some(b) = args.budget_p99_us {
-        if outcome.recv_to_send.p99 > b {
+        if recv_to_send.p99 > b {
             failures.push(format!(
                 "recv→send p99 {:.1} µs is over the budget of {b} µs",
-                outcome.recv_to_send.p99
+                recv_to_send.p99
             ));
         }
     }
@@ -297,190 +295,135 @@ fn html_escape(s: &str) -> String {
         .replace('>', "&gt;")
 }
 
-fn analyse(
-    rec: &SinkRecord,
+/// What the stream was, for the report.
+struct Run<'a> {
     n: usize,
     rate_hz: f64,
-    faults: &impl Fn(usize) -> BinFault,
-    floor_ns: &[u64],
-) -> Outcome {
-    let period_ns = 1e9 / rate_hz;
-    let mut recv_to_send = Vec::new();
-    let mut round_trip = Vec::new();
-    // Per seq: when its packet left, against the bin clock (NaN: none).
-    let mut offsets = vec![f64::NAN; n];
-    let (mut missed, mut unexpected, mut flagged, mut n_faults) = (0, 0, 0, 0);
-    for (k, offset) in offsets.iter_mut().enumerate() {
-        let f = faults(k);
-        let injected = matches!(f, BinFault::Drop | BinFault::Malformed);
-        n_faults += usize::from(injected);
-        let Some(p) = &rec.packets[k] else {
-            missed += 1;
-            continue;
-        };
-        *offset = p.sent_ns as f64 - k as f64 * period_ns;
-        let coasted = p.flags & FLAG_BIN_MISSING != 0;
-        if injected {
-            flagged += usize::from(coasted);
-        } else if coasted && f == BinFault::None {
-            unexpected += 1;
-        }
-        if !coasted {
-            recv_to_send.push(p.sent_ns.saturating_sub(p.recv_ns));
-            if p.origin_ns != 0 && rec.received_ns[k] >= p.origin_ns {
-                round_trip.push(rec.received_ns[k] - p.origin_ns);
-            }
-        }
-    }
-    let mut sorted: Vec<f64> = offsets.iter().copied().filter(|o| !o.is_nan()).collect();
-    sorted.sort_by(f64::total_cmp);
-    let reference = sorted.get(sorted.len() / 2).copied().unwrap_or(0.0);
-    let jitter_us: Vec<f64> = offsets
-        .iter()
-        .map(|o| (o - reference).abs() / 1e3)
-        .collect();
-    let jitter: Vec<u64> = jitter_us
-        .iter()
-        .filter(|j| !j.is_nan())
-        .map(|j| (j * 1e3).round() as u64)
-        .collect();
-    Outcome {
-        missed_slots: missed,
-        unexpected_dropouts: unexpected,
-        faults_flagged: flagged,
-        faults: n_faults,
-        recv_to_send: Percentiles::of_samples_ns(&recv_to_send),
-        round_trip: Percentiles::of_samples_ns(&round_trip),
-        jitter: Percentiles::of_samples_ns(&jitter),
-        floor: Percentiles::of_samples_ns(floor_ns),
-        jitter_us,
-    }
+    channels: usize,
+    daemon_note: &'a str,
+    facts: &'a RunFacts,
 }
 
-fn print_summary(o: &Outcome, args: &Args) {
+fn print_summary(m: &Measured, floor: &Percentiles, args: &Args) {
     let line = |name: &str, p: &Percentiles| {
         println!(
             "  {name:<24} p50 {:8.1}  p90 {:8.1}  p99 {:8.1}  p99.9 {:8.1}  max {:9.1} µs",
             p.p50, p.p90, p.p99, p.p999, p.max
         )
     };
-    line("decoderd recv→send", &o.recv_to_send);
-    line("front end → actuator", &o.round_trip);
-    line("loopback floor (relay)", &o.floor);
-    line("send jitter vs bin clock", &o.jitter);
+    line("decoderd recv→send", &m.recv_to_send.percentiles());
+    line("front end → actuator", &m.round_trip.percentiles());
+    line("loopback floor (relay)", floor);
+    line("send jitter vs bin clock", &m.jitter.percentiles());
     println!(
         "  missed slots {}   bins sent but not decoded {}   injected faults {} ({} answered as missing)",
-        o.missed_slots, o.unexpected_dropouts, o.faults, o.faults_flagged
+        m.missed_slots, m.unexpected_dropouts, m.faults, m.faults_flagged
     );
     if let Some(b) = args.budget_p99_us {
         println!("  budget: recv→send p99 ≤ {b} µs");
     }
 }
 
-#[allow(clippy::too_many_arguments)]
+/// `seconds.csv`: one row per envelope bucket, three figures per series.
+fn envelope_table(m: &Measured) -> String {
+    let series = [&m.recv_to_send, &m.round_trip, &m.jitter];
+    let mut csv = String::from("t_s");
+    for key in ["recv_to_send", "round_trip", "send_jitter"] {
+        for stat in ["median_us", "p99_us", "max_us", "count"] {
+            let _ = write!(csv, ",{key}_{stat}");
+        }
+    }
+    csv.push('\n');
+    // The buckets any series has, in time order (a bucket in which every
+    // bin was missing has no point in any series).
+    let mut times: Vec<f64> = series
+        .iter()
+        .flat_map(|s| s.envelopes.iter().map(|e| e.t_s))
+        .collect();
+    times.sort_by(f64::total_cmp);
+    times.dedup();
+    let mut at = [0usize; 3];
+    for t in times {
+        let _ = write!(csv, "{t}");
+        for (s, i) in series.iter().zip(at.iter_mut()) {
+            match s.envelopes.get(*i) {
+                Some(e) if e.t_s == t => {
+                    let _ = write!(
+                        csv,
+                        ",{:.1},{:.1},{:.1},{}",
+                        e.median_us, e.p99_us, e.max_us, e.count
+                    );
+                    *i += 1;
+                }
+                _ => csv.push_str(",,,,0"),
+            }
+        }
+        csv.push('\n');
+    }
+    csv
+}
+
 fn write_report(
     args: &Args,
-    rec: &SinkRecord,
-    o: &Outcome,
-    n: usize,
-    rate_hz: f64,
-    channels: usize,
-    daemon_note: &str,
+    run: &Run,
+    m: &Measured,
+    floor: &Percentiles,
     floor_ns: &[u64],
-    faults: &impl Fn(usize) -> BinFault,
-    facts: &RunFacts,
 ) -> Result<()> {
     let dir = &args.report;
+    let facts = run.facts;
+    let (r2s, rt, jit) = (
+        m.recv_to_send.percentiles(),
+        m.round_trip.percentiles(),
+        m.jitter.percentiles(),
+    );
     let summary = json!({
-        "bins": n, "rate_hz": rate_hz, "channels": channels, "daemon": daemon_note,
+        "bins": run.n, "rate_hz": run.rate_hz, "channels": run.channels, "daemon": run.daemon_note,
         "model": facts.model, "model_sha256": facts.model_sha256, "config": facts.config,
         "date": facts.date, "host": facts.host, "tool_version": facts.version,
-        "recv_to_send_us": serde_json::to_value(&o.recv_to_send)?,
-        "round_trip_us": serde_json::to_value(&o.round_trip)?,
-        "loopback_floor_round_trip_us": serde_json::to_value(&o.floor)?,
-        "send_jitter_us": serde_json::to_value(&o.jitter)?,
-        "missed_slots": o.missed_slots,
-        "bins_sent_not_decoded": o.unexpected_dropouts,
-        "injected_faults": o.faults,
-        "injected_faults_answered_missing": o.faults_flagged,
-        "heartbeats_after_stream": rec.extra,
-        "repeated_packets": rec.repeated,
+        "recv_to_send_us": serde_json::to_value(&r2s)?,
+        "round_trip_us": serde_json::to_value(&rt)?,
+        "loopback_floor_round_trip_us": serde_json::to_value(floor)?,
+        "send_jitter_us": serde_json::to_value(&jit)?,
+        "missed_slots": m.missed_slots,
+        "bins_sent_not_decoded": m.unexpected_dropouts,
+        "injected_faults": m.faults,
+        "injected_faults_answered_missing": m.faults_flagged,
+        "heartbeats_after_stream": m.extra,
+        "repeated_packets": m.repeated,
+        "packets_after_window": m.after_window,
+        "envelope_bucket_s": m.bucket_s,
         "budget_p99_us": args.budget_p99_us,
     });
     write_atomic(
         &dir.join("summary.json"),
         serde_json::to_string_pretty(&summary)?.as_bytes(),
     )?;
-    let mut csv =
-        String::from("seq,fault,state,flags,recv_to_send_us,round_trip_us,send_jitter_us\n");
-    let mut over_time = Vec::new();
-    let mut rt_over_time = Vec::new();
-    let mut jitter_over_time = Vec::new();
-    let mut r2s = Vec::new();
-    let mut rts = Vec::new();
-    for k in 0..n {
-        let fault = match faults(k) {
-            BinFault::None => "",
-            BinFault::Drop => "drop",
-            BinFault::Malformed => "malformed",
-            BinFault::Hold => "burst",
-        };
-        match &rec.packets[k] {
-            None => {
-                let _ = writeln!(csv, "{k},{fault},,,,");
-            }
-            Some(p) => {
-                let decoded = p.flags & FLAG_BIN_MISSING == 0;
-                let r = if decoded {
-                    (p.sent_ns.saturating_sub(p.recv_ns)) as f64 / 1e3
-                } else {
-                    f64::NAN
-                };
-                let t = if decoded && p.origin_ns != 0 && rec.received_ns[k] >= p.origin_ns {
-                    (rec.received_ns[k] - p.origin_ns) as f64 / 1e3
-                } else {
-                    f64::NAN
-                };
-                let jit = o.jitter_us[k];
-                let _ = writeln!(csv, "{k},{fault},{},{},{r},{t},{jit}", p.state, p.flags);
-                let at = k as f64 / rate_hz;
-                if jit.is_finite() {
-                    jitter_over_time.push((at, jit));
-                }
-                if decoded {
-                    over_time.push((at, r));
-                    if t.is_finite() {
-                        rt_over_time.push((at, t));
-                    }
-                    r2s.push(r);
-                    if t.is_finite() {
-                        rts.push(t);
-                    }
-                }
-            }
-        }
+    write_atomic(&dir.join("seconds.csv"), envelope_table(m).as_bytes())?;
+    let mut floor_hist = Histogram::<u64>::new_with_bounds(1, 3_600_000_000_000, 3)?;
+    for &v in floor_ns {
+        floor_hist.saturating_record(v.max(1));
     }
-    write_atomic(&dir.join("bins.csv"), csv.as_bytes())?;
-    let floor_us: Vec<f64> = floor_ns.iter().map(|&v| v as f64 / 1e3).collect();
     plot::latency_histogram(
         &[
-            ("decoderd recv→send", &r2s),
-            ("front end → actuator", &rts),
-            ("loopback floor", &floor_us),
+            ("decoderd recv→send", &m.recv_to_send.histogram),
+            ("front end → actuator", &m.round_trip.histogram),
+            ("loopback floor", &floor_hist),
         ],
         &dir.join("latency-histogram"),
     )?;
-    plot::latency_over_time(
+    plot::latency_envelopes(
         &[
-            ("decoderd recv→send", &over_time),
-            ("front end → actuator", &rt_over_time),
-            ("send jitter vs bin clock", &jitter_over_time),
+            (m.recv_to_send.name, &m.recv_to_send.envelopes),
+            (m.round_trip.name, &m.round_trip.envelopes),
+            (m.jitter.name, &m.jitter.envelopes),
         ],
+        m.bucket_s,
         &dir.join("latency-over-time"),
     )?;
-    let verdict = if o.missed_slots == 0
-        && o.unexpected_dropouts == 0
-        && args.budget_p99_us.is_none_or(|b| o.recv_to_send.p99 <= b)
+    let verdict = if m.missed_slots == 0
+        && m.unexpected_dropouts == 0
+        && args.budget_p99_us.is_none_or(|b| r2s.p99 <= b)
     {
         "<p class=pass>PASS</p>"
     } else {
@@ -492,7 +435,7 @@ fn write_report(
             p.p50, p.p90, p.p99, p.p999, p.max, p.count
         )
     };
-    let few = [&o.recv_to_send, &o.round_trip, &o.floor, &o.jitter]
+    let few = [&r2s, &rt, floor, &jit]
         .iter()
         .map(|p| p.count)
         .min()
@@ -503,6 +446,11 @@ fn write_report(
         )
     } else {
         String::new()
+    };
+    let bucket = if m.bucket_s == 1.0 {
+        "second".to_string()
+    } else {
+        format!("{} s", m.bucket_s)
     };
     let html = format!(
         r#"<!doctype html><meta charset=utf-8><title>decoderd bench</title>
@@ -515,7 +463,7 @@ fn write_report(
 <tr><td>daemon configuration</td><td>{config}</td></tr>
 <tr><td>daemon</td><td>{daemon_note}</td></tr>
 <tr><td>run</td><td>{date} on {host}, replay-tool {version}</td></tr>
-<tr><td>stream</td><td>{n} bins at {rate_hz:.0} Hz × {channels} channels</td></tr>
+<tr><td>stream</td><td>{n} bins at {rate_hz:.0} Hz × {channels} channels ({minutes:.1} min)</td></tr>
 <tr><td>budget</td><td>{budget}</td></tr>
 </table>
 <h2>Latency</h2>
@@ -523,34 +471,43 @@ fn write_report(
 {r1}{r2}{r3}{r4}</table>
 <p class=note><b>decoderd recv→send</b>: from the daemon reading a bin to it sending the velocity packet, stamped by the daemon itself.
 <b>front end → actuator</b>: from the front end's send to the actuator sink's read, the whole loop as a rig sees it.
-<b>loopback floor</b>: the same bins through a relay thread on this machine that receives and sends without decoding — the part of the round trip no decoder can remove.
-<b>send jitter</b>: how far each packet left from the bin clock (the median offset taken as zero); a slot whose bin was missing is answered at its deadline, so it leaves late by the deadline slack on purpose.</p>
+<b>loopback floor</b>: the same bins through a relay thread on this machine that receives and sends without decoding — the part of the round trip no decoder can remove (the first {floor_s:.0} s of the stream).
+<b>send jitter</b>: how far each packet left from the bin clock (the median offset of the first second taken as zero); a slot whose bin was missing is answered at its deadline, so it leaves late by the deadline slack on purpose.
+Percentiles come from running histograms with three significant digits (within 0.1 % of the exact order statistic).</p>
 {few_note}
 <h2>Dropouts</h2>
 <p>Missed slots (no packet): <b>{missed}</b>. Bins sent on time but not decoded: <b>{dropouts}</b>. Injected faults: {faults} ({flagged} answered as missing).
 Heartbeat packets after the stream: {extra} — after the last bin the daemon keeps answering every slot (halted packets), so an actuator can tell a stopped stream from a dead daemon; they are not misses.</p>
 <h2>Latency histogram</h2><img src="latency-histogram.svg" alt="latency histogram">
-<h2>Latency over the run</h2><img src="latency-over-time.svg" alt="latency of each bin over the run">
-<p>Per-bin figures: <a href="bins.csv">bins.csv</a>; summary: <a href="summary.json">summary.json</a>.</p>
+<h2>Latency over the run</h2>
+<p class=note>One panel per series. For each {bucket} of the run: the median (dark line), the p99 (middle line) and the largest value (light line) of the bins in it.</p>
+<img src="latency-over-time.svg" alt="per-{bucket} median, p99 and max of each latency series over the run">
+<p>Per-{bucket} figures: <a href="seconds.csv">seconds.csv</a>; per-bin figures: <a href="bins.csv">bins.csv</a> (written as the bins were measured; about 60 bytes a bin); summary: <a href="summary.json">summary.json</a>.</p>
 "#,
         model = html_escape(&facts.model),
         sha = facts.model_sha256,
         config = html_escape(&facts.config),
+        daemon_note = run.daemon_note,
         date = facts.date,
         host = html_escape(&facts.host),
         version = facts.version,
+        n = run.n,
+        rate_hz = run.rate_hz,
+        channels = run.channels,
+        minutes = run.n as f64 / run.rate_hz / 60.0,
         budget = args
             .budget_p99_us
             .map_or("none".to_string(), |b| format!("recv→send p99 ≤ {b} µs")),
-        r1 = row("decoderd recv→send", &o.recv_to_send),
-        r2 = row("front end → actuator", &o.round_trip),
-        r3 = row("loopback floor (relay)", &o.floor),
-        r4 = row("send jitter vs bin clock", &o.jitter),
-        missed = o.missed_slots,
-        dropouts = o.unexpected_dropouts,
-        faults = o.faults,
-        flagged = o.faults_flagged,
-        extra = rec.extra,
+        r1 = row("decoderd recv→send", &r2s),
+        r2 = row("front end → actuator", &rt),
+        r3 = row("loopback floor (relay)", floor),
+        r4 = row("send jitter vs bin clock", &jit),
+        floor_s = (run.n.min((10.0 * run.rate_hz) as usize)) as f64 / run.rate_hz,
+        missed = m.missed_slots,
+        dropouts = m.unexpected_dropouts,
+        faults = m.faults,
+        flagged = m.faults_flagged,
+        extra = m.extra,
     );
     write_atomic(&dir.join("report.html"), html.as_bytes())?;
     Ok(())

@@ -30,9 +30,21 @@ fn bench_passes_a_budget_it_meets_and_fails_one_it_cannot() {
         "report.html",
         "latency-histogram.svg",
         "latency-over-time.png",
+        "seconds.csv",
     ] {
         assert!(first.join(f).is_file(), "{f}");
     }
+    // One row per slot (1.5 s at 50 Hz) in seq order, streamed as measured;
+    // one envelope row per second that had a packet.
+    let table = std::fs::read_to_string(first.join("bins.csv")).unwrap();
+    let seqs: Vec<usize> = table
+        .lines()
+        .skip(1)
+        .map(|l| l.split(',').next().unwrap().parse().unwrap())
+        .collect();
+    assert_eq!(seqs, (0..75).collect::<Vec<_>>());
+    let seconds = std::fs::read_to_string(first.join("seconds.csv")).unwrap();
+    assert_eq!(seconds.lines().count(), 1 + 2, "{seconds}");
     let measured = bench_p99(&first);
     assert!(measured > 0.0);
     let model = first.join("bench.model");

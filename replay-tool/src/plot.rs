@@ -291,6 +291,9 @@ pub fn latency_envelopes(series: &[(&str, &[Envelope])], bucket_s: f64, stem: &P
     ))
 }
 
+/// One line of an envelope panel: its legend, the figure it draws, its style.
+type EnvelopeLine = (&'static str, fn(&Envelope) -> f64, ShapeStyle);
+
 fn draw_envelopes<DB: DrawingBackend>(
     root: &DrawingArea<DB, Shift>,
     series: &[(&str, &[Envelope])],
@@ -347,7 +350,7 @@ where
             .draw()
             .map_err(|e| anyhow!("{e}"))?;
         let mid = |e: &Envelope| e.t_s + bucket_s / 2.0;
-        let lines: [(&str, fn(&Envelope) -> f64, ShapeStyle); 3] = [
+        let lines: [EnvelopeLine; 3] = [
             ("max", |e| e.max_us, color.mix(0.4).stroke_width(1)),
             ("p99", |e| e.p99_us, color.mix(0.7).stroke_width(1)),
             ("median", |e| e.median_us, color.stroke_width(2)),

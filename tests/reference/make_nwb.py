@@ -20,6 +20,13 @@ Writes into OUT_DIR:
   no_units.nwb           the same session without a units table
   index_past.nwb         spike_times_index runs past spike_times
   backwards.nwb          "hand" timestamps that go backwards
+  unsorted.nwb           a unit whose spike times go backwards
+  long.nwb               3 units of about 12 000 spikes each and 24 000
+                         position samples (gzip-chunked position), so
+                         an import reads every dataset in several windows
+                         and writes its bins in several chunks
+  long_counts.npy        its (T, 3) counts of 20 ms bins
+  long_kinematics.npy    and (T, 4) kinematics
 The data are synthetic and seeded.
 """
 
@@ -142,6 +149,58 @@ def main(out):
     with h5py.File(os.path.join(out, "backwards.nwb"), "r+") as f:
         ts = f["processing/behavior/Position/hand/timestamps"]
         ts[100] = ts[99] - 0.5
+    shutil.copy(path, os.path.join(out, "unsorted.nwb"))
+    # The third unit (row 2) has two spike times swapped.
+    with h5py.File(os.path.join(out, "unsorted.nwb"), "r+") as f:
+        st = f["units/spike_times"]
+        a = int(f["units/spike_times_index"][1])
+        st[a + 5], st[a + 6] = st[a + 6], st[a + 5]
+
+    long_session(out)
+
+
+def long_session(out):
+    """Several windows of every dataset an import reads a window at a
+    time: spike times beyond 4 096 per unit, position samples beyond
+    4 096, bins beyond 4 096."""
+    rng = np.random.default_rng(2027)
+    nwb = NWBFile(
+        session_description="synthetic long reaching session, seeded",
+        identifier="synthetic-reach-long",
+        session_start_time=datetime(2026, 1, 6, 9, 0, tzinfo=timezone.utc),
+    )
+    spikes = []
+    for u in range(3):
+        st = np.sort(rng.uniform(-1.0, 242.0, size=int(rng.integers(11000, 13000))))
+        spikes.append(st)
+    nwb.add_unit_column("quality", "a per-unit number, unused by import")
+    for st in spikes:
+        nwb.add_unit(spike_times=st, quality=1.0)
+    t = 0.1 + np.cumsum(rng.uniform(0.006, 0.014, size=24000))
+    hand = np.column_stack([np.sin(0.3 * t), np.cos(0.2 * t)]) * 50.0
+    beh = nwb.create_processing_module("behavior", "behaviour")
+    pos = Position(name="Position")
+    pos.add_spatial_series(
+        SpatialSeries(
+            name="hand",
+            data=H5DataIO(hand, compression="gzip", chunks=(1000, 2)),
+            timestamps=H5DataIO(t, compression="gzip", chunks=(1000,)),
+            reference_frame="screen centre",
+            unit="cm",
+        )
+    )
+    beh.add(pos)
+    path = os.path.join(out, "long.nwb")
+    with NWBHDF5IO(path, "w") as io:
+        io.write(nwb)
+    with h5py.File(path) as f:
+        flat = f["units/spike_times"][:]
+        ends = f["units/spike_times_index"][:]
+    starts = np.concatenate([[0], ends[:-1]])
+    spikes = [flat[a:b] for a, b in zip(starts, ends)]
+    counts, kin, _ = expected(spikes, t, hand, t[0], t[-1])
+    np.save(os.path.join(out, "long_counts.npy"), counts)
+    np.save(os.path.join(out, "long_kinematics.npy"), kin)
 
 
 if __name__ == "__main__":

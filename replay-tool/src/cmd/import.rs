@@ -10,16 +10,20 @@
 //! timestamps regular or not) interpolated linearly at bin centres, with
 //! velocity the displacement over the bin; trials from `intervals/trials`.
 //! The HDF5 file is read by `hdf5-pure`, a pure-Rust reader, so the build
-//! needs no C library.
+//! needs no C library, and read as a stream: the position and each unit's
+//! spike times a window of rows at a time, the bins written a chunk at a
+//! time, so a multi-gigabyte recording imports in the memory of a short
+//! one.
 
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
-use decoder_core::Block;
-use decoder_core::formats::block::Trial;
+use decoder_core::formats::block::{
+    COUNTS_FILE, KINEMATICS_FILE, Trial, write_manifest, write_trials,
+};
 use decoder_core::formats::log_block::kinematic_names;
-use decoder_core::linalg::Mat;
-use hdf5_pure::{AttrValue, File};
+use decoder_core::formats::npy_stream::NpyWriter;
+use hdf5_pure::{AttrValue, Dataset, File};
 
 #[derive(Debug, clap::Args)]
 pub struct Args {
@@ -44,9 +48,12 @@ pub struct Args {
     pub stop: Option<f64>,
 }
 
-/// What an import read, before it is a block.
+/// What an import wrote.
 pub struct Imported {
-    pub block: Block,
+    pub n_bins: usize,
+    pub n_channels: usize,
+    pub dims: usize,
+    pub trials: usize,
     pub position_path: String,
     pub spikes: usize,
 }
@@ -67,155 +74,411 @@ fn f64_attr(attrs: &std::collections::HashMap<String, AttrValue>, key: &str) -> 
     }
 }
 
-/// The position series' timestamps and (T, D) values with `conversion`
-/// applied.
-fn read_position(f: &File, file: &Path, series: &str) -> Result<(Vec<f64>, Vec<f64>, usize)> {
-    let data_path = format!("{series}/data");
-    let ds = f.dataset(&data_path).map_err(|e| {
-        anyhow::anyhow!(
-            "{}: --position {series}: no such SpatialSeries ({e}); list the series under processing/behavior/Position",
-            file.display()
-        )
-    })?;
-    let shape = ds
-        .shape()
-        .map_err(|e| anyhow::anyhow!("{}: {data_path}: {e}", file.display()))?;
-    let (rows, dims) = match shape.as_slice() {
-        [r] => (*r as usize, 1),
-        [r, d] => (*r as usize, *d as usize),
-        other => bail!(
-            "{}: {data_path}: shape {other:?}; expected (time, dimensions)",
-            file.display()
-        ),
-    };
-    if !(1..=8).contains(&dims) {
-        bail!(
-            "{}: {data_path}: {dims} position dimensions; 1 to 8 are supported",
-            file.display()
-        );
-    }
-    let attrs = ds
-        .attrs()
-        .map_err(|e| anyhow::anyhow!("{}: {data_path}: {e}", file.display()))?;
-    let conversion = f64_attr(&attrs, "conversion").unwrap_or(1.0);
-    let offset = f64_attr(&attrs, "offset").unwrap_or(0.0);
-    let mut values = ds
-        .read_f64()
-        .map_err(|e| anyhow::anyhow!("{}: {data_path}: cannot read: {e}", file.display()))?;
-    for v in &mut values {
-        *v = *v * conversion + offset;
-    }
-    let ts_path = format!("{series}/timestamps");
-    let timestamps = if f.dataset(&ts_path).is_ok() {
-        dataset_f64(f, file, &ts_path)?
-    } else {
-        let st_path = format!("{series}/starting_time");
-        let st = f.dataset(&st_path).map_err(|_| {
+/// Rows read from a dataset at a time: position samples, and each
+/// unit's spike times (fewer when there are many units, so the buffers of
+/// all units together stay near 8 MB).
+const WINDOW_ROWS: usize = 4096;
+
+/// Where the position series' times come from.
+enum Clock {
+    /// A `timestamps` dataset, read a window at a time.
+    Stamps(String),
+    /// `starting_time` and `rate`: sample i at t0 + i / rate.
+    Regular { t0: f64, rate: f64 },
+}
+
+/// The position SpatialSeries, read a window of samples at a time: its
+/// data (× `conversion` + `offset`) and times.
+struct Position<'f> {
+    file: &'f Path,
+    series: String,
+    data: Dataset,
+    stamps: Option<Dataset>,
+    clock: Clock,
+    rows: usize,
+    dims: usize,
+    conversion: f64,
+    offset: f64,
+}
+
+/// One window of position samples, rows `base .. base + t.len()`.
+#[derive(Default)]
+struct PositionWindow {
+    base: usize,
+    t: Vec<f64>,
+    y: Vec<f64>,
+}
+
+impl<'f> Position<'f> {
+    fn open(f: &'f File, file: &'f Path, series: &str) -> Result<Position<'f>> {
+        let data_path = format!("{series}/data");
+        let data = f.dataset(&data_path).map_err(|e| {
             anyhow::anyhow!(
-                "{}: {series} has neither timestamps nor starting_time",
+                "{}: --position {series}: no such SpatialSeries ({e}); list the series under processing/behavior/Position",
                 file.display()
             )
         })?;
-        let rate = f64_attr(&st.attrs().unwrap_or_default(), "rate")
-            .with_context(|| format!("{}: {st_path} has no rate", file.display()))?;
-        let t0 = dataset_f64(f, file, &st_path)?
+        let shape = data
+            .shape()
+            .map_err(|e| anyhow::anyhow!("{}: {data_path}: {e}", file.display()))?;
+        let (rows, dims) = match shape.as_slice() {
+            [r] => (*r as usize, 1),
+            [r, d] => (*r as usize, *d as usize),
+            other => bail!(
+                "{}: {data_path}: shape {other:?}; expected (time, dimensions)",
+                file.display()
+            ),
+        };
+        if !(1..=8).contains(&dims) {
+            bail!(
+                "{}: {data_path}: {dims} position dimensions; 1 to 8 are supported",
+                file.display()
+            );
+        }
+        if rows == 0 {
+            bail!("{}: {data_path} holds no samples", file.display());
+        }
+        let attrs = data
+            .attrs()
+            .map_err(|e| anyhow::anyhow!("{}: {data_path}: {e}", file.display()))?;
+        let conversion = f64_attr(&attrs, "conversion").unwrap_or(1.0);
+        let offset = f64_attr(&attrs, "offset").unwrap_or(0.0);
+        let ts_path = format!("{series}/timestamps");
+        let (stamps, clock) = match f.dataset(&ts_path) {
+            Ok(ts) => {
+                let n = ts
+                    .shape()
+                    .map_err(|e| anyhow::anyhow!("{}: {ts_path}: {e}", file.display()))?
+                    .first()
+                    .copied()
+                    .unwrap_or(0) as usize;
+                if n != rows {
+                    bail!(
+                        "{}: {ts_path} has {n} timestamps for {rows} samples",
+                        file.display()
+                    );
+                }
+                (Some(ts), Clock::Stamps(ts_path))
+            }
+            Err(_) => {
+                let st_path = format!("{series}/starting_time");
+                let st = f.dataset(&st_path).map_err(|_| {
+                    anyhow::anyhow!(
+                        "{}: {series} has neither timestamps nor starting_time",
+                        file.display()
+                    )
+                })?;
+                let rate = f64_attr(&st.attrs().unwrap_or_default(), "rate")
+                    .with_context(|| format!("{}: {st_path} has no rate", file.display()))?;
+                let t0 = dataset_f64(f, file, &st_path)?
+                    .first()
+                    .copied()
+                    .unwrap_or(0.0);
+                (None, Clock::Regular { t0, rate })
+            }
+        };
+        Ok(Position {
+            file,
+            series: series.to_string(),
+            data,
+            stamps,
+            clock,
+            rows,
+            dims,
+            conversion,
+            offset,
+        })
+    }
+
+    /// Rows `base .. base + len` (clipped to the series).
+    fn window(&self, base: usize, len: usize) -> Result<PositionWindow> {
+        let len = len.min(self.rows - base);
+        let data_path = format!("{}/data", self.series);
+        let mut y = self
+            .data
+            .read_f64_rows(base as u64, len as u64)
+            .map_err(|e| {
+                anyhow::anyhow!("{}: {data_path}: cannot read: {e}", self.file.display())
+            })?;
+        for v in &mut y {
+            *v = *v * self.conversion + self.offset;
+        }
+        let t = match (&self.clock, &self.stamps) {
+            (Clock::Stamps(path), Some(ts)) => {
+                ts.read_f64_rows(base as u64, len as u64).map_err(|e| {
+                    anyhow::anyhow!("{}: {path}: cannot read: {e}", self.file.display())
+                })?
+            }
+            (Clock::Regular { t0, rate }, _) => {
+                (base..base + len).map(|i| t0 + i as f64 / rate).collect()
+            }
+            (Clock::Stamps(_), None) => unreachable!("a timestamps clock has its dataset"),
+        };
+        Ok(PositionWindow { base, t, y })
+    }
+
+    /// Checks the whole series a window at a time (times never go back,
+    /// every value finite) and returns its first and last timestamps.
+    fn check(&self) -> Result<(f64, f64)> {
+        let ts_path = format!("{}/timestamps", self.series);
+        let data_path = format!("{}/data", self.series);
+        let (mut first, mut last) = (f64::NAN, f64::NAN);
+        let mut base = 0;
+        while base < self.rows {
+            let w = self.window(base, WINDOW_ROWS)?;
+            for (i, &t) in w.t.iter().enumerate() {
+                if base + i == 0 {
+                    first = t;
+                } else if t < last {
+                    bail!(
+                        "{}: {ts_path}: timestamps go backwards at sample {} ({t} after {last}); the position cannot be interpolated",
+                        self.file.display(),
+                        base + i
+                    );
+                }
+                last = t;
+            }
+            if let Some(i) = w.y.iter().position(|v| !v.is_finite()) {
+                bail!(
+                    "{}: {data_path}: sample {} is not finite",
+                    self.file.display(),
+                    base + i / self.dims
+                );
+            }
+            base += w.t.len();
+        }
+        Ok((first, last))
+    }
+}
+
+/// `numpy.interp` of the position at times that never decrease, reading
+/// the series a window at a time: linear between the samples, the end
+/// values outside.
+struct Interp<'p, 'f> {
+    position: &'p Position<'f>,
+    first: PositionWindow,
+    last: PositionWindow,
+    window: PositionWindow,
+    /// The last sample at or before the previous x.
+    j: usize,
+}
+
+impl<'p, 'f> Interp<'p, 'f> {
+    fn new(position: &'p Position<'f>) -> Result<Interp<'p, 'f>> {
+        let n = position.rows;
+        Ok(Interp {
+            position,
+            first: position.window(0, 1)?,
+            last: position.window(n - 1, 1)?,
+            window: position.window(0, WINDOW_ROWS)?,
+            j: 0,
+        })
+    }
+
+    /// Sample `i`'s time, reading the window that holds it (and the rows
+    /// after it) when it is not in the current one.
+    fn t(&mut self, i: usize) -> Result<f64> {
+        let w = &self.window;
+        if i < w.base || i >= w.base + w.t.len() {
+            self.window = self.position.window(i, WINDOW_ROWS)?;
+        }
+        Ok(self.window.t[i - self.window.base])
+    }
+
+    fn y(&mut self, i: usize, d: usize) -> Result<f64> {
+        self.t(i)?;
+        Ok(self.window.y[(i - self.window.base) * self.position.dims + d])
+    }
+
+    /// p(x) for every dimension into `out`.
+    fn at(&mut self, x: f64, out: &mut [f64]) -> Result<()> {
+        let n = self.position.rows;
+        let dims = self.position.dims;
+        if x <= self.first.t[0] {
+            out.copy_from_slice(&self.first.y[..dims]);
+            return Ok(());
+        }
+        if x >= self.last.t[0] {
+            out.copy_from_slice(&self.last.y[..dims]);
+            return Ok(());
+        }
+        while self.j + 1 < n && self.t(self.j + 1)? <= x {
+            self.j += 1;
+        }
+        let j = self.j;
+        let (x0, x1) = (self.t(j)?, self.t(j + 1)?);
+        for (d, o) in out.iter_mut().enumerate() {
+            let (y0, y1) = (self.y(j, d)?, self.y(j + 1, d)?);
+            *o = if x1 == x0 {
+                y0
+            } else {
+                let slope = (y1 - y0) / (x1 - x0);
+                slope * (x - x0) + y0
+            };
+        }
+        Ok(())
+    }
+}
+
+/// One unit's spike times, read a window at a time from its range of
+/// the ragged `spike_times` column.
+struct UnitSpikes {
+    row: usize,
+    next: usize,
+    end: usize,
+    buf: Vec<f64>,
+    at: usize,
+    previous: f64,
+}
+
+/// Every unit's spike times, binned a chunk of bins at a time.
+struct Units<'f> {
+    file: &'f Path,
+    spike_times: Dataset,
+    units: Vec<UnitSpikes>,
+    window: usize,
+}
+
+impl<'f> Units<'f> {
+    fn open(f: &'f File, file: &'f Path) -> Result<(Units<'f>, Vec<i64>)> {
+        let units = f.group("units").map_err(|_| {
+            anyhow::anyhow!(
+                "{}: no units table (/units); an import needs the sorted or thresholded spike times of each channel there",
+                file.display()
+            )
+        })?;
+        let members = units.datasets().unwrap_or_default();
+        if !members.iter().any(|m| m == "spike_times") {
+            bail!(
+                "{}: the units table has no spike_times column",
+                file.display()
+            );
+        }
+        let spike_times = f
+            .dataset("units/spike_times")
+            .map_err(|e| anyhow::anyhow!("{}: units/spike_times: {e}", file.display()))?;
+        let total = spike_times
+            .shape()
+            .map_err(|e| anyhow::anyhow!("{}: units/spike_times: {e}", file.display()))?
             .first()
             .copied()
-            .unwrap_or(0.0);
-        (0..rows).map(|i| t0 + i as f64 / rate).collect()
-    };
-    if timestamps.len() != rows {
-        bail!(
-            "{}: {ts_path} has {} timestamps for {rows} samples",
-            file.display(),
-            timestamps.len()
-        );
+            .unwrap_or(0) as usize;
+        let index: Vec<i64> = f
+            .dataset("units/spike_times_index")
+            .and_then(|d| d.read_i64())
+            .map_err(|e| anyhow::anyhow!("{}: units/spike_times_index: {e}", file.display()))?;
+        let ids: Vec<i64> = f
+            .dataset("units/id")
+            .and_then(|d| d.read_i64())
+            .unwrap_or_else(|_| (0..index.len() as i64).collect());
+        if index.is_empty() {
+            bail!("{}: the units table has no rows", file.display());
+        }
+        let mut list = Vec::with_capacity(index.len());
+        let mut from = 0usize;
+        for (row, &end) in index.iter().enumerate() {
+            if end < from as i64 || end as usize > total {
+                bail!(
+                    "{}: units/spike_times_index[{row}] = {end} is outside {from}..={total} (spike_times holds {total} values); the file is damaged",
+                    file.display(),
+                );
+            }
+            list.push(UnitSpikes {
+                row,
+                next: from,
+                end: end as usize,
+                buf: Vec::new(),
+                at: 0,
+                previous: f64::NEG_INFINITY,
+            });
+            from = end as usize;
+        }
+        let window = ((8 << 20) / (8 * index.len())).clamp(64, WINDOW_ROWS);
+        Ok((
+            Units {
+                file,
+                spike_times,
+                units: list,
+                window,
+            },
+            ids,
+        ))
     }
-    if let Some(i) = (1..rows).find(|&i| timestamps[i] < timestamps[i - 1]) {
-        bail!(
-            "{}: {ts_path}: timestamps go backwards at sample {i} ({} after {}); the position cannot be interpolated",
-            file.display(),
-            timestamps[i],
-            timestamps[i - 1]
-        );
+
+    /// Adds the spikes in [edges[0], edges[last]) to `counts` (row-major,
+    /// one row per bin), bin k holding [edges[k], edges[k + 1]). Spike
+    /// times must ascend within a unit, as NWB asks. Returns the spikes
+    /// counted.
+    fn bin_chunk(&mut self, edges: &[f64], counts: &mut [u16]) -> Result<usize> {
+        let n = self.units.len();
+        let (lo, hi) = (edges[0], edges[edges.len() - 1]);
+        let mut spikes = 0;
+        for (ch, u) in self.units.iter_mut().enumerate() {
+            loop {
+                if u.at == u.buf.len() {
+                    if u.next == u.end {
+                        break;
+                    }
+                    let len = self.window.min(u.end - u.next);
+                    u.buf = self
+                        .spike_times
+                        .read_f64_rows(u.next as u64, len as u64)
+                        .map_err(|e| {
+                            anyhow::anyhow!(
+                                "{}: units/spike_times: cannot read: {e}",
+                                self.file.display()
+                            )
+                        })?;
+                    u.next += len;
+                    u.at = 0;
+                }
+                let s = u.buf[u.at];
+                if s >= hi {
+                    break;
+                }
+                if s < u.previous {
+                    bail!(
+                        "{}: units row {}: spike_times go backwards ({s} after {}); an import reads each unit's spike times in ascending order, as NWB asks — sort them in the file",
+                        self.file.display(),
+                        u.row,
+                        u.previous
+                    );
+                }
+                u.previous = s;
+                u.at += 1;
+                // NaN and spikes before the first bin are left out.
+                if s >= lo {
+                    let k = edges.partition_point(|e| *e <= s) - 1;
+                    let c = &mut counts[k * n + ch];
+                    *c = c.saturating_add(1);
+                    spikes += 1;
+                }
+            }
+        }
+        Ok(spikes)
     }
-    if let Some(i) = values.iter().position(|v| !v.is_finite()) {
-        bail!(
-            "{}: {data_path}: sample {} is not finite",
-            file.display(),
-            i / dims
-        );
-    }
-    Ok((timestamps, values, dims))
 }
 
-/// `numpy.interp`: linear between the samples, the end values outside.
-fn interp(x: f64, t: &[f64], y: &[f64], dims: usize, d: usize) -> f64 {
-    let n = t.len();
-    if x <= t[0] {
-        return y[d];
-    }
-    if x >= t[n - 1] {
-        return y[(n - 1) * dims + d];
-    }
-    // The last sample at or before x.
-    let j = t.partition_point(|v| *v <= x) - 1;
-    let (x0, x1) = (t[j], t[j + 1]);
-    let (y0, y1) = (y[j * dims + d], y[(j + 1) * dims + d]);
-    if x1 == x0 {
-        return y0;
-    }
-    let slope = (y1 - y0) / (x1 - x0);
-    slope * (x - x0) + y0
-}
+/// Bins written at a time.
+const CHUNK_BINS: usize = 4096;
 
+/// Reads the file a window at a time and writes the session directory
+/// `out` a chunk of bins at a time, so memory does not grow with the
+/// recording. `out` is written under a temporary name beside it and
+/// renamed at the end: a file refused halfway leaves nothing behind.
 pub fn import(args: &Args) -> Result<Imported> {
     let file = &args.file;
     let bin_width = super::bin_width_flag(args.bin_ms)?;
     let b = bin_width.seconds();
-    let f = File::open(file)
-        .map_err(|e| anyhow::anyhow!("{}: not a readable HDF5/NWB file: {e}", file.display()))?;
-    // Units.
-    let units = f.group("units").map_err(|_| {
-        anyhow::anyhow!(
-            "{}: no units table (/units); an import needs the sorted or thresholded spike times of each channel there",
-            file.display()
-        )
-    })?;
-    let members = units.datasets().unwrap_or_default();
-    if !members.iter().any(|m| m == "spike_times") {
+    if args.out.exists() {
         bail!(
-            "{}: the units table has no spike_times column",
-            file.display()
+            "--out {}: already exists; import writes a new session directory (choose another --out or remove it)",
+            args.out.display()
         );
     }
-    let flat = dataset_f64(&f, file, "units/spike_times")?;
-    let index: Vec<i64> = f
-        .dataset("units/spike_times_index")
-        .and_then(|d| d.read_i64())
-        .map_err(|e| anyhow::anyhow!("{}: units/spike_times_index: {e}", file.display()))?;
-    let ids: Vec<i64> = f
-        .dataset("units/id")
-        .and_then(|d| d.read_i64())
-        .unwrap_or_else(|_| (0..index.len() as i64).collect());
-    if index.is_empty() {
-        bail!("{}: the units table has no rows", file.display());
-    }
-    let mut channels = Vec::with_capacity(index.len());
-    let mut from = 0usize;
-    for (row, &end) in index.iter().enumerate() {
-        if end < from as i64 || end as usize > flat.len() {
-            bail!(
-                "{}: units/spike_times_index[{row}] = {end} is outside {from}..={} (spike_times holds {} values); the file is damaged",
-                file.display(),
-                flat.len(),
-                flat.len()
-            );
-        }
-        channels.push(&flat[from..end as usize]);
-        from = end as usize;
-    }
-    // Position.
+    let f = File::open_streaming(file)
+        .map_err(|e| anyhow::anyhow!("{}: not a readable HDF5/NWB file: {e}", file.display()))?;
+    let (mut units, ids) = Units::open(&f, file)?;
     let series = match &args.position {
         Some(p) => p.trim_start_matches('/').to_string(),
         None => {
@@ -235,9 +498,11 @@ pub fn import(args: &Args) -> Result<Imported> {
             format!("{group}/{first}")
         }
     };
-    let (t, pos, dims) = read_position(&f, file, &series)?;
-    let start = args.start.unwrap_or(t[0]);
-    let stop = args.stop.unwrap_or(t[t.len() - 1]);
+    let position = Position::open(&f, file, &series)?;
+    let (t_first, t_last) = position.check()?;
+    let dims = position.dims;
+    let start = args.start.unwrap_or(t_first);
+    let stop = args.stop.unwrap_or(t_last);
     if !(start.is_finite() && stop.is_finite() && stop > start) {
         bail!("--start {start} --stop {stop}: the stop must come after the start");
     }
@@ -249,50 +514,75 @@ pub fn import(args: &Args) -> Result<Imported> {
             args.bin_ms
         );
     }
-    let edges: Vec<f64> = (0..=n_bins).map(|k| start + k as f64 * b).collect();
-    let n = channels.len();
-    let mut counts = vec![0u16; n_bins * n];
-    let mut spikes = 0usize;
-    for (ch, times) in channels.iter().enumerate() {
-        for &s in *times {
-            if !(s >= edges[0] && s < edges[n_bins]) {
-                continue;
-            }
-            // The bin whose [edge, next edge) holds s.
-            let k = edges.partition_point(|e| *e <= s) - 1;
-            let c = &mut counts[k * n + ch];
-            *c = c.saturating_add(1);
-            spikes += 1;
-        }
-    }
-    let mut kin = Mat::zeros(n_bins, 2 * dims);
-    for k in 0..n_bins {
-        let centre = start + (k as f64 + 0.5) * b;
-        for d in 0..dims {
-            kin.set(k, d, interp(centre, &t, &pos, dims, d));
-            let p0 = interp(edges[k], &t, &pos, dims, d);
-            let p1 = interp(edges[k + 1], &t, &pos, dims, d);
-            kin.set(k, dims + d, (p1 - p0) / b);
-        }
-    }
     let trials = read_trials(&f, file, start, b, n_bins)?;
-    let block = Block {
+
+    let parent = match args.out.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
+        _ => PathBuf::from("."),
+    };
+    std::fs::create_dir_all(&parent)
+        .with_context(|| format!("cannot create {}", parent.display()))?;
+    let staging = tempfile::Builder::new()
+        .prefix(".import-")
+        .tempdir_in(&parent)
+        .with_context(|| format!("cannot write in {}", parent.display()))?;
+    let dir = staging.path();
+    let n = units.units.len();
+    write_manifest(
+        dir,
         bin_width,
-        n_bins,
-        n_channels: n,
-        counts,
-        kinematic_names: kinematic_names(dims),
-        kinematics: Some(kin),
-        trials,
-        channel_labels: Some(ids.iter().map(|i| i.to_string()).collect()),
-        notes: Some(format!(
+        &kinematic_names(dims),
+        Some(ids.iter().map(|i| i.to_string()).collect()),
+        Some(format!(
             "imported from {}: units table ({n} channels), position {series}, {start} s to {stop} s",
             file.display()
         )),
-        valid: None,
-    };
+    )?;
+    let mut counts_out = NpyWriter::create_u16(&dir.join(COUNTS_FILE), n_bins, n)?;
+    let mut kin_out = NpyWriter::create(&dir.join(KINEMATICS_FILE), n_bins, 2 * dims)?;
+    let edge = |k: usize| start + k as f64 * b;
+    let mut interp = Interp::new(&position)?;
+    let (mut p_start, mut p_centre, mut p_end) =
+        (vec![0.0; dims], vec![0.0; dims], vec![0.0; dims]);
+    interp.at(edge(0), &mut p_start)?;
+    let mut spikes = 0;
+    let mut k0 = 0;
+    while k0 < n_bins {
+        let len = CHUNK_BINS.min(n_bins - k0);
+        let edges: Vec<f64> = (k0..=k0 + len).map(edge).collect();
+        let mut counts = vec![0u16; len * n];
+        spikes += units.bin_chunk(&edges, &mut counts)?;
+        counts_out.write_u16_rows(&counts)?;
+        let mut kin = Vec::with_capacity(len * 2 * dims);
+        for k in k0..k0 + len {
+            interp.at(start + (k as f64 + 0.5) * b, &mut p_centre)?;
+            interp.at(edge(k + 1), &mut p_end)?;
+            kin.extend_from_slice(&p_centre);
+            kin.extend(p_start.iter().zip(&p_end).map(|(p0, p1)| (p1 - p0) / b));
+            std::mem::swap(&mut p_start, &mut p_end);
+        }
+        kin_out.write_rows(&kin)?;
+        k0 += len;
+    }
+    counts_out.finish()?;
+    kin_out.finish()?;
+    let n_trials = trials.as_ref().map_or(0, Vec::len);
+    if let Some(trials) = &trials {
+        write_trials(dir, trials)?;
+    }
+    let staged = staging.keep();
+    std::fs::rename(&staged, &args.out).with_context(|| {
+        format!(
+            "cannot move the imported block from {} to {}",
+            staged.display(),
+            args.out.display()
+        )
+    })?;
     Ok(Imported {
-        block,
+        n_bins,
+        n_channels: n,
+        dims,
+        trials: n_trials,
         position_path: series,
         spikes,
     })
@@ -351,20 +641,17 @@ fn read_trials(
 
 pub fn run(args: &Args) -> Result<()> {
     let imported = import(args)?;
-    let b = &imported.block;
-    b.write(&args.out)
-        .with_context(|| format!("writing {}", args.out.display()))?;
     println!(
         "imported {} -> {}: {} bins of {} ms, {} channels ({} spikes in range), position {} ({}), {} trials",
         args.file.display(),
         args.out.display(),
-        b.n_bins,
-        b.bin_width.ms(),
-        b.n_channels,
+        imported.n_bins,
+        args.bin_ms,
+        imported.n_channels,
         imported.spikes,
         imported.position_path,
-        b.kinematic_names.join(", "),
-        b.trials.as_ref().map_or(0, Vec::len)
+        kinematic_names(imported.dims).join(", "),
+        imported.trials
     );
     Ok(())
 }

@@ -80,6 +80,43 @@ fn an_nwb_file_written_by_pynwb_imports_as_numpy_bins_it_and_trains() {
     ]);
 }
 
+/// A file longer than the import's windows — more spike times per unit,
+/// position samples and bins than one read or one written chunk holds —
+/// imports to numpy's binning of the same file, element by element, with
+/// the same tolerances as above.
+#[test]
+fn a_file_read_in_many_windows_imports_as_numpy_bins_it() {
+    let src = nwb_dir();
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("long");
+    let f = src.join("long.nwb");
+    ok(&["import", p(&f), "--out", p(&out), "--bin-ms", "20"]);
+    let block = decoder_core::Block::read(&out).unwrap();
+    let want =
+        Array2::<u16>::read_npy(std::fs::File::open(src.join("long_counts.npy")).unwrap()).unwrap();
+    assert!(block.n_bins > 2 * 4096, "{} bins", block.n_bins);
+    assert_eq!(block.n_bins, want.nrows());
+    let counts: Vec<u16> = want.iter().copied().collect();
+    if let Some(i) = (0..counts.len()).find(|&i| block.counts[i] != counts[i]) {
+        panic!(
+            "count at bin {}, channel {}: {} vs numpy.histogram {}",
+            i / 3,
+            i % 3,
+            block.counts[i],
+            counts[i]
+        );
+    }
+    let kin = npy_f64(&src.join("long_kinematics.npy"));
+    let got = block.kinematics.as_ref().unwrap();
+    assert_eq!(got.data.len(), kin.len());
+    for (i, (g, w)) in got.data.iter().zip(kin.iter()).enumerate() {
+        assert!(
+            (g - w).abs() <= 1e-12 + 1e-12 * w.abs(),
+            "kinematics element {i}: {g} vs numpy.interp {w}"
+        );
+    }
+}
+
 #[test]
 fn a_bad_nwb_file_gets_an_error_that_says_what_is_wrong() {
     let src = nwb_dir();
@@ -111,5 +148,22 @@ fn a_bad_nwb_file_gets_an_error_that_says_what_is_wrong() {
         e.contains("--position") && e.contains("no such SpatialSeries"),
         "{e}"
     );
+    // Found while binning, after rows were written: nothing is left behind.
+    let e = run("unsorted.nwb", &[]);
+    assert!(
+        e.contains("units row 2") && e.contains("spike_times go backwards"),
+        "{e}"
+    );
     assert!(!out.exists(), "nothing written for a bad file");
+    assert_eq!(
+        std::fs::read_dir(dir.path()).unwrap().count(),
+        0,
+        "no staging directory left behind"
+    );
+    // An existing directory is never written over.
+    std::fs::create_dir(&out).unwrap();
+    std::fs::write(out.join("keep.txt"), "a recording").unwrap();
+    let e = run("reach.nwb", &[]);
+    assert!(e.contains("already exists"), "{e}");
+    assert!(out.join("keep.txt").is_file());
 }

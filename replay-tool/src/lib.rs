@@ -10,6 +10,7 @@
 
 pub mod bench_meter;
 pub mod cmd;
+pub mod nwb_export;
 pub mod output;
 pub mod plot;
 pub mod progress;

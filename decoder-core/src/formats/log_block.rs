@@ -51,6 +51,10 @@ pub struct LogBlock {
     pub estimates: Mat,
     /// `rows × outputs`: the command each velocity packet carried.
     pub commands: Mat,
+    /// The state each velocity packet carried (PROTOCOL.md §2 codes).
+    pub states: Vec<u8>,
+    /// When each velocity packet left (the daemon's `sent_ns`).
+    pub sent_ns: Vec<u64>,
     /// The task state each row was counted under (`None`: none yet).
     pub task: Vec<Option<TaskState>>,
     pub summary: LogBlockSummary,
@@ -219,9 +223,12 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
     let d_out = header.outputs.len();
     let (mut counts, mut missing, mut seqs) = (Vec::new(), Vec::new(), Vec::new());
     let (mut estimates, mut commands) = (Vec::new(), Vec::new());
+    let (mut states, mut sent_ns) = (Vec::new(), Vec::new());
     let mut tasks = Vec::new();
     let mut summary = LogBlockSummary::default();
     walk_slots(path, &mut reader, &mut summary, &mut tasks, |p, c| {
+        states.push(p.state);
+        sent_ns.push(p.sent_ns);
         match c {
             Some(c) => counts.extend_from_slice(c),
             None => counts.extend(std::iter::repeat_n(0, n)),
@@ -266,6 +273,8 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
             cols: d_out,
             data: commands,
         },
+        states,
+        sent_ns,
         task,
         summary,
     })

@@ -459,6 +459,139 @@ impl<'f> Units<'f> {
     }
 }
 
+/// Counts already binned: the first `TimeSeries` in `acquisition` whose
+/// data is (time, channels), one row per bin stamped at the bin's end (as
+/// `export --nwb` writes), read a window of rows at a time.
+struct BinnedCounts {
+    path: String,
+    data: Dataset,
+    rows: usize,
+    channels: usize,
+    /// Start of row 0's bin, s.
+    first_start: f64,
+    /// The source row of the import's first bin.
+    first_row: usize,
+}
+
+impl BinnedCounts {
+    fn find(f: &File, file: &Path, b: f64) -> Result<Option<BinnedCounts>> {
+        let Ok(acq) = f.group("acquisition") else {
+            return Ok(None);
+        };
+        let mut names = acq.groups().unwrap_or_default();
+        names.sort();
+        for name in names {
+            let path = format!("acquisition/{name}");
+            let Ok(data) = f.dataset(&format!("{path}/data")) else {
+                continue;
+            };
+            let Ok(shape) = data.shape() else { continue };
+            let [rows, channels] = shape.as_slice() else {
+                continue;
+            };
+            let (rows, channels) = (*rows as usize, *channels as usize);
+            if rows == 0 || channels == 0 {
+                continue;
+            }
+            let (t0, width) = if let Ok(ts) = f.dataset(&format!("{path}/timestamps")) {
+                let first = ts.read_f64_rows(0, rows.min(2) as u64).map_err(|e| {
+                    anyhow::anyhow!("{}: {path}/timestamps: cannot read: {e}", file.display())
+                })?;
+                (first[0], first.get(1).map_or(b, |t1| t1 - first[0]))
+            } else {
+                let st_path = format!("{path}/starting_time");
+                let st = f.dataset(&st_path).map_err(|_| {
+                    anyhow::anyhow!(
+                        "{}: {path} has neither timestamps nor starting_time",
+                        file.display()
+                    )
+                })?;
+                let rate = f64_attr(&st.attrs().unwrap_or_default(), "rate")
+                    .with_context(|| format!("{}: {st_path} has no rate", file.display()))?;
+                let t0 = dataset_f64(f, file, &st_path)?
+                    .first()
+                    .copied()
+                    .unwrap_or(0.0);
+                (t0, 1.0 / rate)
+            };
+            if (width - b).abs() > 1e-6 * b {
+                // In ms, to the µs the bin width is kept in.
+                let ms = (width * 1e6).round() / 1e3;
+                bail!(
+                    "{}: {path} holds counts binned at {ms} ms; import it with --bin-ms {ms}",
+                    file.display(),
+                );
+            }
+            return Ok(Some(BinnedCounts {
+                path,
+                data,
+                rows,
+                channels,
+                first_start: t0 - b,
+                first_row: 0,
+            }));
+        }
+        Ok(None)
+    }
+
+    /// The source rows for `n_bins` bins from `start`, which must fall on
+    /// one of the series' bin edges.
+    fn select(&mut self, file: &Path, start: f64, b: f64, n_bins: usize) -> Result<()> {
+        let j = ((start - self.first_start) / b).round();
+        if (start - (self.first_start + j * b)).abs() > 1e-6 * b {
+            bail!(
+                "{}: --start {start}: the counts in {} are already binned; start on one of their bin edges ({} + k × {} s)",
+                file.display(),
+                self.path,
+                self.first_start,
+                b
+            );
+        }
+        if j < 0.0 || j as usize + n_bins > self.rows {
+            bail!(
+                "{}: {} holds bins from {} s to {} s; --start and --stop must lie within them",
+                file.display(),
+                self.path,
+                self.first_start,
+                self.first_start + self.rows as f64 * b
+            );
+        }
+        self.first_row = j as usize;
+        Ok(())
+    }
+
+    /// Bins `k0 .. k0 + len` of the import into `counts`; returns their sum.
+    fn read_chunk(&self, file: &Path, k0: usize, len: usize, counts: &mut [u16]) -> Result<usize> {
+        let values = self
+            .data
+            .read_f64_rows((self.first_row + k0) as u64, len as u64)
+            .map_err(|e| {
+                anyhow::anyhow!("{}: {}/data: cannot read: {e}", file.display(), self.path)
+            })?;
+        let mut total = 0usize;
+        for (i, (c, v)) in counts.iter_mut().zip(&values).enumerate() {
+            if !(v.fract() == 0.0 && (0.0..=f64::from(u16::MAX)).contains(v)) {
+                bail!(
+                    "{}: {}/data row {}, channel {}: {v} is not a count (0 to 65535)",
+                    file.display(),
+                    self.path,
+                    self.first_row + k0 + i / self.channels,
+                    i % self.channels
+                );
+            }
+            *c = *v as u16;
+            total += *c as usize;
+        }
+        Ok(total)
+    }
+}
+
+/// Where an import's counts come from.
+enum Counts<'f> {
+    Units(Units<'f>),
+    Binned(BinnedCounts),
+}
+
 /// Bins written at a time.
 const CHUNK_BINS: usize = 4096;
 
@@ -478,7 +611,21 @@ pub fn import(args: &Args) -> Result<Imported> {
     }
     let f = File::open_streaming(file)
         .map_err(|e| anyhow::anyhow!("{}: not a readable HDF5/NWB file: {e}", file.display()))?;
-    let (mut units, ids) = Units::open(&f, file)?;
+    let (mut source, ids) = if f.group("units").is_err() {
+        match BinnedCounts::find(&f, file, b)? {
+            Some(binned) => {
+                let ids = (0..binned.channels as i64).collect();
+                (Counts::Binned(binned), ids)
+            }
+            None => bail!(
+                "{}: no units table (/units) and no binned counts in acquisition; an import needs the sorted or thresholded spike times of each channel in the units table, or counts already binned as a (time, channels) TimeSeries in acquisition",
+                file.display()
+            ),
+        }
+    } else {
+        let (units, ids) = Units::open(&f, file)?;
+        (Counts::Units(units), ids)
+    };
     let series = match &args.position {
         Some(p) => p.trim_start_matches('/').to_string(),
         None => {
@@ -501,12 +648,23 @@ pub fn import(args: &Args) -> Result<Imported> {
     let position = Position::open(&f, file, &series)?;
     let (t_first, t_last) = position.check()?;
     let dims = position.dims;
+    // Spike times are binned from the position's span; binned counts keep
+    // their own bins.
+    let (t_first, t_last) = match &source {
+        Counts::Units(_) => (t_first, t_last),
+        Counts::Binned(c) => (c.first_start, c.first_start + c.rows as f64 * b),
+    };
     let start = args.start.unwrap_or(t_first);
     let stop = args.stop.unwrap_or(t_last);
     if !(start.is_finite() && stop.is_finite() && stop > start) {
         bail!("--start {start} --stop {stop}: the stop must come after the start");
     }
-    let n_bins = ((stop - start) / b).floor() as usize;
+    // T = floor((stop − start) / B); binned counts span a whole number of
+    // their bins, which rounding must not cut by one.
+    let span = (stop - start) / b;
+    let whole = matches!(source, Counts::Binned(_))
+        && (span - span.round()).abs() < 1e-9 * span.abs().max(1.0);
+    let n_bins = if whole { span.round() } else { span.floor() } as usize;
     if n_bins == 0 {
         bail!(
             "{}: {start} s to {stop} s holds no whole {} ms bin",
@@ -515,6 +673,9 @@ pub fn import(args: &Args) -> Result<Imported> {
         );
     }
     let trials = read_trials(&f, file, start, b, n_bins)?;
+    if let Counts::Binned(c) = &mut source {
+        c.select(file, start, b, n_bins)?;
+    }
 
     let parent = match args.out.parent() {
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
@@ -527,15 +688,22 @@ pub fn import(args: &Args) -> Result<Imported> {
         .tempdir_in(&parent)
         .with_context(|| format!("cannot write in {}", parent.display()))?;
     let dir = staging.path();
-    let n = units.units.len();
+    let n = match &source {
+        Counts::Units(u) => u.units.len(),
+        Counts::Binned(c) => c.channels,
+    };
     write_manifest(
         dir,
         bin_width,
         &kinematic_names(dims),
         Some(ids.iter().map(|i| i.to_string()).collect()),
         Some(format!(
-            "imported from {}: units table ({n} channels), position {series}, {start} s to {stop} s",
-            file.display()
+            "imported from {}: {} ({n} channels), position {series}, {start} s to {stop} s",
+            file.display(),
+            match &source {
+                Counts::Units(_) => "units table".to_string(),
+                Counts::Binned(c) => format!("binned counts {}", c.path),
+            }
         )),
     )?;
     let mut counts_out = NpyWriter::create_u16(&dir.join(COUNTS_FILE), n_bins, n)?;
@@ -551,7 +719,10 @@ pub fn import(args: &Args) -> Result<Imported> {
         let len = CHUNK_BINS.min(n_bins - k0);
         let edges: Vec<f64> = (k0..=k0 + len).map(edge).collect();
         let mut counts = vec![0u16; len * n];
-        spikes += units.bin_chunk(&edges, &mut counts)?;
+        spikes += match &mut source {
+            Counts::Units(u) => u.bin_chunk(&edges, &mut counts)?,
+            Counts::Binned(c) => c.read_chunk(file, k0, len, &mut counts)?,
+        };
         counts_out.write_u16_rows(&counts)?;
         let mut kin = Vec::with_capacity(len * 2 * dims);
         for k in k0..k0 + len {

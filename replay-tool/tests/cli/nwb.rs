@@ -117,6 +117,146 @@ fn a_file_read_in_many_windows_imports_as_numpy_bins_it() {
     }
 }
 
+/// A session recorded through the daemon leaves as a Neurodata Without
+/// Borders file: the arrays equal the export folder's (read back here with
+/// the HDF5 reader, and by pynwb with its warnings as errors plus the NWB
+/// inspector when `VDEC_REFERENCE_PYTHON` names the reference
+/// environment's python, as CI does), and `import` reads the file back to
+/// the same counts, byte for byte.
+#[test]
+fn a_session_exports_to_nwb_that_pynwb_reads_and_imports_back_to_the_same_counts() {
+    let dir = tempfile::tempdir().unwrap();
+    let (_, model) = fixture::calibration_16();
+    let report = dir.path().join("cl");
+    ok(&[
+        "closed-loop",
+        "--model",
+        p(&model),
+        "--time-scale",
+        "0",
+        "--trials",
+        "3",
+        "--report",
+        p(&report),
+    ]);
+    let log = closed_loop_log(&report);
+    let meta = dir.path().join("meta.toml");
+    std::fs::write(
+        &meta,
+        r#"[subject]
+subject_id = "demo-07"
+species = "Macaca mulatta"
+sex = "M"
+age = "P7Y"
+description = "synthetic subject of the demo scenario"
+
+[session]
+session_description = "centre-out reaching, velocity Kalman decoder, synthetic"
+experimenter = ["Rig, Operator"]
+institution = "Demo Institute"
+lab = "Closed-loop rig"
+keywords = ["velocity decoding", "closed loop"]
+"#,
+    )
+    .unwrap();
+    let folder = dir.path().join("folder");
+    let nwb = dir.path().join("session.nwb");
+    let said = ok(&[
+        "export",
+        p(&log),
+        "--out",
+        p(&folder),
+        "--nwb",
+        p(&nwb),
+        "--metadata",
+        p(&meta),
+    ]);
+    assert!(said.contains("Neurodata Without Borders"), "{said}");
+
+    // Read back with the HDF5 reader: the decoder's series equal the
+    // folder's arrays, and the root says what it is.
+    let f = hdf5_pure::File::open(&nwb).unwrap();
+    let attrs = f.root().attrs().unwrap();
+    assert_eq!(
+        attrs.get("neurodata_type").and_then(|a| a.as_str()),
+        Some("NWBFile")
+    );
+    let estimates = npy_f64(&folder.join("estimates.npy"));
+    let got = f
+        .dataset("processing/decoder/estimate/data")
+        .unwrap()
+        .read_f64()
+        .unwrap();
+    assert_eq!(got, estimates.iter().copied().collect::<Vec<f64>>());
+    let subject = f
+        .dataset("general/subject/species")
+        .unwrap()
+        .read_string()
+        .unwrap();
+    assert_eq!(subject, ["Macaca mulatta"]);
+
+    // import reads it back to the same counts.
+    let back = dir.path().join("back");
+    ok(&["import", p(&nwb), "--out", p(&back), "--bin-ms", "20"]);
+    assert_eq!(
+        std::fs::read(back.join("counts.npy")).unwrap(),
+        std::fs::read(folder.join("counts.npy")).unwrap()
+    );
+    let wrong = fails_with(
+        &[
+            "import",
+            p(&nwb),
+            "--out",
+            p(&dir.path().join("w")),
+            "--bin-ms",
+            "10",
+        ],
+        2,
+    );
+    assert!(
+        wrong.contains("binned at 20 ms") && wrong.contains("--bin-ms 20"),
+        "{wrong}"
+    );
+
+    // A metadata file with a key NWB does not have is refused by name.
+    std::fs::write(
+        &meta,
+        "[subject]\nspecies = \"Macaca mulatta\"\nweight = 9\n",
+    )
+    .unwrap();
+    let e = fails_with(
+        &[
+            "export",
+            p(&log),
+            "--nwb",
+            p(&dir.path().join("x.nwb")),
+            "--metadata",
+            p(&meta),
+        ],
+        2,
+    );
+    assert!(e.contains("meta.toml") && e.contains("weight"), "{e}");
+
+    if let Some(python) = std::env::var_os("VDEC_REFERENCE_PYTHON") {
+        let script =
+            Path::new(env!("CARGO_MANIFEST_DIR")).join("../tests/reference/check_nwb_export.py");
+        let out = std::process::Command::new(python)
+            .arg(&script)
+            .arg(&nwb)
+            .arg(&folder)
+            .arg("--with-metadata")
+            .output()
+            .unwrap();
+        let said = String::from_utf8_lossy(&out.stdout);
+        assert!(
+            out.status.success(),
+            "{said}{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        assert!(said.contains("nothing CRITICAL"), "{said}");
+    }
+}
+
 #[test]
 fn a_bad_nwb_file_gets_an_error_that_says_what_is_wrong() {
     let src = nwb_dir();
@@ -130,7 +270,7 @@ fn a_bad_nwb_file_gets_an_error_that_says_what_is_wrong() {
     };
     let e = run("no_units.nwb", &[]);
     assert!(
-        e.contains("no_units.nwb") && e.contains("no units table"),
+        e.contains("no_units.nwb") && e.contains("no units table") && e.contains("binned counts"),
         "{e}"
     );
     let e = run("index_past.nwb", &[]);

@@ -10,10 +10,10 @@
 //! timestamps regular or not) interpolated linearly at bin centres, with
 //! velocity the displacement over the bin; trials from `intervals/trials`.
 //! The HDF5 file is read by `hdf5-pure`, a pure-Rust reader, so the build
-//! needs no C library, and read as a stream: the position and each unit's
-//! spike times a window of rows at a time, the bins written a chunk at a
-//! time, so a multi-gigabyte recording imports in the memory of a short
-//! one.
+//! needs no C library, and read as a stream: the position a window of
+//! rows at a time, the spike times unit after unit in file order (binned
+//! into a scratch file of columns), the bins written a chunk at a time, so
+//! a multi-gigabyte recording imports in the memory of a short one.
 
 use std::path::{Path, PathBuf};
 
@@ -74,9 +74,7 @@ fn f64_attr(attrs: &std::collections::HashMap<String, AttrValue>, key: &str) -> 
     }
 }
 
-/// Rows read from a dataset at a time: position samples, and each
-/// unit's spike times (fewer when there are many units, so the buffers of
-/// all units together stay near 8 MB).
+/// Position samples read at a time.
 const WINDOW_ROWS: usize = 4096;
 
 /// Where the position series' times come from.
@@ -320,23 +318,31 @@ impl<'p, 'f> Interp<'p, 'f> {
     }
 }
 
-/// One unit's spike times, read a window at a time from its range of
-/// the ragged `spike_times` column.
-struct UnitSpikes {
+/// One unit's range of the ragged `spike_times` column.
+struct UnitRange {
     row: usize,
-    next: usize,
+    from: usize,
     end: usize,
-    buf: Vec<f64>,
-    at: usize,
-    previous: f64,
 }
 
-/// Every unit's spike times, binned a chunk of bins at a time.
+/// Spike times read per call: 4 MB, so a column stored in large chunks
+/// is read a chunk at a time, in file order.
+const SPIKE_WINDOW: usize = 1 << 19;
+
+/// The units table, binned one unit at a time in file order into a
+/// scratch file of columns (one unit's counts after another), which is
+/// then read back a chunk of bins at a time. Spike times lie unit after
+/// unit in the file; binning them in that order reads each stored chunk
+/// once, where binning a span of time at a time would read every chunk
+/// again for every span.
 struct Units<'f> {
     file: &'f Path,
     spike_times: Dataset,
-    units: Vec<UnitSpikes>,
+    units: Vec<UnitRange>,
+    /// Spike times read per call.
     window: usize,
+    /// Column-major counts, `n_bins` u16 per unit, once binned.
+    columns: Option<(std::fs::File, usize)>,
 }
 
 impl<'f> Units<'f> {
@@ -383,79 +389,115 @@ impl<'f> Units<'f> {
                     file.display(),
                 );
             }
-            list.push(UnitSpikes {
+            list.push(UnitRange {
                 row,
-                next: from,
+                from,
                 end: end as usize,
-                buf: Vec::new(),
-                at: 0,
-                previous: f64::NEG_INFINITY,
             });
             from = end as usize;
         }
-        let window = ((8 << 20) / (8 * index.len())).clamp(64, WINDOW_ROWS);
         Ok((
             Units {
                 file,
                 spike_times,
                 units: list,
-                window,
+                window: SPIKE_WINDOW,
+                columns: None,
             },
             ids,
         ))
     }
 
-    /// Adds the spikes in [edges[0], edges[last]) to `counts` (row-major,
-    /// one row per bin), bin k holding [edges[k], edges[k + 1]). Spike
+    /// Bins every unit's spikes in [edge(0), edge(n_bins)) into the
+    /// scratch file `scratch`, bin k holding [edge(k), edge(k + 1)). Spike
     /// times must ascend within a unit, as NWB asks. Returns the spikes
     /// counted.
-    fn bin_chunk(&mut self, edges: &[f64], counts: &mut [u16]) -> Result<usize> {
-        let n = self.units.len();
-        let (lo, hi) = (edges[0], edges[edges.len() - 1]);
+    fn bin_all(
+        &mut self,
+        n_bins: usize,
+        edge: impl Fn(usize) -> f64,
+        scratch: std::fs::File,
+    ) -> Result<usize> {
+        use std::os::unix::fs::FileExt;
+        let (lo, hi) = (edge(0), edge(n_bins));
+        let width = (hi - lo) / n_bins as f64;
+        // The last edge at or before s: a guess from the width, settled
+        // against the edges themselves, so the bin is the one the edges
+        // say, to the last bit.
+        let bin_of = |s: f64| {
+            let mut k = (((s - lo) / width) as usize).min(n_bins - 1);
+            while k > 0 && edge(k) > s {
+                k -= 1;
+            }
+            while k + 1 < n_bins && edge(k + 1) <= s {
+                k += 1;
+            }
+            k
+        };
+        let mut column = vec![0u16; n_bins];
+        let mut bytes = Vec::with_capacity(2 * n_bins);
         let mut spikes = 0;
-        for (ch, u) in self.units.iter_mut().enumerate() {
-            loop {
-                if u.at == u.buf.len() {
-                    if u.next == u.end {
-                        break;
+        for (ch, u) in self.units.iter().enumerate() {
+            column.fill(0);
+            let mut previous = f64::NEG_INFINITY;
+            let mut next = u.from;
+            'unit: while next < u.end {
+                let len = self.window.min(u.end - next);
+                let window = self
+                    .spike_times
+                    .read_f64_rows(next as u64, len as u64)
+                    .map_err(|e| {
+                        anyhow::anyhow!(
+                            "{}: units/spike_times: cannot read: {e}",
+                            self.file.display()
+                        )
+                    })?;
+                next += len;
+                for &s in &window {
+                    if s < previous {
+                        bail!(
+                            "{}: units row {}: spike_times go backwards ({s} after {previous}); an import reads each unit's spike times in ascending order, as NWB asks — sort them in the file",
+                            self.file.display(),
+                            u.row,
+                        );
                     }
-                    let len = self.window.min(u.end - u.next);
-                    u.buf = self
-                        .spike_times
-                        .read_f64_rows(u.next as u64, len as u64)
-                        .map_err(|e| {
-                            anyhow::anyhow!(
-                                "{}: units/spike_times: cannot read: {e}",
-                                self.file.display()
-                            )
-                        })?;
-                    u.next += len;
-                    u.at = 0;
-                }
-                let s = u.buf[u.at];
-                if s >= hi {
-                    break;
-                }
-                if s < u.previous {
-                    bail!(
-                        "{}: units row {}: spike_times go backwards ({s} after {}); an import reads each unit's spike times in ascending order, as NWB asks — sort them in the file",
-                        self.file.display(),
-                        u.row,
-                        u.previous
-                    );
-                }
-                u.previous = s;
-                u.at += 1;
-                // NaN and spikes before the first bin are left out.
-                if s >= lo {
-                    let k = edges.partition_point(|e| *e <= s) - 1;
-                    let c = &mut counts[k * n + ch];
-                    *c = c.saturating_add(1);
-                    spikes += 1;
+                    previous = s;
+                    if s >= hi {
+                        break 'unit;
+                    }
+                    // NaN and spikes before the first bin are left out.
+                    if s >= lo {
+                        let k = bin_of(s);
+                        column[k] = column[k].saturating_add(1);
+                        spikes += 1;
+                    }
                 }
             }
+            bytes.clear();
+            bytes.extend(column.iter().flat_map(|c| c.to_le_bytes()));
+            scratch
+                .write_all_at(&bytes, (ch * 2 * n_bins) as u64)
+                .context("cannot write the import's scratch file")?;
         }
+        self.columns = Some((scratch, n_bins));
         Ok(spikes)
+    }
+
+    /// Bins `k0 .. k0 + len` of every unit, as rows, into `counts`.
+    fn read_chunk(&self, k0: usize, len: usize, counts: &mut [u16]) -> Result<()> {
+        use std::os::unix::fs::FileExt;
+        let (scratch, n_bins) = self.columns.as_ref().expect("binned before read");
+        let n = self.units.len();
+        let mut bytes = vec![0u8; 2 * len];
+        for ch in 0..n {
+            scratch
+                .read_exact_at(&mut bytes, (2 * (ch * n_bins + k0)) as u64)
+                .context("cannot read the import's scratch file")?;
+            for (k, c) in bytes.chunks_exact(2).enumerate() {
+                counts[k * n + ch] = u16::from_le_bytes([c[0], c[1]]);
+            }
+        }
+        Ok(())
     }
 }
 
@@ -714,15 +756,19 @@ pub fn import(args: &Args) -> Result<Imported> {
         (vec![0.0; dims], vec![0.0; dims], vec![0.0; dims]);
     interp.at(edge(0), &mut p_start)?;
     let mut spikes = 0;
+    if let Counts::Units(u) = &mut source {
+        let scratch =
+            tempfile::tempfile_in(dir).context("cannot create the import's scratch file")?;
+        spikes = u.bin_all(n_bins, edge, scratch)?;
+    }
     let mut k0 = 0;
     while k0 < n_bins {
         let len = CHUNK_BINS.min(n_bins - k0);
-        let edges: Vec<f64> = (k0..=k0 + len).map(edge).collect();
         let mut counts = vec![0u16; len * n];
-        spikes += match &mut source {
-            Counts::Units(u) => u.bin_chunk(&edges, &mut counts)?,
-            Counts::Binned(c) => c.read_chunk(file, k0, len, &mut counts)?,
-        };
+        match &source {
+            Counts::Units(u) => u.read_chunk(k0, len, &mut counts)?,
+            Counts::Binned(c) => spikes += c.read_chunk(file, k0, len, &mut counts)?,
+        }
         counts_out.write_u16_rows(&counts)?;
         let mut kin = Vec::with_capacity(len * 2 * dims);
         for k in k0..k0 + len {
@@ -825,4 +871,64 @@ pub fn run(args: &Args) -> Result<()> {
         imported.trials
     );
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use hdf5_pure::FileBuilder;
+
+    /// Binning unit after unit, a few spike times per read, gives what
+    /// counting each unit's spikes directly gives, bin by bin.
+    #[test]
+    fn units_binned_in_small_windows_count_every_spike_once() {
+        let spikes: [Vec<f64>; 3] = [
+            (0..50).map(|i| 0.013 * i as f64).collect(),
+            vec![],
+            (0..37).map(|i| 0.5 + 0.007 * i as f64).collect(),
+        ];
+        let flat: Vec<f64> = spikes.iter().flatten().copied().collect();
+        let index: Vec<i64> = spikes
+            .iter()
+            .scan(0i64, |end, s| {
+                *end += s.len() as i64;
+                Some(*end)
+            })
+            .collect();
+        let mut fb = FileBuilder::new();
+        let mut units = fb.create_group("units");
+        units.create_dataset("spike_times").with_f64_data(&flat);
+        units
+            .create_dataset("spike_times_index")
+            .with_i64_data(&index);
+        fb.add_group(units.finish());
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join("u.nwb");
+        fb.write(&path).unwrap();
+        let f = File::open_streaming(&path).unwrap();
+        let (mut u, ids) = Units::open(&f, &path).unwrap();
+        assert_eq!(ids, [0, 1, 2]);
+        u.window = 7;
+        let (n_bins, b) = (40usize, 0.02);
+        let edge = |k: usize| 0.1 + k as f64 * b;
+        let total = u
+            .bin_all(n_bins, edge, tempfile::tempfile().unwrap())
+            .unwrap();
+        let mut counts = vec![0u16; n_bins * 3];
+        u.read_chunk(0, n_bins, &mut counts).unwrap();
+        let mut want = vec![0u16; n_bins * 3];
+        for (ch, times) in spikes.iter().enumerate() {
+            for &s in times {
+                if let Some(k) = (0..n_bins).find(|&k| edge(k) <= s && s < edge(k + 1)) {
+                    want[k * 3 + ch] += 1;
+                }
+            }
+        }
+        assert_eq!(counts, want);
+        assert_eq!(total, want.iter().map(|&c| c as usize).sum::<usize>());
+        // And a chunk from the middle reads the same rows.
+        let mut part = vec![0u16; 5 * 3];
+        u.read_chunk(11, 5, &mut part).unwrap();
+        assert_eq!(part, want[11 * 3..16 * 3]);
+    }
 }

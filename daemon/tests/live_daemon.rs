@@ -10,7 +10,7 @@ use std::time::{Duration, Instant};
 use daemon::control::Request;
 use decoder_core::formats::log_replay::replay_log;
 use decoder_core::formats::session_log::{LogEnd, LogReader, LogRecord};
-use decoder_core::wire::packet::{FLAG_MODEL_CHANGED, VelocityPacket};
+use decoder_core::wire::packet::{self, FLAG_MODEL_CHANGED, VelocityPacket};
 use support::{BIN, Daemon, PATIENCE, TEST_TIMING, assert_slots_accounted, fixture, missing, seqs};
 
 #[test]
@@ -100,6 +100,17 @@ fn malformed_datagrams_are_rejected_counted_and_the_loop_lives() {
     let mut m = good.clone();
     m[24..28].copy_from_slice(&10_000u32.to_le_bytes());
     kinds.push(m); // wrong bin width
+    let mut m = good.clone();
+    m[4..6].copy_from_slice(&2u16.to_le_bytes());
+    m[28..32].copy_from_slice(&5u32.to_le_bytes());
+    kinds.push(m); // version 2 of an unknown kind
+    let n = (good.len() - 32) / 2;
+    let features = |value: f32| {
+        let body: Vec<u8> = (0..n).flat_map(|_| value.to_le_bytes()).collect();
+        packet::bin_datagram_v2(packet::BinKind::Features, n as u16, &body, 20_000)
+    };
+    kinds.push(features(f32::INFINITY)); // a feature that is not finite
+    kinds.push(features(0.25)); // features, for a model that decodes counts
     let t0 = Instant::now();
     for seq in 0..30u64 {
         if let Some(wait) = (t0 + BIN * seq as u32).checked_duration_since(Instant::now()) {
@@ -113,16 +124,57 @@ fn malformed_datagrams_are_rejected_counted_and_the_loop_lives() {
     assert_slots_accounted(&p, 0..30, &[], &s);
     assert_eq!(s.counters.rejected, 30);
     for (name, want) in [
-        ("too_short", 8),
-        ("bad_magic", 4),
-        ("bad_version", 4),
-        ("channels_out_of_range", 4),
-        ("length_mismatch", 4),
+        ("too_short", 6),
+        ("bad_magic", 3),
+        ("bad_version", 3),
+        ("channels_out_of_range", 3),
+        ("length_mismatch", 3),
         ("channel_mismatch", 3),
         ("bin_width_mismatch", 3),
+        ("bad_kind", 2),
+        ("non_finite_feature", 2),
+        ("kind_mismatch", 2),
     ] {
         assert_eq!(s.rejected[name], want, "{name}: {:?}", s.rejected);
     }
+}
+
+/// Version 2 bin packets of kind 0 (PROTOCOL.md §1) carry the same counts
+/// as version 1: a stream of both, alternating, is decoded slot for slot
+/// as the version 1 stream is, and nothing is rejected.
+#[test]
+fn version_2_count_packets_decode_as_version_1() {
+    let run = |v2: bool| {
+        let d = Daemon::start(true, TEST_TIMING);
+        let t0 = Instant::now();
+        for seq in 0..12u64 {
+            if let Some(wait) = (t0 + BIN * seq as u32).checked_duration_since(Instant::now()) {
+                std::thread::sleep(wait);
+            }
+            let mut bytes = d.bin_bytes(seq);
+            if v2 && seq % 2 == 0 {
+                bytes[4..6].copy_from_slice(&2u16.to_le_bytes());
+                bytes[28..32].copy_from_slice(&0u32.to_le_bytes());
+            }
+            d.send_raw(&bytes);
+        }
+        let p = d.wait_for_seq(11);
+        let s = d.status();
+        assert_slots_accounted(&p, 0..12, &[], &s);
+        assert_eq!(s.counters.rejected, 0, "{:?}", s.rejected);
+        // What was decoded (not what the host made coast) must agree.
+        p.iter()
+            .filter(|p| !missing(p) && p.seq < 12)
+            .map(|p| (p.seq, p.estimate.clone()))
+            .collect::<Vec<_>>()
+    };
+    let (v1, mixed) = (run(false), run(true));
+    for (seq, e) in &mixed {
+        if let Some((_, want)) = v1.iter().find(|(s, _)| s == seq) {
+            assert_eq!(e, want, "seq {seq}");
+        }
+    }
+    assert!(mixed.iter().any(|(s, _)| s % 2 == 0));
 }
 
 #[test]

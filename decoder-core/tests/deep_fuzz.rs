@@ -53,6 +53,7 @@ fn bin(seq: u64, channels: u16, bin_us: u32, counts: &[u16]) -> Vec<u8> {
             origin_ns: 7,
             bin_us,
             flags: 0,
+            kind: packet::BinKind::Counts,
         },
         counts,
         &mut out,
@@ -76,13 +77,13 @@ proptest! {
         let mut b = bin(seq, n as u16, 20_000, &counts);
         match field {
             0 => b[0] = b'X',                                           // magic
-            1 => b[4..6].copy_from_slice(&(2 + value as u16 % 100).to_le_bytes()), // version
+            1 => b[4..6].copy_from_slice(&(3 + value as u16 % 100).to_le_bytes()), // version (1 and 2 are read)
             2 => b[8..16].copy_from_slice(&value.to_le_bytes()),        // seq
             3 => b[6..8].copy_from_slice(&((n as u16).wrapping_add(1 + value as u16 % 50)).to_le_bytes()), // channels
             4 => b[24..28].copy_from_slice(&(value as u32 | 1).to_le_bytes()), // bin_us
             _ => { b.truncate(b.len() - 1 - (value as usize % n.max(1)).min(b.len() - 33)); } // length
         }
-        let parsed = packet::parse_bin_for(&b, n, W);
+        let parsed = packet::parse_bin_for(&b, packet::BinKind::Counts, n, W);
         match field {
             2 => {
                 let h = parsed.expect("a changed seq is still a valid bin");

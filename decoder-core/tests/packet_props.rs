@@ -60,6 +60,7 @@ fn near_valid() -> impl Strategy<Value = Vec<u8>> {
                     origin_ns: 0,
                     bin_us: 20_000,
                     flags: 0,
+                    kind: decoder_core::wire::packet::BinKind::Counts,
                 },
                 &counts,
                 &mut out,

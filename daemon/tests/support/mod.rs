@@ -157,6 +157,7 @@ impl Daemon {
                 origin_ns: daemon::sys::monotonic_ns(),
                 bin_us: (BIN_MS * 1000.0) as u32,
                 flags: 0,
+                kind: packet::BinKind::Counts,
             },
             counts,
             &mut out,

@@ -352,7 +352,13 @@ impl SlotEngine {
         }
         self.counters.datagrams += 1;
         let header =
-            match packet::parse_bin_for(datagram, self.n_channels(), self.settings.bin_width) {
+            // Every model decodes counts; a features bin is a kind mismatch.
+            match packet::parse_bin_for(
+                datagram,
+                packet::BinKind::Counts,
+                self.n_channels(),
+                self.settings.bin_width,
+            ) {
                 Ok(h) => h,
                 Err(reason) => {
                     self.counters.rejected += 1;

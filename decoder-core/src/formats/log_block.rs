@@ -116,7 +116,10 @@ fn walk_slots(
                 let Ok(h) = packet::parse_bin(&bytes) else {
                     continue;
                 };
-                if usize::from(h.channels) != n || h.bin_us != bin_us {
+                if usize::from(h.channels) != n
+                    || h.bin_us != bin_us
+                    || h.kind != packet::BinKind::Counts
+                {
                     continue;
                 }
                 pending.entry(h.seq).or_insert_with(|| {

@@ -13,7 +13,10 @@ use crate::bin_width::BinWidth;
 pub const BIN_MAGIC: [u8; 4] = *b"NBIN";
 /// ASCII `NVEL`.
 pub const VELOCITY_MAGIC: [u8; 4] = *b"NVEL";
+/// Version of the velocity packet, and of the bin packet this crate writes.
 pub const PACKET_VERSION: u16 = 1;
+/// The bin packet version that carries a `kind` (counts or features).
+pub const BIN_VERSION_WITH_KIND: u16 = 2;
 pub const BIN_HEADER_LEN: usize = 32;
 pub const VELOCITY_HEADER_LEN: usize = 48;
 pub const MAX_CHANNELS: usize = 16384;
@@ -30,7 +33,33 @@ pub const FLAG_ACCEL_CLAMPED: u32 = 1 << 2;
 /// Velocity packet flag: a newly loaded model decoded this bin.
 pub const FLAG_MODEL_CHANGED: u32 = 1 << 3;
 
-/// The fixed fields of a bin packet; the counts stay in the datagram until
+/// What a bin packet's body holds (PROTOCOL.md §1): version 1 and version
+/// 2 with kind 0 carry u16 counts, version 2 with kind 1 carries f32
+/// features.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum BinKind {
+    Counts,
+    Features,
+}
+
+impl BinKind {
+    pub fn name(self) -> &'static str {
+        match self {
+            BinKind::Counts => "counts",
+            BinKind::Features => "features",
+        }
+    }
+
+    /// Bytes per channel in the body.
+    pub fn value_len(self) -> usize {
+        match self {
+            BinKind::Counts => 2,
+            BinKind::Features => 4,
+        }
+    }
+}
+
+/// The fixed fields of a bin packet; the values stay in the datagram until
 /// [`read_counts`] copies them out.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub struct BinHeader {
@@ -38,7 +67,9 @@ pub struct BinHeader {
     pub seq: u64,
     pub origin_ns: u64,
     pub bin_us: u32,
+    /// Version 1's flags (0 in version 2, whose offset 28 is the kind).
     pub flags: u32,
+    pub kind: BinKind,
 }
 
 /// Why a datagram was not decoded. Each reason has its own counter.
@@ -48,7 +79,7 @@ pub enum RejectReason {
     TooShort { len: usize },
     #[error("magic is not NBIN")]
     BadMagic,
-    #[error("packet version {version}; this daemon reads version 1")]
+    #[error("packet version {version}; this daemon reads versions 1 and 2")]
     BadVersion { version: u16 },
     #[error("channel count {channels} is outside 1..=16384")]
     ChannelsOutOfRange { channels: u16 },
@@ -62,10 +93,19 @@ pub enum RejectReason {
     ChannelMismatch { got: u16, expected: usize },
     #[error("bin is {got} µs wide but the model was trained on {expected} µs bins")]
     BinWidthMismatch { got: u32, expected: u32 },
+    #[error("version 2 kind {kind} is neither 0 (counts) nor 1 (features)")]
+    BadKind { kind: u32 },
+    #[error("feature of channel {channel} is not a finite number")]
+    NonFiniteFeature { channel: usize },
+    #[error("bin carries {got} but the model decodes {expected}")]
+    KindMismatch {
+        got: &'static str,
+        expected: &'static str,
+    },
 }
 
 /// Number of distinct reject reasons, for per-reason counters.
-pub const N_REJECT_REASONS: usize = 7;
+pub const N_REJECT_REASONS: usize = 10;
 
 impl RejectReason {
     /// Stable index for per-reason counters.
@@ -78,6 +118,9 @@ impl RejectReason {
             RejectReason::LengthMismatch { .. } => 4,
             RejectReason::ChannelMismatch { .. } => 5,
             RejectReason::BinWidthMismatch { .. } => 6,
+            RejectReason::BadKind { .. } => 7,
+            RejectReason::NonFiniteFeature { .. } => 8,
+            RejectReason::KindMismatch { .. } => 9,
         }
     }
 
@@ -90,6 +133,9 @@ impl RejectReason {
         "length_mismatch",
         "channel_mismatch",
         "bin_width_mismatch",
+        "bad_kind",
+        "non_finite_feature",
+        "kind_mismatch",
     ];
 
     pub fn name(&self) -> &'static str {
@@ -110,8 +156,9 @@ fn u64_at(b: &[u8], at: usize) -> u64 {
 }
 
 /// Parses and checks the structure of a bin datagram: header, magic,
-/// version, channel range and exact length. Unknown flag bits are kept but
-/// ignored, as PROTOCOL.md §1 says.
+/// version, kind, channel range, exact length and (features) that every
+/// value is finite. Unknown flag bits of version 1 are kept but ignored,
+/// as PROTOCOL.md §1 says.
 pub fn parse_bin(datagram: &[u8]) -> Result<BinHeader, RejectReason> {
     if datagram.len() < BIN_HEADER_LEN {
         return Err(RejectReason::TooShort {
@@ -122,14 +169,20 @@ pub fn parse_bin(datagram: &[u8]) -> Result<BinHeader, RejectReason> {
         return Err(RejectReason::BadMagic);
     }
     let version = u16_at(datagram, 4);
-    if version != PACKET_VERSION {
-        return Err(RejectReason::BadVersion { version });
-    }
+    let (kind, flags) = match version {
+        PACKET_VERSION => (BinKind::Counts, u32_at(datagram, 28)),
+        BIN_VERSION_WITH_KIND => match u32_at(datagram, 28) {
+            0 => (BinKind::Counts, 0),
+            1 => (BinKind::Features, 0),
+            kind => return Err(RejectReason::BadKind { kind }),
+        },
+        _ => return Err(RejectReason::BadVersion { version }),
+    };
     let channels = u16_at(datagram, 6);
     if channels == 0 || usize::from(channels) > MAX_CHANNELS {
         return Err(RejectReason::ChannelsOutOfRange { channels });
     }
-    let expected = BIN_HEADER_LEN + 2 * usize::from(channels);
+    let expected = BIN_HEADER_LEN + kind.value_len() * usize::from(channels);
     if datagram.len() != expected {
         return Err(RejectReason::LengthMismatch {
             len: datagram.len(),
@@ -137,22 +190,40 @@ pub fn parse_bin(datagram: &[u8]) -> Result<BinHeader, RejectReason> {
             expected,
         });
     }
+    if kind == BinKind::Features {
+        let body = &datagram[BIN_HEADER_LEN..];
+        if let Some(channel) = body
+            .chunks_exact(4)
+            .position(|b| !f32::from_le_bytes([b[0], b[1], b[2], b[3]]).is_finite())
+        {
+            return Err(RejectReason::NonFiniteFeature { channel });
+        }
+    }
     Ok(BinHeader {
         channels,
         seq: u64_at(datagram, 8),
         origin_ns: u64_at(datagram, 16),
         bin_us: u32_at(datagram, 24),
-        flags: u32_at(datagram, 28),
+        flags,
+        kind,
     })
 }
 
-/// [`parse_bin`], then the checks against the running model.
+/// [`parse_bin`], then the checks against the running model, which
+/// decodes bins of `kind`.
 pub fn parse_bin_for(
     datagram: &[u8],
+    kind: BinKind,
     n_channels: usize,
     bin_width: BinWidth,
 ) -> Result<BinHeader, RejectReason> {
     let header = parse_bin(datagram)?;
+    if header.kind != kind {
+        return Err(RejectReason::KindMismatch {
+            got: header.kind.name(),
+            expected: kind.name(),
+        });
+    }
     if usize::from(header.channels) != n_channels {
         return Err(RejectReason::ChannelMismatch {
             got: header.channels,
@@ -169,8 +240,8 @@ pub fn parse_bin_for(
     Ok(header)
 }
 
-/// Copies the counts of a datagram that [`parse_bin`] accepted into `out`
-/// (whose length must be the header's channel count).
+/// Copies the counts of a counts datagram that [`parse_bin`] accepted
+/// into `out` (whose length must be the header's channel count).
 pub fn read_counts(datagram: &[u8], out: &mut [u16]) {
     let body = &datagram[BIN_HEADER_LEN..BIN_HEADER_LEN + 2 * out.len()];
     for (c, pair) in out.iter_mut().zip(body.chunks_exact(2)) {
@@ -204,10 +275,29 @@ pub fn bin_datagram(counts: &[u16], bin_us: u32) -> Vec<u8> {
             origin_ns: 0,
             bin_us,
             flags: 0,
+            kind: BinKind::Counts,
         },
         counts,
         &mut out,
     );
+    out
+}
+
+/// A version 2 bin datagram of `kind` whose body is `body` (2 bytes a
+/// channel for counts, 4 for features, little-endian), seq and origin 0.
+pub fn bin_datagram_v2(kind: BinKind, channels: u16, body: &[u8], bin_us: u32) -> Vec<u8> {
+    let mut out = Vec::with_capacity(BIN_HEADER_LEN + body.len());
+    out.extend_from_slice(&BIN_MAGIC);
+    out.extend_from_slice(&BIN_VERSION_WITH_KIND.to_le_bytes());
+    out.extend_from_slice(&channels.to_le_bytes());
+    out.extend_from_slice(&[0; 16]);
+    out.extend_from_slice(&bin_us.to_le_bytes());
+    let k: u32 = match kind {
+        BinKind::Counts => 0,
+        BinKind::Features => 1,
+    };
+    out.extend_from_slice(&k.to_le_bytes());
+    out.extend_from_slice(body);
     out
 }
 
@@ -349,6 +439,7 @@ mod tests {
                 origin_ns: 11,
                 bin_us: 20_000,
                 flags: 0,
+                kind: BinKind::Counts,
             },
             counts,
             &mut out,
@@ -360,7 +451,13 @@ mod tests {
     fn bin_round_trip() {
         let bytes = bin(3, &[1, 0, 65535]);
         assert_eq!(bytes.len(), 38);
-        let h = parse_bin_for(&bytes, 3, BinWidth::from_us(20_000).unwrap()).unwrap();
+        let h = parse_bin_for(
+            &bytes,
+            BinKind::Counts,
+            3,
+            BinWidth::from_us(20_000).unwrap(),
+        )
+        .unwrap();
         assert_eq!((h.seq, h.origin_ns, h.bin_us), (7, 11, 20_000));
         let mut counts = [0u16; 3];
         read_counts(&bytes, &mut counts);
@@ -378,8 +475,8 @@ mod tests {
         m[0] = b'X';
         assert_eq!(parse_bin(&m), Err(RejectReason::BadMagic));
         let mut m = good.clone();
-        m[4] = 2;
-        assert_eq!(parse_bin(&m), Err(RejectReason::BadVersion { version: 2 }));
+        m[4] = 3;
+        assert_eq!(parse_bin(&m), Err(RejectReason::BadVersion { version: 3 }));
         let mut m = good.clone();
         m[6] = 0;
         m[7] = 0;
@@ -392,20 +489,85 @@ mod tests {
             Err(RejectReason::LengthMismatch { .. })
         ));
         assert!(matches!(
-            parse_bin_for(&good, 4, BinWidth::from_us(20_000).unwrap()),
+            parse_bin_for(
+                &good,
+                BinKind::Counts,
+                4,
+                BinWidth::from_us(20_000).unwrap()
+            ),
             Err(RejectReason::ChannelMismatch { .. })
         ));
         assert!(matches!(
-            parse_bin_for(&good, 3, BinWidth::from_us(10_000).unwrap()),
+            parse_bin_for(
+                &good,
+                BinKind::Counts,
+                3,
+                BinWidth::from_us(10_000).unwrap()
+            ),
             Err(RejectReason::BinWidthMismatch { .. })
         ));
+    }
+
+    /// Version 2 (PROTOCOL.md §1): kind 0 carries the same counts as
+    /// version 1; kind 1 carries f32 features (4 bytes a channel), every
+    /// one finite; any other kind is malformed; a bin of the other kind
+    /// than the model's is a mismatch with its own reason.
+    #[test]
+    fn version_2_carries_counts_or_features_by_kind() {
+        let w = BinWidth::from_us(20_000).unwrap();
+        let v1 = bin_datagram(&[1, 0, 65535], 20_000);
+        let body: Vec<u8> = [1u16, 0, 65535]
+            .iter()
+            .flat_map(|c| c.to_le_bytes())
+            .collect();
+        let v2 = bin_datagram_v2(BinKind::Counts, 3, &body, 20_000);
+        assert_eq!(v2.len(), v1.len());
+        let h = parse_bin_for(&v2, BinKind::Counts, 3, w).unwrap();
+        assert_eq!((h.kind, h.flags), (BinKind::Counts, 0));
+        let (mut a, mut b) = ([0u16; 3], [0u16; 3]);
+        read_counts(&v1, &mut a);
+        read_counts(&v2, &mut b);
+        assert_eq!(a, b);
+
+        let features: Vec<u8> = [0.5f32, -2.0, 1e6]
+            .iter()
+            .flat_map(|v| v.to_le_bytes())
+            .collect();
+        let f = bin_datagram_v2(BinKind::Features, 3, &features, 20_000);
+        assert_eq!(f.len(), 32 + 12);
+        assert_eq!(parse_bin(&f).unwrap().kind, BinKind::Features);
+        assert_eq!(
+            parse_bin_for(&f, BinKind::Counts, 3, w),
+            Err(RejectReason::KindMismatch {
+                got: "features",
+                expected: "counts"
+            })
+        );
+        // A features body as long as counts would be is the wrong length.
+        let short = bin_datagram_v2(BinKind::Features, 3, &body, 20_000);
+        assert!(matches!(
+            parse_bin(&short),
+            Err(RejectReason::LengthMismatch { expected: 44, .. })
+        ));
+        let mut nan = features.clone();
+        nan[4..8].copy_from_slice(&f32::NAN.to_le_bytes());
+        assert_eq!(
+            parse_bin(&bin_datagram_v2(BinKind::Features, 3, &nan, 20_000)),
+            Err(RejectReason::NonFiniteFeature { channel: 1 })
+        );
+        let mut odd = v2.clone();
+        odd[28..32].copy_from_slice(&2u32.to_le_bytes());
+        assert_eq!(parse_bin(&odd), Err(RejectReason::BadKind { kind: 2 }));
+        // Every reason has its own counter name.
+        let names: std::collections::BTreeSet<_> = RejectReason::NAMES.iter().collect();
+        assert_eq!(names.len(), N_REJECT_REASONS);
     }
 
     #[test]
     fn unknown_flag_bits_are_ignored() {
         let mut m = bin(1, &[4]);
         m[28..32].copy_from_slice(&0xdead_beefu32.to_le_bytes());
-        assert!(parse_bin_for(&m, 1, BinWidth::from_us(20_000).unwrap()).is_ok());
+        assert!(parse_bin_for(&m, BinKind::Counts, 1, BinWidth::from_us(20_000).unwrap()).is_ok());
     }
 
     #[test]

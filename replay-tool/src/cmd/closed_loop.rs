@@ -244,6 +244,7 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
                 origin_ns: daemon::sys::monotonic_ns(),
                 bin_us,
                 flags: 0,
+                kind: packet::BinKind::Counts,
             },
             &counts,
             &mut datagram,

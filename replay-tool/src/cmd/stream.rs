@@ -71,7 +71,7 @@ fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFil
                 )?);
             }
             LogRecord::Datagram { bytes, .. }
-                if packet::parse_bin_for(&bytes, n, bin_width).is_ok() =>
+                if packet::parse_bin_for(&bytes, packet::BinKind::Counts, n, bin_width).is_ok() =>
             {
                 let mut counts = vec![0u16; n];
                 packet::read_counts(&bytes, &mut counts);

@@ -11,6 +11,7 @@
 
 use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
 use decoder_core::fit::kalman::KalmanFitOptions;
+use decoder_core::fit::point_process::OneAfterAnother;
 use decoder_core::fit::wiener::WienerFitOptions;
 use decoder_core::sim::reaching::{SimOptions, simulate};
 
@@ -30,6 +31,7 @@ fn kalman_reaches_cc_08_on_ten_minutes_of_96_channels() {
             DecoderSpec::Wiener(WienerFitOptions::default()),
         ],
         5,
+        &OneAfterAnother,
         |_, _| {},
     )
     .unwrap();

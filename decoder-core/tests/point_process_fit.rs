@@ -4,6 +4,7 @@
 //! and explain the held-out spikes better. Also: the decoder decodes.
 
 use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
+use decoder_core::fit::point_process::OneAfterAnother;
 use decoder_core::fit::point_process::{HistoryOptions, PointProcessFitOptions};
 use decoder_core::sim::reaching::{SimOptions, simulate};
 
@@ -36,6 +37,7 @@ fn history_models_pass_the_ks_band_where_lnp_models_fail() {
             DecoderSpec::PointProcess(history),
         ],
         2,
+        &OneAfterAnother,
         |_, _| {},
     )
     .unwrap();

@@ -5,9 +5,14 @@
 //! marked not valid, by trials and by contiguous blocks, with chunks so
 //! small that every pair, tap and history term crosses a chunk boundary.
 
+use decoder_core::decoders::point_process::ChannelGlm;
+use decoder_core::fit::TrainError;
 use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
 use decoder_core::fit::kalman::{KalmanFitOptions, fit_kalman};
-use decoder_core::fit::point_process::{HistoryOptions, PointProcessFitOptions, fit_point_process};
+use decoder_core::fit::point_process::{
+    ChannelFits, ChannelLeftOut, HistoryOptions, OneAfterAnother, PointProcessFitOptions,
+    fit_channels, fit_point_process,
+};
 use decoder_core::fit::wiener::{WienerFitOptions, fit_wiener};
 use decoder_core::formats::block::{Block, TRIALS_FILE};
 use decoder_core::formats::block_rows::{BlockFiles, BlockRows, data_sha256};
@@ -62,36 +67,80 @@ fn block_with_gaps() -> Block {
     block
 }
 
+/// Channels dealt to two threads, each group in its own passes, as the
+/// tool's fits run on a rig PC's cores.
+struct TwoThreads;
+
+impl ChannelFits for TwoThreads {
+    fn fit(
+        &self,
+        rows: &(dyn BlockRows + Sync),
+        options: &PointProcessFitOptions,
+        n: usize,
+    ) -> Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, TrainError> {
+        let (even, odd): (Vec<usize>, Vec<usize>) = (0..n).partition(|c| c % 2 == 0);
+        let (a, b) = std::thread::scope(|s| {
+            let a = s.spawn(|| fit_channels(rows, options, &even));
+            let b = s.spawn(|| fit_channels(rows, options, &odd));
+            (a.join().unwrap(), b.join().unwrap())
+        });
+        let (mut a, mut b) = (a?.into_iter(), b?.into_iter());
+        Ok((0..n)
+            .map(|c| if c % 2 == 0 { a.next() } else { b.next() }.unwrap())
+            .collect())
+    }
+}
+
+/// Cross-validation whose point-process fits run on two threads gives the
+/// bits it gives on one.
+#[test]
+fn evaluation_with_fits_on_two_threads_equals_one() {
+    let block = block_with_gaps();
+    let dir = tempfile::tempdir().unwrap();
+    block.write(dir.path()).unwrap();
+    let files = BlockFiles::open_with_chunk(dir.path(), 5).unwrap();
+    let one = cross_validate(&files, &specs(), 3, &OneAfterAnother, |_, _| {}).unwrap();
+    let two = cross_validate(&files, &specs(), 3, &TwoThreads, |_, _| {}).unwrap();
+    assert_eq!(two, one);
+}
+
 #[test]
 fn evaluation_from_files_equals_evaluation_in_memory() {
     let block = block_with_gaps();
     let dir = tempfile::tempdir().unwrap();
     block.write(dir.path()).unwrap();
-    let memory = cross_validate(&block.valid_only(), &specs(), 3, |_, _| {}).unwrap();
+    let memory = cross_validate(
+        &block.valid_only(),
+        &specs(),
+        3,
+        &OneAfterAnother,
+        |_, _| {},
+    )
+    .unwrap();
     assert_eq!(memory.decoders.len(), 5);
     assert!(memory.by_trial);
     // A point-process decoder's fit is scored on every channel.
     assert!(memory.goodness.iter().all(|g| g.channels.len() == 6));
     for chunk in [5, 4096] {
         let files = BlockFiles::open_with_chunk(dir.path(), chunk).unwrap();
-        let streamed = cross_validate(&files, &specs(), 3, |_, _| {}).unwrap();
+        let streamed = cross_validate(&files, &specs(), 3, &OneAfterAnother, |_, _| {}).unwrap();
         assert_eq!(streamed, memory, "chunks of {chunk} rows");
     }
     // The block with its mask, in memory, passes over the same rows.
     assert_eq!(
-        cross_validate(&block, &specs(), 3, |_, _| {}).unwrap(),
+        cross_validate(&block, &specs(), 3, &OneAfterAnother, |_, _| {}).unwrap(),
         memory
     );
 
     // Without trials: contiguous folds.
     std::fs::remove_file(dir.path().join(TRIALS_FILE)).unwrap();
     let files = BlockFiles::open_with_chunk(dir.path(), 7).unwrap();
-    let streamed = cross_validate(&files, &specs(), 4, |_, _| {}).unwrap();
+    let streamed = cross_validate(&files, &specs(), 4, &OneAfterAnother, |_, _| {}).unwrap();
     let no_trials = Block {
         trials: None,
         ..block.valid_only()
     };
-    let memory = cross_validate(&no_trials, &specs(), 4, |_, _| {}).unwrap();
+    let memory = cross_validate(&no_trials, &specs(), 4, &OneAfterAnother, |_, _| {}).unwrap();
     assert!(!memory.by_trial);
     assert_eq!(streamed, memory);
 }

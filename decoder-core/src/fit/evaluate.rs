@@ -20,7 +20,7 @@ use crate::fit::kalman::{
     KalmanFitOptions, KalmanStats, check_options, fill_state, fit_from_stats, state_sources,
 };
 use crate::fit::metrics::{ScoreSums, Scores, mean_scores};
-use crate::fit::point_process::{PointProcessFitOptions, fit_point_process};
+use crate::fit::point_process::{ChannelFits, PointProcessFitOptions, fit_point_process_with};
 use crate::fit::rows::{SegmentWalk, Without, each_row};
 use crate::fit::wiener::{WienerFitOptions, WienerStats, fit_wiener_from_stats, output_columns};
 use crate::formats::block_rows::{BlockInfo, BlockRows};
@@ -131,10 +131,11 @@ const TRACE_BINS: usize = 1500;
 
 /// Per-fold fitted models for one decoder spec; `on_fold` after each.
 fn fit_per_fold(
-    session: &dyn BlockRows,
+    session: &(dyn BlockRows + Sync),
     info: &BlockInfo,
     spec: &DecoderSpec,
     plan: &FoldPlan,
+    fits: &dyn ChannelFits,
     on_fold: &mut dyn FnMut(&str, usize),
 ) -> Result<Vec<DecoderModel>, TrainError> {
     let k = plan.k();
@@ -182,8 +183,8 @@ fn fit_per_fold(
             .map(|f| {
                 // The other folds' pieces, joined end to end.
                 let training = Without::new(session, plan.pieces[f].clone());
-                let model =
-                    fit_point_process(&training, opts).map(|(m, _)| DecoderModel::PointProcess(m));
+                let model = fit_point_process_with(&training, opts, fits)
+                    .map(|(m, _)| DecoderModel::PointProcess(m));
                 on_fold(spec.name(), f);
                 model
             })
@@ -323,9 +324,10 @@ fn decode_held_out(
 /// ([`crate::formats::block_rows::BlockFiles`]), and the result is the same
 /// bits as for the block in memory.
 pub fn cross_validate(
-    session: &dyn BlockRows,
+    session: &(dyn BlockRows + Sync),
     specs: &[DecoderSpec],
     k: usize,
+    fits: &dyn ChannelFits,
     mut on_fold: impl FnMut(&str, usize),
 ) -> Result<Evaluation, TrainError> {
     let info = session.info();
@@ -338,7 +340,7 @@ pub fn cross_validate(
     let mut goodness = Vec::new();
     for spec in specs {
         let cols = output_columns(&info, spec.outputs())?;
-        let models = fit_per_fold(session, &info, spec, &plan, &mut on_fold)?;
+        let models = fit_per_fold(session, &info, spec, &plan, fits, &mut on_fold)?;
         if let Some(g) = goodness_of_fit(session, &info, spec, &plan, &models)? {
             goodness.push(g);
         }

@@ -492,6 +492,47 @@ pub fn assemble(
     ))
 }
 
+/// How a point-process fit's channels are fitted: each channel's GLM is
+/// independent of the others.
+pub trait ChannelFits: Sync {
+    /// One fit per channel `0..n_channels`, in order.
+    fn fit(
+        &self,
+        rows: &(dyn BlockRows + Sync),
+        options: &PointProcessFitOptions,
+        n_channels: usize,
+    ) -> Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, TrainError>;
+}
+
+/// Every channel in the same passes, on the caller's thread.
+pub struct OneAfterAnother;
+
+impl ChannelFits for OneAfterAnother {
+    fn fit(
+        &self,
+        rows: &(dyn BlockRows + Sync),
+        options: &PointProcessFitOptions,
+        n_channels: usize,
+    ) -> Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, TrainError> {
+        fit_channels(rows, options, &(0..n_channels).collect::<Vec<_>>())
+    }
+}
+
+/// Fits the point-process decoder with `fits` doing the channels.
+pub fn fit_point_process_with(
+    rows: &(dyn BlockRows + Sync),
+    options: &PointProcessFitOptions,
+    fits: &dyn ChannelFits,
+) -> Result<(PointProcessModel, PointProcessFitReport), TrainError> {
+    let info = rows.info();
+    if !info.has_kinematics {
+        return Err(TrainError::NoKinematics);
+    }
+    state_sources(&info.kinematic_names, &options.state)?;
+    let channels = fits.fit(rows, options, info.n_channels)?;
+    assemble(rows, options, channels)
+}
+
 /// Fits every channel, side by side in the same passes (see
 /// [`fit_channels`] to run groups of channels in parallel).
 pub fn fit_point_process(

@@ -143,13 +143,13 @@ impl<T: Copy> SegmentWalk<T> {
 /// A block with the rows of `left_out` removed and the rest numbered end to
 /// end: what a fold trains on. It has no trials.
 pub struct Without<'a> {
-    inner: &'a dyn BlockRows,
+    inner: &'a (dyn BlockRows + Sync),
     /// Sorted, disjoint.
     left_out: Vec<Range<usize>>,
 }
 
 impl<'a> Without<'a> {
-    pub fn new(inner: &'a dyn BlockRows, mut left_out: Vec<Range<usize>>) -> Without<'a> {
+    pub fn new(inner: &'a (dyn BlockRows + Sync), mut left_out: Vec<Range<usize>>) -> Without<'a> {
         left_out.retain(|r| !r.is_empty());
         left_out.sort_by_key(|r| r.start);
         Without { inner, left_out }

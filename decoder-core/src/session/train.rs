@@ -11,15 +11,12 @@
 use serde::Serialize;
 
 use crate::decoders::DecoderModel;
-use crate::decoders::point_process::{ChannelGlm, PointProcessModel};
 use crate::fit::TrainError;
 use crate::fit::evaluate::{DecoderSpec, Evaluation, cross_validate};
 use crate::fit::intention::{Reestimated, reestimate_intention};
-use crate::fit::kalman::{KalmanFitOptions, KalmanFitReport, fit_kalman, state_sources};
+use crate::fit::kalman::{KalmanFitOptions, KalmanFitReport, fit_kalman};
 use crate::fit::metrics::Scores;
-use crate::fit::point_process::{
-    ChannelLeftOut, PointProcessFitOptions, PointProcessFitReport, assemble, fit_channels,
-};
+use crate::fit::point_process::{PointProcessFitOptions, PointProcessFitReport};
 use crate::fit::wiener::{WienerFitOptions, fit_wiener};
 use crate::formats::block::Block;
 use crate::formats::block_rows::{BlockRows, data_sha256};
@@ -59,46 +56,7 @@ pub struct Stamp {
     pub tool_version: String,
 }
 
-/// How a point-process fit's channels are fitted: each channel's GLM is
-/// independent of the others.
-pub trait ChannelFits: Sync {
-    /// One fit per channel `0..n_channels`, in order.
-    fn fit(
-        &self,
-        rows: &(dyn BlockRows + Sync),
-        options: &PointProcessFitOptions,
-        n_channels: usize,
-    ) -> Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, TrainError>;
-}
-
-/// Every channel in the same passes, on the caller's thread.
-pub struct OneAfterAnother;
-
-impl ChannelFits for OneAfterAnother {
-    fn fit(
-        &self,
-        rows: &(dyn BlockRows + Sync),
-        options: &PointProcessFitOptions,
-        n_channels: usize,
-    ) -> Result<Vec<Result<ChannelGlm, ChannelLeftOut>>, TrainError> {
-        fit_channels(rows, options, &(0..n_channels).collect::<Vec<_>>())
-    }
-}
-
-/// Fits the point-process decoder with `fits` doing the channels.
-pub fn fit_point_process_with(
-    rows: &(dyn BlockRows + Sync),
-    options: &PointProcessFitOptions,
-    fits: &dyn ChannelFits,
-) -> Result<(PointProcessModel, PointProcessFitReport), TrainError> {
-    let info = rows.info();
-    if !info.has_kinematics {
-        return Err(TrainError::NoKinematics);
-    }
-    state_sources(&info.kinematic_names, &options.state)?;
-    let channels = fits.fit(rows, options, info.n_channels)?;
-    assemble(rows, options, channels)
-}
+pub use crate::fit::point_process::{ChannelFits, OneAfterAnother, fit_point_process_with};
 
 /// Trains `spec` on `rows`; with `folds`, cross-validates it first for the
 /// provenance (`on_fold` after each fold).
@@ -144,7 +102,7 @@ pub fn train(
     };
     let cv = match folds {
         Some(k) => {
-            let eval = cross_validate(rows, std::slice::from_ref(spec), k, |_, _| on_fold())?;
+            let eval = cross_validate(rows, std::slice::from_ref(spec), k, fits, |_, _| on_fold())?;
             Some(cross_validation(&eval))
         }
         None => None,

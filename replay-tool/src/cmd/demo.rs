@@ -18,6 +18,8 @@ use anyhow::{Context, Result};
 use decoder_core::Block;
 use decoder_core::fit::config::TrainConfig;
 use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
+
+use super::train::SideBySide;
 use decoder_core::formats::log_replay::replay_log;
 use decoder_core::formats::session_log::LogReader;
 use decoder_core::sim::reaching::{SimOptions, simulate};
@@ -94,7 +96,7 @@ pub fn run(args: &Args) -> Result<()> {
 
     let specs = [kalman, DecoderSpec::Wiener(cfg.wiener.clone())];
     let pb = progress::bar((cfg.folds * specs.len()) as u64, "evaluate");
-    let eval = cross_validate(&cal, &specs, cfg.folds, |_, _| pb.inc(1))?;
+    let eval = cross_validate(&cal, &specs, cfg.folds, &SideBySide, |_, _| pb.inc(1))?;
     pb.finish_and_clear();
     let report = out.join("report");
     evaluate::write_report(&report, &eval, cal.bin_width.ms())?;

@@ -9,6 +9,8 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result};
 use decoder_core::fit::evaluate::{DecoderSpec, Evaluation, cross_validate};
+
+use super::train::SideBySide;
 use decoder_core::formats::block_rows::BlockRows;
 
 use super::train::{DecoderKind, config_with_overrides, spec_for};
@@ -88,7 +90,7 @@ pub fn run(args: &Args) -> Result<()> {
         super::warn_unused_kinematics(&info.kinematic_names, session_path, spec);
     }
     let pb = progress::bar((folds * specs.len()) as u64, "evaluate");
-    let eval = cross_validate(&session.rows, &specs, folds, |_, _| pb.inc(1))
+    let eval = cross_validate(&session.rows, &specs, folds, &SideBySide, |_, _| pb.inc(1))
         .with_context(|| format!("evaluating on {}", session_path.display()))?;
     pb.finish_and_clear();
     print!("{}", table(&eval));

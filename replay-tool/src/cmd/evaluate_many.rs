@@ -13,6 +13,8 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
 use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
+
+use super::train::SideBySide;
 use decoder_core::fit::metrics::Scores;
 use decoder_core::formats::block_rows::BlockRows;
 use serde::{Deserialize, Serialize};
@@ -180,7 +182,7 @@ pub fn run_shard(
 
 fn evaluate_one(path: &Path, specs: &[DecoderSpec], folds: usize) -> Result<SessionResult> {
     let session = Session::at(path)?.rows_with_kinematics()?;
-    let eval = cross_validate(&session.rows, specs, folds, |_, _| {})?;
+    let eval = cross_validate(&session.rows, specs, folds, &SideBySide, |_, _| {})?;
     Ok(SessionResult {
         index: 0,
         session: path.display().to_string(),

@@ -25,8 +25,28 @@ pub struct FoldPlan {
 }
 
 impl FoldPlan {
-    /// `k` folds: contiguous runs of trials, or contiguous blocks of bins.
+    /// `k` folds: contiguous runs of trials, or contiguous blocks of bins;
+    /// every piece and held-out segment cut at the block's edges, so no
+    /// fold pairs rows, or decodes on, across one.
     pub fn new(session: &BlockInfo, k: usize) -> Result<FoldPlan, TrainError> {
+        let mut plan = Self::uncut(session, k)?;
+        if !session.edges.is_empty() {
+            let cut = |segs: &mut Vec<Vec<Range<usize>>>| {
+                for f in segs.iter_mut() {
+                    *f = f
+                        .iter()
+                        .flat_map(|r| cut_at(r.clone(), &session.edges))
+                        .collect();
+                }
+            };
+            cut(&mut plan.held_out);
+            cut(&mut plan.pieces);
+        }
+        Ok(plan)
+    }
+
+    /// `k` folds: contiguous runs of trials, or contiguous blocks of bins.
+    fn uncut(session: &BlockInfo, k: usize) -> Result<FoldPlan, TrainError> {
         if k < 2 {
             return Err(TrainError::Option {
                 key: "folds",
@@ -112,6 +132,18 @@ impl FoldPlan {
         out.sort_by_key(|r| r.start);
         out
     }
+}
+
+/// `r` cut at every edge inside it.
+fn cut_at(r: Range<usize>, edges: &[usize]) -> Vec<Range<usize>> {
+    let mut out = Vec::new();
+    let mut start = r.start;
+    for &e in edges.iter().filter(|&&e| e > r.start && e < r.end) {
+        out.push(start..e);
+        start = e;
+    }
+    out.push(start..r.end);
+    out
 }
 
 /// `len` items into `k` contiguous ranges whose sizes differ by at most one.

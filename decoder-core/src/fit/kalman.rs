@@ -299,8 +299,8 @@ pub fn fit_kalman(
     session: &dyn BlockRows,
     options: &KalmanFitOptions,
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
-    let n_bins = session.info().n_bins;
-    fit_kalman_segments(session, options, std::slice::from_ref(&(0..n_bins)))
+    // One segment a block: no pair of bins across a block's edge.
+    fit_kalman_segments(session, options, &session.info().runs())
 }
 
 /// Fits on `segments` of the block, no pair of bins crossing from one

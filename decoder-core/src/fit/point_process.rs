@@ -162,7 +162,19 @@ impl<'a> ChannelDesigns<'a> {
         };
         let mut previous: Option<Vec<u16>> = None;
         let mut ahead = vec![0usize; span];
+        let edges = &info.edges;
+        let mut next_edge = 0;
         each_row(self.source, k, |t, counts, kin| {
+            if edges.get(next_edge) == Some(&t) {
+                // Another block starts: nothing before it reaches its
+                // rows, as history or as coupling.
+                next_edge += 1;
+                for lag in 0..span {
+                    let at = ((t + lag) % slots) * width;
+                    batch.designs[at..at + width].fill(0.0);
+                }
+                previous = None;
+            }
             fill_state(kin, &self.sources, &mut state);
             if batch.rows == 0 {
                 batch.first = t;

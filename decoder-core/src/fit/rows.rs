@@ -164,7 +164,17 @@ impl BlockRows for Without<'_> {
             .iter()
             .map(|r| r.end.min(info.n_bins).saturating_sub(r.start))
             .sum();
+        // Edges keep their place among the kept rows.
+        let before = |row: usize| -> usize {
+            self.left_out
+                .iter()
+                .map(|r| r.end.min(row).saturating_sub(r.start))
+                .sum()
+        };
+        info.edges = info.edges.iter().map(|&e| e - before(e)).collect();
+        info.edges.dedup();
         info.n_bins -= removed;
+        info.edges.retain(|&e| e > 0 && e < info.n_bins);
         info.trials = None;
         info
     }

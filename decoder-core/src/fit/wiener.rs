@@ -146,8 +146,8 @@ pub fn fit_wiener(
     session: &dyn BlockRows,
     options: &WienerFitOptions,
 ) -> Result<WienerModel, TrainError> {
-    let n_bins = session.info().n_bins;
-    fit_wiener_segments(session, options, std::slice::from_ref(&(0..n_bins)))
+    // One segment a block: no taps across a block's edge.
+    fit_wiener_segments(session, options, &session.info().runs())
 }
 
 pub fn fit_wiener_segments(

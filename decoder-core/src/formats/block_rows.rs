@@ -30,9 +30,29 @@ pub struct BlockInfo {
     pub has_kinematics: bool,
     /// Trials on the valid rows' numbering.
     pub trials: Option<Vec<Trial>>,
+    /// Valid rows at which another block starts, in increasing order
+    /// (several blocks trained as one, [`Joined`]): no fit pairs a row with
+    /// one before its edge, and no history reaches across it.
+    pub edges: Vec<usize>,
 }
 
 impl BlockInfo {
+    /// `0..n_bins` cut at the edges: the runs within which rows pair.
+    pub fn runs(&self) -> Vec<std::ops::Range<usize>> {
+        let mut cuts = vec![0];
+        cuts.extend(
+            self.edges
+                .iter()
+                .copied()
+                .filter(|&e| e > 0 && e < self.n_bins),
+        );
+        cuts.push(self.n_bins);
+        cuts.windows(2)
+            .filter(|w| w[1] > w[0])
+            .map(|w| w[0]..w[1])
+            .collect()
+    }
+
     /// Index of a kinematics column by name.
     pub fn kinematic_index(&self, name: &str) -> Option<usize> {
         self.kinematic_names.iter().position(|n| n == name)
@@ -113,6 +133,7 @@ impl BlockRows for Block {
                 (Some(t), Some(_)) => Some(renumber_trials(t, kept)),
                 (t, _) => t.clone(),
             },
+            edges: Vec::new(),
         }
     }
 
@@ -321,6 +342,7 @@ impl BlockFiles {
                 kinematic_names: manifest.kinematic_names,
                 has_kinematics,
                 trials,
+                edges: Vec::new(),
             },
             file_bins,
             has_valid,
@@ -461,6 +483,123 @@ impl BlockFiles {
             };
             visit(&mut c, &mut x, flags);
         }
+    }
+}
+
+/// Several blocks trained as one calibration set (`train --session A
+/// --session B …`): their valid rows numbered end to end, each block's
+/// first row an edge ([`BlockInfo::edges`]) so no row is paired across
+/// it, trials carried over on the joined numbering.
+pub struct Joined<'a> {
+    parts: Vec<&'a (dyn BlockRows + Sync)>,
+    infos: Vec<BlockInfo>,
+}
+
+/// Why blocks cannot be trained as one: the first one that differs.
+#[derive(Debug, thiserror::Error)]
+#[error("block {index} ({what}) differs from the first block: {problem}")]
+pub struct JoinError {
+    pub index: usize,
+    pub what: String,
+    pub problem: String,
+}
+
+impl<'a> Joined<'a> {
+    /// `parts` with a name each (for the error), in order.
+    pub fn new(parts: Vec<(String, &'a (dyn BlockRows + Sync))>) -> Result<Joined<'a>, JoinError> {
+        let infos: Vec<BlockInfo> = parts.iter().map(|(_, p)| p.info()).collect();
+        for (i, ((name, _), info)) in parts.iter().zip(&infos).enumerate().skip(1) {
+            let first = &infos[0];
+            let problem = if info.n_channels != first.n_channels {
+                Some(format!(
+                    "{} channels, not {}",
+                    info.n_channels, first.n_channels
+                ))
+            } else if info.bin_width != first.bin_width {
+                Some(format!(
+                    "{} ms bins, not {} ms",
+                    info.bin_width.ms(),
+                    first.bin_width.ms()
+                ))
+            } else if info.kinematic_names != first.kinematic_names {
+                Some(format!(
+                    "kinematics {:?}, not {:?}",
+                    info.kinematic_names, first.kinematic_names
+                ))
+            } else if info.has_kinematics != first.has_kinematics {
+                Some("one has kinematics and the other not".into())
+            } else {
+                None
+            };
+            if let Some(problem) = problem {
+                return Err(JoinError {
+                    index: i + 1,
+                    what: name.clone(),
+                    problem,
+                });
+            }
+        }
+        Ok(Joined {
+            parts: parts.into_iter().map(|(_, p)| p).collect(),
+            infos,
+        })
+    }
+
+    /// The first valid row of each block.
+    pub fn starts(&self) -> Vec<usize> {
+        self.infos
+            .iter()
+            .scan(0, |at, i| {
+                let s = *at;
+                *at += i.n_bins;
+                Some(s)
+            })
+            .collect()
+    }
+}
+
+impl BlockRows for Joined<'_> {
+    fn info(&self) -> BlockInfo {
+        let starts = self.starts();
+        let mut info = self.infos[0].clone();
+        info.n_bins = self.infos.iter().map(|i| i.n_bins).sum();
+        info.trials = if self.infos.iter().all(|i| i.trials.is_some()) {
+            Some(
+                self.infos
+                    .iter()
+                    .zip(&starts)
+                    .flat_map(|(i, &s)| {
+                        i.trials.iter().flatten().map(move |t| Trial {
+                            start_bin: t.start_bin + s,
+                            end_bin: t.end_bin + s,
+                            ..t.clone()
+                        })
+                    })
+                    .collect(),
+            )
+        } else {
+            None
+        };
+        info.edges = self
+            .infos
+            .iter()
+            .zip(&starts)
+            .flat_map(|(i, &s)| std::iter::once(s).chain(i.edges.iter().map(move |e| e + s)))
+            .filter(|&e| e > 0)
+            .collect();
+        info
+    }
+
+    fn pass(&self, visit: &mut dyn FnMut(RowChunk<'_>)) -> Result<(), BlockError> {
+        for (part, offset) in self.parts.iter().zip(self.starts()) {
+            part.pass(&mut |chunk: RowChunk<'_>| {
+                visit(RowChunk {
+                    first: chunk.first + offset,
+                    ..chunk
+                })
+            })?;
+        }
+        Ok(())
     }
 }
 

@@ -48,12 +48,28 @@ pub struct Trained {
     pub fit: FitRecord,
 }
 
-/// Who trained, and when: the core reads no clock.
+/// Who trained, when, and on what: the core reads no clock and opens no
+/// file.
 #[derive(Clone, Debug)]
 pub struct Stamp {
     /// RFC 3339 UTC.
     pub trained_at: String,
     pub tool_version: String,
+    /// The calibration blocks, in order, when there are several (written
+    /// into the fit document as `blocks`; a model of one block names it by
+    /// its data hash alone, as before).
+    pub blocks: Vec<BlockSource>,
+}
+
+/// One calibration block of several trained as one.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct BlockSource {
+    /// The session directory or log, as given.
+    pub session: String,
+    /// Its valid rows: what training used.
+    pub rows: usize,
+    /// Its [`data_sha256`].
+    pub data_sha256: String,
 }
 
 pub use crate::fit::point_process::{ChannelFits, OneAfterAnother, fit_point_process_with};
@@ -114,7 +130,7 @@ pub fn train(
             trained_at: stamp.trained_at.clone(),
             tool_version: stamp.tool_version.clone(),
             data_sha256: data_sha256(rows)?,
-            fit_document: serde_json::to_string(&fit).expect("a fit record serialises"),
+            fit_document: fit_document(&fit, &stamp.blocks),
             silent_channels,
             cv,
         },
@@ -144,6 +160,21 @@ pub fn train_refit(
     }
     let (refit, counts) = reestimate_intention(block, target_radius)?;
     Ok((train(&refit, spec, folds, stamp, fits, on_fold)?, counts))
+}
+
+/// The fit record as JSON, with the blocks when there are several.
+fn fit_document(fit: &FitRecord, blocks: &[BlockSource]) -> String {
+    if blocks.len() < 2 {
+        return serde_json::to_string(fit).expect("a fit record serialises");
+    }
+    let mut doc = serde_json::to_value(fit).expect("a fit record serialises");
+    if let Some(o) = doc.as_object_mut() {
+        o.insert(
+            "blocks".into(),
+            serde_json::to_value(blocks).expect("blocks serialise"),
+        );
+    }
+    serde_json::to_string(&doc).expect("a JSON value serialises")
 }
 
 fn cross_validation(eval: &Evaluation) -> CrossValidation {

@@ -10,11 +10,13 @@ use decoder_core::decoders::point_process::ChannelGlm;
 use decoder_core::fit::config::TrainConfig;
 use decoder_core::fit::evaluate::DecoderSpec;
 use decoder_core::fit::point_process::{ChannelLeftOut, PointProcessFitOptions, fit_channels};
-use decoder_core::formats::block_rows::BlockRows;
+use decoder_core::formats::block_rows::{BlockRows, Joined, data_sha256};
 use decoder_core::formats::log_block::LogBlockSummary;
 use decoder_core::formats::model_file::ModelFile;
 use decoder_core::session::open::Session;
-use decoder_core::session::train::{ChannelFits, FitRecord, Stamp, Trained, train, train_refit};
+use decoder_core::session::train::{
+    BlockSource, ChannelFits, FitRecord, Stamp, Trained, train, train_refit,
+};
 
 use crate::output::write_atomic;
 use crate::progress;
@@ -30,9 +32,11 @@ pub enum DecoderKind {
 pub struct Args {
     /// Calibration block: a session directory with kinematics, or a
     /// session log recorded with task packets (with --refit, a closed-loop
-    /// block or log with cursor, shown velocity and targets).
-    #[arg(long)]
-    pub session: PathBuf,
+    /// block or log with cursor, shown velocity and targets). Give it
+    /// several times to train on the blocks together (same channels and
+    /// bin width; no row is paired across a block's edge).
+    #[arg(long, required = true)]
+    pub session: Vec<PathBuf>,
     /// Retrain from a closed-loop block or log (such as the session log
     /// `replay-tool closed-loop` records) with intention re-estimation:
     /// decoded velocity turned toward the target, zero inside it (Gilja et
@@ -97,6 +101,7 @@ pub fn stamp() -> Stamp {
     Stamp {
         trained_at: humantime::format_rfc3339_seconds(std::time::SystemTime::now()).to_string(),
         tool_version: env!("CARGO_PKG_VERSION").to_string(),
+        blocks: Vec::new(),
     }
 }
 
@@ -165,8 +170,17 @@ pub fn train_with_progress(
     spec: &DecoderSpec,
     folds: Option<usize>,
 ) -> Result<Trained> {
+    train_stamped(rows, spec, folds, &stamp())
+}
+
+fn train_stamped(
+    rows: &(dyn BlockRows + Sync),
+    spec: &DecoderSpec,
+    folds: Option<usize>,
+    stamp: &Stamp,
+) -> Result<Trained> {
     with_fold_progress(folds, |on_fold| {
-        train(rows, spec, folds, &stamp(), &SideBySide, on_fold)
+        train(rows, spec, folds, stamp, &SideBySide, on_fold)
     })
 }
 
@@ -180,9 +194,18 @@ pub fn run(args: &Args) -> Result<()> {
         cfg.point_process.coupling = false;
     }
     let spec = spec_for(args.decoder, &cfg);
-    let source = &args.session;
-    let session = Session::at(source)?;
     let folds = if args.no_cv { None } else { Some(cfg.folds) };
+    if args.session.len() > 1 {
+        if args.refit {
+            bail!(
+                "--refit retrains from one closed-loop block or log; give --session once (or refit each and train on the refit blocks)"
+            );
+        }
+        let trained = train_several(&args.session, &spec, folds)?;
+        return write_model(args, trained, &describe_sessions(&args.session));
+    }
+    let source = &args.session[0];
+    let session = Session::at(source)?;
     let trained = if args.refit {
         let opened = session.block_with_kinematics()?;
         if let Some(s) = &opened.from_log {
@@ -221,15 +244,69 @@ pub fn run(args: &Args) -> Result<()> {
         train_with_progress(&opened.rows, &spec, folds)
             .with_context(|| format!("training on {}", source.display()))?
     };
+    write_model(args, trained, &source.display().to_string())
+}
+
+fn describe_sessions(sessions: &[PathBuf]) -> String {
+    format!(
+        "{} blocks ({})",
+        sessions.len(),
+        sessions
+            .iter()
+            .map(|s| s.display().to_string())
+            .collect::<Vec<_>>()
+            .join(", ")
+    )
+}
+
+/// Trains on several blocks as one calibration set: each opened and read
+/// in passes as a single block is, joined end to end with no row paired
+/// across a block's edge, every block named in the model's provenance.
+fn train_several(
+    sessions: &[PathBuf],
+    spec: &DecoderSpec,
+    folds: Option<usize>,
+) -> Result<Trained> {
+    let mut opened = Vec::with_capacity(sessions.len());
+    for source in sessions {
+        let rows = Session::at(source)?.rows_with_kinematics()?;
+        if let Some(s) = &rows.from_log {
+            print_log_rows(source, s);
+        }
+        super::warn_unused_kinematics(&rows.rows.info().kinematic_names, source, spec);
+        opened.push(rows);
+    }
+    let mut blocks = Vec::with_capacity(sessions.len());
+    for (source, o) in sessions.iter().zip(&opened) {
+        blocks.push(BlockSource {
+            session: source.display().to_string(),
+            rows: o.rows.info().n_bins,
+            data_sha256: data_sha256(&o.rows)
+                .with_context(|| format!("reading {}", source.display()))?,
+        });
+    }
+    let joined = Joined::new(
+        sessions
+            .iter()
+            .zip(&opened)
+            .map(|(s, o)| (s.display().to_string(), &o.rows as &(dyn BlockRows + Sync)))
+            .collect(),
+    )
+    .context("--session blocks are trained as one calibration set")?;
+    for b in &blocks {
+        println!("   block {}: {} rows", b.session, b.rows);
+    }
+    let stamp = Stamp { blocks, ..stamp() };
+    train_stamped(&joined, spec, folds, &stamp)
+        .with_context(|| format!("training on {}", describe_sessions(sessions)))
+}
+
+fn write_model(args: &Args, trained: Trained, source: &str) -> Result<()> {
     let model = trained.model;
     // Never write a file its readers would refuse.
     let bytes = model.to_bytes();
-    ModelFile::from_bytes(&bytes, &args.out.display().to_string()).with_context(|| {
-        format!(
-            "the model trained on {} cannot be written",
-            source.display()
-        )
-    })?;
+    ModelFile::from_bytes(&bytes, &args.out.display().to_string())
+        .with_context(|| format!("the model trained on {source} cannot be written",))?;
     write_atomic(&args.out, &bytes)?;
     println!(
         "wrote {} ({} decoder, {} channels, {} ms bins)",

@@ -247,3 +247,75 @@ fn demo_runs_the_daemon_live_and_the_recording_replays() {
         .expect("the recording's path");
     assert!(Path::new(log).is_file(), "{log}");
 }
+
+/// `train --session A --session B` trains on both blocks as one
+/// calibration set, names each in the model's provenance, and refuses
+/// blocks that cannot be joined with the reason and the block.
+#[test]
+fn several_sessions_train_one_decoder_and_the_model_names_each() {
+    let dir = tempfile::tempdir().unwrap();
+    let a = fixture::block("1", "16", &[]);
+    let b = fixture::block("1", "16", &["--seed", "9"]);
+    let model = dir.path().join("ab.model");
+    let said = ok(&[
+        "train",
+        "--session",
+        p(&a),
+        "--session",
+        p(&b),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+    ]);
+    assert!(
+        said.contains(&format!("block {}: 3000 rows", p(&b))),
+        "{said}"
+    );
+    let shown: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+    let blocks = shown["fit"]["blocks"].as_array().unwrap();
+    let rows = |block: &Path| decoder_core::Block::read(block).unwrap().n_bins as u64;
+    assert_eq!(blocks.len(), 2, "{shown}");
+    assert_eq!(blocks[0]["session"].as_str().unwrap(), p(&a));
+    assert_eq!(blocks[1]["rows"].as_u64().unwrap(), rows(&b));
+    assert_ne!(blocks[0]["data_sha256"], blocks[1]["data_sha256"]);
+    // Cross-validated on the joined blocks.
+    assert!(shown["cv"]["folds"].as_u64().unwrap() >= 2);
+
+    let other = fixture::block("1", "8", &[]);
+    let err = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&a),
+            "--session",
+            p(&other),
+            "--decoder",
+            "kalman",
+            "--out",
+            p(&dir.path().join("x.model")),
+        ],
+        2,
+    );
+    assert!(
+        err.contains("block 2") && err.contains("8 channels, not 16"),
+        "{err}"
+    );
+    let err = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&a),
+            "--session",
+            p(&b),
+            "--refit",
+            "--decoder",
+            "kalman",
+            "--out",
+            p(&dir.path().join("y.model")),
+        ],
+        2,
+    );
+    assert!(err.contains("--refit") && err.contains("once"), "{err}");
+}

@@ -18,6 +18,7 @@ use rand_distr::{Distribution, Normal};
 
 use crate::formats::block::{Block, Trial};
 use crate::linalg::Mat;
+use crate::sim::drift::{Drift, DriftOptions};
 
 #[derive(Clone, Debug, PartialEq)]
 pub struct SimOptions {
@@ -38,6 +39,9 @@ pub struct SimOptions {
     /// Relative refractoriness: after the absolute period the rate recovers
     /// as 1 − exp(−t/recovery_ms). 0 turns it off (the default).
     pub recovery_ms: f64,
+    /// A world that changes over the block ([`crate::sim::drift`]); `None`
+    /// for a stationary array.
+    pub drift: Option<DriftOptions>,
 }
 
 impl Default for SimOptions {
@@ -51,6 +55,7 @@ impl Default for SimOptions {
             target_radius: 10.0,
             refractory_ms: 2,
             recovery_ms: 0.0,
+            drift: None,
         }
     }
 }
@@ -75,6 +80,8 @@ pub enum SimError {
     },
     #[error(transparent)]
     Write(#[from] crate::formats::block::BlockError),
+    #[error(transparent)]
+    Drift(#[from] crate::sim::drift::DriftError),
 }
 
 /// Minimum-jerk position fraction and its time derivative at s ∈ [0, 1].
@@ -315,10 +322,15 @@ fn prepare(options: &SimOptions) -> Result<(SimChannels, ChaCha8Rng, usize, usiz
             });
         }
     };
-    let channels = draw_channels(
+    let mut channels = draw_channels(
         &mut ChaCha8Rng::seed_from_u64(options.population_seed),
         options.n_channels,
     );
+    if let Some(d) = &options.drift {
+        // This block's array: the population's channels, each preferred
+        // direction turned as the drift says.
+        channels = Drift::draw(d, options.n_channels, options.seed)?.turn(&channels);
+    }
     let rng = ChaCha8Rng::seed_from_u64(options.seed);
     let n_bins = ((options.minutes * 60_000.0) as usize) / bin_ms_int;
     Ok((channels, rng, n_bins, bin_ms_int))
@@ -363,10 +375,36 @@ fn kinematic_names() -> Vec<String> {
 }
 
 fn notes(options: &SimOptions) -> String {
-    format!(
+    let mut notes = format!(
         "synthetic center-out block: seed {}, population {}, {} channels, {} min, positions in cm, velocities in cm/s",
         options.seed, options.population_seed, options.n_channels, options.minutes
-    )
+    );
+    if let Some(d) = &options.drift {
+        let event = |e: &Option<crate::sim::drift::ChannelEvent>| {
+            e.as_ref().map_or("none".to_string(), |e| {
+                format!(
+                    "{:.0} % from minute {}{}",
+                    e.share * 100.0,
+                    e.from_minute,
+                    e.until_minute.map_or(String::new(), |u| format!(" to {u}"))
+                )
+            })
+        };
+        notes.push_str(&format!(
+            "; drift (seed {}): gains ramp to {}–{} over {} min, silent {}, noisy at {} Hz {}, over-dispersion {}, preferred directions turned by sd {}°",
+            d.seed,
+            d.gain_min,
+            d.gain_max,
+            d.ramp_minutes,
+            event(&d.silent),
+            d.noisy_hz,
+            event(&d.noisy),
+            d.overdispersion_shape
+                .map_or("none".to_string(), |k| format!("gamma shape {k}")),
+            d.pd_change_deg
+        ));
+    }
+    notes
 }
 
 /// The simulator as a stream of bins: movement drawn up front as segments,
@@ -385,6 +423,11 @@ struct SimStream {
     refractory_left: Vec<usize>,
     /// ms since each channel's last spike past its absolute refractory period.
     recovered_ms: Vec<f64>,
+    drift: Option<Drift>,
+    /// The drift's factor of each channel for the current bin.
+    factors: Vec<f64>,
+    /// Bins drawn so far.
+    bins_done: usize,
 }
 
 impl SimStream {
@@ -416,6 +459,12 @@ impl SimStream {
             k: 0,
             refractory_left: vec![0; n],
             recovered_ms: vec![f64::INFINITY; n],
+            drift: match &options.drift {
+                Some(d) => Some(Drift::draw(d, n, options.seed)?),
+                None => None,
+            },
+            factors: vec![1.0; n],
+            bins_done: 0,
         })
     }
 
@@ -429,7 +478,12 @@ impl SimStream {
             index: self.seg,
             k: self.k,
         };
-        for _ in 0..self.bin_ms {
+        let bin_start_ms = (self.bins_done * self.bin_ms) as f64;
+        self.bins_done += 1;
+        if let Some(d) = self.drift.as_mut() {
+            d.bin_factors(bin_start_ms, &mut self.factors);
+        }
+        for j in 0..self.bin_ms {
             let (p, v) = cursor.next_ms();
             acc[0] += p[0];
             acc[1] += p[1];
@@ -444,6 +498,9 @@ impl SimStream {
                 let b = self.channels.beta[ch];
                 let mut rate_hz =
                     (self.channels.log_baseline[ch] + b[0] * v[0] + b[1] * v[1]).exp();
+                if let Some(d) = &self.drift {
+                    rate_hz = d.rate_hz(ch, bin_start_ms + j as f64, rate_hz, self.factors[ch]);
+                }
                 if self.options.recovery_ms > 0.0 {
                     rate_hz *= 1.0 - (-self.recovered_ms[ch] / self.options.recovery_ms).exp();
                 }

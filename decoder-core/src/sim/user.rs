@@ -19,6 +19,7 @@ use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
 use crate::bin_width::BinWidth;
+use crate::sim::drift::{Drift, DriftError, DriftOptions};
 use crate::sim::reaching::SimChannels;
 
 #[derive(Clone, Debug, PartialEq)]
@@ -90,6 +91,11 @@ pub struct SimulatedUser {
     refractory_left: Vec<usize>,
     bin_ms: usize,
     refractory_ms: usize,
+    /// A world that changes as the session goes on, if any.
+    drift: Option<Drift>,
+    factors: Vec<f64>,
+    bins_done: usize,
+    seed: u64,
 }
 
 impl SimulatedUser {
@@ -101,7 +107,21 @@ impl SimulatedUser {
             refractory_left: vec![0; n],
             bin_ms: options.bin_width.whole_ms().unwrap_or(1).max(1) as usize,
             refractory_ms: options.refractory_ms,
+            drift: None,
+            factors: vec![1.0; n],
+            bins_done: 0,
+            seed: options.seed,
         }
+    }
+
+    /// The same user in a world that drifts from the first bin on: its
+    /// channels' preferred directions turned, their rates ramping, some
+    /// silent or noisy in their windows ([`crate::sim::drift`]).
+    pub fn with_drift(mut self, options: &DriftOptions) -> Result<SimulatedUser, DriftError> {
+        let drift = Drift::draw(options, self.channels.beta.len(), self.seed)?;
+        self.channels = drift.turn(&self.channels);
+        self.drift = Some(drift);
+        Ok(self)
     }
 
     pub fn n_channels(&self) -> usize {
@@ -111,16 +131,24 @@ impl SimulatedUser {
     /// The counts of one bin during which the user intends `velocity`.
     pub fn bin_counts(&mut self, velocity: [f64; 2], out: &mut [u16]) {
         out.fill(0);
-        for _ in 0..self.bin_ms {
+        let bin_start_ms = (self.bins_done * self.bin_ms) as f64;
+        self.bins_done += 1;
+        if let Some(d) = self.drift.as_mut() {
+            d.bin_factors(bin_start_ms, &mut self.factors);
+        }
+        for j in 0..self.bin_ms {
             for (ch, count) in out.iter_mut().enumerate() {
                 if self.refractory_left[ch] > 0 {
                     self.refractory_left[ch] -= 1;
                     continue;
                 }
                 let b = self.channels.beta[ch];
-                let rate_hz =
+                let mut rate_hz =
                     (self.channels.log_baseline[ch] + b[0] * velocity[0] + b[1] * velocity[1])
                         .exp();
+                if let Some(d) = &self.drift {
+                    rate_hz = d.rate_hz(ch, bin_start_ms + j as f64, rate_hz, self.factors[ch]);
+                }
                 if self.rng.random::<f64>() < (rate_hz / 1000.0).min(1.0) {
                     *count = count.saturating_add(1);
                     self.refractory_left[ch] = self.refractory_ms;

@@ -78,6 +78,9 @@ pub struct Args {
     /// session log is the closed-loop block).
     #[arg(long, default_value = "closed-loop-report")]
     pub report: PathBuf,
+    /// The user's world may change as the session goes on.
+    #[command(flatten)]
+    pub world: super::world::WorldArgs,
 }
 
 /// `replay-tool closed-loop`.
@@ -114,6 +117,7 @@ pub fn run_verb(args: &Args) -> Result<()> {
         },
         array_seed: args.array_seed,
         time_scale: args.time_scale,
+        drift: args.world.drift()?,
     };
     let summary = report(&setup, &args.report)?;
     if let Some(min) = args.min_success {
@@ -174,6 +178,8 @@ pub struct ClosedLoopSetup<'a> {
     /// Time between bins in bin widths: 1 = the bin rate; 0 = as fast as
     /// the loop turns round.
     pub time_scale: f64,
+    /// A world that changes as the session goes on (`None`: stationary).
+    pub drift: Option<decoder_core::sim::drift::DriftOptions>,
 }
 
 pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
@@ -191,6 +197,9 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         ..setup.task.clone()
     };
     let mut user = SimulatedUser::new(population(setup.array_seed, n), &task_options);
+    if let Some(d) = &setup.drift {
+        user = user.with_drift(d)?;
+    }
     let mut task = CenterOut::new(task_options.clone());
 
     let (sink, daemon, listen, task_listen) = match setup.running {

@@ -17,6 +17,7 @@ pub mod simulate;
 pub mod stream;
 pub mod train;
 pub mod verify;
+pub mod world;
 
 use std::path::{Path, PathBuf};
 

@@ -34,6 +34,8 @@ pub struct Args {
     /// history matter to the encoding models.
     #[arg(long, default_value_t = 0.0)]
     pub recovery_ms: f64,
+    #[command(flatten)]
+    pub world: super::world::WorldArgs,
 }
 
 pub fn run(args: &Args) -> Result<()> {
@@ -45,6 +47,7 @@ pub fn run(args: &Args) -> Result<()> {
         bin_width: super::bin_width_flag(args.bin_ms)?,
         refractory_ms: args.refractory_ms,
         recovery_ms: args.recovery_ms,
+        drift: args.world.drift()?,
         ..SimOptions::default()
     };
     // Written a chunk of bins at a time: a block of any length.

@@ -319,3 +319,97 @@ fn several_sessions_train_one_decoder_and_the_model_names_each() {
     );
     assert!(err.contains("--refit") && err.contains("once"), "{err}");
 }
+
+/// `simulate` draws a world that changes when asked: the channels the
+/// drift picks go silent from the minute given, others fire fast and
+/// unrelated to movement, and the block's notes say what was drawn; a flag
+/// that cannot be read is refused with the form it takes.
+#[test]
+fn simulate_draws_a_drifting_array_when_asked() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = dir.path().join("drift");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&out),
+        "--minutes",
+        "2",
+        "--channels",
+        "8",
+        "--silent",
+        "0.25@1",
+        "--noisy",
+        "0.25@0.5-1.5",
+        "--drift-gain",
+        "0.6:1.8",
+        "--drift-ramp-min",
+        "2",
+    ]);
+    let block = decoder_core::Block::read(&out).unwrap();
+    assert!(
+        block
+            .notes
+            .as_ref()
+            .unwrap()
+            .contains("silent 25 % from minute 1")
+    );
+    let minute = 3000;
+    let total = |ch: usize, from: usize, to: usize| -> u32 {
+        (from..to).map(|t| u32::from(block.bin_counts(t)[ch])).sum()
+    };
+    let silent: Vec<usize> = (0..8)
+        .filter(|&c| total(c, minute, 2 * minute) == 0)
+        .collect();
+    assert_eq!(silent.len(), 2, "{silent:?}");
+    assert!(silent.iter().all(|&c| total(c, 0, minute) > 0));
+    // Noisy from minute 0.5 to 1.5: about 4.4 spikes a bin, far above any
+    // tuned channel's mean (under 1.5 a bin at 30 Hz and peak speed).
+    let noisy: Vec<usize> = (0..8)
+        .filter(|&c| total(c, minute * 3 / 4, minute * 5 / 4) > 3 * minute as u32 / 2)
+        .collect();
+    assert_eq!(noisy.len(), 2, "{noisy:?}");
+    assert!(noisy.iter().all(|c| !silent.contains(c)));
+
+    // The closed-loop user drifts the same way: with every channel silent
+    // from the start the decoder has nothing to go on.
+    let (_, model) = fixture::calibration_16();
+    let report = dir.path().join("cl");
+    ok(&[
+        "closed-loop",
+        "--model",
+        p(&model),
+        "--time-scale",
+        "0",
+        "--trials",
+        "2",
+        "--silent",
+        "1@0",
+        "--report",
+        p(&report),
+    ]);
+    let s = closed_loop_summary(&report);
+    assert_eq!(s["success_rate"].as_f64().unwrap(), 0.0, "{s}");
+
+    let e = fails_with(
+        &[
+            "simulate",
+            "--out",
+            p(&dir.path().join("x")),
+            "--silent",
+            "0.1",
+        ],
+        2,
+    );
+    assert!(e.contains("--silent") && e.contains("SHARE@FROM"), "{e}");
+    let e = fails_with(
+        &[
+            "simulate",
+            "--out",
+            p(&dir.path().join("y")),
+            "--drift-gain",
+            "2:1",
+        ],
+        2,
+    );
+    assert!(e.contains("gain_max"), "{e}");
+}

@@ -175,8 +175,8 @@ fn preferred_directions_turn_by_the_drawn_angles_and_the_user_drifts_too() {
         .with_drift(&drift)
         .unwrap();
     let world = Drift::draw(&drift, N, task.seed).unwrap();
-    let mut sums = vec![0u32; N];
-    let mut counts = vec![0u16; N];
+    let mut sums = [0u32; N];
+    let mut counts = [0u16; N];
     for _ in 0..500 {
         user.bin_counts([10.0, 0.0], &mut counts);
         for (s, &c) in sums.iter_mut().zip(&counts) {

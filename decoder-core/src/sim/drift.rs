@@ -15,7 +15,6 @@ use rand::{RngExt, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Gamma, Normal};
 
-use crate::sim::reaching::SimChannels;
 
 /// Some channels, from one time to (optionally) another.
 #[derive(Clone, Debug, PartialEq)]
@@ -233,22 +232,16 @@ impl Drift {
         self.noisy[ch]
     }
 
-    /// The channels' tuning with each preferred direction turned (the
-    /// depth of modulation kept).
-    pub fn turn(&self, channels: &SimChannels) -> SimChannels {
-        let beta = channels
-            .beta
-            .iter()
+    /// Each channel's velocity tuning (βx, βy) with its preferred
+    /// direction turned (the depth of modulation kept).
+    pub fn turn(&self, beta: &[[f64; 2]]) -> Vec<[f64; 2]> {
+        beta.iter()
             .zip(&self.pd_turns)
             .map(|(b, a)| {
                 let (s, c) = a.sin_cos();
                 [c * b[0] - s * b[1], s * b[0] + c * b[1]]
             })
-            .collect();
-        SimChannels {
-            log_baseline: channels.log_baseline.clone(),
-            beta,
-        }
+            .collect()
     }
 
     /// The factors of one bin (into `out`, one per channel): the gain

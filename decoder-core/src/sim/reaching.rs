@@ -329,7 +329,7 @@ fn prepare(options: &SimOptions) -> Result<(SimChannels, ChaCha8Rng, usize, usiz
     if let Some(d) = &options.drift {
         // This block's array: the population's channels, each preferred
         // direction turned as the drift says.
-        channels = Drift::draw(d, options.n_channels, options.seed)?.turn(&channels);
+        channels.beta = Drift::draw(d, options.n_channels, options.seed)?.turn(&channels.beta);
     }
     let rng = ChaCha8Rng::seed_from_u64(options.seed);
     let n_bins = ((options.minutes * 60_000.0) as usize) / bin_ms_int;

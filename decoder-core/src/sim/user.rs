@@ -119,7 +119,7 @@ impl SimulatedUser {
     /// silent or noisy in their windows ([`crate::sim::drift`]).
     pub fn with_drift(mut self, options: &DriftOptions) -> Result<SimulatedUser, DriftError> {
         let drift = Drift::draw(options, self.channels.beta.len(), self.seed)?;
-        self.channels = drift.turn(&self.channels);
+        self.channels.beta = drift.turn(&self.channels.beta);
         self.drift = Some(drift);
         Ok(self)
     }

@@ -38,6 +38,14 @@ Writes, into the directory given as the only argument:
   gof_glm_*.npy           for three seeds: velocity, counts drawn from a
                           known Poisson GLM at 20 ms bins, the true
                           coefficients and statsmodels' fitted ones
+  click_*.npy             counts with cued click epochs (some channels
+                          faster during them), sklearn's
+                          LinearDiscriminantAnalysis(solver="lsqr",
+                          shrinkage) on the counts of the last CLICK_LAGS
+                          bins (coefficients, intercept, posteriors), the
+                          label sequence's transitions, and the two-state
+                          forward recursion (Rabiner 1989) written out in
+                          numpy over those posteriors
   versions.txt            the versions that produced all of this
 
 The data are synthetic and seeded; nothing here is recorded data.
@@ -56,6 +64,7 @@ import sklearn
 import statsmodels
 import statsmodels.api as sm
 from filterpy.kalman import KalmanFilter
+from sklearn.discriminant_analysis import LinearDiscriminantAnalysis
 from sklearn.linear_model import Ridge
 from sklearn.metrics import r2_score
 
@@ -71,6 +80,10 @@ WIENER_RIDGE = 5.0
 INTENT_RADIUS = 1.0
 GOF_T = 4000      # bins per goodness-of-fit block
 GOF_N = 12        # channels per goodness-of-fit block
+CLICK_T = 3000    # bins of the click block
+CLICK_N = 8       # its channels
+CLICK_LAGS = 3
+CLICK_SHRINKAGE = 0.1
 
 
 def make_block(rng):
@@ -417,10 +430,58 @@ def main(out):
         np.save(os.path.join(out, f"gof_glm_true_coef_{seed}.npy"), true_coef)
         np.save(os.path.join(out, f"gof_glm_fitted_coef_{seed}.npy"), fitted)
 
+    click_fixtures(out)
+
     with open(os.path.join(out, "versions.txt"), "w") as f:
         f.write(f"python {sys.version.split()[0]}\n")
         for mod in (np, scipy, filterpy, sklearn, statsmodels):
             f.write(f"{mod.__name__} {mod.__version__}\n")
+
+
+def click_fixtures(out):
+    g = np.random.default_rng(SEED + 7)
+    labels = np.zeros(CLICK_T, dtype=bool)
+    t = 20
+    while t < CLICK_T:
+        length = int(g.integers(10, 21))
+        labels[t:t + length] = True
+        t += length + int(g.integers(60, 140))
+    base = g.uniform(0.5, 2.0, size=CLICK_N)
+    gain = np.ones(CLICK_N)
+    gain[:4] = g.uniform(1.5, 3.0, size=4)
+    rate = np.where(labels[:, None], base * gain, base)
+    counts = g.poisson(rate).astype(np.int16)
+    # The counts of the bin and the CLICK_LAGS - 1 before it, newest first.
+    rows = range(CLICK_LAGS - 1, CLICK_T)
+    x = np.array([np.concatenate([counts[r - l] for l in range(CLICK_LAGS)]) for r in rows], dtype=np.float64)
+    y = labels[CLICK_LAGS - 1:]
+    lda = LinearDiscriminantAnalysis(solver="lsqr", shrinkage=CLICK_SHRINKAGE).fit(x, y)
+    proba = lda.predict_proba(x)[:, 1]
+    prior = lda.priors_[1]
+    # Transitions of the whole label sequence.
+    now, nxt = labels[:-1], labels[1:]
+    stay_rest = np.sum(~now & ~nxt) / np.sum(~now)
+    stay_click = np.sum(now & nxt) / np.sum(now)
+    A = np.array([[stay_rest, 1 - stay_rest], [1 - stay_click, stay_click]])
+    # Forward recursion, normalised each step: alpha_t = (alpha_{t-1} A) * b_t,
+    # b_t the scaled likelihoods (posterior over prior); no emission for
+    # the first CLICK_LAGS - 1 bins (the discriminant has no window yet).
+    alpha = np.array([1 - prior, prior])
+    forward = np.zeros(CLICK_T)
+    for t in range(CLICK_T):
+        alpha = alpha @ A
+        if t >= CLICK_LAGS - 1:
+            q = proba[t - (CLICK_LAGS - 1)]
+            alpha = alpha * np.array([(1 - q) / (1 - prior), q / prior])
+        alpha = alpha / alpha.sum()
+        forward[t] = alpha[1]
+    np.save(os.path.join(out, "click_counts.npy"), counts)
+    np.save(os.path.join(out, "click_labels.npy"), labels.astype(np.float64))
+    np.save(os.path.join(out, "click_lda_coef.npy"), lda.coef_[0])
+    np.save(os.path.join(out, "click_lda_intercept.npy"), lda.intercept_)
+    np.save(os.path.join(out, "click_lda_proba.npy"), proba)
+    np.save(os.path.join(out, "click_transitions.npy"), np.array([stay_rest, stay_click]))
+    np.save(os.path.join(out, "click_forward.npy"), forward)
 
 
 if __name__ == "__main__":

@@ -644,3 +644,78 @@ fn poisson_fit_with_an_offset_matches_statsmodels() {
         1e-10,
     );
 }
+
+/// The click decoder (Kim et al. 2011: a linear discriminant beside the
+/// velocity decoder, filtered by a two-state hidden Markov model) against
+/// scikit-learn's `LinearDiscriminantAnalysis(solver="lsqr",
+/// shrinkage=0.1)` on the same lagged counts — coefficients, intercept and
+/// every bin's posterior — and against the forward recursion (Rabiner
+/// 1989) written out in numpy over those posteriors, with the label
+/// sequence's transitions.
+#[test]
+fn click_decoder_equals_sklearn_lda_and_the_numpy_forward_recursion() {
+    use decoder_core::decoders::click::{ClickFilter, logistic};
+    use decoder_core::fit::click::{fit_click, lagged_rows};
+    let (shape, counts) = fixture_counts("click_counts.npy");
+    let (t, n) = (shape[0], shape[1]);
+    let labels: Vec<bool> = fixture("click_labels.npy")
+        .1
+        .iter()
+        .map(|&l| l > 0.5)
+        .collect();
+    let model = fit_click(&counts, n, &labels, 3, 0.1).unwrap();
+    // The lsqr solve and ours sum in different orders: agreement to
+    // about 1e-12 relative (the weights: 1.8e-13 at worst, measured).
+    assert_close(
+        "click weights vs sklearn coef_",
+        &model.weights,
+        &fixture("click_lda_coef.npy").1,
+        1e-9,
+        1e-12,
+    );
+    assert_close(
+        "click intercept vs sklearn intercept_",
+        &[model.intercept],
+        &fixture("click_lda_intercept.npy").1,
+        1e-9,
+        1e-12,
+    );
+    let (x, _) = lagged_rows(&counts, n, &labels, 3);
+    let posteriors: Vec<f64> = x
+        .iter()
+        .map(|r| {
+            logistic(
+                model.intercept
+                    + r.iter()
+                        .zip(&model.weights)
+                        .map(|(a, b)| a * b)
+                        .sum::<f64>(),
+            )
+        })
+        .collect();
+    assert_close(
+        "click posteriors vs sklearn predict_proba",
+        &posteriors,
+        &fixture("click_lda_proba.npy").1,
+        1e-9,
+        1e-12,
+    );
+    assert_close(
+        "click transitions vs numpy",
+        &[model.stay_rest, model.stay_click],
+        &fixture("click_transitions.npy").1,
+        1e-15,
+        0.0,
+    );
+    let mut filter = ClickFilter::new(model).unwrap();
+    let forward: Vec<f64> = (0..t)
+        .map(|b| filter.step(&counts[b * n..(b + 1) * n]))
+        .collect();
+    assert_close(
+        "filtered click probability vs the numpy forward recursion",
+        &forward,
+        &fixture("click_forward.npy").1,
+        1e-9,
+        1e-12,
+    );
+}

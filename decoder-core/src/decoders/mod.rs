@@ -3,6 +3,7 @@
 //! from the model, allocation-free per bin). Nothing here fits a model or
 //! reads a file: fitting is in [`crate::fit`], storage in [`crate::formats`].
 
+pub mod click;
 pub mod history_basis;
 pub mod kalman;
 pub mod point_process;

@@ -9,6 +9,7 @@
 //! this module.
 
 pub mod adapt;
+pub mod click;
 pub mod config;
 pub mod evaluate;
 pub mod folds;

@@ -23,8 +23,8 @@ pub struct Args {
     /// 2.x file here.
     #[arg(long)]
     pub nwb: Option<PathBuf>,
-    /// With --nwb: what the log cannot know ([subject] subject_id,
-    /// species, sex, age, description; [session] session_description,
+    /// With --nwb: what the log cannot know (`[subject]` subject_id,
+    /// species, sex, age, description; `[session]` session_description,
     /// experimenter, institution, lab, keywords), in NWB's terms.
     #[arg(long, requires = "nwb")]
     pub metadata: Option<PathBuf>,

@@ -15,7 +15,6 @@ use rand::{RngExt, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Gamma, Normal};
 
-
 /// Some channels, from one time to (optionally) another.
 #[derive(Clone, Debug, PartialEq)]
 pub struct ChannelEvent {

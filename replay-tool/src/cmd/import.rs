@@ -74,6 +74,25 @@ fn f64_attr(attrs: &std::collections::HashMap<String, AttrValue>, key: &str) -> 
     }
 }
 
+/// A series without timestamps: its `starting_time` and that dataset's
+/// `rate` attribute.
+fn regular_clock(f: &File, file: &Path, series: &str) -> Result<(f64, f64)> {
+    let st_path = format!("{series}/starting_time");
+    let st = f.dataset(&st_path).map_err(|_| {
+        anyhow::anyhow!(
+            "{}: {series} has neither timestamps nor starting_time",
+            file.display()
+        )
+    })?;
+    let rate = f64_attr(&st.attrs().unwrap_or_default(), "rate")
+        .with_context(|| format!("{}: {st_path} has no rate", file.display()))?;
+    let t0 = dataset_f64(f, file, &st_path)?
+        .first()
+        .copied()
+        .unwrap_or(0.0);
+    Ok((t0, rate))
+}
+
 /// Position samples read at a time.
 const WINDOW_ROWS: usize = 4096;
 
@@ -159,19 +178,7 @@ impl<'f> Position<'f> {
                 (Some(ts), Clock::Stamps(ts_path))
             }
             Err(_) => {
-                let st_path = format!("{series}/starting_time");
-                let st = f.dataset(&st_path).map_err(|_| {
-                    anyhow::anyhow!(
-                        "{}: {series} has neither timestamps nor starting_time",
-                        file.display()
-                    )
-                })?;
-                let rate = f64_attr(&st.attrs().unwrap_or_default(), "rate")
-                    .with_context(|| format!("{}: {st_path} has no rate", file.display()))?;
-                let t0 = dataset_f64(f, file, &st_path)?
-                    .first()
-                    .copied()
-                    .unwrap_or(0.0);
+                let (t0, rate) = regular_clock(f, file, series)?;
                 (None, Clock::Regular { t0, rate })
             }
         };
@@ -541,19 +548,7 @@ impl BinnedCounts {
                 })?;
                 (first[0], first.get(1).map_or(b, |t1| t1 - first[0]))
             } else {
-                let st_path = format!("{path}/starting_time");
-                let st = f.dataset(&st_path).map_err(|_| {
-                    anyhow::anyhow!(
-                        "{}: {path} has neither timestamps nor starting_time",
-                        file.display()
-                    )
-                })?;
-                let rate = f64_attr(&st.attrs().unwrap_or_default(), "rate")
-                    .with_context(|| format!("{}: {st_path} has no rate", file.display()))?;
-                let t0 = dataset_f64(f, file, &st_path)?
-                    .first()
-                    .copied()
-                    .unwrap_or(0.0);
+                let (t0, rate) = regular_clock(f, file, &path)?;
                 (t0, 1.0 / rate)
             };
             if (width - b).abs() > 1e-6 * b {

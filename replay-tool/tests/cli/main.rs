@@ -86,6 +86,24 @@ fn bench_p99(report: &Path) -> f64 {
     s["recv_to_send_us"]["p99"].as_f64().unwrap()
 }
 
+/// `closed-loop` on `model` as fast as the loop turns, `trials` trials,
+/// with `more` flags, reporting into `report`.
+fn closed_loop_fast(model: &Path, trials: &str, more: &[&str], report: &Path) -> String {
+    let mut args = vec![
+        "closed-loop",
+        "--model",
+        p(model),
+        "--time-scale",
+        "0",
+        "--trials",
+        trials,
+        "--report",
+        p(report),
+    ];
+    args.extend_from_slice(more);
+    ok(&args)
+}
+
 fn closed_loop_summary(report: &Path) -> serde_json::Value {
     let s = json_file(&report.join("closed-loop.json"));
     // closed-loop.json has the fields PROTOCOL.md §12 lists.

@@ -128,17 +128,7 @@ fn a_session_exports_to_nwb_that_pynwb_reads_and_imports_back_to_the_same_counts
     let dir = tempfile::tempdir().unwrap();
     let (_, model) = fixture::calibration_16();
     let report = dir.path().join("cl");
-    ok(&[
-        "closed-loop",
-        "--model",
-        p(&model),
-        "--time-scale",
-        "0",
-        "--trials",
-        "3",
-        "--report",
-        p(&report),
-    ]);
+    closed_loop_fast(&model, "3", &[], &report);
     let log = closed_loop_log(&report);
     let meta = dir.path().join("meta.toml");
     std::fs::write(

@@ -95,17 +95,7 @@ fn a_closed_loop_recording_exports_as_a_session_directory_and_trains() {
     let dir = tempfile::tempdir().unwrap();
     let (_, model) = fixture::calibration_16();
     let report = dir.path().join("cl");
-    ok(&[
-        "closed-loop",
-        "--model",
-        p(&model),
-        "--time-scale",
-        "0",
-        "--trials",
-        "4",
-        "--report",
-        p(&report),
-    ]);
+    closed_loop_fast(&model, "4", &[], &report);
     let summary: serde_json::Value =
         serde_json::from_str(&std::fs::read_to_string(report.join("closed-loop.json")).unwrap())
             .unwrap();

@@ -374,19 +374,7 @@ fn simulate_draws_a_drifting_array_when_asked() {
     // from the start the decoder has nothing to go on.
     let (_, model) = fixture::calibration_16();
     let report = dir.path().join("cl");
-    ok(&[
-        "closed-loop",
-        "--model",
-        p(&model),
-        "--time-scale",
-        "0",
-        "--trials",
-        "2",
-        "--silent",
-        "1@0",
-        "--report",
-        p(&report),
-    ]);
+    closed_loop_fast(&model, "2", &["--silent", "1@0"], &report);
     let s = closed_loop_summary(&report);
     assert_eq!(s["success_rate"].as_f64().unwrap(), 0.0, "{s}");
 

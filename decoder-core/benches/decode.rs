@@ -119,6 +119,7 @@ fn session_from(counts: Vec<u16>, n: usize) -> Block {
         channel_labels: None,
         valid: None,
         notes: None,
+        click: None,
     }
 }
 

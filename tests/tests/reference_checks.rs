@@ -505,6 +505,7 @@ fn intention_reestimation_equals_the_rule_in_numpy() {
         channel_labels: None,
         valid: None,
         notes: None,
+        click: None,
     };
     let (refit, counted) = reestimate_intention(&block, 1.0).unwrap();
     assert!(

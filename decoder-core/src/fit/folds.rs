@@ -185,6 +185,7 @@ mod tests {
             ),
             channel_labels: None,
             valid: None,
+            click: None,
             notes: None,
         }
     }

@@ -106,6 +106,7 @@ mod tests {
             }]),
             channel_labels: None,
             valid: None,
+            click: None,
             notes: None,
         }
     }

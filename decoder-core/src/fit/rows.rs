@@ -239,6 +239,7 @@ mod tests {
             trials: None,
             channel_labels: None,
             valid: None,
+            click: None,
             notes: None,
         }
     }

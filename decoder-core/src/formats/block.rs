@@ -16,8 +16,9 @@ use ndarray_npy::{ReadNpyError, ReadNpyExt, WriteNpyExt};
 
 use crate::bin_width::BinWidth;
 pub use crate::formats::block_dir::{
-    BlockError, BlockManifest, COUNTS_FILE, KINEMATICS_FILE, MANIFEST_FILE, SESSION_FORMAT_VERSION,
-    TRIALS_FILE, Trial, VALID_FILE, write_atomic, write_manifest, write_trials,
+    BlockError, BlockManifest, CLICK_FILE, COUNTS_FILE, KINEMATICS_FILE, MANIFEST_FILE,
+    SESSION_FORMAT_VERSION, TRIALS_FILE, Trial, VALID_FILE, write_atomic, write_manifest,
+    write_trials,
 };
 use crate::formats::block_dir::{
     check_kinematics_shape, npy_problem, read_bytes, read_manifest, read_trials,
@@ -45,6 +46,9 @@ pub struct Block {
     /// Per bin, whether it is used for training and scoring (`valid.npy`);
     /// `None` means every bin is valid.
     pub valid: Option<Vec<bool>>,
+    /// Per bin, whether the task cued a click in it (`click.npy`), for
+    /// training a click decoder; `None` when the block has no click cues.
+    pub click: Option<Vec<bool>>,
 }
 
 impl Block {
@@ -86,7 +90,13 @@ impl Block {
         };
         let valid_path = dir.join(VALID_FILE);
         let valid = if valid_path.exists() {
-            Some(read_valid(&valid_path, n_bins)?)
+            Some(read_flags(&valid_path, "valid.npy", n_bins)?)
+        } else {
+            None
+        };
+        let click_path = dir.join(CLICK_FILE);
+        let click = if click_path.exists() {
+            Some(read_flags(&click_path, "click.npy", n_bins)?)
         } else {
             None
         };
@@ -101,6 +111,7 @@ impl Block {
             channel_labels: manifest.channel_labels,
             notes: manifest.notes,
             valid,
+            click,
         })
     }
 
@@ -127,10 +138,10 @@ impl Block {
             write_trials(dir, trials)?;
         }
         if let Some(valid) = &self.valid {
-            let arr = ndarray::Array1::from_vec(valid.clone());
-            let mut out = Vec::new();
-            arr.write_npy(&mut out).expect("in-memory npy write");
-            write_atomic(&dir.join(VALID_FILE), &out)?;
+            write_flags(&dir.join(VALID_FILE), valid)?;
+        }
+        if let Some(click) = &self.click {
+            write_flags(&dir.join(CLICK_FILE), click)?;
         }
         Ok(())
     }
@@ -219,6 +230,13 @@ impl Block {
             channel_labels: self.channel_labels.clone(),
             notes: self.notes.clone(),
             valid: None,
+            click: self.click.as_ref().map(|c| {
+                c.iter()
+                    .zip(valid)
+                    .filter(|(_, ok)| **ok)
+                    .map(|(c, _)| *c)
+                    .collect()
+            }),
         }
     }
 
@@ -322,12 +340,13 @@ fn read_kinematics(path: &Path, names: &[String], n_bins: usize) -> Result<Mat, 
     Ok(Mat { rows, cols, data })
 }
 
-fn read_valid(path: &Path, n_bins: usize) -> Result<Vec<bool>, BlockError> {
-    let bytes = read_bytes(path, "valid.npy")?;
+/// A per-bin flag file (`valid.npy`, `click.npy`): 1-D bool, one a bin.
+fn read_flags(path: &Path, what: &'static str, n_bins: usize) -> Result<Vec<bool>, BlockError> {
+    let bytes = read_bytes(path, what)?;
     let arr = ndarray::Array1::<bool>::read_npy(&bytes[..]).map_err(|e| BlockError::Npy {
         path: path.to_path_buf(),
         problem: format!(
-            "{}; valid.npy must be a 1-D bool array, one entry per bin",
+            "{}; {what} must be a 1-D bool array, one entry per bin",
             npy_problem(&e)
         ),
     })?;
@@ -335,12 +354,21 @@ fn read_valid(path: &Path, n_bins: usize) -> Result<Vec<bool>, BlockError> {
         return Err(BlockError::Shape {
             path: path.to_path_buf(),
             problem: format!(
-                "valid.npy has {} entries but counts.npy has {n_bins} bins",
+                "{what} has {} entries but counts.npy has {n_bins} bins",
                 arr.len()
             ),
         });
     }
     Ok(arr.to_vec())
+}
+
+/// Writes a per-bin flag file.
+pub fn write_flags(path: &Path, flags: &[bool]) -> Result<(), BlockError> {
+    let mut out = Vec::new();
+    ndarray::Array1::from_vec(flags.to_vec())
+        .write_npy(&mut out)
+        .expect("in-memory npy write");
+    write_atomic(path, &out)
 }
 
 fn npy_bytes<T: ndarray_npy::WritableElement>(arr: &Array2<T>) -> Vec<u8> {

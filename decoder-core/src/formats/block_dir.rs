@@ -20,6 +20,7 @@ pub const COUNTS_FILE: &str = "counts.npy";
 pub const KINEMATICS_FILE: &str = "kinematics.npy";
 pub const TRIALS_FILE: &str = "trials.csv";
 pub const VALID_FILE: &str = "valid.npy";
+pub const CLICK_FILE: &str = "click.npy";
 pub const SESSION_FORMAT_VERSION: u32 = 1;
 
 /// One trial of a block: bins `start_bin..end_bin` (end exclusive) and the

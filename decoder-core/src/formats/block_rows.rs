@@ -650,6 +650,7 @@ mod tests {
             channel_labels: None,
             notes: None,
             valid: None,
+            click: None,
         }
     }
 

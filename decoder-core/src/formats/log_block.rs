@@ -262,6 +262,7 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
         channel_labels: None,
         notes: Some(notes(path, &seqs, &summary)),
         valid: Some(valid),
+        click: None,
     };
     Ok(LogBlock {
         block,

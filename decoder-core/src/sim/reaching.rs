@@ -42,6 +42,45 @@ pub struct SimOptions {
     /// A world that changes over the block ([`crate::sim::drift`]); `None`
     /// for a stationary array.
     pub drift: Option<DriftOptions>,
+    /// Click attempts at the start of each hold in the target, and the
+    /// channels whose rates change during them; `None` for a block
+    /// without clicks.
+    pub click: Option<ClickSim>,
+}
+
+/// How the simulated participant attempts a click: for `attempt_ms` from
+/// the start of each hold in the target, a `share` of the channels (the
+/// array's click channels, the same for every block of its population
+/// seed) fire at `gain` times their rate.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ClickSim {
+    pub share: f64,
+    pub gain: f64,
+    pub attempt_ms: usize,
+}
+
+impl Default for ClickSim {
+    fn default() -> Self {
+        ClickSim {
+            share: 0.25,
+            gain: 2.0,
+            attempt_ms: 300,
+        }
+    }
+}
+
+/// The array's click channels: a `share` of its `n` channels, drawn from
+/// its population seed.
+pub fn click_channels(population_seed: u64, n: usize, share: f64) -> Vec<bool> {
+    use rand::seq::SliceRandom;
+    let mut rng = ChaCha8Rng::seed_from_u64(population_seed ^ 0xC11C_C11C);
+    let mut order: Vec<usize> = (0..n).collect();
+    order.shuffle(&mut rng);
+    let mut out = vec![false; n];
+    for &c in &order[..((share * n as f64).round() as usize).min(n)] {
+        out[c] = true;
+    }
+    out
 }
 
 impl Default for SimOptions {
@@ -56,6 +95,7 @@ impl Default for SimOptions {
             refractory_ms: 2,
             recovery_ms: 0.0,
             drift: None,
+            click: None,
         }
     }
 }
@@ -140,11 +180,14 @@ struct Movement {
     segments: Vec<Segment>,
     /// (start ms, end ms, target) of each outward reach and its hold.
     trials: Vec<(usize, usize, [f64; 2])>,
+    /// The ms at which each hold in the target starts.
+    holds: Vec<usize>,
 }
 
 fn draw_movement(rng: &mut ChaCha8Rng, total_ms: usize, radius: f64) -> Movement {
     let mut segments = Vec::new();
     let mut trials = Vec::new();
+    let mut holds = Vec::new();
     let mut here = [0.0f64, 0.0];
     let scatter = Normal::new(0.0, 0.4).expect("valid sd");
     let mut len = 0usize;
@@ -174,6 +217,7 @@ fn draw_movement(rng: &mut ChaCha8Rng, total_ms: usize, radius: f64) -> Movement
             },
         );
         let ms = rng.random_range(300..500);
+        holds.push(len);
         let end = push(&mut segments, &mut len, Segment::Hold { at: endpoint, ms });
         trials.push((start, end, target));
         let home = [scatter.sample(rng) * 0.5, scatter.sample(rng) * 0.5];
@@ -190,7 +234,11 @@ fn draw_movement(rng: &mut ChaCha8Rng, total_ms: usize, radius: f64) -> Movement
         here = home;
     }
     trials.retain(|t| t.1 <= total_ms);
-    Movement { segments, trials }
+    Movement {
+        segments,
+        trials,
+        holds,
+    }
 }
 
 /// Walks a movement's segments a millisecond at a time.
@@ -287,6 +335,12 @@ pub fn simulate_to_dir(
     kin_out.finish()?;
     let trials = sim.trials();
     write_trials(dir, &trials)?;
+    if options.click.is_some() {
+        crate::formats::block::write_flags(
+            &dir.join(crate::formats::block::CLICK_FILE),
+            &sim.click_labels,
+        )?;
+    }
     Ok(SimWritten {
         n_bins,
         n_channels: n,
@@ -363,6 +417,7 @@ pub fn simulate(options: &SimOptions) -> Result<(Block, SimChannels), SimError> 
         trials: Some(trials),
         channel_labels: None,
         valid: None,
+        click: options.click.as_ref().map(|_| sim.click_labels.clone()),
         notes: Some(notes(options)),
     };
     Ok((session, channels))
@@ -379,6 +434,14 @@ fn notes(options: &SimOptions) -> String {
         "synthetic center-out block: seed {}, population {}, {} channels, {} min, positions in cm, velocities in cm/s",
         options.seed, options.population_seed, options.n_channels, options.minutes
     );
+    if let Some(c) = &options.click {
+        notes.push_str(&format!(
+            "; click attempts for {} ms from the start of each hold in the target, {:.0} % of channels at {}× their rate during them (click.npy)",
+            c.attempt_ms,
+            c.share * 100.0,
+            c.gain
+        ));
+    }
     if let Some(d) = &options.drift {
         let event = |e: &Option<crate::sim::drift::ChannelEvent>| {
             e.as_ref().map_or("none".to_string(), |e| {
@@ -407,6 +470,15 @@ fn notes(options: &SimOptions) -> String {
     notes
 }
 
+/// Whether ms `t` lies in the click attempt that starts a hold, moving
+/// `next` past attempts that have ended (times asked in increasing order).
+fn attempting(holds: &[usize], next: &mut usize, attempt_ms: usize, t: usize) -> bool {
+    while *next < holds.len() && holds[*next] + attempt_ms <= t {
+        *next += 1;
+    }
+    *next < holds.len() && holds[*next] <= t
+}
+
 /// The simulator as a stream of bins: movement drawn up front as segments,
 /// spikes drawn a millisecond at a time as bins are asked for. The same
 /// seeds give the same bins whether the block is built in memory
@@ -428,6 +500,12 @@ struct SimStream {
     factors: Vec<f64>,
     /// Bins drawn so far.
     bins_done: usize,
+    /// With clicks: the array's click channels, and the next hold whose
+    /// attempt has not ended.
+    click_channels: Vec<bool>,
+    next_hold: usize,
+    /// Whether each bin drawn so far was cued as a click.
+    click_labels: Vec<bool>,
 }
 
 impl SimStream {
@@ -440,6 +518,29 @@ impl SimStream {
     ) -> Result<SimStream, SimError> {
         let total_ms = n_bins * bin_ms;
         let movement = draw_movement(&mut rng, total_ms, options.target_radius);
+        if let Some(c) = &options.click {
+            if !(0.0..=1.0).contains(&c.share) {
+                return Err(SimError::Option {
+                    key: "click share",
+                    value: c.share.to_string(),
+                    expected: "a share from 0 to 1",
+                });
+            }
+            if !(c.gain.is_finite() && c.gain >= 0.0) {
+                return Err(SimError::Option {
+                    key: "click gain",
+                    value: c.gain.to_string(),
+                    expected: "a rate factor of 0 or more",
+                });
+            }
+            if c.attempt_ms == 0 {
+                return Err(SimError::Option {
+                    key: "click ms",
+                    value: "0".into(),
+                    expected: "at least 1 ms",
+                });
+            }
+        }
         if !(options.recovery_ms.is_finite() && options.recovery_ms >= 0.0) {
             return Err(SimError::Option {
                 key: "recovery_ms",
@@ -465,6 +566,11 @@ impl SimStream {
             },
             factors: vec![1.0; n],
             bins_done: 0,
+            click_channels: options.click.as_ref().map_or(Vec::new(), |c| {
+                click_channels(options.population_seed, n, c.share)
+            }),
+            next_hold: 0,
+            click_labels: Vec::new(),
         })
     }
 
@@ -479,11 +585,37 @@ impl SimStream {
             k: self.k,
         };
         let bin_start_ms = (self.bins_done * self.bin_ms) as f64;
+        let first_ms = self.bins_done * self.bin_ms;
         self.bins_done += 1;
         if let Some(d) = self.drift.as_mut() {
             d.bin_factors(bin_start_ms, &mut self.factors);
         }
+        if self.options.click.is_some() {
+            // A bin is cued when its middle lies in an attempt; the next
+            // hold is found from the bin's start.
+            let middle = first_ms + self.bin_ms / 2;
+            let holds = &self.movement.holds;
+            let attempt = self.options.click.as_ref().map_or(0, |c| c.attempt_ms);
+            let cued = holds[self.next_hold.min(holds.len())..]
+                .iter()
+                .take_while(|&&h| h <= middle)
+                .any(|&h| middle < h + attempt);
+            self.click_labels.push(cued);
+        }
         for j in 0..self.bin_ms {
+            let click_gain = match &self.options.click {
+                Some(c)
+                    if attempting(
+                        &self.movement.holds,
+                        &mut self.next_hold,
+                        c.attempt_ms,
+                        first_ms + j,
+                    ) =>
+                {
+                    c.gain
+                }
+                _ => 1.0,
+            };
             let (p, v) = cursor.next_ms();
             acc[0] += p[0];
             acc[1] += p[1];
@@ -498,6 +630,9 @@ impl SimStream {
                 let b = self.channels.beta[ch];
                 let mut rate_hz =
                     (self.channels.log_baseline[ch] + b[0] * v[0] + b[1] * v[1]).exp();
+                if click_gain != 1.0 && self.click_channels[ch] {
+                    rate_hz *= click_gain;
+                }
                 if let Some(d) = &self.drift {
                     rate_hz = d.rate_hz(ch, bin_start_ms + j as f64, rate_hz, self.factors[ch]);
                 }

@@ -34,6 +34,20 @@ pub struct Args {
     /// history matter to the encoding models.
     #[arg(long, default_value_t = 0.0)]
     pub recovery_ms: f64,
+    /// Click attempts: for --click-ms from the start of each hold in the
+    /// target, a share of the channels fire faster; the block gets
+    /// click.npy (the bins cued as clicks).
+    #[arg(long)]
+    pub click: bool,
+    /// With --click: the share of channels whose rate changes (0..1).
+    #[arg(long, requires = "click", default_value_t = 0.25)]
+    pub click_share: f64,
+    /// With --click: their rate during an attempt, as a factor.
+    #[arg(long, requires = "click", default_value_t = 2.0)]
+    pub click_gain: f64,
+    /// With --click: how long an attempt lasts, ms.
+    #[arg(long, requires = "click", default_value_t = 300)]
+    pub click_ms: usize,
     #[command(flatten)]
     pub world: super::world::WorldArgs,
 }
@@ -48,6 +62,11 @@ pub fn run(args: &Args) -> Result<()> {
         refractory_ms: args.refractory_ms,
         recovery_ms: args.recovery_ms,
         drift: args.world.drift()?,
+        click: args.click.then(|| decoder_core::sim::reaching::ClickSim {
+            share: args.click_share,
+            gain: args.click_gain,
+            attempt_ms: args.click_ms,
+        }),
         ..SimOptions::default()
     };
     // Written a chunk of bins at a time: a block of any length.

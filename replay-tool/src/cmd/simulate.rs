@@ -62,7 +62,7 @@ pub fn run(args: &Args) -> Result<()> {
         refractory_ms: args.refractory_ms,
         recovery_ms: args.recovery_ms,
         drift: args.world.drift()?,
-        click: args.click.then(|| decoder_core::sim::reaching::ClickSim {
+        click: args.click.then_some(decoder_core::sim::reaching::ClickSim {
             share: args.click_share,
             gain: args.click_gain,
             attempt_ms: args.click_ms,

@@ -400,4 +400,38 @@ fn simulate_draws_a_drifting_array_when_asked() {
         2,
     );
     assert!(e.contains("gain_max"), "{e}");
+
+    // Click cues come with --click, and the options are checked by name.
+    let clicks = dir.path().join("clicks");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&clicks),
+        "--minutes",
+        "0.5",
+        "--channels",
+        "8",
+        "--click",
+        "--click-ms",
+        "200",
+    ]);
+    let block = decoder_core::Block::read(&clicks).unwrap();
+    let cued = block.click.unwrap().iter().filter(|c| **c).count();
+    let trials = block.trials.unwrap().len();
+    assert!(
+        cued.abs_diff(10 * trials) <= trials,
+        "{cued} cued, {trials} trials"
+    );
+    let e = fails_with(
+        &[
+            "simulate",
+            "--out",
+            p(&dir.path().join("z")),
+            "--click",
+            "--click-share",
+            "2",
+        ],
+        2,
+    );
+    assert!(e.contains("click share"), "{e}");
 }

@@ -139,6 +139,7 @@ fn replay_throughput(c: &mut Criterion) {
             bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
             decoder: DecoderModel::Kalman(model),
             provenance: Provenance::untracked(),
+            click: None,
         };
         let mut pipeline = mf.pipeline().unwrap();
         let name = if steady { "steady/192" } else { "full/192" };

@@ -54,6 +54,7 @@ fn point_process_model() -> ModelFile {
         bin_width: block.bin_width,
         decoder: DecoderModel::PointProcess(pp),
         provenance: decoder_core::formats::model_file::Provenance::untracked(),
+        click: None,
     }
 }
 

@@ -41,6 +41,7 @@ fn model_file(decoder: DecoderModel) -> ModelFile {
         bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder,
         provenance: Provenance::untracked(),
+        click: None,
     }
 }
 

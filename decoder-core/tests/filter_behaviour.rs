@@ -114,6 +114,7 @@ fn velocity_only_layout_decodes() {
         bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder: DecoderModel::Kalman(model),
         provenance: Provenance::untracked(),
+        click: None,
     };
     let mut p = mf.pipeline().unwrap();
     let (est, faults) = replay_block(&mut p, &test).unwrap();

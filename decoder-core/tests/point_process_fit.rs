@@ -123,6 +123,7 @@ fn an_absurd_rate_is_clamped_counted_and_stays_finite() {
             history_basis: None,
         }),
         provenance: Provenance::untracked(),
+        click: None,
     };
     let mut p = model.pipeline().unwrap();
     let est = p.step(0, &[3, 1]);

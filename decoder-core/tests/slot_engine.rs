@@ -483,6 +483,7 @@ fn a_numerical_fault_never_puts_a_non_finite_value_in_a_packet() {
         bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
         decoder: decoder_core::DecoderModel::Wiener(wiener),
         provenance: decoder_core::Provenance::untracked(),
+        click: None,
     };
     let mut rig = Rig::new(true);
     rig.engine = SlotEngine::new(settings(true), m.pipeline().unwrap());

@@ -14,12 +14,14 @@ use serde_json::{Value, json};
 
 use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
+use crate::decoders::click::ClickModel;
 use crate::engine::pipeline::{DecodePipeline, PipelineError};
 
 pub const MODEL_MAGIC: &[u8; 8] = b"VDECMODL";
-/// Version 2 carries typed provenance (cross-validated scores, silent
-/// channels); version 1 files, whose scores were JSON text, are still read.
-pub const MODEL_FORMAT_VERSION: u32 = 2;
+/// Version 3 may carry a click decoder beside the velocity decoder;
+/// version 2 (typed provenance) and version 1 (scores as JSON text) files
+/// are still read, as models without one.
+pub const MODEL_FORMAT_VERSION: u32 = 3;
 const HEADER_LEN: usize = 8 + 4 + 8 + 4;
 /// Largest payload a model file may declare (1 GiB).
 const MAX_PAYLOAD: usize = 1 << 30;
@@ -129,6 +131,7 @@ mod v1 {
                     silent_channels,
                     cv,
                 },
+                click: None,
             }
         }
     }
@@ -141,6 +144,17 @@ pub struct ModelFile {
     pub bin_width: BinWidth,
     pub decoder: DecoderModel,
     pub provenance: Provenance,
+    /// A click decoder trained beside the velocity decoder, if any.
+    pub click: Option<ClickModel>,
+}
+
+/// The version 2 layout: a model file without a click decoder.
+#[derive(Deserialize)]
+struct ModelFileV2 {
+    #[serde(with = "crate::bin_width::as_ms")]
+    bin_width: BinWidth,
+    decoder: DecoderModel,
+    provenance: Provenance,
 }
 
 #[derive(Debug, thiserror::Error)]
@@ -274,22 +288,52 @@ impl ModelFile {
             path: path_s.clone(),
             problem: e.to_string(),
         };
-        let model: ModelFile = if version == 1 {
-            let (m, _): (v1::ModelFileV1, usize) =
-                bincode::serde::decode_from_slice(payload, config).map_err(decode_error)?;
-            m.into()
-        } else {
-            bincode::serde::decode_from_slice(payload, config)
-                .map_err(decode_error)?
-                .0
+        let model: ModelFile = match version {
+            1 => {
+                let (m, _): (v1::ModelFileV1, usize) =
+                    bincode::serde::decode_from_slice(payload, config).map_err(decode_error)?;
+                m.into()
+            }
+            2 => {
+                let (m, _): (ModelFileV2, usize) =
+                    bincode::serde::decode_from_slice(payload, config).map_err(decode_error)?;
+                ModelFile {
+                    bin_width: m.bin_width,
+                    decoder: m.decoder,
+                    provenance: m.provenance,
+                    click: None,
+                }
+            }
+            _ => {
+                bincode::serde::decode_from_slice(payload, config)
+                    .map_err(decode_error)?
+                    .0
+            }
         };
         model
             .decoder
             .validate()
             .map_err(|source| ModelFileError::Invalid {
-                path: path_s,
+                path: path_s.clone(),
                 source,
             })?;
+        if let Some(c) = &model.click {
+            let problem = match c.validate() {
+                Err(e) => Some(e.to_string()),
+                Ok(()) if c.n_channels != model.decoder.n_channels() => Some(format!(
+                    "its click decoder reads {} channels, its velocity decoder {}",
+                    c.n_channels,
+                    model.decoder.n_channels()
+                )),
+                Ok(()) => None,
+            };
+            if let Some(problem) = problem {
+                return Err(ModelFileError::Decode {
+                    path: path_s,
+                    problem,
+                });
+            }
+        }
         Ok(model)
     }
 
@@ -346,6 +390,22 @@ pub fn export_json(model: &ModelFile) -> Value {
         "cv": cv,
     });
     let map = obj.as_object_mut().expect("object");
+    map.insert(
+        "click".into(),
+        model.click.as_ref().map_or(Value::Null, |c| {
+            json!({
+                "kind": "lda-hmm",
+                "lags": c.lags,
+                "weights": (0..c.lags)
+                    .map(|l| c.weights[l * c.n_channels..(l + 1) * c.n_channels].to_vec())
+                    .collect::<Vec<_>>(),
+                "intercept": c.intercept,
+                "prior_click": c.prior_click,
+                "stay_rest": c.stay_rest,
+                "stay_click": c.stay_click,
+            })
+        }),
+    );
     match &model.decoder {
         DecoderModel::Kalman(k) => {
             map.insert("state".into(), json!(k.state));
@@ -477,7 +537,7 @@ mod tests {
     }
 
     #[test]
-    fn a_version_2_file_round_trips_and_version_3_is_refused() {
+    fn a_version_3_file_round_trips_a_version_2_file_reads_and_version_4_is_refused() {
         let mut p = Provenance::untracked();
         p.cv = Some(CrossValidation {
             folds: 3,
@@ -490,19 +550,79 @@ mod tests {
             }],
             per_fold: vec![],
         });
-        let m = ModelFile {
+        let without = ModelFile {
             bin_width: BinWidth::from_us(1_000).unwrap(),
             decoder: wiener(),
             provenance: p,
+            click: None,
+        };
+        let n = without.decoder.n_channels();
+        let m = ModelFile {
+            click: Some(ClickModel {
+                n_channels: n,
+                lags: 2,
+                weights: (0..2 * n).map(|i| i as f64 * 0.1 - 0.3).collect(),
+                intercept: -2.5,
+                prior_click: 0.05,
+                stay_rest: 0.99,
+                stay_click: 0.9,
+            }),
+            ..without.clone()
         };
         let bytes = m.to_bytes();
-        assert_eq!(u32::from_le_bytes(bytes[8..12].try_into().unwrap()), 2);
+        assert_eq!(u32::from_le_bytes(bytes[8..12].try_into().unwrap()), 3);
         assert_eq!(ModelFile::from_bytes(&bytes, "m").unwrap(), m);
+        assert_eq!(
+            export_json(&m)["click"]["weights"][1]
+                .as_array()
+                .unwrap()
+                .len(),
+            n
+        );
+        assert!(export_json(&without)["click"].is_null());
+
+        // A file written before click decoders existed: the version 2
+        // payload (the same fields, no click), read as a model without one.
+        #[derive(Serialize)]
+        struct V2<'a> {
+            #[serde(with = "crate::bin_width::as_ms")]
+            bin_width: BinWidth,
+            decoder: &'a DecoderModel,
+            provenance: &'a Provenance,
+        }
+        let payload = bincode::serde::encode_to_vec(
+            V2 {
+                bin_width: without.bin_width,
+                decoder: &without.decoder,
+                provenance: &without.provenance,
+            },
+            bincode::config::standard(),
+        )
+        .unwrap();
+        let mut v2 = MODEL_MAGIC.to_vec();
+        v2.extend_from_slice(&2u32.to_le_bytes());
+        v2.extend_from_slice(&(payload.len() as u64).to_le_bytes());
+        v2.extend_from_slice(&crc32fast::hash(&payload).to_le_bytes());
+        v2.extend_from_slice(&payload);
+        assert_eq!(ModelFile::from_bytes(&v2, "old").unwrap(), without);
+
         let mut future = bytes.clone();
-        future[8..12].copy_from_slice(&3u32.to_le_bytes());
+        future[8..12].copy_from_slice(&4u32.to_le_bytes());
         assert!(matches!(
             ModelFile::from_bytes(&future, "m"),
-            Err(ModelFileError::UnsupportedVersion { found: 3, .. })
+            Err(ModelFileError::UnsupportedVersion { found: 4, .. })
         ));
+
+        // A click decoder over another array than the velocity decoder's
+        // is refused, naming both.
+        let mut odd = m.clone();
+        if let Some(c) = odd.click.as_mut() {
+            c.n_channels += 1;
+            c.weights.extend([0.0, 0.0]);
+        }
+        let e = ModelFile::from_bytes(&odd.to_bytes(), "odd")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("click decoder reads"), "{e}");
     }
 }

@@ -134,6 +134,7 @@ pub fn train(
             silent_channels,
             cv,
         },
+        click: None,
     };
     // Never hand back a model its readers would refuse.
     model.decoder.validate()?;

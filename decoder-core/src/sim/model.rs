@@ -33,6 +33,7 @@ pub fn simulated_kalman(
         bin_width: block.bin_width,
         decoder: DecoderModel::Kalman(kalman),
         provenance: Provenance::untracked(),
+        click: None,
     };
     Ok((model, block))
 }

@@ -6,7 +6,9 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result, bail};
 use decoder_core::TrainError;
 use decoder_core::decoders::DecoderModel;
+use decoder_core::decoders::click::ClickModel;
 use decoder_core::decoders::point_process::ChannelGlm;
+use decoder_core::fit::click::fit_click;
 use decoder_core::fit::config::TrainConfig;
 use decoder_core::fit::evaluate::DecoderSpec;
 use decoder_core::fit::point_process::{ChannelLeftOut, PointProcessFitOptions, fit_channels};
@@ -69,6 +71,20 @@ pub struct Args {
     /// Skip the cross-validation that fills the model's `cv` scores.
     #[arg(long)]
     pub no_cv: bool,
+    /// Also fit a click decoder from the block's click cues (click.npy)
+    /// into the same model file: a linear discriminant on the counts of
+    /// the last --click-lags bins, filtered by a two-state hidden Markov
+    /// model.
+    #[arg(long)]
+    pub click: bool,
+    /// With --click: bins of counts the discriminant reads (the current
+    /// one and those before it).
+    #[arg(long, requires = "click", default_value_t = 6)]
+    pub click_lags: usize,
+    /// With --click: shrinkage of the discriminant's covariance toward its
+    /// mean variance, 0 to 1.
+    #[arg(long, requires = "click", default_value_t = 0.05)]
+    pub click_shrinkage: f64,
 }
 
 /// The validated configuration after flags.
@@ -196,6 +212,11 @@ pub fn run(args: &Args) -> Result<()> {
     let spec = spec_for(args.decoder, &cfg);
     let folds = if args.no_cv { None } else { Some(cfg.folds) };
     if args.session.len() > 1 {
+        if args.click {
+            bail!(
+                "--click fits the click decoder from one block; give --session once (the velocity decoder can train on several)"
+            );
+        }
         if args.refit {
             bail!(
                 "--refit retrains from one closed-loop block or log; give --session once (or refit each and train on the refit blocks)"
@@ -301,8 +322,41 @@ fn train_several(
         .with_context(|| format!("training on {}", describe_sessions(sessions)))
 }
 
+/// The click decoder of `source`'s click cues (its valid rows).
+fn fit_click_on(args: &Args, source: &Path) -> Result<ClickModel> {
+    let opened = Session::at(source)?.block_with_kinematics()?;
+    let block = opened.block.valid_only();
+    let Some(click) = &block.click else {
+        bail!(
+            "{}: no click cues; --click needs click.npy in the session directory (one bool a bin, true where the task cued a click), as simulate --click writes",
+            source.display()
+        );
+    };
+    let model = fit_click(
+        &block.counts,
+        block.n_channels,
+        click,
+        args.click_lags,
+        args.click_shrinkage,
+    )
+    .with_context(|| format!("fitting the click decoder on {}", source.display()))?;
+    println!(
+        "click decoder: {} lags, {} cued click bins of {} ({:.1} %), P(stay at rest) {:.4}, P(stay in a click) {:.4}",
+        model.lags,
+        click.iter().filter(|c| **c).count(),
+        click.len(),
+        100.0 * model.prior_click,
+        model.stay_rest,
+        model.stay_click
+    );
+    Ok(model)
+}
+
 fn write_model(args: &Args, trained: Trained, source: &str) -> Result<()> {
-    let model = trained.model;
+    let mut model = trained.model;
+    if args.click {
+        model.click = Some(fit_click_on(args, &args.session[0])?);
+    }
     // Never write a file its readers would refuse.
     let bytes = model.to_bytes();
     ModelFile::from_bytes(&bytes, &args.out.display().to_string())

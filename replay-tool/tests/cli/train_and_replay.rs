@@ -435,3 +435,67 @@ fn simulate_draws_a_drifting_array_when_asked() {
     );
     assert!(e.contains("click share"), "{e}");
 }
+
+/// `train --click` fits a click decoder from the block's click cues into
+/// the same model file, beside the velocity decoder; a block without cues
+/// is refused with what to provide.
+#[test]
+fn train_with_click_puts_a_click_decoder_beside_the_velocity_decoder() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = fixture::block("1", "16", &["--click"]);
+    let model = dir.path().join("vc.model");
+    let said = ok(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--click",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    assert!(said.contains("click decoder: 6 lags"), "{said}");
+    let shown: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+    let click = &shown["click"];
+    assert_eq!(click["kind"], "lda-hmm");
+    assert_eq!(click["weights"].as_array().unwrap().len(), 6);
+    assert_eq!(click["weights"][0].as_array().unwrap().len(), 16);
+    let cued = decoder_core::Block::read(&block)
+        .unwrap()
+        .click
+        .unwrap()
+        .iter()
+        .filter(|c| **c)
+        .count() as f64;
+    let prior = click["prior_click"].as_f64().unwrap();
+    // The prior is the share of cued bins among the rows the discriminant
+    // reads (all but the first 5).
+    assert!((prior - cued / 2995.0).abs() < 1e-12, "{prior}");
+    // The velocity decoder is the one trained without --click.
+    let plain = fixture::kalman(&fixture::block("1", "16", &["--click"]));
+    let plain: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&plain), "--json"])).unwrap();
+    assert_eq!(shown["H"], plain["H"]);
+    assert!(plain["click"].is_null());
+
+    let err = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&fixture::block("1", "16", &[])),
+            "--decoder",
+            "kalman",
+            "--click",
+            "--out",
+            p(&dir.path().join("x.model")),
+            "--no-cv",
+        ],
+        2,
+    );
+    assert!(
+        err.contains("no click cues") && err.contains("click.npy"),
+        "{err}"
+    );
+}

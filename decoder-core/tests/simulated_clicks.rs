@@ -131,3 +131,27 @@ fn a_block_without_clicks_is_drawn_as_before() {
     assert_eq!(a.kinematics, b.kinematics);
     assert_eq!(a.trials, b.trials);
 }
+
+/// Cross-validated on a simulated block: the click probability separates
+/// the cues on held-out bins, most attempts are caught within 300 ms of
+/// their end, and false clicks are rare.
+#[test]
+fn cross_validated_clicks_are_caught_and_rarely_false() {
+    use decoder_core::decoders::click::ClickGate;
+    use decoder_core::fit::click::cross_validate_click;
+    let (block, _) = simulate(&SimOptions {
+        n_channels: 32,
+        ..options()
+    })
+    .unwrap();
+    let click = block.click.unwrap();
+    let gate = ClickGate::new(0.9, 5, 25);
+    let s =
+        cross_validate_click(&block.counts, 32, &click, 6, 0.05, 5, &gate, 20.0, 300.0).unwrap();
+    // Measured: AUC 0.91, 96 of 107 attempts caught (median 160 ms from
+    // the cue), 2.25 false clicks a minute, with a gate of p ≥ 0.9 for 5
+    // bins and 500 ms refractory, on 32 channels of which 8 click.
+    assert!(s.auc > 0.85, "{s:?}");
+    assert!(s.caught as f64 >= 0.8 * s.cues as f64, "{s:?}");
+    assert!(s.false_per_minute < 4.0, "{s:?}");
+}

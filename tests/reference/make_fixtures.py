@@ -45,7 +45,8 @@ Writes, into the directory given as the only argument:
                           bins (coefficients, intercept, posteriors), the
                           label sequence's transitions, and the two-state
                           forward recursion (Rabiner 1989) written out in
-                          numpy over those posteriors
+                          numpy over those posteriors, and sklearn's
+                          roc_auc_score of the filtered probability
   versions.txt            the versions that produced all of this
 
 The data are synthetic and seeded; nothing here is recorded data.
@@ -66,7 +67,7 @@ import statsmodels.api as sm
 from filterpy.kalman import KalmanFilter
 from sklearn.discriminant_analysis import LinearDiscriminantAnalysis
 from sklearn.linear_model import Ridge
-from sklearn.metrics import r2_score
+from sklearn.metrics import r2_score, roc_auc_score
 
 SEED = 20261202
 T = 2000          # bins
@@ -482,6 +483,8 @@ def click_fixtures(out):
     np.save(os.path.join(out, "click_lda_proba.npy"), proba)
     np.save(os.path.join(out, "click_transitions.npy"), np.array([stay_rest, stay_click]))
     np.save(os.path.join(out, "click_forward.npy"), forward)
+    # The area under the ROC curve of the filtered probability, bin by bin.
+    np.save(os.path.join(out, "click_auc.npy"), np.array([roc_auc_score(labels, forward)]))
 
 
 if __name__ == "__main__":

@@ -719,4 +719,14 @@ fn click_decoder_equals_sklearn_lda_and_the_numpy_forward_recursion() {
         1e-9,
         1e-12,
     );
+    // The area under the ROC curve, as sklearn.metrics.roc_auc_score
+    // computes it, on the numpy forward probabilities.
+    let auc = decoder_core::fit::click::roc_auc(&fixture("click_forward.npy").1, &labels);
+    assert_close(
+        "click AUC vs sklearn roc_auc_score",
+        &[auc],
+        &fixture("click_auc.npy").1,
+        1e-12,
+        0.0,
+    );
 }

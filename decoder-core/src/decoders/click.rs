@@ -200,6 +200,57 @@ impl ClickFilter {
     }
 }
 
+/// Turns the click probability into clicks: a click when the probability
+/// has stayed at or above `threshold` for `hold_bins` bins in a row, then
+/// none for `refractory_bins` bins; never while not `allowed` (the
+/// caller's say: not armed, coasting, halted, moving fast), which also
+/// restarts the count.
+#[derive(Clone, Debug, PartialEq)]
+pub struct ClickGate {
+    pub threshold: f64,
+    pub hold_bins: usize,
+    pub refractory_bins: usize,
+    above: usize,
+    cooldown: usize,
+}
+
+impl ClickGate {
+    pub fn new(threshold: f64, hold_bins: usize, refractory_bins: usize) -> ClickGate {
+        ClickGate {
+            threshold,
+            hold_bins: hold_bins.max(1),
+            refractory_bins,
+            above: 0,
+            cooldown: 0,
+        }
+    }
+
+    pub fn reset(&mut self) {
+        self.above = 0;
+        self.cooldown = 0;
+    }
+
+    /// One bin's probability in: whether this bin makes a click.
+    pub fn step(&mut self, p_click: f64, allowed: bool) -> bool {
+        if self.cooldown > 0 {
+            self.cooldown -= 1;
+            self.above = 0;
+            return false;
+        }
+        if !allowed || !(p_click >= self.threshold) {
+            self.above = 0;
+            return false;
+        }
+        self.above += 1;
+        if self.above >= self.hold_bins {
+            self.above = 0;
+            self.cooldown = self.refractory_bins;
+            return true;
+        }
+        false
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -246,6 +297,26 @@ mod tests {
         assert!(after < before && after > balance, "{before} -> {after}");
         f.reset();
         assert_eq!(f.probability(), 0.1);
+    }
+
+    #[test]
+    fn the_gate_clicks_after_the_hold_then_waits_out_the_refractory_time() {
+        let mut g = ClickGate::new(0.8, 3, 4);
+        let p = [
+            0.9, 0.95, 0.9, 0.99, 0.99, 0.99, 0.99, 0.99, 0.99, 0.99, 0.99, 0.5,
+        ];
+        let clicks: Vec<bool> = p.iter().map(|&p| g.step(p, true)).collect();
+        // Bins 0-2 hold: a click at 2; 3-6 refractory; 7-9 hold: a click
+        // at 9; 10 refractory; 11 below.
+        let at: Vec<usize> = (0..p.len()).filter(|&i| clicks[i]).collect();
+        assert_eq!(at, vec![2, 9]);
+        // Not allowed: no click, and the count starts again.
+        let mut g = ClickGate::new(0.8, 2, 0);
+        assert!(!g.step(0.9, true));
+        assert!(!g.step(0.9, false));
+        assert!(!g.step(0.9, true));
+        assert!(g.step(0.9, true));
+        assert!(!g.step(f64::NAN, true));
     }
 
     #[test]

@@ -14,7 +14,7 @@
 
 use nalgebra::{DMatrix, DVector};
 
-use crate::decoders::click::ClickModel;
+use crate::decoders::click::{ClickFilter, ClickGate, ClickModel};
 
 /// Why a click decoder cannot be fitted.
 #[derive(Debug, thiserror::Error, PartialEq)]
@@ -208,4 +208,192 @@ pub fn fit_click(
         stay_rest,
         stay_click,
     })
+}
+
+/// How well clicks are decoded, as the field reports it.
+#[derive(Clone, Debug, PartialEq, serde::Serialize)]
+pub struct ClickScores {
+    /// Area under the ROC curve of the filtered click probability against
+    /// the cues, bin by bin (0.5 is chance).
+    pub auc: f64,
+    /// Cued click attempts (runs of cued bins), and those with a click
+    /// from their first bin to `catch_ms` after their last.
+    pub cues: usize,
+    pub caught: usize,
+    /// Clicks outside every such window, per minute of decoding.
+    pub false_per_minute: f64,
+    /// Median time from a caught cue's first bin to its first click, ms.
+    pub median_latency_ms: Option<f64>,
+    /// The window after a cue's end within which a click still counts.
+    pub catch_ms: f64,
+}
+
+/// Area under the ROC curve of `score` for `positive` (Mann–Whitney: the
+/// share of (positive, negative) pairs ranked the right way, ties as
+/// half); NaN without both classes.
+pub fn roc_auc(score: &[f64], positive: &[bool]) -> f64 {
+    let mut order: Vec<usize> = (0..score.len()).collect();
+    order.sort_by(|&a, &b| score[a].total_cmp(&score[b]));
+    // Mid-ranks, ties sharing the mean of their ranks.
+    let mut rank = vec![0.0; score.len()];
+    let mut i = 0;
+    while i < order.len() {
+        let mut j = i;
+        while j + 1 < order.len() && score[order[j + 1]] == score[order[i]] {
+            j += 1;
+        }
+        let mid = (i + j) as f64 / 2.0 + 1.0;
+        for &k in &order[i..=j] {
+            rank[k] = mid;
+        }
+        i = j + 1;
+    }
+    let n_pos = positive.iter().filter(|p| **p).count() as f64;
+    let n_neg = positive.len() as f64 - n_pos;
+    let sum_pos: f64 = rank
+        .iter()
+        .zip(positive)
+        .filter(|(_, p)| **p)
+        .map(|(r, _)| r)
+        .sum();
+    (sum_pos - n_pos * (n_pos + 1.0) / 2.0) / (n_pos * n_neg)
+}
+
+/// Scores decoded clicks against the cues of the same bins.
+pub fn score_clicks(
+    p_click: &[f64],
+    clicks: &[bool],
+    cued: &[bool],
+    bin_ms: f64,
+    catch_ms: f64,
+) -> ClickScores {
+    let t = cued.len();
+    let after = (catch_ms / bin_ms).ceil() as usize;
+    // The cues as runs of bins, and the window each may be caught in.
+    let mut runs = Vec::new();
+    let mut b = 0;
+    while b < t {
+        if cued[b] {
+            let start = b;
+            while b < t && cued[b] {
+                b += 1;
+            }
+            runs.push((start, b, (b + after).min(t)));
+        } else {
+            b += 1;
+        }
+    }
+    let mut in_window = vec![false; t];
+    let mut latencies = Vec::new();
+    let mut caught = 0;
+    for &(start, _, until) in &runs {
+        in_window[start..until].fill(true);
+        if let Some(first) = (start..until).find(|&k| clicks[k]) {
+            caught += 1;
+            latencies.push((first - start) as f64 * bin_ms);
+        }
+    }
+    let false_clicks = (0..t).filter(|&k| clicks[k] && !in_window[k]).count();
+    latencies.sort_by(f64::total_cmp);
+    let median = if latencies.is_empty() {
+        None
+    } else {
+        let m = latencies.len() / 2;
+        Some(if latencies.len() % 2 == 1 {
+            latencies[m]
+        } else {
+            (latencies[m - 1] + latencies[m]) / 2.0
+        })
+    };
+    ClickScores {
+        auc: roc_auc(p_click, cued),
+        cues: runs.len(),
+        caught,
+        false_per_minute: false_clicks as f64 / (t as f64 * bin_ms / 60_000.0),
+        median_latency_ms: median,
+        catch_ms,
+    }
+}
+
+/// Cross-validated click decoding: `k` contiguous folds of the bins; each
+/// fold's decoder is fitted on the rows whose whole window lies outside
+/// the fold, then run from its start over the fold (filter and `gate`,
+/// every bin allowed); the scores are over all held-out bins together.
+#[allow(clippy::too_many_arguments)]
+pub fn cross_validate_click(
+    counts: &[u16],
+    n: usize,
+    cued: &[bool],
+    lags: usize,
+    shrinkage: f64,
+    k: usize,
+    gate: &ClickGate,
+    bin_ms: f64,
+    catch_ms: f64,
+) -> Result<ClickScores, ClickFitError> {
+    if lags == 0 {
+        return Err(ClickFitError::Lags(lags));
+    }
+    let t = cued.len();
+    let (x, y) = lagged_rows(counts, n, cued, lags);
+    let mut p_all = Vec::with_capacity(t);
+    let mut clicks_all = Vec::with_capacity(t);
+    for fold in crate::fit::folds::split_evenly(t, k.max(2)) {
+        // Row r of the design is bin r + lags − 1, reading bins r ..= r + lags − 1.
+        let keep: Vec<usize> = (0..x.len())
+            .filter(|&r| r + lags - 1 < fold.start || r >= fold.end)
+            .collect();
+        let xs: Vec<Vec<f64>> = keep.iter().map(|&r| x[r].clone()).collect();
+        let ys: Vec<bool> = keep.iter().map(|&r| y[r]).collect();
+        let d = fit_discriminant(&xs, &ys, shrinkage)?;
+        let train_labels: Vec<bool> = (0..t)
+            .filter(|b| !fold.contains(b))
+            .map(|b| cued[b])
+            .collect();
+        let (stay_rest, stay_click) = transitions(&train_labels)?;
+        let model = ClickModel {
+            n_channels: n,
+            lags,
+            weights: d.weights,
+            intercept: d.intercept,
+            prior_click: d.prior,
+            stay_rest,
+            stay_click,
+        };
+        let mut filter = ClickFilter::new(model).map_err(|_| ClickFitError::Singular)?;
+        let mut g = gate.clone();
+        g.reset();
+        for b in fold {
+            let p = filter.step(&counts[b * n..(b + 1) * n]);
+            p_all.push(p);
+            clicks_all.push(g.step(p, true));
+        }
+    }
+    Ok(score_clicks(&p_all, &clicks_all, cued, bin_ms, catch_ms))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn caught_false_and_latency_are_counted_as_defined() {
+        // 20 ms bins; two cues (bins 2-4 and 10-11), a 40 ms catch window
+        // (2 bins) after each.
+        let mut cued = vec![false; 20];
+        cued[2..5].fill(true);
+        cued[10..12].fill(true);
+        let mut clicks = vec![false; 20];
+        clicks[6] = true; // within 2 bins after the first cue: caught, 80 ms
+        clicks[15] = true; // outside every window: false
+        let p: Vec<f64> = cued.iter().map(|&c| if c { 0.9 } else { 0.1 }).collect();
+        let s = score_clicks(&p, &clicks, &cued, 20.0, 40.0);
+        assert_eq!((s.cues, s.caught), (2, 1));
+        assert_eq!(s.median_latency_ms, Some(80.0));
+        // One false click in 20 bins of 20 ms = 0.4 s: 150 a minute.
+        assert!((s.false_per_minute - 150.0).abs() < 1e-9);
+        assert_eq!(s.auc, 1.0);
+        // Ties count half: a constant score is chance.
+        assert_eq!(roc_auc(&[0.5; 20], &cued), 0.5);
+    }
 }

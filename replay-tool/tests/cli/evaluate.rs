@@ -201,3 +201,46 @@ fn sharded_evaluation_merges_to_the_unsharded_result() {
     );
     assert!(err.contains("--shard 3/2"), "{err}");
 }
+
+/// `evaluate --click` cross-validates a click decoder on the block's cues
+/// beside the velocity decoders and writes click.json.
+#[test]
+fn evaluate_with_click_scores_the_click_decoder() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = fixture::block("1", "16", &["--click"]);
+    let report = dir.path().join("r");
+    let said = ok(&[
+        "evaluate",
+        "--session",
+        p(&block),
+        "--click",
+        "--report",
+        p(&report),
+    ]);
+    assert!(
+        said.contains("click decoder (5 contiguous folds): AUC"),
+        "{said}"
+    );
+    let c = json_file(&report.join("click.json"));
+    for key in [
+        "auc",
+        "cues",
+        "caught",
+        "false_per_minute",
+        "median_latency_ms",
+        "catch_ms",
+    ] {
+        assert!(c.get(key).is_some(), "{key}: {c}");
+    }
+    assert!(c["auc"].as_f64().unwrap() > 0.6, "{c}");
+    let err = fails_with(
+        &[
+            "evaluate",
+            "--session",
+            p(&fixture::block("1", "16", &[])),
+            "--click",
+        ],
+        2,
+    );
+    assert!(err.contains("no click cues"), "{err}");
+}

@@ -237,7 +237,9 @@ impl ClickGate {
             self.above = 0;
             return false;
         }
-        if !allowed || !(p_click >= self.threshold) {
+        // NaN is never at or above the threshold.
+        let reached = p_click >= self.threshold;
+        if !allowed || !reached {
             self.above = 0;
             return false;
         }

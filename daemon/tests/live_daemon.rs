@@ -837,6 +837,10 @@ fn task_packets_are_recorded_and_counted_and_a_flood_of_them_delays_no_bin() {
             s.trial = (i / 100) as u32;
             s.bin_seq = i / 20;
             s.flags = TASK_FLAG_CLOSED_LOOP | TASK_FLAG_TARGET_VALID;
+            if s.trial % 2 == 1 {
+                // The task cues a click during odd trials.
+                s.flags |= decoder_core::wire::task_packet::TASK_FLAG_CLICK_CUE;
+            }
             s.target_radius = 1.0;
             s.cursor_pos[0] = i as f64;
             encode_task(&s, &mut bytes);
@@ -872,6 +876,27 @@ fn task_packets_are_recorded_and_counted_and_a_flood_of_them_delays_no_bin() {
     assert!(s.task.last_age_s.unwrap() < 60.0);
     assert!(s.table().contains("trial 19 reach"), "{}", s.table());
     let ended = d.stop();
+    // The click cues come out of the log with the rows: a row is cued when
+    // the task state it was counted under cued a click.
+    let lb = decoder_core::formats::log_block::read_log_block(&ended.session_log).unwrap();
+    let click = lb.block.click.as_ref().expect("the log has click cues");
+    for (row, task) in lb.task.iter().enumerate() {
+        assert_eq!(
+            click[row],
+            task.is_some_and(|t| t.trial % 2 == 1),
+            "row {row}"
+        );
+    }
+    assert!(click.iter().any(|c| *c) && click.iter().any(|c| !*c));
+    let dir = tempfile::tempdir().unwrap();
+    decoder_core::formats::log_block::export_log(&ended.session_log, dir.path()).unwrap();
+    assert_eq!(
+        decoder_core::Block::read(dir.path())
+            .unwrap()
+            .click
+            .as_ref(),
+        Some(click)
+    );
     // Every task datagram is in the log as read, malformed ones too, and
     // the bins still replay bit for bit beside them.
     let mut reader = LogReader::open(&ended.session_log).unwrap();

@@ -194,6 +194,15 @@ impl RowTask {
         self.index[row].map(|i| &self.tasks[i as usize])
     }
 
+    /// Per row, whether the task was cueing a click while it was counted;
+    /// `None` when no task packet ever cued one.
+    fn clicks(&self, rows: usize) -> Option<Vec<bool>> {
+        let cued: Vec<bool> = (0..rows)
+            .map(|r| self.of(r).is_some_and(TaskState::click_cued))
+            .collect();
+        cued.iter().any(|c| *c).then_some(cued)
+    }
+
     /// The kinematics row (pos, vel) of `row`; zeros without task state.
     fn kinematics(&self, row: usize, out: &mut [f64]) {
         let d = self.dims.unwrap_or(2);
@@ -262,7 +271,7 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
         channel_labels: None,
         notes: Some(notes(path, &seqs, &summary)),
         valid: Some(valid),
-        click: None,
+        click: rt.clicks(rows),
     };
     Ok(LogBlock {
         block,
@@ -397,6 +406,9 @@ pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockEr
         .write_npy(&mut v)
         .expect("in-memory npy write");
     write_atomic(&dir.join(VALID_FILE), &v)?;
+    if let Some(click) = rt.clicks(rows) {
+        crate::formats::block::write_flags(&dir.join(crate::formats::block::CLICK_FILE), &click)?;
+    }
     Ok(summary)
 }
 

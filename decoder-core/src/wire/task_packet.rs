@@ -20,6 +20,10 @@ pub const MAX_TASK_DIMS: usize = 8;
 pub const TASK_FLAG_CLOSED_LOOP: u32 = 1 << 0;
 /// Flag: `target_pos` and `target_radius` hold a target.
 pub const TASK_FLAG_TARGET_VALID: u32 = 1 << 1;
+/// Flag: the task is cueing a click (the participant is attempting one).
+pub const TASK_FLAG_CLICK_CUE: u32 = 1 << 2;
+/// Flag: the task selects a target by click (not by dwelling in it).
+pub const TASK_FLAG_SELECT_BY_CLICK: u32 = 1 << 3;
 
 /// The exact length of a task packet with `dims` position dimensions.
 pub const fn task_packet_len(dims: usize) -> usize {
@@ -114,6 +118,10 @@ impl TaskState {
 
     pub fn target_valid(&self) -> bool {
         self.flags & TASK_FLAG_TARGET_VALID != 0
+    }
+
+    pub fn click_cued(&self) -> bool {
+        self.flags & TASK_FLAG_CLICK_CUE != 0
     }
 
     pub fn cursor_pos(&self) -> &[f64] {

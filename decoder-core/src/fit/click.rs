@@ -46,76 +46,138 @@ pub struct Discriminant {
     pub prior: f64,
 }
 
-/// One class's shrunk covariance, as scikit-learn's `_cov` with a float
-/// shrinkage: the empirical covariance (divided by n) shrunk towards its
-/// mean variance, `(1 − λ)·S + λ·(tr S / p)·I`.
-fn shrunk_covariance(rows: &[&[f64]], p: usize, shrinkage: f64) -> DMatrix<f64> {
-    let n = rows.len() as f64;
-    let mut mean = vec![0.0; p];
-    for r in rows {
-        for (m, v) in mean.iter_mut().zip(r.iter()) {
-            *m += v;
-        }
-    }
-    mean.iter_mut().for_each(|m| *m /= n);
-    let mut z = DMatrix::<f64>::zeros(rows.len(), p);
-    for (i, r) in rows.iter().enumerate() {
-        for j in 0..p {
-            z[(i, j)] = r[j] - mean[j];
-        }
-    }
-    let mut s = z.transpose() * &z / n;
-    let mu = s.trace() / p as f64;
-    s *= 1.0 - shrinkage;
-    for j in 0..p {
-        s[(j, j)] += shrinkage * mu;
-    }
-    s
+/// Rows gathered before they are added to a class's scatter matrix by one
+/// matrix product.
+const CHUNK_ROWS: usize = 2048;
+
+/// Design rows offered by index, so a fit never holds the whole design:
+/// `rows` of them, each `p` long, written into the caller's buffer.
+pub trait ClickRows {
+    fn rows(&self) -> usize;
+    fn width(&self) -> usize;
+    /// Row `r` into `out` (`width()` long) and its label; `None` for a
+    /// row this fit leaves out.
+    fn row(&self, r: usize, out: &mut [f64]) -> Option<bool>;
 }
 
-/// Fits the two-class discriminant on the rows `x` (each `p` long) with
-/// labels `click`.
+/// The lagged counts of a block read in place: row r is bin r + lags − 1
+/// with the lags − 1 bins before it, newest first; `keep` says which rows
+/// this fit uses.
+pub struct LaggedCounts<'a, K: Fn(usize) -> bool> {
+    pub counts: &'a [u16],
+    pub n: usize,
+    pub cued: &'a [bool],
+    pub lags: usize,
+    pub keep: K,
+}
+
+impl<K: Fn(usize) -> bool> ClickRows for LaggedCounts<'_, K> {
+    fn rows(&self) -> usize {
+        self.cued.len().saturating_sub(self.lags - 1)
+    }
+
+    fn width(&self) -> usize {
+        self.n * self.lags
+    }
+
+    fn row(&self, r: usize, out: &mut [f64]) -> Option<bool> {
+        if !(self.keep)(r) {
+            return None;
+        }
+        let bin = r + self.lags - 1;
+        for l in 0..self.lags {
+            let src = &self.counts[(bin - l) * self.n..(bin - l + 1) * self.n];
+            for (o, &c) in out[l * self.n..(l + 1) * self.n].iter_mut().zip(src) {
+                *o = f64::from(c);
+            }
+        }
+        Some(self.cued[bin])
+    }
+}
+
+/// Per class: rows, mean, and (second pass) the scatter about the mean.
+struct ClassSums {
+    n: usize,
+    mean: DVector<f64>,
+    scatter: DMatrix<f64>,
+}
+
+/// Fits the two-class discriminant on `rows`: two passes, the means, then
+/// each class's scatter about its mean a chunk of rows at a time (one
+/// matrix product a chunk), so memory is p² and a chunk, not the design.
 pub fn fit_discriminant(
-    x: &[Vec<f64>],
-    click: &[bool],
+    rows: &dyn ClickRows,
     shrinkage: f64,
 ) -> Result<Discriminant, ClickFitError> {
     if !(0.0..=1.0).contains(&shrinkage) {
         return Err(ClickFitError::Shrinkage(shrinkage));
     }
-    let p = x.first().map_or(0, Vec::len);
-    let ones: Vec<&[f64]> = x
-        .iter()
-        .zip(click)
-        .filter(|(_, c)| **c)
-        .map(|(r, _)| r.as_slice())
-        .collect();
-    let zeros: Vec<&[f64]> = x
-        .iter()
-        .zip(click)
-        .filter(|(_, c)| !**c)
-        .map(|(r, _)| r.as_slice())
-        .collect();
-    if ones.is_empty() || zeros.is_empty() {
-        return Err(ClickFitError::OneClass {
-            clicks: ones.len(),
-            rest: zeros.len(),
-        });
-    }
-    let n = x.len() as f64;
-    let priors = [zeros.len() as f64 / n, ones.len() as f64 / n];
-    let mean = |rows: &[&[f64]]| {
-        let mut m = DVector::<f64>::zeros(p);
-        for r in rows {
-            for j in 0..p {
-                m[j] += r[j];
+    let p = rows.width();
+    let mut class = [0, 1].map(|_| ClassSums {
+        n: 0,
+        mean: DVector::zeros(p),
+        scatter: DMatrix::zeros(p, p),
+    });
+    let mut row = vec![0.0; p];
+    for r in 0..rows.rows() {
+        if let Some(label) = rows.row(r, &mut row) {
+            let c = &mut class[usize::from(label)];
+            c.n += 1;
+            for (m, v) in c.mean.iter_mut().zip(&row) {
+                *m += v;
             }
         }
-        m / rows.len() as f64
+    }
+    if class[0].n == 0 || class[1].n == 0 {
+        return Err(ClickFitError::OneClass {
+            clicks: class[1].n,
+            rest: class[0].n,
+        });
+    }
+    for c in class.iter_mut() {
+        c.mean /= c.n as f64;
+    }
+    // Centred rows of each class, gathered a chunk at a time.
+    let mut chunks = [0, 1].map(|_| DMatrix::<f64>::zeros(CHUNK_ROWS, p));
+    let mut filled = [0usize; 2];
+    let flush = |c: &mut ClassSums, chunk: &DMatrix<f64>, k: usize| {
+        let z = chunk.rows(0, k);
+        c.scatter.gemm_tr(1.0, &z, &z, 1.0);
     };
-    let means = [mean(&zeros), mean(&ones)];
-    let pooled = shrunk_covariance(&zeros, p, shrinkage) * priors[0]
-        + shrunk_covariance(&ones, p, shrinkage) * priors[1];
+    for r in 0..rows.rows() {
+        if let Some(label) = rows.row(r, &mut row) {
+            let k = usize::from(label);
+            let at = filled[k];
+            for (j, v) in row.iter().enumerate() {
+                chunks[k][(at, j)] = v - class[k].mean[j];
+            }
+            filled[k] += 1;
+            if filled[k] == CHUNK_ROWS {
+                flush(&mut class[k], &chunks[k], CHUNK_ROWS);
+                filled[k] = 0;
+            }
+        }
+    }
+    for k in 0..2 {
+        if filled[k] > 0 {
+            flush(&mut class[k], &chunks[k], filled[k]);
+        }
+    }
+    let n = (class[0].n + class[1].n) as f64;
+    let priors = [class[0].n as f64 / n, class[1].n as f64 / n];
+    // Each class's covariance (divided by its rows), shrunk toward its
+    // mean variance as scikit-learn's `_cov` does with a float shrinkage,
+    // then weighted by the class priors.
+    let mut pooled = DMatrix::<f64>::zeros(p, p);
+    for (c, prior) in class.iter().zip(priors) {
+        let mut s = &c.scatter / c.n as f64;
+        let mu = s.trace() / p as f64;
+        s *= 1.0 - shrinkage;
+        for j in 0..p {
+            s[(j, j)] += shrinkage * mu;
+        }
+        pooled += s * prior;
+    }
     let solve = |b: &DVector<f64>| -> Result<DVector<f64>, ClickFitError> {
         match pooled.clone().cholesky() {
             Some(c) => Ok(c.solve(b)),
@@ -127,8 +189,8 @@ pub fn fit_discriminant(
                 .ok_or(ClickFitError::Singular),
         }
     };
-    let coef = [solve(&means[0])?, solve(&means[1])?];
-    let intercept = |k: usize| -0.5 * means[k].dot(&coef[k]) + priors[k].ln();
+    let coef = [solve(&class[0].mean)?, solve(&class[1].mean)?];
+    let intercept = |k: usize| -0.5 * class[k].mean.dot(&coef[k]) + priors[k].ln();
     Ok(Discriminant {
         weights: (&coef[1] - &coef[0]).iter().copied().collect(),
         intercept: intercept(1) - intercept(0),
@@ -196,8 +258,14 @@ pub fn fit_click(
     if lags == 0 {
         return Err(ClickFitError::Lags(lags));
     }
-    let (x, y) = lagged_rows(counts, n, click, lags);
-    let d = fit_discriminant(&x, &y, shrinkage)?;
+    let rows = LaggedCounts {
+        counts,
+        n,
+        cued: click,
+        lags,
+        keep: |_| true,
+    };
+    let d = fit_discriminant(&rows, shrinkage)?;
     let (stay_rest, stay_click) = transitions(click)?;
     Ok(ClickModel {
         n_channels: n,
@@ -335,17 +403,18 @@ pub fn cross_validate_click(
         return Err(ClickFitError::Lags(lags));
     }
     let t = cued.len();
-    let (x, y) = lagged_rows(counts, n, cued, lags);
     let mut p_all = Vec::with_capacity(t);
     let mut clicks_all = Vec::with_capacity(t);
     for fold in crate::fit::folds::split_evenly(t, k.max(2)) {
-        // Row r of the design is bin r + lags − 1, reading bins r ..= r + lags − 1.
-        let keep: Vec<usize> = (0..x.len())
-            .filter(|&r| r + lags - 1 < fold.start || r >= fold.end)
-            .collect();
-        let xs: Vec<Vec<f64>> = keep.iter().map(|&r| x[r].clone()).collect();
-        let ys: Vec<bool> = keep.iter().map(|&r| y[r]).collect();
-        let d = fit_discriminant(&xs, &ys, shrinkage)?;
+        // Row r reads bins r ..= r + lags − 1: kept when none is held out.
+        let rows = LaggedCounts {
+            counts,
+            n,
+            cued,
+            lags,
+            keep: |r: usize| r + lags - 1 < fold.start || r >= fold.end,
+        };
+        let d = fit_discriminant(&rows, shrinkage)?;
         let train_labels: Vec<bool> = (0..t)
             .filter(|b| !fold.contains(b))
             .map(|b| cued[b])

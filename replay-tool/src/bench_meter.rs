@@ -407,6 +407,7 @@ mod tests {
                 flags,
                 command: vec![0.0; 2],
                 estimate: vec![0.0; 2],
+                click_prob: 0.0,
             },
         }
     }

@@ -32,7 +32,7 @@ pub fn loopback_floor(
         let mut buf = vec![0u8; 65536];
         let mut out = vec![0u8; packet::velocity_len(dims)];
         out[0..4].copy_from_slice(&packet::VELOCITY_MAGIC);
-        out[4..6].copy_from_slice(&packet::PACKET_VERSION.to_le_bytes());
+        out[4..6].copy_from_slice(&packet::VELOCITY_VERSION.to_le_bytes());
         out[7] = dims as u8;
         loop {
             match relay.recv(&mut buf) {

@@ -566,6 +566,7 @@ impl SlotEngine {
                 flags,
                 command: self.supervisor.command(),
                 estimate: estimate.estimate,
+                click_prob: 0.0,
             },
             &mut self.packet,
         );

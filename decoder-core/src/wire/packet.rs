@@ -13,8 +13,11 @@ use crate::bin_width::BinWidth;
 pub const BIN_MAGIC: [u8; 4] = *b"NBIN";
 /// ASCII `NVEL`.
 pub const VELOCITY_MAGIC: [u8; 4] = *b"NVEL";
-/// Version of the velocity packet, and of the bin packet this crate writes.
+/// Version of the bin packet this crate writes (and reads, beside 2).
 pub const PACKET_VERSION: u16 = 1;
+/// Version of the velocity packet this crate writes: 2 carries the click
+/// probability at offset 44 (version 1 had it reserved as 0).
+pub const VELOCITY_VERSION: u16 = 2;
 /// The bin packet version that carries a `kind` (counts or features).
 pub const BIN_VERSION_WITH_KIND: u16 = 2;
 pub const BIN_HEADER_LEN: usize = 32;
@@ -32,6 +35,8 @@ pub const FLAG_SPEED_CLAMPED: u32 = 1 << 1;
 pub const FLAG_ACCEL_CLAMPED: u32 = 1 << 2;
 /// Velocity packet flag: a newly loaded model decoded this bin.
 pub const FLAG_MODEL_CHANGED: u32 = 1 << 3;
+/// Velocity packet flag: a click was decided at this bin.
+pub const FLAG_CLICK: u32 = 1 << 4;
 
 /// What a bin packet's body holds (PROTOCOL.md §1): version 1 and version
 /// 2 with kind 0 carry u16 counts, version 2 with kind 1 carries f32
@@ -318,6 +323,8 @@ pub struct VelocityFields<'a> {
     pub recv_ns: u64,
     pub sent_ns: u64,
     pub flags: u32,
+    /// The click decoder's probability (0 without one).
+    pub click_prob: f32,
     pub command: &'a [f64],
     pub estimate: &'a [f64],
 }
@@ -329,7 +336,7 @@ pub fn encode_velocity(fields: &VelocityFields<'_>, out: &mut [u8]) {
     debug_assert_eq!(fields.estimate.len(), d);
     debug_assert_eq!(out.len(), velocity_len(d));
     out[0..4].copy_from_slice(&VELOCITY_MAGIC);
-    out[4..6].copy_from_slice(&PACKET_VERSION.to_le_bytes());
+    out[4..6].copy_from_slice(&VELOCITY_VERSION.to_le_bytes());
     out[6] = fields.state;
     out[7] = d as u8;
     out[8..16].copy_from_slice(&fields.seq.to_le_bytes());
@@ -337,7 +344,7 @@ pub fn encode_velocity(fields: &VelocityFields<'_>, out: &mut [u8]) {
     out[24..32].copy_from_slice(&fields.recv_ns.to_le_bytes());
     out[32..40].copy_from_slice(&fields.sent_ns.to_le_bytes());
     out[40..44].copy_from_slice(&fields.flags.to_le_bytes());
-    out[44..48].copy_from_slice(&0u32.to_le_bytes());
+    out[44..48].copy_from_slice(&fields.click_prob.to_le_bytes());
     let mut at = VELOCITY_HEADER_LEN;
     for v in fields.command.iter().chain(fields.estimate) {
         out[at..at + 8].copy_from_slice(&v.to_le_bytes());
@@ -359,6 +366,8 @@ pub struct VelocityPacket {
     pub recv_ns: u64,
     pub sent_ns: u64,
     pub flags: u32,
+    /// The click probability (version 2; 0 in version 1).
+    pub click_prob: f32,
     pub command: Vec<f64>,
     pub estimate: Vec<f64>,
 }
@@ -369,7 +378,7 @@ pub enum VelocityPacketError {
     TooShort { len: usize },
     #[error("magic is not NVEL")]
     BadMagic,
-    #[error("velocity packet version {version}; expected 1")]
+    #[error("velocity packet version {version}; expected 1 or 2")]
     BadVersion { version: u16 },
     #[error("dims {dims} is outside 1..=8")]
     BadDims { dims: u8 },
@@ -390,7 +399,7 @@ impl VelocityPacket {
             return Err(VelocityPacketError::BadMagic);
         }
         let version = u16_at(bytes, 4);
-        if version != PACKET_VERSION {
+        if version != 1 && version != VELOCITY_VERSION {
             return Err(VelocityPacketError::BadVersion { version });
         }
         let dims = bytes[7];
@@ -420,6 +429,11 @@ impl VelocityPacket {
             recv_ns: u64_at(bytes, 24),
             sent_ns: u64_at(bytes, 32),
             flags: u32_at(bytes, 40),
+            click_prob: if version == 1 {
+                0.0
+            } else {
+                f32::from_le_bytes(bytes[44..48].try_into().expect("4 bytes"))
+            },
             command: (0..d).map(f64_at).collect(),
             estimate: (d..2 * d).map(f64_at).collect(),
         })
@@ -580,18 +594,29 @@ mod tests {
                 origin_ns: 1,
                 recv_ns: 2,
                 sent_ns: 0,
-                flags: FLAG_SPEED_CLAMPED,
+                flags: FLAG_SPEED_CLAMPED | FLAG_CLICK,
                 command: &[0.5, -0.25],
                 estimate: &[1.0, -0.5],
+                click_prob: 0.875,
             },
             &mut buf,
         );
         patch_sent_ns(&mut buf, 3);
+        // Version 2: the click probability at offset 44, flag bit 4.
+        assert_eq!(u16::from_le_bytes([buf[4], buf[5]]), 2);
+        assert_eq!(buf[44..48], 0.875f32.to_le_bytes());
         let p = VelocityPacket::parse(&buf).unwrap();
         assert_eq!(p.seq, 42);
         assert_eq!(p.sent_ns, 3);
         assert_eq!(p.command, vec![0.5, -0.25]);
         assert_eq!(p.estimate, vec![1.0, -0.5]);
-        assert_eq!(p.flags, FLAG_SPEED_CLAMPED);
+        assert_eq!(p.flags, FLAG_SPEED_CLAMPED | FLAG_CLICK);
+        assert_eq!(p.click_prob, 0.875);
+        // A version 1 packet still reads, its reserved field as no click.
+        let mut v1 = buf.clone();
+        v1[4..6].copy_from_slice(&1u16.to_le_bytes());
+        assert_eq!(VelocityPacket::parse(&v1).unwrap().click_prob, 0.0);
+        v1[4..6].copy_from_slice(&3u16.to_le_bytes());
+        assert!(VelocityPacket::parse(&v1).is_err());
     }
 }

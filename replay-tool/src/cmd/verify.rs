@@ -290,6 +290,7 @@ mod tests {
                 flags: 0,
                 command: &[0.0, 0.0],
                 estimate: &estimate,
+                click_prob: 0.0,
             },
             &mut out,
         );

@@ -10,7 +10,7 @@ use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
 
-use decoder_core::engine::slot_engine::EngineSettings;
+use decoder_core::engine::slot_engine::{ClickGateSettings, EngineSettings};
 use decoder_core::engine::supervisor::SafetyLimits;
 use serde::Deserialize;
 
@@ -73,6 +73,16 @@ pub struct RawConfig {
     pub log: RawLog,
     #[serde(default)]
     pub adaptation: RawAdaptation,
+    #[serde(default)]
+    pub click: RawClick,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawClick {
+    pub threshold: Option<f64>,
+    pub hold_bins: Option<i64>,
+    pub refractory_ms: Option<f64>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -221,6 +231,8 @@ pub struct Config {
     pub log_level: String,
     pub arm_at_start: bool,
     pub adaptation: AdaptConfig,
+    /// When the model's click probability makes a click.
+    pub click: ClickGateSettings,
     /// Where each path came from, for errors: the flag (`--model`) or the
     /// key (`model.path`).
     pub sources: Sources,
@@ -603,6 +615,20 @@ impl Check<'_> {
         })
     }
 
+    /// `click`: the gate between the click probability and a click.
+    fn click(&self, raw: &RawClick) -> Result<ClickGateSettings, ConfigError> {
+        Ok(ClickGateSettings {
+            threshold: self.within("click.threshold", raw.threshold.unwrap_or(0.9), 0.5, 0.999)?,
+            hold_bins: self.count("click.hold_bins", raw.hold_bins.unwrap_or(5), 1, 50)? as u32,
+            refractory_ms: self.within(
+                "click.refractory_ms",
+                raw.refractory_ms.unwrap_or(500.0),
+                0.0,
+                5000.0,
+            )?,
+        })
+    }
+
     fn log(&self, raw: &RawLog) -> Result<(LogFormat, String), ConfigError> {
         let log_format = match raw.format.as_deref().unwrap_or("human") {
             "human" => LogFormat::Human,
@@ -645,11 +671,13 @@ impl Config {
         let adaptation = c.adaptation(&raw.adaptation)?;
         let realtime = c.realtime(&raw.realtime)?;
         let (log_format, log_level) = c.log(&raw.log)?;
+        let click = c.click(&raw.click)?;
         if overrides.arm && !actuator.ip().is_loopback() {
             return Err(ConfigError::ArmNotLoopback { actuator });
         }
         Ok(Config {
             adaptation,
+            click,
             listen,
             task_listen,
             actuator,
@@ -693,6 +721,7 @@ impl Config {
             // every bin of the window is not physiological: common practice.
             saturation_count: ((self.saturation_rate_hz * bin_s).floor() as u64 + 1).min(65535)
                 as u16,
+            click_gate: self.click,
         }
     }
 }
@@ -764,6 +793,14 @@ mod tests {
                 &["0.0", "0.01", "5.0", "nan", "inf"],
             ),
             ("timing", "reorder_window_bins", "64", &["0", "4097", "-3"]),
+            ("click", "threshold", "0.9", &["0.4", "1.0", "nan"]),
+            ("click", "hold_bins", "5", &["0", "51", "-1"]),
+            (
+                "click",
+                "refractory_ms",
+                "500.0",
+                &["-1.0", "5001.0", "inf"],
+            ),
             ("timing", "clock_tracking", "0.01", &["-0.01", "0.6", "nan"]),
             (
                 "monitor",

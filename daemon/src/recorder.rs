@@ -375,6 +375,7 @@ mod tests {
             armed_at_start: false,
             dead_channel_bins: 100,
             saturation_count: 2,
+            click_gate: Default::default(),
         };
         encode_header(&LogHeader {
             daemon_version: "test".into(),

@@ -502,3 +502,81 @@ fn a_numerical_fault_never_puts_a_non_finite_value_in_a_packet() {
     }
     assert_eq!(rig.out.packets.last().unwrap().state, 3, "halted");
 }
+
+/// With a click decoder in the model, every packet carries the click
+/// probability the filter gives for its bin, and flag bit 4 exactly where
+/// the gate (the engine's settings) says — only while armed, never on a
+/// slot whose bin never came; disarmed, the probability still goes out but
+/// no click does.
+#[test]
+fn clicks_go_out_where_the_gate_says_and_only_while_armed() {
+    use decoder_core::decoders::click::{ClickFilter, ClickModel};
+    use decoder_core::wire::packet::FLAG_CLICK;
+    let (mut m, session) = model();
+    let n = m.decoder.n_channels();
+    // Channel 0 carries the click: the log odds rise with its count.
+    let mut weights = vec![0.0; 2 * n];
+    weights[0] = 3.0;
+    weights[n] = 1.5;
+    let click = ClickModel {
+        n_channels: n,
+        lags: 2,
+        weights,
+        intercept: 2.0,
+        prior_click: 0.1,
+        stay_rest: 0.95,
+        stay_click: 0.9,
+    };
+    m.click = Some(click.clone());
+    for armed in [true, false] {
+        let settings = settings(armed);
+        let mut engine = SlotEngine::new(settings.clone(), m.pipeline().unwrap());
+        let mut out = Collected::default();
+        let mut buf = Vec::new();
+        let missing = [17u64, 18];
+        for seq in 0..120u64 {
+            if missing.contains(&seq) {
+                engine.on_timeout(T0 + (seq + 1) * BIN_NS, &mut out);
+                continue;
+            }
+            let counts = session.bin_counts(seq as usize % session.n_bins);
+            packet::encode_bin(
+                &BinHeader {
+                    channels: n as u16,
+                    seq,
+                    origin_ns: T0 + seq * BIN_NS,
+                    bin_us: 20_000,
+                    flags: 0,
+                    kind: decoder_core::wire::packet::BinKind::Counts,
+                },
+                counts,
+                &mut buf,
+            );
+            engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, &mut out);
+        }
+        // The same filter and gate, run beside the engine.
+        let mut filter = ClickFilter::new(click.clone()).unwrap();
+        let mut gate = settings.click_gate.gate(settings.bin_width);
+        let mut clicks = 0;
+        for p in out.packets.iter().filter(|p| p.seq < 120) {
+            let came = !missing.contains(&p.seq);
+            let prob = if came {
+                filter.step(session.bin_counts(p.seq as usize % session.n_bins))
+            } else {
+                filter.predict_only()
+            };
+            assert_eq!(p.click_prob, prob as f32, "seq {}", p.seq);
+            let armed_now = p.state == 1;
+            let want = gate.step(prob, came && armed_now);
+            assert_eq!(p.flags & FLAG_CLICK != 0, want, "seq {}", p.seq);
+            clicks += usize::from(want);
+        }
+        if armed {
+            assert!(clicks >= 2, "{clicks} clicks while armed");
+        } else {
+            assert_eq!(clicks, 0);
+            assert!(out.packets.iter().any(|p| p.click_prob > 0.5));
+        }
+        assert_eq!(engine.clicks().0, clicks as u64);
+    }
+}

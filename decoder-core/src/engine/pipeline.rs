@@ -9,6 +9,7 @@
 
 use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
+use crate::decoders::click::ClickFilter;
 use crate::decoders::kalman::{KalmanError, KalmanFilter};
 use crate::decoders::point_process::{PointProcessError, PointProcessFilter};
 use crate::decoders::wiener::WienerFilter;
@@ -39,6 +40,9 @@ pub struct BinEstimate<'a> {
     /// The filter could not update (singular covariance) or produced a value
     /// that is not finite; a supervisor must treat the estimate as unusable.
     pub numerical_fault: bool,
+    /// The click decoder's probability after this bin, when the model has
+    /// one.
+    pub click_prob: Option<f64>,
 }
 
 /// One decoder ready to run bin by bin: the filter of whichever kind the
@@ -56,6 +60,8 @@ pub struct DecodePipeline {
     bin_width: BinWidth,
     estimate: Vec<f64>,
     last_seq: Option<u64>,
+    /// The model's click decoder, run on the same bins.
+    click: Option<ClickFilter>,
 }
 
 /// Why a checked model still cannot be run: the Kalman filter's noise
@@ -99,9 +105,16 @@ impl DecodePipeline {
             bin_width,
             estimate: vec![0.0; d],
             last_seq: None,
+            click: None,
         };
         p.reset();
         Ok(p)
+    }
+
+    /// The same pipeline with a click decoder beside the velocity decoder.
+    pub fn with_click(mut self, click: Option<ClickFilter>) -> DecodePipeline {
+        self.click = click;
+        self
     }
 
     pub fn n_channels(&self) -> usize {
@@ -138,6 +151,9 @@ impl DecodePipeline {
             Engine::PointProcess { filter, .. } => filter.reset(),
         }
         self.last_seq = None;
+        if let Some(c) = self.click.as_mut() {
+            c.reset();
+        }
         self.copy_estimate();
     }
 
@@ -157,6 +173,9 @@ impl DecodePipeline {
             }
             Engine::PointProcess { filter, .. } => filter.step(counts),
         };
+        if let Some(c) = self.click.as_mut() {
+            c.step(counts);
+        }
         self.finish(seq, false, !updated)
     }
 
@@ -166,6 +185,9 @@ impl DecodePipeline {
             Engine::Kalman { filter, .. } => filter.predict_only(),
             Engine::Wiener(w) => w.predict_only(),
             Engine::PointProcess { filter, .. } => filter.predict_only(),
+        }
+        if let Some(c) = self.click.as_mut() {
+            c.predict_only();
         }
         self.finish(seq, true, false)
     }
@@ -178,6 +200,7 @@ impl DecodePipeline {
             estimate: &self.estimate,
             predicted_only,
             numerical_fault: fault || !finite,
+            click_prob: self.click.as_ref().map(ClickFilter::probability),
         }
     }
 

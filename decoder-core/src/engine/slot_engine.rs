@@ -33,12 +33,14 @@
 use serde::{Deserialize, Serialize};
 
 use crate::bin_width::BinWidth;
+use crate::decoders::click::ClickGate;
 use crate::engine::pipeline::DecodePipeline;
 use crate::engine::supervisor::{
     ArmRefused, SafetyLimits, Supervisor, SupervisorState, Transition, TransitionReason,
 };
 use crate::wire::packet::{
-    self, FLAG_BIN_MISSING, FLAG_MODEL_CHANGED, N_REJECT_REASONS, RejectReason, VelocityFields,
+    self, FLAG_BIN_MISSING, FLAG_CLICK, FLAG_MODEL_CHANGED, N_REJECT_REASONS, RejectReason,
+    VelocityFields,
 };
 
 /// Everything that shapes the engine's decisions; recorded in the session
@@ -62,6 +64,41 @@ pub struct EngineSettings {
     pub dead_channel_bins: u64,
     /// A count at or above this in one bin marks the channel saturated.
     pub saturation_count: u16,
+    /// When the click probability makes a click (logs written before
+    /// clicks existed read as the defaults).
+    #[serde(default)]
+    pub click_gate: ClickGateSettings,
+}
+
+/// The click gate's settings: a click when the probability stays at or
+/// above `threshold` for `hold_bins` bins while armed, then none for
+/// `refractory_ms`.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ClickGateSettings {
+    pub threshold: f64,
+    pub hold_bins: u32,
+    pub refractory_ms: f64,
+}
+
+impl Default for ClickGateSettings {
+    fn default() -> Self {
+        ClickGateSettings {
+            threshold: 0.9,
+            hold_bins: 5,
+            refractory_ms: 500.0,
+        }
+    }
+}
+
+impl ClickGateSettings {
+    /// The gate at `bin_width`.
+    pub fn gate(&self, bin_width: BinWidth) -> ClickGate {
+        ClickGate::new(
+            self.threshold,
+            self.hold_bins as usize,
+            (self.refractory_ms / bin_width.ms()).ceil() as usize,
+        )
+    }
 }
 
 /// Per-slot facts for the daemon's monitoring and recording.
@@ -234,6 +271,12 @@ pub struct SlotEngine {
     counters: EngineCounters,
     last_nonzero: Vec<u64>,
     last_saturated: Vec<u64>,
+    /// Clicks: the gate, how many it made, the last one's seq, and the
+    /// probability of the last slot answered.
+    click_gate: ClickGate,
+    clicks: u64,
+    last_click: Option<u64>,
+    click_prob: f32,
 }
 
 impl SlotEngine {
@@ -267,10 +310,20 @@ impl SlotEngine {
             last_nonzero: vec![0; n],
             last_saturated: vec![u64::MAX; n],
             clock: None,
+            click_gate: settings.click_gate.gate(settings.bin_width),
+            clicks: 0,
+            last_click: None,
+            click_prob: 0.0,
             settings,
             pipeline,
             supervisor,
         }
+    }
+
+    /// Clicks made so far, the seq of the last one, and the click
+    /// probability of the last slot answered (0 without a click decoder).
+    pub fn clicks(&self) -> (u64, Option<u64>, f32) {
+        (self.clicks, self.last_click, self.click_prob)
     }
 
     pub fn settings(&self) -> &EngineSettings {
@@ -434,6 +487,7 @@ impl SlotEngine {
                 seq,
             });
             self.pipeline.reset();
+            self.click_gate.reset();
             if let Some(t) = self.supervisor.halt(next, TransitionReason::NewStream) {
                 self.counters.transitions += 1;
                 sink.event(&EngineEvent::Transition(t));
@@ -545,12 +599,25 @@ impl SlotEngine {
             }
         };
         let fault = estimate.numerical_fault;
+        let p_click = estimate.click_prob;
         let supervised = self
             .supervisor
             .on_bin(seq, estimate.estimate, missing, fault);
         let mut flags = supervised.flags;
         if missing {
             flags |= FLAG_BIN_MISSING;
+        }
+        self.click_prob = 0.0;
+        if let Some(p) = p_click {
+            // A click only while armed on a bin that came: never while
+            // coasting, halted or disarmed.
+            self.click_prob = if p.is_finite() { p as f32 } else { 0.0 };
+            let allowed = !missing && !fault && supervised.state == SupervisorState::Armed;
+            if self.click_gate.step(p, allowed) {
+                flags |= FLAG_CLICK;
+                self.clicks += 1;
+                self.last_click = Some(seq);
+            }
         }
         if self.model_changed {
             flags |= FLAG_MODEL_CHANGED;
@@ -566,7 +633,7 @@ impl SlotEngine {
                 flags,
                 command: self.supervisor.command(),
                 estimate: estimate.estimate,
-                click_prob: 0.0,
+                click_prob: self.click_prob,
             },
             &mut self.packet,
         );
@@ -575,6 +642,7 @@ impl SlotEngine {
             // supervisor has halted, so nothing moves until an operator arms.
             self.counters.numerical_faults += 1;
             self.pipeline.reset();
+            self.click_gate.reset();
         }
         if let Some(t) = supervised.transition {
             self.counters.transitions += 1;
@@ -650,6 +718,7 @@ impl SlotEngine {
         }
         let old = std::mem::replace(&mut self.pipeline, pipeline);
         self.model_changed = true;
+        self.click_gate.reset();
         self.counters.model_changes += 1;
         sink.event(&EngineEvent::ModelChanged {
             seq: self.next_seq().unwrap_or(0),

@@ -217,7 +217,16 @@ impl ModelFile {
     /// The per-bin pipeline; `use_steady_state = false` runs the full
     /// covariance update even when the model has a steady-state gain.
     pub fn pipeline_with(&self, use_steady_state: bool) -> Result<DecodePipeline, PipelineError> {
-        DecodePipeline::from_decoder(&self.decoder, self.bin_width, use_steady_state)
+        // A click decoder was checked on load; one that cannot run leaves
+        // the pipeline without clicks rather than refusing the model.
+        let click = self
+            .click
+            .clone()
+            .and_then(|c| crate::decoders::click::ClickFilter::new(c).ok());
+        Ok(
+            DecodePipeline::from_decoder(&self.decoder, self.bin_width, use_steady_state)?
+                .with_click(click),
+        )
     }
 
     pub fn to_bytes(&self) -> Vec<u8> {

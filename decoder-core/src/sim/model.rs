@@ -74,5 +74,6 @@ pub fn rig_settings() -> EngineSettings {
         armed_at_start: true,
         dead_channel_bins: 100,
         saturation_count: 21,
+        click_gate: Default::default(),
     }
 }

@@ -290,3 +290,39 @@ fn a_recording_without_task_packets_is_refused_for_training_with_the_reason() {
     let said = ok(&["export", p(&log), "--out", p(&dir.path().join("e"))]);
     assert!(said.contains("no task packets"), "{said}");
 }
+
+/// A session decoded with a click decoder — every packet carrying its
+/// click probability, and clicks where the gate decided them — verifies
+/// bit for bit from its log.
+#[test]
+fn a_session_with_a_click_decoder_verifies_bit_for_bit() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = fixture::block("1", "16", &["--click"]);
+    let model = dir.path().join("vc.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--click",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let report = dir.path().join("cl");
+    closed_loop_fast(&model, "3", &[], &report);
+    let log = closed_loop_log(&report);
+    let said = ok(&["verify", p(&log)]);
+    assert!(said.contains("bit for bit"), "{said}");
+    // The packets did carry a click probability.
+    let mut reader = decoder_core::formats::session_log::LogReader::open(&log).unwrap();
+    let mut carried = 0;
+    while let Some(r) = reader.next_record() {
+        if let decoder_core::formats::session_log::LogRecord::Sent { packet, .. } = r {
+            let v = decoder_core::wire::packet::VelocityPacket::parse(&packet).unwrap();
+            carried += usize::from(v.click_prob > 0.0);
+        }
+    }
+    assert!(carried > 0);
+}

@@ -27,7 +27,7 @@ use crate::recorder::{RecordBatcher, RecorderStats};
 use crate::requests::{
     AdaptOutcome, ControlRequest, LoadRequest, OperatorOutcome, Refused, Swapped,
 };
-use crate::status::{Monitor, Status, TaskMonitor, rejected_by_name};
+use crate::status::{ClickStatus, Monitor, Status, TaskMonitor, rejected_by_name};
 use crate::{alloc_count, sys};
 
 /// The longest the loop sleeps without looking at control requests and
@@ -521,6 +521,23 @@ impl RtLoop {
             adaptation: self.adapt.status(),
             last_command: self.monitor.last_command[..self.monitor.dims].to_vec(),
             last_estimate: self.monitor.last_estimate[..self.monitor.dims].to_vec(),
+            click: {
+                let (clicks, last_click_seq, probability) = self.engine.clicks();
+                let minutes = self.engine.counters().slots_answered as f64
+                    * self.engine.settings().bin_width.seconds()
+                    / 60.0;
+                ClickStatus {
+                    decoder: self.engine.has_click(),
+                    probability: f64::from(probability),
+                    clicks,
+                    per_minute: if minutes > 0.0 {
+                        clicks as f64 / minutes
+                    } else {
+                        0.0
+                    },
+                    last_click_seq,
+                }
+            },
         }
     }
 }

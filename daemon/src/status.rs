@@ -322,6 +322,23 @@ pub struct Status {
     pub last_command: Vec<f64>,
     #[serde(default)]
     pub last_estimate: Vec<f64>,
+    /// The click decoder: its last probability and the clicks made.
+    #[serde(default)]
+    pub click: ClickStatus,
+}
+
+/// The click part of status.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct ClickStatus {
+    /// The running model decodes clicks.
+    pub decoder: bool,
+    /// The click probability of the last slot answered.
+    pub probability: f64,
+    /// Clicks since start, and per minute of slots answered.
+    pub clicks: u64,
+    pub per_minute: f64,
+    /// The seq of the last click.
+    pub last_click_seq: Option<u64>,
 }
 
 /// The status document's version (PROTOCOL.md §11): a field removed or

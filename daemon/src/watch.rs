@@ -134,6 +134,18 @@ pub fn render(now: &Snapshot, before: Option<&Snapshot>, note: &str) -> String {
         "estimate   {}",
         vector(&s.last_estimate, &s.model.outputs)
     );
+    if s.click.decoder {
+        let _ = writeln!(
+            f,
+            "click      p {:.2}   {} clicks ({:.1}/min){}",
+            s.click.probability,
+            s.click.clicks,
+            s.click.per_minute,
+            s.click
+                .last_click_seq
+                .map_or(String::new(), |q| format!(", last at seq {q}"))
+        );
+    }
     if s.stream_started {
         let _ = writeln!(
             f,

@@ -208,6 +208,13 @@ fn a_frame_holds_what_the_operator_needs() {
     };
     status.last_command = vec![0.25, -1.5];
     status.last_estimate = vec![0.5, -3.0];
+    status.click = daemon::status::ClickStatus {
+        decoder: true,
+        probability: 0.93,
+        clicks: 4,
+        per_minute: 2.5,
+        last_click_seq: Some(47),
+    };
     let second = Snapshot {
         status,
         at: first.at + Duration::from_secs(2),
@@ -233,6 +240,12 @@ fn a_frame_holds_what_the_operator_needs() {
         frame.contains("estimate   vel_x    +0.50  vel_y    -3.00"),
         "{frame}"
     );
+    assert!(
+        frame.contains("click      p 0.93   4 clicks (2.5/min), last at seq 47"),
+        "{frame}"
+    );
+    // A model without a click decoder has no click line.
+    assert!(!render(&first, None, "").contains("click      p"));
     assert!(frame.contains("trial 7 reach, closed loop"), "{frame}");
     assert!(frame.contains("adaptation off"), "{frame}");
     assert!(

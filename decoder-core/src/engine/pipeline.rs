@@ -111,6 +111,11 @@ impl DecodePipeline {
         Ok(p)
     }
 
+    /// Whether the model runs a click decoder.
+    pub fn has_click(&self) -> bool {
+        self.click.is_some()
+    }
+
     /// The same pipeline with a click decoder beside the velocity decoder.
     pub fn with_click(mut self, click: Option<ClickFilter>) -> DecodePipeline {
         self.click = click;

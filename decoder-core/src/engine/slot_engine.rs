@@ -320,6 +320,11 @@ impl SlotEngine {
         }
     }
 
+    /// Whether the running model decodes clicks.
+    pub fn has_click(&self) -> bool {
+        self.pipeline.has_click()
+    }
+
     /// Clicks made so far, the seq of the last one, and the click
     /// probability of the last slot answered (0 without a click decoder).
     pub fn clicks(&self) -> (u64, Option<u64>, f32) {

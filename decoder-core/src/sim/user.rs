@@ -38,6 +38,18 @@ pub struct TaskOptions {
     pub peak_speed: f64,
     pub speed_gain: f64,
     pub refractory_ms: usize,
+    /// How a target is selected: by dwelling in it for `hold_ms`, or by a
+    /// click while inside it (a click outside fails the trial).
+    pub select: Selection,
+}
+
+/// How the task selects a target.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Selection {
+    #[default]
+    Dwell,
+    Click,
 }
 
 impl Default for TaskOptions {
@@ -53,6 +65,7 @@ impl Default for TaskOptions {
             peak_speed: 25.0,
             speed_gain: 5.0,
             refractory_ms: 2,
+            select: Selection::Dwell,
         }
     }
 }
@@ -96,6 +109,10 @@ pub struct SimulatedUser {
     factors: Vec<f64>,
     bins_done: usize,
     seed: u64,
+    /// The array's click channels and their rate factor during an
+    /// attempt (empty: the user never attempts a click).
+    click_channels: Vec<bool>,
+    click_gain: f64,
 }
 
 impl SimulatedUser {
@@ -111,7 +128,18 @@ impl SimulatedUser {
             factors: vec![1.0; n],
             bins_done: 0,
             seed: options.seed,
+            click_channels: Vec::new(),
+            click_gain: 1.0,
         }
+    }
+
+    /// The same user able to attempt clicks with the array's click
+    /// channels (those `simulate --click` modulates, for the same array
+    /// seed), which fire at `gain` times their rate during an attempt.
+    pub fn with_clicks(mut self, click_channels: Vec<bool>, gain: f64) -> SimulatedUser {
+        self.click_channels = click_channels;
+        self.click_gain = gain;
+        self
     }
 
     /// The same user in a world that drifts from the first bin on: its
@@ -130,6 +158,11 @@ impl SimulatedUser {
 
     /// The counts of one bin during which the user intends `velocity`.
     pub fn bin_counts(&mut self, velocity: [f64; 2], out: &mut [u16]) {
+        self.bin_counts_attempting(velocity, false, out);
+    }
+
+    /// The counts of one bin, the user attempting a click or not.
+    pub fn bin_counts_attempting(&mut self, velocity: [f64; 2], attempting: bool, out: &mut [u16]) {
         out.fill(0);
         let bin_start_ms = (self.bins_done * self.bin_ms) as f64;
         self.bins_done += 1;
@@ -146,6 +179,9 @@ impl SimulatedUser {
                 let mut rate_hz =
                     (self.channels.log_baseline[ch] + b[0] * velocity[0] + b[1] * velocity[1])
                         .exp();
+                if attempting && self.click_channels.get(ch).copied().unwrap_or(false) {
+                    rate_hz *= self.click_gain;
+                }
                 if let Some(d) = &self.drift {
                     rate_hz = d.rate_hz(ch, bin_start_ms + j as f64, rate_hz, self.factors[ch]);
                 }
@@ -230,6 +266,12 @@ impl CenterOut {
         self.distance() <= self.options.window
     }
 
+    /// Whether the user is attempting a click now: selecting by click, and
+    /// inside the target.
+    pub fn attempting_click(&self) -> bool {
+        self.options.select == Selection::Click && self.inside()
+    }
+
     /// What the user intends now.
     pub fn intended_velocity(&self) -> [f64; 2] {
         let dist = self.distance();
@@ -246,6 +288,13 @@ impl CenterOut {
     /// Moves the cursor by one bin of `command` (cm/s) and scores the
     /// trial; returns the finished trial's result when one ends.
     pub fn advance(&mut self, command: [f64; 2]) -> Option<TrialResult> {
+        self.advance_with(command, false)
+    }
+
+    /// [`CenterOut::advance`] with whether the decoder clicked at this
+    /// bin: when selecting by click, a click ends the trial — a success
+    /// inside the target, a failure outside.
+    pub fn advance_with(&mut self, command: [f64; 2], clicked: bool) -> Option<TrialResult> {
         let dt = self.options.bin_width.seconds();
         let step = [command[0] * dt, command[1] * dt];
         if step[0].is_finite() && step[1].is_finite() {
@@ -264,9 +313,15 @@ impl CenterOut {
         } else {
             self.hold_bins = 0;
         }
-        let held = self.hold_bins as f64 * self.options.bin_width.ms() >= self.options.hold_ms;
+        let (held, clicked_outside) = match self.options.select {
+            Selection::Dwell => (
+                self.hold_bins as f64 * self.options.bin_width.ms() >= self.options.hold_ms,
+                false,
+            ),
+            Selection::Click => (clicked && self.inside(), clicked && !self.inside()),
+        };
         let timed_out = elapsed_s * 1000.0 >= self.options.timeout_ms;
-        if !(held || timed_out) {
+        if !(held || clicked_outside || timed_out) {
             return None;
         }
         let result = TrialResult {
@@ -318,6 +373,42 @@ mod tests {
         let s = task.summary();
         assert_eq!(s.success_rate, 1.0);
         assert!(s.mean_path_efficiency.unwrap() > 0.95, "{s:?}");
+    }
+
+    /// Selecting by click: a click inside the target is a success at that
+    /// bin, one outside a failure; dwelling alone selects nothing.
+    #[test]
+    fn a_click_selects_inside_the_target_and_fails_outside() {
+        let options = TaskOptions {
+            n_trials: 3,
+            select: Selection::Click,
+            ..TaskOptions::default()
+        };
+        let mut task = CenterOut::new(options);
+        // Trial 0: a click on the way out fails it.
+        assert!(!task.attempting_click());
+        let r = task
+            .advance_with([0.0, 0.0], true)
+            .expect("a click outside ends the trial");
+        assert!(!r.success);
+        // Trial 1: reach the target, dwell well past hold_ms: no success
+        // until the click.
+        for _ in 0..200 {
+            let v = task.intended_velocity();
+            assert!(task.advance_with(v, false).is_none());
+            if task.inside() {
+                break;
+            }
+        }
+        assert!(task.inside() && task.attempting_click());
+        for _ in 0..40 {
+            assert!(task.advance_with([0.0, 0.0], false).is_none());
+        }
+        let r = task
+            .advance_with([0.0, 0.0], true)
+            .expect("a click inside ends the trial");
+        assert!(r.success);
+        assert_eq!(task.results().len(), 2);
     }
 
     #[test]

@@ -18,10 +18,13 @@ use daemon_rig::Launch;
 use decoder_core::ModelFile;
 use decoder_core::formats::log_block::{LogBlock, read_log_block};
 use decoder_core::sim::reaching::population;
-use decoder_core::sim::user::{CenterOut, SimulatedUser, TaskOptions, TaskSummary, TrialResult};
+use decoder_core::sim::user::{
+    CenterOut, Selection, SimulatedUser, TaskOptions, TaskSummary, TrialResult,
+};
 use decoder_core::wire::packet::{self, BinHeader, VelocityPacket};
 use decoder_core::wire::task_packet::{
-    Phase, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_TARGET_VALID, TaskState, encode_task,
+    Phase, TASK_FLAG_CLICK_CUE, TASK_FLAG_CLOSED_LOOP, TASK_FLAG_SELECT_BY_CLICK,
+    TASK_FLAG_TARGET_VALID, TaskState, encode_task,
 };
 
 use crate::CheckFailed;
@@ -78,9 +81,21 @@ pub struct Args {
     /// session log is the closed-loop block).
     #[arg(long, default_value = "closed-loop-report")]
     pub report: PathBuf,
+    /// How a target is selected: by dwelling in it (the default), or by a
+    /// click the model's click decoder makes while the cursor is inside
+    /// (a click outside fails the trial). The simulated user attempts a
+    /// click with the array's click channels once inside the target.
+    #[arg(long, value_enum, default_value = "dwell")]
+    pub select: SelectArg,
     /// The user's world may change as the session goes on.
     #[command(flatten)]
     pub world: super::world::WorldArgs,
+}
+
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum SelectArg {
+    Dwell,
+    Click,
 }
 
 /// `replay-tool closed-loop`.
@@ -113,6 +128,10 @@ pub fn run_verb(args: &Args) -> Result<()> {
         task: TaskOptions {
             seed: args.task_seed,
             n_trials: args.trials.max(1),
+            select: match args.select {
+                SelectArg::Dwell => Selection::Dwell,
+                SelectArg::Click => Selection::Click,
+            },
             ..Default::default()
         },
         array_seed: args.array_seed,
@@ -196,7 +215,21 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         bin_width: model.bin_width,
         ..setup.task.clone()
     };
+    if task_options.select == Selection::Click && model.click.is_none() {
+        bail!(
+            "--select click needs a model with a click decoder; {} has none (train it with --click on a block with click cues, such as simulate --click writes)",
+            setup.model.display()
+        );
+    }
     let mut user = SimulatedUser::new(population(setup.array_seed, n), &task_options);
+    if task_options.select == Selection::Click {
+        // The click channels `simulate --click` modulates for this array.
+        let c = decoder_core::sim::reaching::ClickSim::default();
+        user = user.with_clicks(
+            decoder_core::sim::reaching::click_channels(setup.array_seed, n, c.share),
+            c.gain,
+        );
+    }
     if let Some(d) = &setup.drift {
         user = user.with_drift(d)?;
     }
@@ -245,7 +278,8 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
             }
         }
         let intended = task.intended_velocity();
-        user.bin_counts(intended, &mut counts);
+        let attempting = task.attempting_click();
+        user.bin_counts_attempting(intended, attempting, &mut counts);
         packet::encode_bin(
             &BinHeader {
                 channels: n as u16,
@@ -279,7 +313,7 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         let command = [answer.command[0], answer.command[1]];
         let trial = task.trial() as u32;
         let target = task.target();
-        let ended = task.advance(command);
+        let ended = task.advance_with(command, answer.flags & packet::FLAG_CLICK != 0);
         // What the screen shows now, having applied bin `seq`'s command:
         // the outcome of a trial that just ended, then the next trial.
         let mut shown = |phase: Phase, trial: u32, cursor: [f64; 2], target: [f64; 2]| {
@@ -289,6 +323,12 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
             state.origin_ns = daemon::sys::monotonic_ns();
             state.trial = trial;
             state.flags = TASK_FLAG_CLOSED_LOOP | TASK_FLAG_TARGET_VALID;
+            if task_options.select == Selection::Click {
+                state.flags |= TASK_FLAG_SELECT_BY_CLICK;
+            }
+            if attempting {
+                state.flags |= TASK_FLAG_CLICK_CUE;
+            }
             state.target_radius = task_options.window;
             state.cursor_pos[..2].copy_from_slice(&cursor);
             state.cursor_vel[..2].copy_from_slice(&command);
@@ -346,6 +386,7 @@ pub fn report(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary>
         .map(|p| std::path::absolute(p).unwrap_or(p.clone()));
     let json = serde_json::json!({
         "model": setup.model.display().to_string(),
+        "select": setup.task.select,
         "summary": run.summary,
         "trials": run.trials,
         "slots_coasted": run.coasted,

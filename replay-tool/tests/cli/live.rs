@@ -308,3 +308,47 @@ fn stream_through_a_running_daemon_equals_offline_decoding() {
     assert!(out.contains("299 of 299 live estimates equal"), "{out}");
     daemon.stop().unwrap();
 }
+
+/// `closed-loop --select click`: the simulated user attempts a click with
+/// the array's click channels once inside the target, and the daemon's
+/// click (flag bit 4) selects; a model without a click decoder is refused.
+#[test]
+fn closed_loop_selects_by_click_with_a_click_decoder() {
+    let dir = tempfile::tempdir().unwrap();
+    let block = fixture::block("1", "16", &["--click"]);
+    let model = dir.path().join("vc.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--click",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let report = dir.path().join("cl");
+    closed_loop_fast(&model, "6", &["--select", "click"], &report);
+    let s = json_file(&report.join("closed-loop.json"));
+    assert_eq!(s["select"], "click");
+    assert!(s["summary"]["success_rate"].as_f64().unwrap() > 0.0, "{s}");
+    let err = fails_with(
+        &[
+            "closed-loop",
+            "--model",
+            p(&fixture::calibration_16().1),
+            "--time-scale",
+            "0",
+            "--select",
+            "click",
+            "--report",
+            p(&dir.path().join("x")),
+        ],
+        2,
+    );
+    assert!(
+        err.contains("--select click") && err.contains("--click"),
+        "{err}"
+    );
+}

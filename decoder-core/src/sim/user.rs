@@ -82,6 +82,9 @@ pub struct TrialResult {
     pub path_efficiency: Option<f64>,
     /// Seconds until the hold was complete, or the timeout.
     pub trial_time_s: f64,
+    /// The trial ended in a selection of the wrong place (a click outside
+    /// the target), not a timeout.
+    pub wrong_selection: bool,
 }
 
 #[derive(Clone, Debug, PartialEq, Serialize)]
@@ -94,7 +97,19 @@ pub struct TaskSummary {
     /// Mean over all trials of the time to a completed hold, a failed
     /// trial counting its whole timeout: what the user waits per target.
     pub mean_trial_time_s: f64,
+    /// Achieved bitrate, bits/s: log2(N − 1) · max(Sc − Si, 0) / t, with N
+    /// the selectable targets, Sc and Si the correct and incorrect
+    /// selections and t the whole time (from memory, as intracortical
+    /// typing studies report it).
+    pub bitrate_bps: f64,
+    /// Fitts throughput, bits/s: the mean over successful trials of the
+    /// index of difficulty log2(D/W + 1) over the trial's time (D the
+    /// distance to the target, W its width; MacKenzie 1992).
+    pub fitts_throughput_bps: Option<f64>,
 }
+
+/// Targets on the ring (the task draws one of eight directions).
+pub const N_TARGETS: usize = 8;
 
 /// Spikes from intended velocity, every millisecond with a refractory
 /// period, as the simulator draws them.
@@ -330,6 +345,7 @@ impl CenterOut {
             time_to_target_s: self.first_entry.map(|e| e.0).filter(|_| held),
             path_efficiency: self.first_entry.map(|e| e.1).filter(|_| held),
             trial_time_s: elapsed_s,
+            wrong_selection: clicked_outside,
         };
         self.results.push(result.clone());
         if !self.done() {
@@ -355,6 +371,21 @@ impl CenterOut {
             mean_path_efficiency: mean(&|r| r.path_efficiency),
             mean_trial_time_s: self.results.iter().map(|r| r.trial_time_s).sum::<f64>()
                 / self.results.len().max(1) as f64,
+            bitrate_bps: {
+                let correct = ok.len() as f64;
+                let wrong = self.results.iter().filter(|r| r.wrong_selection).count() as f64;
+                let t: f64 = self.results.iter().map(|r| r.trial_time_s).sum();
+                if t > 0.0 {
+                    ((N_TARGETS - 1) as f64).log2() * (correct - wrong).max(0.0) / t
+                } else {
+                    0.0
+                }
+            },
+            fitts_throughput_bps: {
+                let id = (self.options.radius / (2.0 * self.options.window) + 1.0).log2();
+                let rates: Vec<f64> = ok.iter().map(|r| id / r.trial_time_s).collect();
+                (!rates.is_empty()).then(|| rates.iter().sum::<f64>() / rates.len() as f64)
+            },
         }
     }
 }
@@ -373,6 +404,10 @@ mod tests {
         let s = task.summary();
         assert_eq!(s.success_rate, 1.0);
         assert!(s.mean_path_efficiency.unwrap() > 0.95, "{s:?}");
+        // Every trial a correct selection: log2(7) bits a trial.
+        let t: f64 = task.results().iter().map(|r| r.trial_time_s).sum();
+        let want = 7f64.log2() * 16.0 / t;
+        assert!((s.bitrate_bps - want).abs() < 1e-12, "{s:?}");
     }
 
     /// Selecting by click: a click inside the target is a success at that

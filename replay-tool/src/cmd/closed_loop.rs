@@ -411,6 +411,16 @@ pub fn report(setup: &ClosedLoopSetup<'_>, report: &Path) -> Result<TaskSummary>
         s.mean_path_efficiency
             .map_or("-".into(), |e| format!("{e:.2}")),
     );
+    println!(
+        "   selecting by {}: achieved bitrate {:.2} bits/s, Fitts throughput {}",
+        match setup.task.select {
+            Selection::Dwell => "dwell",
+            Selection::Click => "click",
+        },
+        s.bitrate_bps,
+        s.fitts_throughput_bps
+            .map_or("-".into(), |t| format!("{t:.2} bits/s")),
+    );
     if let Some(a) = &run.adaptation {
         println!("   adaptation: {}", a.line());
     }

@@ -292,8 +292,8 @@ fn a_recording_without_task_packets_is_refused_for_training_with_the_reason() {
 }
 
 /// A session decoded with a click decoder — every packet carrying its
-/// click probability, and clicks where the gate decided them — verifies
-/// bit for bit from its log.
+/// click probability, clicks where the gate decided them, targets selected
+/// by them, adaptation on — verifies bit for bit from its log.
 #[test]
 fn a_session_with_a_click_decoder_verifies_bit_for_bit() {
     let dir = tempfile::tempdir().unwrap();
@@ -310,8 +310,23 @@ fn a_session_with_a_click_decoder_verifies_bit_for_bit() {
         p(&model),
         "--no-cv",
     ]);
+    // Selecting by click, with online adaptation swapping in new velocity
+    // decoders (each keeps the click decoder) as the session goes on.
+    let config = dir.path().join("daemon.toml");
+    std::fs::write(&config, "[adaptation]\nbatch_s = 2.0\nhalf_life_s = 10.0\n").unwrap();
     let report = dir.path().join("cl");
-    closed_loop_fast(&model, "3", &[], &report);
+    closed_loop_fast(
+        &model,
+        "8",
+        &["--select", "click", "--adapt", "--config", p(&config)],
+        &report,
+    );
+    let s = json_file(&report.join("closed-loop.json"));
+    assert!(
+        s["adaptation"]["updates"].as_u64().unwrap() >= 1,
+        "{}",
+        s["adaptation"]
+    );
     let log = closed_loop_log(&report);
     let said = ok(&["verify", p(&log)]);
     assert!(said.contains("bit for bit"), "{said}");

@@ -238,10 +238,43 @@ fn point_process_step(c: &mut Criterion) {
     group.finish();
 }
 
+/// The click decoder's step: the discriminant over the last 6 bins'
+/// counts and the two-state forward recursion.
+fn click_step(c: &mut Criterion) {
+    use decoder_core::decoders::click::{ClickFilter, ClickModel};
+    let mut group = c.benchmark_group("click_step");
+    for n in [96usize, 192, 1024] {
+        let bins = 256;
+        let counts = random_counts(n, bins);
+        let lags = 6;
+        let mut f = ClickFilter::new(ClickModel {
+            n_channels: n,
+            lags,
+            weights: (0..n * lags)
+                .map(|i| ((i * 37 % 101) as f64 - 50.0) * 1e-3)
+                .collect(),
+            intercept: -2.0,
+            prior_click: 0.1,
+            stay_rest: 0.99,
+            stay_click: 0.93,
+        })
+        .unwrap();
+        let mut i = 0;
+        group.bench_with_input(BenchmarkId::new("lags6", n), &n, |b, _| {
+            b.iter(|| {
+                i = (i + 1) % bins;
+                black_box(f.step(black_box(&counts[i * n..(i + 1) * n])))
+            })
+        });
+    }
+    group.finish();
+}
+
 criterion_group!(
     benches,
     decode_step,
     point_process_step,
+    click_step,
     replay_throughput,
     training
 );

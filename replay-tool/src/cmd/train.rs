@@ -352,10 +352,62 @@ fn fit_click_on(args: &Args, source: &Path) -> Result<ClickModel> {
     Ok(model)
 }
 
+/// Cross-validated click scores for the model's fit document, with the
+/// settings `evaluate --click` uses.
+fn click_scores_on(args: &Args, source: &Path, folds: usize) -> Result<serde_json::Value> {
+    let block = Session::at(source)?
+        .block_with_kinematics()?
+        .block
+        .valid_only();
+    let cued = block.click.as_ref().expect("checked by the fit");
+    let bin_ms = block.bin_width.ms();
+    let gate =
+        decoder_core::decoders::click::ClickGate::new(0.9, 5, (500.0 / bin_ms).round() as usize);
+    let s = decoder_core::fit::click::cross_validate_click(
+        &block.counts,
+        block.n_channels,
+        cued,
+        args.click_lags,
+        args.click_shrinkage,
+        folds,
+        &gate,
+        bin_ms,
+        300.0,
+    )
+    .with_context(|| format!("cross-validating clicks on {}", source.display()))?;
+    println!(
+        "click decoder cross-validated ({folds} contiguous folds): AUC {:.3}, {} of {} attempts caught, {:.2} false clicks a minute",
+        s.auc, s.caught, s.cues, s.false_per_minute
+    );
+    Ok(serde_json::to_value(s)?)
+}
+
 fn write_model(args: &Args, trained: Trained, source: &str) -> Result<()> {
     let mut model = trained.model;
     if args.click {
-        model.click = Some(fit_click_on(args, &args.session[0])?);
+        let click = fit_click_on(args, &args.session[0])?;
+        // The click decoder's options, and its cross-validated scores unless
+        // --no-cv, in the fit document beside the velocity decoder's.
+        let cv = if args.no_cv {
+            serde_json::Value::Null
+        } else {
+            let folds = TrainConfig::read(args.config.as_deref())?.folds;
+            click_scores_on(args, &args.session[0], folds)?
+        };
+        let mut doc: serde_json::Value =
+            serde_json::from_str(&model.provenance.fit_document).unwrap_or_default();
+        if let Some(o) = doc.as_object_mut() {
+            o.insert(
+                "click".into(),
+                serde_json::json!({
+                    "lags": args.click_lags,
+                    "shrinkage": args.click_shrinkage,
+                    "cv": cv,
+                }),
+            );
+            model.provenance.fit_document = doc.to_string();
+        }
+        model.click = Some(click);
     }
     // Never write a file its readers would refuse.
     let bytes = model.to_bytes();

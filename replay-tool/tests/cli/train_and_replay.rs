@@ -456,6 +456,26 @@ fn train_with_click_puts_a_click_decoder_beside_the_velocity_decoder() {
         "--no-cv",
     ]);
     assert!(said.contains("click decoder: 6 lags"), "{said}");
+    // Trained with --no-cv: the options are recorded, the scores are not.
+    let shown_fit: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+    assert_eq!(shown_fit["fit"]["click"]["lags"], 6);
+    assert!(shown_fit["fit"]["click"]["cv"].is_null());
+    let with_cv = dir.path().join("vc-cv.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&block),
+        "--decoder",
+        "kalman",
+        "--click",
+        "--out",
+        p(&with_cv),
+    ]);
+    let shown_cv: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&with_cv), "--json"])).unwrap();
+    let auc = shown_cv["fit"]["click"]["cv"]["auc"].as_f64().unwrap();
+    assert!(auc > 0.6, "{}", shown_cv["fit"]["click"]);
     let shown: serde_json::Value =
         serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
     let click = &shown["click"];

@@ -83,6 +83,7 @@ pub struct RawClick {
     pub threshold: Option<f64>,
     pub hold_bins: Option<i64>,
     pub refractory_ms: Option<f64>,
+    pub max_speed: Option<f64>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -626,6 +627,7 @@ impl Check<'_> {
                 0.0,
                 5000.0,
             )?,
+            max_speed: self.within("click.max_speed", raw.max_speed.unwrap_or(0.0), 0.0, 1e6)?,
         })
     }
 

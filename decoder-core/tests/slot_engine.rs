@@ -528,8 +528,11 @@ fn clicks_go_out_where_the_gate_says_and_only_while_armed() {
         stay_click: 0.9,
     };
     m.click = Some(click.clone());
-    for armed in [true, false] {
-        let settings = settings(armed);
+    // Armed; disarmed; armed with a speed above which no click is made,
+    // set below any moving command.
+    for (armed, max_speed) in [(true, 0.0), (false, 0.0), (true, 1e-9)] {
+        let mut settings = settings(armed);
+        settings.click_gate.max_speed = max_speed;
         let mut engine = SlotEngine::new(settings.clone(), m.pipeline().unwrap());
         let mut out = Collected::default();
         let mut buf = Vec::new();
@@ -567,11 +570,13 @@ fn clicks_go_out_where_the_gate_says_and_only_while_armed() {
             };
             assert_eq!(p.click_prob, prob as f32, "seq {}", p.seq);
             let armed_now = p.state == 1;
-            let want = gate.step(prob, came && armed_now);
+            let speed = p.command.iter().map(|v| v * v).sum::<f64>().sqrt();
+            let slow = max_speed <= 0.0 || speed <= max_speed;
+            let want = gate.step(prob, came && armed_now && slow);
             assert_eq!(p.flags & FLAG_CLICK != 0, want, "seq {}", p.seq);
             clicks += usize::from(want);
         }
-        if armed {
+        if armed && max_speed == 0.0 {
             assert!(clicks >= 2, "{clicks} clicks while armed");
         } else {
             assert_eq!(clicks, 0);

@@ -78,6 +78,10 @@ pub struct ClickGateSettings {
     pub threshold: f64,
     pub hold_bins: u32,
     pub refractory_ms: f64,
+    /// No click while the command is faster than this (position units
+    /// per second); 0 turns the rule off.
+    #[serde(default)]
+    pub max_speed: f64,
 }
 
 impl Default for ClickGateSettings {
@@ -86,6 +90,7 @@ impl Default for ClickGateSettings {
             threshold: 0.9,
             hold_bins: 5,
             refractory_ms: 500.0,
+            max_speed: 0.0,
         }
     }
 }
@@ -617,7 +622,16 @@ impl SlotEngine {
             // A click only while armed on a bin that came: never while
             // coasting, halted or disarmed.
             self.click_prob = if p.is_finite() { p as f32 } else { 0.0 };
-            let allowed = !missing && !fault && supervised.state == SupervisorState::Armed;
+            let speed = self
+                .supervisor
+                .command()
+                .iter()
+                .map(|v| v * v)
+                .sum::<f64>()
+                .sqrt();
+            let slow = self.settings.click_gate.max_speed <= 0.0
+                || speed <= self.settings.click_gate.max_speed;
+            let allowed = !missing && !fault && slow && supervised.state == SupervisorState::Armed;
             if self.click_gate.step(p, allowed) {
                 flags |= FLAG_CLICK;
                 self.clicks += 1;

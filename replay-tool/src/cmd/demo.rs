@@ -140,6 +140,8 @@ pub fn run(args: &Args) -> Result<()> {
         out: estimates.clone(),
         no_steady_state: false,
         compare: None,
+        click_out: None,
+        config: None,
     })?;
     let parts: Vec<String> = summary
         .cc

@@ -45,6 +45,17 @@ pub struct Args {
     /// OTHER's estimates side by side to this CSV.
     #[arg(long, requires = "model")]
     pub compare: Option<PathBuf>,
+    /// With a click decoder: write (T, 2) of each bin's click probability
+    /// and click flag (0 or 1), as the velocity packet carries them (a
+    /// session directory replays as a daemon armed throughout, a log with
+    /// its logged states).
+    #[arg(long, value_name = "FILE.npy|FILE.csv")]
+    pub click_out: Option<PathBuf>,
+    /// A session directory's click gating from this daemon configuration's
+    /// `[click]` (default: the daemon's defaults). A log replays with the
+    /// settings it recorded.
+    #[arg(long, value_name = "DAEMON.toml")]
+    pub config: Option<PathBuf>,
 }
 
 pub struct ReplaySummary {
@@ -88,6 +99,21 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
         )
     })?;
     sink.finish()?;
+    if let Some(click_out) = &args.click_out {
+        let gate = match &args.config {
+            Some(c) => {
+                let raw = daemon::config::RawConfig::from_file(c)?;
+                // The model replayed stands in for the daemon's.
+                let overrides = daemon::config::Overrides {
+                    model: Some(model_path.clone()),
+                    ..Default::default()
+                };
+                daemon::config::Config::resolve(raw, &overrides, &c.display().to_string())?.click
+            }
+            None => Default::default(),
+        };
+        replay_clicks(&rows, &model, &gate, click_out)?;
+    }
     let elapsed = started.elapsed().as_secs_f64();
     if streamed.faults > 0 {
         tracing::warn!(
@@ -103,7 +129,47 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
     })
 }
 
+/// A session directory's click probability and clicks, bin by bin, as a
+/// daemon armed throughout would send them: the model's click decoder on
+/// every bin (a bin marked not valid counts as one that never came) and
+/// the gate of `settings`.
+fn replay_clicks(
+    rows: &BlockFiles,
+    model: &ModelFile,
+    settings: &decoder_core::engine::slot_engine::ClickGateSettings,
+    out: &std::path::Path,
+) -> Result<()> {
+    use decoder_core::decoders::click::ClickFilter;
+    let Some(click) = &model.click else {
+        bail!("--click-out needs a model with a click decoder (train it with --click)");
+    };
+    let mut filter = ClickFilter::new(click.clone()).context("the model's click decoder")?;
+    let mut gate = settings.gate(model.bin_width);
+    let n = model.decoder.n_channels();
+    let mut table = Vec::with_capacity(2 * rows.all_bins());
+    rows.pass_all(&mut |chunk| {
+        for r in 0..chunk.rows {
+            let came = chunk.is_valid(r);
+            let p = if came {
+                filter.step(&chunk.counts[r * n..(r + 1) * n])
+            } else {
+                filter.predict_only()
+            };
+            let clicked = gate.step(p, came);
+            table.push(f64::from(p as f32));
+            table.push(f64::from(u8::from(clicked)));
+        }
+    })?;
+    let header = ["click_prob", "click"].map(String::from);
+    write_table(out, &header, table.len() / 2, &table)
+}
+
 fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
+    if args.config.is_some() {
+        bail!(
+            "--config applies to session directories; a log replays with the settings it recorded"
+        );
+    }
     let model = match &args.model {
         Some(p) => Some(ModelFile::read(p)?),
         None => None,
@@ -118,9 +184,16 @@ fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
     let mut estimates = Vec::new();
     let (mut identical, mut recorded) = (0u64, 0u64);
     let mut bad_packet = None;
+    let mut clicks = Vec::new();
     let summary = replay_log(&mut reader, model.as_ref(), |slot| {
         match VelocityPacket::parse(slot.replayed) {
-            Ok(p) => estimates.extend_from_slice(&p.estimate),
+            Ok(p) => {
+                estimates.extend_from_slice(&p.estimate);
+                clicks.push(f64::from(p.click_prob));
+                clicks.push(f64::from(u8::from(
+                    p.flags & decoder_core::wire::packet::FLAG_CLICK != 0,
+                )));
+            }
             Err(e) => bad_packet = Some(e),
         }
         if let Some(r) = slot.recorded {
@@ -134,6 +207,10 @@ fn replay_session_log(args: &Args) -> Result<ReplaySummary> {
     let elapsed = started.elapsed().as_secs_f64();
     let n = estimates.len() / d.max(1);
     write_table(&args.out, &outputs, n, &estimates)?;
+    if let Some(click_out) = &args.click_out {
+        let header = ["click_prob", "click"].map(String::from);
+        write_table(click_out, &header, clicks.len() / 2, &clicks)?;
+    }
     match &summary.end {
         Some(LogEnd::TornTail { offset, bytes }) => tracing::warn!(
             "{}: torn tail at byte {offset} ({bytes} bytes dropped); replayed up to it",

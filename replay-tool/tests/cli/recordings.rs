@@ -330,14 +330,36 @@ fn a_session_with_a_click_decoder_verifies_bit_for_bit() {
     let log = closed_loop_log(&report);
     let said = ok(&["verify", p(&log)]);
     assert!(said.contains("bit for bit"), "{said}");
-    // The packets did carry a click probability.
+    // The packets did carry a click probability, and `replay --click-out`
+    // writes each slot's probability and click as the packets carried them.
     let mut reader = decoder_core::formats::session_log::LogReader::open(&log).unwrap();
-    let mut carried = 0;
+    let mut sent = Vec::new();
     while let Some(r) = reader.next_record() {
         if let decoder_core::formats::session_log::LogRecord::Sent { packet, .. } = r {
             let v = decoder_core::wire::packet::VelocityPacket::parse(&packet).unwrap();
-            carried += usize::from(v.click_prob > 0.0);
+            sent.push((
+                f64::from(v.click_prob),
+                f64::from(u8::from(
+                    v.flags & decoder_core::wire::packet::FLAG_CLICK != 0,
+                )),
+            ));
         }
     }
-    assert!(carried > 0);
+    assert!(sent.iter().any(|(p, _)| *p > 0.0));
+    let clicks = dir.path().join("clicks.npy");
+    ok(&[
+        "replay",
+        "--session",
+        p(&log),
+        "--out",
+        p(&dir.path().join("e.npy")),
+        "--click-out",
+        p(&clicks),
+    ]);
+    let table = npy_f64(&clicks);
+    assert_eq!(table.nrows(), sent.len());
+    for (row, (p, c)) in table.rows().into_iter().zip(&sent) {
+        assert_eq!((row[0], row[1]), (*p, *c));
+    }
+    assert!(sent.iter().any(|(_, c)| *c == 1.0), "a click selected");
 }

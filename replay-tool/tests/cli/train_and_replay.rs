@@ -500,6 +500,37 @@ fn train_with_click_puts_a_click_decoder_beside_the_velocity_decoder() {
     assert_eq!(shown["H"], plain["H"]);
     assert!(plain["click"].is_null());
 
+    // A session directory replays its clicks as a daemon armed throughout
+    // would send them, with the gate of a daemon configuration.
+    let estimates = dir.path().join("e.npy");
+    let replay_clicks = |extra: &[&str]| {
+        let out = dir.path().join("c.npy");
+        let mut a = vec![
+            "replay",
+            "--session",
+            p(&block),
+            "--model",
+            p(&model),
+            "--out",
+            p(&estimates),
+            "--click-out",
+            p(&out),
+        ];
+        a.extend_from_slice(extra);
+        ok(&a);
+        let t = npy_f64(&out);
+        assert_eq!(t.nrows(), 3000);
+        t.column(1).sum()
+    };
+    let default_clicks = replay_clicks(&[]);
+    let strict = dir.path().join("strict.toml");
+    std::fs::write(&strict, "[click]\nthreshold = 0.999\nhold_bins = 20\n").unwrap();
+    let strict_clicks = replay_clicks(&["--config", p(&strict)]);
+    assert!(
+        default_clicks > 0.0 && strict_clicks < default_clicks,
+        "{default_clicks} {strict_clicks}"
+    );
+
     let err = fails_with(
         &[
             "train",

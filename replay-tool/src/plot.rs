@@ -285,10 +285,62 @@ where
 /// another and the files stay small whatever the run's length.
 pub fn latency_envelopes(series: &[(&str, &[Envelope])], bucket_s: f64, stem: &Path) -> Result<()> {
     register_font();
+    // At most MAX_PLOTTED points a panel: a longer run is drawn in wider
+    // buckets, each the median of its buckets' medians and the largest of
+    // their p99s and maxima (seconds.csv keeps every bucket).
+    let longest = series.iter().map(|(_, e)| e.len()).max().unwrap_or(0);
+    let group = longest.div_ceil(MAX_PLOTTED).max(1);
+    let merged: Vec<(&str, Vec<Envelope>)> = series
+        .iter()
+        .map(|(name, e)| (*name, merge_envelopes(e, group, bucket_s)))
+        .collect();
+    let views: Vec<(&str, &[Envelope])> = merged.iter().map(|(n, e)| (*n, e.as_slice())).collect();
     let height = 40 + 230 * series.len().max(1) as u32;
+    let width_s = bucket_s * group as f64;
     svg_and_png!(stem, (900, height), |root| draw_envelopes(
-        root, series, bucket_s
+        root, &views, width_s
     ))
+}
+
+/// Points a latency panel draws at most (its plot is about 800 px wide).
+const MAX_PLOTTED: usize = 400;
+
+/// The bucket width, s, [`latency_envelopes`] draws `buckets` buckets of
+/// `bucket_s` in.
+pub fn plotted_bucket_s(buckets: usize, bucket_s: f64) -> f64 {
+    bucket_s * buckets.div_ceil(MAX_PLOTTED).max(1) as f64
+}
+
+/// Consecutive groups of `group` buckets as one: the median of their
+/// medians, the largest p99 and max.
+fn merge_envelopes(e: &[Envelope], group: usize, bucket_s: f64) -> Vec<Envelope> {
+    if group <= 1 {
+        return e.to_vec();
+    }
+    let width = bucket_s * group as f64;
+    let mut out: Vec<Envelope> = Vec::new();
+    let mut i = 0;
+    while i < e.len() {
+        // The buckets of one wide bucket, by time (a bucket without
+        // samples has no point).
+        let wide = (e[i].t_s / width).floor();
+        let mut j = i;
+        while j < e.len() && (e[j].t_s / width).floor() == wide {
+            j += 1;
+        }
+        let part = &e[i..j];
+        let mut medians: Vec<f64> = part.iter().map(|p| p.median_us).collect();
+        medians.sort_by(f64::total_cmp);
+        out.push(Envelope {
+            t_s: wide * width,
+            median_us: medians[medians.len() / 2],
+            p99_us: part.iter().map(|p| p.p99_us).fold(f64::MIN, f64::max),
+            max_us: part.iter().map(|p| p.max_us).fold(f64::MIN, f64::max),
+            count: part.iter().map(|p| p.count).sum(),
+        });
+        i = j;
+    }
+    out
 }
 
 /// One line of an envelope panel: its legend, the figure it draws, its style.
@@ -549,4 +601,40 @@ where
         .draw()
         .map_err(e)?;
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A long run is drawn in wider buckets: the median of the medians and
+    /// the largest p99 and max of each group, by time.
+    #[test]
+    fn envelopes_merge_into_wider_buckets_by_time() {
+        let e: Vec<Envelope> = (0..10)
+            .filter(|t| *t != 5) // a second with no sample has no point
+            .map(|t| Envelope {
+                t_s: t as f64,
+                median_us: t as f64,
+                p99_us: 10.0 * t as f64,
+                max_us: 100.0 - t as f64,
+                count: 1,
+            })
+            .collect();
+        let m = merge_envelopes(&e, 4, 1.0);
+        let got: Vec<(f64, f64, f64, f64, usize)> = m
+            .iter()
+            .map(|p| (p.t_s, p.median_us, p.p99_us, p.max_us, p.count))
+            .collect();
+        assert_eq!(
+            got,
+            vec![
+                (0.0, 2.0, 30.0, 100.0, 4),
+                (4.0, 6.0, 70.0, 96.0, 3),
+                (8.0, 9.0, 90.0, 92.0, 2)
+            ]
+        );
+        assert_eq!(plotted_bucket_s(7200, 1.0), 18.0);
+        assert_eq!(plotted_bucket_s(300, 1.0), 1.0);
+    }
 }

@@ -452,6 +452,19 @@ fn write_report(
     } else {
         format!("{} s", m.bucket_s)
     };
+    let longest = [&m.recv_to_send, &m.round_trip, &m.jitter]
+        .iter()
+        .map(|s| s.envelopes.len())
+        .max()
+        .unwrap_or(0);
+    let drawn_s = plot::plotted_bucket_s(longest, m.bucket_s);
+    let drawn = if drawn_s == m.bucket_s {
+        format!("For each {bucket} of the run")
+    } else {
+        format!(
+            "Drawn in buckets of {drawn_s} s (each the median of its {bucket} medians, and the largest p99 and max), so the run fits the page; seconds.csv has every {bucket}. For each bucket"
+        )
+    };
     let html = format!(
         r#"<!doctype html><meta charset=utf-8><title>decoderd bench</title>
 <style>body{{font-family:sans-serif;max-width:960px;margin:2em auto}}table{{border-collapse:collapse}}td,th{{border:1px solid #ccc;padding:4px 10px;text-align:right}}td:first-child,th:first-child{{text-align:left}}.pass{{color:#1a7f37;font-size:2em}}.fail{{color:#c62828;font-size:2em}}.note{{color:#555;font-size:0.9em}}img{{max-width:100%}}table.facts td{{text-align:left}}</style>
@@ -480,7 +493,7 @@ Percentiles come from running histograms with three significant digits (within 0
 Heartbeat packets after the stream: {extra} — after the last bin the daemon keeps answering every slot (halted packets), so an actuator can tell a stopped stream from a dead daemon; they are not misses.</p>
 <h2>Latency histogram</h2><img src="latency-histogram.svg" alt="latency histogram">
 <h2>Latency over the run</h2>
-<p class=note>One panel per series. For each {bucket} of the run: the median (dark line), the p99 (middle line) and the largest value (light line) of the bins in it.</p>
+<p class=note>One panel per series. {drawn}: the median (dark line), the p99 (middle line) and the largest value (light line) of the bins in it.</p>
 <img src="latency-over-time.svg" alt="per-{bucket} median, p99 and max of each latency series over the run">
 <p>Per-{bucket} figures: <a href="seconds.csv">seconds.csv</a>; per-bin figures: <a href="bins.csv">bins.csv</a> (written as the bins were measured; about 60 bytes a bin); summary: <a href="summary.json">summary.json</a>.</p>
 "#,

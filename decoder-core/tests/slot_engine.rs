@@ -585,3 +585,58 @@ fn clicks_go_out_where_the_gate_says_and_only_while_armed() {
         assert_eq!(engine.clicks().0, clicks as u64);
     }
 }
+
+/// However wrong the click decoder (here its weights shuffled across
+/// channels and its intercept pushed up so it claims a click every bin),
+/// the gate bounds the clicks: at most one per hold plus refractory time.
+#[test]
+fn a_wrong_click_decoder_clicks_no_more_than_the_gate_allows() {
+    use decoder_core::decoders::click::ClickModel;
+    use decoder_core::wire::packet::FLAG_CLICK;
+    let (mut m, session) = model();
+    let n = m.decoder.n_channels();
+    let mut weights: Vec<f64> = (0..2 * n).map(|i| ((i * 7919) % 13) as f64 - 6.0).collect();
+    weights.reverse();
+    m.click = Some(ClickModel {
+        n_channels: n,
+        lags: 2,
+        weights,
+        intercept: 50.0,
+        prior_click: 0.1,
+        stay_rest: 0.95,
+        stay_click: 0.9,
+    });
+    let settings = settings(true);
+    let gate = settings.click_gate;
+    let mut engine = SlotEngine::new(settings.clone(), m.pipeline().unwrap());
+    let mut out = Collected::default();
+    let mut buf = Vec::new();
+    let bins = 1000u64;
+    for seq in 0..bins {
+        let counts = session.bin_counts(seq as usize % session.n_bins);
+        packet::encode_bin(
+            &BinHeader {
+                channels: n as u16,
+                seq,
+                origin_ns: T0 + seq * BIN_NS,
+                bin_us: 20_000,
+                flags: 0,
+                kind: decoder_core::wire::packet::BinKind::Counts,
+            },
+            counts,
+            &mut buf,
+        );
+        engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, &mut out);
+    }
+    let clicks = out
+        .packets
+        .iter()
+        .filter(|p| p.flags & FLAG_CLICK != 0)
+        .count() as u64;
+    let refractory = (gate.refractory_ms / 20.0).ceil() as u64;
+    let most = bins.div_ceil(u64::from(gate.hold_bins) + refractory);
+    assert!(
+        clicks >= 1 && clicks <= most,
+        "{clicks} clicks, at most {most}"
+    );
+}

@@ -503,6 +503,30 @@ fn a_numerical_fault_never_puts_a_non_finite_value_in_a_packet() {
     assert_eq!(rig.out.packets.last().unwrap().state, 3, "halted");
 }
 
+/// Bin `seq` of `session` arriving a microsecond after its nominal time.
+fn send_on_time(
+    engine: &mut SlotEngine,
+    out: &mut Collected,
+    session: &decoder_core::Block,
+    seq: u64,
+) {
+    let counts = session.bin_counts(seq as usize % session.n_bins);
+    let mut buf = Vec::new();
+    packet::encode_bin(
+        &BinHeader {
+            channels: counts.len() as u16,
+            seq,
+            origin_ns: T0 + seq * BIN_NS,
+            bin_us: 20_000,
+            flags: 0,
+            kind: decoder_core::wire::packet::BinKind::Counts,
+        },
+        counts,
+        &mut buf,
+    );
+    engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, out);
+}
+
 /// With a click decoder in the model, every packet carries the click
 /// probability the filter gives for its bin, and flag bit 4 exactly where
 /// the gate (the engine's settings) says — only while armed, never on a
@@ -535,27 +559,13 @@ fn clicks_go_out_where_the_gate_says_and_only_while_armed() {
         settings.click_gate.max_speed = max_speed;
         let mut engine = SlotEngine::new(settings.clone(), m.pipeline().unwrap());
         let mut out = Collected::default();
-        let mut buf = Vec::new();
         let missing = [17u64, 18];
         for seq in 0..120u64 {
             if missing.contains(&seq) {
                 engine.on_timeout(T0 + (seq + 1) * BIN_NS, &mut out);
                 continue;
             }
-            let counts = session.bin_counts(seq as usize % session.n_bins);
-            packet::encode_bin(
-                &BinHeader {
-                    channels: n as u16,
-                    seq,
-                    origin_ns: T0 + seq * BIN_NS,
-                    bin_us: 20_000,
-                    flags: 0,
-                    kind: decoder_core::wire::packet::BinKind::Counts,
-                },
-                counts,
-                &mut buf,
-            );
-            engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, &mut out);
+            send_on_time(&mut engine, &mut out, &session, seq);
         }
         // The same filter and gate, run beside the engine.
         let mut filter = ClickFilter::new(click.clone()).unwrap();
@@ -610,23 +620,9 @@ fn a_wrong_click_decoder_clicks_no_more_than_the_gate_allows() {
     let gate = settings.click_gate;
     let mut engine = SlotEngine::new(settings.clone(), m.pipeline().unwrap());
     let mut out = Collected::default();
-    let mut buf = Vec::new();
     let bins = 1000u64;
     for seq in 0..bins {
-        let counts = session.bin_counts(seq as usize % session.n_bins);
-        packet::encode_bin(
-            &BinHeader {
-                channels: n as u16,
-                seq,
-                origin_ns: T0 + seq * BIN_NS,
-                bin_us: 20_000,
-                flags: 0,
-                kind: decoder_core::wire::packet::BinKind::Counts,
-            },
-            counts,
-            &mut buf,
-        );
-        engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, &mut out);
+        send_on_time(&mut engine, &mut out, &session, seq);
     }
     let clicks = out
         .packets

@@ -78,6 +78,28 @@ pub fn kalman(block: &Path) -> PathBuf {
     })
 }
 
+/// A Kalman model with a click decoder (`train --click`, no
+/// cross-validation) trained on `block`, which must have click cues.
+pub fn kalman_with_click(block: &Path) -> PathBuf {
+    let name = format!(
+        "{}.kalman-click.model",
+        block.file_name().unwrap().to_string_lossy()
+    );
+    cached(&name, |out| {
+        ok(&[
+            "train",
+            "--session",
+            p(block),
+            "--decoder",
+            "kalman",
+            "--click",
+            "--out",
+            p(out),
+            "--no-cv",
+        ]);
+    })
+}
+
 /// The calibration most live tests share: one minute of 16 channels, and
 /// its Kalman model.
 pub fn calibration_16() -> (PathBuf, PathBuf) {

@@ -315,19 +315,7 @@ fn stream_through_a_running_daemon_equals_offline_decoding() {
 #[test]
 fn closed_loop_selects_by_click_with_a_click_decoder() {
     let dir = tempfile::tempdir().unwrap();
-    let block = fixture::block("1", "16", &["--click"]);
-    let model = dir.path().join("vc.model");
-    ok(&[
-        "train",
-        "--session",
-        p(&block),
-        "--decoder",
-        "kalman",
-        "--click",
-        "--out",
-        p(&model),
-        "--no-cv",
-    ]);
+    let model = fixture::kalman_with_click(&fixture::block("1", "16", &["--click"]));
     let report = dir.path().join("cl");
     closed_loop_fast(&model, "6", &["--select", "click"], &report);
     let s = json_file(&report.join("closed-loop.json"));
@@ -360,19 +348,7 @@ fn closed_loop_selects_by_click_with_a_click_decoder() {
 #[test]
 fn selecting_by_click_beats_dwell_on_a_small_array() {
     let dir = tempfile::tempdir().unwrap();
-    let block = fixture::block("3", "64", &["--click"]);
-    let model = dir.path().join("vc.model");
-    ok(&[
-        "train",
-        "--session",
-        p(&block),
-        "--decoder",
-        "kalman",
-        "--click",
-        "--out",
-        p(&model),
-        "--no-cv",
-    ]);
+    let model = fixture::kalman_with_click(&fixture::block("3", "64", &["--click"]));
     let bitrate = |select: &str| {
         let report = dir.path().join(select);
         closed_loop_fast(&model, "16", &["--select", select], &report);

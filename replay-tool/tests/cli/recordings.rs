@@ -297,19 +297,7 @@ fn a_recording_without_task_packets_is_refused_for_training_with_the_reason() {
 #[test]
 fn a_session_with_a_click_decoder_verifies_bit_for_bit() {
     let dir = tempfile::tempdir().unwrap();
-    let block = fixture::block("1", "16", &["--click"]);
-    let model = dir.path().join("vc.model");
-    ok(&[
-        "train",
-        "--session",
-        p(&block),
-        "--decoder",
-        "kalman",
-        "--click",
-        "--out",
-        p(&model),
-        "--no-cv",
-    ]);
+    let model = fixture::kalman_with_click(&fixture::block("1", "16", &["--click"]));
     // Selecting by click, with online adaptation swapping in new velocity
     // decoders (each keeps the click decoder) as the session goes on.
     let config = dir.path().join("daemon.toml");

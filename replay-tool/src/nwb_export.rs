@@ -9,10 +9,11 @@
 //! `TimeSeries` in a `BehavioralTimeSeries`, both under
 //! `processing/behavior`; the trials as the `intervals/trials` table with
 //! their targets; what the daemon sent (estimate, command, state, whether
-//! the row is valid for training) as `TimeSeries` under
-//! `processing/decoder`. Every series has one row per bin slot, stamped at
-//! the end of its bin, in seconds from `timestamps_reference_time` (when
-//! the daemon opened the log). The model, the tool and the bin width are
+//! the row is valid for training, and with a click decoder the click
+//! probability and clicks) as `TimeSeries` under `processing/decoder`.
+//! Every series has one row per bin slot, stamped at the end of its bin,
+//! in seconds from `timestamps_reference_time` (when the daemon opened the
+//! log). The model, the tool and the bin width are
 //! in `general/notes` and `general/data_collection`; what the log cannot
 //! know (subject, experimenter, institution …) comes from a metadata file.
 //!
@@ -533,6 +534,37 @@ pub fn export_nwb(log: &Path, out: &Path, meta: &Metadata) -> Result<Written> {
         },
     ] {
         add_series(&mut decoder, "/processing/decoder", &ids, &s, &regular);
+    }
+    // The click decoder's output, when the session had one.
+    if models
+        .first
+        .as_ref()
+        .is_some_and(|(m, _)| m.click.is_some())
+    {
+        let prob: Vec<f64> = lb.clicks.iter().map(|(p, _)| f64::from(*p)).collect();
+        let clicked: Vec<u8> = lb.clicks.iter().map(|(_, c)| u8::from(*c)).collect();
+        for s in [
+            Series {
+                name: "click_probability",
+                kind: "TimeSeries",
+                values: SeriesValues::F64(&prob),
+                cols: 1,
+                unit: "probability",
+                description: "the click decoder's probability that the participant was attempting a click, as the velocity packet carried it",
+                reference_frame: None,
+            },
+            Series {
+                name: "click",
+                kind: "TimeSeries",
+                values: SeriesValues::U8(&clicked),
+                cols: 1,
+                unit: "flag",
+                description: "1 where the daemon decided a click (velocity packet flag bit 4), else 0",
+                reference_frame: None,
+            },
+        ] {
+            add_series(&mut decoder, "/processing/decoder", &ids, &s, &regular);
+        }
     }
     processing.add_group(decoder.finish());
     f.add_group(processing.finish());

@@ -55,6 +55,8 @@ pub struct LogBlock {
     pub states: Vec<u8>,
     /// When each velocity packet left (the daemon's `sent_ns`).
     pub sent_ns: Vec<u64>,
+    /// Each velocity packet's click probability and whether it clicked.
+    pub clicks: Vec<(f32, bool)>,
     /// The task state each row was counted under (`None`: none yet).
     pub task: Vec<Option<TaskState>>,
     pub summary: LogBlockSummary,
@@ -235,12 +237,13 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
     let d_out = header.outputs.len();
     let (mut counts, mut missing, mut seqs) = (Vec::new(), Vec::new(), Vec::new());
     let (mut estimates, mut commands) = (Vec::new(), Vec::new());
-    let (mut states, mut sent_ns) = (Vec::new(), Vec::new());
+    let (mut states, mut sent_ns, mut clicks) = (Vec::new(), Vec::new(), Vec::new());
     let mut tasks = Vec::new();
     let mut summary = LogBlockSummary::default();
     walk_slots(path, &mut reader, &mut summary, &mut tasks, |p, c| {
         states.push(p.state);
         sent_ns.push(p.sent_ns);
+        clicks.push((p.click_prob, p.flags & packet::FLAG_CLICK != 0));
         match c {
             Some(c) => counts.extend_from_slice(c),
             None => counts.extend(std::iter::repeat_n(0, n)),
@@ -288,6 +291,7 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
         },
         states,
         sent_ns,
+        clicks,
         task,
         summary,
     })

@@ -126,9 +126,10 @@ fn a_file_read_in_many_windows_imports_as_numpy_bins_it() {
 #[test]
 fn a_session_exports_to_nwb_that_pynwb_reads_and_imports_back_to_the_same_counts() {
     let dir = tempfile::tempdir().unwrap();
-    let (_, model) = fixture::calibration_16();
+    // A velocity-and-click model, selecting by click.
+    let model = fixture::kalman_with_click(&fixture::block("1", "16", &["--click"]));
     let report = dir.path().join("cl");
-    closed_loop_fast(&model, "3", &[], &report);
+    closed_loop_fast(&model, "3", &["--select", "click"], &report);
     let log = closed_loop_log(&report);
     let meta = dir.path().join("meta.toml");
     std::fs::write(
@@ -184,6 +185,35 @@ keywords = ["velocity decoding", "closed loop"]
         .read_string()
         .unwrap();
     assert_eq!(subject, ["Macaca mulatta"]);
+
+    // The click decoder's output, as the packets carried it (the replay of
+    // the log writes the same).
+    let clicks = dir.path().join("clicks.npy");
+    ok(&[
+        "replay",
+        "--session",
+        p(&log),
+        "--out",
+        p(&dir.path().join("e.npy")),
+        "--click-out",
+        p(&clicks),
+    ]);
+    let replayed = npy_f64(&clicks);
+    let prob = f
+        .dataset("processing/decoder/click_probability/data")
+        .unwrap()
+        .read_f64()
+        .unwrap();
+    let flag = f
+        .dataset("processing/decoder/click/data")
+        .unwrap()
+        .read_u8()
+        .unwrap();
+    assert_eq!(prob, replayed.column(0).to_vec());
+    assert_eq!(
+        flag.iter().map(|&c| f64::from(c)).collect::<Vec<_>>(),
+        replayed.column(1).to_vec()
+    );
 
     // import reads it back to the same counts.
     let back = dir.path().join("back");

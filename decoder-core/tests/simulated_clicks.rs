@@ -85,35 +85,7 @@ fn the_written_block_has_the_same_click_cues_and_a_click_decoder_separates_them(
             )
         })
         .collect();
-    let pos: Vec<f64> = score
-        .iter()
-        .zip(&y)
-        .filter(|(_, c)| **c)
-        .map(|(s, _)| *s)
-        .collect();
-    let neg: Vec<f64> = score
-        .iter()
-        .zip(&y)
-        .filter(|(_, c)| !**c)
-        .map(|(s, _)| *s)
-        .collect();
-    let right: f64 = pos
-        .iter()
-        .map(|p| {
-            neg.iter()
-                .map(|n| {
-                    if p > n {
-                        1.0
-                    } else if p == n {
-                        0.5
-                    } else {
-                        0.0
-                    }
-                })
-                .sum::<f64>()
-        })
-        .sum();
-    let auc = right / (pos.len() * neg.len()) as f64;
+    let auc = decoder_core::fit::click::roc_auc(&score, &y);
     assert!(auc > 0.85, "AUC {auc}");
 }
 

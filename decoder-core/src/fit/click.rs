@@ -37,6 +37,14 @@ pub enum ClickFitError {
     NoTransition(&'static str),
 }
 
+/// Bins of counts the discriminant reads unless told otherwise (120 ms at
+/// 20 ms bins).
+pub const DEFAULT_LAGS: usize = 6;
+/// Shrinkage of the pooled covariance unless told otherwise.
+pub const DEFAULT_SHRINKAGE: f64 = 0.05;
+/// How long after a cue's end a click still catches it, ms.
+pub const CATCH_MS: f64 = 300.0;
+
 /// A two-class linear discriminant: weights and intercept of the log
 /// posterior odds of class 1, and class 1's prior.
 #[derive(Clone, Debug, PartialEq)]
@@ -247,6 +255,26 @@ pub fn transitions(click: &[bool]) -> Result<(f64, f64), ClickFitError> {
     Ok((rr as f64 / r as f64, cc as f64 / c as f64))
 }
 
+/// The click model of a fitted discriminant, with the transitions of the
+/// cues it was fitted on.
+fn model_of(
+    d: Discriminant,
+    cued: &[bool],
+    n: usize,
+    lags: usize,
+) -> Result<ClickModel, ClickFitError> {
+    let (stay_rest, stay_click) = transitions(cued)?;
+    Ok(ClickModel {
+        n_channels: n,
+        lags,
+        weights: d.weights,
+        intercept: d.intercept,
+        prior_click: d.prior,
+        stay_rest,
+        stay_click,
+    })
+}
+
 /// Fits a click decoder on a block's counts (`t × n`) and its click cues.
 pub fn fit_click(
     counts: &[u16],
@@ -265,17 +293,7 @@ pub fn fit_click(
         lags,
         keep: |_| true,
     };
-    let d = fit_discriminant(&rows, shrinkage)?;
-    let (stay_rest, stay_click) = transitions(click)?;
-    Ok(ClickModel {
-        n_channels: n,
-        lags,
-        weights: d.weights,
-        intercept: d.intercept,
-        prior_click: d.prior,
-        stay_rest,
-        stay_click,
-    })
+    model_of(fit_discriminant(&rows, shrinkage)?, click, n, lags)
 }
 
 /// How well clicks are decoded, as the field reports it.
@@ -414,21 +432,11 @@ pub fn cross_validate_click(
             lags,
             keep: |r: usize| r + lags - 1 < fold.start || r >= fold.end,
         };
-        let d = fit_discriminant(&rows, shrinkage)?;
         let train_labels: Vec<bool> = (0..t)
             .filter(|b| !fold.contains(b))
             .map(|b| cued[b])
             .collect();
-        let (stay_rest, stay_click) = transitions(&train_labels)?;
-        let model = ClickModel {
-            n_channels: n,
-            lags,
-            weights: d.weights,
-            intercept: d.intercept,
-            prior_click: d.prior,
-            stay_rest,
-            stay_click,
-        };
+        let model = model_of(fit_discriminant(&rows, shrinkage)?, &train_labels, n, lags)?;
         let mut filter = ClickFilter::new(model).map_err(|_| ClickFitError::Singular)?;
         let mut g = gate.clone();
         g.reset();

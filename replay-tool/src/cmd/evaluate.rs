@@ -118,51 +118,58 @@ pub fn run(args: &Args) -> Result<()> {
     Ok(())
 }
 
-/// The click decoder's settings `evaluate --click` scores: the defaults
-/// of `train --click`, and a gate of p ≥ 0.9 held 5 bins with 500 ms
-/// between clicks.
-const CLICK_LAGS: usize = 6;
-const CLICK_SHRINKAGE: f64 = 0.05;
-const CLICK_THRESHOLD: f64 = 0.9;
-const CLICK_HOLD_BINS: usize = 5;
-const CLICK_REFRACTORY_MS: f64 = 500.0;
-const CLICK_CATCH_MS: f64 = 300.0;
+/// A block's click cues, or the error that says what to provide.
+pub fn click_cues<'a>(
+    block: &'a decoder_core::Block,
+    source: &std::path::Path,
+) -> Result<&'a [bool]> {
+    match &block.click {
+        Some(c) => Ok(c),
+        None => anyhow::bail!(
+            "{}: no click cues; --click needs click.npy in the session directory (one bool a bin, true where the task cued a click), as simulate --click writes",
+            source.display()
+        ),
+    }
+}
 
-/// Cross-validated click scores on the block's valid rows.
+/// Cross-validated click scores of a click decoder with `lags` and
+/// `shrinkage` on `block`'s valid rows, clicks decided by the daemon's
+/// default gate (`[click]` defaults); used by `evaluate --click` and by
+/// `train --click` for the model's fit document.
+pub fn click_scores(
+    block: &decoder_core::Block,
+    source: &std::path::Path,
+    lags: usize,
+    shrinkage: f64,
+    folds: usize,
+) -> Result<decoder_core::fit::click::ClickScores> {
+    use decoder_core::engine::slot_engine::ClickGateSettings;
+    use decoder_core::fit::click::{CATCH_MS, cross_validate_click};
+    let block = block.valid_only();
+    let cued = click_cues(&block, source)?;
+    let gate = ClickGateSettings::default().gate(block.bin_width);
+    cross_validate_click(
+        &block.counts,
+        block.n_channels,
+        cued,
+        lags,
+        shrinkage,
+        folds,
+        &gate,
+        block.bin_width.ms(),
+        CATCH_MS,
+    )
+    .with_context(|| format!("cross-validating clicks on {}", source.display()))
+}
+
+/// `evaluate --click`: the scores of `train --click`'s defaults, printed.
 fn evaluate_click(
     session_path: &std::path::Path,
     folds: usize,
 ) -> Result<decoder_core::fit::click::ClickScores> {
-    use decoder_core::decoders::click::ClickGate;
-    use decoder_core::fit::click::cross_validate_click;
-    let block = Session::at(session_path)?
-        .block_with_kinematics()?
-        .block
-        .valid_only();
-    let Some(cued) = &block.click else {
-        anyhow::bail!(
-            "{}: no click cues; --click needs click.npy in the session directory (one bool a bin), as simulate --click writes",
-            session_path.display()
-        );
-    };
-    let bin_ms = block.bin_width.ms();
-    let gate = ClickGate::new(
-        CLICK_THRESHOLD,
-        CLICK_HOLD_BINS,
-        (CLICK_REFRACTORY_MS / bin_ms).round() as usize,
-    );
-    let s = cross_validate_click(
-        &block.counts,
-        block.n_channels,
-        cued,
-        CLICK_LAGS,
-        CLICK_SHRINKAGE,
-        folds,
-        &gate,
-        bin_ms,
-        CLICK_CATCH_MS,
-    )
-    .with_context(|| format!("cross-validating clicks on {}", session_path.display()))?;
+    use decoder_core::fit::click::{DEFAULT_LAGS, DEFAULT_SHRINKAGE};
+    let block = Session::at(session_path)?.block_with_kinematics()?.block;
+    let s = click_scores(&block, session_path, DEFAULT_LAGS, DEFAULT_SHRINKAGE, folds)?;
     println!(
         "click decoder ({folds} contiguous folds): AUC {:.3}; {} of {} cued attempts caught within {} ms of their end (median latency from the cue {}); {:.2} false clicks a minute",
         s.auc,

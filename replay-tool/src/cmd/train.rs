@@ -4,7 +4,6 @@
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
-use decoder_core::TrainError;
 use decoder_core::decoders::DecoderModel;
 use decoder_core::decoders::click::ClickModel;
 use decoder_core::decoders::point_process::ChannelGlm;
@@ -19,6 +18,7 @@ use decoder_core::session::open::Session;
 use decoder_core::session::train::{
     BlockSource, ChannelFits, FitRecord, Stamp, Trained, train, train_refit,
 };
+use decoder_core::{Block, TrainError};
 
 use crate::output::write_atomic;
 use crate::progress;
@@ -79,11 +79,11 @@ pub struct Args {
     pub click: bool,
     /// With --click: bins of counts the discriminant reads (the current
     /// one and those before it).
-    #[arg(long, requires = "click", default_value_t = 6)]
+    #[arg(long, requires = "click", default_value_t = decoder_core::fit::click::DEFAULT_LAGS)]
     pub click_lags: usize,
     /// With --click: shrinkage of the discriminant's covariance toward its
     /// mean variance, 0 to 1.
-    #[arg(long, requires = "click", default_value_t = 0.05)]
+    #[arg(long, requires = "click", default_value_t = decoder_core::fit::click::DEFAULT_SHRINKAGE)]
     pub click_shrinkage: f64,
 }
 
@@ -322,16 +322,10 @@ fn train_several(
         .with_context(|| format!("training on {}", describe_sessions(sessions)))
 }
 
-/// The click decoder of `source`'s click cues (its valid rows).
-fn fit_click_on(args: &Args, source: &Path) -> Result<ClickModel> {
-    let opened = Session::at(source)?.block_with_kinematics()?;
-    let block = opened.block.valid_only();
-    let Some(click) = &block.click else {
-        bail!(
-            "{}: no click cues; --click needs click.npy in the session directory (one bool a bin, true where the task cued a click), as simulate --click writes",
-            source.display()
-        );
-    };
+/// The click decoder of `block`'s click cues (its valid rows).
+fn fit_click_on(args: &Args, block: &Block, source: &Path) -> Result<ClickModel> {
+    let block = block.valid_only();
+    let click = super::evaluate::click_cues(&block, source)?;
     let model = fit_click(
         &block.counts,
         block.n_channels,
@@ -352,29 +346,16 @@ fn fit_click_on(args: &Args, source: &Path) -> Result<ClickModel> {
     Ok(model)
 }
 
-/// Cross-validated click scores for the model's fit document, with the
-/// settings `evaluate --click` uses.
-fn click_scores_on(args: &Args, source: &Path, folds: usize) -> Result<serde_json::Value> {
-    let block = Session::at(source)?
-        .block_with_kinematics()?
-        .block
-        .valid_only();
-    let cued = block.click.as_ref().expect("checked by the fit");
-    let bin_ms = block.bin_width.ms();
-    let gate =
-        decoder_core::decoders::click::ClickGate::new(0.9, 5, (500.0 / bin_ms).round() as usize);
-    let s = decoder_core::fit::click::cross_validate_click(
-        &block.counts,
-        block.n_channels,
-        cued,
-        args.click_lags,
-        args.click_shrinkage,
-        folds,
-        &gate,
-        bin_ms,
-        300.0,
-    )
-    .with_context(|| format!("cross-validating clicks on {}", source.display()))?;
+/// Cross-validated click scores for the model's fit document, as
+/// `evaluate --click` computes them.
+fn click_scores_on(
+    args: &Args,
+    block: &Block,
+    source: &Path,
+    folds: usize,
+) -> Result<serde_json::Value> {
+    let s =
+        super::evaluate::click_scores(block, source, args.click_lags, args.click_shrinkage, folds)?;
     println!(
         "click decoder cross-validated ({folds} contiguous folds): AUC {:.3}, {} of {} attempts caught, {:.2} false clicks a minute",
         s.auc, s.caught, s.cues, s.false_per_minute
@@ -385,14 +366,16 @@ fn click_scores_on(args: &Args, source: &Path, folds: usize) -> Result<serde_jso
 fn write_model(args: &Args, trained: Trained, source: &str) -> Result<()> {
     let mut model = trained.model;
     if args.click {
-        let click = fit_click_on(args, &args.session[0])?;
+        let source = &args.session[0];
+        let block = Session::at(source)?.block_with_kinematics()?.block;
+        let click = fit_click_on(args, &block, source)?;
         // The click decoder's options, and its cross-validated scores unless
         // --no-cv, in the fit document beside the velocity decoder's.
         let cv = if args.no_cv {
             serde_json::Value::Null
         } else {
             let folds = TrainConfig::read(args.config.as_deref())?.folds;
-            click_scores_on(args, &args.session[0], folds)?
+            click_scores_on(args, &block, source, folds)?
         };
         let mut doc: serde_json::Value =
             serde_json::from_str(&model.provenance.fit_document).unwrap_or_default();

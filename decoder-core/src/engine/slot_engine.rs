@@ -622,15 +622,12 @@ impl SlotEngine {
             // A click only while armed on a bin that came: never while
             // coasting, halted or disarmed.
             self.click_prob = if p.is_finite() { p as f32 } else { 0.0 };
-            let speed = self
-                .supervisor
-                .command()
-                .iter()
-                .map(|v| v * v)
-                .sum::<f64>()
-                .sqrt();
-            let slow = self.settings.click_gate.max_speed <= 0.0
-                || speed <= self.settings.click_gate.max_speed;
+            // The speed is worked out only when the rule is on.
+            let max_speed = self.settings.click_gate.max_speed;
+            let slow = max_speed <= 0.0 || {
+                let sq: f64 = self.supervisor.command().iter().map(|v| v * v).sum();
+                sq <= max_speed * max_speed
+            };
             let allowed = !missing && !fault && slow && supervised.state == SupervisorState::Armed;
             if self.click_gate.step(p, allowed) {
                 flags |= FLAG_CLICK;

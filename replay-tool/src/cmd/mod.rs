@@ -5,6 +5,7 @@
 //! binary to launch.
 
 pub mod bench;
+pub mod click;
 pub mod closed_loop;
 pub mod demo;
 pub mod evaluate;

@@ -325,7 +325,7 @@ fn train_several(
 /// The click decoder of `block`'s click cues (its valid rows).
 fn fit_click_on(args: &Args, block: &Block, source: &Path) -> Result<ClickModel> {
     let block = block.valid_only();
-    let click = super::evaluate::click_cues(&block, source)?;
+    let click = super::click::click_cues(&block, source)?;
     let model = fit_click(
         &block.counts,
         block.n_channels,
@@ -355,7 +355,7 @@ fn click_scores_on(
     folds: usize,
 ) -> Result<serde_json::Value> {
     let s =
-        super::evaluate::click_scores(block, source, args.click_lags, args.click_shrinkage, folds)?;
+        super::click::click_scores(block, source, args.click_lags, args.click_shrinkage, folds)?;
     println!(
         "click decoder cross-validated ({folds} contiguous folds): AUC {:.3}, {} of {} attempts caught, {:.2} false clicks a minute",
         s.auc, s.caught, s.cues, s.false_per_minute

@@ -16,6 +16,13 @@
 //! `(count − offset) / scale` is folded into the gain rows at load time, so a
 //! bin costs one u16 → f64 conversion per channel and d dot products. Every
 //! buffer is allocated in [`KalmanFilter::new`]; a step allocates nothing.
+//!
+//! Leaving channels out (drift handling, a dead or noisy channel) is exact
+//! in this form: the filter without rows R of H and rows and columns R of
+//! Q has the gain `G' = G − G_R (Λ_RR)⁻¹ Λ_R·` with Λ = Q⁻¹ (for a
+//! diagonal Q, G with columns R zeroed) and `S' = G' H`. Only Λ's rows R
+//! are needed, solved from the Cholesky factor of Q kept at load, so a
+//! change costs O(r·N² + r³ + d²·N) once, not per bin.
 
 use nalgebra::DMatrix;
 
@@ -24,10 +31,18 @@ use crate::linalg::{self, Mat};
 
 /// HᵀQ⁻¹ (d × N, for normalised counts) and S = HᵀQ⁻¹H (d × d).
 pub fn information_terms(model: &KalmanModel) -> Result<(Mat, Mat), KalmanError> {
+    information_terms_with_factor(model).map(|(g, s, _)| (g, s))
+}
+
+/// [`information_terms`] and, for a full Q, its Cholesky factor.
+fn information_terms_with_factor(
+    model: &KalmanModel,
+) -> Result<(Mat, Mat, Option<nalgebra::Cholesky<f64, nalgebra::Dyn>>), KalmanError> {
     let d = model.state_dim();
     let n = model.n_channels();
     let h = model.h.to_dmatrix();
     // q_inv_h = Q⁻¹ H, N × d.
+    let mut factor = None;
     let q_inv_h: DMatrix<f64> = match &model.q {
         ObservationNoise::Full(q) => {
             let chol = nalgebra::Cholesky::new(q.to_dmatrix()).ok_or_else(|| {
@@ -37,7 +52,9 @@ pub fn information_terms(model: &KalmanModel) -> Result<(Mat, Mat), KalmanError>
                     .unwrap_or(0);
                 KalmanError::QNotPositiveDefinite { channel }
             })?;
-            chol.solve(&h)
+            let solved = chol.solve(&h);
+            factor = Some(chol);
+            solved
         }
         ObservationNoise::Diagonal(diag) => {
             let mut m = h.clone();
@@ -53,7 +70,7 @@ pub fn information_terms(model: &KalmanModel) -> Result<(Mat, Mat), KalmanError>
     let s = &ht_q_inv * &h;
     let mut s = Mat::from_dmatrix(&s);
     linalg::symmetrize(&mut s.data, d);
-    Ok((Mat::from_dmatrix(&ht_q_inv), s))
+    Ok((Mat::from_dmatrix(&ht_q_inv), s, factor))
 }
 
 fn leading_minor(m: &Mat, k: usize) -> Vec<f64> {
@@ -62,6 +79,27 @@ fn leading_minor(m: &Mat, k: usize) -> Vec<f64> {
         out.extend_from_slice(&m.row(r)[..k]);
     }
     out
+}
+
+/// The model's terms as loaded, from which a reduced filter is built.
+#[derive(Clone, Debug)]
+struct Reducer {
+    /// HᵀQ⁻¹ in normalised units, d × N.
+    g_norm: Mat,
+    /// H, N × d.
+    h: Mat,
+    offset: Vec<f64>,
+    scale: Vec<f64>,
+    /// The Cholesky factor of a full Q; `None` for a diagonal Q.
+    q_factor: Option<nalgebra::Cholesky<f64, nalgebra::Dyn>>,
+    /// The full-model terms, restored when every channel is back.
+    g: Vec<f64>,
+    g0: Vec<f64>,
+    s: Vec<f64>,
+    steady: Option<SteadyRuntime>,
+    /// The steady-state posterior covariance: where the full recursion
+    /// starts when channels leave a steady-state filter.
+    steady_p: Option<Vec<f64>>,
 }
 
 /// Steady-state runtime: x ← F x + K′ c − k₀ with F = (I − K H) A.
@@ -90,6 +128,10 @@ pub struct KalmanFilter {
     steady: Option<SteadyRuntime>,
     x: Vec<f64>,
     p: Vec<f64>,
+    /// What leaving channels out needs, kept from load.
+    reducer: Reducer,
+    /// Channels left out of the update (none unless drift handling says).
+    left_out: Vec<bool>,
     // Scratch, sized once.
     counts_f64: Vec<f64>,
     x_prior: Vec<f64>,
@@ -109,7 +151,7 @@ impl KalmanFilter {
         );
         let d = model.state_dim();
         let n = model.n_channels();
-        let (ht_q_inv, s) = information_terms(model)?;
+        let (ht_q_inv, s, q_factor) = information_terms_with_factor(model)?;
         let (g, g0) = fold_normalisation(&ht_q_inv, &model.count_offset, &model.count_scale);
         let steady = match (&model.steady, use_steady) {
             (Some(st), true) => {
@@ -131,6 +173,21 @@ impl KalmanFilter {
             }
             _ => None,
         };
+        let reducer = Reducer {
+            g_norm: ht_q_inv,
+            h: model.h.clone(),
+            offset: model.count_offset.clone(),
+            scale: model.count_scale.clone(),
+            q_factor,
+            g: g.clone(),
+            g0: g0.clone(),
+            s: s.data.clone(),
+            steady: steady.clone(),
+            steady_p: steady
+                .as_ref()
+                .and(model.steady.as_ref())
+                .map(|st| st.posterior_cov.data.clone()),
+        };
         Ok(KalmanFilter {
             d,
             n,
@@ -139,6 +196,8 @@ impl KalmanFilter {
             g,
             g0,
             s: s.data,
+            reducer,
+            left_out: vec![false; n],
             x0: model.x0.clone(),
             p0: model.p0.data.clone(),
             steady,
@@ -175,6 +234,13 @@ impl KalmanFilter {
         &self.x
     }
 
+    /// Continues from the given state and covariance (d and d × d values),
+    /// as another filter left them.
+    pub fn restore(&mut self, state: &[f64], covariance: &[f64]) {
+        self.x.copy_from_slice(state);
+        self.p.copy_from_slice(covariance);
+    }
+
     /// The a-posteriori covariance, d × d row-major (P0 until the first step;
     /// fixed at its prior value in steady-state mode).
     pub fn covariance(&self) -> &[f64] {
@@ -189,6 +255,18 @@ impl KalmanFilter {
         for (dst, &c) in self.counts_f64.iter_mut().zip(counts) {
             *dst = f64::from(c);
         }
+        self.update()
+    }
+
+    /// [`KalmanFilter::step`] with the bin's values already as f64 (counts
+    /// corrected for drift), in the same units as counts.
+    pub fn step_values(&mut self, values: &[f64]) -> bool {
+        debug_assert_eq!(values.len(), self.n);
+        self.counts_f64.copy_from_slice(values);
+        self.update()
+    }
+
+    fn update(&mut self) -> bool {
         let d = self.d;
         if let Some(st) = &self.steady {
             linalg::mat_vec(&st.f, d, d, &self.x, &mut self.x_prior);
@@ -234,6 +312,96 @@ impl KalmanFilter {
         self.predict_into_prior();
         self.x.copy_from_slice(&self.x_prior);
         self.p.copy_from_slice(&self.p_prior);
+    }
+
+    /// Channels left out of the update, as last set.
+    pub fn left_out(&self) -> &[bool] {
+        &self.left_out
+    }
+
+    /// Leaves the channels marked in `left_out` out of every following
+    /// update: the exact filter of the model without those rows of H and
+    /// rows and columns of Q. The state and covariance carry over. A
+    /// steady-state filter runs the full recursion from its converged
+    /// covariance while any channel is out, and its fixed gain again once
+    /// every channel is back. Allocates; call it at a change, not per bin.
+    pub fn set_left_out(&mut self, left_out: &[bool]) {
+        assert_eq!(left_out.len(), self.n, "one flag per channel");
+        if left_out == self.left_out.as_slice() {
+            return;
+        }
+        self.left_out.copy_from_slice(left_out);
+        let r = &self.reducer;
+        let out: Vec<usize> = (0..self.n).filter(|&c| left_out[c]).collect();
+        if out.is_empty() {
+            self.g.copy_from_slice(&r.g);
+            self.g0.copy_from_slice(&r.g0);
+            self.s.copy_from_slice(&r.s);
+            self.steady = r.steady.clone();
+            if self.steady.is_some() {
+                self.p.copy_from_slice(&self.p0);
+            }
+            return;
+        }
+        let (d, n) = (self.d, self.n);
+        // G' in normalised units.
+        let mut g_red = r.g_norm.clone();
+        match &r.q_factor {
+            None => {
+                for row in 0..d {
+                    for &c in &out {
+                        g_red.data[row * n + c] = 0.0;
+                    }
+                }
+            }
+            Some(chol) => {
+                // Λ's rows R: Q z = e_c for each left-out channel.
+                let mut e = DMatrix::<f64>::zeros(n, out.len());
+                for (j, &c) in out.iter().enumerate() {
+                    e[(c, j)] = 1.0;
+                }
+                let lam_cols = chol.solve(&e); // N × r, Λ's columns R (Λ symmetric)
+                let lam_rr = DMatrix::from_fn(out.len(), out.len(), |i, j| lam_cols[(out[i], j)]);
+                let lam_r = lam_cols.transpose(); // r × N
+                let m = match lam_rr.clone().cholesky() {
+                    Some(c) => c.solve(&lam_r),
+                    None => lam_rr
+                        .lu()
+                        .solve(&lam_r)
+                        .unwrap_or_else(|| DMatrix::zeros(out.len(), n)),
+                };
+                let g_r = DMatrix::from_fn(d, out.len(), |row, j| r.g_norm.get(row, out[j]));
+                let corr = g_r * m; // d × N
+                for row in 0..d {
+                    for c in 0..n {
+                        g_red.data[row * n + c] -= corr[(row, c)];
+                    }
+                    for &c in &out {
+                        g_red.data[row * n + c] = 0.0;
+                    }
+                }
+            }
+        }
+        let (g, g0) = fold_normalisation(&g_red, &r.offset, &r.scale);
+        let mut s = vec![0.0; d * d];
+        for row in 0..d {
+            for col in 0..d {
+                let mut acc = 0.0;
+                for c in 0..n {
+                    acc += g_red.data[row * n + c] * r.h.get(c, col);
+                }
+                s[row * d + col] = acc;
+            }
+        }
+        linalg::symmetrize(&mut s, d);
+        self.g = g;
+        self.g0 = g0;
+        self.s = s;
+        if self.steady.take().is_some()
+            && let Some(p) = &r.steady_p
+        {
+            self.p.copy_from_slice(p);
+        }
     }
 
     fn predict_into_prior(&mut self) {

@@ -34,10 +34,13 @@ pub fn information_terms(model: &KalmanModel) -> Result<(Mat, Mat), KalmanError>
     information_terms_with_factor(model).map(|(g, s, _)| (g, s))
 }
 
+/// The Cholesky factor of a full Q.
+type QFactor = nalgebra::Cholesky<f64, nalgebra::Dyn>;
+
 /// [`information_terms`] and, for a full Q, its Cholesky factor.
 fn information_terms_with_factor(
     model: &KalmanModel,
-) -> Result<(Mat, Mat, Option<nalgebra::Cholesky<f64, nalgebra::Dyn>>), KalmanError> {
+) -> Result<(Mat, Mat, Option<QFactor>), KalmanError> {
     let d = model.state_dim();
     let n = model.n_channels();
     let h = model.h.to_dmatrix();
@@ -91,7 +94,7 @@ struct Reducer {
     offset: Vec<f64>,
     scale: Vec<f64>,
     /// The Cholesky factor of a full Q; `None` for a diagonal Q.
-    q_factor: Option<nalgebra::Cholesky<f64, nalgebra::Dyn>>,
+    q_factor: Option<QFactor>,
     /// The full-model terms, restored when every channel is back.
     g: Vec<f64>,
     g0: Vec<f64>,

@@ -22,7 +22,6 @@ impl Lcg {
 }
 
 const N: usize = 9;
-const D: usize = 3;
 
 fn model(diagonal: bool, steady: bool) -> KalmanModel {
     let mut r = Lcg(7);

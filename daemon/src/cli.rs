@@ -126,6 +126,13 @@ pub enum CtlAction {
         #[arg(value_enum)]
         switch: Switch,
     },
+    /// Turn drift handling on or off (config section `[drift]`): follow
+    /// each channel's baseline, leave dead and noisy channels out, and
+    /// subtract the velocity bias.
+    Drift {
+        #[arg(value_enum)]
+        switch: Switch,
+    },
 }
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
@@ -208,6 +215,9 @@ pub fn ctl(args: &CtlArgs) -> Result<bool> {
         CtlAction::Disarm => Request::Disarm,
         CtlAction::Halt => Request::Halt,
         CtlAction::Adapt { switch } => Request::Adapt {
+            on: *switch == Switch::On,
+        },
+        CtlAction::Drift { switch } => Request::Drift {
             on: *switch == Switch::On,
         },
         CtlAction::Load { model } => Request::Load {

@@ -75,6 +75,9 @@ pub struct RawConfig {
     pub adaptation: RawAdaptation,
     #[serde(default)]
     pub click: RawClick,
+    /// `[drift]`: its keys and defaults are the engine's own.
+    #[serde(default)]
+    pub drift: decoder_core::engine::drift::DriftSettings,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -234,6 +237,8 @@ pub struct Config {
     pub adaptation: AdaptConfig,
     /// When the model's click probability makes a click.
     pub click: ClickGateSettings,
+    /// Drift handling (`[drift]`).
+    pub drift: decoder_core::engine::drift::DriftSettings,
     /// Where each path came from, for errors: the flag (`--model`) or the
     /// key (`model.path`).
     pub sources: Sources,
@@ -674,12 +679,19 @@ impl Config {
         let realtime = c.realtime(&raw.realtime)?;
         let (log_format, log_level) = c.log(&raw.log)?;
         let click = c.click(&raw.click)?;
+        raw.drift.validate().map_err(|e| {
+            c.err(
+                e.key,
+                format!("{}; it must be {}", e.value, e.want),
+            )
+        })?;
         if overrides.arm && !actuator.ip().is_loopback() {
             return Err(ConfigError::ArmNotLoopback { actuator });
         }
         Ok(Config {
             adaptation,
             click,
+            drift: raw.drift,
             listen,
             task_listen,
             actuator,
@@ -724,6 +736,7 @@ impl Config {
             saturation_count: ((self.saturation_rate_hz * bin_s).floor() as u64 + 1).min(65535)
                 as u16,
             click_gate: self.click,
+            drift: self.drift,
         }
     }
 }

@@ -30,6 +30,7 @@ pub enum Request {
     Halt,
     Load { path: PathBuf },
     Adapt { on: bool },
+    Drift { on: bool },
 }
 
 #[derive(Debug, Serialize, Deserialize)]
@@ -229,6 +230,19 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
                 _ => OperatorCommand::Halt,
             };
             let what = format!("operator {command:?}");
+            operator_reply(to_rt, &what, |reply| ControlRequest::Operator {
+                command,
+                reply,
+            })
+            .await
+        }
+        Request::Drift { on } => {
+            let command = if on {
+                OperatorCommand::DriftOn
+            } else {
+                OperatorCommand::DriftOff
+            };
+            let what = format!("operator drift {}", if on { "on" } else { "off" });
             operator_reply(to_rt, &what, |reply| ControlRequest::Operator {
                 command,
                 reply,

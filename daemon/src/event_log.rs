@@ -86,6 +86,26 @@ pub(crate) fn log_events(events: Receiver<TimedEvent>) {
             EngineEvent::ModelChanged { seq } => {
                 tracing::info!(seq, "model swapped in at this bin")
             }
+            EngineEvent::ChannelLeftOut {
+                seq,
+                channel,
+                reason,
+            } => tracing::warn!(
+                seq,
+                channel,
+                "channel {channel} left out of the decode: {}",
+                reason.name()
+            ),
+            EngineEvent::ChannelRestored { seq, channel } => tracing::info!(
+                seq,
+                channel,
+                "channel {channel} behaves again: back in the decode"
+            ),
+            EngineEvent::DriftHandling { seq, enabled } => tracing::info!(
+                seq,
+                "drift handling {}",
+                if enabled { "on" } else { "off" }
+            ),
         }
     }
 }

@@ -376,6 +376,7 @@ mod tests {
             dead_channel_bins: 100,
             saturation_count: 2,
             click_gate: Default::default(),
+            drift: Default::default(),
         };
         encode_header(&LogHeader {
             daemon_version: "test".into(),

@@ -35,6 +35,8 @@ pub enum OperatorOutcome {
     Changed(Transition),
     /// It was already in the state asked for.
     Unchanged { state: &'static str },
+    /// Drift handling is now on (true) or off.
+    Drift(bool),
 }
 
 impl std::fmt::Display for OperatorOutcome {
@@ -44,6 +46,9 @@ impl std::fmt::Display for OperatorOutcome {
                 write!(f, "{} -> {} at seq {}", t.from.name(), t.to.name(), t.seq)
             }
             OperatorOutcome::Unchanged { state } => write!(f, "already {state}"),
+            OperatorOutcome::Drift(on) => {
+                write!(f, "drift handling {}", if *on { "on" } else { "off" })
+            }
         }
     }
 }

@@ -27,7 +27,9 @@ use crate::recorder::{RecordBatcher, RecorderStats};
 use crate::requests::{
     AdaptOutcome, ControlRequest, LoadRequest, OperatorOutcome, Refused, Swapped,
 };
-use crate::status::{ClickStatus, Monitor, Status, TaskMonitor, rejected_by_name};
+use crate::status::{
+    ClickStatus, DriftStatus, LeftOutChannel, Monitor, Status, TaskMonitor, rejected_by_name,
+};
 use crate::{alloc_count, sys};
 
 /// The longest the loop sleeps without looking at control requests and
@@ -380,7 +382,11 @@ impl RtLoop {
             );
         }
         let state = self.engine.state().name();
+        use decoder_core::engine::slot_engine::OperatorCommand as Op;
         match result {
+            Ok(_) if matches!(command, Op::DriftOn | Op::DriftOff) => {
+                Ok(OperatorOutcome::Drift(command == Op::DriftOn))
+            }
             Ok(Some(t)) => Ok(OperatorOutcome::Changed(t)),
             Ok(None) => Ok(OperatorOutcome::Unchanged { state }),
             Err(e) => Err(Refused::Operator(e)),
@@ -536,6 +542,28 @@ impl RtLoop {
                         0.0
                     },
                     last_click_seq,
+                }
+            },
+            drift: {
+                let counters = self.engine.counters();
+                let tracker = self.engine.pipeline().drift();
+                DriftStatus {
+                    enabled: tracker.is_some(),
+                    left_out: tracker.map_or_else(Vec::new, |t| {
+                        t.left_out_channels()
+                            .map(|(channel, r)| LeftOutChannel {
+                                channel,
+                                reason: r.name().to_string(),
+                            })
+                            .collect()
+                    }),
+                    left_out_total: counters.channels_left_out,
+                    restored_total: counters.channels_restored,
+                    bias: tracker.map_or_else(Vec::new, |t| t.bias().to_vec()),
+                    baseline_ratio: tracker.map_or([1.0; 3], |t| {
+                        let b = t.baseline_spread();
+                        [b.min_ratio, b.median_ratio, b.max_ratio]
+                    }),
                 }
             },
         }

@@ -325,6 +325,66 @@ pub struct Status {
     /// The click decoder: its last probability and the clicks made.
     #[serde(default)]
     pub click: ClickStatus,
+    /// Drift handling: on or off, the channels left out and why, the
+    /// velocity bias, how far the baselines have moved.
+    #[serde(default)]
+    pub drift: DriftStatus,
+}
+
+/// The drift part of status.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct DriftStatus {
+    pub enabled: bool,
+    /// Channels left out now, with the reason (`dead`, `noisy`,
+    /// `saturated`).
+    pub left_out: Vec<LeftOutChannel>,
+    /// Left out and restored since start.
+    pub left_out_total: u64,
+    pub restored_total: u64,
+    /// The velocity bias being subtracted, one value per output.
+    pub bias: Vec<f64>,
+    /// Tracked baseline over training baseline across the channels in the
+    /// decode: lowest, median, highest.
+    pub baseline_ratio: [f64; 3],
+}
+
+impl DriftStatus {
+    /// One line for `ctl status`.
+    pub fn line(&self) -> String {
+        if !self.enabled {
+            return format!(
+                "off ({} channels left out and {} restored while it was on)",
+                self.left_out_total, self.restored_total
+            );
+        }
+        let out = if self.left_out.is_empty() {
+            "no channel left out".to_string()
+        } else {
+            format!(
+                "left out: {}",
+                self.left_out
+                    .iter()
+                    .map(|c| format!("{} ({})", c.channel, c.reason))
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            )
+        };
+        let bias: Vec<String> = self.bias.iter().map(|b| format!("{b:+.2}")).collect();
+        format!(
+            "on; {out}; baselines ×{:.2} median (×{:.2}..×{:.2}); velocity bias [{}]",
+            self.baseline_ratio[1],
+            self.baseline_ratio[0],
+            self.baseline_ratio[2],
+            bias.join(", ")
+        )
+    }
+}
+
+/// One channel left out, and why.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct LeftOutChannel {
+    pub channel: usize,
+    pub reason: String,
 }
 
 /// The click part of status.
@@ -468,6 +528,7 @@ impl Status {
             "dropped bins       {} late, {} duplicate, {} stray, {} flushed; {} new streams",
             c.bins_late, c.bins_duplicate, c.bins_stray, c.bins_flushed, c.new_streams
         );
+        let _ = writeln!(s, "drift handling     {}", self.drift.line());
         let rejects: Vec<String> = self
             .rejected
             .iter()

@@ -146,6 +146,29 @@ pub fn render(now: &Snapshot, before: Option<&Snapshot>, note: &str) -> String {
                 .map_or(String::new(), |q| format!(", last at seq {q}"))
         );
     }
+    if s.drift.enabled {
+        let d = &s.drift;
+        let out = if d.left_out.is_empty() {
+            "none".to_string()
+        } else {
+            d.left_out
+                .iter()
+                .map(|c| format!("{} {}", c.channel, c.reason))
+                .collect::<Vec<_>>()
+                .join(", ")
+        };
+        let _ = writeln!(
+            f,
+            "drift      baselines ×{:.2} (×{:.2}..×{:.2})   bias {}   left out: {}",
+            d.baseline_ratio[1],
+            d.baseline_ratio[0],
+            d.baseline_ratio[2],
+            vector(&d.bias, &s.model.outputs),
+            out
+        );
+    } else {
+        let _ = writeln!(f, "drift      handling off");
+    }
     if s.stream_started {
         let _ = writeln!(
             f,

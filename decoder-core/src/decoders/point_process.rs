@@ -275,6 +275,8 @@ pub struct PointProcessFilter {
     last_counts: Vec<f64>,
     clamps: u64,
     fault: bool,
+    /// Active-channel indices left out of the update (drift handling).
+    left_out: Vec<usize>,
 }
 
 impl PointProcessFilter {
@@ -365,6 +367,7 @@ impl PointProcessFilter {
             last_counts: vec![0.0; n],
             clamps: 0,
             fault: false,
+            left_out: Vec::new(),
         };
         f.reset();
         Ok(f)
@@ -545,6 +548,11 @@ impl PointProcessFilter {
         self.clamps += clamped;
         // Pass 2: λ = exp(η) over all channels at once.
         exp_in_place(&mut self.eta);
+        for &i in &self.left_out {
+            // A channel left out adds no score and no information.
+            self.eta[i] = 0.0;
+            self.observed[i] = 0.0;
+        }
         // Pass 3: score Σ β (n − λ) and information Σ λ β βᵀ, one column
         // pair at a time.
         for r in 0..d {
@@ -559,6 +567,19 @@ impl PointProcessFilter {
                 }
             }
         }
+    }
+
+    /// Leaves the channels marked in `left_out` (one flag per channel) out
+    /// of every following update: their terms drop from the score and the
+    /// information. Allocates; call it at a change, not per bin.
+    pub fn set_left_out(&mut self, left_out: &[bool]) {
+        self.left_out = self
+            .active
+            .iter()
+            .enumerate()
+            .filter(|&(_, &c)| left_out[c])
+            .map(|(i, _)| i)
+            .collect();
     }
 
     /// A bin that never came: predict only; its counts enter the history

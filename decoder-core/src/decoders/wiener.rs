@@ -127,6 +127,14 @@ impl WienerFilter {
         self.recompute();
     }
 
+    /// [`WienerFilter::step`] with the bin's values already as f64 (counts
+    /// corrected for drift).
+    pub fn step_values(&mut self, values: &[f64]) {
+        self.newest = (self.newest + 1) % self.taps;
+        self.history[self.newest * self.n..(self.newest + 1) * self.n].copy_from_slice(values);
+        self.recompute();
+    }
+
     /// A missing bin enters as the training mean (no information).
     pub fn predict_only(&mut self) {
         self.newest = (self.newest + 1) % self.taps;

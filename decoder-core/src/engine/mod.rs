@@ -8,6 +8,7 @@
 //! code that runs next to a participant depends only on the decoders, the
 //! packet and log formats and the linear algebra. `.ci/run` checks this.
 
+pub mod drift;
 pub mod pipeline;
 pub mod session_replay;
 pub mod slot_engine;

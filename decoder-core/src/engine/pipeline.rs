@@ -13,6 +13,7 @@ use crate::decoders::click::ClickFilter;
 use crate::decoders::kalman::{KalmanError, KalmanFilter};
 use crate::decoders::point_process::{PointProcessError, PointProcessFilter};
 use crate::decoders::wiener::WienerFilter;
+use crate::engine::drift::{DriftSettings, DriftTracker};
 
 // One value per loaded model, never per bin: boxing would buy nothing.
 #[allow(clippy::large_enum_variant)]
@@ -62,6 +63,15 @@ pub struct DecodePipeline {
     last_seq: Option<u64>,
     /// The model's click decoder, run on the same bins.
     click: Option<ClickFilter>,
+    /// Drift handling ([`crate::engine::drift`]), once configured.
+    drift: Option<DriftTracker>,
+    /// The model's training mean count per bin (and variance, for a
+    /// decoder that normalises counts): where drift tracking starts.
+    reference: (Vec<f64>, Option<Vec<f64>>),
+    /// Whether baselines and bias follow (the decoder is armed).
+    tracking: bool,
+    /// The last bin's flags: (predicted only, numerical fault).
+    last_flags: (bool, bool),
 }
 
 /// Why a checked model still cannot be run: the Kalman filter's noise
@@ -84,19 +94,25 @@ impl DecodePipeline {
         bin_width: BinWidth,
         use_steady_state: bool,
     ) -> Result<DecodePipeline, PipelineError> {
-        let (engine, d) = match decoder {
+        let (engine, d, reference) = match decoder {
             DecoderModel::Kalman(k) => {
                 let filter = KalmanFilter::new(k, use_steady_state)?;
                 let outputs = k.output_indices()?;
                 let d = outputs.len();
-                (Engine::Kalman { filter, outputs }, d)
+                (Engine::Kalman { filter, outputs }, d, kalman_reference(k))
             }
-            DecoderModel::Wiener(w) => (Engine::Wiener(WienerFilter::new(w)), w.outputs.len()),
+            DecoderModel::Wiener(w) => (
+                Engine::Wiener(WienerFilter::new(w)),
+                w.outputs.len(),
+                (w.mean_counts.clone(), None),
+            ),
             DecoderModel::PointProcess(m) => {
                 let filter = PointProcessFilter::new(m)?;
                 let outputs = m.output_indices()?;
                 let d = outputs.len();
-                (Engine::PointProcess { filter, outputs }, d)
+                let mut rates = vec![0.0; m.n_channels()];
+                filter.expected_counts(&m.x0, &mut rates);
+                (Engine::PointProcess { filter, outputs }, d, (rates, None))
             }
         };
         let mut p = DecodePipeline {
@@ -106,9 +122,54 @@ impl DecodePipeline {
             estimate: vec![0.0; d],
             last_seq: None,
             click: None,
+            drift: None,
+            reference,
+            tracking: true,
+            last_flags: (false, false),
         };
         p.reset();
         Ok(p)
+    }
+
+    /// Sets up drift handling with `settings` (on when `settings.enabled`),
+    /// `saturation_count` marking a saturated channel; from the training
+    /// statistics, every channel in. Allocates: call it when a pipeline is
+    /// built or handling is switched, not per bin.
+    pub fn configure_drift(&mut self, settings: DriftSettings, saturation_count: u16) {
+        self.drift = settings.enabled.then(|| {
+            DriftTracker::new(
+                settings,
+                self.bin_width,
+                saturation_count,
+                self.reference.0.clone(),
+                self.reference.1.clone(),
+                self.estimate.len(),
+            )
+        });
+        self.apply_left_out();
+    }
+
+    /// The drift tracker, when drift handling is on.
+    pub fn drift(&self) -> Option<&DriftTracker> {
+        self.drift.as_ref()
+    }
+
+    /// Whether baselines and bias follow the bins (while armed).
+    pub fn set_tracking(&mut self, tracking: bool) {
+        self.tracking = tracking;
+    }
+
+    /// Hands the tracker's left-out channels to the filter.
+    fn apply_left_out(&mut self) {
+        let n = self.n_channels;
+        let none = vec![false; n];
+        let flags = self.drift.as_ref().map_or(&none[..], |t| t.left_out());
+        match &mut self.engine {
+            Engine::Kalman { filter, .. } => filter.set_left_out(flags),
+            // The tracker hands it the training mean of a channel left out.
+            Engine::Wiener(_) => {}
+            Engine::PointProcess { filter, .. } => filter.set_left_out(flags),
+        }
     }
 
     /// Whether the model runs a click decoder.
@@ -170,13 +231,30 @@ impl DecodePipeline {
             self.n_channels,
             "bin has the wrong channel count"
         );
-        let updated = match &mut self.engine {
-            Engine::Kalman { filter, .. } => filter.step(counts),
-            Engine::Wiener(w) => {
-                w.step(counts);
-                true
+        let updated = if let Some(t) = self.drift.as_mut() {
+            if t.observe(counts, self.tracking) {
+                self.apply_left_out();
             }
-            Engine::PointProcess { filter, .. } => filter.step(counts),
+            let values = self.drift.as_ref().expect("drift on").values();
+            match &mut self.engine {
+                Engine::Kalman { filter, .. } => filter.step_values(values),
+                Engine::Wiener(w) => {
+                    w.step_values(values);
+                    true
+                }
+                // A point-process filter reads counts; the channels left
+                // out are dropped inside it.
+                Engine::PointProcess { filter, .. } => filter.step(counts),
+            }
+        } else {
+            match &mut self.engine {
+                Engine::Kalman { filter, .. } => filter.step(counts),
+                Engine::Wiener(w) => {
+                    w.step(counts);
+                    true
+                }
+                Engine::PointProcess { filter, .. } => filter.step(counts),
+            }
         };
         if let Some(c) = self.click.as_mut() {
             c.step(counts);
@@ -197,16 +275,31 @@ impl DecodePipeline {
         self.finish(seq, true, false)
     }
 
-    fn finish(&mut self, seq: u64, predicted_only: bool, fault: bool) -> BinEstimate<'_> {
-        self.last_seq = Some(seq);
-        let finite = self.copy_estimate();
+    /// The outcome of the last bin fed in, again (as `step` or
+    /// `predict_only` returned it).
+    pub fn last_estimate(&self) -> BinEstimate<'_> {
+        let (predicted_only, numerical_fault) = self.last_flags;
         BinEstimate {
-            seq,
+            seq: self.last_seq.unwrap_or(0),
             estimate: &self.estimate,
             predicted_only,
-            numerical_fault: fault || !finite,
+            numerical_fault,
             click_prob: self.click.as_ref().map(ClickFilter::probability),
         }
+    }
+
+    fn finish(&mut self, seq: u64, predicted_only: bool, fault: bool) -> BinEstimate<'_> {
+        self.last_seq = Some(seq);
+        let mut finite = self.copy_estimate();
+        if finite && let Some(t) = self.drift.as_mut() {
+            t.correct_velocity(&mut self.estimate, self.tracking && !predicted_only);
+            finite = self.estimate.iter().all(|v| v.is_finite());
+            if !finite {
+                self.estimate.fill(0.0);
+            }
+        }
+        self.last_flags = (predicted_only, fault || !finite);
+        self.last_estimate()
     }
 
     /// Copies the engine's outputs into `estimate`; false if any is not
@@ -234,4 +327,23 @@ impl DecodePipeline {
         }
         finite
     }
+}
+
+/// A Kalman model's training mean count per bin per channel — `offset +
+/// scale·(H x0)`, x0 being the training mean state — and, when it
+/// normalises counts (a scale other than 1), the training variance scale².
+fn kalman_reference(k: &crate::decoders::kalman::KalmanModel) -> (Vec<f64>, Option<Vec<f64>>) {
+    let d = k.state_dim();
+    let mean = (0..k.n_channels())
+        .map(|c| {
+            let hx: f64 = (0..d).map(|j| k.h.get(c, j) * k.x0[j]).sum();
+            k.count_offset[c] + k.count_scale[c] * hx
+        })
+        .collect();
+    let var = k
+        .count_scale
+        .iter()
+        .any(|&s| s != 1.0)
+        .then(|| k.count_scale.iter().map(|s| s * s).collect());
+    (mean, var)
 }

@@ -34,6 +34,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::bin_width::BinWidth;
 use crate::decoders::click::ClickGate;
+use crate::engine::drift::{DriftSettings, LeftOutReason};
 use crate::engine::pipeline::DecodePipeline;
 use crate::engine::supervisor::{
     ArmRefused, SafetyLimits, Supervisor, SupervisorState, Transition, TransitionReason,
@@ -68,6 +69,10 @@ pub struct EngineSettings {
     /// clicks existed read as the defaults).
     #[serde(default)]
     pub click_gate: ClickGateSettings,
+    /// Drift handling (`[drift]`); the operator's `drift on|off` changes
+    /// `enabled` while running (logs written before it read as off).
+    #[serde(default)]
+    pub drift: DriftSettings,
 }
 
 /// The click gate's settings: a click when the probability stays at or
@@ -149,6 +154,22 @@ pub enum EngineEvent {
     ModelChanged {
         seq: u64,
     },
+    /// Drift handling left a channel out of the decode.
+    ChannelLeftOut {
+        seq: u64,
+        channel: u32,
+        reason: LeftOutReason,
+    },
+    /// A channel left out behaves again and is back in the decode.
+    ChannelRestored {
+        seq: u64,
+        channel: u32,
+    },
+    /// The operator turned drift handling on or off.
+    DriftHandling {
+        seq: u64,
+        enabled: bool,
+    },
 }
 
 fn reject_as_text<S: serde::Serializer>(r: &RejectReason, s: S) -> Result<S::Ok, S::Error> {
@@ -192,6 +213,11 @@ pub struct EngineCounters {
     pub numerical_faults: u64,
     pub model_changes: u64,
     pub transitions: u64,
+    /// Channels drift handling left out, and restored, since start.
+    #[serde(default)]
+    pub channels_left_out: u64,
+    #[serde(default)]
+    pub channels_restored: u64,
 }
 
 /// An operator's request, as the control socket delivers it.
@@ -201,6 +227,10 @@ pub enum OperatorCommand {
     Arm,
     Disarm,
     Halt,
+    /// Drift handling on (`ctl drift on`).
+    DriftOn,
+    /// Drift handling off (`ctl drift off`).
+    DriftOff,
 }
 
 /// Why a model could not be swapped in.
@@ -286,6 +316,8 @@ pub struct SlotEngine {
 
 impl SlotEngine {
     pub fn new(settings: EngineSettings, pipeline: DecodePipeline) -> SlotEngine {
+        let mut pipeline = pipeline;
+        pipeline.configure_drift(settings.drift, settings.saturation_count);
         let n = pipeline.n_channels();
         let d = pipeline.n_outputs();
         let w = settings.reorder_window.max(1) as usize;
@@ -599,7 +631,17 @@ impl SlotEngine {
                     }
                 }
                 self.counters.bins_decoded += 1;
-                let e = self.pipeline.step(seq, counts);
+                self.pipeline
+                    .set_tracking(self.supervisor.state() == SupervisorState::Armed);
+                self.pipeline.step(seq, counts);
+                Self::drift_changes(
+                    &self.pipeline,
+                    &mut self.supervisor,
+                    &mut self.counters,
+                    seq,
+                    sink,
+                );
+                let e = self.pipeline.last_estimate();
                 sink.decoded(seq, counts, e.estimate);
                 e
             }
@@ -692,7 +734,65 @@ impl SlotEngine {
         Some(next)
     }
 
-    /// Applies an operator's arm, disarm or halt before the next slot.
+    /// Events for the channels drift handling left out or restored on
+    /// bin `seq`, and a halt when too many are out.
+    fn drift_changes(
+        pipeline: &DecodePipeline,
+        supervisor: &mut Supervisor,
+        counters: &mut EngineCounters,
+        seq: u64,
+        sink: &mut impl SlotSink,
+    ) {
+        let Some(t) = pipeline.drift() else { return };
+        if t.changes().is_empty() {
+            return;
+        }
+        for c in t.changes() {
+            match c.left_out {
+                Some(reason) => {
+                    counters.channels_left_out += 1;
+                    sink.event(&EngineEvent::ChannelLeftOut {
+                        seq,
+                        channel: c.channel,
+                        reason,
+                    });
+                }
+                None => {
+                    counters.channels_restored += 1;
+                    sink.event(&EngineEvent::ChannelRestored {
+                        seq,
+                        channel: c.channel,
+                    });
+                }
+            }
+        }
+        if t.too_many_left_out()
+            && let Some(tr) = supervisor.halt(
+                seq,
+                TransitionReason::TooManyLeftOut {
+                    left_out: t.n_left_out() as u32,
+                    channels: pipeline.n_channels() as u32,
+                },
+            )
+        {
+            counters.transitions += 1;
+            sink.event(&EngineEvent::Transition(tr));
+        }
+    }
+
+    /// The drift settings in force (with `enabled` as the operator last
+    /// set it).
+    pub fn drift_settings(&self) -> &DriftSettings {
+        &self.settings.drift
+    }
+
+    /// The running decoder (for status: drift tracking, left-out channels).
+    pub fn pipeline(&self) -> &DecodePipeline {
+        &self.pipeline
+    }
+
+    /// Applies an operator's arm, disarm or halt, or turns drift handling
+    /// on or off, before the next slot.
     pub fn operator(
         &mut self,
         command: OperatorCommand,
@@ -700,9 +800,29 @@ impl SlotEngine {
     ) -> Result<Option<Transition>, ArmRefused> {
         let seq = self.next_seq().unwrap_or(0);
         let t = match command {
-            OperatorCommand::Arm => Some(self.supervisor.arm(seq, self.clock.is_some())?),
+            OperatorCommand::Arm => {
+                if let Some(d) = self.pipeline.drift()
+                    && d.too_many_left_out()
+                {
+                    return Err(ArmRefused::TooManyLeftOut {
+                        left_out: d.n_left_out() as u32,
+                        channels: self.n_channels() as u32,
+                    });
+                }
+                Some(self.supervisor.arm(seq, self.clock.is_some())?)
+            }
             OperatorCommand::Disarm => self.supervisor.disarm(seq),
             OperatorCommand::Halt => self.supervisor.halt(seq, TransitionReason::OperatorHalt),
+            OperatorCommand::DriftOn | OperatorCommand::DriftOff => {
+                let enabled = command == OperatorCommand::DriftOn;
+                if self.settings.drift.enabled != enabled {
+                    self.settings.drift.enabled = enabled;
+                    self.pipeline
+                        .configure_drift(self.settings.drift, self.settings.saturation_count);
+                }
+                sink.event(&EngineEvent::DriftHandling { seq, enabled });
+                None
+            }
         };
         if let Some(t) = t {
             self.counters.transitions += 1;
@@ -732,6 +852,10 @@ impl SlotEngine {
         if let Err(e) = self.check_swap(&pipeline) {
             return Err(Box::new((e, pipeline)));
         }
+        let mut pipeline = pipeline;
+        // A new model starts drift handling afresh from its own training
+        // statistics.
+        pipeline.configure_drift(self.settings.drift, self.settings.saturation_count);
         let old = std::mem::replace(&mut self.pipeline, pipeline);
         self.model_changed = true;
         self.click_gate.reset();

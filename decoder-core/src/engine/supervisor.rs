@@ -62,6 +62,12 @@ pub enum TransitionReason {
     NumericalFault,
     /// The sender's seq went back (or far ahead): a new stream.
     NewStream,
+    /// Drift handling left out more channels than `drift.max_left_out`
+    /// allows.
+    TooManyLeftOut {
+        left_out: u32,
+        channels: u32,
+    },
 }
 
 impl std::fmt::Display for TransitionReason {
@@ -79,6 +85,10 @@ impl std::fmt::Display for TransitionReason {
             }
             TransitionReason::NumericalFault => write!(f, "numerical fault in the decoder"),
             TransitionReason::NewStream => write!(f, "new stream (seq jumped)"),
+            TransitionReason::TooManyLeftOut { left_out, channels } => write!(
+                f,
+                "{left_out} of {channels} channels left out as dead or noisy, more than drift.max_left_out allows"
+            ),
         }
     }
 }
@@ -144,6 +154,10 @@ pub enum ArmRefused {
     StreamStale { missing: u32 },
     #[error("already {0}")]
     AlreadyActive(&'static str),
+    #[error(
+        "{left_out} of {channels} channels are left out as dead or noisy; check the array's connections and the front end, or retrain on the channels that remain"
+    )]
+    TooManyLeftOut { left_out: u32, channels: u32 },
 }
 
 impl Supervisor {

@@ -25,9 +25,10 @@ use serde::{Deserialize, Serialize};
 use crate::engine::slot_engine::{EngineSettings, OperatorCommand};
 
 pub const LOG_MAGIC: &[u8; 8] = b"VDECSLOG";
-/// Version this build writes. Version 2 added task records (kind 8);
-/// version 1 logs, which have none, are read too.
-pub const LOG_FORMAT_VERSION: u32 = 2;
+/// Version this build writes. Version 3 added the operator's drift on
+/// and off (operator codes 4 and 5); version 2 added task records (kind
+/// 8); logs of versions 1 and 2, which have neither, are read too.
+pub const LOG_FORMAT_VERSION: u32 = 3;
 /// Oldest version this build reads.
 pub const LOG_OLDEST_VERSION: u32 = 1;
 const FILE_HEADER_LEN: usize = 8 + 4 + 4 + 4;
@@ -497,6 +498,8 @@ fn decode_body(body: &[u8]) -> Option<LogRecord> {
                 1 => OperatorCommand::Arm,
                 2 => OperatorCommand::Disarm,
                 3 => OperatorCommand::Halt,
+                4 => OperatorCommand::DriftOn,
+                5 => OperatorCommand::DriftOff,
                 _ => return None,
             };
             LogRecord::Operator {
@@ -530,5 +533,7 @@ pub fn operator_code(command: OperatorCommand) -> u8 {
         OperatorCommand::Arm => 1,
         OperatorCommand::Disarm => 2,
         OperatorCommand::Halt => 3,
+        OperatorCommand::DriftOn => 4,
+        OperatorCommand::DriftOff => 5,
     }
 }

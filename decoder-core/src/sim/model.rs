@@ -75,5 +75,6 @@ pub fn rig_settings() -> EngineSettings {
         dead_channel_bins: 100,
         saturation_count: 21,
         click_gate: Default::default(),
+        drift: Default::default(),
     }
 }

@@ -21,6 +21,7 @@ fn every_control_request_is_the_one_protocol_names() {
             path: "m.model".into(),
         },
         Request::Adapt { on: true },
+        Request::Drift { on: true },
     ];
     let cmds: std::collections::BTreeSet<String> = requests
         .iter()
@@ -35,8 +36,10 @@ fn every_control_request_is_the_one_protocol_names() {
     // The arguments are the ones named beside them.
     let load = serde_json::to_value(&requests[4]).unwrap();
     assert_eq!(json_keys(&load), ["cmd", "path"].map(String::from).into());
-    let adapt = serde_json::to_value(&requests[5]).unwrap();
-    assert_eq!(json_keys(&adapt), ["cmd", "on"].map(String::from).into());
+    for switch in &requests[5..] {
+        let v = serde_json::to_value(switch).unwrap();
+        assert_eq!(json_keys(&v), ["cmd", "on"].map(String::from).into());
+    }
 }
 
 #[test]
@@ -58,6 +61,20 @@ fn the_status_document_on_the_wire_has_the_fields_protocol_lists() {
     assert_eq!(
         json_keys(&status["adaptation"]),
         protocol_table("status-adaptation")
+    );
+    // The drift object's fields, as §11 lists them in its row.
+    assert_eq!(
+        json_keys(&status["drift"]),
+        [
+            "baseline_ratio",
+            "bias",
+            "enabled",
+            "left_out",
+            "left_out_total",
+            "restored_total"
+        ]
+        .map(String::from)
+        .into()
     );
     // Without the status, a reply has only `ok` and `message`.
     let arm = serde_json::to_value(d.ctl(Request::Arm)).unwrap();
@@ -84,6 +101,16 @@ fn every_engine_event_in_the_log_is_one_protocol_names() {
         EngineEvent::Duplicate { seq: 1 },
         EngineEvent::Stray { seq: 1 },
         EngineEvent::ModelChanged { seq: 1 },
+        EngineEvent::ChannelLeftOut {
+            seq: 1,
+            channel: 2,
+            reason: decoder_core::engine::drift::LeftOutReason::Noisy,
+        },
+        EngineEvent::ChannelRestored { seq: 1, channel: 2 },
+        EngineEvent::DriftHandling {
+            seq: 1,
+            enabled: true,
+        },
     ];
     let mut named = protocol_table("log-events");
     // The daemon's own events beside the engine's (rt_loop.rs).
@@ -100,4 +127,11 @@ fn every_engine_event_in_the_log_is_one_protocol_names() {
         })
         .collect();
     assert_eq!(written, named);
+}
+
+#[test]
+fn every_drift_key_is_one_protocol_names() {
+    let settings = decoder_core::engine::drift::DriftSettings::default();
+    let keys = json_keys(&serde_json::to_value(settings).unwrap());
+    assert_eq!(keys, protocol_table("drift-keys"));
 }

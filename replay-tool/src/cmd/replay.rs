@@ -51,9 +51,10 @@ pub struct Args {
     /// its logged states).
     #[arg(long, value_name = "FILE.npy|FILE.csv")]
     pub click_out: Option<PathBuf>,
-    /// A session directory's click gating from this daemon configuration's
-    /// `[click]` (default: the daemon's defaults). A log replays with the
-    /// settings it recorded.
+    /// A session directory's run-time settings from this daemon
+    /// configuration: drift handling (`[drift]`) and click gating
+    /// (`[click]`); without it, the daemon's defaults (drift handling off).
+    /// A log replays with the settings it recorded.
     #[arg(long, value_name = "DAEMON.toml")]
     pub config: Option<PathBuf>,
 }
@@ -83,6 +84,22 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
     let mut pipeline = model
         .pipeline_with(!args.no_steady_state)
         .with_context(|| format!("building the decoder from {}", model_path.display()))?;
+    // The settings a daemon with this configuration and model would run.
+    let (raw, origin) = match &args.config {
+        Some(c) => (
+            daemon::config::RawConfig::from_file(c)?,
+            c.display().to_string(),
+        ),
+        None => (Default::default(), "the daemon's defaults".to_string()),
+    };
+    // The model replayed stands in for the daemon's.
+    let overrides = daemon::config::Overrides {
+        model: Some(model_path.clone()),
+        ..Default::default()
+    };
+    let settings =
+        daemon::config::Config::resolve(raw, &overrides, &origin)?.engine_settings(model.bin_width);
+    pipeline.configure_drift(settings.drift, settings.saturation_count);
     let outputs = model.decoder.outputs().to_vec();
     let started = Instant::now();
     let rows = BlockFiles::open(&args.session)?;
@@ -100,19 +117,22 @@ pub fn replay(args: &Args) -> Result<ReplaySummary> {
     })?;
     sink.finish()?;
     if let Some(click_out) = &args.click_out {
-        let gate = match &args.config {
-            Some(c) => {
-                let raw = daemon::config::RawConfig::from_file(c)?;
-                // The model replayed stands in for the daemon's.
-                let overrides = daemon::config::Overrides {
-                    model: Some(model_path.clone()),
-                    ..Default::default()
-                };
-                daemon::config::Config::resolve(raw, &overrides, &c.display().to_string())?.click
+        replay_clicks(&rows, &model, &settings.click_gate, click_out)?;
+    }
+    if let Some(t) = pipeline.drift() {
+        let out: Vec<String> = t
+            .left_out_channels()
+            .map(|(c, r)| format!("{c} ({})", r.name()))
+            .collect();
+        tracing::info!(
+            "drift handling on: {} channels left out at the end{}",
+            out.len(),
+            if out.is_empty() {
+                String::new()
+            } else {
+                format!(": {}", out.join(", "))
             }
-            None => Default::default(),
-        };
-        replay_clicks(&rows, &model, &gate, click_out)?;
+        );
     }
     let elapsed = started.elapsed().as_secs_f64();
     if streamed.faults > 0 {

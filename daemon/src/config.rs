@@ -679,12 +679,9 @@ impl Config {
         let realtime = c.realtime(&raw.realtime)?;
         let (log_format, log_level) = c.log(&raw.log)?;
         let click = c.click(&raw.click)?;
-        raw.drift.validate().map_err(|e| {
-            c.err(
-                e.key,
-                format!("{}; it must be {}", e.value, e.want),
-            )
-        })?;
+        raw.drift
+            .validate()
+            .map_err(|e| c.err(e.key, format!("{}; it must be {}", e.value, e.want)))?;
         if overrides.arm && !actuator.ip().is_loopback() {
             return Err(ConfigError::ArmNotLoopback { actuator });
         }

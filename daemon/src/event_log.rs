@@ -101,11 +101,9 @@ pub(crate) fn log_events(events: Receiver<TimedEvent>) {
                 channel,
                 "channel {channel} behaves again: back in the decode"
             ),
-            EngineEvent::DriftHandling { seq, enabled } => tracing::info!(
-                seq,
-                "drift handling {}",
-                if enabled { "on" } else { "off" }
-            ),
+            EngineEvent::DriftHandling { seq, enabled } => {
+                tracing::info!(seq, "drift handling {}", if enabled { "on" } else { "off" })
+            }
         }
     }
 }

@@ -41,9 +41,7 @@ fn model(diagonal: bool, steady: bool) -> KalmanModel {
             .collect::<Vec<_>>(),
     );
     // Q = B Bᵀ + I: symmetric positive definite with real correlations.
-    let b: Vec<Vec<f64>> = (0..N)
-        .map(|_| (0..N).map(|_| r.next()).collect())
-        .collect();
+    let b: Vec<Vec<f64>> = (0..N).map(|_| (0..N).map(|_| r.next()).collect()).collect();
     let q = if diagonal {
         ObservationNoise::Diagonal((0..N).map(|i| 1.0 + i as f64 * 0.3).collect())
     } else {
@@ -85,7 +83,12 @@ fn model(diagonal: bool, steady: bool) -> KalmanModel {
 /// runs the full recursion).
 fn without(m: &KalmanModel, out: &[usize]) -> KalmanModel {
     let keep: Vec<usize> = (0..N).filter(|c| !out.contains(c)).collect();
-    let h = Mat::from_rows(&keep.iter().map(|&c| m.h.row(c).to_vec()).collect::<Vec<_>>());
+    let h = Mat::from_rows(
+        &keep
+            .iter()
+            .map(|&c| m.h.row(c).to_vec())
+            .collect::<Vec<_>>(),
+    );
     let q = match &m.q {
         ObservationNoise::Full(q) => ObservationNoise::Full(Mat::from_rows(
             &keep

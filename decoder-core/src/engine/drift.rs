@@ -480,7 +480,14 @@ mod tests {
             ..DriftSettings::default()
         };
         // 20 ms bins, training rate 0.5 count per bin (25 Hz).
-        DriftTracker::new(s, BinWidth::from_ms(20.0).unwrap(), 200, vec![0.5; n], None, 2)
+        DriftTracker::new(
+            s,
+            BinWidth::from_ms(20.0).unwrap(),
+            200,
+            vec![0.5; n],
+            None,
+            2,
+        )
     }
 
     #[test]

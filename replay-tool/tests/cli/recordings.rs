@@ -351,3 +351,38 @@ fn a_session_with_a_click_decoder_verifies_bit_for_bit() {
     }
     assert!(sent.iter().any(|(_, c)| *c == 1.0), "a click selected");
 }
+
+#[test]
+fn a_session_with_drift_handling_leaving_channels_out_and_back_verifies_bit_for_bit() {
+    let dir = tempfile::tempdir().unwrap();
+    let (_, model) = fixture::calibration_16();
+    // A fifth of the channels fall silent from 0.1 to 0.3 minutes; drift
+    // handling (on from the configuration) leaves them out after 1 s of
+    // silence and takes them back after 2 s of firing again.
+    let config = dir.path().join("daemon.toml");
+    std::fs::write(
+        &config,
+        "[drift]\nenabled = true\ndead_after_s = 1.0\nrestore_after_s = 2.0\ndead_min_rate_hz = 1.0\n",
+    )
+    .unwrap();
+    let report = dir.path().join("cl");
+    closed_loop_fast(
+        &model,
+        "16",
+        &["--silent", "0.2@0.1-0.3", "--config", p(&config)],
+        &report,
+    );
+    let log = closed_loop_log(&report);
+    let mut reader = decoder_core::formats::session_log::LogReader::open(&log).unwrap();
+    let (mut left_out, mut restored) = (0, 0);
+    while let Some(r) = reader.next_record() {
+        if let decoder_core::formats::session_log::LogRecord::Event { json, .. } = r {
+            left_out += usize::from(json.contains("\"channel_left_out\""));
+            restored += usize::from(json.contains("\"channel_restored\""));
+        }
+    }
+    assert!(left_out >= 2, "{left_out} channels left out");
+    assert!(restored >= 1, "{restored} channels restored");
+    let said = ok(&["verify", p(&log)]);
+    assert!(said.contains("bit for bit"), "{said}");
+}

@@ -636,3 +636,103 @@ fn a_wrong_click_decoder_clicks_no_more_than_the_gate_allows() {
         "{clicks} clicks, at most {most}"
     );
 }
+
+/// Drift handling's floor: with more than `max_left_out` of the channels
+/// left out the engine halts (command zero) and refuses to arm; a channel
+/// left out and restored is an event each time; drift off leaves the
+/// packets exactly as without the section.
+#[test]
+fn too_many_channels_left_out_halts_and_refuses_to_arm() {
+    let (m, _) = model();
+    let mut s = settings(true);
+    s.drift = decoder_core::engine::drift::DriftSettings {
+        enabled: true,
+        dead_after_s: 0.5,
+        dead_min_rate_hz: 1.0,
+        max_left_out: 0.3,
+        ..Default::default()
+    };
+    let mut engine = SlotEngine::new(s, m.pipeline().unwrap());
+    let mut out = Collected::default();
+    let mut buf = Vec::new();
+    let mut send = |engine: &mut SlotEngine, out: &mut Collected, seq: u64, silent: usize| {
+        // Channels below `silent` fire nothing; the rest one a bin (50 Hz,
+        // below the noisy limit of 4 × 20 Hz).
+        let counts: Vec<u16> = (0..8).map(|c| u16::from(c >= silent)).collect();
+        packet::encode_bin(
+            &BinHeader {
+                channels: 8,
+                seq,
+                origin_ns: 0,
+                bin_us: 20_000,
+                flags: 0,
+                kind: decoder_core::wire::packet::BinKind::Counts,
+            },
+            &counts,
+            &mut buf,
+        );
+        engine.on_timeout(T0 + seq * BIN_NS - 1, out);
+        engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, out);
+    };
+    // Two of eight silent (25 %): left out after 25 bins, still armed.
+    for seq in 0..40 {
+        send(&mut engine, &mut out, seq, 2);
+    }
+    assert_eq!(engine.state(), SupervisorState::Armed);
+    assert_eq!(engine.pipeline().drift().unwrap().n_left_out(), 2);
+    // A third silent channel (37.5 %): halted, with the reason.
+    for seq in 40..80 {
+        send(&mut engine, &mut out, seq, 3);
+    }
+    assert_eq!(engine.state(), SupervisorState::Halted, "{:?}", out.events);
+    assert!(out.events.iter().any(|e| matches!(
+        e,
+        EngineEvent::Transition(t) if matches!(
+            t.reason,
+            decoder_core::engine::supervisor::TransitionReason::TooManyLeftOut { left_out: 3, channels: 8 }
+        )
+    )));
+    let last = out.packets.last().unwrap();
+    assert!(last.command.iter().all(|&v| v == 0.0), "{last:?}");
+    assert!(engine.operator(OperatorCommand::Arm, &mut out).is_err());
+    let left: usize = out
+        .events
+        .iter()
+        .filter(|e| matches!(e, EngineEvent::ChannelLeftOut { .. }))
+        .count();
+    assert_eq!(left, 3);
+}
+
+#[test]
+fn drift_handling_off_gives_exactly_what_no_section_gives() {
+    let run = |drift: Option<decoder_core::engine::drift::DriftSettings>| {
+        let (m, session) = model();
+        let mut s = settings(true);
+        if let Some(d) = drift {
+            s.drift = d;
+        }
+        let mut rig = Rig {
+            engine: SlotEngine::new(s, m.pipeline().unwrap()),
+            session,
+            out: Collected::default(),
+            buf: Vec::new(),
+        };
+        for seq in 0..300 {
+            rig.send(seq, 1000);
+        }
+        rig.out.packets
+    };
+    let plain = run(None);
+    let off = run(Some(decoder_core::engine::drift::DriftSettings {
+        enabled: false,
+        baseline_tau_s: 5.0,
+        ..Default::default()
+    }));
+    assert_eq!(plain, off);
+    let on = run(Some(decoder_core::engine::drift::DriftSettings {
+        enabled: true,
+        baseline_tau_s: 5.0,
+        ..Default::default()
+    }));
+    assert_ne!(plain, on, "drift handling on changes the estimates");
+}

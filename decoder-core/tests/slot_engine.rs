@@ -395,20 +395,7 @@ fn dead_and_saturated_channels_are_reported() {
         if seq == 180 {
             counts[5] = 40;
         }
-        packet::encode_bin(
-            &BinHeader {
-                channels: 8,
-                seq,
-                origin_ns: 0,
-                bin_us: 20_000,
-                flags: 0,
-                kind: decoder_core::wire::packet::BinKind::Counts,
-            },
-            &counts,
-            &mut buf,
-        );
-        engine.on_timeout(T0 + seq * BIN_NS - 1, &mut out);
-        engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, &mut out);
+        send_on_the_dot(&mut engine, &mut out, seq, &counts, &mut buf);
     }
     let (dead, saturated) = engine.channel_health();
     assert_eq!(dead, vec![2]);
@@ -659,20 +646,7 @@ fn too_many_channels_left_out_halts_and_refuses_to_arm() {
         // Channels below `silent` fire nothing; the rest one a bin (50 Hz,
         // below the noisy limit of 4 × 20 Hz).
         let counts: Vec<u16> = (0..8).map(|c| u16::from(c >= silent)).collect();
-        packet::encode_bin(
-            &BinHeader {
-                channels: 8,
-                seq,
-                origin_ns: 0,
-                bin_us: 20_000,
-                flags: 0,
-                kind: decoder_core::wire::packet::BinKind::Counts,
-            },
-            &counts,
-            &mut buf,
-        );
-        engine.on_timeout(T0 + seq * BIN_NS - 1, out);
-        engine.on_datagram(T0 + seq * BIN_NS + 1000, &buf, out);
+        send_on_the_dot(engine, out, seq, &counts, &mut buf);
     };
     // Two of eight silent (25 %): left out after 25 bins, still armed.
     for seq in 0..40 {
@@ -735,4 +709,29 @@ fn drift_handling_off_gives_exactly_what_no_section_gives() {
         ..Default::default()
     }));
     assert_ne!(plain, on, "drift handling on changes the estimates");
+}
+
+/// Bin `seq` of 8 channels with `counts`, 1 µs after its nominal time,
+/// every earlier slot answered first.
+fn send_on_the_dot(
+    engine: &mut SlotEngine,
+    out: &mut Collected,
+    seq: u64,
+    counts: &[u16],
+    buf: &mut Vec<u8>,
+) {
+    packet::encode_bin(
+        &BinHeader {
+            channels: 8,
+            seq,
+            origin_ns: 0,
+            bin_us: 20_000,
+            flags: 0,
+            kind: decoder_core::wire::packet::BinKind::Counts,
+        },
+        counts,
+        buf,
+    );
+    engine.on_timeout(T0 + seq * BIN_NS - 1, out);
+    engine.on_datagram(T0 + seq * BIN_NS + 1000, buf, out);
 }

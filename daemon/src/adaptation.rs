@@ -28,7 +28,7 @@ use decoder_core::wire::packet::FLAG_BIN_MISSING;
 use decoder_core::wire::task_packet::{MAX_TASK_DIMS, Phase, TaskState};
 
 use crate::model_identity::ModelInfo;
-use crate::requests::{ControlRequest, LoadRequest, Swapped};
+use crate::requests::{ControlRequest, LoadRequest, Swapped, ToLoop, UpdateTicket};
 use crate::status::{AdaptStatus, AppliedUpdate, WorkerCounts};
 
 /// What the worker is told.
@@ -38,8 +38,12 @@ pub enum AdaptMsg {
         model: Box<ModelFile>,
         info: ModelInfo,
     },
-    /// A full batch to refit on.
-    Batch { generation: u64, batch: Batch },
+    /// A full batch to refit on, and the slot its update may go in at.
+    Batch {
+        generation: u64,
+        batch: Batch,
+        lands_at: u64,
+    },
 }
 
 /// The real-time thread's side: collects the batch.
@@ -49,6 +53,11 @@ pub struct Collector {
     options: AdaptOptions,
     n_channels: usize,
     bins_per_batch: usize,
+    /// Slots between the last slot of a batch and its update's landing.
+    land_after_bins: u64,
+    /// Updates the worker finished after their landing slot, swapped in
+    /// at once (the loop never waits for the worker).
+    pub updates_late: u64,
     /// Per model output, the axis it is the velocity of (vel_x → 0).
     output_axis: Vec<Option<usize>>,
     unavailable: Option<String>,
@@ -96,15 +105,17 @@ impl Collector {
     /// starts with.
     pub fn start(
         options: AdaptOptions,
+        land_after_s: f64,
         model: &ModelFile,
         info: &ModelInfo,
-        control: Sender<ControlRequest>,
+        control: ToLoop,
     ) -> std::io::Result<Collector> {
         let (to_worker, from_rt) = crossbeam_channel::bounded::<AdaptMsg>(8);
         let (spare_tx, spare) = crossbeam_channel::bounded::<Batch>(2);
         let counts = Arc::new(Mutex::new(WorkerCounts::default()));
         let bin_s = model.bin_width.seconds();
         let bins_per_batch = ((options.batch_s / bin_s).round() as usize).max(1);
+        let land_after_bins = ((land_after_s / bin_s).round() as u64).max(1);
         let n = model.decoder.n_channels();
         let worker = Worker {
             options: options.clone(),
@@ -123,6 +134,8 @@ impl Collector {
             options,
             n_channels: n,
             bins_per_batch,
+            land_after_bins,
+            updates_late: 0,
             output_axis: output_axes(model),
             unavailable: unavailable(model),
             batch: Batch::default(),
@@ -260,11 +273,11 @@ impl Collector {
         }
         self.batch.slots += 1;
         if self.batch.slots >= self.bins_per_batch {
-            self.ship();
+            self.ship(slot.seq + self.land_after_bins);
         }
     }
 
-    fn ship(&mut self) {
+    fn ship(&mut self, lands_at: u64) {
         match self.spare.try_recv() {
             Ok(mut fresh) => {
                 fresh.clear();
@@ -273,6 +286,7 @@ impl Collector {
                 match self.to_worker.try_send(AdaptMsg::Batch {
                     generation: self.generation,
                     batch: full,
+                    lands_at,
                 }) {
                     Ok(()) => self.batches_sent += 1,
                     Err(e) => {
@@ -298,6 +312,9 @@ impl Collector {
             batch_s: self.options.batch_s,
             half_life_s: self.options.half_life_s,
             bins_per_batch: self.bins_per_batch,
+            land_after_bins: self.land_after_bins,
+            updates_late: self.updates_late,
+            update_pending_at: None,
             batch_rows: self.batch.usable_rows(),
             batch_slots: self.batch.slots,
             batches_sent: self.batches_sent,
@@ -311,7 +328,7 @@ impl Collector {
 struct Worker {
     options: AdaptOptions,
     base: Option<(ModelFile, ModelInfo)>,
-    control: Sender<ControlRequest>,
+    control: ToLoop,
     spare: Sender<Batch>,
     counts: Arc<Mutex<WorkerCounts>>,
     updates: u64,
@@ -322,12 +339,32 @@ impl Worker {
         while let Ok(msg) = from_rt.recv() {
             match msg {
                 AdaptMsg::Base { model, info } => self.base = Some((*model, info)),
-                AdaptMsg::Batch { generation, batch } => {
+                AdaptMsg::Batch {
+                    generation,
+                    batch,
+                    lands_at,
+                } => {
                     // Messages come in order, so a batch is refitted on the
                     // model it was collected under; an update from a stale
                     // generation is refused by the real-time thread.
-                    self.update(generation, &batch);
+                    let prepared = self.prepare(generation, lands_at, &batch);
                     let _ = self.spare.try_send(batch);
+                    let handed = prepared.and_then(|p| {
+                        let Prepared { request, rest } = p;
+                        match self.control.try_send(request) {
+                            Ok(()) => Some(rest),
+                            Err(_) => {
+                                self.note(|c| c.not_applied += 1);
+                                None
+                            }
+                        }
+                    });
+                    // Finished with this batch: its update (if any) is in the
+                    // loop's queue, ahead of any status asked after this.
+                    self.note(|c| c.batches_finished += 1);
+                    if let Some(rest) = handed {
+                        self.await_landing(rest);
+                    }
                 }
             }
         }
@@ -339,9 +376,11 @@ impl Worker {
         }
     }
 
-    fn update(&mut self, generation: u64, batch: &Batch) {
+    /// Refits and checks one batch; the load request for the loop, or
+    /// `None` when the batch was skipped (counted).
+    fn prepare(&mut self, generation: u64, lands_at: u64, batch: &Batch) -> Option<Prepared> {
         let Some((base, base_info)) = &self.base else {
-            return;
+            return None;
         };
         let result = match &base.decoder {
             DecoderModel::Kalman(k) => {
@@ -349,7 +388,7 @@ impl Worker {
             }
             DecoderModel::PointProcess(p) => adapt_point_process(p, batch, &self.options)
                 .map(|(m, r)| (DecoderModel::PointProcess(m), r)),
-            _ => return,
+            _ => return None,
         };
         let (adapted, report) = match result {
             Ok(r) => r,
@@ -364,7 +403,7 @@ impl Worker {
                     }
                     c.last_skip = Some(skip.to_string());
                 });
-                return;
+                return None;
             }
         };
         let update = self.updates + 1;
@@ -393,7 +432,7 @@ impl Worker {
                     c.skipped_refused += 1;
                     c.last_skip = Some(e.to_string());
                 });
-                return;
+                return None;
             }
         };
         let info = ModelInfo::of(
@@ -404,18 +443,39 @@ impl Worker {
             &file,
             &bytes,
         );
-        let (request, rx) = LoadRequest::ask(
+        let (request, reply) = LoadRequest::ask(
             file.clone(),
             bytes,
             info.clone(),
             pipeline,
-            Some(generation),
+            Some(UpdateTicket {
+                generation,
+                lands_at,
+            }),
         );
-        if self.control.try_send(request).is_err() {
-            self.note(|c| c.not_applied += 1);
-            return;
-        }
-        match rx.blocking_recv() {
+        Some(Prepared {
+            request,
+            rest: Handed {
+                reply,
+                update,
+                report,
+                file,
+                info,
+            },
+        })
+    }
+
+    /// Waits for the loop to swap the update in (at its landing slot) or
+    /// refuse it; on a swap the update is the base of the next batch.
+    fn await_landing(&mut self, handed: Handed) {
+        let Handed {
+            reply,
+            update,
+            report,
+            file,
+            info,
+        } = handed;
+        match reply.blocking_recv() {
             Ok(Ok(Swapped {
                 first_seq: from_seq,
                 old,
@@ -448,6 +508,21 @@ impl Worker {
             Err(_) => {}
         }
     }
+}
+
+/// An update ready for the loop: the request, and what the worker keeps
+/// to learn its fate.
+struct Prepared {
+    request: ControlRequest,
+    rest: Handed,
+}
+
+struct Handed {
+    reply: tokio::sync::oneshot::Receiver<Result<Swapped, crate::requests::Refused>>,
+    update: u64,
+    report: decoder_core::fit::adapt::AdaptReport,
+    file: ModelFile,
+    info: ModelInfo,
 }
 
 /// The operator's model path behind a chain of updates.

@@ -99,6 +99,7 @@ pub struct RawAdaptation {
     pub min_usable_fraction: Option<f64>,
     pub max_relative_change: Option<f64>,
     pub ridge: Option<f64>,
+    pub land_after_s: Option<f64>,
 }
 
 /// Online adaptation (`[adaptation]`): off unless `enabled = true` or
@@ -107,6 +108,9 @@ pub struct RawAdaptation {
 pub struct AdaptConfig {
     pub enabled: bool,
     pub options: decoder_core::fit::adapt::AdaptOptions,
+    /// Seconds of slots from a batch's last slot to the slot its update
+    /// goes in at (PROTOCOL.md §9).
+    pub land_after_s: f64,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -600,8 +604,27 @@ impl Check<'_> {
                 )?,
                 ridge: self.within("adaptation.ridge", a.ridge.unwrap_or(1.0), 0.0, 1e6)?,
             },
+            land_after_s: 0.0,
         };
-        Ok(adaptation)
+        let batch_s = adaptation.options.batch_s;
+        let land_after_s = self.within(
+            "adaptation.land_after_s",
+            a.land_after_s.unwrap_or(1.0_f64.min(batch_s / 2.0)),
+            0.0,
+            600.0,
+        )?;
+        if land_after_s >= batch_s {
+            return Err(self.err(
+                "adaptation.land_after_s",
+                format!(
+                    "{land_after_s} s is not shorter than adaptation.batch_s ({batch_s} s); an update must go in before the next batch closes"
+                ),
+            ));
+        }
+        Ok(AdaptConfig {
+            land_after_s,
+            ..adaptation
+        })
     }
 
     fn realtime(&self, raw: &RawRealtime) -> Result<RealtimeConfig, ConfigError> {
@@ -843,6 +866,8 @@ mod tests {
                 &["0.0", "11.0", "nan"],
             ),
             ("adaptation", "ridge", "1.0", &["-1.0", "1e7", "nan"]),
+            // Not shorter than batch_s (10 s by default) is refused too.
+            ("adaptation", "land_after_s", "1.0", &["-1.0", "10.0", "nan"]),
         ];
         for (section, key, good, bads) in table {
             let ok = format!("[{section}]\n{key} = {good}\n");

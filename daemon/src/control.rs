@@ -8,7 +8,6 @@
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
-use crossbeam_channel::Sender;
 use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{OperatorCommand, check_swap_against};
 use decoder_core::formats::model_file::ModelFile;
@@ -18,7 +17,7 @@ use tokio::net::{UnixListener, UnixStream};
 use tokio::sync::oneshot;
 
 use crate::model_identity::ModelInfo;
-use crate::requests::{ControlRequest, LoadRequest, Refused, Swapped};
+use crate::requests::{ControlRequest, LoadRequest, Refused, Swapped, ToLoop};
 use crate::status::Status;
 
 #[derive(Debug, Serialize, Deserialize)]
@@ -109,11 +108,7 @@ pub fn bind(path: &Path) -> Result<std::os::unix::net::UnixListener> {
 }
 
 /// Serves control connections until the task is dropped.
-pub async fn serve(
-    listener: std::os::unix::net::UnixListener,
-    to_rt: Sender<ControlRequest>,
-    shape: StreamShape,
-) {
+pub async fn serve(listener: std::os::unix::net::UnixListener, to_rt: ToLoop, shape: StreamShape) {
     let listener = match UnixListener::from_std(listener) {
         Ok(l) => l,
         Err(e) => {
@@ -155,11 +150,7 @@ const MAX_REQUEST_BYTES: u64 = 64 * 1024;
 /// A connection that has not sent its request line by then is closed.
 const IDLE_TIMEOUT: std::time::Duration = std::time::Duration::from_secs(2);
 
-async fn handle(
-    stream: UnixStream,
-    to_rt: Sender<ControlRequest>,
-    shape: StreamShape,
-) -> Result<()> {
+async fn handle(stream: UnixStream, to_rt: ToLoop, shape: StreamShape) -> Result<()> {
     let (read, mut write) = stream.into_split();
     let mut line = String::new();
     let mut reader = BufReader::new(read.take(MAX_REQUEST_BYTES));
@@ -197,14 +188,14 @@ const RT_BUSY: &str = "the decode loop has too many control requests queued; try
 
 /// Hands a request to the real-time thread without ever blocking the
 /// control runtime: a full queue is an answer, not a wait.
-fn to_rt_now(to_rt: &Sender<ControlRequest>, request: ControlRequest) -> Result<(), Reply> {
+fn to_rt_now(to_rt: &ToLoop, request: ControlRequest) -> Result<(), Reply> {
     to_rt.try_send(request).map_err(|e| match e {
         crossbeam_channel::TrySendError::Full(_) => fail(RT_BUSY),
         crossbeam_channel::TrySendError::Disconnected(_) => fail(RT_GONE),
     })
 }
 
-async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamShape) -> Reply {
+async fn answer(request: Request, to_rt: &ToLoop, shape: StreamShape) -> Reply {
     match request {
         Request::Status => {
             let (tx, rx) = oneshot::channel();
@@ -294,7 +285,7 @@ async fn answer(request: Request, to_rt: &Sender<ControlRequest>, shape: StreamS
 /// answer (what it did, or why it refused) into the reply, logging it as
 /// `what`.
 async fn operator_reply<T: std::fmt::Display>(
-    to_rt: &Sender<ControlRequest>,
+    to_rt: &ToLoop,
     what: &str,
     request: impl FnOnce(oneshot::Sender<Result<T, Refused>>) -> ControlRequest,
 ) -> Reply {

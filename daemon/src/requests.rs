@@ -4,6 +4,10 @@
 //! has a module of its own so that the loop, the control side and the
 //! adaptation worker all stand on it and none of them on another.
 
+use std::os::unix::net::UnixDatagram;
+use std::sync::Arc;
+
+use crossbeam_channel::{Receiver, Sender, TrySendError};
 use decoder_core::ModelFile;
 use decoder_core::engine::pipeline::DecodePipeline;
 use decoder_core::engine::slot_engine::{OperatorCommand, SwapRefused};
@@ -12,6 +16,57 @@ use tokio::sync::oneshot;
 
 use crate::model_identity::ModelInfo;
 use crate::status::Status;
+
+/// The way into the decode loop from another thread: a bounded queue and
+/// a wake-up datagram, so the loop serves a request as soon as it is
+/// queued instead of at its next idle wake (a status round trip is then
+/// one loop turn, which a simulated session pays every bin). Sending never
+/// blocks: a full queue is an answer, and a full wake-up socket means the
+/// loop is already due to wake.
+#[derive(Clone)]
+pub struct ToLoop {
+    queue: Sender<ControlRequest>,
+    wake: Arc<UnixDatagram>,
+}
+
+/// The loop's end of [`ToLoop`]: the queue, and the socket the loop
+/// polls beside its bin and task sockets.
+pub struct FromOthers {
+    pub queue: Receiver<ControlRequest>,
+    pub wake: UnixDatagram,
+}
+
+impl ToLoop {
+    /// A queue of `capacity` requests and its wake-up socket pair.
+    pub fn channel(capacity: usize) -> std::io::Result<(ToLoop, FromOthers)> {
+        let (queue_tx, queue) = crossbeam_channel::bounded(capacity);
+        let (wake_tx, wake) = UnixDatagram::pair()?;
+        wake_tx.set_nonblocking(true)?;
+        wake.set_nonblocking(true)?;
+        Ok((
+            ToLoop {
+                queue: queue_tx,
+                wake: Arc::new(wake_tx),
+            },
+            FromOthers { queue, wake },
+        ))
+    }
+
+    /// Queues `request` and wakes the loop.
+    pub fn try_send(&self, request: ControlRequest) -> Result<(), TrySendError<ControlRequest>> {
+        self.queue.try_send(request)?;
+        let _ = self.wake.send(&[1]);
+        Ok(())
+    }
+}
+
+impl FromOthers {
+    /// Empties the wake-up socket (the requests stay in the queue).
+    pub fn drain_wake(&self) {
+        let mut byte = [0u8; 16];
+        while self.wake.recv(&mut byte).is_ok() {}
+    }
+}
 
 /// What the loop is asked between bins.
 pub enum ControlRequest {
@@ -82,10 +137,21 @@ pub struct LoadRequest {
     pub model_bytes: Vec<u8>,
     pub model: Box<ModelFile>,
     pub info: ModelInfo,
-    /// An adaptation update, computed in this generation (`None`: an
+    /// An adaptation update and where it may go in (`None`: an
     /// operator's load).
-    pub adaptation: Option<u64>,
+    pub adaptation: Option<UpdateTicket>,
     pub reply: oneshot::Sender<Result<Swapped, Refused>>,
+}
+
+/// Where an adaptation update may go in.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct UpdateTicket {
+    /// The adaptation generation it was computed in.
+    pub generation: u64,
+    /// The first slot it may decode: a set number of slots after the last
+    /// slot of its batch, so where it lands is a function of the bins,
+    /// not of when the worker finished.
+    pub lands_at: u64,
 }
 
 /// A model swapped in.
@@ -104,7 +170,7 @@ impl LoadRequest {
         model_bytes: Vec<u8>,
         info: ModelInfo,
         pipeline: DecodePipeline,
-        adaptation: Option<u64>,
+        adaptation: Option<UpdateTicket>,
     ) -> (ControlRequest, oneshot::Receiver<Result<Swapped, Refused>>) {
         let (reply, rx) = oneshot::channel();
         let request = LoadRequest {

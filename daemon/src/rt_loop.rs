@@ -15,7 +15,7 @@ use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::time::{Duration, Instant};
 
-use crossbeam_channel::{Receiver, Sender};
+use crossbeam_channel::Sender;
 use decoder_core::engine::slot_engine::{EngineEvent, SlotAnswer, SlotEngine, SlotSink};
 use decoder_core::engine::supervisor::SupervisorState;
 use decoder_core::formats::session_log::{self, RecordKind};
@@ -25,7 +25,7 @@ use crate::adaptation::Collector;
 use crate::model_identity::ModelInfo;
 use crate::recorder::{RecordBatcher, RecorderStats};
 use crate::requests::{
-    AdaptOutcome, ControlRequest, LoadRequest, OperatorOutcome, Refused, Swapped,
+    AdaptOutcome, ControlRequest, FromOthers, LoadRequest, OperatorOutcome, Refused, Swapped,
 };
 use crate::status::{
     ClickStatus, DriftStatus, LeftOutChannel, Monitor, Status, TaskMonitor, rejected_by_name,
@@ -77,7 +77,11 @@ pub struct RtLoop {
     pub engine: SlotEngine,
     pub batcher: Option<RecordBatcher>,
     pub monitor: Monitor,
-    pub control: Receiver<ControlRequest>,
+    /// Requests from the control socket and the adaptation worker.
+    pub control: FromOthers,
+    /// An adaptation update accepted but not yet due: it goes in at the
+    /// first slot at or after its `lands_at`.
+    pub pending_update: Option<Box<LoadRequest>>,
     pub events: Sender<TimedEvent>,
     pub shutdown: Arc<AtomicBool>,
     pub info: StaticInfo,
@@ -224,9 +228,9 @@ impl RtLoop {
                 self.handle(event, &mut scratch);
             }
             self.flush_records();
-            if !self.control.is_empty() {
+            if !self.control.queue.is_empty() {
                 alloc_count::set_on_decode_path(false);
-                while let Ok(request) = self.control.try_recv() {
+                while let Ok(request) = self.control.queue.try_recv() {
                     self.handle(request.into(), &mut scratch);
                     self.flush_records();
                 }
@@ -246,8 +250,13 @@ impl RtLoop {
             Some(d) => Duration::from_nanos(d - now_ns).min(IDLE_WAKE),
             None => IDLE_WAKE,
         };
-        match sys::wait_readable_pair(&self.input, &self.task_input, wait) {
-            Ok((bins, task)) => {
+        match sys::wait_readable([&self.input, &self.task_input, &self.control.wake], wait) {
+            Ok([bins, task, woken]) => {
+                if woken {
+                    // The request itself is in the queue, served after
+                    // the sockets.
+                    self.control.drain_wake();
+                }
                 let first = if bins {
                     LoopEvent::BinsReadable
                 } else {
@@ -288,6 +297,9 @@ impl RtLoop {
 
     /// A slot's deadline passed: the engine answers every slot due.
     fn on_deadline(&mut self, now_ns: u64, json: &mut Vec<u8>) {
+        if let Some(next) = self.engine.next_seq() {
+            self.land_due_update(next, json);
+        }
         let mut out = out!(self, json);
         self.engine.on_timeout(now_ns, &mut out);
     }
@@ -321,6 +333,11 @@ impl RtLoop {
                 Ok((n, _from)) => {
                     let recv_ns = sys::monotonic_ns();
                     let datagram = &buf[..n];
+                    if self.pending_update.is_some() {
+                        if let Ok(header) = packet::parse_bin(datagram) {
+                            self.land_due_update(header.seq, json);
+                        }
+                    }
                     if let Some(b) = self.batcher.as_mut() {
                         b.record(RecordKind::Datagram, recv_ns, &[datagram]);
                     }
@@ -381,6 +398,9 @@ impl RtLoop {
                 &[&[code, outcome]],
             );
         }
+        if self.engine.state() != SupervisorState::Armed {
+            self.refuse_pending_update("the daemon left the armed state meanwhile");
+        }
         let state = self.engine.state().name();
         use decoder_core::engine::slot_engine::OperatorCommand as Op;
         match result {
@@ -397,6 +417,7 @@ impl RtLoop {
     fn on_adaptation_switch(&mut self, on: bool) -> Result<AdaptOutcome, Refused> {
         let result = self.adapt.set(on);
         if result.is_ok() {
+            self.refuse_pending_update("adaptation was switched meanwhile");
             if let Some(b) = self.batcher.as_mut() {
                 let e = serde_json::json!({"event": "adaptation", "on": on});
                 b.record_owned(
@@ -409,15 +430,56 @@ impl RtLoop {
         result.map(AdaptOutcome).map_err(Refused::Adaptation)
     }
 
-    /// An adaptation update: refused when stale or not armed, else swapped
-    /// in as a load is.
+    /// An adaptation update: refused when stale or not armed; held until
+    /// its landing slot when that is still ahead, so where it goes in
+    /// depends on the bins alone; swapped in at once (and counted late)
+    /// when the worker finished after it. The loop never waits for it.
     fn on_adaptation_result(&mut self, load: LoadRequest, json: &mut Vec<u8>) {
-        let generation = load.adaptation.expect("an adaptation update");
-        if let Err(why) = self.adapt.accepts(generation, self.engine.state()) {
+        let ticket = load.adaptation.expect("an adaptation update");
+        if let Err(why) = self.adapt.accepts(ticket.generation, self.engine.state()) {
             let _ = load.reply.send(Err(Refused::Adaptation(why)));
             return;
         }
+        let next = self.engine.next_seq().unwrap_or(0);
+        if next < ticket.lands_at {
+            self.refuse_pending_update("a newer update came");
+            self.pending_update = Some(Box::new(load));
+            return;
+        }
+        if next > ticket.lands_at {
+            self.adapt.updates_late += 1;
+        }
         self.on_model_load(load, json);
+    }
+
+    /// The pending update goes in when the slot about to be handled is
+    /// `seq` ≥ its landing slot, if it is still acceptable.
+    fn land_due_update(&mut self, seq: u64, json: &mut Vec<u8>) {
+        let due = self
+            .pending_update
+            .as_ref()
+            .and_then(|p| p.adaptation)
+            .is_some_and(|t| seq >= t.lands_at);
+        if !due {
+            return;
+        }
+        if let Some(load) = self.pending_update.take() {
+            let generation = load.adaptation.map_or(0, |t| t.generation);
+            match self.adapt.accepts(generation, self.engine.state()) {
+                Ok(()) => self.on_model_load(*load, json),
+                Err(why) => {
+                    let _ = load.reply.send(Err(Refused::Adaptation(why)));
+                }
+            }
+        }
+    }
+
+    /// Refuses a pending update (another model, a switch, or a state
+    /// other than armed made it stale).
+    fn refuse_pending_update(&mut self, why: &str) {
+        if let Some(load) = self.pending_update.take() {
+            let _ = load.reply.send(Err(Refused::Adaptation(why.into())));
+        }
     }
 
     /// A checked model swapped in at the next bin boundary, recorded as a
@@ -451,6 +513,7 @@ impl RtLoop {
                 }
                 if adaptation.is_none() {
                     self.adapt.new_base(&model, &info);
+                    self.refuse_pending_update("an operator loaded another model meanwhile");
                 }
                 let live = matches!(
                     self.engine.state(),
@@ -524,7 +587,15 @@ impl RtLoop {
             decode_path_allocations: alloc_count::decode_path_allocations(),
             realtime_warnings: self.info.realtime_warnings.clone(),
             task: self.task.status(self.info.task_listen, sys::monotonic_ns()),
-            adaptation: self.adapt.status(),
+            adaptation: {
+                let mut a = self.adapt.status();
+                a.update_pending_at = self
+                    .pending_update
+                    .as_ref()
+                    .and_then(|p| p.adaptation)
+                    .map(|t| t.lands_at);
+                a
+            },
             last_command: self.monitor.last_command[..self.monitor.dims].to_vec(),
             last_estimate: self.monitor.last_estimate[..self.monitor.dims].to_vec(),
             click: {

@@ -21,7 +21,7 @@ use crate::config::{self, Config};
 use crate::control::{self, StreamShape};
 use crate::event_log::log_events;
 use crate::recorder::Recorder;
-use crate::requests::ControlRequest;
+use crate::requests::{ControlRequest, ToLoop};
 use crate::rt_loop::{RtLoop, StaticInfo, TimedEvent};
 use crate::status::{Monitor, Status};
 use crate::{adaptation, sys};
@@ -202,7 +202,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         tracing::info!("disarmed: the command stays zero until `{ctl} arm`");
     }
 
-    let (control_tx, control_rx) = crossbeam_channel::bounded::<ControlRequest>(64);
+    let (control_tx, control_rx) = ToLoop::channel(64)?;
     let (events_tx, events_rx) = crossbeam_channel::bounded::<TimedEvent>(4096);
     let events_thread = std::thread::Builder::new()
         .name("decoderd-events".into())
@@ -223,6 +223,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
     };
     let mut adapt = adaptation::Collector::start(
         config.adaptation.options.clone(),
+        config.adaptation.land_after_s,
         &loaded.file,
         &loaded.info,
         control_tx.clone(),
@@ -259,6 +260,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
                 batcher,
                 monitor: Monitor::default(),
                 control: control_rx,
+                pending_update: None,
                 events: events_tx,
                 shutdown: rt_shutdown,
                 info,
@@ -357,7 +359,7 @@ async fn wait_for_stop(shutdown: &AtomicBool) {
     }
 }
 
-async fn summary_lines(to_rt: crossbeam_channel::Sender<ControlRequest>, every: Duration) {
+async fn summary_lines(to_rt: ToLoop, every: Duration) {
     let mut tick = tokio::time::interval(every);
     tick.tick().await;
     loop {

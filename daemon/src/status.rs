@@ -630,6 +630,10 @@ impl Status {
 /// What the worker has done, shared with status.
 #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
 pub struct WorkerCounts {
+    /// Batches the worker is done with (skipped, or its update handed to
+    /// the loop); `batches_sent` minus this is the batch being refitted.
+    #[serde(default)]
+    pub batches_finished: u64,
     pub updates: u64,
     pub skipped_too_few_bins: u64,
     pub skipped_refused: u64,
@@ -657,6 +661,16 @@ pub struct AdaptStatus {
     pub batch_s: f64,
     pub half_life_s: f64,
     pub bins_per_batch: usize,
+    /// Slots from a batch's last slot to the slot its update goes in at.
+    #[serde(default)]
+    pub land_after_bins: u64,
+    /// The landing slot of an update computed and waiting to go in.
+    #[serde(default)]
+    pub update_pending_at: Option<u64>,
+    /// Updates the worker finished after their landing slot (each went in
+    /// at once, at the next slot).
+    #[serde(default)]
+    pub updates_late: u64,
     /// The batch being collected: usable bins of slots so far.
     pub batch_rows: usize,
     pub batch_slots: usize,

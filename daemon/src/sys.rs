@@ -22,42 +22,33 @@ pub fn monotonic_ns() -> u64 {
     ts.tv_sec as u64 * 1_000_000_000 + ts.tv_nsec as u64
 }
 
-/// Waits until `bins` or `task` is readable or `timeout` passes; says
-/// which are readable, bins first. `ppoll` takes a timespec, so a wait of
-/// 300 µs is 300 µs (plus the thread's timer slack), where a socket read
-/// timeout rounds to jiffies.
-pub fn wait_readable_pair(
-    bins: &impl AsRawFd,
-    task: &impl AsRawFd,
+/// Waits up to `timeout` for any of `fds` to be readable; says which
+/// are. An interrupted wait is a wait with nothing readable. `ppoll` takes
+/// a timespec, so a wait of 300 µs is 300 µs (plus the thread's timer
+/// slack), where a socket read timeout rounds to jiffies.
+pub fn wait_readable<const N: usize>(
+    fds: [&dyn AsRawFd; N],
     timeout: Duration,
-) -> std::io::Result<(bool, bool)> {
-    let mut fds = [
-        libc::pollfd {
-            fd: bins.as_raw_fd(),
-            events: libc::POLLIN,
-            revents: 0,
-        },
-        libc::pollfd {
-            fd: task.as_raw_fd(),
-            events: libc::POLLIN,
-            revents: 0,
-        },
-    ];
+) -> std::io::Result<[bool; N]> {
+    let mut polls = fds.map(|f| libc::pollfd {
+        fd: f.as_raw_fd(),
+        events: libc::POLLIN,
+        revents: 0,
+    });
     let ts = libc::timespec {
         tv_sec: timeout.as_secs() as libc::time_t,
         tv_nsec: timeout.subsec_nanos() as libc::c_long,
     };
-    // SAFETY: two valid pollfds, a valid timespec, and no signal mask.
-    let n = unsafe { libc::ppoll(fds.as_mut_ptr(), 2, &ts, std::ptr::null()) };
+    // SAFETY: N valid pollfds, a valid timespec, and no signal mask.
+    let n = unsafe { libc::ppoll(polls.as_mut_ptr(), N as libc::nfds_t, &ts, std::ptr::null()) };
     if n < 0 {
         let err = std::io::Error::last_os_error();
         if err.kind() == std::io::ErrorKind::Interrupted {
-            return Ok((false, false));
+            return Ok([false; N]);
         }
         return Err(err);
     }
-    let ready = |f: &libc::pollfd| n > 0 && f.revents & libc::POLLIN != 0;
-    Ok((ready(&fds[0]), ready(&fds[1])))
+    Ok(polls.map(|f| n > 0 && f.revents & libc::POLLIN != 0))
 }
 
 /// Sets the calling thread's timer slack to 1 ns so timed waits wake on

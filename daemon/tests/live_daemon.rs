@@ -958,13 +958,18 @@ fn stream_closed_loop(d: &Daemon, seqs: std::ops::Range<u64>, closed_loop: bool)
 fn adaptation_updates_only_while_armed_in_closed_loop_and_the_session_verifies() {
     let mut d = Daemon::start(
         true,
-        &format!("{TEST_TIMING}[adaptation]\nbatch_s = 1.0\nhalf_life_s = 5.0\n"),
+        &format!(
+            "{TEST_TIMING}[adaptation]\nbatch_s = 1.0\nhalf_life_s = 5.0\nmin_usable_fraction = 0.6\n"
+        ),
     );
     assert!(d.status().table().contains("adaptation         off"));
     let r = d.ctl(Request::Adapt { on: true });
     assert!(r.ok, "{}", r.message);
-    // Armed, closed loop, a target: every batch of 50 bins is an update.
-    stream_closed_loop(&d, 0..160, true);
+    // Armed, closed loop, a target: every batch of 50 bins is an update,
+    // which goes in 25 slots (land_after_s, half of batch_s) after its
+    // batch's last slot: the third at slot 174. (The fourth batch has 25
+    // usable bins, fewer than the 30 that min_usable_fraction asks.)
+    stream_closed_loop(&d, 0..175, true);
     let s = d.wait_for_status("three updates", |s| s.adaptation.worker.updates >= 3);
     assert!(
         s.model.path.starts_with("adaptation update"),
@@ -974,15 +979,15 @@ fn adaptation_updates_only_while_armed_in_closed_loop_and_the_session_verifies()
     assert_eq!(s.adaptation.worker.not_applied, 0);
     let done = s.adaptation.worker.updates;
     // Task says the cursor is not following the decoder: nothing usable.
-    stream_closed_loop(&d, 160..260, false);
+    stream_closed_loop(&d, 175..275, false);
     let s = d.wait_for_status("a batch skipped", |s| {
         s.adaptation.worker.skipped_too_few_bins >= 1
     });
     assert_eq!(s.adaptation.worker.updates, done);
     // Disarmed: never an update.
     assert!(d.ctl(Request::Disarm).ok);
-    stream_closed_loop(&d, 260..420, true);
-    d.wait_for_seq(419);
+    stream_closed_loop(&d, 275..435, true);
+    d.wait_for_seq(434);
     let s = d.wait_for_status("the disarmed batches skipped", |s| {
         s.adaptation.worker.skipped_too_few_bins >= 3
     });

@@ -268,9 +268,22 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     let mut reply = [0u8; 1024];
     let mut task_bytes = Vec::with_capacity(128);
     let mut coasted = 0;
+    // Adapting as fast as the loop turns round, the simulated world waits
+    // for the daemon before each bin: until it has read every task packet
+    // sent and no batch is being refitted. Then each bin's task state and
+    // each update's landing slot are the same every run, so a session with
+    // the same seeds repeats. (The daemon itself never waits: a paced
+    // session, like a rig, does not do this.)
+    let lockstep = daemon
+        .as_ref()
+        .filter(|_| setup.adapt && setup.time_scale == 0.0);
+    let mut task_packets_sent = 0u64;
     let t0 = Instant::now();
     let mut seq = 0u64;
     while !task.done() {
+        if let Some(d) = lockstep {
+            settle(d, task_packets_sent, setup.work)?;
+        }
         if setup.time_scale > 0.0 {
             let due = t0 + period.mul_f64(seq as f64 * setup.time_scale);
             if let Some(w) = due.checked_duration_since(Instant::now()) {
@@ -334,6 +347,7 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
             state.cursor_vel[..2].copy_from_slice(&command);
             state.target_pos[..2].copy_from_slice(&target);
             encode_task(&state, &mut task_bytes);
+            task_packets_sent += 1;
             front_end.send_to(&task_bytes, task_listen)
         };
         if let Some(result) = &ended {
@@ -375,6 +389,30 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         coasted,
         adaptation,
     })
+}
+
+/// Waits until the daemon has read `task_packets` task packets and its
+/// adaptation worker holds no batch (a status round trip each try; the
+/// daemon serves it after the sockets it polls).
+fn settle(daemon: &daemon_rig::RunningDaemon, task_packets: u64, work: &Path) -> Result<()> {
+    let asked = Instant::now();
+    loop {
+        let s = daemon.status()?;
+        let a = &s.adaptation;
+        if s.task.received >= task_packets && a.batches_sent <= a.worker.batches_finished {
+            return Ok(());
+        }
+        if asked.elapsed() > Duration::from_secs(30) {
+            bail!(
+                "the daemon read {} of {task_packets} task packets and finished {} of {} adaptation batches within 30 s; see {}",
+                s.task.received,
+                a.worker.batches_finished,
+                a.batches_sent,
+                work.display()
+            );
+        }
+        std::thread::sleep(Duration::from_micros(100));
+    }
 }
 
 /// Runs the closed loop and writes its report; returns the summary.

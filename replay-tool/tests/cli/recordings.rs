@@ -214,35 +214,59 @@ fn a_closed_loop_recording_exports_as_a_session_directory_and_trains() {
 }
 
 /// An adaptive closed-loop session (PROTOCOL.md §9): the spawned daemon
-/// adapts with no operator action, and `verify` reproduces the session,
-/// every update included, bit for bit.
+/// adapts with no operator action, each update goes in at its landing slot
+/// (`land_after_s` after its batch's last slot, whenever the worker
+/// finished), so the same seeds give the same session every run; and
+/// `verify` reproduces the session, every update included, bit for bit.
 #[test]
-fn an_adaptive_closed_loop_session_verifies_bit_for_bit() {
+fn an_adaptive_closed_loop_session_repeats_and_verifies_bit_for_bit() {
     let dir = tempfile::tempdir().unwrap();
     let (_, model) = fixture::calibration_16();
     let config = dir.path().join("daemon.toml");
-    std::fs::write(&config, "[adaptation]\nbatch_s = 2.0\nhalf_life_s = 10.0\n").unwrap();
-    let report = dir.path().join("cl");
-    let said = ok(&[
-        "closed-loop",
-        "--model",
-        p(&model),
-        "--config",
-        p(&config),
-        "--adapt",
-        "--time-scale",
-        "0",
-        "--trials",
-        "6",
-        "--report",
-        p(&report),
-    ]);
-    assert!(said.contains("adaptation: ON"), "{said}");
-    let s: serde_json::Value =
-        serde_json::from_str(&std::fs::read_to_string(report.join("closed-loop.json")).unwrap())
-            .unwrap();
-    let updates = s["adaptation"]["updates"].as_u64().unwrap();
-    assert!(updates >= 2, "{}", s["adaptation"]);
+    std::fs::write(
+        &config,
+        "[adaptation]\nbatch_s = 2.0\nhalf_life_s = 10.0\nland_after_s = 0.4\n",
+    )
+    .unwrap();
+    let run = |name: &str| {
+        let report = dir.path().join(name);
+        let said = ok(&[
+            "closed-loop",
+            "--model",
+            p(&model),
+            "--config",
+            p(&config),
+            "--adapt",
+            "--time-scale",
+            "0",
+            "--trials",
+            "6",
+            "--report",
+            p(&report),
+        ]);
+        assert!(said.contains("adaptation: ON"), "{said}");
+        let s: serde_json::Value = serde_json::from_str(
+            &std::fs::read_to_string(report.join("closed-loop.json")).unwrap(),
+        )
+        .unwrap();
+        (s, report)
+    };
+    let (first, report) = run("cl");
+    let a = &first["adaptation"];
+    let updates = a["updates"].as_u64().unwrap();
+    assert!(updates >= 2, "{a}");
+    // 0.4 s of 20 ms slots after the batch's last slot, never later.
+    assert_eq!(a["land_after_bins"], 20, "{a}");
+    assert_eq!(a["updates_late"], 0, "{a}");
+    let last = &a["last_update"];
+    assert_eq!(
+        last["from_seq"].as_u64().unwrap(),
+        last["report"]["last_seq"].as_u64().unwrap() + 20,
+        "{a}"
+    );
+    let (second, _) = run("cl-again");
+    assert_eq!(first["trials"], second["trials"]);
+    assert_eq!(first["adaptation"], second["adaptation"]);
     let said = ok(&["verify", p(&closed_loop_log(&report))]);
     assert!(said.contains("bit for bit"), "{said}");
 }

@@ -238,9 +238,46 @@ pub fn check_adaptable(state: &[String]) -> Result<(), AdaptSkip> {
     sources(state).map(|_| ())
 }
 
+/// The slowest speed a batch labels: the median intended speed of its
+/// usable rows outside the target (0 when there are none). Near a target
+/// the running decoder is slow while the user still intends to move; those
+/// bins, labelled with their own decoded speed, teach the refit that full
+/// modulation means slow movement, so each update decodes slower near
+/// targets until the cursor creeps to the rim and cannot hold inside. A
+/// floor at the batch's typical speed breaks that loop; direction still
+/// comes from the target alone.
+pub fn speed_floor(batch: &Batch, used: &[usize]) -> f64 {
+    let mut speeds: Vec<f64> = used
+        .iter()
+        .map(|&r| {
+            let v = intended_velocity(&batch.rows[r]);
+            v.iter().map(|x| x * x).sum::<f64>().sqrt()
+        })
+        .filter(|s| *s > 0.0)
+        .collect();
+    if speeds.is_empty() {
+        return 0.0;
+    }
+    speeds.sort_by(f64::total_cmp);
+    speeds[speeds.len() / 2]
+}
+
+/// The velocity a row is labelled with: [`intended_velocity`], its speed
+/// raised to `floor` when it is slower (zero inside the target stays zero).
+pub fn labelled_velocity(row: &BatchRow, floor: f64) -> [f64; MAX_TASK_DIMS] {
+    let mut v = intended_velocity(row);
+    let speed = v.iter().map(|x| x * x).sum::<f64>().sqrt();
+    if speed > 0.0 && speed < floor {
+        for x in &mut v {
+            *x *= floor / speed;
+        }
+    }
+    v
+}
+
 /// The intended state of a row.
-fn intended_state(row: &BatchRow, src: &[Source], out: &mut [f64]) {
-    let v = intended_velocity(row);
+fn intended_state(row: &BatchRow, src: &[Source], floor: f64, out: &mut [f64]) {
+    let v = labelled_velocity(row, floor);
     for (o, s) in out.iter_mut().zip(src) {
         *o = match *s {
             Source::Pos(i) => row.cursor[i],
@@ -281,8 +318,9 @@ pub fn adapt_kalman(
     // in the running model's units.
     let mut x = DMatrix::<f64>::zeros(t, d);
     let mut state = vec![0.0; d];
+    let floor = speed_floor(batch, &used);
     for (r, &row) in used.iter().enumerate() {
-        intended_state(&batch.rows[row], &src, &mut state);
+        intended_state(&batch.rows[row], &src, floor, &mut state);
         for (c, v) in state.iter().enumerate() {
             x[(r, c)] = *v;
         }
@@ -435,8 +473,9 @@ pub fn adapt_point_process(
     let t = used.len();
     let mut x = DMatrix::<f64>::zeros(t, p);
     let mut state = vec![0.0; d];
+    let floor = speed_floor(batch, &used);
     for (i, &r) in used.iter().enumerate() {
-        intended_state(&batch.rows[r], &src, &mut state);
+        intended_state(&batch.rows[r], &src, floor, &mut state);
         x[(i, 0)] = 1.0;
         for (c, v) in state.iter().enumerate() {
             x[(i, 1 + c)] = *v;
@@ -617,6 +656,27 @@ mod tests {
         // Inside the target: zero.
         let v = intended_velocity(&row([9.5, 0.0], [10.0, 0.0], [3.0, 4.0]));
         assert_eq!(&v[..2], &[0.0, 0.0]);
+    }
+
+    #[test]
+    fn a_slow_row_is_labelled_at_the_batch_median_speed() {
+        let rows = vec![
+            row([0.0, 0.0], [10.0, 0.0], [0.0, 8.0]),  // 8 toward +x
+            row([0.0, 0.0], [0.0, 10.0], [6.0, 0.0]),  // 6 toward +y
+            row([7.0, 0.0], [10.0, 0.0], [0.0, -1.0]), // 1, near the target
+            row([9.5, 0.0], [10.0, 0.0], [3.0, 4.0]),  // inside: zero
+        ];
+        let batch = Batch {
+            rows,
+            ..Default::default()
+        };
+        let used = [0, 1, 2, 3];
+        // Nonzero speeds 1, 6, 8: the median is 6.
+        assert_eq!(speed_floor(&batch, &used), 6.0);
+        assert_eq!(&labelled_velocity(&batch.rows[2], 6.0)[..2], &[6.0, 0.0]);
+        assert_eq!(&labelled_velocity(&batch.rows[0], 6.0)[..2], &[8.0, 0.0]);
+        assert_eq!(&labelled_velocity(&batch.rows[3], 6.0)[..2], &[0.0, 0.0]);
+        assert_eq!(speed_floor(&Batch::default(), &[]), 0.0);
     }
 
     #[test]

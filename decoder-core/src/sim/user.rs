@@ -167,6 +167,14 @@ impl SimulatedUser {
         Ok(self)
     }
 
+    /// The same user with the world's clock starting `minutes` into the
+    /// day: a changing world ([`SimulatedUser::with_drift`]) is as it is
+    /// then, so a later hour of one simulated day can be run on its own.
+    pub fn starting_at_minute(mut self, minutes: f64) -> SimulatedUser {
+        self.bins_done = (minutes * 60_000.0 / self.bin_ms as f64).round() as usize;
+        self
+    }
+
     pub fn n_channels(&self) -> usize {
         self.channels.beta.len()
     }

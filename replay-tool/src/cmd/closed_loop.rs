@@ -55,9 +55,18 @@ pub struct Args {
     /// simulated task sends cursor, target and phase.
     #[arg(long, requires = "daemon", default_value = "127.0.0.1:27402")]
     pub task_listen: String,
-    /// Number of center-out trials.
+    /// Number of center-out trials (with --minutes, the most).
     #[arg(long, default_value_t = 16)]
     pub trials: usize,
+    /// Stop at the end of the trial in progress once this many minutes of
+    /// bins have passed (simulated time, whatever --time-scale is).
+    #[arg(long)]
+    pub minutes: Option<f64>,
+    /// With a changing world (--drift-gain, --silent, --noisy …): the
+    /// session starts this many minutes into it, so a later part of one
+    /// simulated day runs on its own.
+    #[arg(long, default_value_t = 0.0)]
+    pub world_from_min: f64,
     /// The simulated array the user's channels come from (as `simulate
     /// --array-seed`; the model must have been trained on it).
     #[arg(long, default_value_t = 1)]
@@ -101,6 +110,17 @@ pub enum SelectArg {
 /// `replay-tool closed-loop`.
 pub fn run_verb(args: &Args) -> Result<()> {
     super::check_time_scale(args.time_scale, true)?;
+    if let Some(m) = args.minutes {
+        if !(m.is_finite() && m > 0.0) {
+            bail!("--minutes {m}: must be a positive number of minutes");
+        }
+    }
+    if !(args.world_from_min.is_finite() && args.world_from_min >= 0.0) {
+        bail!(
+            "--world-from-min {}: must be 0 or more minutes",
+            args.world_from_min
+        );
+    }
     if let Some(m) = args.min_success {
         if !(0.0..=1.0).contains(&m) {
             bail!("--min-success {m}: must be a fraction between 0 and 1");
@@ -137,6 +157,8 @@ pub fn run_verb(args: &Args) -> Result<()> {
         array_seed: args.array_seed,
         time_scale: args.time_scale,
         drift: args.world.drift()?,
+        minutes: args.minutes,
+        world_from_min: args.world_from_min,
     };
     let summary = report(&setup, &args.report)?;
     if let Some(min) = args.min_success {
@@ -199,6 +221,11 @@ pub struct ClosedLoopSetup<'a> {
     pub time_scale: f64,
     /// A world that changes as the session goes on (`None`: stationary).
     pub drift: Option<decoder_core::sim::drift::DriftOptions>,
+    /// Stop after the trial in progress once this much simulated time
+    /// has passed, minutes.
+    pub minutes: Option<f64>,
+    /// Where in the changing world's day the session starts, minutes.
+    pub world_from_min: f64,
 }
 
 pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
@@ -231,8 +258,11 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         );
     }
     if let Some(d) = &setup.drift {
-        user = user.with_drift(d)?;
+        user = user.with_drift(d)?.starting_at_minute(setup.world_from_min);
     }
+    let last_bin = setup
+        .minutes
+        .map(|m| (m * 60_000.0 / model.bin_width.ms()).ceil() as u64);
     let mut task = CenterOut::new(task_options.clone());
 
     let (sink, daemon, listen, task_listen) = match setup.running {
@@ -367,6 +397,9 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
             shown(phase, task.trial() as u32, task.cursor(), task.target())?;
         }
         seq += 1;
+        if ended.is_some() && last_bin.is_some_and(|last| seq >= last) {
+            break;
+        }
     }
     let adaptation = match &daemon {
         Some(d) if setup.adapt => Some(d.status()?.adaptation),

@@ -867,7 +867,12 @@ mod tests {
             ),
             ("adaptation", "ridge", "1.0", &["-1.0", "1e7", "nan"]),
             // Not shorter than batch_s (10 s by default) is refused too.
-            ("adaptation", "land_after_s", "1.0", &["-1.0", "10.0", "nan"]),
+            (
+                "adaptation",
+                "land_after_s",
+                "1.0",
+                &["-1.0", "10.0", "nan"],
+            ),
         ];
         for (section, key, good, bads) in table {
             let ok = format!("[{section}]\n{key} = {good}\n");

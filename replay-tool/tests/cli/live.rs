@@ -359,3 +359,57 @@ fn selecting_by_click_beats_dwell_on_a_small_array() {
     let (dwell, click) = (bitrate("dwell"), bitrate("click"));
     assert!(click > dwell, "click {click} bits/s, dwell {dwell} bits/s");
 }
+
+/// `closed-loop --minutes` ends the session with the trial in progress
+/// once that much simulated time has passed; `--world-from-min` starts a
+/// changing world later in its day.
+#[test]
+fn a_closed_loop_session_runs_for_minutes_and_can_start_late_in_a_changing_world() {
+    let dir = tempfile::tempdir().unwrap();
+    let (_, model) = fixture::calibration_16();
+    let run = |name: &str, extra: &[&str]| {
+        let report = dir.path().join(name);
+        let mut args = vec![
+            "closed-loop",
+            "--model",
+            p(&model),
+            "--time-scale",
+            "0",
+            "--trials",
+            "1000",
+            "--minutes",
+            "0.5",
+            "--report",
+            p(&report),
+        ];
+        args.extend_from_slice(extra);
+        ok(&args);
+        closed_loop_summary(&report);
+        let s = json_file(&report.join("closed-loop.json"));
+        let trials = s["trials"].as_array().unwrap().clone();
+        let seconds: f64 = trials
+            .iter()
+            .map(|t| t["trial_time_s"].as_f64().unwrap())
+            .sum();
+        let success = trials.iter().filter(|t| t["success"] == true).count();
+        (trials.len(), seconds, success)
+    };
+    // Every channel silent from minute 1 on.
+    let world = ["--silent", "1.0@1"];
+    let (n, seconds, success) = run("early", &world);
+    assert!(n < 1000, "{n}");
+    // At least 30 s, and no more than one more trial (6 s at most).
+    assert!((30.0..36.02).contains(&seconds), "{seconds}");
+    assert!(success > 0, "{success} of {n}");
+    let late: Vec<&str> = world
+        .iter()
+        .copied()
+        .chain(["--world-from-min", "1"])
+        .collect();
+    let (n_late, _, success_late) = run("late", &late);
+    // A silent array decodes a constant: nearly every trial times out.
+    assert!(
+        n_late <= 7 && success_late <= 1,
+        "{success_late} of {n_late} with every channel silent, {success} of {n} before"
+    );
+}

@@ -12,12 +12,7 @@
 #
 # Needs a release build (cargo build --release -p replay-tool -p daemon)
 # and a Python with numpy ($VDEC_REFERENCE_PYTHON, else python3).
-set -euo pipefail
-here=$(cd "$(dirname "$0")/../.." && pwd)
-tool="${CARGO_TARGET_DIR:-$here/target}/release/replay-tool"
-py="${VDEC_REFERENCE_PYTHON:-python3}"
-w="${1:-$(mktemp -d)}"
-mkdir -p "$w" && cd "$w"
+source "$(dirname "$0")/setup.sh" "$@"
 "$tool" simulate --out calib --seed 11 --minutes 10 --channels 96 >/dev/null
 "$py" - <<'PY'
 import numpy as np, shutil

@@ -12,12 +12,7 @@
 #
 # Needs a release build (cargo build --release -p replay-tool) and a Python
 # with numpy ($VDEC_REFERENCE_PYTHON, else python3).
-set -euo pipefail
-here=$(cd "$(dirname "$0")/../.." && pwd)
-tool="${CARGO_TARGET_DIR:-$here/target}/release/replay-tool"
-py="${VDEC_REFERENCE_PYTHON:-python3}"
-w="${1:-$(mktemp -d)}"
-mkdir -p "$w" && cd "$w"
+source "$(dirname "$0")/setup.sh" "$@"
 "$tool" simulate --out calib --seed 1 --minutes 10 --channels 96 >/dev/null
 "$tool" simulate --out clean --seed 2 --minutes 30 --channels 96 >/dev/null
 "$tool" simulate --out drifted --seed 2 --minutes 30 --channels 96 \

@@ -18,12 +18,7 @@
 #
 # Needs a release build (cargo build --release -p replay-tool -p daemon)
 # and a Python with numpy ($VDEC_REFERENCE_PYTHON, else python3).
-set -euo pipefail
-here=$(cd "$(dirname "$0")/../.." && pwd)
-tool="${CARGO_TARGET_DIR:-$here/target}/release/replay-tool"
-py="${VDEC_REFERENCE_PYTHON:-python3}"
-w="${1:-$(mktemp -d)}"
-mkdir -p "$w" && cd "$w"
+source "$(dirname "$0")/setup.sh" "$@"
 day=(--drift-gain 0.6:1.8 --drift-ramp-min 120 --silent 0.1@30-100 --noisy 0.1@60-90)
 printf '[drift]\nenabled = true\n' >drift.toml
 run() { "$tool" closed-loop --time-scale 0 --trials 1000000 "$@" >/dev/null; }

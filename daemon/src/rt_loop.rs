@@ -26,6 +26,7 @@ use crate::model_identity::ModelInfo;
 use crate::recorder::{RecordBatcher, RecorderStats};
 use crate::requests::{
     AdaptOutcome, ControlRequest, FromOthers, LoadRequest, OperatorOutcome, Refused, Swapped,
+    UpdateTicket,
 };
 use crate::status::{
     ClickStatus, DriftStatus, LeftOutChannel, Monitor, Status, TaskMonitor, rejected_by_name,
@@ -81,7 +82,7 @@ pub struct RtLoop {
     pub control: FromOthers,
     /// An adaptation update accepted but not yet due: it goes in at the
     /// first slot at or after its `lands_at`.
-    pub pending_update: Option<Box<LoadRequest>>,
+    pub pending_update: Option<(UpdateTicket, Box<LoadRequest>)>,
     pub events: Sender<TimedEvent>,
     pub shutdown: Arc<AtomicBool>,
     pub info: StaticInfo,
@@ -430,46 +431,39 @@ impl RtLoop {
         result.map(AdaptOutcome).map_err(Refused::Adaptation)
     }
 
-    /// An adaptation update: refused when stale or not armed; held until
-    /// its landing slot when that is still ahead, so where it goes in
-    /// depends on the bins alone; swapped in at once (and counted late)
-    /// when the worker finished after it. The loop never waits for it.
+    /// An adaptation update: held until its landing slot when that is
+    /// still ahead, so where it goes in depends on the bins alone; landed
+    /// at once (and counted late) when the worker finished after it. The
+    /// loop never waits for it.
     fn on_adaptation_result(&mut self, load: LoadRequest, json: &mut Vec<u8>) {
         let ticket = load.adaptation.expect("an adaptation update");
-        if let Err(why) = self.adapt.accepts(ticket.generation, self.engine.state()) {
-            let _ = load.reply.send(Err(Refused::Adaptation(why)));
-            return;
-        }
         let next = self.engine.next_seq().unwrap_or(0);
         if next < ticket.lands_at {
             self.refuse_pending_update("a newer update came");
-            self.pending_update = Some(Box::new(load));
+            self.pending_update = Some((ticket, Box::new(load)));
             return;
         }
         if next > ticket.lands_at {
             self.adapt.updates_late += 1;
         }
-        self.on_model_load(load, json);
+        self.land_update(ticket, load, json);
     }
 
     /// The pending update goes in when the slot about to be handled is
-    /// `seq` ≥ its landing slot, if it is still acceptable.
+    /// `seq` ≥ its landing slot.
     fn land_due_update(&mut self, seq: u64, json: &mut Vec<u8>) {
-        let due = self
-            .pending_update
-            .as_ref()
-            .and_then(|p| p.adaptation)
-            .is_some_and(|t| seq >= t.lands_at);
-        if !due {
-            return;
+        if let Some((ticket, load)) = self.pending_update.take_if(|(t, _)| seq >= t.lands_at) {
+            self.land_update(ticket, *load, json);
         }
-        if let Some(load) = self.pending_update.take() {
-            let generation = load.adaptation.map_or(0, |t| t.generation);
-            match self.adapt.accepts(generation, self.engine.state()) {
-                Ok(()) => self.on_model_load(*load, json),
-                Err(why) => {
-                    let _ = load.reply.send(Err(Refused::Adaptation(why)));
-                }
+    }
+
+    /// Swaps an update in as a load is, or refuses it when it is stale or
+    /// the daemon is not armed.
+    fn land_update(&mut self, ticket: UpdateTicket, load: LoadRequest, json: &mut Vec<u8>) {
+        match self.adapt.accepts(ticket.generation, self.engine.state()) {
+            Ok(()) => self.on_model_load(load, json),
+            Err(why) => {
+                let _ = load.reply.send(Err(Refused::Adaptation(why)));
             }
         }
     }
@@ -477,7 +471,7 @@ impl RtLoop {
     /// Refuses a pending update (another model, a switch, or a state
     /// other than armed made it stale).
     fn refuse_pending_update(&mut self, why: &str) {
-        if let Some(load) = self.pending_update.take() {
+        if let Some((_, load)) = self.pending_update.take() {
             let _ = load.reply.send(Err(Refused::Adaptation(why.into())));
         }
     }
@@ -589,11 +583,7 @@ impl RtLoop {
             task: self.task.status(self.info.task_listen, sys::monotonic_ns()),
             adaptation: {
                 let mut a = self.adapt.status();
-                a.update_pending_at = self
-                    .pending_update
-                    .as_ref()
-                    .and_then(|p| p.adaptation)
-                    .map(|t| t.lands_at);
+                a.update_pending_at = self.pending_update.as_ref().map(|(t, _)| t.lands_at);
                 a
             },
             last_command: self.monitor.last_command[..self.monitor.dims].to_vec(),

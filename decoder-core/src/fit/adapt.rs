@@ -184,8 +184,8 @@ pub fn intended_velocity(row: &BatchRow) -> [f64; MAX_TASK_DIMS] {
     for (i, t) in to.iter_mut().enumerate().take(d) {
         *t = row.target[i] - row.cursor[i];
     }
-    let dist = to[..d].iter().map(|v| v * v).sum::<f64>().sqrt();
-    let speed = row.decoded[..d].iter().map(|v| v * v).sum::<f64>().sqrt();
+    let dist = norm(&to[..d]);
+    let speed = norm(&row.decoded[..d]);
     let mut out = [0.0; MAX_TASK_DIMS];
     if dist > row.radius && dist > 0.0 {
         for (o, t) in out.iter_mut().zip(&to).take(d) {
@@ -238,6 +238,11 @@ pub fn check_adaptable(state: &[String]) -> Result<(), AdaptSkip> {
     sources(state).map(|_| ())
 }
 
+/// Euclidean length.
+fn norm(v: &[f64]) -> f64 {
+    v.iter().map(|x| x * x).sum::<f64>().sqrt()
+}
+
 /// The slowest speed a batch labels: the median intended speed of its
 /// usable rows outside the target (0 when there are none). Near a target
 /// the running decoder is slow while the user still intends to move; those
@@ -249,10 +254,7 @@ pub fn check_adaptable(state: &[String]) -> Result<(), AdaptSkip> {
 pub fn speed_floor(batch: &Batch, used: &[usize]) -> f64 {
     let mut speeds: Vec<f64> = used
         .iter()
-        .map(|&r| {
-            let v = intended_velocity(&batch.rows[r]);
-            v.iter().map(|x| x * x).sum::<f64>().sqrt()
-        })
+        .map(|&r| norm(&intended_velocity(&batch.rows[r])))
         .filter(|s| *s > 0.0)
         .collect();
     if speeds.is_empty() {
@@ -266,7 +268,7 @@ pub fn speed_floor(batch: &Batch, used: &[usize]) -> f64 {
 /// raised to `floor` when it is slower (zero inside the target stays zero).
 pub fn labelled_velocity(row: &BatchRow, floor: f64) -> [f64; MAX_TASK_DIMS] {
     let mut v = intended_velocity(row);
-    let speed = v.iter().map(|x| x * x).sum::<f64>().sqrt();
+    let speed = norm(&v);
     if speed > 0.0 && speed < floor {
         for x in &mut v {
             *x *= floor / speed;

@@ -137,6 +137,13 @@ pub fn run_verb(args: &Args) -> Result<()> {
         }),
         _ => None,
     };
+    let drift = args.world.drift()?;
+    if drift.is_none() && args.world_from_min > 0.0 {
+        bail!(
+            "--world-from-min {}: the world does not change without --drift-gain, --silent, --noisy, --overdispersion or --pd-change-deg",
+            args.world_from_min
+        );
+    }
     let setup = ClosedLoopSetup {
         decoderd: exe.as_deref(),
         config: args.config.as_deref(),
@@ -156,7 +163,7 @@ pub fn run_verb(args: &Args) -> Result<()> {
         },
         array_seed: args.array_seed,
         time_scale: args.time_scale,
-        drift: args.world.drift()?,
+        drift,
         minutes: args.minutes,
         world_from_min: args.world_from_min,
     };

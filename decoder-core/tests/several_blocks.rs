@@ -150,3 +150,181 @@ fn folds_cut_at_the_edge_and_blocks_that_differ_are_refused_by_name() {
         "{e}"
     );
 }
+
+/// `b` with the baselines of its even channels raised by `by` counts a bin:
+/// the same array on a later day.
+fn moved(b: &Block, by: u16) -> Block {
+    let n = b.n_channels;
+    let mut out = b.clone();
+    for (i, c) in out.counts.iter_mut().enumerate() {
+        if (i % n) % 2 == 0 {
+            *c += by;
+        }
+    }
+    out
+}
+
+/// R² of vel_x and vel_y pooled, decoding `test` from each model's start.
+fn decoded_r2(model: &decoder_core::decoders::DecoderModel, test: &Block) -> f64 {
+    use decoder_core::engine::pipeline::DecodePipeline;
+    use decoder_core::fit::metrics::ScoreSums;
+    let mut p = DecodePipeline::from_decoder(model, test.bin_width, true).unwrap();
+    let kin = test.kinematics.as_ref().unwrap();
+    let mut sums = ScoreSums::default();
+    for t in 0..test.n_bins {
+        let out = p.step(t as u64, test.bin_counts(t));
+        for (dim, col) in [2, 3].into_iter().enumerate() {
+            sums.add(kin.get(t, col), out.estimate[dim]);
+        }
+    }
+    sums.r2()
+}
+
+/// Per-block normalisation: each block keeps its own baselines, the model
+/// decodes with the last block's, the tuning is fitted within blocks.
+#[test]
+fn per_block_normalisation_keeps_the_last_blocks_baselines_and_decodes_it_better() {
+    use decoder_core::decoders::DecoderModel;
+    let yesterday = block(11, 2.0);
+    let today = moved(&block(12, 1.0), 3);
+    let later_today = moved(&block(13, 1.0), 3);
+    let j = joined(&yesterday, &today);
+    let pooled_opts = KalmanFitOptions::default();
+    let per_block_opts = KalmanFitOptions {
+        per_block: true,
+        ..KalmanFitOptions::default()
+    };
+    let pooled = fit_kalman(&j, &pooled_opts).unwrap().0;
+    let per_block = fit_kalman(&j, &per_block_opts).unwrap().0;
+    // The offset is today's mean count, exactly.
+    assert_eq!(per_block.count_offset, per_block_means(&today, 0));
+    let (r2_pooled, r2_per_block) = (
+        decoded_r2(&DecoderModel::Kalman(pooled), &later_today),
+        decoded_r2(&DecoderModel::Kalman(per_block), &later_today),
+    );
+    assert!(
+        r2_per_block > r2_pooled + 0.05,
+        "R² later today: per-block {r2_per_block:.3}, pooled {r2_pooled:.3}"
+    );
+
+    // The Wiener filter's intercept absorbs a shift of its inputs'
+    // means, so it gains less here; it keeps today's means as its
+    // baselines and does not decode worse.
+    let wiener = |per_block| {
+        fit_wiener(
+            &j,
+            &WienerFitOptions {
+                per_block,
+                ..WienerFitOptions::default()
+            },
+        )
+        .unwrap()
+    };
+    let (w_pooled, w_per_block) = (wiener(false), wiener(true));
+    // Over its rows with a full history (taps 5: from the fifth bin).
+    assert_eq!(w_per_block.mean_counts, per_block_means(&today, 4));
+    let (r2_pooled, r2_per_block) = (
+        decoded_r2(&DecoderModel::Wiener(w_pooled), &later_today),
+        decoded_r2(&DecoderModel::Wiener(w_per_block), &later_today),
+    );
+    assert!(
+        r2_per_block >= r2_pooled,
+        "Wiener R² later today: per-block {r2_per_block:.3}, pooled {r2_pooled:.3}"
+    );
+}
+
+/// Each channel's mean count over the block's bins from `from`.
+fn per_block_means(b: &Block, from: usize) -> Vec<f64> {
+    (0..b.n_channels)
+        .map(|ch| {
+            (from..b.n_bins)
+                .map(|t| f64::from(b.bin_counts(t)[ch]))
+                .sum::<f64>()
+                / (b.n_bins - from) as f64
+        })
+        .collect()
+}
+
+/// On one block, an intercept per block is the one intercept the constant
+/// state component already fits (Frisch–Waugh–Lovell): the same model as
+/// mean-centred counts, to rounding; and the Wiener filter likewise.
+#[test]
+fn per_block_normalisation_of_a_single_block_is_the_usual_fit() {
+    use decoder_core::fit::kalman::CountNormalisation;
+    let b = block(14, 1.5);
+    let usual = fit_kalman(
+        &b,
+        &KalmanFitOptions {
+            count_normalisation: CountNormalisation::MeanCentred,
+            ..KalmanFitOptions::default()
+        },
+    )
+    .unwrap()
+    .0;
+    let per_block = fit_kalman(
+        &b,
+        &KalmanFitOptions {
+            per_block: true,
+            ..KalmanFitOptions::default()
+        },
+    )
+    .unwrap()
+    .0;
+    let close = |what: &str, a: &[f64], b: &[f64]| {
+        for (i, (x, y)) in a.iter().zip(b).enumerate() {
+            assert!(
+                (x - y).abs() <= 1e-9 * y.abs() + 1e-11,
+                "{what}[{i}]: {x} vs {y}"
+            );
+        }
+    };
+    close("H", &per_block.h.data, &usual.h.data);
+    close("offset", &per_block.count_offset, &usual.count_offset);
+    close("A", &per_block.a.data, &usual.a.data);
+    let w = |per_block| {
+        fit_wiener(
+            &b,
+            &WienerFitOptions {
+                per_block,
+                ..WienerFitOptions::default()
+            },
+        )
+        .unwrap()
+    };
+    close(
+        "Wiener weights",
+        &w(true).weights.data,
+        &w(false).weights.data,
+    );
+}
+
+/// Cross-validation with per-block normalisation decodes each held-out
+/// segment with its own block's baselines: on two blocks whose baselines
+/// differ it scores well above the pooled fit.
+#[test]
+fn cross_validation_with_per_block_normalisation_uses_each_blocks_baselines() {
+    use decoder_core::fit::evaluate::{DecoderSpec, cross_validate};
+    use decoder_core::fit::point_process::OneAfterAnother;
+    let a = block(15, 1.5);
+    let b = moved(&block(16, 1.5), 4);
+    let j = joined(&a, &b);
+    let score = |per_block| {
+        let e = cross_validate(
+            &j,
+            &[DecoderSpec::Kalman(KalmanFitOptions {
+                per_block,
+                ..KalmanFitOptions::default()
+            })],
+            4,
+            &OneAfterAnother,
+            |_, _| {},
+        )
+        .unwrap();
+        e.decoders[0].mean.iter().map(|s| s.r2).sum::<f64>() / 2.0
+    };
+    let (pooled, per_block) = (score(false), score(true));
+    assert!(
+        per_block > pooled + 0.05,
+        "cross-validated R²: per-block {per_block:.3}, pooled {pooled:.3}"
+    );
+}

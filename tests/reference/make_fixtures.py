@@ -47,6 +47,14 @@ Writes, into the directory given as the only argument:
                           forward recursion (Rabiner 1989) written out in
                           numpy over those posteriors, and sklearn's
                           roc_auc_score of the filtered probability
+  blocks/a, blocks/b      two session directories of one simulated array
+                          whose baselines moved between them (each
+                          channel's rate times a factor in 0.6..1.8)
+  per_block_*.npy         least squares with an intercept per block
+                          (numpy.linalg.lstsq on the state and one
+                          indicator column per block): the Kalman
+                          observation model on raw and on z-scored counts
+                          with a ridge, and the Wiener weights
   versions.txt            the versions that produced all of this
 
 The data are synthetic and seeded; nothing here is recorded data.
@@ -432,6 +440,7 @@ def main(out):
         np.save(os.path.join(out, f"gof_glm_fitted_coef_{seed}.npy"), fitted)
 
     click_fixtures(out)
+    per_block_fixtures(out)
 
     with open(os.path.join(out, "versions.txt"), "w") as f:
         f.write(f"python {sys.version.split()[0]}\n")
@@ -485,6 +494,100 @@ def click_fixtures(out):
     np.save(os.path.join(out, "click_forward.npy"), forward)
     # The area under the ROC curve of the filtered probability, bin by bin.
     np.save(os.path.join(out, "click_auc.npy"), np.array([roc_auc_score(labels, forward)]))
+
+
+PB_T = (1500, 1000)   # bins of blocks a and b
+PB_RIDGE = 5.0
+
+
+def per_block_fixtures(out):
+    """Two blocks of one array (same tuning) whose baselines moved between
+    them, and least squares with an intercept per block on them."""
+    rng = np.random.default_rng(SEED + 7)
+    base = np.log(rng.uniform(8.0, 30.0, size=N) * DT)
+    pd = rng.uniform(0.0, 2 * np.pi, size=N)
+    depth = rng.uniform(0.02, 0.06, size=N)
+    beta = np.column_stack([depth * np.cos(pd), depth * np.sin(pd)])
+    moved = np.log(rng.uniform(0.6, 1.8, size=N))
+    blocks = []
+    for name, t_b, shift in (("a", PB_T[0], 0.0), ("b", PB_T[1], 1.0)):
+        vel = np.zeros((t_b, 2))
+        for t in range(1, t_b):
+            vel[t] = 0.95 * vel[t - 1] + rng.normal(0.0, 2.0, size=2)
+        pos = np.cumsum(vel * DT, axis=0) + 3.0 * shift
+        kin = np.column_stack([pos, vel])
+        rate = np.exp(base[None, :] + shift * moved[None, :] + vel @ beta.T)
+        counts = rng.poisson(rate).astype(np.int32)
+        assert (counts.sum(axis=0) > 0).all(), "every channel must fire"
+        path = os.path.join(out, "blocks", name)
+        os.makedirs(path, exist_ok=True)
+        np.save(os.path.join(path, "counts.npy"), counts)
+        np.save(os.path.join(path, "kinematics.npy"), kin)
+        with open(os.path.join(path, "manifest.toml"), "w") as f:
+            f.write("version = 1\n")
+            f.write(f"bin_ms = {BIN_MS}\n")
+            f.write('kinematics = ["pos_x", "pos_y", "vel_x", "vel_y"]\n')
+            f.write('notes = "reference fixture, synthetic, seed %d, block %s"\n' % (SEED + 7, name))
+        blocks.append((counts.astype(np.float64), kin))
+
+    def indicators(lengths):
+        d = np.zeros((sum(lengths), len(lengths)))
+        at = 0
+        for k, n in enumerate(lengths):
+            d[at:at + n, k] = 1.0
+            at += n
+        return d
+
+    # The Kalman observation model: counts (each block's own scale when
+    # z-scored) on the four kinematics and an indicator per block, the
+    # ridge as sqrt(λ)·I rows on the kinematics only.
+    for name, ridge, z in (("plain", 0.0, False), ("ridge_z", PB_RIDGE, True)):
+        ys, xs = [], []
+        for counts, kin in blocks:
+            scale = counts.std(axis=0) if z else np.ones(N)
+            ys.append(counts / scale)
+            xs.append(kin)
+        Y, X = np.vstack(ys), np.vstack(xs)
+        D = indicators([len(y) for y in ys])
+        design = np.column_stack([X, D])
+        pen = np.column_stack([np.sqrt(ridge) * np.eye(4), np.zeros((4, 2))])
+        coef = np.linalg.lstsq(
+            np.vstack([design, pen]), np.vstack([Y, np.zeros((4, N))]), rcond=None
+        )[0]
+        E = Y - design @ coef
+        last_counts = blocks[-1][0]
+        offset = last_counts.mean(axis=0)
+        scale = last_counts.std(axis=0) if z else np.ones(N)
+        # The model decodes (y - offset) / scale = H_kin x + c: c is the last
+        # block's intercept less its offset, in the same units.
+        c = coef[-1] - offset / scale
+        np.save(os.path.join(out, f"per_block_{name}_H.npy"), np.column_stack([coef[:4].T, c]))
+        np.save(os.path.join(out, f"per_block_{name}_Q.npy"), E.T @ E / len(Y))
+        np.save(os.path.join(out, f"per_block_{name}_offset.npy"), offset)
+        np.save(os.path.join(out, f"per_block_{name}_scale.npy"), scale)
+
+    # The Wiener weights: velocity on the lagged counts of each block (rows
+    # from its first full history) and an indicator per block; intercept
+    # (the last block's) first.
+    lagged, targets = [], []
+    for counts, kin in blocks:
+        t_b = len(counts)
+        lagged.append(np.column_stack([
+            counts[WIENER_TAPS - 1 - a:t_b - a] for a in range(WIENER_TAPS)
+        ]))
+        targets.append(kin[WIENER_TAPS - 1:, 2:4])
+    F, Yw = np.vstack(lagged), np.vstack(targets)
+    D = indicators([len(f) for f in lagged])
+    design = np.column_stack([F, D])
+    f = F.shape[1]
+    pen = np.column_stack([np.sqrt(WIENER_RIDGE) * np.eye(f), np.zeros((f, 2))])
+    coef = np.linalg.lstsq(
+        np.vstack([design, pen]), np.vstack([Yw, np.zeros((f, 2))]), rcond=None
+    )[0]
+    np.save(
+        os.path.join(out, "per_block_wiener_weights.npy"),
+        np.column_stack([coef[-1], coef[:f].T]),
+    )
 
 
 if __name__ == "__main__":

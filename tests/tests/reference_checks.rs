@@ -457,6 +457,7 @@ fn wiener_weights_equal_sklearn_ridge_on_the_lagged_design() {
             taps: 3,
             lag_bins: 0,
             ridge: 5.0,
+            per_block: false,
         },
     )
     .unwrap();
@@ -728,5 +729,118 @@ fn click_decoder_equals_sklearn_lda_and_the_numpy_forward_recursion() {
         &fixture("click_auc.npy").1,
         1e-12,
         0.0,
+    );
+}
+
+/// Two blocks of one array whose baselines moved between them
+/// (`blocks/a`, `blocks/b`), joined as `train --session a --session b`
+/// joins them, with per-block normalisation.
+fn per_block_fit(options: KalmanFitOptions) -> KalmanModel {
+    use decoder_core::formats::block_rows::{BlockRows, Joined};
+    let dir = reference_dir().join("blocks");
+    let a = Block::read(&dir.join("a")).expect("block a imports");
+    let b = Block::read(&dir.join("b")).expect("block b imports");
+    let joined = Joined::new(vec![
+        ("a".into(), &a as &(dyn BlockRows + Sync)),
+        ("b".into(), &b as &(dyn BlockRows + Sync)),
+    ])
+    .unwrap();
+    fit_kalman(
+        &joined,
+        &KalmanFitOptions {
+            per_block: true,
+            ..options
+        },
+    )
+    .unwrap()
+    .0
+}
+
+fn assert_per_block_matches(fit: &str, model: &KalmanModel) {
+    let p = |k: &str| format!("per_block_{fit}_{k}.npy");
+    assert_close(
+        &format!("per-block {fit} H"),
+        &model.h.data,
+        &mat(&p("H")).data,
+        1e-9,
+        FIT_ATOL,
+    );
+    let ObservationNoise::Full(q) = &model.q else {
+        panic!("full Q expected")
+    };
+    assert_close(
+        &format!("per-block {fit} Q"),
+        &q.data,
+        &mat(&p("Q")).data,
+        1e-9,
+        FIT_ATOL,
+    );
+    assert_close(
+        &format!("per-block {fit} offset"),
+        &model.count_offset,
+        &fixture(&p("offset")).1,
+        1e-12,
+        1e-12,
+    );
+    assert_close(
+        &format!("per-block {fit} scale"),
+        &model.count_scale,
+        &fixture(&p("scale")).1,
+        1e-12,
+        1e-12,
+    );
+}
+
+/// Reference: numpy.linalg.lstsq of the counts on the state and one
+/// indicator column per block (least squares with an intercept per block),
+/// raw counts, no penalty. H's constant column is the last block's
+/// intercept less its mean count, since the model subtracts that mean.
+#[test]
+fn per_block_normalisation_equals_numpy_least_squares_with_an_intercept_per_block() {
+    let model = per_block_fit(options(&FULL_STATE, 0.0, CountNormalisation::None));
+    assert_per_block_matches("plain", &model);
+}
+
+/// Reference: the same with each block's counts divided by that block's
+/// standard deviation, and the ridge (rows √λ·I on the kinematics only).
+#[test]
+fn per_block_z_scoring_with_a_ridge_equals_numpy_least_squares() {
+    let model = per_block_fit(options(&FULL_STATE, 5.0, CountNormalisation::ZScored));
+    assert_per_block_matches("ridge_z", &model);
+}
+
+/// Reference: numpy.linalg.lstsq of velocity on each block's lagged counts
+/// (3 taps, rows from the block's first full history) and one indicator per
+/// block, ridge rows √5·I on the weights; the last block's intercept first.
+#[test]
+fn per_block_wiener_weights_equal_numpy_least_squares_with_an_intercept_per_block() {
+    use decoder_core::fit::wiener::{WienerFitOptions, fit_wiener};
+    use decoder_core::formats::block_rows::{BlockRows, Joined};
+    let dir = reference_dir().join("blocks");
+    let a = Block::read(&dir.join("a")).unwrap();
+    let b = Block::read(&dir.join("b")).unwrap();
+    let joined = Joined::new(vec![
+        ("a".into(), &a as &(dyn BlockRows + Sync)),
+        ("b".into(), &b as &(dyn BlockRows + Sync)),
+    ])
+    .unwrap();
+    let m = fit_wiener(
+        &joined,
+        &WienerFitOptions {
+            taps: 3,
+            ridge: 5.0,
+            per_block: true,
+            ..WienerFitOptions::default()
+        },
+    )
+    .unwrap();
+    let want = mat("per_block_wiener_weights.npy");
+    assert_eq!((m.weights.rows, m.weights.cols), (want.rows, want.cols));
+    assert_close(
+        "per-block Wiener weights vs numpy",
+        &m.weights.data,
+        &want.data,
+        1e-9,
+        1e-12,
     );
 }

@@ -19,6 +19,7 @@ struct RawTrainConfig {
     lag_bins: Option<i64>,
     ridge: Option<f64>,
     folds: Option<i64>,
+    per_block_normalisation: Option<bool>,
     #[serde(default)]
     kalman: RawKalman,
     #[serde(default)]
@@ -67,6 +68,9 @@ pub struct TrainConfig {
     pub wiener: WienerFitOptions,
     pub point_process: PointProcessFitOptions,
     pub folds: usize,
+    /// Per-block normalisation for the Kalman and Wiener fits; the
+    /// point-process fit has no such option and refuses it.
+    pub per_block: bool,
 }
 
 impl Default for TrainConfig {
@@ -76,6 +80,7 @@ impl Default for TrainConfig {
             wiener: WienerFitOptions::default(),
             point_process: PointProcessFitOptions::default(),
             folds: 5,
+            per_block: false,
         }
     }
 }
@@ -160,6 +165,9 @@ impl TrainConfig {
         }
         if let Some(folds) = raw.folds {
             cfg.folds = bounded(folds, "folds", 2, 100)?;
+        }
+        if let Some(p) = raw.per_block_normalisation {
+            cfg.set_per_block(p);
         }
         let k = raw.kalman;
         if let Some(state) = k.state {
@@ -332,6 +340,14 @@ impl TrainConfig {
         self.kalman.lag_bins = lag;
         self.wiener.lag_bins = lag;
         Ok(())
+    }
+
+    /// Per-block normalisation on or off (`per_block_normalisation`,
+    /// `train --per-block`).
+    pub fn set_per_block(&mut self, on: bool) {
+        self.per_block = on;
+        self.kalman.per_block = on;
+        self.wiener.per_block = on;
     }
 
     pub fn override_ridge(&mut self, ridge: f64) -> Result<(), ConfigError> {

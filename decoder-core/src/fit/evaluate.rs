@@ -7,6 +7,8 @@
 //! over the block's rows, so evaluation of a block of any length holds a
 //! few rows, the folds' sums and models, not the block.
 
+use std::ops::Range;
+
 use serde::Serialize;
 
 use crate::decoders::DecoderModel;
@@ -17,12 +19,16 @@ use crate::fit::TrainError;
 use crate::fit::folds::FoldPlan;
 use crate::fit::goodness::{ChannelFit, ChannelFitSums};
 use crate::fit::kalman::{
-    KalmanFitOptions, KalmanStats, check_options, fill_state, fit_from_stats, state_sources,
+    KalmanFitOptions, KalmanStats, check_options, fill_state, fit_from_block_stats, fit_from_stats,
+    state_sources,
 };
 use crate::fit::metrics::{ScoreSums, Scores, mean_scores};
 use crate::fit::point_process::{ChannelFits, PointProcessFitOptions, fit_point_process_with};
 use crate::fit::rows::{SegmentWalk, Without, each_row};
-use crate::fit::wiener::{WienerFitOptions, WienerStats, fit_wiener_from_stats, output_columns};
+use crate::fit::wiener::{
+    WienerFitOptions, WienerStats, fit_wiener_from_block_stats, fit_wiener_from_stats,
+    output_columns,
+};
 use crate::formats::block_rows::{BlockInfo, BlockRows};
 
 #[derive(Clone, Debug, PartialEq)]
@@ -137,12 +143,39 @@ fn fit_per_fold(
     plan: &FoldPlan,
     fits: &dyn ChannelFits,
     on_fold: &mut dyn FnMut(&str, usize),
-) -> Result<Vec<DecoderModel>, TrainError> {
+) -> Result<FoldModels, TrainError> {
     let k = plan.k();
     // Fold f trains on the sums of every other fold's pieces.
-    match spec {
+    let models: Result<Vec<DecoderModel>, TrainError> = match spec {
         DecoderSpec::Kalman(opts) => {
             let sources = check_options(info, opts)?;
+            if opts.per_block {
+                // Each fold's sums kept per block: the blocks are centred
+                // apart, so they are summed over folds first. One model
+                // per block, each with that block's baselines.
+                let (groups, n_blocks) = by_fold_and_block(info, plan);
+                let parts =
+                    KalmanStats::gather(session, &sources, opts.lag_bins, opts.q_form, &groups)?;
+                let mut models = Vec::with_capacity(k * n_blocks);
+                for f in 0..k {
+                    let train = training_blocks(
+                        &parts,
+                        n_blocks,
+                        f,
+                        || KalmanStats::new(sources.len(), info.n_channels, opts.q_form),
+                        KalmanStats::add_assign,
+                    );
+                    for b in 0..n_blocks {
+                        let (m, _) = fit_from_block_stats(&train, opts, info.bin_width, Some(b))?;
+                        models.push(DecoderModel::Kalman(m));
+                    }
+                    on_fold(spec.name(), f);
+                }
+                return Ok(FoldModels {
+                    models,
+                    per_fold: n_blocks,
+                });
+            }
             let parts =
                 KalmanStats::gather(session, &sources, opts.lag_bins, opts.q_form, &plan.pieces)?;
             (0..k)
@@ -162,6 +195,30 @@ fn fit_per_fold(
         }
         DecoderSpec::Wiener(opts) => {
             let cols = output_columns(info, &opts.outputs)?;
+            if opts.per_block {
+                let (groups, n_blocks) = by_fold_and_block(info, plan);
+                let parts = WienerStats::gather(session, &cols, opts.taps, opts.lag_bins, &groups)?;
+                let mut models = Vec::with_capacity(k * n_blocks);
+                for f in 0..k {
+                    let train = training_blocks(
+                        &parts,
+                        n_blocks,
+                        f,
+                        || WienerStats::new(info.n_channels, opts.taps, cols.len()),
+                        WienerStats::add_assign,
+                    );
+                    for b in 0..n_blocks {
+                        let m =
+                            fit_wiener_from_block_stats(&train, opts, info.n_channels, Some(b))?;
+                        models.push(DecoderModel::Wiener(m));
+                    }
+                    on_fold(spec.name(), f);
+                }
+                return Ok(FoldModels {
+                    models,
+                    per_fold: n_blocks,
+                });
+            }
             let parts =
                 WienerStats::gather(session, &cols, opts.taps, opts.lag_bins, &plan.pieces)?;
             (0..k)
@@ -189,7 +246,64 @@ fn fit_per_fold(
                 model
             })
             .collect(),
+    };
+    Ok(FoldModels {
+        models: models?,
+        per_fold: 1,
+    })
+}
+
+/// The models cross-validation fitted: `per_fold` a fold (one per block
+/// with per-block normalisation, each with its block's baselines; else
+/// one), fold f's first at `f · per_fold`.
+struct FoldModels {
+    models: Vec<DecoderModel>,
+    per_fold: usize,
+}
+
+impl FoldModels {
+    /// The model that decodes row `t`, held out by fold `f`.
+    fn index(&self, info: &BlockInfo, f: usize, t: usize) -> usize {
+        if self.per_fold == 1 {
+            return f;
+        }
+        let block = info.block_starts.iter().filter(|&&s| s <= t).count();
+        f * self.per_fold + block.min(self.per_fold - 1)
     }
+}
+
+/// Every fold's pieces split by block: group `f · blocks + b` holds fold
+/// f's pieces in block b. Returns the groups and the number of blocks.
+fn by_fold_and_block(info: &BlockInfo, plan: &FoldPlan) -> (Vec<Vec<Range<usize>>>, usize) {
+    let n_blocks = info.block_starts.len() + 1;
+    let groups = plan
+        .pieces
+        .iter()
+        .flat_map(|pieces| info.by_block(pieces))
+        .collect();
+    (groups, n_blocks)
+}
+
+/// Fold f's training sums per block: for each block, the sum of its
+/// parts in every other fold (`parts` grouped as [`by_fold_and_block`]).
+fn training_blocks<S>(
+    parts: &[S],
+    n_blocks: usize,
+    f: usize,
+    empty: impl Fn() -> S,
+    add: impl Fn(&mut S, &S),
+) -> Vec<S> {
+    (0..n_blocks)
+        .map(|b| {
+            let mut sum = empty();
+            for (g, p) in parts.iter().enumerate() {
+                if g / n_blocks != f && g % n_blocks == b {
+                    add(&mut sum, p);
+                }
+            }
+            sum
+        })
+        .collect()
 }
 
 /// The held-out segments of every fold, tagged by fold, for one walk.
@@ -275,12 +389,13 @@ fn decode_held_out(
     session: &dyn BlockRows,
     info: &BlockInfo,
     plan: &FoldPlan,
-    models: &[DecoderModel],
+    models: &FoldModels,
     cols: &[usize],
     lag: usize,
 ) -> Result<HeldOut, TrainError> {
     let d = cols.len();
     let mut pipelines = models
+        .models
         .iter()
         .map(|m| DecodePipeline::from_decoder(m, info.bin_width, true))
         .collect::<Result<Vec<_>, _>>()?;
@@ -294,11 +409,13 @@ fn decode_held_out(
         let Some((seg, f)) = walk.at(t) else {
             return;
         };
+        // A held-out segment lies in one block (folds are cut at edges).
+        let m = models.index(info, f, seg.start);
         if t == seg.start {
-            pipelines[f].reset();
+            pipelines[m].reset();
         }
         if t + lag < seg.end {
-            let out = pipelines[f].step(t as u64, counts);
+            let out = pipelines[m].step(t as u64, counts);
             let at = (t % (lag + 1)) * d;
             recent[at..at + d].copy_from_slice(&out.estimate[..d]);
         }
@@ -341,7 +458,7 @@ pub fn cross_validate(
     for spec in specs {
         let cols = output_columns(&info, spec.outputs())?;
         let models = fit_per_fold(session, &info, spec, &plan, fits, &mut on_fold)?;
-        if let Some(g) = goodness_of_fit(session, &info, spec, &plan, &models)? {
+        if let Some(g) = goodness_of_fit(session, &info, spec, &plan, &models.models)? {
             goodness.push(g);
         }
         let HeldOut {

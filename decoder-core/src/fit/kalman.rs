@@ -63,6 +63,12 @@ pub struct KalmanFitOptions {
     /// Fix each pos_* row of A to integrate the matching vel_* over one bin.
     pub physical_coupling: bool,
     pub steady_state: Option<SteadyStateOptions>,
+    /// Per-block normalisation: with several blocks trained as one, each
+    /// block's counts are centred on (and, z-scored, scaled by) its own
+    /// means, so every block has its own baselines; the model keeps the
+    /// last block's. See [`fit_from_block_stats`].
+    #[serde(default)]
+    pub per_block: bool,
 }
 
 impl Default for KalmanFitOptions {
@@ -78,6 +84,7 @@ impl Default for KalmanFitOptions {
             q_form: QForm::Full,
             physical_coupling: false,
             steady_state: None,
+            per_block: false,
         }
     }
 }
@@ -312,6 +319,16 @@ pub fn fit_kalman_segments(
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
     let info = session.info();
     let sources = check_options(&info, options)?;
+    if options.per_block {
+        let blocks = KalmanStats::gather(
+            session,
+            &sources,
+            options.lag_bins,
+            options.q_form,
+            &info.by_block(segments),
+        )?;
+        return fit_from_block_stats(&blocks, options, info.bin_width, None);
+    }
     let stats = KalmanStats::gather(
         session,
         &sources,
@@ -466,6 +483,48 @@ pub fn fit_from_stats(
         }
     };
 
+    let (a, w, x0, p0) = state_model(stats, options, bin_width)?;
+    finish(
+        options,
+        Fitted {
+            a,
+            w,
+            h,
+            q,
+            x0,
+            p0,
+            offset,
+            scale,
+            excluded,
+        },
+        stats,
+    )
+}
+
+/// The fitted parameters before they become a model.
+struct Fitted {
+    a: DMatrix<f64>,
+    w: Mat,
+    h: DMatrix<f64>,
+    q: ObservationNoise,
+    x0: Vec<f64>,
+    p0: Mat,
+    offset: Vec<f64>,
+    scale: Vec<f64>,
+    excluded: Vec<usize>,
+}
+
+/// The state model from the kinematics alone: A and W by least squares
+/// over the transitions, x0 and P0 the mean and covariance of the state.
+fn state_model(
+    stats: &KalmanStats,
+    options: &KalmanFitOptions,
+    bin_width: crate::bin_width::BinWidth,
+) -> Result<(DMatrix<f64>, Mat, Vec<f64>, Mat), TrainError> {
+    let d = stats.d;
+    let t = stats.gram.n_rows as f64;
+    let constant_idx = options.state.iter().position(|s| s == CONSTANT);
+    let sxx = to_dm(&stats.sxx);
     // State model.
     let s11 = to_dm(&stats.s11);
     let s21 = to_dm(&stats.s21);
@@ -513,26 +572,34 @@ pub fn fit_from_stats(
     if let Some(c) = constant_idx {
         x0[c] = 1.0;
     }
+    Ok((a, w, x0, p0))
+}
 
+/// The model, validated, with its steady-state gain when asked for.
+fn finish(
+    options: &KalmanFitOptions,
+    f: Fitted,
+    stats: &KalmanStats,
+) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
     let mut model = KalmanModel {
         state: options.state.clone(),
         outputs: options.outputs.clone(),
-        a: Mat::from_dmatrix(&a),
-        w,
-        h: Mat::from_dmatrix(&h),
-        q,
-        x0,
-        p0,
-        count_offset: offset,
-        count_scale: scale,
+        a: Mat::from_dmatrix(&f.a),
+        w: f.w,
+        h: Mat::from_dmatrix(&f.h),
+        q: f.q,
+        x0: f.x0,
+        p0: f.p0,
+        count_offset: f.offset,
+        count_scale: f.scale,
         steady: None,
     };
     model.validate()?;
     // Building the runtime checks that Q can be inverted.
     crate::decoders::kalman::filter::information_terms(&model)?;
     let mut report = KalmanFitReport {
-        excluded_channels: excluded,
-        observation_bins: t_obs,
+        excluded_channels: f.excluded,
+        observation_bins: stats.gram.n_rows,
         transition_bins: stats.n_transitions,
         steady_state_iterations: None,
     };
@@ -542,4 +609,196 @@ pub fn fit_from_stats(
         model.steady = Some(gain);
     }
     Ok((model, report))
+}
+
+/// The fit with per-block normalisation, from each block's sums (`blocks`
+/// in order; a block with no training rows is passed over).
+///
+/// Each block has its own baseline per channel: the observation model is
+/// y = H x + b_k + noise in block k, which least squares fits by centring
+/// counts and state on each block's own means (Frisch–Waugh–Lovell), so H
+/// comes from the within-block covariances alone and Q from the residuals
+/// about each block's line. With z-scoring, each block's counts are also
+/// divided by that block's standard deviation. The model decodes with the
+/// last block's baselines: `count_offset` its means (`count_scale` its
+/// standard deviations), and the constant column of H its intercept,
+/// −H·x̄ of its state. The state model (A, W, x0, P0) comes from the
+/// blocks' kinematics pooled, as without the option.
+///
+/// `keep` names the block whose baselines the model decodes with instead
+/// of the last (cross-validation decodes each held-out segment with its
+/// own block's); a block with no training rows cannot lend its baselines,
+/// and the last block with rows does.
+pub fn fit_from_block_stats(
+    blocks: &[KalmanStats],
+    options: &KalmanFitOptions,
+    bin_width: crate::bin_width::BinWidth,
+    keep: Option<usize>,
+) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
+    let kept = keep
+        .and_then(|k| blocks.get(k))
+        .filter(|b| b.gram.n_rows > 0);
+    let blocks: Vec<&KalmanStats> = blocks.iter().filter(|b| b.gram.n_rows > 0).collect();
+    let Some(last) = kept.or(blocks.last().copied()) else {
+        return Err(TrainError::TooFewBins { bins: 0, needed: 2 });
+    };
+    let (d, n) = (last.d, last.n);
+    let mut pooled = KalmanStats::new(d, n, options.q_form);
+    for b in &blocks {
+        pooled.add_assign(b);
+    }
+    let t_obs = pooled.gram.n_rows;
+    if t_obs < (d as u64) + 2 || pooled.n_transitions < (d as u64) + 2 {
+        return Err(TrainError::TooFewBins {
+            bins: t_obs,
+            needed: d as u64 + 2,
+        });
+    }
+    let constant_idx = options.state.iter().position(|s| s == CONSTANT);
+    // The components H is fitted on: every one but the constant, whose
+    // column each block's centring empties.
+    let kin: Vec<usize> = (0..d).filter(|&i| Some(i) != constant_idx).collect();
+    let dk = kin.len();
+    let z_scored = options.count_normalisation == CountNormalisation::ZScored;
+
+    // Each block's per-channel mean and (z-scored) standard deviation.
+    let moments = |b: &KalmanStats| -> (Vec<f64>, Vec<f64>) {
+        let nb = b.gram.n_rows as f64;
+        (0..n)
+            .map(|ch| {
+                let mean = b.gram.sums[ch] as f64 / nb;
+                let centred = b.gram.centred_product(ch, ch);
+                let scale = if z_scored && centred != 0 {
+                    (centred as f64).sqrt() / nb
+                } else {
+                    1.0
+                };
+                (mean, scale)
+            })
+            .unzip()
+    };
+    let excluded: Vec<usize> = (0..n)
+        .filter(|&ch| blocks.iter().all(|b| b.gram.centred_product(ch, ch) == 0))
+        .collect();
+
+    // Within-block sums, in normalised units.
+    let mut syx = DMatrix::<f64>::zeros(n, dk);
+    let mut sxx = DMatrix::<f64>::zeros(dk, dk);
+    let full = options.q_form == QForm::Full;
+    let mut syy = if full {
+        DMatrix::<f64>::zeros(n, n)
+    } else {
+        DMatrix::<f64>::zeros(n, 1)
+    };
+    for b in &blocks {
+        let nb = b.gram.n_rows as f64;
+        let (_, scale) = moments(b);
+        let xbar: Vec<f64> = kin.iter().map(|&c| b.sx[c] / nb).collect();
+        for ch in 0..n {
+            for (kc, &c) in kin.iter().enumerate() {
+                syx[(ch, kc)] +=
+                    (b.syx.data[ch * d + c] - b.gram.sums[ch] as f64 * xbar[kc]) / scale[ch];
+            }
+        }
+        for (ka, &a) in kin.iter().enumerate() {
+            for (kb, &c) in kin.iter().enumerate() {
+                sxx[(ka, kb)] += b.sxx.data[a * d + c] - nb * xbar[ka] * xbar[kb];
+            }
+        }
+        for i in 0..n {
+            if full {
+                for j in i..n {
+                    let v = b.gram.centred_product(i, j) as f64 / nb / (scale[i] * scale[j]);
+                    syy[(i, j)] += v;
+                    if j != i {
+                        syy[(j, i)] += v;
+                    }
+                }
+            } else {
+                syy[(i, 0)] += b.gram.centred_product(i, i) as f64 / nb / (scale[i] * scale[i]);
+            }
+        }
+    }
+    let mut kxx = sxx.clone();
+    for i in 0..dk {
+        kxx[(i, i)] += options.ridge;
+    }
+    let names: Vec<String> = kin.iter().map(|&i| options.state[i].clone()).collect();
+    let mut h_kin = solve_spd(&kxx, &syx.transpose(), &names, "H")?.transpose();
+    for &ch in &excluded {
+        h_kin.row_mut(ch).fill(0.0);
+    }
+    // Residual sums about each block's line: Syy − H Syxᵀ − Syx Hᵀ + H Sxx Hᵀ.
+    let t = t_obs as f64;
+    let h_sxx = &h_kin * &sxx; // N × dk
+    let q = if full {
+        let mut q = Mat::zeros(n, n);
+        for i in 0..n {
+            for j in i..n {
+                let mut v = syy[(i, j)];
+                for c in 0..dk {
+                    v -= h_kin[(i, c)] * syx[(j, c)] + syx[(i, c)] * h_kin[(j, c)]
+                        - h_sxx[(i, c)] * h_kin[(j, c)];
+                }
+                v /= t;
+                q.set(i, j, v);
+                q.set(j, i, v);
+            }
+        }
+        for &ch in &excluded {
+            for k in 0..n {
+                q.set(ch, k, 0.0);
+                q.set(k, ch, 0.0);
+            }
+            q.set(ch, ch, 1.0);
+        }
+        ObservationNoise::Full(q)
+    } else {
+        let mut diag = vec![0.0; n];
+        for (i, v) in diag.iter_mut().enumerate() {
+            let mut r = syy[(i, 0)];
+            for c in 0..dk {
+                r -= 2.0 * h_kin[(i, c)] * syx[(i, c)] - h_sxx[(i, c)] * h_kin[(i, c)];
+            }
+            *v = r / t;
+        }
+        for &ch in &excluded {
+            diag[ch] = 1.0;
+        }
+        ObservationNoise::Diagonal(diag)
+    };
+
+    // The last block's baselines: its means (and scales) as the offset,
+    // and its intercept −H·x̄ in the constant column.
+    let (offset, scale) = moments(last);
+    let nl = last.gram.n_rows as f64;
+    let mut h = DMatrix::<f64>::zeros(n, d);
+    for (kc, &c) in kin.iter().enumerate() {
+        h.column_mut(c).copy_from(&h_kin.column(kc));
+    }
+    if let Some(c) = constant_idx {
+        for ch in 0..n {
+            h[(ch, c)] = -kin
+                .iter()
+                .enumerate()
+                .map(|(kc, &k)| h_kin[(ch, kc)] * last.sx[k] / nl)
+                .sum::<f64>();
+        }
+    }
+    let (a, w, x0, p0) = state_model(&pooled, options, bin_width)?;
+    finish(
+        options,
+        Fitted {
+            a,
+            w,
+            h,
+            q,
+            x0,
+            p0,
+            offset,
+            scale,
+            excluded,
+        },
+        &pooled,
+    )
 }

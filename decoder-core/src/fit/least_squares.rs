@@ -110,6 +110,26 @@ impl CountGram {
         (0..self.dim).map(|i| self.square_sum(i) as f64).collect()
     }
 
+    /// Σ c_i c_j, exact (either order of i and j).
+    pub fn product_sum(&self, i: usize, j: usize) -> u64 {
+        if i == j {
+            return self.square_sum(i);
+        }
+        assert!(
+            !self.diagonal_only,
+            "a diagonal-only gram has no off-diagonal sums"
+        );
+        let (i, j) = (i.min(j), i.max(j));
+        self.upper[i * self.dim + j]
+    }
+
+    /// n · Σ c_i c_j − Σ c_i · Σ c_j over the gram's n rows: n² times
+    /// the covariance of entries i and j, exact.
+    pub fn centred_product(&self, i: usize, j: usize) -> i128 {
+        i128::from(self.n_rows) * i128::from(self.product_sum(i, j))
+            - i128::from(self.sums[i]) * i128::from(self.sums[j])
+    }
+
     /// Σ c_i², exact.
     pub fn square_sum(&self, i: usize) -> u64 {
         if self.diagonal_only {

@@ -175,6 +175,7 @@ impl BlockRows for Without<'_> {
         info.edges.dedup();
         info.n_bins -= removed;
         info.edges.retain(|&e| e > 0 && e < info.n_bins);
+        info.block_starts = info.block_starts.iter().map(|&e| e - before(e)).collect();
         info.trials = None;
         info
     }

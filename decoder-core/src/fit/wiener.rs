@@ -25,6 +25,12 @@ pub struct WienerFitOptions {
     /// Counts of bin t predict the kinematics of bin t + lag_bins.
     pub lag_bins: usize,
     pub ridge: f64,
+    /// Per-block normalisation: each block of several trained as one has
+    /// its own intercept (its counts and kinematics centred on its own
+    /// means); the model keeps the last block's. See
+    /// [`fit_wiener_from_block_stats`].
+    #[serde(default)]
+    pub per_block: bool,
 }
 
 impl Default for WienerFitOptions {
@@ -34,6 +40,7 @@ impl Default for WienerFitOptions {
             taps: 5,
             lag_bins: 0,
             ridge: 1.0,
+            per_block: false,
         }
     }
 }
@@ -163,6 +170,16 @@ pub fn fit_wiener_segments(
     }
     let info = session.info();
     let cols = output_columns(&info, &options.outputs)?;
+    if options.per_block {
+        let blocks = WienerStats::gather(
+            session,
+            &cols,
+            options.taps,
+            options.lag_bins,
+            &info.by_block(segments),
+        )?;
+        return fit_wiener_from_block_stats(&blocks, options, info.n_channels, None);
+    }
     let stats = WienerStats::gather(
         session,
         &cols,
@@ -221,6 +238,83 @@ pub fn fit_wiener_from_stats(
         n_channels,
         weights: Mat::from_dmatrix(&w),
         mean_counts,
+    };
+    model
+        .validate()
+        .map_err(|e| TrainError::Model(ModelError::from(e)))?;
+    Ok(model)
+}
+
+/// The fit with per-block normalisation, from each block's sums (`blocks`
+/// in order; a block with no training rows is passed over): the weights
+/// from the within-block covariances of the lagged counts and the
+/// kinematics (each block centred on its own means, which is least
+/// squares with an intercept per block), the ridge on every weight; the
+/// intercept and `mean_counts` those of the last block.
+///
+/// `keep` names the block whose intercept the model keeps instead of the
+/// last, as for [`crate::fit::kalman::fit_from_block_stats`].
+pub fn fit_wiener_from_block_stats(
+    blocks: &[WienerStats],
+    options: &WienerFitOptions,
+    n_channels: usize,
+    keep: Option<usize>,
+) -> Result<WienerModel, TrainError> {
+    let kept = keep
+        .and_then(|k| blocks.get(k))
+        .filter(|b| b.gram.n_rows > 0);
+    let blocks: Vec<&WienerStats> = blocks.iter().filter(|b| b.gram.n_rows > 0).collect();
+    let t: u64 = blocks.iter().map(|b| b.gram.n_rows).sum();
+    let Some(last) = kept.or(blocks.last().copied()).filter(|_| t >= 2) else {
+        return Err(TrainError::TooFewBins { bins: t, needed: 2 });
+    };
+    let f = last.gram.dim;
+    let d_out = last.sy.len();
+    let mut g = DMatrix::<f64>::zeros(f, f);
+    let mut rhs = DMatrix::<f64>::zeros(f, d_out);
+    for b in &blocks {
+        let nb = b.gram.n_rows as f64;
+        for i in 0..f {
+            for j in i..f {
+                let v = b.gram.centred_product(i, j) as f64 / nb;
+                g[(i, j)] += v;
+                if j != i {
+                    g[(j, i)] += v;
+                }
+            }
+            let si = b.gram.sums[i] as f64;
+            for o in 0..d_out {
+                rhs[(i, o)] += b.sfy.data[i * d_out + o] - si * b.sy[o] / nb;
+            }
+        }
+    }
+    for i in 0..f {
+        g[(i, i)] += options.ridge;
+    }
+    let chol = nalgebra::Cholesky::new(g).ok_or_else(|| TrainError::Degenerate {
+        what: "Wiener weights",
+        problem: "the lagged counts are collinear within the blocks (silent or duplicated channels); raise ridge"
+            .into(),
+    })?;
+    let w = chol.solve(&rhs); // f × d_out
+    let nl = last.gram.n_rows as f64;
+    let mut weights = DMatrix::<f64>::zeros(d_out, f + 1);
+    for o in 0..d_out {
+        let mut intercept = last.sy[o] / nl;
+        for i in 0..f {
+            weights[(o, i + 1)] = w[(i, o)];
+            intercept -= w[(i, o)] * last.gram.sums[i] as f64 / nl;
+        }
+        weights[(o, 0)] = intercept;
+    }
+    let model = WienerModel {
+        outputs: options.outputs.clone(),
+        taps: options.taps,
+        n_channels,
+        weights: Mat::from_dmatrix(&weights),
+        mean_counts: (0..n_channels)
+            .map(|ch| last.gram.sums[ch] as f64 / nl)
+            .collect(),
     };
     model
         .validate()

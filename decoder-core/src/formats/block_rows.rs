@@ -34,6 +34,10 @@ pub struct BlockInfo {
     /// (several blocks trained as one, [`Joined`]): no fit pairs a row with
     /// one before its edge, and no history reaches across it.
     pub edges: Vec<usize>,
+    /// Valid rows at which each joined block after the first starts (a
+    /// subset of `edges`): where per-block normalisation keeps each block's
+    /// statistics apart.
+    pub block_starts: Vec<usize>,
 }
 
 impl BlockInfo {
@@ -50,6 +54,26 @@ impl BlockInfo {
         cuts.windows(2)
             .filter(|w| w[1] > w[0])
             .map(|w| w[0]..w[1])
+            .collect()
+    }
+
+    /// `segments` split by block: one group per block, in order (a group
+    /// may be empty), each segment cut where a block starts.
+    pub fn by_block(
+        &self,
+        segments: &[std::ops::Range<usize>],
+    ) -> Vec<Vec<std::ops::Range<usize>>> {
+        let mut cuts = vec![0];
+        cuts.extend(self.block_starts.iter().copied());
+        cuts.push(usize::MAX);
+        cuts.windows(2)
+            .map(|w| {
+                segments
+                    .iter()
+                    .map(|s| s.start.max(w[0])..s.end.min(w[1]))
+                    .filter(|s| s.start < s.end)
+                    .collect()
+            })
             .collect()
     }
 
@@ -134,6 +158,7 @@ impl BlockRows for Block {
                 (t, _) => t.clone(),
             },
             edges: Vec::new(),
+            block_starts: Vec::new(),
         }
     }
 
@@ -343,6 +368,7 @@ impl BlockFiles {
                 has_kinematics,
                 trials,
                 edges: Vec::new(),
+                block_starts: Vec::new(),
             },
             file_bins,
             has_valid,
@@ -587,6 +613,7 @@ impl BlockRows for Joined<'_> {
             .flat_map(|(i, &s)| std::iter::once(s).chain(i.edges.iter().map(move |e| e + s)))
             .filter(|&e| e > 0)
             .collect();
+        info.block_starts = starts.iter().copied().skip(1).collect();
         info
     }
 

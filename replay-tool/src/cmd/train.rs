@@ -65,6 +65,14 @@ pub struct Args {
     /// Ridge penalty λ; 0 fits without a penalty.
     #[arg(long)]
     pub ridge: Option<f64>,
+    /// Kalman and Wiener: per-block normalisation. With several --session
+    /// blocks, each block's counts are centred on their own means
+    /// (z-scored by their own deviations with
+    /// kalman.count_normalisation = "z-scored"), so each block keeps its
+    /// own baselines; the model decodes with the last block's. Same as
+    /// per_block_normalisation = true in the config.
+    #[arg(long)]
+    pub per_block: bool,
     /// Point-process only: fit encoding models without spike history.
     #[arg(long)]
     pub no_history: bool,
@@ -204,6 +212,14 @@ pub fn run(args: &Args) -> Result<()> {
     let mut cfg = config_with_overrides(args.config.as_deref(), args.lag, args.ridge)?;
     if args.no_history && args.decoder != DecoderKind::PointProcess {
         bail!("--no-history applies to --decoder point-process only");
+    }
+    if args.per_block {
+        cfg.set_per_block(true);
+    }
+    if cfg.per_block && args.decoder == DecoderKind::PointProcess {
+        bail!(
+            "per-block normalisation (--per-block, per_block_normalisation) applies to --decoder kalman and wiener; the point-process fit has one intercept per channel: train it without, or on one block"
+        );
     }
     if args.no_history {
         cfg.point_process.history = None;

@@ -318,6 +318,51 @@ fn several_sessions_train_one_decoder_and_the_model_names_each() {
         2,
     );
     assert!(err.contains("--refit") && err.contains("once"), "{err}");
+
+    // Per-block normalisation: recorded in the fit document, the offsets
+    // the last block's means; the point-process fit refuses it by name.
+    let per_block = dir.path().join("ab-per-block.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&a),
+        "--session",
+        p(&b),
+        "--decoder",
+        "kalman",
+        "--per-block",
+        "--no-cv",
+        "--out",
+        p(&per_block),
+    ]);
+    let shown: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&per_block), "--json"])).unwrap();
+    assert_eq!(shown["fit"]["options"]["per_block"], true, "{shown}");
+    let last = decoder_core::Block::read(&b).unwrap();
+    let mean0 = (0..last.n_bins)
+        .map(|t| f64::from(last.bin_counts(t)[0]))
+        .sum::<f64>()
+        / last.n_bins as f64;
+    assert_eq!(shown["count_offset"][0].as_f64().unwrap(), mean0);
+    let err = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&a),
+            "--session",
+            p(&b),
+            "--decoder",
+            "point-process",
+            "--per-block",
+            "--out",
+            p(&dir.path().join("z.model")),
+        ],
+        2,
+    );
+    assert!(
+        err.contains("per-block") && err.contains("point-process"),
+        "{err}"
+    );
 }
 
 /// `simulate` draws a world that changes when asked: the channels the

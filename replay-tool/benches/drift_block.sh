@@ -21,8 +21,13 @@ printf '[drift]\nenabled = false\n' >off.toml
 printf '[drift]\nenabled = true\n' >on.toml
 printf '[drift]\nenabled = true\ndead_min_rate_hz = 1e9\nnoisy_factor = 1e9\n' >track.toml
 printf '[drift]\nenabled = true\nbaseline_tau_s = 1e9\ncorrect_bias = false\n' >leave.toml
-for m in kalman wiener; do
-  "$tool" train --session calib --decoder "$m" --out "$m.model" >/dev/null
+# The Kalman filter twice: the default state (positions, velocities and a
+# constant) and a velocity-only state (velocities and a constant).
+printf '' >kalman.toml
+printf '[kalman]\nstate = ["vel_x", "vel_y", "1"]\n' >kalman-vel.toml
+printf '' >wiener.toml
+for m in kalman kalman-vel wiener; do
+  "$tool" train --session calib --decoder "${m%-vel}" --config "$m.toml" --out "$m.model" >/dev/null
   for s in clean drifted; do
     for c in off on track leave; do
       "$tool" replay --session "$s" --model "$m.model" --config "$c.toml" --out "$m-$s-$c.npy" >/dev/null
@@ -33,8 +38,8 @@ done
 import numpy as np
 def r2(est, truth):
     return 1 - ((truth - est) ** 2).sum() / ((truth - truth.mean(0)) ** 2).sum()
-print("decoder  block    off     on      baselines+bias  channels-out")
-for m in ["kalman", "wiener"]:
+print("decoder     block    off     on      baselines+bias  channels-out")
+for m in ["kalman", "kalman-vel", "wiener"]:
     for s in ["clean", "drifted"]:
         kin = np.load(f"{s}/kinematics.npy")
         row = []
@@ -42,5 +47,5 @@ for m in ["kalman", "wiener"]:
             e = np.load(f"{m}-{s}-{c}.npy")
             a = 2 * len(e) // 3
             row.append(f"{r2(e[a:], kin[a:, 2:4]):7.3f}")
-        print(f"{m:8} {s:8} " + " ".join(row))
+        print(f"{m:11} {s:8} " + " ".join(row))
 PY

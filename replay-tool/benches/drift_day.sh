@@ -14,14 +14,18 @@
 # and, on a world that does not change, 30 minutes of the morning decoder
 # with handling off and on.
 #
-#   bash replay-tool/benches/drift_day.sh [WORKDIR]
+#   bash replay-tool/benches/drift_day.sh [WORKDIR] [TASK_SEED]
+#
+# TASK_SEED (default 1) seeds the target order and the user's spikes of
+# every session, so several seeds show how much the figures vary.
 #
 # Needs a release build (cargo build --release -p replay-tool -p daemon)
 # and a Python with numpy ($VDEC_REFERENCE_PYTHON, else python3).
 source "$(dirname "$0")/setup.sh" "$@"
 day=(--drift-gain 0.6:1.8 --drift-ramp-min 120 --silent 0.1@30-100 --noisy 0.1@60-90)
 printf '[drift]\nenabled = true\n' >drift.toml
-run() { "$tool" closed-loop --time-scale 0 --trials 1000000 "$@" >/dev/null; }
+task_seed="${2:-1}"
+run() { "$tool" closed-loop --time-scale 0 --trials 1000000 --task-seed "$task_seed" "$@" >/dev/null; }
 
 "$tool" simulate --out morning-calib --seed 1 --minutes 10 --channels 96 "${day[@]}" >/dev/null
 "$tool" train --session morning-calib --decoder kalman --out morning.model --no-cv >/dev/null

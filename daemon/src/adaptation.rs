@@ -74,6 +74,12 @@ pub struct Collector {
 
 /// Why a model cannot adapt, or `None`.
 fn unavailable(model: &ModelFile) -> Option<String> {
+    if model.input == decoder_core::wire::packet::BinKind::Features {
+        return Some(
+            "the running model decodes features; adaptation refits the observation model from counts"
+                .into(),
+        );
+    }
     match &model.decoder {
         DecoderModel::Kalman(k) => check_adaptable(&k.state).err().map(|e| e.to_string()),
         DecoderModel::PointProcess(p) => check_adaptable(&p.state).err().map(|e| e.to_string()),

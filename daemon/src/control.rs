@@ -46,6 +46,8 @@ pub struct StreamShape {
     pub n_channels: usize,
     pub bin_width: decoder_core::BinWidth,
     pub n_outputs: usize,
+    /// What the running model decodes: counts or features.
+    pub input: decoder_core::wire::packet::BinKind,
 }
 
 /// A model file read and checked for loading, with what status shows.
@@ -323,6 +325,7 @@ fn prepare_load(path: &Path, shape: StreamShape) -> Result<(DecodePipeline, Load
         shape.n_channels,
         shape.bin_width,
         shape.n_outputs,
+        shape.input,
     )
     .with_context(|| format!("model {}", path.display()))?;
     Ok((pipeline, loaded))

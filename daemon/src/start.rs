@@ -124,6 +124,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         n_channels,
         bin_width: engine.bin_width(),
         n_outputs,
+        input: engine.pipeline().input(),
     };
 
     let input = bind_udp(config.listen, "network.listen")?;

@@ -109,6 +109,8 @@ fn decode_step(c: &mut Criterion) {
 fn session_from(counts: Vec<u16>, n: usize) -> Block {
     let n_bins = counts.len() / n;
     Block {
+        input: decoder_core::wire::packet::BinKind::Counts,
+        features: Vec::new(),
         bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         n_bins,
         n_channels: n,
@@ -136,6 +138,7 @@ fn replay_throughput(c: &mut Criterion) {
             model.steady = Some(steady_state_gain(&model, 1e-12, 10_000).unwrap());
         }
         let mf = ModelFile {
+            input: decoder_core::wire::packet::BinKind::Counts,
             bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
             decoder: DecoderModel::Kalman(model),
             provenance: Provenance::untracked(),

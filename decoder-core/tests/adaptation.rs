@@ -51,6 +51,7 @@ fn point_process_model() -> ModelFile {
     )
     .unwrap();
     ModelFile {
+        input: decoder_core::wire::packet::BinKind::Counts,
         bin_width: block.bin_width,
         decoder: DecoderModel::PointProcess(pp),
         provenance: decoder_core::formats::model_file::Provenance::untracked(),

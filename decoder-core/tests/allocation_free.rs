@@ -38,6 +38,7 @@ static GLOBAL: Counting = Counting;
 
 fn model_file(decoder: DecoderModel) -> ModelFile {
     ModelFile {
+        input: decoder_core::wire::packet::BinKind::Counts,
         bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder,
         provenance: Provenance::untracked(),

@@ -111,6 +111,7 @@ fn velocity_only_layout_decodes() {
     };
     let (model, _) = fit_kalman(&cal, &o).unwrap();
     let mf = ModelFile {
+        input: decoder_core::wire::packet::BinKind::Counts,
         bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder: DecoderModel::Kalman(model),
         provenance: Provenance::untracked(),

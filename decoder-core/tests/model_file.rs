@@ -39,11 +39,11 @@ fn wrong_magic_is_refused() {
 #[test]
 fn future_version_is_refused() {
     let mut b = small_model().to_bytes();
-    b[8] = 4;
+    b[8] = 5;
     let e = ModelFile::from_bytes(&b, "m.model").unwrap_err();
     assert!(matches!(
         e,
-        ModelFileError::UnsupportedVersion { found: 4, .. }
+        ModelFileError::UnsupportedVersion { found: 5, .. }
     ));
     assert!(e.to_string().starts_with("m.model"), "{e}");
 }

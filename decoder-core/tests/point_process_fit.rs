@@ -109,6 +109,7 @@ fn an_absurd_rate_is_clamped_counted_and_stays_finite() {
         })
     };
     let model = ModelFile {
+        input: decoder_core::wire::packet::BinKind::Counts,
         bin_width: decoder_core::BinWidth::from_us(20000).unwrap(),
         decoder: DecoderModel::PointProcess(PointProcessModel {
             state: vec!["vel_x".into(), "vel_y".into()],

@@ -467,6 +467,7 @@ fn a_numerical_fault_never_puts_a_non_finite_value_in_a_packet() {
         mean_counts: vec![1.0; n],
     };
     let m = ModelFile {
+        input: decoder_core::wire::packet::BinKind::Counts,
         bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
         decoder: decoder_core::DecoderModel::Wiener(wiener),
         provenance: decoder_core::Provenance::untracked(),

@@ -23,6 +23,7 @@ import numpy as np
 # The findings PROTOCOL.md §5 explains, by check and object.
 EXPLAINED = {
     ("check_regular_timestamps", "/acquisition/binned_counts"),
+    ("check_regular_timestamps", "/acquisition/binned_features"),
     ("check_processing_module_name", None),
 }
 
@@ -45,40 +46,51 @@ def main(path, folder, with_metadata):
     warnings.simplefilter("error")
     from pynwb import NWBHDF5IO
 
-    counts = np.load(f"{folder}/counts.npy")
-    kin = np.load(f"{folder}/kinematics.npy")
-    d = kin.shape[1] // 2
+    import os
+
+    # Counts, or features (a session decoded from continuous features).
+    features = os.path.exists(f"{folder}/features.npy")
+    series = "binned_features" if features else "binned_counts"
+    values = np.load(f"{folder}/{'features' if features else 'counts'}.npy")
+    # A log without task packets has no kinematics or trials.
+    has_task = os.path.exists(f"{folder}/kinematics.npy")
     with NWBHDF5IO(path, "r") as io:
         nwb = io.read()
-        c = nwb.acquisition["binned_counts"]
-        same("acquisition/binned_counts", c.data[:], counts)
+        c = nwb.acquisition[series]
+        same(f"acquisition/{series}", c.data[:], values)
         ts = c.timestamps[:]
         with open(f"{folder}/manifest.toml", "rb") as m:
             bin_s = tomllib.load(m)["bin_ms"] / 1000.0
         if not np.allclose(np.diff(ts), bin_s, rtol=0, atol=1e-9):
-            fail("binned_counts timestamps are not one bin apart")
-        beh = nwb.processing["behavior"]
-        same("cursor", beh["Position"]["cursor"].data[:], kin[:, :d])
-        same("cursor_velocity", beh["CursorVelocity"]["cursor_velocity"].data[:], kin[:, d:])
+            fail(f"{series} timestamps are not one bin apart")
         dec = nwb.processing["decoder"]
         same("estimate", dec["estimate"].data[:], np.load(f"{folder}/estimates.npy"))
         same("command", dec["command"].data[:], np.load(f"{folder}/commands.npy"))
         same("valid", dec["valid"].data[:].astype(bool), np.load(f"{folder}/valid.npy"))
-        for s in [dec["estimate"], dec["state"], beh["Position"]["cursor"]]:
+        for s in [dec["estimate"], dec["state"]]:
             if abs(s.starting_time - ts[0]) > 1e-12 or abs(s.rate - 1.0 / bin_s) > 1e-9:
-                fail(f"{s.name}: starting_time/rate do not give the counts' timestamps")
-        trials = np.genfromtxt(f"{folder}/trials.csv", delimiter=",", names=True)
-        tr = nwb.trials.to_dataframe()
-        same("trial ids", tr.index.to_numpy(), trials["trial"].astype(np.int64))
-        start_of_bin0 = ts[0] - bin_s
-        np.testing.assert_allclose(
-            tr["start_time"], start_of_bin0 + trials["start_bin"] * bin_s, rtol=0, atol=1e-9
-        )
-        np.testing.assert_allclose(
-            tr["stop_time"], start_of_bin0 + trials["end_bin"] * bin_s, rtol=0, atol=1e-9
-        )
-        same("target_x", tr["target_x"].to_numpy(), trials["target_x"])
-        same("target_y", tr["target_y"].to_numpy(), trials["target_y"])
+                fail(f"{s.name}: starting_time/rate do not give the {series} timestamps")
+        if has_task:
+            kin = np.load(f"{folder}/kinematics.npy")
+            d = kin.shape[1] // 2
+            beh = nwb.processing["behavior"]
+            same("cursor", beh["Position"]["cursor"].data[:], kin[:, :d])
+            same("cursor_velocity", beh["CursorVelocity"]["cursor_velocity"].data[:], kin[:, d:])
+            cursor = beh["Position"]["cursor"]
+            if abs(cursor.starting_time - ts[0]) > 1e-12 or abs(cursor.rate - 1.0 / bin_s) > 1e-9:
+                fail(f"cursor: starting_time/rate do not give the {series} timestamps")
+            trials = np.genfromtxt(f"{folder}/trials.csv", delimiter=",", names=True)
+            tr = nwb.trials.to_dataframe()
+            same("trial ids", tr.index.to_numpy(), trials["trial"].astype(np.int64))
+            start_of_bin0 = ts[0] - bin_s
+            np.testing.assert_allclose(
+                tr["start_time"], start_of_bin0 + trials["start_bin"] * bin_s, rtol=0, atol=1e-9
+            )
+            np.testing.assert_allclose(
+                tr["stop_time"], start_of_bin0 + trials["end_bin"] * bin_s, rtol=0, atol=1e-9
+            )
+            same("target_x", tr["target_x"].to_numpy(), trials["target_x"])
+            same("target_y", tr["target_y"].to_numpy(), trials["target_y"])
         if with_metadata and nwb.subject is None:
             fail("--metadata gave a subject, the file has none")
     print(f"pynwb read {path} with no warnings; every array equals {folder}")

@@ -47,6 +47,15 @@ Writes, into the directory given as the only argument:
                           forward recursion (Rabiner 1989) written out in
                           numpy over those posteriors, and sklearn's
                           roc_auc_score of the filtered probability
+  features_block/         the block's counts made continuous features
+                          (float32: an offset, a gain times the count and
+                          Gaussian noise per channel), as features.npy
+  features_wu2006_*.npy   A, W, H, Q, x0, P0 fitted on those features as
+                          on counts (the 'plain' settings)
+  features_filterpy_states.npy
+                          filterpy.kalman.KalmanFilter over the features
+                          with those parameters
+  features_wiener_weights sklearn Ridge on the lagged features
   blocks/a, blocks/b      two session directories of one simulated array
                           whose baselines moved between them (each
                           channel's rate times a factor in 0.6..1.8)
@@ -441,6 +450,7 @@ def main(out):
 
     click_fixtures(out)
     per_block_fixtures(out)
+    features_fixtures(out, counts, kin)
 
     with open(os.path.join(out, "versions.txt"), "w") as f:
         f.write(f"python {sys.version.split()[0]}\n")
@@ -587,6 +597,48 @@ def per_block_fixtures(out):
     np.save(
         os.path.join(out, "per_block_wiener_weights.npy"),
         np.column_stack([coef[-1], coef[:f].T]),
+    )
+
+
+def features_fixtures(out, counts, kin):
+    """Continuous features (a stand-in for spike band power) from the
+    block's counts, and the Kalman and Wiener references on them."""
+    rng = np.random.default_rng(SEED + 11)
+    offset = rng.uniform(20.0, 60.0, size=N)
+    gain = rng.uniform(2.0, 6.0, size=N)
+    noise = rng.uniform(1.0, 3.0, size=N)
+    feats = (offset + gain * counts + noise * rng.normal(size=counts.shape)).astype(np.float32)
+    path = os.path.join(out, "features_block")
+    os.makedirs(path, exist_ok=True)
+    np.save(os.path.join(path, "features.npy"), feats)
+    np.save(os.path.join(path, "kinematics.npy"), kin)
+    with open(os.path.join(path, "manifest.toml"), "w") as f:
+        f.write("version = 1\n")
+        f.write(f"bin_ms = {BIN_MS}\n")
+        f.write('kinematics = ["pos_x", "pos_y", "vel_x", "vel_y"]\n')
+        f.write('features = "synthetic band power"\n')
+        f.write('notes = "reference fixture, synthetic, seed %d"\n' % (SEED + 11))
+    y = feats.astype(np.float64)
+    fit = wu2006_fit(y, kin, [0, 1, 2, 3], True, 0.0, "none")
+    for key, value in fit.items():
+        np.save(os.path.join(out, f"features_wu2006_{key}.npy"), value)
+    d = fit["A"].shape[0]
+    kf = KalmanFilter(dim_x=d, dim_z=N)
+    kf.F, kf.Q, kf.H, kf.R = fit["A"].copy(), fit["W"].copy(), fit["H"].copy(), fit["Q"].copy()
+    kf.x = fit["x0"].reshape(d, 1).copy()
+    kf.P = fit["P0"].copy()
+    states = np.zeros((T, d))
+    for t in range(T):
+        kf.predict()
+        kf.update(y[t].reshape(N, 1))
+        states[t] = kf.x[:, 0]
+    np.save(os.path.join(out, "features_filterpy_states.npy"), states)
+    lagged = np.column_stack([y[WIENER_TAPS - 1 - a:T - a] for a in range(WIENER_TAPS)])
+    ridge = Ridge(alpha=WIENER_RIDGE, fit_intercept=True, solver="cholesky")
+    ridge.fit(lagged, kin[WIENER_TAPS - 1:, 2:4])
+    np.save(
+        os.path.join(out, "features_wiener_weights.npy"),
+        np.column_stack([ridge.intercept_, ridge.coef_]),
     )
 
 

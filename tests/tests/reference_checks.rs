@@ -33,7 +33,12 @@ fn block() -> Block {
 
 /// The model fitted by numpy, loaded as a KalmanModel.
 fn numpy_model(fit: &str, state: &[&str], outputs: &[&str]) -> KalmanModel {
-    let p = |k: &str| format!("wu2006_{fit}_{k}.npy");
+    numpy_model_from(&format!("wu2006_{fit}"), state, outputs)
+}
+
+/// The model numpy fitted into `{stem}_A.npy`, `{stem}_W.npy`, ….
+fn numpy_model_from(stem: &str, state: &[&str], outputs: &[&str]) -> KalmanModel {
+    let p = |k: &str| format!("{stem}_{k}.npy");
     KalmanModel {
         state: state.iter().map(|s| s.to_string()).collect(),
         outputs: outputs.iter().map(|s| s.to_string()).collect(),
@@ -67,7 +72,12 @@ fn options(state: &[&str], ridge: f64, norm: CountNormalisation) -> KalmanFitOpt
 const FIT_ATOL: f64 = 1e-10;
 
 fn assert_fit_matches(fit: &str, model: &KalmanModel, tol: f64) {
-    let want = numpy_model(fit, &[], &[]);
+    assert_fit_matches_from(&format!("wu2006_{fit}"), model, tol)
+}
+
+fn assert_fit_matches_from(stem: &str, model: &KalmanModel, tol: f64) {
+    let fit = stem;
+    let want = numpy_model_from(stem, &[], &[]);
     assert_close(
         &format!("{fit} A"),
         &model.a.data,
@@ -484,6 +494,8 @@ fn intention_reestimation_equals_the_rule_in_numpy() {
     let trials = mat("intention_trials.npy");
     let n_bins = kin.rows;
     let block = Block {
+        input: decoder_core::wire::packet::BinKind::Counts,
+        features: Vec::new(),
         bin_width: decoder_core::BinWidth::from_us(20_000).unwrap(),
         n_bins,
         n_channels: 1,
@@ -842,5 +854,72 @@ fn per_block_wiener_weights_equal_numpy_least_squares_with_an_intercept_per_bloc
         &want.data,
         1e-9,
         1e-12,
+    );
+}
+
+/// A block of continuous features (features.npy, float32): the Kalman fit
+/// equals numpy least squares on the same features (Wu et al. 2006, the
+/// 'plain' settings), and the daemon's decode path for features — the
+/// model file's pipeline, one bin at a time — equals
+/// filterpy.kalman.KalmanFilter run over them with numpy's parameters.
+#[test]
+fn features_train_and_decode_as_numpy_and_filterpy_do() {
+    use decoder_core::decoders::DecoderModel;
+    use decoder_core::formats::model_file::{ModelFile, Provenance};
+    use decoder_core::wire::packet::{BinKind, BinValues};
+    let session = Block::read(&reference_dir().join("features_block")).unwrap();
+    assert_eq!(session.input, BinKind::Features);
+    let (model, _) = fit_kalman(
+        &session,
+        &options(&FULL_STATE, 0.0, CountNormalisation::None),
+    )
+    .unwrap();
+    assert_fit_matches_from("features_wu2006", &model, 1e-9);
+
+    let numpy = numpy_model_from("features_wu2006", &FULL_STATE, &["vel_x", "vel_y"]);
+    let file = ModelFile {
+        bin_width: session.bin_width,
+        decoder: DecoderModel::Kalman(numpy),
+        provenance: Provenance::untracked(),
+        click: None,
+        input: BinKind::Features,
+    };
+    let mut pipeline = file.pipeline_with(false).unwrap();
+    let mut got = Vec::with_capacity(2 * session.n_bins);
+    for t in 0..session.n_bins {
+        let BinValues::Features(f) = session.bin_values(t) else {
+            unreachable!()
+        };
+        got.extend_from_slice(pipeline.step_features(t as u64, f).estimate);
+    }
+    let (_, states) = fixture("features_filterpy_states.npy");
+    let want: Vec<f64> = states.chunks(5).flat_map(|s| s[2..4].to_vec()).collect();
+    assert_close("decoded features vs filterpy", &got, &want, 1e-9, 1e-9);
+}
+
+/// The Wiener filter on features against scikit-learn's
+/// `Ridge(alpha=5, fit_intercept=True, solver="cholesky")` on the same
+/// lagged features (3 taps), intercept first.
+#[test]
+fn wiener_weights_on_features_equal_sklearn_ridge() {
+    use decoder_core::fit::wiener::{WienerFitOptions, fit_wiener};
+    let session = Block::read(&reference_dir().join("features_block")).unwrap();
+    let m = fit_wiener(
+        &session,
+        &WienerFitOptions {
+            taps: 3,
+            ridge: 5.0,
+            ..WienerFitOptions::default()
+        },
+    )
+    .unwrap();
+    let want = mat("features_wiener_weights.npy");
+    assert_eq!((m.weights.rows, m.weights.cols), (want.rows, want.cols));
+    assert_close(
+        "Wiener weights on features vs sklearn Ridge",
+        &m.weights.data,
+        &want.data,
+        1e-9,
+        1e-10,
     );
 }

@@ -14,6 +14,7 @@ use crate::decoders::kalman::{KalmanError, KalmanFilter};
 use crate::decoders::point_process::{PointProcessError, PointProcessFilter};
 use crate::decoders::wiener::WienerFilter;
 use crate::engine::drift::{DriftSettings, DriftTracker};
+use crate::wire::packet::{BinKind, BinValues};
 
 // One value per loaded model, never per bin: boxing would buy nothing.
 #[allow(clippy::large_enum_variant)]
@@ -72,6 +73,10 @@ pub struct DecodePipeline {
     tracking: bool,
     /// The last bin's flags: (predicted only, numerical fault).
     last_flags: (bool, bool),
+    /// What the model decodes: counts, or continuous features.
+    input: BinKind,
+    /// A bin's features as f64 (a model of features), reused.
+    values: Vec<f64>,
 }
 
 /// Why a checked model still cannot be run: the Kalman filter's noise
@@ -126,9 +131,73 @@ impl DecodePipeline {
             reference,
             tracking: true,
             last_flags: (false, false),
+            input: BinKind::Counts,
+            values: Vec::new(),
         };
         p.reset();
         Ok(p)
+    }
+
+    /// The same pipeline decoding bins of `input` (a model trained on
+    /// features decodes features). Only the Kalman and Wiener decoders
+    /// read features; the model file refuses any other pairing before a
+    /// pipeline is built.
+    pub fn with_input(mut self, input: BinKind) -> DecodePipeline {
+        self.input = input;
+        self.values = match input {
+            BinKind::Counts => Vec::new(),
+            BinKind::Features => vec![0.0; self.n_channels],
+        };
+        if input == BinKind::Features {
+            // Drift handling follows counts (silence, saturation, count
+            // baselines); a pipeline of features runs without it.
+            self.drift = None;
+            self.apply_left_out();
+        }
+        self
+    }
+
+    /// What the pipeline decodes.
+    pub fn input(&self) -> BinKind {
+        self.input
+    }
+
+    /// Decodes one bin of either kind ([`DecodePipeline::step`] for
+    /// counts, [`DecodePipeline::step_features`] for features).
+    pub fn step_bin(&mut self, seq: u64, values: BinValues<'_>) -> BinEstimate<'_> {
+        match values {
+            BinValues::Counts(c) => self.step(seq, c),
+            BinValues::Features(f) => self.step_features(seq, f),
+        }
+    }
+
+    /// Decodes one bin of features (a model trained on features): each
+    /// value as f64, into the Kalman or Wiener filter as counts would go.
+    pub fn step_features(&mut self, seq: u64, features: &[f32]) -> BinEstimate<'_> {
+        assert_eq!(
+            features.len(),
+            self.n_channels,
+            "bin has the wrong channel count"
+        );
+        assert_eq!(
+            self.input,
+            BinKind::Features,
+            "a pipeline of counts was handed features"
+        );
+        for (v, &f) in self.values.iter_mut().zip(features) {
+            *v = f64::from(f);
+        }
+        let updated = match &mut self.engine {
+            Engine::Kalman { filter, .. } => filter.step_values(&self.values),
+            Engine::Wiener(w) => {
+                w.step_values(&self.values);
+                true
+            }
+            Engine::PointProcess { .. } => {
+                unreachable!("a point-process model of features is refused when it is read")
+            }
+        };
+        self.finish(seq, false, !updated)
     }
 
     /// Sets up drift handling with `settings` (on when `settings.enabled`),
@@ -136,7 +205,8 @@ impl DecodePipeline {
     /// statistics, every channel in. Allocates: call it when a pipeline is
     /// built or handling is switched, not per bin.
     pub fn configure_drift(&mut self, settings: DriftSettings, saturation_count: u16) {
-        self.drift = settings.enabled.then(|| {
+        let enabled = settings.enabled && self.input == BinKind::Counts;
+        self.drift = enabled.then(|| {
             DriftTracker::new(
                 settings,
                 self.bin_width,

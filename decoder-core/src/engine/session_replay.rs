@@ -139,6 +139,7 @@ impl SessionReplay {
             stream.n_channels,
             stream.bin_width,
             stream.n_outputs,
+            pipeline.input(),
         )
         .map_err(SessionReplayError::Override)?;
         let mut r = SessionReplay::new(stream.settings.clone());

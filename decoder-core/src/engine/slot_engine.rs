@@ -40,8 +40,8 @@ use crate::engine::supervisor::{
     ArmRefused, SafetyLimits, Supervisor, SupervisorState, Transition, TransitionReason,
 };
 use crate::wire::packet::{
-    self, FLAG_BIN_MISSING, FLAG_CLICK, FLAG_MODEL_CHANGED, N_REJECT_REASONS, RejectReason,
-    VelocityFields,
+    self, BinKind, BinValues, FLAG_BIN_MISSING, FLAG_CLICK, FLAG_MODEL_CHANGED, N_REJECT_REASONS,
+    RejectReason, VelocityFields,
 };
 
 /// Everything that shapes the engine's decisions; recorded in the session
@@ -189,7 +189,8 @@ pub trait SlotSink {
     fn event(&mut self, event: &EngineEvent);
     /// A bin decoded from its counts, just before its slot is answered:
     /// the counts and the estimate decoded from them (for the daemon's
-    /// online adaptation; nothing else needs them).
+    /// online adaptation; nothing else needs them). Not called for a bin of
+    /// features: adaptation refits from counts.
     fn decoded(&mut self, _seq: u64, _counts: &[u16], _estimate: &[f64]) {}
 }
 
@@ -248,6 +249,13 @@ pub enum SwapRefused {
         "the new model outputs {new} velocities but the running one outputs {running}; the actuator expects a fixed layout"
     )]
     Outputs { new: usize, running: usize },
+    #[error(
+        "the new model decodes {new} but the running one decodes {running}; the front end sends one kind of bin"
+    )]
+    Input {
+        new: &'static str,
+        running: &'static str,
+    },
 }
 
 #[derive(Clone, Copy, Debug)]
@@ -263,7 +271,9 @@ struct PendingBin {
     occupied: bool,
     recv_ns: u64,
     origin_ns: u64,
+    /// The bin's values, of the model's kind (the other empty).
     counts: Vec<u16>,
+    features: Vec<f32>,
 }
 
 #[derive(Clone, Copy, Debug)]
@@ -297,7 +307,9 @@ pub struct SlotEngine {
     clock: Option<BinClock>,
     pending: Vec<PendingBin>,
     answered: Vec<AnsweredSlot>,
+    /// The bin in hand, of the model's kind (the other empty).
     counts: Vec<u16>,
+    features: Vec<f32>,
     packet: Vec<u8>,
     model_changed: bool,
     /// The last out-of-window seq and when it came, awaiting confirmation
@@ -322,6 +334,10 @@ impl SlotEngine {
         let d = pipeline.n_outputs();
         let w = settings.reorder_window.max(1) as usize;
         let supervisor = Supervisor::new(settings.limits.clone(), d, settings.armed_at_start);
+        let (n_counts, n_features) = match pipeline.input() {
+            BinKind::Counts => (n, 0),
+            BinKind::Features => (0, n),
+        };
         SlotEngine {
             pending: (0..w)
                 .map(|_| PendingBin {
@@ -329,7 +345,8 @@ impl SlotEngine {
                     occupied: false,
                     recv_ns: 0,
                     origin_ns: 0,
-                    counts: vec![0; n],
+                    counts: vec![0; n_counts],
+                    features: vec![0.0; n_features],
                 })
                 .collect(),
             answered: vec![
@@ -339,7 +356,8 @@ impl SlotEngine {
                 };
                 w
             ],
-            counts: vec![0; n],
+            counts: vec![0; n_counts],
+            features: vec![0.0; n_features],
             packet: vec![0; packet::velocity_len(d)],
             model_changed: false,
             stray: None,
@@ -447,10 +465,10 @@ impl SlotEngine {
         }
         self.counters.datagrams += 1;
         let header =
-            // Every model decodes counts; a features bin is a kind mismatch.
+            // A bin of the other kind than the model's is a kind mismatch.
             match packet::parse_bin_for(
                 datagram,
-                packet::BinKind::Counts,
+                self.pipeline.input(),
                 self.n_channels(),
                 self.settings.bin_width,
             ) {
@@ -473,7 +491,7 @@ impl SlotEngine {
                 seq,
                 t0_ns: recv_ns,
             });
-            packet::read_counts(datagram, &mut self.counts);
+            read_values(datagram, &mut self.counts, &mut self.features);
             self.answer(arrived, recv_ns, sink);
             return;
         };
@@ -489,7 +507,7 @@ impl SlotEngine {
         }
         if seq == next {
             self.track_clock(recv_ns, seq);
-            packet::read_counts(datagram, &mut self.counts);
+            read_values(datagram, &mut self.counts, &mut self.features);
             self.answer(arrived, recv_ns, sink);
         } else if ahead < w {
             let slot = &mut self.pending[(seq % w) as usize];
@@ -502,7 +520,7 @@ impl SlotEngine {
             slot.occupied = true;
             slot.recv_ns = recv_ns;
             slot.origin_ns = header.origin_ns;
-            packet::read_counts(datagram, &mut slot.counts);
+            read_values(datagram, &mut slot.counts, &mut slot.features);
         } else if behind <= w {
             let slot = self.answered[(seq % w) as usize];
             if slot.seq == Some(seq) && slot.decoded {
@@ -535,7 +553,7 @@ impl SlotEngine {
                 sink.event(&EngineEvent::Transition(t));
             }
             self.start_stream(recv_ns, seq);
-            packet::read_counts(datagram, &mut self.counts);
+            read_values(datagram, &mut self.counts, &mut self.features);
             self.answer(arrived, recv_ns, sink);
         }
     }
@@ -614,26 +632,41 @@ impl SlotEngine {
             SlotSource::Pending(i) => (self.pending[i].recv_ns, self.pending[i].origin_ns, false),
             SlotSource::Missing => (0, 0, true),
         };
-        let counts: Option<&[u16]> = match source {
-            SlotSource::Arrived { .. } => Some(&self.counts),
-            SlotSource::Pending(i) => Some(&self.pending[i].counts),
-            SlotSource::Missing => None,
+        let values: Option<BinValues<'_>> = match (source, self.pipeline.input()) {
+            (SlotSource::Arrived { .. }, BinKind::Counts) => Some(BinValues::Counts(&self.counts)),
+            (SlotSource::Arrived { .. }, BinKind::Features) => {
+                Some(BinValues::Features(&self.features))
+            }
+            (SlotSource::Pending(i), BinKind::Counts) => {
+                Some(BinValues::Counts(&self.pending[i].counts))
+            }
+            (SlotSource::Pending(i), BinKind::Features) => {
+                Some(BinValues::Features(&self.pending[i].features))
+            }
+            (SlotSource::Missing, _) => None,
         };
-        let estimate = match counts {
-            Some(counts) => {
+        let estimate = match values {
+            Some(values) => {
                 let sat = self.settings.saturation_count;
-                for (ch, &c) in counts.iter().enumerate() {
-                    if c > 0 {
-                        self.last_nonzero[ch] = seq;
+                match values {
+                    BinValues::Counts(counts) => {
+                        for (ch, &c) in counts.iter().enumerate() {
+                            if c > 0 {
+                                self.last_nonzero[ch] = seq;
+                            }
+                            if c >= sat {
+                                self.last_saturated[ch] = seq;
+                            }
+                        }
                     }
-                    if c >= sat {
-                        self.last_saturated[ch] = seq;
-                    }
+                    // A feature is never "no spikes": silence and
+                    // saturation are judged on counts.
+                    BinValues::Features(_) => self.last_nonzero.fill(seq),
                 }
                 self.counters.bins_decoded += 1;
                 self.pipeline
                     .set_tracking(self.supervisor.state() == SupervisorState::Armed);
-                self.pipeline.step(seq, counts);
+                self.pipeline.step_bin(seq, values);
                 Self::drift_changes(
                     &self.pipeline,
                     &mut self.supervisor,
@@ -642,7 +675,9 @@ impl SlotEngine {
                     sink,
                 );
                 let e = self.pipeline.last_estimate();
-                sink.decoded(seq, counts, e.estimate);
+                if let BinValues::Counts(counts) = values {
+                    sink.decoded(seq, counts, e.estimate);
+                }
                 e
             }
             None => {
@@ -838,6 +873,7 @@ impl SlotEngine {
             self.n_channels(),
             self.settings.bin_width,
             self.n_outputs(),
+            self.pipeline.input(),
         )
     }
 
@@ -888,6 +924,16 @@ impl SlotEngine {
     }
 }
 
+/// Copies an accepted bin's values into whichever buffer is in use (the
+/// model's kind; the other is empty).
+fn read_values(datagram: &[u8], counts: &mut [u16], features: &mut [f32]) {
+    if counts.is_empty() {
+        packet::read_features(datagram, features);
+    } else {
+        packet::read_counts(datagram, counts);
+    }
+}
+
 /// [`SlotEngine::check_swap`] for callers that hold only the running
 /// stream's shape (the daemon's control task).
 pub fn check_swap_against(
@@ -895,7 +941,14 @@ pub fn check_swap_against(
     n_channels: usize,
     bin_width: BinWidth,
     n_outputs: usize,
+    input: BinKind,
 ) -> Result<(), SwapRefused> {
+    if pipeline.input() != input {
+        return Err(SwapRefused::Input {
+            new: pipeline.input().name(),
+            running: input.name(),
+        });
+    }
     if pipeline.n_channels() != n_channels {
         return Err(SwapRefused::Channels {
             new: pipeline.n_channels(),

@@ -24,7 +24,7 @@ use crate::fit::kalman::{
 };
 use crate::fit::metrics::{ScoreSums, Scores, mean_scores};
 use crate::fit::point_process::{ChannelFits, PointProcessFitOptions, fit_point_process_with};
-use crate::fit::rows::{SegmentWalk, Without, each_row};
+use crate::fit::rows::{SegmentWalk, Without, each_count_row, each_row};
 use crate::fit::wiener::{
     WienerFitOptions, WienerStats, fit_wiener_from_block_stats, fit_wiener_from_stats,
     output_columns,
@@ -162,7 +162,14 @@ fn fit_per_fold(
                         &parts,
                         n_blocks,
                         f,
-                        || KalmanStats::new(sources.len(), info.n_channels, opts.q_form),
+                        || {
+                            KalmanStats::new(
+                                info.input,
+                                sources.len(),
+                                info.n_channels,
+                                opts.q_form,
+                            )
+                        },
                         KalmanStats::add_assign,
                     );
                     for b in 0..n_blocks {
@@ -180,7 +187,8 @@ fn fit_per_fold(
                 KalmanStats::gather(session, &sources, opts.lag_bins, opts.q_form, &plan.pieces)?;
             (0..k)
                 .map(|f| {
-                    let mut train = KalmanStats::new(sources.len(), info.n_channels, opts.q_form);
+                    let mut train =
+                        KalmanStats::new(info.input, sources.len(), info.n_channels, opts.q_form);
                     for (g, p) in parts.iter().enumerate() {
                         if g != f {
                             train.add_assign(p);
@@ -204,7 +212,7 @@ fn fit_per_fold(
                         &parts,
                         n_blocks,
                         f,
-                        || WienerStats::new(info.n_channels, opts.taps, cols.len()),
+                        || WienerStats::new(info.input, info.n_channels, opts.taps, cols.len()),
                         WienerStats::add_assign,
                     );
                     for b in 0..n_blocks {
@@ -223,7 +231,8 @@ fn fit_per_fold(
                 WienerStats::gather(session, &cols, opts.taps, opts.lag_bins, &plan.pieces)?;
             (0..k)
                 .map(|f| {
-                    let mut train = WienerStats::new(info.n_channels, opts.taps, cols.len());
+                    let mut train =
+                        WienerStats::new(info.input, info.n_channels, opts.taps, cols.len());
                     for (g, p) in parts.iter().enumerate() {
                         if g != f {
                             train.add_assign(p);
@@ -345,7 +354,7 @@ fn goodness_of_fit(
     let mut state = vec![0.0; sources.len()];
     let mut lambda = vec![0.0; n];
     let mut walk = held_out_walk(plan);
-    each_row(session, info.kinematic_names.len(), |t, counts, kin| {
+    each_count_row(session, info.kinematic_names.len(), |t, counts, kin| {
         let Some((seg, f)) = walk.at(t) else {
             return;
         };
@@ -397,7 +406,9 @@ fn decode_held_out(
     let mut pipelines = models
         .models
         .iter()
-        .map(|m| DecodePipeline::from_decoder(m, info.bin_width, true))
+        .map(|m| {
+            DecodePipeline::from_decoder(m, info.bin_width, true).map(|p| p.with_input(info.input))
+        })
         .collect::<Result<Vec<_>, _>>()?;
     let mut sums = vec![vec![ScoreSums::default(); d]; plan.k()];
     let mut traces: Vec<(Vec<f64>, Vec<f64>)> = vec![(Vec::new(), Vec::new()); d];
@@ -405,7 +416,7 @@ fn decode_held_out(
     // lag bins later.
     let mut recent = vec![0.0; (lag + 1) * d];
     let mut walk = held_out_walk(plan);
-    each_row(session, info.kinematic_names.len(), |t, counts, kin| {
+    each_row(session, info.kinematic_names.len(), |t, values, kin| {
         let Some((seg, f)) = walk.at(t) else {
             return;
         };
@@ -415,7 +426,7 @@ fn decode_held_out(
             pipelines[m].reset();
         }
         if t + lag < seg.end {
-            let out = pipelines[m].step(t as u64, counts);
+            let out = pipelines[m].step_bin(t as u64, values);
             let at = (t % (lag + 1)) * d;
             recent[at..at + d].copy_from_slice(&out.estimate[..d]);
         }

@@ -164,6 +164,8 @@ mod tests {
 
     fn block_with_trials(spans: &[(usize, usize)], n_bins: usize) -> Block {
         Block {
+            input: crate::wire::packet::BinKind::Counts,
+            features: Vec::new(),
             bin_width: crate::bin_width::BinWidth::from_us(20_000).unwrap(),
             n_bins,
             n_channels: 1,

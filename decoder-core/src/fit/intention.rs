@@ -89,6 +89,8 @@ mod tests {
             kin.set(0, c, *v);
         }
         Block {
+            input: crate::wire::packet::BinKind::Counts,
+            features: Vec::new(),
             bin_width: crate::bin_width::BinWidth::from_us(20_000).unwrap(),
             n_bins: 1,
             n_channels: 1,

@@ -18,10 +18,11 @@ use serde::{Deserialize, Serialize};
 use crate::decoders::kalman::model::{KalmanModel, ObservationNoise};
 use crate::decoders::kalman::steady::steady_state_gain;
 use crate::fit::TrainError;
-use crate::fit::least_squares::{CountGram, CrossSums, nonzero_counts};
+use crate::fit::least_squares::{CrossSums, Gram, nonzero_counts};
 use crate::fit::rows::{RowWindow, each_segment_row};
 use crate::formats::block_rows::{BlockInfo, BlockRows};
 use crate::linalg::{self, Mat};
+use crate::wire::packet::{BinKind, BinValues};
 
 /// The name of the constant state component.
 pub const CONSTANT: &str = "1";
@@ -147,6 +148,8 @@ pub struct StateScratch {
     pub(crate) x: Vec<f64>,
     pub(crate) x_prev: Vec<f64>,
     pub(crate) nz: Vec<(usize, u16)>,
+    /// A row of features (or lagged features) as f64.
+    pub(crate) dense: Vec<f64>,
 }
 
 /// Sums over the training bins of one or more segments.
@@ -154,7 +157,7 @@ pub struct StateScratch {
 pub struct KalmanStats {
     pub d: usize,
     pub n: usize,
-    pub gram: CountGram,
+    pub gram: Gram,
     /// Σ y xᵀ, N × d.
     pub syx: CrossSums,
     /// Σ x xᵀ over observation pairs, d × d.
@@ -168,11 +171,9 @@ pub struct KalmanStats {
 }
 
 impl KalmanStats {
-    pub fn new(d: usize, n: usize, q_form: QForm) -> KalmanStats {
-        let gram = match q_form {
-            QForm::Full => CountGram::new(n),
-            QForm::Diagonal => CountGram::new_diagonal(n),
-        };
+    /// Empty sums over rows of `input` (counts or features).
+    pub fn new(input: BinKind, d: usize, n: usize, q_form: QForm) -> KalmanStats {
+        let gram = Gram::new(input, n, q_form == QForm::Diagonal);
         KalmanStats {
             d,
             n,
@@ -200,15 +201,33 @@ impl KalmanStats {
         since_start: usize,
         scratch: &mut StateScratch,
     ) {
-        let StateScratch { x, x_prev, nz } = scratch;
+        let StateScratch {
+            x,
+            x_prev,
+            nz,
+            dense,
+        } = scratch;
         x.resize(self.d, 0.0);
         x_prev.resize(self.d, 0.0);
         fill_state(window.kinematics(0), sources, x);
         if since_start >= lag {
-            nz.clear();
-            nonzero_counts(window.counts(lag), 0, nz);
-            self.gram.add_sparse(nz);
-            self.syx.add_sparse_outer(nz, x);
+            match (&mut self.gram, window.values(lag)) {
+                (Gram::Counts(g), BinValues::Counts(c)) => {
+                    nz.clear();
+                    nonzero_counts(c, 0, nz);
+                    g.add_sparse(nz);
+                    self.syx.add_sparse_outer(nz, x);
+                }
+                (Gram::Values(g), values) => {
+                    dense.resize(values.len(), 0.0);
+                    values.to_f64(dense);
+                    g.add_dense(dense);
+                    self.syx.add_outer(dense, x);
+                }
+                (Gram::Counts(_), BinValues::Features(_)) => {
+                    unreachable!("sums of counts were handed features")
+                }
+            }
             self.sxx.add_outer(x, x);
             for (s, v) in self.sx.iter_mut().zip(x.iter()) {
                 *s += v;
@@ -237,7 +256,7 @@ impl KalmanStats {
         let n = info.n_channels;
         let mut stats: Vec<KalmanStats> = groups
             .iter()
-            .map(|_| KalmanStats::new(sources.len(), n, q_form))
+            .map(|_| KalmanStats::new(info.input, sources.len(), n, q_form))
             .collect();
         let mut scratch = StateScratch::default();
         each_segment_row(source, groups, lag.max(1) + 1, |g, since_start, window| {
@@ -374,7 +393,7 @@ pub fn fit_from_stats(
     bin_width: crate::bin_width::BinWidth,
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
     let (d, n) = (stats.d, stats.n);
-    let t_obs = stats.gram.n_rows;
+    let t_obs = stats.gram.n_rows();
     if t_obs < (d as u64) + 2 || stats.n_transitions < (d as u64) + 2 {
         return Err(TrainError::TooFewBins {
             bins: t_obs,
@@ -389,20 +408,20 @@ pub fn fit_from_stats(
     let mut scale = vec![1.0; n];
     let mut excluded = Vec::new();
     for ch in 0..n {
-        let s = u128::from(stats.gram.sums[ch]);
-        let ss = u128::from(stats.gram.square_sum(ch));
-        let centred = u128::from(t_obs) * ss - s * s; // T² · variance, exact
-        if centred == 0 {
+        // T² · variance (exact for counts).
+        let centred = stats.gram.centred(ch, ch);
+        let constant = stats.gram.is_constant(ch);
+        if constant {
             excluded.push(ch);
         }
-        let mean = s as f64 / t;
-        let std = (centred as f64).sqrt() / t;
+        let mean = stats.gram.sum(ch) / t;
+        let std = centred.sqrt() / t;
         match options.count_normalisation {
             CountNormalisation::None => {}
             CountNormalisation::MeanCentred => offset[ch] = mean,
             CountNormalisation::ZScored => {
                 offset[ch] = mean;
-                if centred != 0 {
+                if !constant {
                     scale[ch] = std;
                 }
             }
@@ -435,15 +454,14 @@ pub fn fit_from_stats(
     let q = match options.q_form {
         QForm::Full => {
             let raw = stats.gram.to_f64_symmetric();
-            let sy = &stats.gram.sums;
+            let sy: Vec<f64> = (0..n).map(|i| stats.gram.sum(i)).collect();
             let mut q = Mat::zeros(n, n);
             for i in 0..n {
                 for j in i..n {
                     // Σ y'ᵢ y'ⱼ with y' = (y − o)/s
-                    let syy =
-                        (raw[i * n + j] - offset[i] * sy[j] as f64 - sy[i] as f64 * offset[j]
-                            + t * offset[i] * offset[j])
-                            / (scale[i] * scale[j]);
+                    let syy = (raw[i * n + j] - offset[i] * sy[j] - sy[i] * offset[j]
+                        + t * offset[i] * offset[j])
+                        / (scale[i] * scale[j]);
                     let mut v = syy;
                     for c in 0..d {
                         v -= h[(i, c)] * syx[(j, c)] + syx[(i, c)] * h[(j, c)]
@@ -466,8 +484,8 @@ pub fn fit_from_stats(
         QForm::Diagonal => {
             let mut diag = vec![0.0; n];
             for i in 0..n {
-                let s = stats.gram.sums[i] as f64;
-                let syy = (stats.gram.square_sum(i) as f64 - 2.0 * offset[i] * s
+                let s = stats.gram.sum(i);
+                let syy = (stats.gram.square_sum(i) - 2.0 * offset[i] * s
                     + t * offset[i] * offset[i])
                     / (scale[i] * scale[i]);
                 let mut v = syy;
@@ -522,7 +540,7 @@ fn state_model(
     bin_width: crate::bin_width::BinWidth,
 ) -> Result<(DMatrix<f64>, Mat, Vec<f64>, Mat), TrainError> {
     let d = stats.d;
-    let t = stats.gram.n_rows as f64;
+    let t = stats.gram.n_rows() as f64;
     let constant_idx = options.state.iter().position(|s| s == CONSTANT);
     let sxx = to_dm(&stats.sxx);
     // State model.
@@ -599,7 +617,7 @@ fn finish(
     crate::decoders::kalman::filter::information_terms(&model)?;
     let mut report = KalmanFitReport {
         excluded_channels: f.excluded,
-        observation_bins: stats.gram.n_rows,
+        observation_bins: stats.gram.n_rows(),
         transition_bins: stats.n_transitions,
         steady_state_iterations: None,
     };
@@ -637,17 +655,21 @@ pub fn fit_from_block_stats(
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
     let kept = keep
         .and_then(|k| blocks.get(k))
-        .filter(|b| b.gram.n_rows > 0);
-    let blocks: Vec<&KalmanStats> = blocks.iter().filter(|b| b.gram.n_rows > 0).collect();
+        .filter(|b| b.gram.n_rows() > 0);
+    let blocks: Vec<&KalmanStats> = blocks.iter().filter(|b| b.gram.n_rows() > 0).collect();
     let Some(last) = kept.or(blocks.last().copied()) else {
         return Err(TrainError::TooFewBins { bins: 0, needed: 2 });
     };
     let (d, n) = (last.d, last.n);
-    let mut pooled = KalmanStats::new(d, n, options.q_form);
+    let input = match last.gram {
+        Gram::Counts(_) => BinKind::Counts,
+        Gram::Values(_) => BinKind::Features,
+    };
+    let mut pooled = KalmanStats::new(input, d, n, options.q_form);
     for b in &blocks {
         pooled.add_assign(b);
     }
-    let t_obs = pooled.gram.n_rows;
+    let t_obs = pooled.gram.n_rows();
     if t_obs < (d as u64) + 2 || pooled.n_transitions < (d as u64) + 2 {
         return Err(TrainError::TooFewBins {
             bins: t_obs,
@@ -663,13 +685,12 @@ pub fn fit_from_block_stats(
 
     // Each block's per-channel mean and (z-scored) standard deviation.
     let moments = |b: &KalmanStats| -> (Vec<f64>, Vec<f64>) {
-        let nb = b.gram.n_rows as f64;
+        let nb = b.gram.n_rows() as f64;
         (0..n)
             .map(|ch| {
-                let mean = b.gram.sums[ch] as f64 / nb;
-                let centred = b.gram.centred_product(ch, ch);
-                let scale = if z_scored && centred != 0 {
-                    (centred as f64).sqrt() / nb
+                let mean = b.gram.sum(ch) / nb;
+                let scale = if z_scored && !b.gram.is_constant(ch) {
+                    b.gram.centred(ch, ch).sqrt() / nb
                 } else {
                     1.0
                 };
@@ -678,7 +699,7 @@ pub fn fit_from_block_stats(
             .unzip()
     };
     let excluded: Vec<usize> = (0..n)
-        .filter(|&ch| blocks.iter().all(|b| b.gram.centred_product(ch, ch) == 0))
+        .filter(|&ch| blocks.iter().all(|b| b.gram.is_constant(ch)))
         .collect();
 
     // Within-block sums, in normalised units.
@@ -691,13 +712,12 @@ pub fn fit_from_block_stats(
         DMatrix::<f64>::zeros(n, 1)
     };
     for b in &blocks {
-        let nb = b.gram.n_rows as f64;
+        let nb = b.gram.n_rows() as f64;
         let (_, scale) = moments(b);
         let xbar: Vec<f64> = kin.iter().map(|&c| b.sx[c] / nb).collect();
         for ch in 0..n {
             for (kc, &c) in kin.iter().enumerate() {
-                syx[(ch, kc)] +=
-                    (b.syx.data[ch * d + c] - b.gram.sums[ch] as f64 * xbar[kc]) / scale[ch];
+                syx[(ch, kc)] += (b.syx.data[ch * d + c] - b.gram.sum(ch) * xbar[kc]) / scale[ch];
             }
         }
         for (ka, &a) in kin.iter().enumerate() {
@@ -708,14 +728,14 @@ pub fn fit_from_block_stats(
         for i in 0..n {
             if full {
                 for j in i..n {
-                    let v = b.gram.centred_product(i, j) as f64 / nb / (scale[i] * scale[j]);
+                    let v = b.gram.centred(i, j) / nb / (scale[i] * scale[j]);
                     syy[(i, j)] += v;
                     if j != i {
                         syy[(j, i)] += v;
                     }
                 }
             } else {
-                syy[(i, 0)] += b.gram.centred_product(i, i) as f64 / nb / (scale[i] * scale[i]);
+                syy[(i, 0)] += b.gram.centred(i, i) / nb / (scale[i] * scale[i]);
             }
         }
     }
@@ -771,7 +791,7 @@ pub fn fit_from_block_stats(
     // The last block's baselines: its means (and scales) as the offset,
     // and its intercept −H·x̄ in the constant column.
     let (offset, scale) = moments(last);
-    let nl = last.gram.n_rows as f64;
+    let nl = last.gram.n_rows() as f64;
     let mut h = DMatrix::<f64>::zeros(n, d);
     for (kc, &c) in kin.iter().enumerate() {
         h.column_mut(c).copy_from(&h_kin.column(kc));

@@ -140,6 +140,190 @@ impl CountGram {
     }
 }
 
+/// Σ v vᵀ and Σ v over bins of real-valued feature vectors (continuous
+/// features such as spike band power), in f64; only the upper triangle
+/// is accumulated, every entry of it at each row (features are dense).
+#[derive(Clone, Debug, PartialEq)]
+pub struct ValueGram {
+    pub dim: usize,
+    pub diagonal_only: bool,
+    upper: Vec<f64>,
+    pub sums: Vec<f64>,
+    pub n_rows: u64,
+}
+
+impl ValueGram {
+    pub fn new(dim: usize, diagonal_only: bool) -> ValueGram {
+        ValueGram {
+            dim,
+            diagonal_only,
+            upper: vec![0.0; if diagonal_only { dim } else { dim * dim }],
+            sums: vec![0.0; dim],
+            n_rows: 0,
+        }
+    }
+
+    /// Adds one row.
+    pub fn add_dense(&mut self, v: &[f64]) {
+        debug_assert_eq!(v.len(), self.dim);
+        self.n_rows += 1;
+        for (s, &x) in self.sums.iter_mut().zip(v) {
+            *s += x;
+        }
+        if self.diagonal_only {
+            for (u, &x) in self.upper.iter_mut().zip(v) {
+                *u += x * x;
+            }
+            return;
+        }
+        for (i, &vi) in v.iter().enumerate() {
+            let row = &mut self.upper[i * self.dim + i..(i + 1) * self.dim];
+            for (r, &vj) in row.iter_mut().zip(&v[i..]) {
+                *r += vi * vj;
+            }
+        }
+    }
+
+    fn product_sum(&self, i: usize, j: usize) -> f64 {
+        if self.diagonal_only {
+            assert_eq!(i, j, "a diagonal-only gram has no off-diagonal sums");
+            return self.upper[i];
+        }
+        let (i, j) = (i.min(j), i.max(j));
+        self.upper[i * self.dim + j]
+    }
+}
+
+/// The sums of the observations a fit regresses: spike counts, exactly in
+/// integers over their non-zero entries ([`CountGram`]), or continuous
+/// features in f64 ([`ValueGram`]). The fits read both through the same
+/// methods, which for counts give the very values the integer sums did.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Gram {
+    Counts(CountGram),
+    Values(ValueGram),
+}
+
+impl Gram {
+    /// Sums of `dim`-long rows of `input`, every product or (for a
+    /// diagonal observation noise) the squares alone.
+    pub fn new(input: crate::wire::packet::BinKind, dim: usize, diagonal_only: bool) -> Gram {
+        match (input, diagonal_only) {
+            (crate::wire::packet::BinKind::Counts, false) => Gram::Counts(CountGram::new(dim)),
+            (crate::wire::packet::BinKind::Counts, true) => {
+                Gram::Counts(CountGram::new_diagonal(dim))
+            }
+            (crate::wire::packet::BinKind::Features, d) => Gram::Values(ValueGram::new(dim, d)),
+        }
+    }
+
+    pub fn n_rows(&self) -> u64 {
+        match self {
+            Gram::Counts(g) => g.n_rows,
+            Gram::Values(g) => g.n_rows,
+        }
+    }
+
+    pub fn dim(&self) -> usize {
+        match self {
+            Gram::Counts(g) => g.dim,
+            Gram::Values(g) => g.dim,
+        }
+    }
+
+    /// Σ v_i.
+    pub fn sum(&self, i: usize) -> f64 {
+        match self {
+            Gram::Counts(g) => g.sums[i] as f64,
+            Gram::Values(g) => g.sums[i],
+        }
+    }
+
+    /// Σ v_i².
+    pub fn square_sum(&self, i: usize) -> f64 {
+        match self {
+            Gram::Counts(g) => g.square_sum(i) as f64,
+            Gram::Values(g) => g.product_sum(i, i),
+        }
+    }
+
+    /// n · Σ v_i v_j − Σ v_i · Σ v_j: n² times the covariance of entries i
+    /// and j (exact before the last rounding for counts).
+    pub fn centred(&self, i: usize, j: usize) -> f64 {
+        match self {
+            Gram::Counts(g) => g.centred_product(i, j) as f64,
+            Gram::Values(g) => g.n_rows as f64 * g.product_sum(i, j) - g.sums[i] * g.sums[j],
+        }
+    }
+
+    /// Whether entry i never varied over the rows: exactly for counts; for
+    /// features, a variance below 1e-12 of the mean square (rounding).
+    pub fn is_constant(&self, i: usize) -> bool {
+        match self {
+            Gram::Counts(g) => g.centred_product(i, i) == 0,
+            Gram::Values(g) => {
+                let n = g.n_rows as f64;
+                self.centred(i, i) <= 1e-12 * n * g.product_sum(i, i)
+            }
+        }
+    }
+
+    /// The full symmetric Σ v vᵀ as f64, row-major.
+    pub fn to_f64_symmetric(&self) -> Vec<f64> {
+        match self {
+            Gram::Counts(g) => g.to_f64_symmetric(),
+            Gram::Values(g) => {
+                assert!(
+                    !g.diagonal_only,
+                    "a diagonal-only gram has no off-diagonal sums"
+                );
+                let n = g.dim;
+                let mut out = vec![0.0; n * n];
+                for i in 0..n {
+                    for j in i..n {
+                        let v = g.upper[i * n + j];
+                        out[i * n + j] = v;
+                        out[j * n + i] = v;
+                    }
+                }
+                out
+            }
+        }
+    }
+
+    pub fn add_assign(&mut self, other: &Gram) {
+        match (self, other) {
+            (Gram::Counts(a), Gram::Counts(b)) => a.add_assign(b),
+            (Gram::Values(a), Gram::Values(b)) => {
+                for (x, y) in a.upper.iter_mut().zip(&b.upper) {
+                    *x += y;
+                }
+                for (x, y) in a.sums.iter_mut().zip(&b.sums) {
+                    *x += y;
+                }
+                a.n_rows += b.n_rows;
+            }
+            _ => panic!("sums of counts and of features do not add"),
+        }
+    }
+
+    pub fn sub_assign(&mut self, other: &Gram) {
+        match (self, other) {
+            (Gram::Counts(a), Gram::Counts(b)) => a.sub_assign(b),
+            (Gram::Values(a), Gram::Values(b)) => {
+                for (x, y) in a.upper.iter_mut().zip(&b.upper) {
+                    *x -= y;
+                }
+                for (x, y) in a.sums.iter_mut().zip(&b.sums) {
+                    *x -= y;
+                }
+                a.n_rows -= b.n_rows;
+            }
+            _ => panic!("sums of counts and of features do not subtract"),
+        }
+    }
+}
+
 /// Dense f64 sums: Σ a bᵀ with a of length `rows` and b of length `cols`.
 #[derive(Clone, Debug, PartialEq)]
 pub struct CrossSums {

@@ -38,6 +38,10 @@ pub enum TrainError {
         name: String,
         available: Vec<String>,
     },
+    #[error(
+        "the {decoder} needs spike counts, and this block holds continuous features (features.npy); train a kalman or wiener decoder on it, or give a block of counts"
+    )]
+    NeedsCounts { decoder: &'static str },
     #[error("option {key}: {problem}")]
     Option { key: &'static str, problem: String },
     #[error("only {bins} training bins; the fit needs at least {needed}")]

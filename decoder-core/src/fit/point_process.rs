@@ -21,7 +21,7 @@ use crate::decoders::point_process::{ChannelGlm, PointProcessModel};
 use crate::fit::TrainError;
 use crate::fit::glm::{GlmDesigns, GlmError, GlmFitOptions, fit_poisson_many};
 use crate::fit::kalman::{StateSource, fill_state, state_sources};
-use crate::fit::rows::each_row;
+use crate::fit::rows::each_count_row;
 use crate::formats::block_rows::BlockRows;
 use crate::linalg::Mat;
 
@@ -103,6 +103,11 @@ impl<'a> ChannelDesigns<'a> {
         channels: Vec<usize>,
     ) -> Result<ChannelDesigns<'a>, TrainError> {
         let info = source.info();
+        if info.input != crate::wire::packet::BinKind::Counts {
+            return Err(TrainError::NeedsCounts {
+                decoder: "point-process decoder",
+            });
+        }
         if !info.has_kinematics {
             return Err(TrainError::NoKinematics);
         }
@@ -164,7 +169,7 @@ impl<'a> ChannelDesigns<'a> {
         let mut ahead = vec![0usize; span];
         let edges = &info.edges;
         let mut next_edge = 0;
-        each_row(self.source, k, |t, counts, kin| {
+        each_count_row(self.source, k, |t, counts, kin| {
             if edges.get(next_edge) == Some(&t) {
                 // Another block starts: nothing before it reaches its
                 // rows, as history or as coupling.
@@ -393,7 +398,7 @@ pub fn fit_dynamics(
     let mut s00 = DMatrix::<f64>::zeros(d, d);
     let mut s10 = DMatrix::<f64>::zeros(d, d);
     let mut mean = vec![0.0; d];
-    each_row(session, k, |b, _, kin| {
+    each_count_row(session, k, |b, _, kin| {
         fill_state(kin, sources, &mut x);
         if b > 0 {
             for i in 0..d {
@@ -418,7 +423,7 @@ pub fn fit_dynamics(
     let a = &s10 * inv;
     let mut w = DMatrix::<f64>::zeros(d, d);
     let mut p0 = Mat::zeros(d, d);
-    each_row(session, k, |b, _, kin| {
+    each_count_row(session, k, |b, _, kin| {
         fill_state(kin, sources, &mut x);
         if b > 0 {
             let xb = nalgebra::DVector::from_column_slice(&prev);
@@ -537,6 +542,11 @@ pub fn fit_point_process_with(
     fits: &dyn ChannelFits,
 ) -> Result<(PointProcessModel, PointProcessFitReport), TrainError> {
     let info = rows.info();
+    if info.input != crate::wire::packet::BinKind::Counts {
+        return Err(TrainError::NeedsCounts {
+            decoder: "point-process decoder",
+        });
+    }
     if !info.has_kinematics {
         return Err(TrainError::NoKinematics);
     }

@@ -11,36 +11,59 @@ use std::ops::Range;
 
 use crate::formats::block::BlockError;
 use crate::formats::block_rows::{BlockInfo, BlockRows, RowChunk};
+use crate::wire::packet::{BinKind, BinValues};
 
-/// The last `capacity` rows of a pass (counts and kinematics), newest at
-/// `back = 0`.
+/// The last `capacity` rows of a pass (counts or features, and
+/// kinematics), newest at `back = 0`.
 #[derive(Clone, Debug)]
 pub struct RowWindow {
     n: usize,
     k: usize,
     capacity: usize,
+    input: BinKind,
     counts: Vec<u16>,
+    features: Vec<f32>,
     kinematics: Vec<f64>,
     /// Rows pushed so far.
     pushed: usize,
 }
 
 impl RowWindow {
-    pub fn new(n_channels: usize, n_kinematics: usize, capacity: usize) -> RowWindow {
+    /// A window of rows of `input`.
+    pub fn new(
+        input: BinKind,
+        n_channels: usize,
+        n_kinematics: usize,
+        capacity: usize,
+    ) -> RowWindow {
         let capacity = capacity.max(1);
+        let values = capacity * n_channels;
         RowWindow {
             n: n_channels,
             k: n_kinematics,
             capacity,
-            counts: vec![0; capacity * n_channels],
+            input,
+            counts: vec![0; if input == BinKind::Counts { values } else { 0 }],
+            features: vec![
+                0.0;
+                if input == BinKind::Features {
+                    values
+                } else {
+                    0
+                }
+            ],
             kinematics: vec![0.0; capacity * n_kinematics],
             pushed: 0,
         }
     }
 
-    pub fn push(&mut self, counts: &[u16], kinematics: &[f64]) {
+    pub fn push(&mut self, values: BinValues<'_>, kinematics: &[f64]) {
         let slot = self.pushed % self.capacity;
-        self.counts[slot * self.n..(slot + 1) * self.n].copy_from_slice(counts);
+        let at = slot * self.n..(slot + 1) * self.n;
+        match values {
+            BinValues::Counts(c) => self.counts[at].copy_from_slice(c),
+            BinValues::Features(f) => self.features[at].copy_from_slice(f),
+        }
         if self.k > 0 && !kinematics.is_empty() {
             self.kinematics[slot * self.k..(slot + 1) * self.k].copy_from_slice(kinematics);
         }
@@ -52,10 +75,20 @@ impl RowWindow {
         (self.pushed - 1 - back) % self.capacity
     }
 
-    /// The counts of the row `back` rows before the newest.
+    /// The counts of the row `back` rows before the newest (a window of
+    /// counts).
     pub fn counts(&self, back: usize) -> &[u16] {
         let s = self.slot(back);
         &self.counts[s * self.n..(s + 1) * self.n]
+    }
+
+    /// The values of the row `back` rows before the newest.
+    pub fn values(&self, back: usize) -> BinValues<'_> {
+        let s = self.slot(back);
+        match self.input {
+            BinKind::Counts => BinValues::Counts(&self.counts[s * self.n..(s + 1) * self.n]),
+            BinKind::Features => BinValues::Features(&self.features[s * self.n..(s + 1) * self.n]),
+        }
     }
 
     /// The kinematics of the row `back` rows before the newest.
@@ -65,11 +98,11 @@ impl RowWindow {
     }
 }
 
-/// Calls `visit(row, counts, kinematics)` for every row of a pass.
+/// Calls `visit(row, values, kinematics)` for every row of a pass.
 pub fn each_row(
     source: &dyn BlockRows,
     n_kinematics: usize,
-    mut visit: impl FnMut(usize, &[u16], &[f64]),
+    mut visit: impl FnMut(usize, BinValues<'_>, &[f64]),
 ) -> Result<(), BlockError> {
     let n = source.info().n_channels;
     source.pass(&mut |chunk: RowChunk<'_>| {
@@ -79,8 +112,22 @@ pub fn each_row(
             } else {
                 &chunk.kinematics[r * n_kinematics..(r + 1) * n_kinematics]
             };
-            visit(chunk.first + r, &chunk.counts[r * n..(r + 1) * n], kin);
+            visit(chunk.first + r, chunk.values(r, n), kin);
         }
+    })
+}
+
+/// [`each_row`] for a pass that reads counts: a block of features is
+/// refused before such a pass (the point-process fits and the click
+/// decoder), so a row of features here is a bug.
+pub fn each_count_row(
+    source: &dyn BlockRows,
+    n_kinematics: usize,
+    mut visit: impl FnMut(usize, &[u16], &[f64]),
+) -> Result<(), BlockError> {
+    each_row(source, n_kinematics, |t, values, kin| match values {
+        BinValues::Counts(c) => visit(t, c, kin),
+        BinValues::Features(_) => unreachable!("a pass over counts was handed features"),
     })
 }
 
@@ -104,10 +151,10 @@ pub fn each_segment_row(
             .flat_map(|(g, segs)| segs.iter().map(move |s| (s.clone(), g)))
             .collect(),
     );
-    let mut window = RowWindow::new(n, k, window_rows);
-    each_row(source, k, |t, counts, kin| {
+    let mut window = RowWindow::new(info.input, n, k, window_rows);
+    each_row(source, k, |t, values, kin| {
         if let Some((seg, g)) = walk.at(t) {
-            window.push(counts, kin);
+            window.push(values, kin);
             visit(g, t - seg.start, &window);
         }
     })
@@ -204,7 +251,16 @@ impl BlockRows for Without<'_> {
                     visit(RowChunk {
                         first: out_first,
                         rows: b - a,
-                        counts: &chunk.counts[a * n..b * n],
+                        counts: if chunk.counts.is_empty() {
+                            &[]
+                        } else {
+                            &chunk.counts[a * n..b * n]
+                        },
+                        features: if chunk.features.is_empty() {
+                            &[]
+                        } else {
+                            &chunk.features[a * n..b * n]
+                        },
                         kinematics: if chunk.kinematics.is_empty() {
                             &[]
                         } else {
@@ -230,7 +286,9 @@ mod tests {
             bin_width: BinWidth::from_us(20_000).unwrap(),
             n_bins,
             n_channels: 2,
+            input: BinKind::Counts,
             counts: (0..2 * n_bins as u16).collect(),
+            features: Vec::new(),
             kinematic_names: vec!["vel_x".into()],
             kinematics: Some(crate::linalg::Mat {
                 rows: n_bins,
@@ -251,7 +309,7 @@ mod tests {
         let w = Without::new(&b, vec![15..30, 3..6, 0..1]);
         assert_eq!(w.info().n_bins, 20 - 1 - 3 - 5);
         let mut rows = Vec::new();
-        each_row(&w, 1, |t, c, x| rows.push((t, c[0], x[0]))).unwrap();
+        each_count_row(&w, 1, |t, c, x| rows.push((t, c[0], x[0]))).unwrap();
         let kept: Vec<usize> = (1..3).chain(6..15).collect();
         assert_eq!(rows.len(), kept.len());
         for (i, (t, c, x)) in rows.into_iter().enumerate() {
@@ -261,9 +319,9 @@ mod tests {
 
     #[test]
     fn the_window_looks_back_and_the_walk_finds_segments() {
-        let mut w = RowWindow::new(1, 1, 3);
+        let mut w = RowWindow::new(BinKind::Counts, 1, 1, 3);
         for t in 0..5u16 {
-            w.push(&[t], &[f64::from(t)]);
+            w.push(BinValues::Counts(&[t]), &[f64::from(t)]);
         }
         assert_eq!((w.counts(0)[0], w.counts(2)[0]), (4, 2));
         assert_eq!(w.kinematics(1)[0], 3.0);

@@ -12,10 +12,11 @@ use serde::{Deserialize, Serialize};
 use crate::decoders::wiener::WienerModel;
 use crate::fit::TrainError;
 use crate::fit::kalman::StateScratch;
-use crate::fit::least_squares::{CountGram, CrossSums, nonzero_counts};
+use crate::fit::least_squares::{CrossSums, Gram, nonzero_counts};
 use crate::fit::rows::{RowWindow, each_segment_row};
 use crate::formats::block_rows::{BlockInfo, BlockRows};
 use crate::linalg::Mat;
+use crate::wire::packet::{BinKind, BinValues};
 
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct WienerFitOptions {
@@ -45,18 +46,20 @@ impl Default for WienerFitOptions {
     }
 }
 
-/// Sums over training bins: Σ φ φᵀ exactly in integers, Σ φ yᵀ, Σ y.
+/// Sums over training bins: Σ φ φᵀ (exactly in integers for counts), Σ φ
+/// yᵀ, Σ y.
 #[derive(Clone, Debug, PartialEq)]
 pub struct WienerStats {
-    pub gram: CountGram,
+    pub gram: Gram,
     pub sfy: CrossSums,
     pub sy: Vec<f64>,
 }
 
 impl WienerStats {
-    pub fn new(n_channels: usize, taps: usize, n_outputs: usize) -> WienerStats {
+    /// Empty sums over lagged rows of `input` (counts or features).
+    pub fn new(input: BinKind, n_channels: usize, taps: usize, n_outputs: usize) -> WienerStats {
         WienerStats {
-            gram: CountGram::new(n_channels * taps),
+            gram: Gram::new(input, n_channels * taps, false),
             sfy: CrossSums::new(n_channels * taps, n_outputs),
             sy: vec![0.0; n_outputs],
         }
@@ -74,20 +77,39 @@ impl WienerStats {
         since_start: usize,
         scratch: &mut StateScratch,
     ) {
-        let StateScratch { x: y, nz, .. } = scratch;
+        let StateScratch {
+            x: y, nz, dense, ..
+        } = scratch;
         if since_start + 1 < lag + taps {
             return;
         }
-        let n = self.gram.dim / taps.max(1);
-        nz.clear();
-        for a in 0..taps {
-            nonzero_counts(window.counts(lag + a), a * n, nz);
-        }
+        let n = self.gram.dim() / taps.max(1);
         let kin = window.kinematics(0);
         y.clear();
         y.extend(output_cols.iter().map(|&c| kin[c]));
-        self.gram.add_sparse(nz);
-        self.sfy.add_sparse_outer(nz, y);
+        match &mut self.gram {
+            Gram::Counts(g) => {
+                nz.clear();
+                for a in 0..taps {
+                    let BinValues::Counts(c) = window.values(lag + a) else {
+                        unreachable!("sums of counts were handed features")
+                    };
+                    nonzero_counts(c, a * n, nz);
+                }
+                g.add_sparse(nz);
+                self.sfy.add_sparse_outer(nz, y);
+            }
+            Gram::Values(g) => {
+                dense.resize(n * taps, 0.0);
+                for a in 0..taps {
+                    window
+                        .values(lag + a)
+                        .to_f64(&mut dense[a * n..(a + 1) * n]);
+                }
+                g.add_dense(dense);
+                self.sfy.add_outer(dense, y);
+            }
+        }
         for (s, v) in self.sy.iter_mut().zip(y.iter()) {
             *s += v;
         }
@@ -106,7 +128,7 @@ impl WienerStats {
         let n = info.n_channels;
         let mut stats: Vec<WienerStats> = groups
             .iter()
-            .map(|_| WienerStats::new(n, taps, output_cols.len()))
+            .map(|_| WienerStats::new(info.input, n, taps, output_cols.len()))
             .collect();
         let mut scratch = StateScratch::default();
         each_segment_row(source, groups, lag + taps, |g, since_start, window| {
@@ -197,8 +219,8 @@ pub fn fit_wiener_from_stats(
     options: &WienerFitOptions,
     n_channels: usize,
 ) -> Result<WienerModel, TrainError> {
-    let f = stats.gram.dim;
-    let t = stats.gram.n_rows;
+    let f = stats.gram.dim();
+    let t = stats.gram.n_rows();
     if t < 2 {
         return Err(TrainError::TooFewBins { bins: t, needed: 2 });
     }
@@ -208,7 +230,7 @@ pub fn fit_wiener_from_stats(
     let mut g = DMatrix::<f64>::zeros(f + 1, f + 1);
     g[(0, 0)] = t as f64;
     for i in 0..f {
-        let s = stats.gram.sums[i] as f64;
+        let s = stats.gram.sum(i);
         g[(0, i + 1)] = s;
         g[(i + 1, 0)] = s;
         for j in 0..f {
@@ -230,7 +252,7 @@ pub fn fit_wiener_from_stats(
     })?;
     let w = chol.solve(&rhs).transpose();
     let mean_counts = (0..n_channels)
-        .map(|ch| stats.gram.sums[ch] as f64 / t as f64)
+        .map(|ch| stats.gram.sum(ch) / t as f64)
         .collect();
     let model = WienerModel {
         outputs: options.outputs.clone(),
@@ -262,27 +284,27 @@ pub fn fit_wiener_from_block_stats(
 ) -> Result<WienerModel, TrainError> {
     let kept = keep
         .and_then(|k| blocks.get(k))
-        .filter(|b| b.gram.n_rows > 0);
-    let blocks: Vec<&WienerStats> = blocks.iter().filter(|b| b.gram.n_rows > 0).collect();
-    let t: u64 = blocks.iter().map(|b| b.gram.n_rows).sum();
+        .filter(|b| b.gram.n_rows() > 0);
+    let blocks: Vec<&WienerStats> = blocks.iter().filter(|b| b.gram.n_rows() > 0).collect();
+    let t: u64 = blocks.iter().map(|b| b.gram.n_rows()).sum();
     let Some(last) = kept.or(blocks.last().copied()).filter(|_| t >= 2) else {
         return Err(TrainError::TooFewBins { bins: t, needed: 2 });
     };
-    let f = last.gram.dim;
+    let f = last.gram.dim();
     let d_out = last.sy.len();
     let mut g = DMatrix::<f64>::zeros(f, f);
     let mut rhs = DMatrix::<f64>::zeros(f, d_out);
     for b in &blocks {
-        let nb = b.gram.n_rows as f64;
+        let nb = b.gram.n_rows() as f64;
         for i in 0..f {
             for j in i..f {
-                let v = b.gram.centred_product(i, j) as f64 / nb;
+                let v = b.gram.centred(i, j) / nb;
                 g[(i, j)] += v;
                 if j != i {
                     g[(j, i)] += v;
                 }
             }
-            let si = b.gram.sums[i] as f64;
+            let si = b.gram.sum(i);
             for o in 0..d_out {
                 rhs[(i, o)] += b.sfy.data[i * d_out + o] - si * b.sy[o] / nb;
             }
@@ -297,13 +319,13 @@ pub fn fit_wiener_from_block_stats(
             .into(),
     })?;
     let w = chol.solve(&rhs); // f × d_out
-    let nl = last.gram.n_rows as f64;
+    let nl = last.gram.n_rows() as f64;
     let mut weights = DMatrix::<f64>::zeros(d_out, f + 1);
     for o in 0..d_out {
         let mut intercept = last.sy[o] / nl;
         for i in 0..f {
             weights[(o, i + 1)] = w[(i, o)];
-            intercept -= w[(i, o)] * last.gram.sums[i] as f64 / nl;
+            intercept -= w[(i, o)] * last.gram.sum(i) / nl;
         }
         weights[(o, 0)] = intercept;
     }
@@ -312,9 +334,7 @@ pub fn fit_wiener_from_block_stats(
         taps: options.taps,
         n_channels,
         weights: Mat::from_dmatrix(&weights),
-        mean_counts: (0..n_channels)
-            .map(|ch| last.gram.sums[ch] as f64 / nl)
-            .collect(),
+        mean_counts: (0..n_channels).map(|ch| last.gram.sum(ch) / nl).collect(),
     };
     model
         .validate()

@@ -16,15 +16,16 @@ use ndarray_npy::{ReadNpyError, ReadNpyExt, WriteNpyExt};
 
 use crate::bin_width::BinWidth;
 pub use crate::formats::block_dir::{
-    BlockError, BlockManifest, CLICK_FILE, COUNTS_FILE, KINEMATICS_FILE, MANIFEST_FILE,
-    SESSION_FORMAT_VERSION, TRIALS_FILE, Trial, VALID_FILE, write_atomic, write_manifest,
-    write_trials,
+    BlockError, BlockManifest, CLICK_FILE, COUNTS_FILE, FEATURES_FILE, KINEMATICS_FILE,
+    MANIFEST_FILE, SESSION_FORMAT_VERSION, TRIALS_FILE, Trial, VALID_FILE, write_atomic,
+    write_manifest, write_manifest_naming, write_trials,
 };
 use crate::formats::block_dir::{
     check_kinematics_shape, npy_problem, read_bytes, read_manifest, read_trials,
 };
 use crate::formats::npy_stream::NpyRows;
 use crate::linalg::Mat;
+use crate::wire::packet::{BinKind, BinValues};
 
 /// A block of binned spike counts, with the kinematics recorded in the same
 /// bins when the block is meant for training.
@@ -33,8 +34,15 @@ pub struct Block {
     pub bin_width: BinWidth,
     pub n_bins: usize,
     pub n_channels: usize,
-    /// `n_bins × n_channels` counts, bin after bin (the bin packet's layout).
+    /// What the block holds per channel and bin: spike counts
+    /// (`counts.npy`) or continuous features (`features.npy`).
+    pub input: BinKind,
+    /// `n_bins × n_channels` counts, bin after bin (the bin packet's
+    /// layout); empty in a block of features.
     pub counts: Vec<u16>,
+    /// `n_bins × n_channels` features as f32 (the bin packet's precision),
+    /// bin after bin; empty in a block of counts.
+    pub features: Vec<f32>,
     /// Names of the kinematics columns, from the manifest.
     pub kinematic_names: Vec<String>,
     /// `n_bins × kinematic_names.len()`, or `None` for a block without
@@ -63,16 +71,26 @@ impl Block {
         }
         let manifest_path = dir.join(MANIFEST_FILE);
         let manifest = read_manifest(&manifest_path)?;
-        let counts_path = dir.join(COUNTS_FILE);
-        let (n_bins, n_channels, counts) = read_counts(&counts_path)?;
+        let (input, values_path) = values_file(dir)?;
+        let (n_bins, n_channels, counts, features) = match input {
+            BinKind::Counts => {
+                let (t, n, c) = read_counts(&values_path)?;
+                (t, n, c, Vec::new())
+            }
+            BinKind::Features => {
+                let (t, n, f) = read_features(&values_path)?;
+                (t, n, Vec::new(), f)
+            }
+        };
         if let Some(labels) = &manifest.channel_labels
             && labels.len() != n_channels
         {
             return Err(BlockError::Manifest {
                 path: manifest_path,
                 problem: format!(
-                    "key channel_labels has {} labels but counts.npy has {n_channels} channels",
-                    labels.len()
+                    "key channel_labels has {} labels but {} has {n_channels} channels",
+                    labels.len(),
+                    values_file_name(input)
                 ),
             });
         }
@@ -104,7 +122,9 @@ impl Block {
             bin_width: BinWidth::from_ms(manifest.bin_ms).expect("checked with the manifest"),
             n_bins,
             n_channels,
+            input,
             counts,
+            features,
             kinematic_names: manifest.kinematics,
             kinematics,
             trials,
@@ -126,9 +146,20 @@ impl Block {
             self.notes.clone(),
         )?;
 
-        let counts = Array2::from_shape_vec((self.n_bins, self.n_channels), self.counts.clone())
-            .expect("counts length matches shape");
-        write_atomic(&dir.join(COUNTS_FILE), &npy_bytes(&counts))?;
+        match self.input {
+            BinKind::Counts => {
+                let counts =
+                    Array2::from_shape_vec((self.n_bins, self.n_channels), self.counts.clone())
+                        .expect("counts length matches shape");
+                write_atomic(&dir.join(COUNTS_FILE), &npy_bytes(&counts))?;
+            }
+            BinKind::Features => {
+                let features =
+                    Array2::from_shape_vec((self.n_bins, self.n_channels), self.features.clone())
+                        .expect("features length matches shape");
+                write_atomic(&dir.join(FEATURES_FILE), &npy_bytes(&features))?;
+            }
+        }
         if let Some(kin) = &self.kinematics {
             let arr =
                 Array2::from_shape_vec((kin.rows, kin.cols), kin.data.clone()).expect("shape");
@@ -198,7 +229,16 @@ impl Block {
             k += usize::from(ok);
         }
         kept_before.push(k);
-        let mut counts = Vec::with_capacity(k * n);
+        let mut counts = Vec::with_capacity(if self.input == BinKind::Counts {
+            k * n
+        } else {
+            0
+        });
+        let mut features = Vec::with_capacity(if self.input == BinKind::Features {
+            k * n
+        } else {
+            0
+        });
         let cols = self.kinematic_names.len();
         let mut kin = Vec::with_capacity(if self.kinematics.is_some() {
             k * cols
@@ -206,7 +246,10 @@ impl Block {
             0
         });
         for (b, _) in valid.iter().enumerate().filter(|(_, ok)| **ok) {
-            counts.extend_from_slice(self.bin_counts(b));
+            match self.bin_values(b) {
+                BinValues::Counts(c) => counts.extend_from_slice(c),
+                BinValues::Features(f) => features.extend_from_slice(f),
+            }
             if let Some(m) = &self.kinematics {
                 kin.extend_from_slice(m.row(b));
             }
@@ -219,7 +262,9 @@ impl Block {
             bin_width: self.bin_width,
             n_bins: k,
             n_channels: n,
+            input: self.input,
             counts,
+            features,
             kinematic_names: self.kinematic_names.clone(),
             kinematics: self.kinematics.as_ref().map(|_| Mat {
                 rows: k,
@@ -240,9 +285,18 @@ impl Block {
         }
     }
 
-    /// The counts of one bin.
+    /// The counts of one bin (of a block of counts).
     pub fn bin_counts(&self, bin: usize) -> &[u16] {
         &self.counts[bin * self.n_channels..(bin + 1) * self.n_channels]
+    }
+
+    /// The values of one bin, of the block's kind.
+    pub fn bin_values(&self, bin: usize) -> BinValues<'_> {
+        let (a, b) = (bin * self.n_channels, (bin + 1) * self.n_channels);
+        match self.input {
+            BinKind::Counts => BinValues::Counts(&self.counts[a..b]),
+            BinKind::Features => BinValues::Features(&self.features[a..b]),
+        }
     }
 
     /// Index of a kinematics column by name.
@@ -255,7 +309,12 @@ impl Block {
 /// dimensions, at least one bin and one channel, at most the 16384
 /// channels a bin packet carries.
 pub(crate) fn open_counts(path: &Path) -> Result<NpyRows, BlockError> {
-    let rows = NpyRows::open(path, "counts.npy")?;
+    open_values(path, BinKind::Counts)
+}
+
+/// Opens a block's counts.npy or features.npy, its shape checked.
+pub(crate) fn open_values(path: &Path, kind: BinKind) -> Result<NpyRows, BlockError> {
+    let rows = NpyRows::open(path, values_file_name(kind))?;
     if rows.ndim != 2 {
         return Err(BlockError::Npy {
             path: path.to_path_buf(),
@@ -281,6 +340,40 @@ pub(crate) fn open_counts(path: &Path) -> Result<NpyRows, BlockError> {
         )));
     }
     Ok(rows)
+}
+
+/// The file of a session directory that holds its bins' values, and its
+/// kind: `counts.npy` or `features.npy`, exactly one of them.
+pub(crate) fn values_file(dir: &Path) -> Result<(BinKind, std::path::PathBuf), BlockError> {
+    let (counts, features) = (dir.join(COUNTS_FILE), dir.join(FEATURES_FILE));
+    match (counts.exists(), features.exists()) {
+        (true, true) => Err(BlockError::Shape {
+            path: dir.to_path_buf(),
+            problem: "holds both counts.npy and features.npy; a block holds exactly one of them (move one into a block of its own)".into(),
+        }),
+        (false, true) => Ok((BinKind::Features, features)),
+        _ => Ok((BinKind::Counts, counts)),
+    }
+}
+
+/// The file name of a block's values of `kind`.
+pub fn values_file_name(kind: BinKind) -> &'static str {
+    match kind {
+        BinKind::Counts => COUNTS_FILE,
+        BinKind::Features => FEATURES_FILE,
+    }
+}
+
+/// Reads features.npy into f32, a chunk of rows at a time.
+fn read_features(path: &Path) -> Result<(usize, usize, Vec<f32>), BlockError> {
+    let mut rows = open_values(path, BinKind::Features)?;
+    let (n_bins, n_channels) = (rows.rows, rows.cols);
+    let mut features = Vec::with_capacity(n_bins * n_channels);
+    let mut chunk = Vec::new();
+    while rows.read_features(4096, &mut chunk)? > 0 {
+        features.extend_from_slice(&chunk);
+    }
+    Ok((n_bins, n_channels, features))
 }
 
 /// Reads counts.npy straight into u16, a chunk of rows at a time, so the

@@ -17,6 +17,7 @@ use crate::bin_width::BinWidth;
 
 pub const MANIFEST_FILE: &str = "manifest.toml";
 pub const COUNTS_FILE: &str = "counts.npy";
+pub const FEATURES_FILE: &str = "features.npy";
 pub const KINEMATICS_FILE: &str = "kinematics.npy";
 pub const TRIALS_FILE: &str = "trials.csv";
 pub const VALID_FILE: &str = "valid.npy";
@@ -36,7 +37,7 @@ pub struct Trial {
 
 #[derive(Debug, thiserror::Error)]
 pub enum BlockError {
-    #[error("{}: {what} is missing; a session directory needs manifest.toml and counts.npy (and kinematics.npy for training)", path.display())]
+    #[error("{}: {what} is missing; a session directory needs manifest.toml and counts.npy or features.npy (and kinematics.npy for training)", path.display())]
     Missing { path: PathBuf, what: &'static str },
     #[error("{}: cannot read: {source}", path.display())]
     Io {
@@ -94,6 +95,9 @@ pub(crate) struct ManifestFile {
     pub(crate) channel_labels: Option<Vec<String>>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub(crate) notes: Option<String>,
+    /// What `features.npy` holds, for example "spike band power".
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub(crate) features: Option<String>,
 }
 
 pub(crate) fn read_bytes(path: &Path, what: &'static str) -> Result<Vec<u8>, BlockError> {
@@ -119,6 +123,19 @@ pub fn write_manifest(
     channel_labels: Option<Vec<String>>,
     notes: Option<String>,
 ) -> Result<(), BlockError> {
+    write_manifest_naming(dir, bin_width, kinematic_names, channel_labels, notes, None)
+}
+
+/// [`write_manifest`] for a block of features: `features` says what they
+/// are (the manifest's `features` key).
+pub fn write_manifest_naming(
+    dir: &Path,
+    bin_width: BinWidth,
+    kinematic_names: &[String],
+    channel_labels: Option<Vec<String>>,
+    notes: Option<String>,
+    features: Option<String>,
+) -> Result<(), BlockError> {
     fs::create_dir_all(dir).map_err(|source| BlockError::Write {
         path: dir.to_path_buf(),
         source,
@@ -129,6 +146,7 @@ pub fn write_manifest(
         kinematics: kinematic_names.to_vec(),
         channel_labels,
         notes,
+        features,
     };
     let text = toml::to_string(&manifest).expect("manifest serialises");
     write_atomic(&dir.join(MANIFEST_FILE), text.as_bytes())

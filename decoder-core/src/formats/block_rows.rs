@@ -11,18 +11,21 @@
 use std::path::{Path, PathBuf};
 
 use crate::bin_width::BinWidth;
-use crate::formats::block::{Block, open_counts};
+use crate::formats::block::{Block, open_values, values_file, values_file_name};
 use crate::formats::block_dir::{
-    BlockError, BlockManifest, COUNTS_FILE, KINEMATICS_FILE, TRIALS_FILE, Trial, VALID_FILE,
+    BlockError, BlockManifest, KINEMATICS_FILE, TRIALS_FILE, Trial, VALID_FILE,
     check_kinematics_shape, read_trials, renumber_trials,
 };
 use crate::formats::npy_stream::NpyRows;
+use crate::wire::packet::{BinKind, BinValues};
 
 /// What a block is, without its rows: enough to plan folds and check
 /// options before the first pass.
 #[derive(Clone, Debug, PartialEq)]
 pub struct BlockInfo {
     pub bin_width: BinWidth,
+    /// What the rows hold per channel: counts or continuous features.
+    pub input: BinKind,
     /// Valid rows, the ones a pass visits.
     pub n_bins: usize,
     pub n_channels: usize,
@@ -84,14 +87,26 @@ impl BlockInfo {
 }
 
 /// Consecutive valid rows: `rows` of them from row `first`, their counts
-/// (`rows × n_channels`) and kinematics (`rows × kinematic_names.len()`,
-/// empty for a block without kinematics).
+/// or features (`rows × n_channels`, the other empty) and kinematics
+/// (`rows × kinematic_names.len()`, empty for a block without kinematics).
 #[derive(Clone, Copy, Debug)]
 pub struct RowChunk<'a> {
     pub first: usize,
     pub rows: usize,
     pub counts: &'a [u16],
+    pub features: &'a [f32],
     pub kinematics: &'a [f64],
+}
+
+impl<'a> RowChunk<'a> {
+    /// Row `r`'s values (`n` channels), of whichever kind the chunk holds.
+    pub fn values(&self, r: usize, n: usize) -> BinValues<'a> {
+        if self.features.is_empty() {
+            BinValues::Counts(&self.counts[r * n..(r + 1) * n])
+        } else {
+            BinValues::Features(&self.features[r * n..(r + 1) * n])
+        }
+    }
 }
 
 /// Consecutive rows, valid or not, as a replay decodes them: `rows` of
@@ -102,12 +117,22 @@ pub struct AllRowsChunk<'a> {
     pub first: usize,
     pub rows: usize,
     pub counts: &'a [u16],
+    pub features: &'a [f32],
     pub kinematics: &'a [f64],
     /// One per row; empty when every row is valid.
     pub valid: &'a [bool],
 }
 
-impl AllRowsChunk<'_> {
+impl<'a> AllRowsChunk<'a> {
+    /// Row `r`'s values (`n` channels), of whichever kind the chunk holds.
+    pub fn values(&self, r: usize, n: usize) -> BinValues<'a> {
+        if self.features.is_empty() {
+            BinValues::Counts(&self.counts[r * n..(r + 1) * n])
+        } else {
+            BinValues::Features(&self.features[r * n..(r + 1) * n])
+        }
+    }
+
     pub fn is_valid(&self, row: usize) -> bool {
         self.valid.is_empty() || self.valid[row]
     }
@@ -136,6 +161,16 @@ impl Block {
     pub fn data_sha256(&self) -> String {
         data_sha256(self).expect("a block in memory reads")
     }
+
+    /// The counts and the features of bins `a..b`, one of them empty
+    /// (whichever the block does not hold).
+    fn values_of(&self, a: usize, b: usize) -> (&[u16], &[f32]) {
+        let n = self.n_channels;
+        match self.input {
+            BinKind::Counts => (&self.counts[a * n..b * n], &[]),
+            BinKind::Features => (&[], &self.features[a * n..b * n]),
+        }
+    }
 }
 
 impl BlockRows for Block {
@@ -149,6 +184,7 @@ impl BlockRows for Block {
         };
         BlockInfo {
             bin_width: self.bin_width,
+            input: self.input,
             n_bins: self.n_valid(),
             n_channels: self.n_channels,
             kinematic_names: self.kinematic_names.clone(),
@@ -163,14 +199,16 @@ impl BlockRows for Block {
     }
 
     fn pass(&self, visit: &mut dyn FnMut(RowChunk<'_>)) -> Result<(), BlockError> {
-        let (n, k) = (self.n_channels, self.kinematic_names.len());
+        let k = self.kinematic_names.len();
         let mut first = 0;
         // Each run of valid bins is contiguous in memory: no copy.
         for run in self.valid_runs() {
+            let (counts, features) = self.values_of(run.start, run.end);
             visit(RowChunk {
                 first,
                 rows: run.len(),
-                counts: &self.counts[run.start * n..run.end * n],
+                counts,
+                features,
                 kinematics: self
                     .kinematics
                     .as_ref()
@@ -188,14 +226,16 @@ impl AllRows for Block {
     }
 
     fn pass_all(&self, visit: &mut dyn FnMut(AllRowsChunk<'_>)) -> Result<(), BlockError> {
-        let (n, k) = (self.n_channels, self.kinematic_names.len());
+        let k = self.kinematic_names.len();
         let mut first = 0;
         while first < self.n_bins {
             let end = (first + CHUNK_ROWS).min(self.n_bins);
+            let (counts, features) = self.values_of(first, end);
             visit(AllRowsChunk {
                 first,
                 rows: end - first,
-                counts: &self.counts[first * n..end * n],
+                counts,
+                features,
                 kinematics: self
                     .kinematics
                     .as_ref()
@@ -208,8 +248,8 @@ impl AllRows for Block {
     }
 }
 
-/// SHA-256 over the valid rows as decoded: counts as u16 little-endian,
-/// row after row, then kinematics as f64 little-endian when present (two
+/// SHA-256 over the valid rows as decoded: counts as u16 little-endian
+/// (features as f32 little-endian), row after row, then kinematics as f64 little-endian when present (two
 /// passes). The same data stored with another integer dtype hashes the
 /// same, so a model's `data_sha256` identifies the numbers it was trained
 /// on.
@@ -219,6 +259,9 @@ pub fn data_sha256(rows: &dyn BlockRows) -> Result<String, BlockError> {
     rows.pass(&mut |chunk| {
         for c in chunk.counts {
             hasher.update(c.to_le_bytes());
+        }
+        for f in chunk.features {
+            hasher.update(f.to_le_bytes());
         }
     })?;
     if rows.info().has_kinematics {
@@ -261,27 +304,36 @@ impl BlockFiles {
     /// tiny chunks to cross every boundary).
     pub fn open_with_chunk(dir: &Path, chunk_rows: usize) -> Result<BlockFiles, BlockError> {
         let manifest = BlockManifest::read(dir)?;
-        let counts_path = dir.join(COUNTS_FILE);
-        let counts = open_counts(&counts_path)?;
-        let (file_bins, n_channels) = (counts.rows, counts.cols);
+        let (input, values_path) = values_file(dir)?;
+        let values = open_values(&values_path, input)?;
+        let (file_bins, n_channels) = (values.rows, values.cols);
         if let Some(labels) = &manifest.channel_labels
             && labels.len() != n_channels
         {
             return Err(BlockError::Manifest {
                 path: dir.join(crate::formats::block_dir::MANIFEST_FILE),
                 problem: format!(
-                    "key channel_labels has {} labels but counts.npy has {n_channels} channels",
-                    labels.len()
+                    "key channel_labels has {} labels but {} has {n_channels} channels",
+                    labels.len(),
+                    values_file_name(input)
                 ),
             });
         }
-        if !counts.is_integer() {
+        let dtype_problem = match input {
+            BinKind::Counts if !values.is_integer() => Some(format!(
+                "counts have dtype {}; spike counts must be an integer dtype (save with counts.astype(np.uint16))",
+                values.dtype_name()
+            )),
+            BinKind::Features if values.is_integer() => Some(format!(
+                "features have dtype {}; continuous features must be float32 or float64 (counts go in counts.npy)",
+                values.dtype_name()
+            )),
+            _ => None,
+        };
+        if let Some(problem) = dtype_problem {
             return Err(BlockError::Npy {
-                path: counts_path.clone(),
-                problem: format!(
-                    "counts have dtype {}; spike counts must be an integer dtype (save with counts.astype(np.uint16))",
-                    counts.dtype_name()
-                ),
+                path: values_path.clone(),
+                problem,
             });
         }
         let kin_path = dir.join(KINEMATICS_FILE);
@@ -362,6 +414,7 @@ impl BlockFiles {
             dir: dir.to_path_buf(),
             info: BlockInfo {
                 bin_width: manifest.bin_width,
+                input,
                 n_bins,
                 n_channels,
                 kinematic_names: manifest.kinematic_names,
@@ -409,7 +462,7 @@ impl BlockRows for BlockFiles {
     fn pass(&self, visit: &mut dyn FnMut(RowChunk<'_>)) -> Result<(), BlockError> {
         let (n, k) = (self.info.n_channels, self.info.kinematic_names.len());
         let mut first = 0;
-        self.read_chunks(&mut |c, x, valid| {
+        self.read_chunks(&mut |c, f, x, valid| {
             let rows = match valid {
                 Some(v) => {
                     // Keep the valid rows, moved down in place.
@@ -419,7 +472,12 @@ impl BlockRows for BlockFiles {
                             continue;
                         }
                         if kept != r {
-                            c.copy_within(r * n..(r + 1) * n, kept * n);
+                            if !c.is_empty() {
+                                c.copy_within(r * n..(r + 1) * n, kept * n);
+                            }
+                            if !f.is_empty() {
+                                f.copy_within(r * n..(r + 1) * n, kept * n);
+                            }
                             if !x.is_empty() {
                                 x.copy_within(r * k..(r + 1) * k, kept * k);
                             }
@@ -428,13 +486,14 @@ impl BlockRows for BlockFiles {
                     }
                     kept
                 }
-                None => c.len() / n.max(1),
+                None => (c.len() + f.len()) / n.max(1),
             };
             if rows > 0 {
                 visit(RowChunk {
                     first,
                     rows,
-                    counts: &c[..rows * n],
+                    counts: if c.is_empty() { &[] } else { &c[..rows * n] },
+                    features: if f.is_empty() { &[] } else { &f[..rows * n] },
                     kinematics: if x.is_empty() { &[] } else { &x[..rows * k] },
                 });
             }
@@ -451,14 +510,15 @@ impl AllRows for BlockFiles {
     fn pass_all(&self, visit: &mut dyn FnMut(AllRowsChunk<'_>)) -> Result<(), BlockError> {
         let n = self.info.n_channels;
         let (mut first, mut ok) = (0, Vec::new());
-        self.read_chunks(&mut |c, x, valid| {
-            let rows = c.len() / n.max(1);
+        self.read_chunks(&mut |c, f, x, valid| {
+            let rows = (c.len() + f.len()) / n.max(1);
             ok.clear();
             ok.extend(valid.into_iter().flatten().map(|&b| b != 0));
             visit(AllRowsChunk {
                 first,
                 rows,
                 counts: c,
+                features: f,
                 kinematics: x,
                 valid: &ok,
             });
@@ -467,17 +527,18 @@ impl AllRows for BlockFiles {
     }
 }
 
-/// What [`BlockFiles::read_chunks`] hands over per chunk: the counts and
-/// kinematics, mutable so a pass can compact them in place, and the valid
-/// flags.
-type ChunkVisit<'v> = dyn FnMut(&mut Vec<u16>, &mut Vec<f64>, Option<&[u16]>) + 'v;
+/// What [`BlockFiles::read_chunks`] hands over per chunk: the counts (or
+/// the features; the other empty) and kinematics, mutable so a pass can
+/// compact them in place, and the valid flags.
+type ChunkVisit<'v> = dyn FnMut(&mut Vec<u16>, &mut Vec<f32>, &mut Vec<f64>, Option<&[u16]>) + 'v;
 
 impl BlockFiles {
     /// Reads the files a chunk of rows at a time, in step: the counts, the
     /// kinematics (empty without) and `valid.npy` as 0 or 1 (`None`
     /// without), for `visit` to use or compact in place.
     fn read_chunks(&self, visit: &mut ChunkVisit<'_>) -> Result<(), BlockError> {
-        let mut counts = NpyRows::open(&self.dir.join(COUNTS_FILE), "counts.npy")?;
+        let (input, values_path) = values_file(&self.dir)?;
+        let mut values = NpyRows::open(&values_path, values_file_name(input))?;
         let mut kin = if self.info.has_kinematics {
             Some(NpyRows::open(
                 &self.dir.join(KINEMATICS_FILE),
@@ -491,9 +552,12 @@ impl BlockFiles {
         } else {
             None
         };
-        let (mut c, mut x, mut v) = (Vec::new(), Vec::new(), Vec::new());
+        let (mut c, mut f, mut x, mut v) = (Vec::new(), Vec::new(), Vec::new(), Vec::new());
         loop {
-            let got = counts.read_counts(self.chunk_rows, &mut c)?;
+            let got = match input {
+                BinKind::Counts => values.read_counts(self.chunk_rows, &mut c)?,
+                BinKind::Features => values.read_features(self.chunk_rows, &mut f)?,
+            };
             if got == 0 {
                 return Ok(());
             }
@@ -507,7 +571,7 @@ impl BlockFiles {
                 }
                 None => None,
             };
-            visit(&mut c, &mut x, flags);
+            visit(&mut c, &mut f, &mut x, flags);
         }
     }
 }
@@ -651,6 +715,8 @@ mod tests {
     fn block(n_bins: usize, n_channels: usize) -> Block {
         let names: Vec<String> = ["pos_x", "vel_x"].map(String::from).to_vec();
         Block {
+            input: crate::wire::packet::BinKind::Counts,
+            features: Vec::new(),
             bin_width: BinWidth::from_us(20_000).unwrap(),
             n_bins,
             n_channels,

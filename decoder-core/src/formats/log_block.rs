@@ -15,7 +15,7 @@ use ndarray_npy::WriteNpyExt;
 use crate::formats::block::{Block, Trial};
 use crate::formats::session_log::{LogEnd, LogReader, LogRecord, SessionLogError};
 use crate::linalg::Mat;
-use crate::wire::packet::{self, FLAG_BIN_MISSING, VelocityPacket};
+use crate::wire::packet::{self, BinKind, BinValues, FLAG_BIN_MISSING, VelocityPacket};
 use crate::wire::task_packet::{self, Phase, TaskState};
 
 #[derive(Debug, thiserror::Error)]
@@ -97,37 +97,52 @@ pub fn kinematic_names(dims: usize) -> Vec<String> {
 }
 
 /// One pass over a log: `on_slot` gets each answered slot's velocity
-/// packet, in the order sent, with its bin's counts when the bin came and
+/// packet, in the order sent, with its bin's values when the bin came and
 /// was decoded (`None`: a coasted slot); accepted task packets go to
 /// `tasks`. The first copy of a seq is the one the daemon decoded; bins
-/// older than a slot just answered will never be decoded.
+/// older than a slot just answered will never be decoded. Bins are of the
+/// kind the log's first model decodes (counts, or features); returns that
+/// kind.
 fn walk_slots(
     path: &Path,
     reader: &mut LogReader,
     summary: &mut LogBlockSummary,
     tasks: &mut Vec<TaskState>,
-    mut on_slot: impl FnMut(&VelocityPacket, Option<&[u16]>) -> Result<(), LogBlockError>,
-) -> Result<(), LogBlockError> {
+    mut on_slot: impl FnMut(&VelocityPacket, Option<BinValues<'_>>) -> Result<(), LogBlockError>,
+) -> Result<BinKind, LogBlockError> {
     let header = reader.header().clone();
     let n = header.n_channels;
     let bin_us = header.bin_width.us();
-    let mut pending: std::collections::BTreeMap<u64, Vec<u16>> = Default::default();
+    let mut input: Option<BinKind> = None;
+    let mut pending: std::collections::BTreeMap<u64, (Vec<u16>, Vec<f32>)> = Default::default();
     while let Some(record) = reader.next_record() {
         match record {
+            LogRecord::Model { model_file, .. } if input.is_none() => {
+                input = crate::formats::model_file::ModelFile::from_bytes(&model_file, "")
+                    .ok()
+                    .map(|m| m.input);
+            }
             LogRecord::Datagram { bytes, .. } => {
                 let Ok(h) = packet::parse_bin(&bytes) else {
                     continue;
                 };
                 if usize::from(h.channels) != n
                     || h.bin_us != bin_us
-                    || h.kind != packet::BinKind::Counts
+                    || h.kind != input.unwrap_or(BinKind::Counts)
                 {
                     continue;
                 }
-                pending.entry(h.seq).or_insert_with(|| {
-                    let mut c = vec![0u16; n];
-                    packet::read_counts(&bytes, &mut c);
-                    c
+                pending.entry(h.seq).or_insert_with(|| match h.kind {
+                    BinKind::Counts => {
+                        let mut c = vec![0u16; n];
+                        packet::read_counts(&bytes, &mut c);
+                        (c, Vec::new())
+                    }
+                    BinKind::Features => {
+                        let mut f = vec![0f32; n];
+                        packet::read_features(&bytes, &mut f);
+                        (Vec::new(), f)
+                    }
                 });
             }
             LogRecord::Sent { packet: bytes, .. } => {
@@ -136,8 +151,17 @@ fn walk_slots(
                 };
                 let came = pending.remove(&p.seq);
                 pending.retain(|&s, _| s > p.seq);
-                let counts = came.filter(|_| p.flags & FLAG_BIN_MISSING == 0);
-                on_slot(&p, counts.as_deref())?;
+                let values = came
+                    .as_ref()
+                    .filter(|_| p.flags & FLAG_BIN_MISSING == 0)
+                    .map(|(c, f)| {
+                        if f.is_empty() {
+                            BinValues::Counts(c)
+                        } else {
+                            BinValues::Features(f)
+                        }
+                    });
+                on_slot(&p, values)?;
             }
             LogRecord::Task { bytes, .. } => {
                 summary.task_packets += 1;
@@ -162,7 +186,7 @@ fn walk_slots(
         Some(LogEnd::TornTail { .. }) => summary.torn_tail = true,
         _ => {}
     }
-    Ok(())
+    Ok(input.unwrap_or(BinKind::Counts))
 }
 
 /// The first `d` values of `v`, zeros after.
@@ -235,18 +259,29 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
     let header = reader.header().clone();
     let n = header.n_channels;
     let d_out = header.outputs.len();
-    let (mut counts, mut missing, mut seqs) = (Vec::new(), Vec::new(), Vec::new());
+    let (mut counts, mut features) = (Vec::new(), Vec::new());
+    let (mut missing, mut seqs) = (Vec::new(), Vec::new());
     let (mut estimates, mut commands) = (Vec::new(), Vec::new());
     let (mut states, mut sent_ns, mut clicks) = (Vec::new(), Vec::new(), Vec::new());
     let mut tasks = Vec::new();
     let mut summary = LogBlockSummary::default();
-    walk_slots(path, &mut reader, &mut summary, &mut tasks, |p, c| {
+    let mut kind_seen = None;
+    let input = walk_slots(path, &mut reader, &mut summary, &mut tasks, |p, c| {
         states.push(p.state);
         sent_ns.push(p.sent_ns);
         clicks.push((p.click_prob, p.flags & packet::FLAG_CLICK != 0));
+        // A slot without its bin holds zeros of the log's kind, which the
+        // first bin that came tells; until then, counts (fixed up below).
         match c {
-            Some(c) => counts.extend_from_slice(c),
+            Some(BinValues::Counts(c)) => counts.extend_from_slice(c),
+            Some(BinValues::Features(f)) => features.extend_from_slice(f),
+            None if kind_seen == Some(BinKind::Features) => {
+                features.extend(std::iter::repeat_n(0.0, n))
+            }
             None => counts.extend(std::iter::repeat_n(0, n)),
+        }
+        if let Some(v) = c {
+            kind_seen.get_or_insert(v.kind());
         }
         missing.push(c.is_none());
         seqs.push(p.seq);
@@ -255,6 +290,11 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
         Ok(())
     })?;
     let (rows, rt, valid) = rows_and_tasks(path, &seqs, &missing, tasks, &mut summary)?;
+    if input == BinKind::Features && counts.len() + features.len() == rows * n {
+        // Slots before the first bin of features were held as zero counts.
+        features.splice(0..0, std::iter::repeat_n(0.0, counts.len()));
+        counts.clear();
+    }
     let d = rt.dims.unwrap_or(2);
     let mut kin = Mat::zeros(rows, 2 * d);
     let task: Vec<Option<TaskState>> = (0..rows).map(|r| rt.of(r).copied()).collect();
@@ -267,7 +307,9 @@ pub fn read_log_block(path: &Path) -> Result<LogBlock, LogBlockError> {
         bin_width: header.bin_width,
         n_bins: rows,
         n_channels: n,
+        input,
         counts,
+        features,
         kinematic_names: kinematic_names(d),
         kinematics: rt.dims.map(|_| kin),
         trials: rt.dims.map(|_| trials),
@@ -335,7 +377,8 @@ fn rows_and_tasks(
 /// `commands.npy`.
 pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockError> {
     use crate::formats::block::{
-        COUNTS_FILE, KINEMATICS_FILE, VALID_FILE, write_atomic, write_manifest, write_trials,
+        COUNTS_FILE, FEATURES_FILE, KINEMATICS_FILE, VALID_FILE, write_atomic, write_manifest,
+        write_trials,
     };
     use crate::formats::npy_stream::NpyWriter;
     let mut reader = LogReader::open(path)?;
@@ -343,7 +386,7 @@ pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockEr
     let (n, d_out) = (header.n_channels, header.outputs.len());
     let (mut seqs, mut missing, mut tasks) = (Vec::new(), Vec::new(), Vec::new());
     let mut summary = LogBlockSummary::default();
-    walk_slots(path, &mut reader, &mut summary, &mut tasks, |p, c| {
+    let input = walk_slots(path, &mut reader, &mut summary, &mut tasks, |p, c| {
         seqs.push(p.seq);
         missing.push(c.is_none());
         Ok(())
@@ -357,14 +400,17 @@ pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockEr
         None,
         Some(notes(path, &seqs, &summary)),
     )?;
-    let mut counts_out = NpyWriter::create_u16(&dir.join(COUNTS_FILE), rows, n)?;
+    let mut values_out = match input {
+        BinKind::Counts => NpyWriter::create_u16(&dir.join(COUNTS_FILE), rows, n)?,
+        BinKind::Features => NpyWriter::create_f32(&dir.join(FEATURES_FILE), rows, n)?,
+    };
     let mut kin_out = match rt.dims {
         Some(_) => Some(NpyWriter::create(&dir.join(KINEMATICS_FILE), rows, 2 * d)?),
         None => None,
     };
     let mut est_out = NpyWriter::create(&dir.join("estimates.npy"), rows, d_out)?;
     let mut cmd_out = NpyWriter::create(&dir.join("commands.npy"), rows, d_out)?;
-    let zeros = vec![0u16; n];
+    let (zeros, zero_features) = (vec![0u16; n], vec![0f32; n]);
     let mut kin_row = vec![0.0; 2 * d];
     let mut values = Vec::with_capacity(d_out);
     let mut row = 0usize;
@@ -379,7 +425,12 @@ pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockEr
             if row >= rows {
                 return Ok(());
             }
-            counts_out.write_u16_rows(c.unwrap_or(&zeros))?;
+            match (c, input) {
+                (Some(BinValues::Counts(c)), _) => values_out.write_u16_rows(c)?,
+                (Some(BinValues::Features(f)), _) => values_out.write_f32_rows(f)?,
+                (None, BinKind::Counts) => values_out.write_u16_rows(&zeros)?,
+                (None, BinKind::Features) => values_out.write_f32_rows(&zero_features)?,
+            }
             if let Some(k) = kin_out.as_mut() {
                 rt.kinematics(row, &mut kin_row);
                 k.write_rows(&kin_row)?;
@@ -394,7 +445,7 @@ pub fn export_log(path: &Path, dir: &Path) -> Result<LogBlockSummary, LogBlockEr
             Ok(())
         },
     )?;
-    counts_out.finish()?;
+    values_out.finish()?;
     if let Some(k) = kin_out {
         k.finish()?;
     }

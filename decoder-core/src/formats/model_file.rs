@@ -16,12 +16,14 @@ use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
 use crate::decoders::click::ClickModel;
 use crate::engine::pipeline::{DecodePipeline, PipelineError};
+use crate::wire::packet::BinKind;
 
 pub const MODEL_MAGIC: &[u8; 8] = b"VDECMODL";
-/// Version 3 may carry a click decoder beside the velocity decoder;
-/// version 2 (typed provenance) and version 1 (scores as JSON text) files
-/// are still read, as models without one.
-pub const MODEL_FORMAT_VERSION: u32 = 3;
+/// Version 4 says what the model decodes (counts or continuous features);
+/// version 3 (a click decoder beside the velocity decoder), version 2
+/// (typed provenance) and version 1 (scores as JSON text) files are still
+/// read, as models of counts.
+pub const MODEL_FORMAT_VERSION: u32 = 4;
 const HEADER_LEN: usize = 8 + 4 + 8 + 4;
 /// Largest payload a model file may declare (1 GiB).
 const MAX_PAYLOAD: usize = 1 << 30;
@@ -132,6 +134,7 @@ mod v1 {
                     cv,
                 },
                 click: None,
+                input: crate::wire::packet::BinKind::Counts,
             }
         }
     }
@@ -146,6 +149,20 @@ pub struct ModelFile {
     pub provenance: Provenance,
     /// A click decoder trained beside the velocity decoder, if any.
     pub click: Option<ClickModel>,
+    /// What the model was trained on and decodes: spike counts, or
+    /// continuous features such as spike band power (PROTOCOL.md §1); a
+    /// bin of the other kind is refused.
+    pub input: BinKind,
+}
+
+/// The version 3 layout: a model of counts.
+#[derive(Deserialize)]
+struct ModelFileV3 {
+    #[serde(with = "crate::bin_width::as_ms")]
+    bin_width: BinWidth,
+    decoder: DecoderModel,
+    provenance: Provenance,
+    click: Option<ClickModel>,
 }
 
 /// The version 2 layout: a model file without a click decoder.
@@ -225,7 +242,8 @@ impl ModelFile {
             .and_then(|c| crate::decoders::click::ClickFilter::new(c).ok());
         Ok(
             DecodePipeline::from_decoder(&self.decoder, self.bin_width, use_steady_state)?
-                .with_click(click),
+                .with_click(click)
+                .with_input(self.input),
         )
     }
 
@@ -311,6 +329,18 @@ impl ModelFile {
                     decoder: m.decoder,
                     provenance: m.provenance,
                     click: None,
+                    input: BinKind::Counts,
+                }
+            }
+            3 => {
+                let (m, _): (ModelFileV3, usize) =
+                    bincode::serde::decode_from_slice(payload, config).map_err(decode_error)?;
+                ModelFile {
+                    bin_width: m.bin_width,
+                    decoder: m.decoder,
+                    provenance: m.provenance,
+                    click: m.click,
+                    input: BinKind::Counts,
                 }
             }
             _ => {
@@ -326,6 +356,21 @@ impl ModelFile {
                 path: path_s.clone(),
                 source,
             })?;
+        if model.input == BinKind::Features {
+            let problem = if model.decoder.kind() == "point-process" {
+                Some("a point-process decoder of features: it needs counts")
+            } else if model.click.is_some() {
+                Some("a click decoder beside a decoder of features: it reads counts")
+            } else {
+                None
+            };
+            if let Some(problem) = problem {
+                return Err(ModelFileError::Decode {
+                    path: path_s,
+                    problem: problem.into(),
+                });
+            }
+        }
         if let Some(c) = &model.click {
             let problem = match c.validate() {
                 Err(e) => Some(e.to_string()),
@@ -389,6 +434,7 @@ pub fn export_json(model: &ModelFile) -> Value {
     let cv = serde_json::to_value(&prov.cv).unwrap_or(Value::Null);
     let mut obj = json!({
         "kind": model.decoder.kind(),
+        "input": model.input.name(),
         "bin_ms": model.bin_width.ms(),
         "channels": model.decoder.n_channels(),
         "outputs": model.decoder.outputs(),
@@ -546,7 +592,7 @@ mod tests {
     }
 
     #[test]
-    fn a_version_3_file_round_trips_a_version_2_file_reads_and_version_4_is_refused() {
+    fn a_version_4_file_round_trips_version_3_and_2_files_read_and_version_5_is_refused() {
         let mut p = Provenance::untracked();
         p.cv = Some(CrossValidation {
             folds: 3,
@@ -560,6 +606,7 @@ mod tests {
             per_fold: vec![],
         });
         let without = ModelFile {
+            input: crate::wire::packet::BinKind::Counts,
             bin_width: BinWidth::from_us(1_000).unwrap(),
             decoder: wiener(),
             provenance: p,
@@ -579,8 +626,34 @@ mod tests {
             ..without.clone()
         };
         let bytes = m.to_bytes();
-        assert_eq!(u32::from_le_bytes(bytes[8..12].try_into().unwrap()), 3);
+        assert_eq!(u32::from_le_bytes(bytes[8..12].try_into().unwrap()), 4);
         assert_eq!(ModelFile::from_bytes(&bytes, "m").unwrap(), m);
+        // A model of features round-trips and says so in its export.
+        let of_features = ModelFile {
+            input: crate::wire::packet::BinKind::Features,
+            ..without.clone()
+        };
+        assert_eq!(
+            ModelFile::from_bytes(&of_features.to_bytes(), "f").unwrap(),
+            of_features
+        );
+        assert_eq!(export_json(&of_features)["input"], "features");
+        assert_eq!(export_json(&m)["input"], "counts");
+        // ... but not beside a click decoder, which reads counts.
+        let e = ModelFile::from_bytes(
+            &ModelFile {
+                input: crate::wire::packet::BinKind::Features,
+                ..m.clone()
+            }
+            .to_bytes(),
+            "fc",
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            e.contains("click decoder beside a decoder of features"),
+            "{e}"
+        );
         assert_eq!(
             export_json(&m)["click"]["weights"][1]
                 .as_array()
@@ -615,11 +688,37 @@ mod tests {
         v2.extend_from_slice(&payload);
         assert_eq!(ModelFile::from_bytes(&v2, "old").unwrap(), without);
 
+        // Version 3: a click decoder, no input kind; read as counts.
+        #[derive(Serialize)]
+        struct V3<'a> {
+            #[serde(with = "crate::bin_width::as_ms")]
+            bin_width: BinWidth,
+            decoder: &'a DecoderModel,
+            provenance: &'a Provenance,
+            click: &'a Option<ClickModel>,
+        }
+        let payload = bincode::serde::encode_to_vec(
+            V3 {
+                bin_width: m.bin_width,
+                decoder: &m.decoder,
+                provenance: &m.provenance,
+                click: &m.click,
+            },
+            bincode::config::standard(),
+        )
+        .unwrap();
+        let mut v3 = MODEL_MAGIC.to_vec();
+        v3.extend_from_slice(&3u32.to_le_bytes());
+        v3.extend_from_slice(&(payload.len() as u64).to_le_bytes());
+        v3.extend_from_slice(&crc32fast::hash(&payload).to_le_bytes());
+        v3.extend_from_slice(&payload);
+        assert_eq!(ModelFile::from_bytes(&v3, "v3").unwrap(), m);
+
         let mut future = bytes.clone();
-        future[8..12].copy_from_slice(&4u32.to_le_bytes());
+        future[8..12].copy_from_slice(&5u32.to_le_bytes());
         assert!(matches!(
             ModelFile::from_bytes(&future, "m"),
-            Err(ModelFileError::UnsupportedVersion { found: 4, .. })
+            Err(ModelFileError::UnsupportedVersion { found: 5, .. })
         ));
 
         // A click decoder over another array than the velocity decoder's

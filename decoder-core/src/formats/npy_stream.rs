@@ -265,6 +265,46 @@ impl NpyRows {
         Ok(n)
     }
 
+    /// Appends up to `max_rows` rows of features to `out` (cleared first)
+    /// as f32, the precision the bin packet carries them in; returns how
+    /// many rows. The file must hold floats, every one finite and within
+    /// f32's range.
+    pub fn read_features(
+        &mut self,
+        max_rows: usize,
+        out: &mut Vec<f32>,
+    ) -> Result<usize, BlockError> {
+        out.clear();
+        if self.is_integer() {
+            return Err(npy_err(
+                &self.path,
+                format!(
+                    "features have dtype {}; continuous features must be float32 or float64 (counts go in counts.npy)",
+                    self.dtype_name()
+                ),
+            ));
+        }
+        let first = self.rows_read;
+        let n = self.fill(max_rows)?;
+        out.reserve(n * self.cols);
+        for i in 0..n * self.cols {
+            let wide = self.float_at(i);
+            let value = wide as f32;
+            if !value.is_finite() {
+                return Err(BlockError::NonFinite {
+                    path: self.path.clone(),
+                    bin: first + i / self.cols,
+                    column: i % self.cols,
+                    name: format!("channel {}", i % self.cols),
+                    value: wide,
+                });
+            }
+            out.push(value);
+        }
+        self.rows_read += n;
+        Ok(n)
+    }
+
     /// Appends up to `max_rows` rows of floats to `out` (cleared first);
     /// returns how many rows. Every value must be finite; `names` names the
     /// columns in the error.
@@ -323,6 +363,11 @@ impl NpyWriter {
         Self::create_typed(path, rows, cols, "<u2")
     }
 
+    /// A float32 file (features).
+    pub fn create_f32(path: &Path, rows: usize, cols: usize) -> Result<NpyWriter, BlockError> {
+        Self::create_typed(path, rows, cols, "<f4")
+    }
+
     fn create_typed(
         path: &Path,
         rows: usize,
@@ -364,6 +409,12 @@ impl NpyWriter {
 
     /// Writes whole rows of counts (a file made by [`NpyWriter::create_u16`]).
     pub fn write_u16_rows(&mut self, values: &[u16]) -> Result<(), BlockError> {
+        self.write_le(values.len(), values.iter().map(|v| v.to_le_bytes()))
+    }
+
+    /// Writes whole rows of features (a file made by
+    /// [`NpyWriter::create_f32`]).
+    pub fn write_f32_rows(&mut self, values: &[f32]) -> Result<(), BlockError> {
         self.write_le(values.len(), values.iter().map(|v| v.to_le_bytes()))
     }
 

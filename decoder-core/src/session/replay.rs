@@ -17,9 +17,16 @@ use crate::formats::block_rows::AllRows;
 #[derive(Debug, thiserror::Error)]
 pub enum MismatchError {
     #[error(
-        "counts.npy has {block} columns but the model expects {model} channels; use the model trained for this array"
+        "the block has {block} channels but the model expects {model}; use the model trained for this array"
     )]
     Channels { block: usize, model: usize },
+    #[error(
+        "the block holds {block} but the model decodes {model}; use a model trained on {block}"
+    )]
+    Input {
+        block: &'static str,
+        model: &'static str,
+    },
     #[error(
         "the block has {block} bins but the model was trained on {model} bins; rebin the block or retrain"
     )]
@@ -29,10 +36,10 @@ pub enum MismatchError {
 /// Why a replay stopped.
 #[derive(Debug, thiserror::Error)]
 pub enum ReplayError {
-    #[error("{}: {source}", block.display())]
+    #[error("{}: {problem}", block.display())]
     Mismatch {
         block: PathBuf,
-        source: MismatchError,
+        problem: MismatchError,
     },
     #[error(transparent)]
     Block(#[from] BlockError),
@@ -44,12 +51,20 @@ pub enum ReplayError {
 /// What the taker of a replay's estimates may answer.
 pub type SinkResult = Result<(), Box<dyn std::error::Error + Send + Sync>>;
 
-/// Checks that a block's channel count and bin width match a model's.
+/// Checks that a block's kind, channel count and bin width match a
+/// model's.
 pub fn check_block(
     pipeline: &DecodePipeline,
+    input: crate::wire::packet::BinKind,
     n_channels: usize,
     bin_width: BinWidth,
 ) -> Result<(), MismatchError> {
+    if input != pipeline.input() {
+        return Err(MismatchError::Input {
+            block: input.name(),
+            model: pipeline.input().name(),
+        });
+    }
     if n_channels != pipeline.n_channels() {
         return Err(MismatchError::Channels {
             block: n_channels,
@@ -90,10 +105,10 @@ pub fn replay_rows(
     mut on_estimates: impl FnMut(&[f64]) -> SinkResult,
 ) -> Result<RowReplay, ReplayError> {
     let info = rows.info();
-    check_block(pipeline, info.n_channels, info.bin_width).map_err(|source| {
+    check_block(pipeline, info.input, info.n_channels, info.bin_width).map_err(|problem| {
         ReplayError::Mismatch {
             block: block.to_path_buf(),
-            source,
+            problem,
         }
     })?;
     let n = info.n_channels;
@@ -111,7 +126,7 @@ pub fn replay_rows(
         }
         est.clear();
         for r in 0..chunk.rows {
-            let e = pipeline.step(bin as u64, &chunk.counts[r * n..(r + 1) * n]);
+            let e = pipeline.step_bin(bin as u64, chunk.values(r, n));
             faults += usize::from(e.numerical_fault);
             est.extend_from_slice(e.estimate);
             if info.has_kinematics && chunk.is_valid(r) {
@@ -168,7 +183,7 @@ pub fn replay_block(
     );
     match replayed {
         Ok(r) => Ok((out, r.faults)),
-        Err(ReplayError::Mismatch { source, .. }) => Err(source),
+        Err(ReplayError::Mismatch { problem, .. }) => Err(problem),
         Err(e) => unreachable!("a block in memory reads and its estimates are kept: {e}"),
     }
 }

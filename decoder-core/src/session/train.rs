@@ -135,6 +135,7 @@ pub fn train(
             cv,
         },
         click: None,
+        input: rows.info().input,
     };
     // Never hand back a model its readers would refuse.
     model.decoder.validate()?;

@@ -3,6 +3,7 @@
 //! drives a decoder in closed loop. Never used on the per-bin path.
 
 pub mod drift;
+pub mod features;
 pub mod model;
 pub mod reaching;
 pub mod user;

@@ -34,6 +34,7 @@ pub fn simulated_kalman(
         decoder: DecoderModel::Kalman(kalman),
         provenance: Provenance::untracked(),
         click: None,
+        input: block.input,
     };
     Ok((model, block))
 }

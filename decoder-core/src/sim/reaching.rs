@@ -13,6 +13,8 @@ use crate::bin_width::BinWidth;
 use std::f64::consts::PI;
 
 use rand::{RngExt, SeedableRng};
+
+use crate::sim::features::{FEATURE_NAME, FeatureMaker};
 use rand_chacha::ChaCha8Rng;
 use rand_distr::{Distribution, Normal};
 
@@ -46,6 +48,9 @@ pub struct SimOptions {
     /// channels whose rates change during them; `None` for a block
     /// without clicks.
     pub click: Option<ClickSim>,
+    /// Write continuous features (simulated spike band power,
+    /// [`crate::sim::features`]) instead of the counts they come from.
+    pub features: bool,
 }
 
 /// How the simulated participant attempts a click: for `attempt_ms` from
@@ -96,6 +101,7 @@ impl Default for SimOptions {
             recovery_ms: 0.0,
             drift: None,
             click: None,
+            features: false,
         }
     }
 }
@@ -303,19 +309,36 @@ pub fn simulate_to_dir(
     options: &SimOptions,
     dir: &std::path::Path,
 ) -> Result<SimWritten, SimError> {
-    use crate::formats::block::{COUNTS_FILE, KINEMATICS_FILE, write_manifest, write_trials};
+    use crate::formats::block::{
+        COUNTS_FILE, FEATURES_FILE, KINEMATICS_FILE, write_manifest_naming, write_trials,
+    };
     use crate::formats::npy_stream::NpyWriter;
     let (channels, rng, n_bins, bin_ms) = prepare(options)?;
     let n = options.n_channels;
     let mut sim = SimStream::new(options, channels, rng, n_bins, bin_ms)?;
-    write_manifest(
+    write_manifest_naming(
         dir,
         options.bin_width,
         &kinematic_names(),
         None,
         Some(notes(options)),
+        options.features.then(|| FEATURE_NAME.to_string()),
     )?;
-    let mut counts_out = NpyWriter::create_u16(&dir.join(COUNTS_FILE), n_bins, n)?;
+    let mut maker = options
+        .features
+        .then(|| FeatureMaker::new(options.population_seed, options.seed, n));
+    let mut values_out = match maker {
+        None => NpyWriter::create_u16(&dir.join(COUNTS_FILE), n_bins, n)?,
+        Some(_) => NpyWriter::create_f32(&dir.join(FEATURES_FILE), n_bins, n)?,
+    };
+    let mut features = vec![
+        0f32;
+        if options.features {
+            SIM_CHUNK_BINS * n
+        } else {
+            0
+        }
+    ];
     let mut kin_out = NpyWriter::create(&dir.join(KINEMATICS_FILE), n_bins, 4)?;
     let mut counts = vec![0u16; SIM_CHUNK_BINS * n];
     let mut kin = vec![0.0; SIM_CHUNK_BINS * 4];
@@ -327,11 +350,22 @@ pub fn simulate_to_dir(
             sim.next_bin(&mut counts[r * n..(r + 1) * n], &mut row_kin);
             kin[r * 4..(r + 1) * 4].copy_from_slice(&row_kin);
         }
-        counts_out.write_u16_rows(&counts[..chunk * n])?;
+        match maker.as_mut() {
+            None => values_out.write_u16_rows(&counts[..chunk * n])?,
+            Some(m) => {
+                for r in 0..chunk {
+                    m.features(
+                        &counts[r * n..(r + 1) * n],
+                        &mut features[r * n..(r + 1) * n],
+                    );
+                }
+                values_out.write_f32_rows(&features[..chunk * n])?;
+            }
+        }
         kin_out.write_rows(&kin[..chunk * 4])?;
         bin += chunk;
     }
-    counts_out.finish()?;
+    values_out.finish()?;
     kin_out.finish()?;
     let trials = sim.trials();
     write_trials(dir, &trials)?;
@@ -407,11 +441,23 @@ pub fn simulate(options: &SimOptions) -> Result<(Block, SimChannels), SimError> 
         }
     }
     let trials = sim.trials();
+    let (input, counts, features) = if options.features {
+        let mut maker = FeatureMaker::new(options.population_seed, options.seed, n);
+        let mut features = vec![0f32; n_bins * n];
+        for (c, f) in counts.chunks_exact(n).zip(features.chunks_exact_mut(n)) {
+            maker.features(c, f);
+        }
+        (crate::wire::packet::BinKind::Features, Vec::new(), features)
+    } else {
+        (crate::wire::packet::BinKind::Counts, counts, Vec::new())
+    };
     let session = Block {
         bin_width: options.bin_width,
         n_bins,
         n_channels: n,
+        input,
         counts,
+        features,
         kinematic_names: kinematic_names(),
         kinematics: Some(kin),
         trials: Some(trials),
@@ -434,6 +480,11 @@ fn notes(options: &SimOptions) -> String {
         "synthetic center-out block: seed {}, population {}, {} channels, {} min, positions in cm, velocities in cm/s",
         options.seed, options.population_seed, options.n_channels, options.minutes
     );
+    if options.features {
+        notes.push_str(
+            "; features: simulated spike band power (each channel an offset of 20–60 µV, 2–6 µV a spike, Gaussian noise of 1–3 µV)",
+        );
+    }
     if let Some(c) = &options.click {
         notes.push_str(&format!(
             "; click attempts for {} ms from the start of each hold in the target, {:.0} % of channels at {}× their rate during them (click.npy)",

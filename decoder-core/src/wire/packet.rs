@@ -41,8 +41,10 @@ pub const FLAG_CLICK: u32 = 1 << 4;
 /// What a bin packet's body holds (PROTOCOL.md §1): version 1 and version
 /// 2 with kind 0 carry u16 counts, version 2 with kind 1 carries f32
 /// features.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, serde::Serialize, serde::Deserialize)]
+#[serde(rename_all = "kebab-case")]
 pub enum BinKind {
+    #[default]
     Counts,
     Features,
 }
@@ -60,6 +62,50 @@ impl BinKind {
         match self {
             BinKind::Counts => 2,
             BinKind::Features => 4,
+        }
+    }
+}
+
+/// One bin's values, of either kind, as a decoder reads them.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum BinValues<'a> {
+    Counts(&'a [u16]),
+    Features(&'a [f32]),
+}
+
+impl BinValues<'_> {
+    pub fn kind(&self) -> BinKind {
+        match self {
+            BinValues::Counts(_) => BinKind::Counts,
+            BinValues::Features(_) => BinKind::Features,
+        }
+    }
+
+    /// Channels.
+    pub fn len(&self) -> usize {
+        match self {
+            BinValues::Counts(c) => c.len(),
+            BinValues::Features(f) => f.len(),
+        }
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.len() == 0
+    }
+
+    /// The values as f64, into `out` (one per channel).
+    pub fn to_f64(&self, out: &mut [f64]) {
+        match self {
+            BinValues::Counts(c) => {
+                for (o, &v) in out.iter_mut().zip(c.iter()) {
+                    *o = f64::from(v);
+                }
+            }
+            BinValues::Features(f) => {
+                for (o, &v) in out.iter_mut().zip(f.iter()) {
+                    *o = f64::from(v);
+                }
+            }
         }
     }
 }
@@ -245,6 +291,16 @@ pub fn parse_bin_for(
     Ok(header)
 }
 
+/// Copies the features of a features datagram that [`parse_bin`]
+/// accepted (every one finite) into `out` (whose length must be the
+/// header's channel count).
+pub fn read_features(datagram: &[u8], out: &mut [f32]) {
+    let body = &datagram[BIN_HEADER_LEN..BIN_HEADER_LEN + 4 * out.len()];
+    for (v, quad) in out.iter_mut().zip(body.chunks_exact(4)) {
+        *v = f32::from_le_bytes([quad[0], quad[1], quad[2], quad[3]]);
+    }
+}
+
 /// Copies the counts of a counts datagram that [`parse_bin`] accepted
 /// into `out` (whose length must be the header's channel count).
 pub fn read_counts(datagram: &[u8], out: &mut [u16]) {
@@ -286,6 +342,21 @@ pub fn bin_datagram(counts: &[u16], bin_us: u32) -> Vec<u8> {
         &mut out,
     );
     out
+}
+
+/// A version 2 bin datagram of features (kind 1), seq and origin 0.
+pub fn features_datagram(features: &[f32], bin_us: u32) -> Vec<u8> {
+    let body: Vec<u8> = features.iter().flat_map(|f| f.to_le_bytes()).collect();
+    bin_datagram_v2(BinKind::Features, features.len() as u16, &body, bin_us)
+}
+
+/// The bin datagram a front end sends for one bin of values: version 1
+/// for counts, version 2 kind 1 for features; seq and origin 0.
+pub fn values_datagram(values: BinValues<'_>, bin_us: u32) -> Vec<u8> {
+    match values {
+        BinValues::Counts(c) => bin_datagram(c, bin_us),
+        BinValues::Features(f) => features_datagram(f, bin_us),
+    }
 }
 
 /// A version 2 bin datagram of `kind` whose body is `body` (2 bytes a

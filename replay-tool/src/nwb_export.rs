@@ -3,7 +3,7 @@
 //! of neurophysiology ask for, so a lab can share a closed-loop session
 //! without a converter of its own.
 //!
-//! What goes where, in NWB's own types: the binned counts as a
+//! What goes where, in NWB's own types: the binned counts (or features) as a
 //! `TimeSeries` in `acquisition`; the cursor and target positions as
 //! `SpatialSeries` in a `Position` and the cursor velocity as a
 //! `TimeSeries` in a `BehavioralTimeSeries`, both under
@@ -178,6 +178,7 @@ struct Series<'a> {
 
 enum SeriesValues<'a> {
     F64(&'a [f64]),
+    F32(&'a [f32]),
     U16(&'a [u16]),
     U8(&'a [u8]),
 }
@@ -221,6 +222,7 @@ fn add_series(
         let d = g.create_dataset("data");
         match s.values {
             SeriesValues::F64(v) => d.with_f64_data(v),
+            SeriesValues::F32(v) => d.with_f32_data(v),
             SeriesValues::U16(v) => d.with_u16_data(v),
             SeriesValues::U8(v) => d.with_u8_data(v),
         };
@@ -334,23 +336,43 @@ pub fn export_nwb(log: &Path, out: &Path, meta: &Metadata) -> Result<Written> {
             .with_shape(&[]);
     }
 
-    // acquisition: the counts as received.
+    // acquisition: the counts (or features) as received.
     let mut acquisition = f.create_group("acquisition");
-    let counts_description = format!(
-        "spike counts (threshold crossings or sorted spikes) per channel per {} ms bin, as decoderd received them from the front end, one row per bin slot; zeros where the bin never came (processing/decoder/valid is 0 there)",
-        block.bin_width.ms()
-    );
+    let features = block.input == decoder_core::wire::packet::BinKind::Features;
+    let values_description = if features {
+        format!(
+            "continuous features (for example spike band power) per channel per {} ms bin, as decoderd received them from the front end (f32), one row per bin slot; zeros where the bin never came (processing/decoder/valid is 0 there)",
+            block.bin_width.ms()
+        )
+    } else {
+        format!(
+            "spike counts (threshold crossings or sorted spikes) per channel per {} ms bin, as decoderd received them from the front end, one row per bin slot; zeros where the bin never came (processing/decoder/valid is 0 there)",
+            block.bin_width.ms()
+        )
+    };
     add_series(
         &mut acquisition,
         "/acquisition",
         &ids,
         &Series {
-            name: "binned_counts",
+            name: if features {
+                "binned_features"
+            } else {
+                "binned_counts"
+            },
             kind: "TimeSeries",
-            values: SeriesValues::U16(&block.counts),
+            values: if features {
+                SeriesValues::F32(&block.features)
+            } else {
+                SeriesValues::U16(&block.counts)
+            },
             cols: n,
-            unit: "spikes per bin",
-            description: &counts_description,
+            unit: if features {
+                "front-end units"
+            } else {
+                "spikes per bin"
+            },
+            description: &values_description,
             reference_frame: None,
         },
         &stamped,

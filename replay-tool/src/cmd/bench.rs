@@ -123,7 +123,8 @@ fn bench_model(args: &Args, work: &Path) -> Result<(PathBuf, ModelFile)> {
 
 /// The distinct bins the front end cycles through: half a minute of a
 /// simulated session, or 4 096 bins when that is fewer, so a 1 kHz ×
-/// 1 024-channel bench holds 8 MB of datagrams rather than 60.
+/// 1 024-channel bench holds 8 MB of datagrams rather than 60. Bins of
+/// the model's kind: counts, or features (version 2 packets of kind 1).
 fn bins_for(model: &ModelFile) -> Result<Vec<Vec<u8>>> {
     let bins_in_half_a_minute = 30_000.0 / model.bin_width.ms();
     let (session, _) = simulate(&SimOptions {
@@ -131,11 +132,12 @@ fn bins_for(model: &ModelFile) -> Result<Vec<Vec<u8>>> {
         n_channels: model.decoder.n_channels(),
         bin_width: model.bin_width,
         seed: 77,
+        features: model.input == packet::BinKind::Features,
         ..SimOptions::default()
     })?;
     let bin_us = model.bin_width.us();
     let bins = (0..session.n_bins)
-        .map(|t| packet::bin_datagram(session.bin_counts(t), bin_us))
+        .map(|t| packet::values_datagram(session.bin_values(t), bin_us))
         .collect();
     Ok(bins)
 }

@@ -32,6 +32,12 @@ pub fn click_scores(
     use decoder_core::engine::slot_engine::ClickGateSettings;
     use decoder_core::fit::click::{CATCH_MS, cross_validate_click};
     let block = block.valid_only();
+    if block.input != decoder_core::wire::packet::BinKind::Counts {
+        anyhow::bail!(
+            "{}: the click decoder reads spike counts, and this block holds features",
+            source.display()
+        );
+    }
     let cued = click_cues(&block, source)?;
     let gate = ClickGateSettings::default().gate(block.bin_width);
     cross_validate_click(

@@ -48,6 +48,11 @@ pub struct Args {
     /// With --click: how long an attempt lasts, ms.
     #[arg(long, requires = "click", default_value_t = 300)]
     pub click_ms: usize,
+    /// Write continuous features (features.npy: simulated spike band
+    /// power, an offset plus a gain times each bin's spikes plus noise, µV)
+    /// instead of counts, for decoders trained on features.
+    #[arg(long, conflicts_with = "click")]
+    pub features: bool,
     #[command(flatten)]
     pub world: super::world::WorldArgs,
 }
@@ -67,17 +72,19 @@ pub fn run(args: &Args) -> Result<()> {
             gain: args.click_gain,
             attempt_ms: args.click_ms,
         }),
+        features: args.features,
         ..SimOptions::default()
     };
     // Written a chunk of bins at a time: a block of any length.
     let written = simulate_to_dir(&options, &args.out)
         .with_context(|| format!("writing session {}", args.out.display()))?;
     println!(
-        "wrote {}: {} bins of {} ms, {} channels, {} trials",
+        "wrote {}: {} bins of {} ms, {} channels{}, {} trials",
         args.out.display(),
         written.n_bins,
         written.bin_width.ms(),
         written.n_channels,
+        if args.features { " of features" } else { "" },
         written.trials
     );
     Ok(())

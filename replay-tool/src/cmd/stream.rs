@@ -1,8 +1,8 @@
 //! `replay-tool stream`: stream a stored block to a running daemon at the
 //! bin rate (or a chosen time scale), as its front end would, collect the
 //! velocity packets it sends to `--actuator`, and check them against
-//! decoding the same bins offline: each slot the daemon decoded from counts
-//! must give the same estimate bit for bit, and each slot it coasted must
+//! decoding the same bins offline: each slot the daemon decoded from its
+//! bin (counts, or features) must give the same estimate bit for bit, and each slot it coasted must
 //! equal a predict-only step. This is how a user checks that the daemon on
 //! a rig computer decodes exactly what the offline tools do.
 
@@ -14,7 +14,7 @@ use std::time::Duration;
 use anyhow::{Context, Result, bail};
 use daemon_rig::{ActuatorSink, BinFault, paced_send_from};
 use decoder_core::formats::session_log::{LogReader, LogRecord};
-use decoder_core::wire::packet::{self, FLAG_BIN_MISSING};
+use decoder_core::wire::packet::{self, BinKind, BinValues, FLAG_BIN_MISSING};
 use decoder_core::{Block, ModelFile};
 
 use crate::CheckFailed;
@@ -42,25 +42,55 @@ pub struct Args {
     pub time_scale: f64,
 }
 
+/// One stored bin, of either kind.
+pub enum StoredBin {
+    Counts(Vec<u16>),
+    Features(Vec<f32>),
+}
+
+impl StoredBin {
+    pub fn values(&self) -> BinValues<'_> {
+        match self {
+            StoredBin::Counts(c) => BinValues::Counts(c),
+            StoredBin::Features(f) => BinValues::Features(f),
+        }
+    }
+
+    fn of(values: BinValues<'_>) -> StoredBin {
+        match values {
+            BinValues::Counts(c) => StoredBin::Counts(c.to_vec()),
+            BinValues::Features(f) => StoredBin::Features(f.to_vec()),
+        }
+    }
+}
+
 /// The bins of a session directory or of a session log's valid datagrams,
 /// with the model to check against.
-fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFile)> {
+fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<StoredBin>, ModelFile)> {
     if let Session::Directory(_) = Session::at(session)? {
         let Some(m) = model else {
             bail!("--model is required to stream a session directory (the model the daemon runs)");
         };
         let model = ModelFile::read(m)?;
         let s = Block::read(session)?;
-        decoder_core::session::replay::check_block(&model.pipeline()?, s.n_channels, s.bin_width)?;
+        decoder_core::session::replay::check_block(
+            &model.pipeline()?,
+            s.input,
+            s.n_channels,
+            s.bin_width,
+        )
+        .with_context(|| format!("{} with model {}", session.display(), m.display()))?;
         return Ok((
-            (0..s.n_bins).map(|t| s.bin_counts(t).to_vec()).collect(),
+            (0..s.n_bins)
+                .map(|t| StoredBin::of(s.bin_values(t)))
+                .collect(),
             model,
         ));
     }
     let mut reader = LogReader::open(session)?;
     let n = reader.header().n_channels;
     let bin_width = reader.header().bin_width;
-    let mut logged_model = None;
+    let mut logged_model: Option<ModelFile> = None;
     let mut bins = Vec::new();
     while let Some(r) = reader.next_record() {
         match r {
@@ -70,12 +100,23 @@ fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFil
                     &session.display().to_string(),
                 )?);
             }
-            LogRecord::Datagram { bytes, .. }
-                if packet::parse_bin_for(&bytes, packet::BinKind::Counts, n, bin_width).is_ok() =>
-            {
-                let mut counts = vec![0u16; n];
-                packet::read_counts(&bytes, &mut counts);
-                bins.push(counts);
+            LogRecord::Datagram { bytes, .. } => {
+                let kind = logged_model.as_ref().map_or(BinKind::Counts, |m| m.input);
+                if packet::parse_bin_for(&bytes, kind, n, bin_width).is_err() {
+                    continue;
+                }
+                bins.push(match kind {
+                    BinKind::Counts => {
+                        let mut counts = vec![0u16; n];
+                        packet::read_counts(&bytes, &mut counts);
+                        StoredBin::Counts(counts)
+                    }
+                    BinKind::Features => {
+                        let mut features = vec![0f32; n];
+                        packet::read_features(&bytes, &mut features);
+                        StoredBin::Features(features)
+                    }
+                });
             }
             _ => {}
         }
@@ -84,6 +125,16 @@ fn load(session: &Path, model: Option<&Path>) -> Result<(Vec<Vec<u16>>, ModelFil
         Some(m) => ModelFile::read(m)?,
         None => logged_model.context("the log holds no model; pass --model")?,
     };
+    if let Some(b) = bins.first()
+        && b.values().kind() != model.input
+    {
+        bail!(
+            "{} holds bins of {} but the model decodes {}",
+            session.display(),
+            b.values().kind().name(),
+            model.input.name()
+        );
+    }
     Ok((bins, model))
 }
 
@@ -100,7 +151,7 @@ pub fn run(args: &Args) -> Result<()> {
     let bin_us = model.bin_width.us();
     let datagrams: Vec<Vec<u8>> = bins
         .iter()
-        .map(|c| packet::bin_datagram(c, bin_us))
+        .map(|b| packet::values_datagram(b.values(), bin_us))
         .collect();
     let sink_socket = UdpSocket::bind(actuator).with_context(|| {
         format!(
@@ -159,7 +210,7 @@ pub fn run(args: &Args) -> Result<()> {
     // that ran another stream before) and are not counted against it.
     let (mut equal, mut decoded, mut coasted, mut absent) = (0usize, 0usize, 0usize, 0usize);
     let mut first_difference = None;
-    for (k, (packet, counts)) in rec.packets.iter().zip(&bins).enumerate().skip(first) {
+    for (k, (packet, bin)) in rec.packets.iter().zip(&bins).enumerate().skip(first) {
         let Some(p) = packet else {
             absent += 1;
             continue;
@@ -170,7 +221,7 @@ pub fn run(args: &Args) -> Result<()> {
             pipeline.predict_only(seq)
         } else {
             decoded += 1;
-            pipeline.step(seq, counts)
+            pipeline.step_bin(seq, bin.values())
         };
         let same = offline.estimate.len() == p.estimate.len()
             && offline

@@ -340,6 +340,12 @@ fn train_several(
 
 /// The click decoder of `block`'s click cues (its valid rows).
 fn fit_click_on(args: &Args, block: &Block, source: &Path) -> Result<ClickModel> {
+    if block.input != decoder_core::wire::packet::BinKind::Counts {
+        bail!(
+            "{}: --click fits the click decoder on spike counts, and this block holds features; train the velocity decoder without --click",
+            source.display()
+        );
+    }
     let block = block.valid_only();
     let click = super::click::click_cues(&block, source)?;
     let model = fit_click(

@@ -413,3 +413,176 @@ fn a_closed_loop_session_runs_for_minutes_and_can_start_late_in_a_changing_world
         "{success_late} of {n_late} with every channel silent, {success} of {n} before"
     );
 }
+
+/// A block of continuous features, end to end: the simulator writes it,
+/// a Kalman decoder trains on it, the daemon decodes bin packets of
+/// features (version 2, kind 1) exactly as offline decoding does, the
+/// session log verifies bit for bit and exports to features.npy again and
+/// to NWB (`acquisition/binned_features`, checked by pynwb when
+/// VDEC_REFERENCE_PYTHON is set); counts sent to it are refused as a kind
+/// mismatch, and the point-process decoder refuses features by name.
+#[test]
+fn a_block_of_features_trains_streams_verifies_and_exports_to_nwb() {
+    let dir = tempfile::tempdir().unwrap();
+    let cal = dir.path().join("cal");
+    let block = dir.path().join("block");
+    let model = dir.path().join("f.model");
+    let sim = |out: &Path, minutes: &str, seed: &str| {
+        ok(&[
+            "simulate",
+            "--out",
+            p(out),
+            "--features",
+            "--minutes",
+            minutes,
+            "--channels",
+            "16",
+            "--seed",
+            seed,
+        ])
+    };
+    sim(&cal, "1", "1");
+    sim(&block, "0.1", "5");
+    assert!(block.join("features.npy").exists() && !block.join("counts.npy").exists());
+    ok(&[
+        "train",
+        "--session",
+        p(&cal),
+        "--decoder",
+        "kalman",
+        "--out",
+        p(&model),
+        "--no-cv",
+    ]);
+    let shown: serde_json::Value =
+        serde_json::from_str(&ok(&["model", "show", p(&model), "--json"])).unwrap();
+    assert_eq!(shown["input"], "features", "{shown}");
+    let err = fails_with(
+        &[
+            "train",
+            "--session",
+            p(&cal),
+            "--decoder",
+            "point-process",
+            "--out",
+            p(&dir.path().join("pp.model")),
+        ],
+        2,
+    );
+    assert!(err.contains("needs spike counts"), "{err}");
+
+    let sink = std::net::UdpSocket::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap();
+    let daemon = daemon_rig::Launch::new(&model, &dir.path().join("d"), sink)
+        .start()
+        .unwrap();
+    let (target, sink_text) = (daemon.listen.to_string(), sink.to_string());
+    let out = ok(&[
+        "stream",
+        "--session",
+        p(&block),
+        "--model",
+        p(&model),
+        "--daemon",
+        &target,
+        "--actuator",
+        &sink_text,
+        "--time-scale",
+        "0.25",
+    ]);
+    assert!(
+        out.contains("300 of 300 live estimates equal offline decoding bit for bit"),
+        "{out}"
+    );
+    // Counts to a daemon of features: refused before a bin is sent.
+    let counts = dir.path().join("counts");
+    ok(&[
+        "simulate",
+        "--out",
+        p(&counts),
+        "--minutes",
+        "0.1",
+        "--channels",
+        "16",
+    ]);
+    let err = fails_with(
+        &[
+            "stream",
+            "--session",
+            p(&counts),
+            "--model",
+            p(&model),
+            "--daemon",
+            &target,
+            "--actuator",
+            &sink_text,
+        ],
+        2,
+    );
+    assert!(
+        err.contains("holds counts but the model decodes features"),
+        "{err}"
+    );
+    let stopped = daemon.stop().unwrap();
+    let log = stopped.session_log.expect("the daemon recorded");
+
+    // The bench sends the model's kind: every slot gets its packet (bins
+    // of the other kind would all be refused and no slot answered).
+    let config = dir.path().join("slack.toml");
+    std::fs::write(&config, "[timing]\ndeadline_slack_bins = 4.0\n").unwrap();
+    let bench = dir.path().join("bench");
+    assert_no_budget_failure(&[
+        "bench",
+        "--seconds",
+        "1.5",
+        "--model",
+        p(&model),
+        "--config",
+        p(&config),
+        "--report",
+        p(&bench),
+    ]);
+    let summary: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(bench.join("summary.json")).unwrap())
+            .unwrap();
+    assert_eq!(summary["missed_slots"], 0, "{summary}");
+
+    let said = ok(&["verify", p(&log)]);
+    assert!(said.contains("300"), "{said}");
+    let exported = dir.path().join("exported");
+    let nwb = dir.path().join("features.nwb");
+    ok(&["export", p(&log), "--out", p(&exported), "--nwb", p(&nwb)]);
+    let f = hdf5_pure::File::open(&nwb).unwrap();
+    let in_file = f
+        .dataset("acquisition/binned_features/data")
+        .unwrap()
+        .read_f32()
+        .unwrap();
+    let sent = decoder_core::Block::read(&block).unwrap();
+    let back = decoder_core::Block::read(&exported).unwrap();
+    assert_eq!(back.input, decoder_core::wire::packet::BinKind::Features);
+    // The streamed bins are the log's first slots (later ones, answered
+    // after the sender stopped, had no bin): the same f32 values.
+    let streamed = sent.features.len();
+    assert!(back.features.len() >= streamed, "{} rows", back.n_bins);
+    assert_eq!(back.features[..streamed], sent.features[..]);
+    assert_eq!(in_file, back.features);
+    if let Some(python) = std::env::var_os("VDEC_REFERENCE_PYTHON") {
+        let script =
+            Path::new(env!("CARGO_MANIFEST_DIR")).join("../tests/reference/check_nwb_export.py");
+        let out = std::process::Command::new(python)
+            .arg(&script)
+            .arg(&nwb)
+            .arg(&exported)
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "{}{}",
+            String::from_utf8_lossy(&out.stdout),
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+}

@@ -68,7 +68,10 @@ fn replay_with_the_wrong_array_names_both_channel_counts() {
         ],
         2,
     );
-    assert!(e.contains("12 columns") && e.contains("16 channels"), "{e}");
+    assert!(
+        e.contains("has 12 channels") && e.contains("expects 16"),
+        "{e}"
+    );
     assert!(!out.exists());
 }
 

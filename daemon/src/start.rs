@@ -111,6 +111,12 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
         .pipeline()
         .with_context(|| format!("model {} cannot be run", model_path.display()))?;
     let settings = config.engine_settings(loaded.file.bin_width);
+    if settings.drift.enabled && pipeline.input() == packet::BinKind::Features {
+        tracing::warn!(
+            "[drift] enabled is ignored: drift handling follows spike counts and model {} decodes continuous features",
+            model_path.display()
+        );
+    }
     let n_channels = pipeline.n_channels();
     let n_outputs = pipeline.n_outputs();
     if n_outputs == 0 || n_outputs > packet::MAX_DIMS {

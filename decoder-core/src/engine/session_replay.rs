@@ -66,6 +66,8 @@ pub struct RecordedStream {
     pub n_channels: usize,
     pub bin_width: crate::BinWidth,
     pub n_outputs: usize,
+    /// What its bins are: the kind its first model decodes.
+    pub input: crate::wire::packet::BinKind,
 }
 
 /// One slot: what the replay produced, and what the daemon recorded.
@@ -139,7 +141,7 @@ impl SessionReplay {
             stream.n_channels,
             stream.bin_width,
             stream.n_outputs,
-            pipeline.input(),
+            stream.input,
         )
         .map_err(SessionReplayError::Override)?;
         let mut r = SessionReplay::new(stream.settings.clone());

@@ -328,6 +328,12 @@ pub struct SlotEngine {
 
 impl SlotEngine {
     pub fn new(settings: EngineSettings, pipeline: DecodePipeline) -> SlotEngine {
+        let mut settings = settings;
+        if pipeline.input() == BinKind::Features {
+            // Drift handling follows counts; a model of features runs
+            // without it (the daemon says so at start).
+            settings.drift.enabled = false;
+        }
         let mut pipeline = pipeline;
         pipeline.configure_drift(settings.drift, settings.saturation_count);
         let n = pipeline.n_channels();
@@ -848,6 +854,9 @@ impl SlotEngine {
             }
             OperatorCommand::Disarm => self.supervisor.disarm(seq),
             OperatorCommand::Halt => self.supervisor.halt(seq, TransitionReason::OperatorHalt),
+            OperatorCommand::DriftOn if self.pipeline.input() == BinKind::Features => {
+                return Err(ArmRefused::DriftNeedsCounts);
+            }
             OperatorCommand::DriftOn | OperatorCommand::DriftOff => {
                 let enabled = command == OperatorCommand::DriftOn;
                 if self.settings.drift.enabled != enabled {

@@ -158,6 +158,10 @@ pub enum ArmRefused {
         "{left_out} of {channels} channels are left out as dead or noisy; check the array's connections and the front end, or retrain on the channels that remain"
     )]
     TooManyLeftOut { left_out: u32, channels: u32 },
+    #[error(
+        "drift handling follows spike counts (baselines, silence, saturation) and the running model decodes continuous features; it stays off"
+    )]
+    DriftNeedsCounts,
 }
 
 impl Supervisor {

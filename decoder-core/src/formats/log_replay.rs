@@ -12,10 +12,10 @@ use crate::formats::session_log::{LogEnd, LogReader, LogRecord};
 
 /// Why a log could not be replayed: the engine's reason, with the log.
 #[derive(Debug, thiserror::Error)]
-#[error("{path}: {source}")]
+#[error("{path}: {problem}")]
 pub struct LogReplayError {
     pub path: String,
-    pub source: SessionReplayError<LoadError>,
+    pub problem: SessionReplayError<LoadError>,
 }
 
 /// What a log's replay went through, and how the log ended.
@@ -63,6 +63,21 @@ impl LogRecord {
     }
 }
 
+/// What the bins of the log at `path` are: the kind its first model
+/// decodes (counts when it holds none that reads).
+fn logged_input(path: &std::path::Path) -> crate::wire::packet::BinKind {
+    let Ok(mut reader) = LogReader::open(path) else {
+        return crate::wire::packet::BinKind::Counts;
+    };
+    while let Some(record) = reader.next_record() {
+        if let LogRecord::Model { model_file, .. } = record {
+            return ModelFile::from_bytes(&model_file, "")
+                .map_or(crate::wire::packet::BinKind::Counts, |m| m.input);
+        }
+    }
+    crate::wire::packet::BinKind::Counts
+}
+
 /// Replays the log behind `reader`. With `model` the logged model loads are
 /// ignored and every bin is decoded by `model` instead (to compare
 /// decoders on the same session); the slots stay the logged ones.
@@ -78,10 +93,15 @@ pub fn replay_log(
         n_channels: h.n_channels,
         bin_width: h.bin_width,
         n_outputs: h.outputs.len(),
+        input: if model.is_some() {
+            logged_input(reader.path())
+        } else {
+            crate::wire::packet::BinKind::Counts
+        },
     };
-    let named = |source| LogReplayError {
+    let named = |problem| LogReplayError {
         path: path.clone(),
-        source,
+        problem,
     };
     let mut replay = match model {
         Some(m) => {

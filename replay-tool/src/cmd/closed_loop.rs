@@ -301,7 +301,16 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
     let bin_us = model.bin_width.us();
     let period = Duration::from_secs_f64(model.bin_width.ms() / 1000.0);
     let mut counts = vec![0u16; n];
-    let mut datagram = Vec::with_capacity(packet::BIN_HEADER_LEN + 2 * n);
+    let mut datagram = Vec::with_capacity(packet::BIN_HEADER_LEN + 4 * n);
+    // A model of features gets the user's counts made simulated spike band
+    // power, as `simulate --features` makes them (the array's offsets and
+    // gains, noise seeded by the task).
+    let mut features = (model.input == packet::BinKind::Features).then(|| {
+        (
+            decoder_core::sim::features::FeatureMaker::new(setup.array_seed, task_options.seed, n),
+            vec![0f32; n],
+        )
+    });
     let mut reply = [0u8; 1024];
     let mut task_bytes = Vec::with_capacity(128);
     let mut coasted = 0;
@@ -330,18 +339,26 @@ pub fn run(setup: &ClosedLoopSetup<'_>) -> Result<ClosedLoopRun> {
         let intended = task.intended_velocity();
         let attempting = task.attempting_click();
         user.bin_counts_attempting(intended, attempting, &mut counts);
-        packet::encode_bin(
-            &BinHeader {
-                channels: n as u16,
-                seq,
-                origin_ns: daemon::sys::monotonic_ns(),
-                bin_us,
-                flags: 0,
-                kind: packet::BinKind::Counts,
-            },
-            &counts,
-            &mut datagram,
-        );
+        match features.as_mut() {
+            None => packet::encode_bin(
+                &BinHeader {
+                    channels: n as u16,
+                    seq,
+                    origin_ns: daemon::sys::monotonic_ns(),
+                    bin_us,
+                    flags: 0,
+                    kind: packet::BinKind::Counts,
+                },
+                &counts,
+                &mut datagram,
+            ),
+            Some((maker, f)) => {
+                maker.features(&counts, f);
+                datagram = packet::features_datagram(f, bin_us);
+                datagram[8..16].copy_from_slice(&seq.to_le_bytes());
+                datagram[16..24].copy_from_slice(&daemon::sys::monotonic_ns().to_le_bytes());
+            }
+        }
         front_end.send_to(&datagram, listen)?;
         let waited = Instant::now();
         let answer = loop {

@@ -194,7 +194,7 @@ pub fn verify(log: &Path, tolerance: Option<f64>) -> Result<Verified> {
     let summary = match result {
         Ok(s) => s,
         Err(LogReplayError {
-            source: SessionReplayError::UnmatchedSent { seq, offset },
+            problem: SessionReplayError::UnmatchedSent { seq, offset },
             ..
         }) if first.is_none() => {
             return Err(CheckFailed(format!(

@@ -496,6 +496,16 @@ fn a_block_of_features_trains_streams_verifies_and_exports_to_nwb() {
         out.contains("300 of 300 live estimates equal offline decoding bit for bit"),
         "{out}"
     );
+    // Drift handling follows counts: the operator's `drift on` is refused
+    // with the reason.
+    let reply = daemon
+        .ctl(&daemon::control::Request::Drift { on: true })
+        .unwrap();
+    assert!(
+        !reply.ok && reply.message.contains("continuous features"),
+        "{}",
+        reply.message
+    );
     // Counts to a daemon of features: refused before a bin is sent.
     let counts = dir.path().join("counts");
     ok(&[
@@ -551,6 +561,34 @@ fn a_block_of_features_trains_streams_verifies_and_exports_to_nwb() {
 
     let said = ok(&["verify", p(&log)]);
     assert!(said.contains("300"), "{said}");
+    // Its bins replayed through a model of counts: refused, both named.
+    let counts_model = dir.path().join("counts.model");
+    ok(&[
+        "train",
+        "--session",
+        p(&counts),
+        "--decoder",
+        "kalman",
+        "--no-cv",
+        "--out",
+        p(&counts_model),
+    ]);
+    let err = fails_with(
+        &[
+            "replay",
+            "--session",
+            p(&log),
+            "--model",
+            p(&counts_model),
+            "--out",
+            p(&dir.path().join("x.npy")),
+        ],
+        2,
+    );
+    assert!(
+        err.contains("decodes counts but the running one decodes features"),
+        "{err}"
+    );
     let exported = dir.path().join("exported");
     let nwb = dir.path().join("features.nwb");
     ok(&["export", p(&log), "--out", p(&exported), "--nwb", p(&nwb)]);
@@ -569,6 +607,26 @@ fn a_block_of_features_trains_streams_verifies_and_exports_to_nwb() {
     assert!(back.features.len() >= streamed, "{} rows", back.n_bins);
     assert_eq!(back.features[..streamed], sent.features[..]);
     assert_eq!(in_file, back.features);
+
+    // The simulated user drives a model of features in closed loop (its
+    // counts made features as the simulator makes them); the session log
+    // verifies and refits like one of counts.
+    let report = dir.path().join("closed-loop");
+    closed_loop_fast(&model, "4", &[], &report);
+    let cl_log = closed_loop_log(&report);
+    let said = ok(&["verify", p(&cl_log)]);
+    assert!(said.contains("bit for bit"), "{said}");
+    ok(&[
+        "train",
+        "--session",
+        p(&cl_log),
+        "--refit",
+        "--decoder",
+        "kalman",
+        "--no-cv",
+        "--out",
+        p(&dir.path().join("refit.model")),
+    ]);
     if let Some(python) = std::env::var_os("VDEC_REFERENCE_PYTHON") {
         let script =
             Path::new(env!("CARGO_MANIFEST_DIR")).join("../tests/reference/check_nwb_export.py");

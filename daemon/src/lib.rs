@@ -15,6 +15,7 @@ pub mod control;
 mod event_log;
 pub mod model_identity;
 pub mod recorder;
+pub mod reduction;
 pub mod requests;
 pub mod rt_loop;
 pub mod start;

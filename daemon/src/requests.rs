@@ -81,6 +81,12 @@ pub enum ControlRequest {
         on: bool,
         reply: oneshot::Sender<Result<AdaptOutcome, Refused>>,
     },
+    /// A Kalman filter's reduced form, built by the worker of
+    /// [`crate::reduction`] for the change of that generation.
+    ReducedForm {
+        generation: u64,
+        terms: Box<decoder_core::decoders::kalman::filter::ReducedTerms>,
+    },
 }
 
 /// What an operator command did.

@@ -83,6 +83,8 @@ pub struct RtLoop {
     /// An adaptation update accepted but not yet due: it goes in at the
     /// first slot at or after its `lands_at`.
     pub pending_update: Option<(UpdateTicket, Box<LoadRequest>)>,
+    /// Builds a Kalman filter's reduced form off this thread.
+    pub reduce: crate::reduction::ReducedFormWorker,
     pub events: Sender<TimedEvent>,
     pub shutdown: Arc<AtomicBool>,
     pub info: StaticInfo,
@@ -183,6 +185,11 @@ enum LoopEvent {
         on: bool,
         reply: tokio::sync::oneshot::Sender<Result<AdaptOutcome, Refused>>,
     },
+    /// A Kalman filter's reduced form, built by the worker.
+    ReducedForm {
+        generation: u64,
+        terms: Box<decoder_core::decoders::kalman::filter::ReducedTerms>,
+    },
 }
 
 impl From<ControlRequest> for LoopEvent {
@@ -197,6 +204,9 @@ impl From<ControlRequest> for LoopEvent {
             }
             ControlRequest::Load(load) => LoopEvent::ModelLoad(load),
             ControlRequest::Adapt { on, reply } => LoopEvent::AdaptationSwitch { on, reply },
+            ControlRequest::ReducedForm { generation, terms } => {
+                LoopEvent::ReducedForm { generation, terms }
+            }
         }
     }
 }
@@ -229,6 +239,7 @@ impl RtLoop {
                 self.handle(event, &mut scratch);
             }
             self.flush_records();
+            self.reduce.tend(&mut self.engine);
             if !self.control.queue.is_empty() {
                 alloc_count::set_on_decode_path(false);
                 while let Ok(request) = self.control.queue.try_recv() {
@@ -292,6 +303,11 @@ impl RtLoop {
             }
             LoopEvent::AdaptationSwitch { on, reply } => {
                 let _ = reply.send(self.on_adaptation_switch(on));
+            }
+            LoopEvent::ReducedForm { generation, terms } => {
+                if let Some(stale) = self.engine.offer_reduction(generation, *terms) {
+                    self.reduce.discard(stale);
+                }
             }
         }
     }
@@ -625,6 +641,8 @@ impl RtLoop {
                         let b = t.baseline_spread();
                         [b.min_ratio, b.median_ratio, b.max_ratio]
                     }),
+                    reduced_forms: self.engine.pipeline().reductions().0,
+                    reduced_forms_built_at_the_bin: self.engine.pipeline().reductions().1,
                 }
             },
         }

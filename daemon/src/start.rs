@@ -241,6 +241,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
             Err(m) => tracing::warn!("adaptation.enabled = true, but {m}"),
         }
     }
+    let reduce = crate::reduction::ReducedFormWorker::start(control_tx.clone())?;
     // The model's bytes and parameters are in the pipeline and the log now.
     drop(loaded);
     let realtime = config.realtime.clone();
@@ -268,6 +269,7 @@ pub fn start(config: Config, shutdown: Arc<AtomicBool>) -> Result<DaemonHandle> 
                 monitor: Monitor::default(),
                 control: control_rx,
                 pending_update: None,
+                reduce,
                 events: events_tx,
                 shutdown: rt_shutdown,
                 info,

@@ -346,6 +346,11 @@ pub struct DriftStatus {
     /// Tracked baseline over training baseline across the channels in the
     /// decode: lowest, median, highest.
     pub baseline_ratio: [f64; 3],
+    /// A Kalman decoder's reduced forms put in place for changes of the
+    /// channels left out, and how many of them the decode thread had to
+    /// build at their bin because the worker's came too late.
+    pub reduced_forms: u64,
+    pub reduced_forms_built_at_the_bin: u64,
 }
 
 impl DriftStatus {

@@ -71,6 +71,8 @@ fn the_status_document_on_the_wire_has_the_fields_protocol_lists() {
             "enabled",
             "left_out",
             "left_out_total",
+            "reduced_forms",
+            "reduced_forms_built_at_the_bin",
             "restored_total"
         ]
         .map(String::from)

@@ -1,7 +1,8 @@
 //! Criterion benchmarks of the decoding core: one decode step by channel
 //! count (Kalman full and steady-state; point-process without and with
-//! history), offline replay throughput, and training time on a 30-minute,
-//! 192-channel block. Figures are in BENCHMARKS.md.
+//! history), offline replay throughput, training time on a 30-minute,
+//! 192-channel block, and leaving channels out of a Kalman filter with a
+//! full Q. Figures are in BENCHMARKS.md.
 
 use std::hint::black_box;
 
@@ -273,8 +274,47 @@ fn click_step(c: &mut Criterion) {
     group.finish();
 }
 
+/// Leaving channels out of a Kalman filter with a full Q: building the
+/// reduced terms (what the daemon's worker does, O(r·N²)) and putting them
+/// in place (what the decode thread does at the change's bin).
+fn left_out_reduction(c: &mut Criterion) {
+    let mut group = c.benchmark_group("left_out");
+    group.sample_size(10);
+    for n in [96usize, 1024] {
+        let mut model = random_model(n);
+        // A full Q: independent noise plus a shared component.
+        let ObservationNoise::Diagonal(diag) = &model.q else {
+            unreachable!()
+        };
+        let mut q = Mat::zeros(n, n);
+        for (i, &d) in diag.iter().enumerate() {
+            for j in 0..n {
+                q.set(i, j, if i == j { d + 0.05 } else { 0.05 });
+            }
+        }
+        model.q = ObservationNoise::Full(q);
+        let mut filter = KalmanFilter::new(&model, false).unwrap();
+        let reducer = filter.reducer();
+        // A tenth of the channels out.
+        let flags: Vec<bool> = (0..n).map(|c| c % 10 == 3).collect();
+        group.bench_function(BenchmarkId::new("build_full_q", n), |b| {
+            b.iter(|| black_box(reducer.terms(black_box(&flags))))
+        });
+        let terms = reducer.terms(&flags);
+        group.bench_function(BenchmarkId::new("put_in_place", n), |b| {
+            b.iter_batched(
+                || terms.clone(),
+                |t| black_box(filter.apply_reduced(t)),
+                criterion::BatchSize::LargeInput,
+            )
+        });
+    }
+    group.finish();
+}
+
 criterion_group!(
     benches,
+    left_out_reduction,
     decode_step,
     point_process_step,
     click_step,

@@ -130,3 +130,57 @@ fn drift_handling_recovers_most_of_the_loss_and_costs_little_without_drift() {
         "{clean_on:.3} on, {clean_off:.3} off"
     );
 }
+
+/// A Kalman decoder's change of the channels left out takes effect at the
+/// first bin `left_out_after_s` after it was judged, whoever builds the
+/// reduced filter: terms built elsewhere and offered before that bin give
+/// the same estimates, bit for bit, as terms the pipeline builds itself at
+/// the bin (what a replay does, and the daemon when its worker is late).
+#[test]
+fn a_change_of_channels_left_out_lands_at_its_bin_whoever_builds_it() {
+    let calib = block(1, 4.0, None);
+    let model = DecoderModel::Kalman(fit_kalman(&calib, &KalmanFitOptions::default()).unwrap().0);
+    let day = block(2, MINUTES, Some(drifting()));
+    let settings = DriftSettings {
+        enabled: true,
+        left_out_after_s: 0.1, // 5 bins of 20 ms
+        ..DriftSettings::default()
+    };
+    let pipeline = || {
+        let mut p =
+            DecodePipeline::from_decoder(&model, BinWidth::from_ms(20.0).unwrap(), true).unwrap();
+        p.configure_drift(settings, 21);
+        p
+    };
+    let (mut here, mut offered) = (pipeline(), pipeline());
+    let mut changes = 0;
+    for t in 0..day.n_bins as u64 {
+        let a = here.step(t, day.bin_counts(t as usize)).estimate.to_vec();
+        // The other pipeline's worker: builds each new change at once and
+        // offers it, well before its bin.
+        let b = offered
+            .step(t, day.bin_counts(t as usize))
+            .estimate
+            .to_vec();
+        assert_eq!(
+            a.iter().map(|v| v.to_bits()).collect::<Vec<_>>(),
+            b.iter().map(|v| v.to_bits()).collect::<Vec<_>>(),
+            "bin {t}"
+        );
+        let _ = offered.take_spent_reduction();
+        if let Some(req) = offered.reduction_request()
+            && req.generation > changes
+        {
+            changes = req.generation;
+            // Pending from the bin it was judged until its due bin.
+            assert_eq!(req.due, t + 5, "judged at bin {t}");
+            let terms = req.reducer.terms(&req.left_out);
+            assert!(offered.offer_reduction(req.generation, terms).is_none());
+        }
+        assert_eq!(here.pending_reduction(), offered.pending_reduction());
+    }
+    let (applied, at_the_bin) = here.reductions();
+    assert!(applied >= 2, "{applied} changes (silent, then noisy)");
+    assert_eq!(at_the_bin, applied, "no terms were offered to this one");
+    assert_eq!(offered.reductions(), (applied, 0));
+}

@@ -61,6 +61,12 @@ pub struct DriftSettings {
     pub restore_after_s: f64,
     /// More than this share of channels left out halts the decoder.
     pub max_left_out: f64,
+    /// A Kalman decoder's reduced form for a new set of channels left out
+    /// takes effect this long after the change was judged (built
+    /// meanwhile on a worker thread; the channels newly out are fed their
+    /// training mean until then). 0 builds it on the decode thread at the
+    /// bin it is judged.
+    pub left_out_after_s: f64,
 }
 
 impl Default for DriftSettings {
@@ -79,6 +85,7 @@ impl Default for DriftSettings {
             noisy_floor_hz: 20.0,
             restore_after_s: 10.0,
             max_left_out: 0.3,
+            left_out_after_s: 0.25,
         }
     }
 }
@@ -128,6 +135,7 @@ impl DriftSettings {
         for (key, value) in [
             ("drift.dead_min_rate_hz", self.dead_min_rate_hz),
             ("drift.noisy_floor_hz", self.noisy_floor_hz),
+            ("drift.left_out_after_s", self.left_out_after_s),
         ] {
             if !(value.is_finite() && value >= 0.0) {
                 return Err(DriftSettingsError {
@@ -191,6 +199,9 @@ pub struct DriftTracker {
     a_bias: f64,
     dead_bins: u64,
     restore_bins: u64,
+    /// Bins from a change of the channels left out to the bin at which a
+    /// Kalman decoder's reduced form takes effect.
+    left_out_lag_bins: u64,
     /// Training mean count per bin, per channel.
     ref_mean: Vec<f64>,
     /// Training variance per channel, when the decoder normalises counts.
@@ -249,6 +260,7 @@ impl DriftTracker {
             a_bias: ew_weight(settings.bias_tau_s, bin_width),
             dead_bins: bins(settings.dead_after_s),
             restore_bins: bins(settings.restore_after_s),
+            left_out_lag_bins: (settings.left_out_after_s / bin_s - 1e-9).ceil().max(0.0) as u64,
             settings,
             saturation_count,
             noisy_limit,
@@ -388,6 +400,13 @@ impl DriftTracker {
     /// Channels left out or restored on the last bin.
     pub fn changes(&self) -> &[ChannelChange] {
         &self.changes
+    }
+
+    /// Bins from a change of the channels left out to the bin whose decode
+    /// first uses the Kalman filter's reduced form for them
+    /// (`left_out_after_s`).
+    pub fn left_out_lag_bins(&self) -> u64 {
+        self.left_out_lag_bins
     }
 
     /// One flag per channel: left out of the decode.

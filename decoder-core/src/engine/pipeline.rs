@@ -10,6 +10,7 @@
 use crate::bin_width::BinWidth;
 use crate::decoders::DecoderModel;
 use crate::decoders::click::ClickFilter;
+use crate::decoders::kalman::filter::{ReducedTerms, Reducer};
 use crate::decoders::kalman::{KalmanError, KalmanFilter};
 use crate::decoders::point_process::{PointProcessError, PointProcessFilter};
 use crate::decoders::wiener::WienerFilter;
@@ -77,6 +78,39 @@ pub struct DecodePipeline {
     input: BinKind,
     /// A bin's features as f64 (a model of features), reused.
     values: Vec<f64>,
+    /// Leaving channels out of a Kalman filter: see [`ReductionRequest`].
+    reduction: Reduction,
+}
+
+/// A Kalman filter's change of the channels left out, on its way: judged
+/// at one bin, in effect from a later one (`drift.left_out_after_s`), its
+/// reduced terms built meanwhile wherever the caller likes. The bin it
+/// takes effect at depends on the bins alone, so a replay and the live
+/// decode change at the same bin, whoever built the terms.
+#[derive(Clone, Debug, Default)]
+struct Reduction {
+    /// (generation, seq from which the change is in effect).
+    pending: Option<(u64, u64)>,
+    /// The channels the pending change leaves out.
+    wanted: Vec<bool>,
+    generation: u64,
+    /// Terms built elsewhere, with the generation they were built for.
+    offered: Option<(u64, ReducedTerms)>,
+    /// Terms replaced, for the caller to drop off the decode path.
+    spent: Option<ReducedTerms>,
+    applied: u64,
+    built_at_the_bin: u64,
+}
+
+/// What to build for a pending change of the channels left out
+/// ([`DecodePipeline::reduction_request`]).
+#[derive(Clone, Debug)]
+pub struct ReductionRequest {
+    pub generation: u64,
+    /// The seq whose decode first uses the terms.
+    pub due: u64,
+    pub left_out: Vec<bool>,
+    pub reducer: std::sync::Arc<Reducer>,
 }
 
 /// Why a checked model still cannot be run: the Kalman filter's noise
@@ -133,6 +167,7 @@ impl DecodePipeline {
             last_flags: (false, false),
             input: BinKind::Counts,
             values: Vec::new(),
+            reduction: Reduction::default(),
         };
         p.reset();
         Ok(p)
@@ -216,6 +251,8 @@ impl DecodePipeline {
                 self.estimate.len(),
             )
         });
+        self.reduction.pending = None;
+        self.reduction.offered = None;
         self.apply_left_out();
     }
 
@@ -240,6 +277,112 @@ impl DecodePipeline {
             Engine::Wiener(_) => {}
             Engine::PointProcess { filter, .. } => filter.set_left_out(flags),
         }
+    }
+
+    /// The tracker left channels out or brought them back at `seq`. A
+    /// Kalman filter takes the change from `seq + left_out_lag_bins`
+    /// (meanwhile the tracker feeds a channel newly out its training
+    /// mean); the other decoders at once.
+    fn left_out_changed(&mut self, seq: u64) {
+        let Some(t) = self.drift.as_ref() else {
+            return;
+        };
+        let lag = t.left_out_lag_bins();
+        if !matches!(self.engine, Engine::Kalman { .. }) || lag == 0 {
+            self.reduction.pending = None;
+            self.apply_left_out();
+            return;
+        }
+        let r = &mut self.reduction;
+        r.wanted.clear();
+        r.wanted.extend_from_slice(t.left_out());
+        r.generation += 1;
+        r.pending = Some((r.generation, seq.wrapping_add(lag)));
+        if let Some((_, old)) = r.offered.take() {
+            r.spent = Some(old);
+        }
+    }
+
+    /// Puts a pending change of the channels left out in place when `seq`
+    /// is its bin or later: the terms offered for it, else built here.
+    fn land_reduction(&mut self, seq: u64) {
+        let Some((generation, due)) = self.reduction.pending else {
+            return;
+        };
+        // seq ≥ due on the circle of u64 seqs.
+        if seq.wrapping_sub(due) > u64::MAX / 2 {
+            return;
+        }
+        let Engine::Kalman { filter, .. } = &mut self.engine else {
+            return;
+        };
+        let r = &mut self.reduction;
+        let terms = match r.offered.take() {
+            Some((g, t)) if g == generation => t,
+            other => {
+                if let Some((_, stale)) = other {
+                    r.spent = Some(stale);
+                }
+                r.built_at_the_bin += 1;
+                filter.reducer().terms(&r.wanted)
+            }
+        };
+        r.spent = Some(filter.apply_reduced(terms));
+        r.applied += 1;
+        r.pending = None;
+    }
+
+    /// The pending change of the channels left out, for a worker to build
+    /// its terms ([`Reducer::terms`]) and hand them back with
+    /// [`DecodePipeline::offer_reduction`] before its bin; `None` when
+    /// nothing is pending. Allocates (the flags): call it when
+    /// [`DecodePipeline::pending_reduction`] shows a new generation.
+    pub fn reduction_request(&self) -> Option<ReductionRequest> {
+        let (generation, due) = self.reduction.pending?;
+        let Engine::Kalman { filter, .. } = &self.engine else {
+            return None;
+        };
+        Some(ReductionRequest {
+            generation,
+            due,
+            left_out: self.reduction.wanted.clone(),
+            reducer: filter.reducer(),
+        })
+    }
+
+    /// The generation of the pending change of the channels left out, if
+    /// any; cheap, to poll every slot.
+    pub fn pending_reduction(&self) -> Option<u64> {
+        self.reduction.pending.map(|(g, _)| g)
+    }
+
+    /// Terms built for the change of generation `generation`: kept for its
+    /// bin, or handed back when that change is no longer pending.
+    pub fn offer_reduction(
+        &mut self,
+        generation: u64,
+        terms: ReducedTerms,
+    ) -> Option<ReducedTerms> {
+        match self.reduction.pending {
+            Some((g, _)) if g == generation && terms.left_out() == self.reduction.wanted => {
+                self.reduction.offered = Some((generation, terms));
+                None
+            }
+            _ => Some(terms),
+        }
+    }
+
+    /// Terms the filter no longer uses, for the caller to drop where
+    /// freeing them costs the decode nothing.
+    pub fn take_spent_reduction(&mut self) -> Option<ReducedTerms> {
+        self.reduction.spent.take()
+    }
+
+    /// Changes of the channels left out put in place, and how many of
+    /// those had their terms built at their bin because none had been
+    /// offered in time.
+    pub fn reductions(&self) -> (u64, u64) {
+        (self.reduction.applied, self.reduction.built_at_the_bin)
     }
 
     /// Whether the model runs a click decoder.
@@ -301,11 +444,16 @@ impl DecodePipeline {
             self.n_channels,
             "bin has the wrong channel count"
         );
-        let updated = if let Some(t) = self.drift.as_mut() {
-            if t.observe(counts, self.tracking) {
-                self.apply_left_out();
-            }
-            let values = self.drift.as_ref().expect("drift on").values();
+        self.land_reduction(seq);
+        let changed = match self.drift.as_mut() {
+            Some(t) => t.observe(counts, self.tracking),
+            None => false,
+        };
+        if changed {
+            self.left_out_changed(seq);
+        }
+        let updated = if let Some(t) = self.drift.as_ref() {
+            let values = t.values();
             match &mut self.engine {
                 Engine::Kalman { filter, .. } => filter.step_values(values),
                 Engine::Wiener(w) => {
@@ -334,6 +482,7 @@ impl DecodePipeline {
 
     /// A bin that never came: advance the model without counts.
     pub fn predict_only(&mut self, seq: u64) -> BinEstimate<'_> {
+        self.land_reduction(seq);
         match &mut self.engine {
             Engine::Kalman { filter, .. } => filter.predict_only(),
             Engine::Wiener(w) => w.predict_only(),

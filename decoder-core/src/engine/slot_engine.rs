@@ -886,6 +886,35 @@ impl SlotEngine {
         )
     }
 
+    /// A pending change of the Kalman filter's channels left out, for a
+    /// worker to build ([`DecodePipeline::reduction_request`]).
+    pub fn reduction_request(&self) -> Option<crate::engine::pipeline::ReductionRequest> {
+        self.pipeline.reduction_request()
+    }
+
+    /// The generation of the pending change, if any (cheap; poll it every
+    /// slot).
+    pub fn pending_reduction(&self) -> Option<u64> {
+        self.pipeline.pending_reduction()
+    }
+
+    /// Terms a worker built ([`DecodePipeline::offer_reduction`]); handed
+    /// back when no longer wanted.
+    pub fn offer_reduction(
+        &mut self,
+        generation: u64,
+        terms: crate::decoders::kalman::filter::ReducedTerms,
+    ) -> Option<crate::decoders::kalman::filter::ReducedTerms> {
+        self.pipeline.offer_reduction(generation, terms)
+    }
+
+    /// Terms the filter no longer uses, to drop off the decode thread.
+    pub fn take_spent_reduction(
+        &mut self,
+    ) -> Option<crate::decoders::kalman::filter::ReducedTerms> {
+        self.pipeline.take_spent_reduction()
+    }
+
     /// Swaps in a new decoder before the next slot, which carries
     /// [`FLAG_MODEL_CHANGED`]. Returns the old pipeline so the caller can
     /// free it off the real-time path.

@@ -25,10 +25,13 @@ use serde::{Deserialize, Serialize};
 use crate::engine::slot_engine::{EngineSettings, OperatorCommand};
 
 pub const LOG_MAGIC: &[u8; 8] = b"VDECSLOG";
-/// Version this build writes. Version 3 added the operator's drift on
-/// and off (operator codes 4 and 5); version 2 added task records (kind
-/// 8); logs of versions 1 and 2, which have neither, are read too.
-pub const LOG_FORMAT_VERSION: u32 = 3;
+/// Version this build writes. Version 4 records `drift.left_out_after_s`
+/// (a Kalman filter's change of channels left out takes effect that long
+/// after it is judged); a log of an earlier version changed at once, and
+/// is read with 0. Version 3 added the operator's drift on and off
+/// (operator codes 4 and 5); version 2 added task records (kind 8); logs
+/// of versions 1 and 2, which have neither, are read too.
+pub const LOG_FORMAT_VERSION: u32 = 4;
 /// Oldest version this build reads.
 pub const LOG_OLDEST_VERSION: u32 = 1;
 const FILE_HEADER_LEN: usize = 8 + 4 + 4 + 4;
@@ -145,7 +148,9 @@ pub enum SessionLogError {
     },
     #[error("{path}: not a session log (no VDECSLOG magic); pass the .vdlog file the daemon wrote")]
     NotALog { path: PathBuf },
-    #[error("{path}: session log format version {version}; this build reads versions 1 and 2")]
+    #[error(
+        "{path}: session log format version {version}; this build reads versions {LOG_OLDEST_VERSION} to {LOG_FORMAT_VERSION}"
+    )]
     Version { path: PathBuf, version: u32 },
     #[error(
         "{path}: the log ends inside its header ({bytes} bytes): the daemon stopped before the header was written, and the file holds no session"
@@ -295,8 +300,13 @@ impl LogReader {
         if crc32fast::hash(&json) != crc {
             return Err(header_err("checksum mismatch".into()));
         }
-        let header: LogHeader =
+        let mut header: LogHeader =
             serde_json::from_slice(&json).map_err(|e| header_err(e.to_string()))?;
+        if version < 4 {
+            // Recorded when a change of channels left out took effect at
+            // the bin it was judged.
+            header.settings.drift.left_out_after_s = 0.0;
+        }
         Ok(LogReader {
             path: path.to_path_buf(),
             input,

@@ -399,14 +399,28 @@ fn a_session_with_drift_handling_leaving_channels_out_and_back_verifies_bit_for_
     let log = closed_loop_log(&report);
     let mut reader = decoder_core::formats::session_log::LogReader::open(&log).unwrap();
     let (mut left_out, mut restored) = (0, 0);
+    let mut end = None;
     while let Some(r) = reader.next_record() {
-        if let decoder_core::formats::session_log::LogRecord::Event { json, .. } = r {
-            left_out += usize::from(json.contains("\"channel_left_out\""));
-            restored += usize::from(json.contains("\"channel_restored\""));
+        match r {
+            decoder_core::formats::session_log::LogRecord::Event { json, .. } => {
+                left_out += usize::from(json.contains("\"channel_left_out\""));
+                restored += usize::from(json.contains("\"channel_restored\""));
+            }
+            decoder_core::formats::session_log::LogRecord::End { json, .. } => end = Some(json),
+            _ => {}
         }
     }
     assert!(left_out >= 2, "{left_out} channels left out");
     assert!(restored >= 1, "{restored} channels restored");
+    // Each change reached the Kalman filter as its reduced form (built by
+    // the daemon's worker, or at its bin when the worker was late: which,
+    // the host's scheduler decides).
+    let status: serde_json::Value = serde_json::from_str(&end.expect("an end record")).unwrap();
+    assert!(
+        status["drift"]["reduced_forms"].as_u64().unwrap() >= 2,
+        "{}",
+        status["drift"]
+    );
     let said = ok(&["verify", p(&log)]);
     assert!(said.contains("bit for bit"), "{said}");
 }

@@ -24,6 +24,8 @@
 //! are needed, solved from the Cholesky factor of Q kept at load, so a
 //! change costs O(r·N² + r³ + d²·N) once, not per bin.
 
+use std::sync::Arc;
+
 use nalgebra::DMatrix;
 
 use super::model::{KalmanError, KalmanModel, ObservationNoise};
@@ -85,8 +87,11 @@ fn leading_minor(m: &Mat, k: usize) -> Vec<f64> {
 }
 
 /// The model's terms as loaded, from which a reduced filter is built.
+/// What leaving channels out of a Kalman filter needs, kept from load:
+/// [`Reducer::terms`] builds the filter's terms for any set of channels
+/// left out.
 #[derive(Clone, Debug)]
-struct Reducer {
+pub struct Reducer {
     /// HᵀQ⁻¹ in normalised units, d × N.
     g_norm: Mat,
     /// H, N × d.
@@ -103,6 +108,111 @@ struct Reducer {
     /// The steady-state posterior covariance: where the full recursion
     /// starts when channels leave a steady-state filter.
     steady_p: Option<Vec<f64>>,
+}
+
+/// The information-form terms of the model with some channels left out:
+/// what [`KalmanFilter::apply_reduced`] puts in place.
+#[derive(Clone, Debug)]
+pub struct ReducedTerms {
+    left_out: Vec<bool>,
+    g: Vec<f64>,
+    g0: Vec<f64>,
+    s: Vec<f64>,
+    /// With every channel in: the model's own steady-state runtime, if any.
+    steady: Option<SteadyRuntime>,
+    all_in: bool,
+}
+
+impl ReducedTerms {
+    /// The channels these terms leave out.
+    pub fn left_out(&self) -> &[bool] {
+        &self.left_out
+    }
+}
+
+impl Reducer {
+    /// The model's terms without the channels flagged in `left_out`: the
+    /// exact filter of the model with those rows of H and Q removed
+    /// (information form; with a full Q, the Schur complement of the
+    /// left-out block of Q⁻¹). O(r·N² + d²·N) for r channels out of N
+    /// with a full Q: at a thousand channels, tens of milliseconds, which
+    /// is why the daemon builds them on a worker thread. A pure function
+    /// of the model and the flags, so whoever builds them gets the same
+    /// bits.
+    pub fn terms(&self, left_out: &[bool]) -> ReducedTerms {
+        let r = self;
+        let (d, n) = (r.g_norm.rows, r.g_norm.cols);
+        assert_eq!(left_out.len(), n, "one flag per channel");
+        let out: Vec<usize> = (0..n).filter(|&c| left_out[c]).collect();
+        if out.is_empty() {
+            return ReducedTerms {
+                left_out: left_out.to_vec(),
+                g: r.g.clone(),
+                g0: r.g0.clone(),
+                s: r.s.clone(),
+                steady: r.steady.clone(),
+                all_in: true,
+            };
+        }
+        // G' in normalised units.
+        let mut g_red = r.g_norm.clone();
+        match &r.q_factor {
+            None => {
+                for row in 0..d {
+                    for &c in &out {
+                        g_red.data[row * n + c] = 0.0;
+                    }
+                }
+            }
+            Some(chol) => {
+                // Λ's rows R: Q z = e_c for each left-out channel.
+                let mut e = DMatrix::<f64>::zeros(n, out.len());
+                for (j, &c) in out.iter().enumerate() {
+                    e[(c, j)] = 1.0;
+                }
+                let lam_cols = chol.solve(&e); // N × r, Λ's columns R (Λ symmetric)
+                let lam_rr = DMatrix::from_fn(out.len(), out.len(), |i, j| lam_cols[(out[i], j)]);
+                let lam_r = lam_cols.transpose(); // r × N
+                let m = match lam_rr.clone().cholesky() {
+                    Some(c) => c.solve(&lam_r),
+                    None => lam_rr
+                        .lu()
+                        .solve(&lam_r)
+                        .unwrap_or_else(|| DMatrix::zeros(out.len(), n)),
+                };
+                let g_r = DMatrix::from_fn(d, out.len(), |row, j| r.g_norm.get(row, out[j]));
+                let corr = g_r * m; // d × N
+                for row in 0..d {
+                    for c in 0..n {
+                        g_red.data[row * n + c] -= corr[(row, c)];
+                    }
+                    for &c in &out {
+                        g_red.data[row * n + c] = 0.0;
+                    }
+                }
+            }
+        }
+        let (g, g0) = fold_normalisation(&g_red, &r.offset, &r.scale);
+        let mut s = vec![0.0; d * d];
+        for row in 0..d {
+            for col in 0..d {
+                let mut acc = 0.0;
+                for c in 0..n {
+                    acc += g_red.data[row * n + c] * r.h.get(c, col);
+                }
+                s[row * d + col] = acc;
+            }
+        }
+        linalg::symmetrize(&mut s, d);
+        ReducedTerms {
+            left_out: left_out.to_vec(),
+            g,
+            g0,
+            s,
+            steady: None,
+            all_in: false,
+        }
+    }
 }
 
 /// Steady-state runtime: x ← F x + K′ c − k₀ with F = (I − K H) A.
@@ -131,8 +241,9 @@ pub struct KalmanFilter {
     steady: Option<SteadyRuntime>,
     x: Vec<f64>,
     p: Vec<f64>,
-    /// What leaving channels out needs, kept from load.
-    reducer: Reducer,
+    /// What leaving channels out needs, kept from load (shared with a
+    /// thread that builds reduced terms).
+    reducer: Arc<Reducer>,
     /// Channels left out of the update (none unless drift handling says).
     left_out: Vec<bool>,
     // Scratch, sized once.
@@ -199,7 +310,7 @@ impl KalmanFilter {
             g,
             g0,
             s: s.data,
-            reducer,
+            reducer: Arc::new(reducer),
             left_out: vec![false; n],
             x0: model.x0.clone(),
             p0: model.p0.data.clone(),
@@ -327,84 +438,59 @@ impl KalmanFilter {
     /// rows and columns of Q. The state and covariance carry over. A
     /// steady-state filter runs the full recursion from its converged
     /// covariance while any channel is out, and its fixed gain again once
-    /// every channel is back. Allocates; call it at a change, not per bin.
+    /// every channel is back. Builds the terms here ([`Reducer::terms`]):
+    /// allocates and, with a full Q, costs O(r·N²); the daemon builds them
+    /// on a worker and puts them in place with
+    /// [`KalmanFilter::apply_reduced`].
     pub fn set_left_out(&mut self, left_out: &[bool]) {
         assert_eq!(left_out.len(), self.n, "one flag per channel");
         if left_out == self.left_out.as_slice() {
             return;
         }
-        self.left_out.copy_from_slice(left_out);
-        let r = &self.reducer;
-        let out: Vec<usize> = (0..self.n).filter(|&c| left_out[c]).collect();
-        if out.is_empty() {
-            self.g.copy_from_slice(&r.g);
-            self.g0.copy_from_slice(&r.g0);
-            self.s.copy_from_slice(&r.s);
-            self.steady = r.steady.clone();
+        let terms = self.reducer.terms(left_out);
+        self.apply_reduced(terms);
+    }
+
+    /// What builds the reduced terms for any set of channels left out: a
+    /// shared handle, so another thread can build them while this filter
+    /// decodes ([`Reducer::terms`]).
+    pub fn reducer(&self) -> Arc<Reducer> {
+        Arc::clone(&self.reducer)
+    }
+
+    /// Puts terms built by [`Reducer::terms`] in place: from the next bin
+    /// the filter is the model without those channels. Cheap (moves, and
+    /// with a steady-state model one d × d copy); returns the terms it
+    /// replaced, for the caller to drop where freeing costs nothing.
+    pub fn apply_reduced(&mut self, terms: ReducedTerms) -> ReducedTerms {
+        assert_eq!(terms.left_out.len(), self.n, "one flag per channel");
+        let ReducedTerms {
+            left_out,
+            g,
+            g0,
+            s,
+            steady,
+            all_in,
+        } = terms;
+        let old = ReducedTerms {
+            left_out: std::mem::replace(&mut self.left_out, left_out),
+            g: std::mem::replace(&mut self.g, g),
+            g0: std::mem::replace(&mut self.g0, g0),
+            s: std::mem::replace(&mut self.s, s),
+            steady: None,
+            all_in: false,
+        };
+        if all_in {
+            self.steady = steady;
             if self.steady.is_some() {
                 self.p.copy_from_slice(&self.p0);
             }
-            return;
-        }
-        let (d, n) = (self.d, self.n);
-        // G' in normalised units.
-        let mut g_red = r.g_norm.clone();
-        match &r.q_factor {
-            None => {
-                for row in 0..d {
-                    for &c in &out {
-                        g_red.data[row * n + c] = 0.0;
-                    }
-                }
-            }
-            Some(chol) => {
-                // Λ's rows R: Q z = e_c for each left-out channel.
-                let mut e = DMatrix::<f64>::zeros(n, out.len());
-                for (j, &c) in out.iter().enumerate() {
-                    e[(c, j)] = 1.0;
-                }
-                let lam_cols = chol.solve(&e); // N × r, Λ's columns R (Λ symmetric)
-                let lam_rr = DMatrix::from_fn(out.len(), out.len(), |i, j| lam_cols[(out[i], j)]);
-                let lam_r = lam_cols.transpose(); // r × N
-                let m = match lam_rr.clone().cholesky() {
-                    Some(c) => c.solve(&lam_r),
-                    None => lam_rr
-                        .lu()
-                        .solve(&lam_r)
-                        .unwrap_or_else(|| DMatrix::zeros(out.len(), n)),
-                };
-                let g_r = DMatrix::from_fn(d, out.len(), |row, j| r.g_norm.get(row, out[j]));
-                let corr = g_r * m; // d × N
-                for row in 0..d {
-                    for c in 0..n {
-                        g_red.data[row * n + c] -= corr[(row, c)];
-                    }
-                    for &c in &out {
-                        g_red.data[row * n + c] = 0.0;
-                    }
-                }
-            }
-        }
-        let (g, g0) = fold_normalisation(&g_red, &r.offset, &r.scale);
-        let mut s = vec![0.0; d * d];
-        for row in 0..d {
-            for col in 0..d {
-                let mut acc = 0.0;
-                for c in 0..n {
-                    acc += g_red.data[row * n + c] * r.h.get(c, col);
-                }
-                s[row * d + col] = acc;
-            }
-        }
-        linalg::symmetrize(&mut s, d);
-        self.g = g;
-        self.g0 = g0;
-        self.s = s;
-        if self.steady.take().is_some()
-            && let Some(p) = &r.steady_p
+        } else if self.steady.take().is_some()
+            && let Some(p) = &self.reducer.steady_p
         {
             self.p.copy_from_slice(p);
         }
+        old
     }
 
     fn predict_into_prior(&mut self) {

@@ -122,15 +122,22 @@ def make_block(rng):
     return counts, kin
 
 
-def write_block(path, counts, kin):
+def write_dir(path, values_name, values, kin, notes, extra=""):
+    """A session directory: counts.npy or features.npy, kinematics.npy and
+    manifest.toml (with `extra` lines)."""
     os.makedirs(path, exist_ok=True)
-    np.save(os.path.join(path, "counts.npy"), counts)
+    np.save(os.path.join(path, values_name), values)
     np.save(os.path.join(path, "kinematics.npy"), kin)
     with open(os.path.join(path, "manifest.toml"), "w") as f:
         f.write("version = 1\n")
         f.write(f"bin_ms = {BIN_MS}\n")
         f.write('kinematics = ["pos_x", "pos_y", "vel_x", "vel_y"]\n')
-        f.write('notes = "reference fixture, synthetic, seed %d"\n' % SEED)
+        f.write(extra)
+        f.write(f'notes = "{notes}"\n')
+
+
+def write_block(path, counts, kin):
+    write_dir(path, "counts.npy", counts, kin, "reference fixture, synthetic, seed %d" % SEED)
     with open(os.path.join(path, "trials.csv"), "w") as f:
         f.write("trial,start_bin,end_bin,target_x,target_y\n")
         for i, start in enumerate(range(0, T, 200)):
@@ -529,15 +536,13 @@ def per_block_fixtures(out):
         rate = np.exp(base[None, :] + shift * moved[None, :] + vel @ beta.T)
         counts = rng.poisson(rate).astype(np.int32)
         assert (counts.sum(axis=0) > 0).all(), "every channel must fire"
-        path = os.path.join(out, "blocks", name)
-        os.makedirs(path, exist_ok=True)
-        np.save(os.path.join(path, "counts.npy"), counts)
-        np.save(os.path.join(path, "kinematics.npy"), kin)
-        with open(os.path.join(path, "manifest.toml"), "w") as f:
-            f.write("version = 1\n")
-            f.write(f"bin_ms = {BIN_MS}\n")
-            f.write('kinematics = ["pos_x", "pos_y", "vel_x", "vel_y"]\n')
-            f.write('notes = "reference fixture, synthetic, seed %d, block %s"\n' % (SEED + 7, name))
+        write_dir(
+            os.path.join(out, "blocks", name),
+            "counts.npy",
+            counts,
+            kin,
+            "reference fixture, synthetic, seed %d, block %s" % (SEED + 7, name),
+        )
         blocks.append((counts.astype(np.float64), kin))
 
     def indicators(lengths):
@@ -608,16 +613,14 @@ def features_fixtures(out, counts, kin):
     gain = rng.uniform(2.0, 6.0, size=N)
     noise = rng.uniform(1.0, 3.0, size=N)
     feats = (offset + gain * counts + noise * rng.normal(size=counts.shape)).astype(np.float32)
-    path = os.path.join(out, "features_block")
-    os.makedirs(path, exist_ok=True)
-    np.save(os.path.join(path, "features.npy"), feats)
-    np.save(os.path.join(path, "kinematics.npy"), kin)
-    with open(os.path.join(path, "manifest.toml"), "w") as f:
-        f.write("version = 1\n")
-        f.write(f"bin_ms = {BIN_MS}\n")
-        f.write('kinematics = ["pos_x", "pos_y", "vel_x", "vel_y"]\n')
-        f.write('features = "synthetic band power"\n')
-        f.write('notes = "reference fixture, synthetic, seed %d"\n' % (SEED + 11))
+    write_dir(
+        os.path.join(out, "features_block"),
+        "features.npy",
+        feats,
+        kin,
+        "reference fixture, synthetic, seed %d" % (SEED + 11),
+        extra='features = "synthetic band power"\n',
+    )
     y = feats.astype(np.float64)
     fit = wu2006_fit(y, kin, [0, 1, 2, 3], True, 0.0, "none")
     for key, value in fit.items():

@@ -448,21 +448,75 @@ pub fn fit_from_stats(
     for &ch in &excluded {
         h.row_mut(ch).fill(0.0);
     }
-    let hsxx_ht_term = |h: &DMatrix<f64>| h * &sxx;
-    let h_sxx = hsxx_ht_term(&h); // N × d
 
-    let q = match options.q_form {
+    let raw = (options.q_form == QForm::Full).then(|| stats.gram.to_f64_symmetric());
+    let sy: Vec<f64> = (0..n).map(|i| stats.gram.sum(i)).collect();
+    // Σ y'ᵢ y'ⱼ with y' = (y − o)/s.
+    let q = residual_noise(
+        options.q_form,
+        t,
+        &h,
+        &syx,
+        &sxx,
+        &excluded,
+        |i, j| match &raw {
+            Some(raw) => {
+                (raw[i * n + j] - offset[i] * sy[j] - sy[i] * offset[j] + t * offset[i] * offset[j])
+                    / (scale[i] * scale[j])
+            }
+            None => {
+                (stats.gram.square_sum(i) - 2.0 * offset[i] * sy[i] + t * offset[i] * offset[i])
+                    / (scale[i] * scale[i])
+            }
+        },
+    );
+
+    finish(
+        options,
+        bin_width,
+        ObservationFit {
+            h,
+            q,
+            offset,
+            scale,
+            excluded,
+        },
+        stats,
+    )
+}
+
+/// The fitted observation model, before it becomes a model with the
+/// state model ([`finish`]).
+struct ObservationFit {
+    h: DMatrix<f64>,
+    q: ObservationNoise,
+    offset: Vec<f64>,
+    scale: Vec<f64>,
+    excluded: Vec<usize>,
+}
+
+/// Q, the covariance of the observation residuals: (Syy − H Syxᵀ − Syx Hᵀ
+/// + H Sxx Hᵀ) / T, from `syy(i, j)`, the observations' sums in
+/// normalised units (only `syy(i, i)` for a diagonal Q), and H, Syx, Sxx
+/// over the same state components. A channel in `excluded` gets unit
+/// variance and no covariance.
+fn residual_noise(
+    q_form: QForm,
+    t: f64,
+    h: &DMatrix<f64>,
+    syx: &DMatrix<f64>,
+    sxx: &DMatrix<f64>,
+    excluded: &[usize],
+    syy: impl Fn(usize, usize) -> f64,
+) -> ObservationNoise {
+    let (n, d) = (h.nrows(), h.ncols());
+    let h_sxx = h * sxx; // N × d
+    match q_form {
         QForm::Full => {
-            let raw = stats.gram.to_f64_symmetric();
-            let sy: Vec<f64> = (0..n).map(|i| stats.gram.sum(i)).collect();
             let mut q = Mat::zeros(n, n);
             for i in 0..n {
                 for j in i..n {
-                    // Σ y'ᵢ y'ⱼ with y' = (y − o)/s
-                    let syy = (raw[i * n + j] - offset[i] * sy[j] - sy[i] * offset[j]
-                        + t * offset[i] * offset[j])
-                        / (scale[i] * scale[j]);
-                    let mut v = syy;
+                    let mut v = syy(i, j);
                     for c in 0..d {
                         v -= h[(i, c)] * syx[(j, c)] + syx[(i, c)] * h[(j, c)]
                             - h_sxx[(i, c)] * h[(j, c)];
@@ -472,7 +526,7 @@ pub fn fit_from_stats(
                     q.set(j, i, v);
                 }
             }
-            for &ch in &excluded {
+            for &ch in excluded {
                 for k in 0..n {
                     q.set(ch, k, 0.0);
                     q.set(k, ch, 0.0);
@@ -483,53 +537,19 @@ pub fn fit_from_stats(
         }
         QForm::Diagonal => {
             let mut diag = vec![0.0; n];
-            for i in 0..n {
-                let s = stats.gram.sum(i);
-                let syy = (stats.gram.square_sum(i) - 2.0 * offset[i] * s
-                    + t * offset[i] * offset[i])
-                    / (scale[i] * scale[i]);
-                let mut v = syy;
+            for (i, v) in diag.iter_mut().enumerate() {
+                let mut r = syy(i, i);
                 for c in 0..d {
-                    v -= 2.0 * h[(i, c)] * syx[(i, c)] - h_sxx[(i, c)] * h[(i, c)];
+                    r -= 2.0 * h[(i, c)] * syx[(i, c)] - h_sxx[(i, c)] * h[(i, c)];
                 }
-                diag[i] = v / t;
+                *v = r / t;
             }
-            for &ch in &excluded {
+            for &ch in excluded {
                 diag[ch] = 1.0;
             }
             ObservationNoise::Diagonal(diag)
         }
-    };
-
-    let (a, w, x0, p0) = state_model(stats, options, bin_width)?;
-    finish(
-        options,
-        Fitted {
-            a,
-            w,
-            h,
-            q,
-            x0,
-            p0,
-            offset,
-            scale,
-            excluded,
-        },
-        stats,
-    )
-}
-
-/// The fitted parameters before they become a model.
-struct Fitted {
-    a: DMatrix<f64>,
-    w: Mat,
-    h: DMatrix<f64>,
-    q: ObservationNoise,
-    x0: Vec<f64>,
-    p0: Mat,
-    offset: Vec<f64>,
-    scale: Vec<f64>,
-    excluded: Vec<usize>,
+    }
 }
 
 /// The state model from the kinematics alone: A and W by least squares
@@ -593,21 +613,25 @@ fn state_model(
     Ok((a, w, x0, p0))
 }
 
-/// The model, validated, with its steady-state gain when asked for.
+/// The model: the observation model fitted, the state model from the
+/// kinematics of `stats`; validated, with its steady-state gain when
+/// asked for.
 fn finish(
     options: &KalmanFitOptions,
-    f: Fitted,
+    bin_width: crate::bin_width::BinWidth,
+    f: ObservationFit,
     stats: &KalmanStats,
 ) -> Result<(KalmanModel, KalmanFitReport), TrainError> {
+    let (a, w, x0, p0) = state_model(stats, options, bin_width)?;
     let mut model = KalmanModel {
         state: options.state.clone(),
         outputs: options.outputs.clone(),
-        a: Mat::from_dmatrix(&f.a),
-        w: f.w,
+        a: Mat::from_dmatrix(&a),
+        w,
         h: Mat::from_dmatrix(&f.h),
         q: f.q,
-        x0: f.x0,
-        p0: f.p0,
+        x0,
+        p0,
         count_offset: f.offset,
         count_scale: f.scale,
         steady: None,
@@ -748,45 +772,11 @@ pub fn fit_from_block_stats(
     for &ch in &excluded {
         h_kin.row_mut(ch).fill(0.0);
     }
-    // Residual sums about each block's line: Syy − H Syxᵀ − Syx Hᵀ + H Sxx Hᵀ.
+    // Residual sums about each block's line.
     let t = t_obs as f64;
-    let h_sxx = &h_kin * &sxx; // N × dk
-    let q = if full {
-        let mut q = Mat::zeros(n, n);
-        for i in 0..n {
-            for j in i..n {
-                let mut v = syy[(i, j)];
-                for c in 0..dk {
-                    v -= h_kin[(i, c)] * syx[(j, c)] + syx[(i, c)] * h_kin[(j, c)]
-                        - h_sxx[(i, c)] * h_kin[(j, c)];
-                }
-                v /= t;
-                q.set(i, j, v);
-                q.set(j, i, v);
-            }
-        }
-        for &ch in &excluded {
-            for k in 0..n {
-                q.set(ch, k, 0.0);
-                q.set(k, ch, 0.0);
-            }
-            q.set(ch, ch, 1.0);
-        }
-        ObservationNoise::Full(q)
-    } else {
-        let mut diag = vec![0.0; n];
-        for (i, v) in diag.iter_mut().enumerate() {
-            let mut r = syy[(i, 0)];
-            for c in 0..dk {
-                r -= 2.0 * h_kin[(i, c)] * syx[(i, c)] - h_sxx[(i, c)] * h_kin[(i, c)];
-            }
-            *v = r / t;
-        }
-        for &ch in &excluded {
-            diag[ch] = 1.0;
-        }
-        ObservationNoise::Diagonal(diag)
-    };
+    let q = residual_noise(options.q_form, t, &h_kin, &syx, &sxx, &excluded, |i, j| {
+        if full { syy[(i, j)] } else { syy[(i, 0)] }
+    });
 
     // The last block's baselines: its means (and scales) as the offset,
     // and its intercept −H·x̄ in the constant column.
@@ -805,16 +795,12 @@ pub fn fit_from_block_stats(
                 .sum::<f64>();
         }
     }
-    let (a, w, x0, p0) = state_model(&pooled, options, bin_width)?;
     finish(
         options,
-        Fitted {
-            a,
-            w,
+        bin_width,
+        ObservationFit {
             h,
             q,
-            x0,
-            p0,
             offset,
             scale,
             excluded,

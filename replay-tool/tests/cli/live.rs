@@ -229,19 +229,7 @@ fn stream_through_a_running_daemon_equals_offline_decoding() {
         .unwrap();
     let target = daemon.listen.to_string();
     let sink_text = sink.to_string();
-    let out = ok(&[
-        "stream",
-        "--session",
-        p(&block),
-        "--model",
-        p(&model),
-        "--daemon",
-        &target,
-        "--actuator",
-        &sink_text,
-        "--time-scale",
-        "0.25",
-    ]);
+    let out = ok(&stream_args(&block, &model, &target, &sink_text));
     assert!(
         out.contains("300 of 300 live estimates equal offline decoding bit for bit"),
         "{out}"
@@ -273,38 +261,11 @@ fn stream_through_a_running_daemon_equals_offline_decoding() {
         p(&other),
         "--no-cv",
     ]);
-    let err = fails_with(
-        &[
-            "stream",
-            "--session",
-            p(&block),
-            "--model",
-            p(&other),
-            "--daemon",
-            &target,
-            "--actuator",
-            &sink_text,
-            "--time-scale",
-            "0.25",
-        ],
-        1,
-    );
+    let err = fails_with(&stream_args(&block, &other, &target, &sink_text), 1);
     assert!(err.contains("differ"), "{err}");
     // And with the right model again, on the now used daemon: a new stream
     // resets it, and the check passes from the stream's first decoded bin.
-    let out = ok(&[
-        "stream",
-        "--session",
-        p(&block),
-        "--model",
-        p(&model),
-        "--daemon",
-        &target,
-        "--actuator",
-        &sink_text,
-        "--time-scale",
-        "0.25",
-    ]);
+    let out = ok(&stream_args(&block, &model, &target, &sink_text));
     assert!(out.contains("299 of 299 live estimates equal"), "{out}");
     daemon.stop().unwrap();
 }
@@ -414,6 +375,29 @@ fn a_closed_loop_session_runs_for_minutes_and_can_start_late_in_a_changing_world
     );
 }
 
+/// `stream` of `block` to a running daemon, checked against `model`, at a
+/// quarter of the bin rate.
+fn stream_args<'a>(
+    block: &'a Path,
+    model: &'a Path,
+    target: &'a str,
+    sink: &'a str,
+) -> [&'a str; 11] {
+    [
+        "stream",
+        "--session",
+        p(block),
+        "--model",
+        p(model),
+        "--daemon",
+        target,
+        "--actuator",
+        sink,
+        "--time-scale",
+        "0.25",
+    ]
+}
+
 /// A block of continuous features, end to end: the simulator writes it,
 /// a Kalman decoder trains on it, the daemon decodes bin packets of
 /// features (version 2, kind 1) exactly as offline decoding does, the
@@ -479,19 +463,7 @@ fn a_block_of_features_trains_streams_verifies_and_exports_to_nwb() {
         .start()
         .unwrap();
     let (target, sink_text) = (daemon.listen.to_string(), sink.to_string());
-    let out = ok(&[
-        "stream",
-        "--session",
-        p(&block),
-        "--model",
-        p(&model),
-        "--daemon",
-        &target,
-        "--actuator",
-        &sink_text,
-        "--time-scale",
-        "0.25",
-    ]);
+    let out = ok(&stream_args(&block, &model, &target, &sink_text));
     assert!(
         out.contains("300 of 300 live estimates equal offline decoding bit for bit"),
         "{out}"
@@ -517,20 +489,7 @@ fn a_block_of_features_trains_streams_verifies_and_exports_to_nwb() {
         "--channels",
         "16",
     ]);
-    let err = fails_with(
-        &[
-            "stream",
-            "--session",
-            p(&counts),
-            "--model",
-            p(&model),
-            "--daemon",
-            &target,
-            "--actuator",
-            &sink_text,
-        ],
-        2,
-    );
+    let err = fails_with(&stream_args(&counts, &model, &target, &sink_text), 2);
     assert!(
         err.contains("holds counts but the model decodes features"),
         "{err}"

@@ -495,8 +495,8 @@ struct ObservationFit {
     excluded: Vec<usize>,
 }
 
-/// Q, the covariance of the observation residuals: (Syy − H Syxᵀ − Syx Hᵀ
-/// + H Sxx Hᵀ) / T, from `syy(i, j)`, the observations' sums in
+/// Q, the covariance of the observation residuals:
+/// `(Syy − H Syxᵀ − Syx Hᵀ + H Sxx Hᵀ) / T`, from `syy(i, j)`, the observations' sums in
 /// normalised units (only `syy(i, i)` for a diagonal Q), and H, Syx, Sxx
 /// over the same state components. A channel in `excluded` gets unit
 /// variance and no covariance.

@@ -128,7 +128,7 @@ pub enum CtlAction {
     },
     /// Turn drift handling on or off (config section `[drift]`): follow
     /// each channel's baseline, leave dead and noisy channels out, and
-    /// subtract the velocity bias.
+    /// (with `correct_bias`) subtract the velocity bias.
     Drift {
         #[arg(value_enum)]
         switch: Switch,

@@ -8,6 +8,7 @@
 # quarter hour for:
 #   morning         the decoder calibrated on the day's first 10 minutes
 #   + handling      the same, [drift] enabled = true
+#   + bias          the same, and [drift] correct_bias = true
 #   + adaptation    the same, and `--adapt`
 #   fresh           a decoder calibrated on the first 10 minutes of each
 #                   quarter, run on that quarter alone (the ceiling)
@@ -24,6 +25,7 @@
 source "$(dirname "$0")/setup.sh" "$@"
 day=(--drift-gain 0.6:1.8 --drift-ramp-min 120 --silent 0.1@30-100 --noisy 0.1@60-90)
 printf '[drift]\nenabled = true\n' >drift.toml
+printf '[drift]\nenabled = true\ncorrect_bias = true\n' >bias.toml
 task_seed="${2:-1}"
 run() { "$tool" closed-loop --time-scale 0 --trials 1000000 --task-seed "$task_seed" "$@" >/dev/null; }
 
@@ -31,6 +33,7 @@ run() { "$tool" closed-loop --time-scale 0 --trials 1000000 --task-seed "$task_s
 "$tool" train --session morning-calib --decoder kalman --out morning.model --no-cv >/dev/null
 run --model morning.model --minutes 120 "${day[@]}" --report morning
 run --model morning.model --minutes 120 "${day[@]}" --config drift.toml --report handling
+run --model morning.model --minutes 120 "${day[@]}" --config bias.toml --report bias
 run --model morning.model --minutes 120 "${day[@]}" --config drift.toml --adapt --report adapting
 for q in 0 1 2 3 4 5 6 7; do
   from=$((15 * q))
@@ -51,6 +54,7 @@ PY
 done
 run --model morning.model --minutes 30 --report still-off
 run --model morning.model --minutes 30 --config drift.toml --report still-on
+run --model morning.model --minutes 30 --config bias.toml --report still-bias
 
 "$py" - <<'PY'
 import json
@@ -70,7 +74,7 @@ def cell(ts):
     m = sum(x["trial_time_s"] for x in ts) / len(ts)
     return f"{s:5.1f} % {m:4.2f} s"
 rows = [("morning", quarters("morning")), ("+ handling", quarters("handling")),
-        ("+ adaptation", quarters("adapting"))]
+        ("+ bias", quarters("bias")), ("+ adaptation", quarters("adapting"))]
 fresh = {}
 for q in range(8):
     fresh[q] = quarters(f"fresh-{q}", 15 * q).get(q, [])
@@ -78,7 +82,7 @@ rows.append(("fresh", fresh))
 print("minutes       " + "  ".join(f"{15*q:>3}–{15*q+15:<3}     " for q in range(8)))
 for name, qs in rows:
     print(f"{name:<13} " + "  ".join(cell(qs.get(q, [])) for q in range(8)))
-for name in ("still-off", "still-on"):
+for name in ("still-off", "still-on", "still-bias"):
     t = json.load(open(name + "/closed-loop.json"))["trials"]
-    print(f"stationary, handling {name[6:]:<3}: {cell(t)} over {len(t)} trials")
+    print(f"stationary, handling {name[6:]:<4}: {cell(t)} over {len(t)} trials")
 PY

@@ -74,7 +74,7 @@ impl Default for DriftSettings {
         DriftSettings {
             enabled: false,
             baseline_tau_s: 600.0,
-            correct_bias: true,
+            correct_bias: false,
             bias_tau_s: 600.0,
             bias_speed_quantile: 0.66,
             bias_limit: 0.1,
@@ -431,9 +431,12 @@ impl DriftTracker {
         self.n_left_out as f64 > self.settings.max_left_out * self.ref_mean.len() as f64
     }
 
-    /// Follows the velocity bias from the decoded `estimate` (when
-    /// `track`) and subtracts it (when bias correction is on).
+    /// With bias correction on, follows the velocity bias from the decoded
+    /// `estimate` (when `track`) and subtracts it; off, does nothing.
     pub fn correct_velocity(&mut self, estimate: &mut [f64], track: bool) {
+        if !self.settings.correct_bias {
+            return;
+        }
         if track {
             let speed = estimate.iter().map(|v| v * v).sum::<f64>().sqrt();
             let a = self.a_bias;
@@ -457,10 +460,8 @@ impl DriftTracker {
                 self.bias.iter_mut().for_each(|b| *b *= k);
             }
         }
-        if self.settings.correct_bias {
-            for (v, b) in estimate.iter_mut().zip(&self.bias) {
-                *v -= b;
-            }
+        for (v, b) in estimate.iter_mut().zip(&self.bias) {
+            *v -= b;
         }
     }
 
@@ -566,6 +567,7 @@ mod tests {
     #[test]
     fn the_bias_is_held_below_its_limit() {
         let mut t = tracker(1);
+        t.settings.correct_bias = true;
         // A sustained intention to the right at constant speed: the bias
         // follows it, but never past a tenth of the quantile speed, which
         // settles on the speed itself (within its Robbins–Monro step).
@@ -575,6 +577,25 @@ mod tests {
         }
         let b = t.bias()[0];
         assert!(b > 0.28 && b <= 0.1 * 3.0 * 1.001, "bias {b}");
+    }
+
+    #[test]
+    fn a_bias_is_followed_only_when_correction_is_on() {
+        // Off (the default), a sustained push leaves the estimate as
+        // decoded and no bias is followed (status shows zeros).
+        let mut off = tracker(1);
+        assert!(!off.settings().correct_bias);
+        let mut on = tracker(1);
+        on.settings.correct_bias = true;
+        for _ in 0..50_000 {
+            let mut v = [3.0, -1.0];
+            off.correct_velocity(&mut v, true);
+            assert_eq!(v, [3.0, -1.0]);
+            let mut v = [3.0, -1.0];
+            on.correct_velocity(&mut v, true);
+        }
+        assert_eq!(off.bias(), &[0.0, 0.0]);
+        assert!(on.bias()[0] > 0.1, "bias {:?}", on.bias());
     }
 
     #[test]

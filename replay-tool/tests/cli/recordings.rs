@@ -382,11 +382,12 @@ fn a_session_with_drift_handling_leaving_channels_out_and_back_verifies_bit_for_
     let (_, model) = fixture::calibration_16();
     // A fifth of the channels fall silent from 0.1 to 0.3 minutes; drift
     // handling (on from the configuration) leaves them out after 1 s of
-    // silence and takes them back after 2 s of firing again.
+    // silence and takes them back after 2 s of firing again; the velocity
+    // bias is corrected too (off by default), so its path is verified.
     let config = dir.path().join("daemon.toml");
     std::fs::write(
         &config,
-        "[drift]\nenabled = true\ndead_after_s = 1.0\nrestore_after_s = 2.0\ndead_min_rate_hz = 1.0\n",
+        "[drift]\nenabled = true\ncorrect_bias = true\ndead_after_s = 1.0\nrestore_after_s = 2.0\ndead_min_rate_hz = 1.0\n",
     )
     .unwrap();
     let report = dir.path().join("cl");
@@ -419,6 +420,12 @@ fn a_session_with_drift_handling_leaving_channels_out_and_back_verifies_bit_for_
     assert!(
         status["drift"]["reduced_forms"].as_u64().unwrap() >= 2,
         "{}",
+        status["drift"]
+    );
+    let bias = status["drift"]["bias"].as_array().unwrap();
+    assert!(
+        bias.iter().any(|b| b.as_f64().unwrap() != 0.0),
+        "a bias followed and subtracted: {}",
         status["drift"]
     );
     let said = ok(&["verify", p(&log)]);

@@ -268,9 +268,16 @@ impl DecodePipeline {
 
     /// Hands the tracker's left-out channels to the filter.
     fn apply_left_out(&mut self) {
-        let n = self.n_channels;
-        let none = vec![false; n];
-        let flags = self.drift.as_ref().map_or(&none[..], |t| t.left_out());
+        // Allocates only when drift handling is off (at configuration,
+        // never at a bin whose channels changed).
+        let none;
+        let flags = match self.drift.as_ref() {
+            Some(t) => t.left_out(),
+            None => {
+                none = vec![false; self.n_channels];
+                &none[..]
+            }
+        };
         match &mut self.engine {
             Engine::Kalman { filter, .. } => filter.set_left_out(flags),
             // The tracker hands it the training mean of a channel left out.
